@@ -1,0 +1,743 @@
+"""Causal-graph checker: build the instrument's graph from threat fragments and test the instrument criterion.
+
+The criterion used is the conditional instrument definition (Pearl 2009, Causality, sec. 7.4.5; Brito and
+Pearl 2002) in its total-effect form: Z is an instrument for the effect of X on Y given a set W when
+
+1. W holds no descendant of X or Y (and never X, Y or Z themselves);
+2. W d-separates Z from Y in the graph with every edge out of X removed;
+3. W does not d-separate Z from X.
+
+Link states and the graph
+-------------------------
+The registry attaches threats to an instrument as links with a state; ``build_graph(link_states=...)`` reads:
+
+* ``rebutted``: the fragment is dropped, its nodes and edges are not drawn;
+* ``open``, ``fatal``: the fragment is drawn and its edges are *asserted*;
+* ``mitigated``, ``accepted``: the fragment is drawn but its edges are only *possible* (the team argues
+  the effect is handled or small);
+* a fragment whose code has no state, when ``link_states`` is given, is a ``suggested`` preview (possible);
+  with ``link_states=None`` every fragment counts as ``open``.
+
+Verdict per condition (the graph part; statistics come from the estimation layer)
+---------------------------------------------------------------------------------
+* exclusion / exogeneity: every open path from Z to Y that avoids X (given W plus selection nodes) is
+  classified as exclusion when all its arrows point from Z towards Y, otherwise exogeneity.
+  ``broken`` = an open path of that kind whose edges are all asserted (base, team-drawn, or from open/fatal
+  links), or a fatal link for that condition, or (exogeneity) W holds a descendant of X or Y;
+  ``at-risk`` = an open path that uses at least one merely possible edge, or an unresolved link whose threat
+  has no fragment; ``holds`` = none of these, and at least one threat for the condition was considered
+  (any state, rebutted included) or team edges were drawn; ``not-assessed`` = nothing was considered.
+* relevance: ``broken`` if W d-separates Z from X or a relevance link is fatal; ``at-risk`` if a relevance
+  link is open, mitigated, accepted or suggested; else ``holds`` (``ivdossier estimate`` judges strength).
+* monotonicity: a graph cannot express defiers, so the value comes from links alone: fatal -> broken; any
+  open, mitigated, accepted or suggested -> at-risk; only rebutted links -> holds; no links -> not-assessed.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import networkx as nx
+from ivdossier.threats_catalog.catalog import CONDITIONS, GraphFragment
+
+from ivdossier.errors import InvalidInputError, NotFoundError
+
+LINK_STATES: tuple[str, ...] = ("open", "rebutted", "mitigated", "accepted", "fatal")
+#: Pseudo-state for a fragment passed without a link state when ``link_states`` is given.
+SUGGESTED = "suggested"
+#: States whose fragments stay in the graph.
+KEPT_STATES: frozenset[str] = frozenset({"open", "mitigated", "accepted", "fatal", SUGGESTED})
+#: States whose edges are asserted (an open path made only of asserted edges breaks a condition).
+ASSERTED_STATES: frozenset[str] = frozenset({"open", "fatal"})
+VERDICT_VALUES: tuple[str, ...] = ("holds", "at-risk", "broken", "not-assessed")
+ROLES: tuple[str, ...] = ("instrument", "treatment", "outcome", "unobserved", "covariate", "intermediate")
+
+_MAX_OPEN_PATHS = 200
+_MAX_SUBSETS = 1 << 16
+
+
+# ------------------------------------------------------------------------------------------------ building
+
+
+def build_graph(
+    *,
+    instrument: str = "Z",
+    treatment: str = "X",
+    outcome: str = "Y",
+    covariates: Mapping[str, bool] | None = None,
+    fragments: Sequence[GraphFragment] = (),
+    extra_edges: Iterable[tuple[str, str]] = (),
+    link_states: Mapping[str, str] | None = None,
+    confounder: str = "U",
+) -> nx.DiGraph:
+    """Base graph Z -> X -> Y with U -> X, U -> Y, plus covariates, threat fragments and team-drawn edges.
+
+    Fragment role tokens Z, X, Y, U become the given instrument, treatment, outcome and confounder names.
+    Node attributes: ``role`` (one of :data:`ROLES`), ``observed``, ``label``, ``selection``, ``threats``.
+    Edge attributes: ``threats`` (codes whose fragments drew it), ``base``, ``team``. A covariate's measured
+    flag overrides a fragment's ``observed`` default. ``G.graph["threats"]`` maps every fragment's code to
+    its condition and state (rebutted ones included, although their edges are left out).
+
+    Examples
+    --------
+    >>> G = build_graph(instrument="fibre_wave", covariates={"district_income": True})
+    >>> sorted(G.successors("fibre_wave"))
+    ['X']
+    """
+    roles = {"instrument": instrument, "treatment": treatment, "outcome": outcome, "unobserved": confounder}
+    for role, name in roles.items():
+        if not isinstance(name, str) or not name.strip():
+            raise InvalidInputError(f"the {role} name must be a non-empty string, got {name!r}")
+    if len(set(roles.values())) != 4:
+        raise InvalidInputError(
+            f"instrument, treatment, outcome and confounder need distinct names, got {list(roles.values())}"
+        )
+    covs = dict(covariates or {})
+    for name, measured in covs.items():
+        if name in roles.values():
+            raise InvalidInputError(f"covariate {name!r} has the name of a role node; rename the covariate")
+        if not isinstance(measured, bool):
+            raise InvalidInputError(f"covariate {name!r} needs a measured flag True/False, got {measured!r}")
+    if link_states is not None:
+        for code, state in link_states.items():
+            if state not in LINK_STATES:
+                raise InvalidInputError(
+                    f"link state {state!r} for threat {code} is unknown; use one of: {', '.join(LINK_STATES)}"
+                )
+    token = {"Z": instrument, "X": treatment, "Y": outcome, "U": confounder}
+
+    G: nx.DiGraph = nx.DiGraph()
+    G.graph.update(roles={"instrument": instrument, "treatment": treatment, "outcome": outcome}, threats={})
+    for role, name in roles.items():
+        G.add_node(name, role=role, observed=role != "unobserved", label=name, selection=False, threats=[])
+    G.nodes[confounder]["label"] = "unmeasured causes of X and Y"
+    for u, v in (
+        (instrument, treatment),
+        (treatment, outcome),
+        (confounder, treatment),
+        (confounder, outcome),
+    ):
+        G.add_edge(u, v, threats=[], base=True, team=False)
+    for name, measured in covs.items():
+        G.add_node(name, role="covariate", observed=measured, label=name, selection=False, threats=[])
+
+    for frag in fragments:
+        code = frag.threat_code
+        state = "open" if link_states is None else link_states.get(code, SUGGESTED)
+        G.graph["threats"][code] = {"condition": frag.condition, "state": state, "empty": frag.is_empty}
+        if state not in KEPT_STATES:
+            continue
+        for node in frag.nodes:
+            if node.name in roles.values():
+                raise InvalidInputError(
+                    f"fragment node {node.name!r} of {code} has the same name as a role node; rename the "
+                    "project's instrument, treatment or outcome"
+                )
+            if node.name in G:
+                attrs = G.nodes[node.name]
+                if node.name not in covs:
+                    attrs["observed"] = attrs["observed"] and node.observed
+                attrs["selection"] = attrs["selection"] or node.selection
+                attrs["threats"].append(code)
+                if not attrs["label"] or attrs["label"] == node.name:
+                    attrs["label"] = node.label or node.name
+            else:
+                observed = covs.get(node.name, node.observed)
+                G.add_node(
+                    node.name,
+                    role="covariate" if node.name in covs else ("intermediate" if observed else "unobserved"),
+                    observed=observed,
+                    label=node.label or node.name,
+                    selection=node.selection,
+                    threats=[code],
+                )
+            if G.nodes[node.name]["role"] != "covariate":
+                G.nodes[node.name]["role"] = (
+                    "intermediate" if G.nodes[node.name]["observed"] else "unobserved"
+                )
+        for a, b in frag.edges:
+            u, v = token.get(a, a), token.get(b, b)
+            if G.has_edge(u, v):
+                if code not in G.edges[u, v]["threats"]:
+                    G.edges[u, v]["threats"].append(code)
+            else:
+                G.add_edge(u, v, threats=[code], base=False, team=False)
+
+    for pair in extra_edges:
+        if not (isinstance(pair, tuple | list) and len(pair) == 2):
+            raise InvalidInputError(f"extra edge {pair!r} must be a (from, to) pair of node names")
+        u, v = pair
+        for end in (u, v):
+            if end not in G:
+                raise InvalidInputError(
+                    f"extra edge ({u!r}, {v!r}) names unknown node {end!r}; add it to covariates first"
+                )
+        if u == v:
+            raise InvalidInputError(f"extra edge ({u!r}, {v!r}) is a self-loop; remove it")
+        if G.has_edge(u, v):
+            G.edges[u, v]["team"] = True
+        else:
+            G.add_edge(u, v, threats=[], base=False, team=True)
+
+    if not nx.is_directed_acyclic_graph(G):
+        cycle = nx.find_cycle(G)
+        chain = " -> ".join([cycle[0][0], *(v for _, v in cycle)])
+        codes = sorted({c for u, v in cycle for c in G.edges[u, v]["threats"]})
+        team = any(G.edges[u, v]["team"] for u, v in cycle)
+        who = ", ".join(codes + (["team-drawn edges"] if team else [])) or "the base graph"
+        raise InvalidInputError(
+            f"the graph has a cycle {chain} (edges from {who}); rebut one of those threats or reverse an edge"
+        )
+    return G
+
+
+# ----------------------------------------------------------------------------------------------- d-separation
+
+
+def d_separated(G: nx.DiGraph, xs: Iterable[str], ys: Iterable[str], given: Iterable[str] = ()) -> bool:
+    """True when ``given`` d-separates every node of ``xs`` from every node of ``ys`` in the DAG ``G``.
+
+    Reachability ("Bayes-ball") traversal over (node, direction) pairs: a trail passes a non-collider that
+    is not conditioned on, and a collider that is conditioned on or has a conditioned descendant.
+
+    Examples
+    --------
+    >>> G = nx.DiGraph([("a", "m"), ("m", "b")])
+    >>> d_separated(G, {"a"}, {"b"}), d_separated(G, {"a"}, {"b"}, {"m"})
+    (False, True)
+    """
+    xset, yset, zset = set(xs), set(ys), set(given)
+    for name in xset | yset | zset:
+        if name not in G:
+            raise NotFoundError(f"node {name!r} is not in the graph; check the spelling")
+    if xset & yset or xset & zset or yset & zset:
+        raise InvalidInputError("the node sets passed to d_separated must not overlap; remove shared nodes")
+    opened: set[str] = set(zset)
+    stack = list(zset)
+    while stack:
+        for parent in G.predecessors(stack.pop()):
+            if parent not in opened:
+                opened.add(parent)
+                stack.append(parent)
+    # direction "up": reached from a child (moving against an edge); "down": reached from a parent.
+    todo: list[tuple[str, str]] = [(x, "up") for x in xset]
+    seen: set[tuple[str, str]] = set()
+    while todo:
+        node, direction = todo.pop()
+        if (node, direction) in seen:
+            continue
+        seen.add((node, direction))
+        if node in yset:
+            return False
+        if direction == "up":
+            if node not in zset:
+                todo.extend((p, "up") for p in G.predecessors(node))
+                todo.extend((c, "down") for c in G.successors(node))
+        else:
+            if node not in zset:
+                todo.extend((c, "down") for c in G.successors(node))
+            if node in opened:
+                todo.extend((p, "up") for p in G.predecessors(node))
+    return True
+
+
+# ------------------------------------------------------------------------------------------------ verdicts
+
+
+@dataclass(frozen=True)
+class BypassPath:
+    """A path between instrument and outcome that avoids the treatment, as a readable chain."""
+
+    nodes: tuple[str, ...]
+    arrows: tuple[str, ...]  # "->" or "<-" between consecutive nodes
+    threats: tuple[str, ...]  # codes whose fragments drew an edge on the path, in path order
+    team_edges: bool  # True when a team-drawn extra edge is on the path
+    condition: str  # "exclusion" (directed Z ... -> Y) or "exogeneity" (any other shape)
+    severity: str  # "broken" (all edges asserted) or "at-risk"
+    is_open: bool
+    opened_by: tuple[str, ...]  # conditioned colliders (or their ancestors) that open the path
+    blocked_by: tuple[str, ...]  # conditioned non-colliders that block it
+
+    @property
+    def text(self) -> str:
+        """E.g. ``"Z -> clinic_closures -> Y"``."""
+        parts = [self.nodes[0]]
+        for arrow, node in zip(self.arrows, self.nodes[1:], strict=True):
+            parts += [arrow, node]
+        return " ".join(parts)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-safe form."""
+        return {
+            "path": self.text,
+            "nodes": list(self.nodes),
+            "arrows": list(self.arrows),
+            "threats": list(self.threats),
+            "team_edges": self.team_edges,
+            "condition": self.condition,
+            "severity": self.severity,
+            "open": self.is_open,
+            "opened_by": list(self.opened_by),
+            "blocked_by": list(self.blocked_by),
+        }
+
+
+@dataclass(frozen=True)
+class ConditionVerdict:
+    """The graph's verdict on one condition, with the reasons and the threat codes behind it."""
+
+    condition: str
+    value: str  # one of VERDICT_VALUES
+    reasons: tuple[str, ...]
+    threats: tuple[str, ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-safe form."""
+        return {
+            "condition": self.condition,
+            "value": self.value,
+            "reasons": list(self.reasons),
+            "threats": list(self.threats),
+        }
+
+
+@dataclass(frozen=True)
+class ThreatEffect:
+    """What one threat's fragment does in this graph.
+
+    ``effect``: ``opens-path`` (on an open bypass path), ``blocked`` (drawn, but every path through it is
+    closed), ``dropped`` (rebutted, so not drawn) or ``not-in-graph`` (its fragment is empty).
+    """
+
+    code: str
+    condition: str  # the condition the catalogue entry attacks
+    state: str
+    effect: str
+    conditions_hit: tuple[str, ...]  # conditions of the open paths it lies on
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-safe form."""
+        return {
+            "code": self.code,
+            "condition": self.condition,
+            "state": self.state,
+            "effect": self.effect,
+            "conditions_hit": list(self.conditions_hit),
+        }
+
+
+@dataclass(frozen=True)
+class GraphVerdict:
+    """Result of :func:`check_instrument`: criterion, per-condition verdicts and the paths behind them."""
+
+    instrument: str
+    treatment: str
+    outcome: str
+    conditioning: tuple[str, ...]
+    selection: tuple[str, ...]
+    relevance_connected: bool
+    criterion_holds: bool
+    conditioning_issues: tuple[str, ...]
+    conditions: tuple[ConditionVerdict, ...]
+    open_paths: tuple[BypassPath, ...]
+    blocked_paths: tuple[BypassPath, ...]
+    threats: tuple[ThreatEffect, ...]
+    paths_truncated: bool
+
+    def condition(self, name: str) -> ConditionVerdict:
+        """The verdict for one condition (relevance, exclusion, exogeneity, monotonicity)."""
+        for verdict in self.conditions:
+            if verdict.condition == name:
+                return verdict
+        raise NotFoundError(f"no verdict for condition {name!r}; use one of: {', '.join(CONDITIONS)}")
+
+    def value(self, name: str) -> str:
+        """Shorthand for ``condition(name).value``."""
+        return self.condition(name).value
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-safe form."""
+        return {
+            "instrument": self.instrument,
+            "treatment": self.treatment,
+            "outcome": self.outcome,
+            "conditioning": list(self.conditioning),
+            "selection": list(self.selection),
+            "relevance_connected": self.relevance_connected,
+            "criterion_holds": self.criterion_holds,
+            "conditioning_issues": list(self.conditioning_issues),
+            "conditions": {v.condition: v.to_dict() for v in self.conditions},
+            "open_paths": [p.to_dict() for p in self.open_paths],
+            "blocked_paths": [p.to_dict() for p in self.blocked_paths],
+            "threats": [t.to_dict() for t in self.threats],
+            "paths_truncated": self.paths_truncated,
+        }
+
+
+def check_instrument(
+    G: nx.DiGraph,
+    *,
+    instrument: str,
+    treatment: str,
+    outcome: str,
+    conditioning: Iterable[str] = frozenset(),
+) -> GraphVerdict:
+    """Test the conditional instrument criterion for ``instrument`` given ``conditioning`` and explain it.
+
+    Nodes flagged ``selection`` are always conditioned on (the sample is restricted on them). Conditioning on
+    an unobserved node, or on Z, X or Y, raises InvalidInputError. Conditioning on a descendant of X or Y is
+    reported as a conditioning issue (exogeneity broken) rather than raised.
+    """
+    z, x, y = instrument, treatment, outcome
+    for role, name in (("instrument", z), ("treatment", x), ("outcome", y)):
+        if name not in G:
+            raise NotFoundError(f"{role} {name!r} is not a node of the graph; check the name")
+    if len({z, x, y}) != 3:
+        raise InvalidInputError("instrument, treatment and outcome must be three different nodes")
+    if not nx.is_directed_acyclic_graph(G):
+        raise InvalidInputError("the graph has a cycle; build it with build_graph, which names the cycle")
+    W = _validate_conditioning(G, conditioning, z, x, y)
+    S = {n for n, d in G.nodes(data=True) if d.get("selection")}
+    C = W | S
+    issues = _conditioning_issues(G, W, S, x, y)
+    connected = not d_separated(G, {z}, {x}, C - {z, x})
+    mutilated = G.copy()
+    mutilated.remove_edges_from(list(G.out_edges(x)))
+    threat_info: dict[str, dict[str, Any]] = dict(G.graph.get("threats", {}))
+    states = {code: info["state"] for code, info in threat_info.items()}
+
+    open_paths, blocked_paths, truncated = _bypass_paths(mutilated, z, y, x, C, S, states)
+    criterion = connected and not open_paths and not issues and not (C & {z, x, y})
+
+    verdicts = (
+        _relevance_verdict(connected, W, threat_info),
+        _path_verdict("exclusion", open_paths, blocked_paths, threat_info, G, (), W),
+        _path_verdict("exogeneity", open_paths, blocked_paths, threat_info, G, issues, W),
+        _monotonicity_verdict(threat_info),
+    )
+    effects = []
+    for code, info in threat_info.items():
+        hit = sorted({p.condition for p in open_paths if code in p.threats})
+        if info["state"] not in KEPT_STATES:
+            effect = "dropped"
+        elif info["empty"]:
+            effect = "not-in-graph"
+        else:
+            effect = "opens-path" if hit else "blocked"
+        effects.append(ThreatEffect(code, info["condition"], info["state"], effect, tuple(hit)))
+    return GraphVerdict(
+        instrument=z,
+        treatment=x,
+        outcome=y,
+        conditioning=tuple(sorted(W)),
+        selection=tuple(sorted(S)),
+        relevance_connected=connected,
+        criterion_holds=criterion,
+        conditioning_issues=tuple(issues),
+        conditions=verdicts,
+        open_paths=tuple(open_paths),
+        blocked_paths=tuple(blocked_paths),
+        threats=tuple(effects),
+        paths_truncated=truncated,
+    )
+
+
+def criterion_holds(
+    G: nx.DiGraph, *, instrument: str, treatment: str, outcome: str, conditioning: Iterable[str] = frozenset()
+) -> bool:
+    """Fast yes/no form of the conditional instrument criterion (no path listing)."""
+    W = _validate_conditioning(G, conditioning, instrument, treatment, outcome)
+    S = {n for n, d in G.nodes(data=True) if d.get("selection")}
+    return _criterion(G, instrument, treatment, outcome, W | S, _descendants(G, treatment, outcome))
+
+
+def adjustment_sets(
+    G: nx.DiGraph, *, instrument: str, treatment: str, outcome: str, max_size: int | None = None
+) -> list[frozenset[str]]:
+    """Every minimal set of measured covariates W under which the instrument criterion holds.
+
+    Returns ``[frozenset()]`` when no conditioning is needed and ``[]`` when no measured set works (None is
+    never returned). Sets are searched among measured, non-selection ancestors of Z, X, Y and the selection
+    nodes that are not descendants of X or Y, up to ``max_size`` members (all when None); a search of more
+    than 65,536 candidate sets asks for ``max_size``. Sorted by size, then names.
+    """
+    for role, name in (("instrument", instrument), ("treatment", treatment), ("outcome", outcome)):
+        if name not in G:
+            raise NotFoundError(f"{role} {name!r} is not a node of the graph; check the name")
+    if max_size is not None and (not isinstance(max_size, int) or max_size < 0):
+        raise InvalidInputError(f"max_size must be a non-negative integer or None, got {max_size!r}")
+    S = {n for n, d in G.nodes(data=True) if d.get("selection")}
+    banned = _descendants(G, treatment, outcome)
+    relevant = set(S) | {instrument, treatment, outcome}
+    for node in list(relevant):
+        relevant |= nx.ancestors(G, node)
+    candidates = sorted(
+        n
+        for n in relevant
+        if G.nodes[n].get("observed")
+        and n not in S
+        and n not in banned
+        and n not in {instrument, treatment, outcome}
+    )
+    top = len(candidates) if max_size is None else min(max_size, len(candidates))
+    total = sum(math.comb(len(candidates), k) for k in range(top + 1))
+    if total > _MAX_SUBSETS:
+        raise InvalidInputError(
+            f"{len(candidates)} candidate covariates give {total} sets to test; pass max_size (e.g. 4)"
+        )
+    found: list[frozenset[str]] = []
+    for k in range(top + 1):
+        for combo in itertools.combinations(candidates, k):
+            W = frozenset(combo)
+            if any(f <= W for f in found):
+                continue
+            if _criterion(G, instrument, treatment, outcome, W | S, banned):
+                found.append(W)
+    return sorted(found, key=lambda s: (len(s), sorted(s)))
+
+
+# ------------------------------------------------------------------------------------------------ internals
+
+
+def _validate_conditioning(G: nx.DiGraph, conditioning: Iterable[str], z: str, x: str, y: str) -> set[str]:
+    if isinstance(conditioning, str):
+        raise InvalidInputError(f"conditioning must be a set of node names, got the string {conditioning!r}")
+    W = set(conditioning)
+    for name in sorted(W):
+        if name not in G:
+            raise NotFoundError(
+                f"conditioning variable {name!r} is not a node of the graph; add it as a covariate"
+            )
+        if name in (z, x, y):
+            raise InvalidInputError(
+                f"cannot condition on {name!r}: it is the instrument, treatment or outcome"
+            )
+        if not G.nodes[name].get("observed", False):
+            raise InvalidInputError(
+                f"cannot condition on {name!r}: it is unobserved; remove it or mark it measured in covariates"
+            )
+    return W
+
+
+def _descendants(G: nx.DiGraph, x: str, y: str) -> set[str]:
+    return set(nx.descendants(G, x)) | set(nx.descendants(G, y)) | {x, y}
+
+
+def _conditioning_issues(G: nx.DiGraph, W: set[str], S: set[str], x: str, y: str) -> list[str]:
+    dx, dy = set(nx.descendants(G, x)), set(nx.descendants(G, y))
+    issues = []
+    for name in sorted(W | S):
+        kind = "selection on" if name in S else "conditioning on"
+        of = [r for r, d in ((x, dx), (y, dy)) if name in d]
+        if of:
+            issues.append(
+                f"{kind} {name!r}, a descendant of {' and '.join(of)}, is not allowed: it blocks part of the "
+                f"effect or opens a path through {x}; use only pre-treatment variables"
+            )
+    return issues
+
+
+def _criterion(G: nx.DiGraph, z: str, x: str, y: str, C: set[str] | frozenset[str], banned: set[str]) -> bool:
+    if C & banned or z in C:
+        return False
+    if d_separated(G, {z}, {x}, C):
+        return False
+    mutilated = G.copy()
+    mutilated.remove_edges_from(list(G.out_edges(x)))
+    return d_separated(mutilated, {z}, {y}, C)
+
+
+def _bypass_paths(
+    M: nx.DiGraph, z: str, y: str, x: str, C: set[str], S: set[str], states: Mapping[str, str]
+) -> tuple[list[BypassPath], list[BypassPath], bool]:
+    """Open and blocked Z-Y paths avoiding x in the mutilated graph M; blocked ones only if they use a
+    threat edge and are open without the user's conditioning (i.e. conditioning is what closes them)."""
+    skeleton = M.to_undirected(as_view=False)
+    skeleton.remove_node(x)
+    anc_c: dict[str, set[str]] = {}
+    for node in M.nodes:
+        anc_c[node] = ({node} | set(nx.descendants(M, node))) & C
+    opened_list: list[BypassPath] = []
+    blocked_list: list[BypassPath] = []
+    truncated = False
+    for nodes in nx.all_simple_paths(skeleton, z, y):
+        path = _describe(M, nodes, C, S, anc_c, states)
+        if path.is_open:
+            opened_list.append(path)
+            if len(opened_list) >= _MAX_OPEN_PATHS:
+                truncated = True
+                break
+        elif path.threats and _open_given(M, nodes, S):
+            blocked_list.append(path)
+    key = lambda p: (len(p.nodes), p.text)  # noqa: E731
+    return sorted(opened_list, key=key), sorted(blocked_list, key=key), truncated
+
+
+def _open_given(M: nx.DiGraph, nodes: Sequence[str], C: set[str]) -> bool:
+    for i in range(1, len(nodes) - 1):
+        a, k, b = nodes[i - 1], nodes[i], nodes[i + 1]
+        if M.has_edge(a, k) and M.has_edge(b, k):
+            if not (({k} | set(nx.descendants(M, k))) & C):
+                return False
+        elif k in C:
+            return False
+    return True
+
+
+def _describe(
+    M: nx.DiGraph,
+    nodes: Sequence[str],
+    C: set[str],
+    S: set[str],
+    anc_c: Mapping[str, set[str]],
+    states: Mapping[str, str],
+) -> BypassPath:
+    arrows: list[str] = []
+    codes: list[str] = []
+    team = False
+    asserted = True
+    for a, b in itertools.pairwise(nodes):
+        u, v = (a, b) if M.has_edge(a, b) else (b, a)
+        arrows.append("->" if u == a else "<-")
+        data = M.edges[u, v]
+        team = team or data.get("team", False)
+        for code in data.get("threats", []):
+            if code not in codes:
+                codes.append(code)
+        edge_asserted = (
+            data.get("base", False)
+            or data.get("team", False)
+            or any(states.get(c, "open") in ASSERTED_STATES for c in data.get("threats", []))
+        )
+        asserted = asserted and edge_asserted
+    is_open = True
+    opened_by: list[str] = []
+    blocked_by: list[str] = []
+    for i in range(1, len(nodes) - 1):
+        k = nodes[i]
+        collider = arrows[i - 1] == "->" and arrows[i] == "<-"
+        if collider:
+            hit = anc_c[k]
+            if hit:
+                opened_by.extend(sorted(hit))
+            else:
+                is_open = False
+        elif k in C:
+            is_open = False
+            blocked_by.append(k)
+    condition = "exclusion" if all(a == "->" for a in arrows) else "exogeneity"
+    return BypassPath(
+        nodes=tuple(nodes),
+        arrows=tuple(arrows),
+        threats=tuple(codes),
+        team_edges=team,
+        condition=condition,
+        severity="broken" if asserted else "at-risk",
+        is_open=is_open,
+        opened_by=tuple(dict.fromkeys(opened_by)),
+        blocked_by=tuple(blocked_by),
+    )
+
+
+def _link_rule(
+    condition: str, info: Mapping[str, Mapping[str, Any]]
+) -> tuple[list[str], list[str], list[str]]:
+    """Codes for ``condition`` split into fatal, unresolved (open/mitigated/accepted/suggested), rebutted."""
+    fatal, unresolved, rebutted = [], [], []
+    for code, d in info.items():
+        if d["condition"] != condition:
+            continue
+        if d["state"] == "fatal":
+            fatal.append(code)
+        elif d["state"] == "rebutted":
+            rebutted.append(code)
+        else:
+            unresolved.append(code)
+    return fatal, unresolved, rebutted
+
+
+def _relevance_verdict(
+    connected: bool, W: set[str], info: Mapping[str, Mapping[str, Any]]
+) -> ConditionVerdict:
+    fatal, unresolved, _ = _link_rule("relevance", info)
+    given = f" given {{{', '.join(sorted(W))}}}" if W else ""
+    if not connected:
+        return ConditionVerdict(
+            "relevance", "broken", (f"instrument and treatment are d-separated{given}",), ()
+        )
+    if fatal:
+        return ConditionVerdict(
+            "relevance", "broken", (f"relevance link(s) marked fatal: {', '.join(fatal)}",), tuple(fatal)
+        )
+    if unresolved:
+        reason = f"unresolved relevance threat(s) {', '.join(unresolved)}; first-stage strength decides"
+        return ConditionVerdict("relevance", "at-risk", (reason,), tuple(unresolved))
+    reason = f"instrument and treatment are d-connected{given}; strength is judged by `ivdossier estimate`"
+    return ConditionVerdict("relevance", "holds", (reason,), ())
+
+
+def _path_verdict(
+    condition: str,
+    open_paths: Sequence[BypassPath],
+    blocked_paths: Sequence[BypassPath],
+    info: Mapping[str, Mapping[str, Any]],
+    G: nx.DiGraph,
+    issues: Sequence[str],
+    W: set[str],
+) -> ConditionVerdict:
+    fatal, unresolved, rebutted = _link_rule(condition, info)
+    mine = [p for p in open_paths if p.condition == condition]
+    broken_paths = [p for p in mine if p.severity == "broken"]
+    risky_paths = [p for p in mine if p.severity == "at-risk"]
+    graphless = [c for c in unresolved if info[c]["empty"]]
+    reasons: list[str] = list(issues)
+    codes: list[str] = list(fatal)
+    for p in mine:
+        label = f" ({', '.join(p.threats)})" if p.threats else " (team-drawn edge)" if p.team_edges else ""
+        reasons.append(f"open path {p.text}{label}: {p.severity}")
+        codes.extend(c for c in p.threats if c not in codes)
+    if fatal:
+        reasons.append(f"link(s) marked fatal: {', '.join(fatal)}")
+    if graphless:
+        reasons.append(f"unresolved threat(s) the graph cannot draw: {', '.join(graphless)}")
+        codes.extend(c for c in graphless if c not in codes)
+    if broken_paths or fatal or issues:
+        value = "broken"
+    elif risky_paths or graphless:
+        value = "at-risk"
+    else:
+        team_drawn = any(d.get("team") for _, _, d in G.edges(data=True))
+        considered = [c for c, d in info.items() if d["condition"] == condition]
+        if not considered and not team_drawn:
+            return ConditionVerdict(
+                condition, "not-assessed", ("no threat for this condition was considered",), ()
+            )
+        value = "holds"
+        closed = [p for p in blocked_paths if p.condition == condition]
+        given = f"{{{', '.join(sorted(W))}}}" if W else "the empty set"
+        reasons.append(f"no open path from instrument to outcome that avoids the treatment, given {given}")
+        reasons.extend(f"blocked by {', '.join(p.blocked_by)}: {p.text}" for p in closed)
+        if rebutted:
+            reasons.append(f"rebutted and left out: {', '.join(rebutted)}")
+    return ConditionVerdict(condition, value, tuple(reasons), tuple(codes))
+
+
+def _monotonicity_verdict(info: Mapping[str, Mapping[str, Any]]) -> ConditionVerdict:
+    fatal, unresolved, rebutted = _link_rule("monotonicity", info)
+    if fatal:
+        return ConditionVerdict(
+            "monotonicity", "broken", (f"link(s) marked fatal: {', '.join(fatal)}",), tuple(fatal)
+        )
+    if unresolved:
+        reason = f"unresolved monotonicity threat(s): {', '.join(unresolved)}"
+        return ConditionVerdict("monotonicity", "at-risk", (reason,), tuple(unresolved))
+    if rebutted:
+        reason = f"every monotonicity threat considered was rebutted: {', '.join(rebutted)}"
+        return ConditionVerdict("monotonicity", "holds", (reason,), ())
+    return ConditionVerdict(
+        "monotonicity", "not-assessed", ("a graph cannot show defiers; no link considered",), ()
+    )
