@@ -1,0 +1,243 @@
+"""Partial out controls (with an intercept) and absorbed fixed effects (Frisch–Waugh–Lovell).
+
+One fixed effect is removed exactly by (weighted) group demeaning; several by alternating projections until
+the largest change in a sweep, relative to the column's scale, falls below ``tol``. Controls are then removed
+by a least-squares projection computed with a pivoted QR factorisation. The returned columns are multiplied by
+sqrt(w) when the model is weighted, ready for :func:`ivdossier.estimation.covariance.sandwich`.
+
+Degrees of freedom absorbed (stated convention):
+
+* no fixed effect: the intercept counts 1;
+* one fixed effect: its number of levels (the intercept lies in their span and is not counted again);
+* two fixed effects: L1 + L2 minus the number of connected components of the bipartite graph linking their
+  levels (exact rank of the two sets of dummies);
+* three or more: L1 + sum over j >= 2 of (Lj - c_1j), with c_1j the components between fixed effect 1 and j.
+  This is an upper bound on the rank, so the count is conservative (standard errors never too small from it).
+
+Singleton groups are kept (they are fitted exactly and count as levels).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+import scipy.sparse
+from numpy.typing import NDArray
+from scipy.sparse.csgraph import connected_components
+
+from ivdossier.errors import EstimationError
+
+Array = NDArray[np.float64]
+
+DEFAULT_TOL = 1e-10
+DEFAULT_MAX_ITER = 10_000
+COLLINEAR_TOL = 1e-7
+
+
+@dataclass(frozen=True, eq=False)
+class Absorbed:
+    """Residualised (and sqrt(w)-scaled) columns with the degrees of freedom that partialling used.
+
+    ``n_partialled`` = intercept (when no fixed effect) + number of controls + ``n_absorbed``;
+    ``n_absorbed_nested`` counts the absorbed levels of fixed effects nested in a cluster variable;
+    ``scale`` holds each target column's weighted norm after centring, before partialling (0 for a constant
+    column), used to detect columns that partialling wiped out.
+    """
+
+    columns: Array
+    n_partialled: int
+    n_controls: int
+    n_absorbed: int
+    n_absorbed_nested: int
+    fe_levels: tuple[int, ...]
+    iterations: int
+    scale: Array
+    dropped_controls: tuple[int, ...]
+
+
+def count_levels(codes: np.ndarray) -> int:
+    """Number of distinct non-negative codes present."""
+    return int(np.count_nonzero(np.bincount(codes))) if codes.size else 0
+
+
+def bipartite_components(a: np.ndarray, b: np.ndarray) -> int:
+    """Connected components of the graph whose nodes are the levels of a and b and whose edges are rows."""
+    _, ia = np.unique(a, return_inverse=True)
+    _, ib = np.unique(b, return_inverse=True)
+    na, nb = int(ia.max()) + 1, int(ib.max()) + 1
+    graph = scipy.sparse.coo_matrix(
+        (np.ones(ia.size, dtype=np.int8), (ia.ravel(), ib.ravel() + na)), shape=(na + nb, na + nb)
+    ).tocsr()
+    n_comp, _ = connected_components(graph, directed=False)
+    return int(n_comp)
+
+
+def is_nested(inner: np.ndarray, outer: np.ndarray) -> bool:
+    """True when every level of ``inner`` lies within a single level of ``outer``."""
+    pairs = inner.astype(np.int64) * (int(outer.max()) + 1) + outer.astype(np.int64)
+    return int(np.unique(pairs).size) == count_levels(inner)
+
+
+def absorbed_df(fe_codes: Sequence[np.ndarray], cluster_codes: Sequence[np.ndarray] = ()) -> tuple[int, int]:
+    """Degrees of freedom absorbed by the fixed effects and how many of them are nested in a cluster.
+
+    Follows the convention in the module docstring; a fixed effect nested in any cluster variable has all the
+    levels it contributes counted as nested.
+    """
+    if not fe_codes:
+        return 0, 0
+    contrib = [count_levels(fe_codes[0])]
+    for codes in fe_codes[1:]:
+        contrib.append(count_levels(codes) - bipartite_components(fe_codes[0], codes))
+    nested = 0
+    for codes, c in zip(fe_codes, contrib, strict=True):
+        if any(is_nested(codes, cl) for cl in cluster_codes):
+            nested += c
+    return int(sum(contrib)), int(nested)
+
+
+def _group_means(codes: np.ndarray, values: Array, w: Array | None, wsum: Array) -> Array:
+    g = wsum.shape[0]
+    out = np.empty((g, values.shape[1]))
+    for j in range(values.shape[1]):
+        col = values[:, j] if w is None else values[:, j] * w
+        out[:, j] = np.bincount(codes, weights=col, minlength=g)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out /= wsum[:, None]
+    out[~np.isfinite(out)] = 0.0
+    return out
+
+
+def demean(
+    values: Array,
+    fe_codes: Sequence[np.ndarray],
+    weights: Array | None = None,
+    *,
+    tol: float = DEFAULT_TOL,
+    max_iter: int = DEFAULT_MAX_ITER,
+) -> int:
+    """Remove the fixed effects from the columns of ``values`` in place; returns the number of sweeps.
+
+    One fixed effect: one exact (weighted) demeaning. Several: alternating projections until the largest
+    absolute change of a column in a sweep is below ``tol`` times that column's largest absolute value (or tol
+    itself for a zero column); raises EstimationError after ``max_iter`` sweeps.
+    """
+    if not fe_codes:
+        return 0
+    wsums: list[Array] = [
+        np.asarray(np.bincount(c) if weights is None else np.bincount(c, weights=weights), dtype=np.float64)
+        for c in fe_codes
+    ]
+    if len(fe_codes) == 1:
+        values -= _group_means(fe_codes[0], values, weights, wsums[0])[fe_codes[0]]
+        return 1
+    scale = np.maximum(np.abs(values).max(axis=0), 1.0) if values.size else np.ones(values.shape[1])
+    active = np.arange(values.shape[1])
+    for sweep in range(1, max_iter + 1):
+        sub = values[:, active]
+        change = np.zeros(active.size)
+        for codes, wsum in zip(fe_codes, wsums, strict=True):
+            means = _group_means(codes, sub, weights, wsum)
+            sub -= means[codes]
+            change = np.maximum(change, np.abs(means).max(axis=0))
+        values[:, active] = sub
+        done = change <= tol * scale[active]
+        active = active[~done]
+        if active.size == 0:
+            return sweep
+    raise EstimationError(
+        f"Absorbing {len(fe_codes)} fixed effects did not converge within {max_iter} sweeps "
+        f"(tolerance {tol:g}); "
+        "raise max_iter, loosen tol, or absorb fewer fixed effects."
+    )
+
+
+def centred_norms(values: Array, weights: Array | None = None) -> Array:
+    """Weighted norm of each column after subtracting its weighted mean (0 for a constant column)."""
+    out = np.empty(values.shape[1])
+    wsum = float(values.shape[0]) if weights is None else float(weights.sum())
+    for j in range(values.shape[1]):
+        col = values[:, j]
+        if weights is None:
+            centred = col - col.sum() / wsum
+            out[j] = np.sqrt(centred @ centred)
+        else:
+            centred = col - (weights @ col) / wsum
+            out[j] = np.sqrt(centred @ (centred * weights))
+    return out
+
+
+def partial_out(
+    targets: np.ndarray,
+    *,
+    controls: np.ndarray | None = None,
+    fe_codes: Sequence[np.ndarray] = (),
+    weights: np.ndarray | None = None,
+    cluster_codes: Sequence[np.ndarray] = (),
+    tol: float = DEFAULT_TOL,
+    max_iter: int = DEFAULT_MAX_ITER,
+) -> Absorbed:
+    """Residualise ``targets`` (n x p) on an intercept, ``controls`` (n x c) and the fixed effects.
+
+    The intercept is implied: by the fixed effects when present, otherwise added explicitly. Weighted
+    projections use ``weights``; the returned columns are multiplied by sqrt(w). ``dropped_controls`` lists
+    the controls that are constant, absorbed by the fixed effects or collinear with earlier controls; they are
+    left out of the projection and of the degrees of freedom (the caller decides whether that is an error).
+    """
+    tg = np.asarray(targets, dtype=np.float64)
+    if tg.ndim == 1:
+        tg = tg[:, None]
+    n, p = tg.shape
+    cn = np.zeros((n, 0)) if controls is None else np.asarray(controls, dtype=np.float64)
+    if cn.ndim == 1:
+        cn = cn[:, None]
+    k_c = cn.shape[1]
+    both = np.empty((n, p + k_c), dtype=np.float64, order="F")
+    both[:, :p] = tg
+    both[:, p:] = cn
+    w = None if weights is None else np.asarray(weights, dtype=np.float64)
+    pre = centred_norms(both, w)
+    if fe_codes:
+        iterations = demean(both, fe_codes, w, tol=tol, max_iter=max_iter)
+        n_absorbed, n_nested = absorbed_df(fe_codes, cluster_codes)
+        n_intercept = 0
+    else:
+        iterations = 0
+        wsum = float(n) if w is None else float(w.sum())
+        means = (both.sum(axis=0) if w is None else w @ both) / wsum
+        both -= means[None, :]
+        n_absorbed, n_nested = 0, 0
+        n_intercept = 1
+    if w is not None:
+        both *= np.sqrt(w)[:, None]
+    t = both[:, :p]
+    dropped: list[int] = []
+    if k_c:
+        cc = both[:, p:]
+        after_fe = np.sqrt(np.einsum("ij,ij->j", cc, cc))
+        alive = [j for j in range(k_c) if after_fe[j] > COLLINEAR_TOL * pre[p + j] and pre[p + j] > 0]
+        dropped = [j for j in range(k_c) if j not in alive]
+        if alive:
+            sub = cc[:, alive]
+            q, r, piv = scipy.linalg.qr(sub, mode="economic", pivoting=True, check_finite=False)
+            diag = np.abs(np.diag(r))
+            keep = diag > COLLINEAR_TOL * after_fe[np.asarray(alive)[piv]]
+            dropped += [alive[int(piv[i])] for i in range(len(alive)) if not keep[i]]
+            q = q[:, keep]
+            t = t - q @ (q.T @ t)
+    fe_levels = tuple(count_levels(cd) for cd in fe_codes)
+    n_used_controls = k_c - len(dropped)
+    return Absorbed(
+        columns=np.ascontiguousarray(t),
+        n_partialled=n_intercept + n_used_controls + n_absorbed,
+        n_controls=n_used_controls,
+        n_absorbed=n_absorbed,
+        n_absorbed_nested=n_nested,
+        fe_levels=fe_levels,
+        iterations=iterations,
+        scale=pre[:p],
+        dropped_controls=tuple(sorted(dropped)),
+    )

@@ -1,0 +1,323 @@
+"""Load a data table and turn its columns into validated, partialled arrays for estimation.
+
+:func:`prepare` checks the specification against the table (names, types, missing and infinite values,
+weights, clusters, instrument counts), deletes incomplete rows listwise, partials out the controls and fixed
+effects (:mod:`ivdossier.estimation.absorb`) and then checks what is left for constant or collinear columns.
+Every problem raises one :class:`~ivdossier.errors.InvalidInputError` or
+:class:`~ivdossier.errors.EstimationError` that names the column and the fix.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from ivdossier.estimation.absorb import DEFAULT_MAX_ITER, DEFAULT_TOL, partial_out
+from ivdossier.estimation.estimators import collinear_columns
+from numpy.typing import NDArray
+
+from ivdossier.errors import EstimationError, InvalidInputError
+
+Array = NDArray[np.float64]
+READERS = {".csv": "CSV", ".parquet": "Parquet", ".dta": "Stata .dta"}
+
+
+def load_table(path: str | Path) -> pd.DataFrame:
+    """Read a .csv, .parquet or .dta file into a DataFrame; InvalidInputError names the path on failure."""
+    p = Path(path)
+    suffix = p.suffix.lower()
+    if suffix not in READERS:
+        raise InvalidInputError(
+            f"Cannot read {str(p)!r}: unknown file extension {suffix or '(none)'!r}; "
+            f"use one of {', '.join(READERS)}."
+        )
+    if not p.is_file():
+        raise InvalidInputError(f"Cannot read {str(p)!r}: no such file; check the path.")
+    try:
+        if suffix == ".csv":
+            return pd.read_csv(p)
+        if suffix == ".parquet":
+            return pd.read_parquet(p)
+        return pd.read_stata(p)
+    except Exception as exc:  # the readers raise many unrelated types
+        raise InvalidInputError(
+            f"Cannot read {str(p)!r} as {READERS[suffix]}: {exc}; check that the file is a valid "
+            f"{READERS[suffix]} file."
+        ) from exc
+
+
+def file_sha256(path: str | Path) -> str:
+    """Hex SHA-256 of a file's bytes, read in chunks (the data fingerprint stored with a run)."""
+    p = Path(path)
+    if not p.is_file():
+        raise InvalidInputError(f"Cannot fingerprint {str(p)!r}: no such file; check the path.")
+    h = hashlib.sha256()
+    with p.open("rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+@dataclass(frozen=True, eq=False)
+class PreparedData:
+    """Partialled, sqrt(w)-scaled arrays of one model with the names and counts that describe them.
+
+    ``y`` (n,), ``X`` (n x k endogenous or treatment regressors) and ``Z`` (n x L excluded instruments, L may
+    be 0) are residualised on the intercept, the controls and the absorbed fixed effects.
+    """
+
+    y: Array
+    X: Array
+    Z: Array
+    outcome: str
+    treatment: tuple[str, ...]
+    instruments: tuple[str, ...]
+    controls: tuple[str, ...]
+    absorb: tuple[str, ...]
+    cluster: tuple[str, ...]
+    weights: str | None
+    n: int
+    n_dropped: int
+    clusters: tuple[np.ndarray, ...]
+    n_partialled: int
+    n_partialled_nested: int
+    n_absorbed: int
+    fe_levels: tuple[int, ...]
+    absorb_iterations: int
+
+
+def as_names(value: str | Sequence[str] | None, option: str) -> tuple[str, ...]:
+    """Normalise an option that takes one column name or a list of them into a tuple of names."""
+    if value is None:
+        return ()
+    if isinstance(value, str):
+        return (value,)
+    names = tuple(value)
+    for v in names:
+        if not isinstance(v, str):
+            raise InvalidInputError(f"Option {option}= takes column names, got {v!r}; pass strings.")
+    return names
+
+
+def _check_roles(roles: dict[str, tuple[str, ...]]) -> None:
+    seen: dict[str, str] = {}
+    for role, names in roles.items():
+        for name in names:
+            if name in seen:
+                where = "twice in " + role if seen[name] == role else f"as both {seen[name]} and {role}"
+                raise InvalidInputError(f"Column {name!r} is used {where}; give each column one role.")
+            seen[name] = role
+
+
+def _check_present(data: pd.DataFrame, names: Sequence[str]) -> None:
+    columns = [str(c) for c in data.columns]
+    for name in names:
+        if name not in data.columns:
+            close = difflib.get_close_matches(name, columns, n=3, cutoff=0.6)
+            hint = (
+                f"; did you mean {', '.join(repr(c) for c in close)}?" if close else "; check the spelling."
+            )
+            raise InvalidInputError(f"Column {name!r} is not in the data{hint}")
+
+
+def _numeric(data: pd.DataFrame, name: str, role: str) -> Array:
+    col = data[name]
+    if pd.api.types.is_bool_dtype(col):
+        return col.to_numpy(dtype=np.float64, na_value=np.nan)
+    if not pd.api.types.is_numeric_dtype(col):
+        converted = pd.to_numeric(col, errors="coerce")
+        bad = col[converted.isna() & col.notna()]
+        example = bad.iloc[0] if len(bad) else col.dropna().iloc[0] if col.notna().any() else None
+        raise InvalidInputError(
+            f"The {role} column {name!r} must be numeric but holds values such as {example!r}; "
+            "recode it as numbers."
+        )
+    return col.to_numpy(dtype=np.float64, na_value=np.nan)
+
+
+def _codes(values: pd.Series) -> np.ndarray:
+    codes, _ = pd.factorize(values, sort=False)
+    return codes.astype(np.int64)
+
+
+def prepare(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str | Sequence[str],
+    instruments: str | Sequence[str] = (),
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    require_instruments: bool = True,
+    tol: float = DEFAULT_TOL,
+    max_iter: int = DEFAULT_MAX_ITER,
+) -> PreparedData:
+    """Validate the specification against ``data``, drop incomplete rows and partial out controls and effects.
+
+    ``require_instruments`` is False for OLS (no excluded instruments). Rows with a missing value in any used
+    column are dropped and counted; an infinite value is an error naming the column and row label.
+    """
+    if not isinstance(data, pd.DataFrame):
+        raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
+    if not isinstance(outcome, str) or not outcome:
+        raise InvalidInputError("Option outcome= must name one column.")
+    treat = as_names(treatment, "treatment")
+    inst = as_names(instruments, "instruments")
+    ctrl = as_names(controls, "controls")
+    fe = as_names(absorb, "absorb")
+    clus = as_names(cluster, "cluster")
+    wname = weights
+    if not treat:
+        raise InvalidInputError("Option treatment= must name at least one column.")
+    if len(clus) > 2:
+        raise InvalidInputError(
+            f"At most two cluster variables are supported, got {len(clus)}; pass one or two."
+        )
+    roles = {
+        "outcome": (outcome,),
+        "treatment": treat,
+        "instruments": inst,
+        "controls": ctrl,
+        "absorb": fe,
+        "cluster": clus,
+        "weights": (wname,) if wname else (),
+    }
+    # a fixed effect may also define the clusters, that is a common and valid design
+    _check_roles({k: v for k, v in roles.items() if k != "cluster"})
+    _check_present(data, [n for names in roles.values() for n in names])
+    if require_instruments and len(inst) < len(treat):
+        raise EstimationError(
+            f"{len(inst)} excluded instrument(s) for {len(treat)} endogenous regressor(s): the model is not "
+            "identified; add instruments or remove treatments."
+        )
+    numeric_names = [(outcome, "outcome")] + [(t, "treatment") for t in treat]
+    numeric_names += [(z, "instrument") for z in inst] + [(c, "control") for c in ctrl]
+    if wname:
+        numeric_names.append((wname, "weights"))
+    cols = [_numeric(data, name, role) for name, role in numeric_names]
+    n_all = len(data)
+    keep = np.ones(n_all, dtype=bool)
+    for (name, _), col in zip(numeric_names, cols, strict=True):
+        inf = np.isinf(col)
+        if inf.any():
+            row = data.index[int(np.argmax(inf))]
+            raise InvalidInputError(
+                f"Column {name!r} holds an infinite value at row {row!r}; replace it or mark it missing."
+            )
+        keep &= ~np.isnan(col)
+    for name in fe + clus:
+        keep &= data[name].notna().to_numpy()
+    n = int(keep.sum())
+    n_dropped = n_all - n
+    if n == 0:
+        raise InvalidInputError("No row is complete over the used columns; check for missing values.")
+    all_rows = n_dropped == 0
+    cols = [c if all_rows else c[keep] for c in cols]
+    w: Array | None = None
+    if wname:
+        w = cols.pop()
+        bad = w <= 0
+        if bad.any():
+            row = data.index[np.flatnonzero(keep)[int(np.argmax(bad))]]
+            raise InvalidInputError(
+                f"Weights column {wname!r} holds {int(bad.sum())} zero or negative value(s), e.g. at row "
+                f"{row!r}; weights must be positive, drop those rows first."
+            )
+    fe_codes = [_codes(data[name] if all_rows else data[name][keep]) for name in fe]
+    cl_codes = [_codes(data[name] if all_rows else data[name][keep]) for name in clus]
+    for name, codes in zip(clus, cl_codes, strict=True):
+        if int(codes.max()) < 1:
+            raise InvalidInputError(
+                f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
+                "at least two levels or use vcov='robust'."
+            )
+    k, n_inst = len(treat), len(inst)
+    for name, col in zip(inst, cols[1 + k : 1 + k + n_inst], strict=True):
+        if np.ptp(col) == 0:
+            raise EstimationError(f"Instrument {name!r} is constant in the used rows; drop it.")
+    targets = np.column_stack(cols[: 1 + k + n_inst])
+    controls_mat = np.column_stack(cols[1 + k + n_inst :]) if ctrl else None
+    del cols
+    absorbed = partial_out(
+        targets,
+        controls=controls_mat,
+        fe_codes=fe_codes,
+        weights=w,
+        cluster_codes=cl_codes,
+        tol=tol,
+        max_iter=max_iter,
+    )
+    del targets, controls_mat
+    if absorbed.dropped_controls:
+        listed = ", ".join(repr(ctrl[j]) for j in absorbed.dropped_controls)
+        raise EstimationError(
+            f"Control(s) {listed} are constant, absorbed by the fixed effects or collinear with other "
+            "controls; "
+            "drop them."
+        )
+    cols_out = absorbed.columns
+    scale = absorbed.scale
+    y = cols_out[:, 0]
+    x = cols_out[:, 1 : 1 + k]
+    z = cols_out[:, 1 + k :]
+    if np.sqrt(y @ y) <= 1e-9 * max(scale[0], 1e-300):
+        raise EstimationError(
+            f"The outcome {outcome!r} has no variation left after partialling out the controls and fixed "
+            "effects; check the specification."
+        )
+    _name_collinear(x, scale[1 : 1 + k], treat, "treatment", "controls or fixed effects")
+    _name_collinear(z, scale[1 + k :], inst, "instrument", "controls or fixed effects")
+    if n_inst:
+        both = np.column_stack([x, z])
+        bad_inst = [j - k for j in collinear_columns(both, scale=scale[1:]) if j >= k]
+        if bad_inst:
+            listed = ", ".join(repr(inst[j]) for j in bad_inst)
+            raise EstimationError(
+                f"Instrument(s) {listed} are collinear with the other instruments or treatments after "
+                "partialling; drop the redundant instrument."
+            )
+    return PreparedData(
+        y=y,
+        X=x,
+        Z=z,
+        outcome=outcome,
+        treatment=treat,
+        instruments=inst,
+        controls=ctrl,
+        absorb=fe,
+        cluster=clus,
+        weights=wname,
+        n=n,
+        n_dropped=n_dropped,
+        clusters=tuple(cl_codes),
+        n_partialled=absorbed.n_partialled,
+        n_partialled_nested=absorbed.n_absorbed_nested,
+        n_absorbed=absorbed.n_absorbed,
+        fe_levels=absorbed.fe_levels,
+        absorb_iterations=absorbed.iterations,
+    )
+
+
+def _name_collinear(mat: Array, scale: Array, names: Sequence[str], role: str, others: str) -> None:
+    if not names:
+        return
+    norms = np.sqrt(np.einsum("ij,ij->j", mat, mat))
+    for j, name in enumerate(names):
+        if scale[j] == 0:
+            raise EstimationError(f"The {role} {name!r} is constant in the used rows; drop it.")
+        if norms[j] <= 1e-9 * scale[j]:
+            raise EstimationError(
+                f"The {role} {name!r} is collinear with the {others} (nothing is left after partialling them "
+                "out); drop it or the variables that explain it."
+            )
+    bad = collinear_columns(mat, scale=scale)
+    if bad:
+        listed = ", ".join(repr(names[j]) for j in bad)
+        raise EstimationError(f"The {role} columns {listed} are collinear with each other; drop one of them.")

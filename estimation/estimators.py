@@ -1,0 +1,180 @@
+"""k-class estimators (OLS, 2SLS, LIML, Fuller) on partialled arrays.
+
+Inputs are the outcome y (n,), the endogenous regressors X (n x k) and the excluded instruments Z (n x L), all
+already residualised on the controls, the intercept and absorbed fixed effects and scaled by sqrt(w) when
+weighted. By Frisch–Waugh–Lovell the coefficients on X equal those of the full model; the coefficients of the
+partialled controls are not reported.
+
+Conventions (common practice, and those of linearmodels' IV estimators):
+
+* k-class: beta = [X'(I - kappa M_Z)X]^{-1} X'(I - kappa M_Z)y with kappa = 0 (OLS), 1 (2SLS);
+* LIML: kappa is the smallest eigenvalue of (W'M_Z W)^{-1} W'W with W = [y, X] (both partialled);
+* Fuller: kappa = kappa_LIML - alpha / (n - K_total), K_total = L + partialled columns (all instruments,
+  included exogenous ones and absorbed levels), alpha = 1 by default;
+* covariance bread: [X'(I - kappa M_Z)X]^{-1}; robust and cluster scores use the projected regressors
+  P_Z X times the residual for every kappa (as linearmodels does), OLS uses X.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import NDArray
+
+from ivdossier.errors import EstimationError, InvalidInputError
+
+Array = NDArray[np.float64]
+METHODS: tuple[str, ...] = ("ols", "2sls", "liml", "fuller")
+RANK_TOL = 1e-9
+
+
+@dataclass(frozen=True, eq=False)
+class KClassFit:
+    """Coefficients of the endogenous regressors with what the covariance step needs."""
+
+    method: str
+    beta: Array
+    kappa: float
+    kappa_liml: float | None
+    resid: Array
+    score_regressors: Array
+    bread: Array
+
+
+def collinear_columns(
+    mat: np.ndarray, *, scale: np.ndarray | None = None, tol: float = RANK_TOL
+) -> list[int]:
+    """Indices of columns that are (numerically) zero or linear combinations of the other columns.
+
+    A column counts as zero when its norm is below ``tol`` times ``scale`` (its norm before partialling, if
+    given). The pivoted QR then flags columns whose remaining norm is below ``tol`` times their own norm.
+    """
+    a = np.asarray(mat, dtype=np.float64)
+    if a.ndim == 1:
+        a = a[:, None]
+    norms = np.sqrt(np.einsum("ij,ij->j", a, a))
+    ref = norms if scale is None else np.asarray(scale, dtype=np.float64)
+    zero = [j for j in range(a.shape[1]) if norms[j] <= tol * ref[j] or norms[j] == 0.0]
+    alive = [j for j in range(a.shape[1]) if j not in zero]
+    bad = list(zero)
+    if len(alive) > 1:
+        _, r, piv = scipy.linalg.qr(a[:, alive], mode="economic", pivoting=True, check_finite=False)
+        diag = np.abs(np.diag(r))
+        for i in range(len(alive)):
+            j = alive[int(piv[i])]
+            if diag[i] <= tol * norms[j]:
+                bad.append(j)
+    return sorted(bad)
+
+
+def require_full_rank(
+    mat: np.ndarray, names: Sequence[str], role: str, *, scale: np.ndarray | None = None
+) -> None:
+    """Raise EstimationError naming the columns of ``mat`` that are constant or collinear."""
+    bad = collinear_columns(mat, scale=scale)
+    if bad:
+        listed = ", ".join(repr(names[j]) for j in bad)
+        raise EstimationError(
+            f"The {role} {listed} {'is' if len(bad) == 1 else 'are'} constant or collinear after partialling "
+            "out "
+            "the controls and fixed effects; drop or replace it."
+        )
+
+
+def _chol_solve_inv(a: Array, b: Array) -> tuple[Array, Array]:
+    try:
+        c = scipy.linalg.cho_factor(a, lower=True, check_finite=False)
+    except np.linalg.LinAlgError as exc:
+        raise EstimationError(
+            "The k-class cross-product matrix is not positive definite (collinear regressors or kappa too "
+            "large); check the regressors and instruments for redundancy."
+        ) from exc
+    sol = scipy.linalg.cho_solve(c, b, check_finite=False)
+    inv = scipy.linalg.cho_solve(c, np.eye(a.shape[0]), check_finite=False)
+    return np.asarray(sol, dtype=np.float64), np.asarray((inv + inv.T) / 2, dtype=np.float64)
+
+
+def liml_kappa(y: np.ndarray, X: np.ndarray, Z: np.ndarray) -> float:
+    """Smallest eigenvalue of (W'M_Z W)^{-1} W'W with W = [y, X]; equals 1 when exactly identified."""
+    w = np.column_stack([y, X])
+    q, _ = np.linalg.qr(Z)
+    qw = q.T @ w
+    ww = w.T @ w
+    wmw = ww - qw.T @ qw
+    try:
+        vals = scipy.linalg.eigh(ww, wmw, eigvals_only=True, check_finite=False)
+    except np.linalg.LinAlgError as exc:
+        raise EstimationError(
+            "LIML needs W'M_Z W to be positive definite, but the instruments fit [y, X] exactly; "
+            "check for an outcome or treatment that is a combination of the instruments."
+        ) from exc
+    return float(vals.min())
+
+
+def fit_kclass(
+    y: np.ndarray,
+    X: np.ndarray,
+    Z: np.ndarray | None,
+    *,
+    method: str,
+    n_partialled: int = 0,
+    fuller_alpha: float = 1.0,
+    kappa: float | None = None,
+) -> KClassFit:
+    """Fit OLS, 2SLS, LIML or Fuller (or a given ``kappa``) to partialled arrays; see the module docstring."""
+    if method not in METHODS:
+        raise InvalidInputError(f"Unknown method {method!r}; choose one of {', '.join(METHODS)}.")
+    yv = np.asarray(y, dtype=np.float64).ravel()
+    x = np.asarray(X, dtype=np.float64)
+    if x.ndim == 1:
+        x = x[:, None]
+    n, k = x.shape
+    if method == "ols":
+        q, r = np.linalg.qr(x)
+        if np.any(np.abs(np.diag(r)) <= RANK_TOL * np.sqrt(np.einsum("ij,ij->j", x, x))):
+            raise EstimationError("The regressors are collinear; drop the redundant regressor.")
+        beta = scipy.linalg.solve_triangular(r, q.T @ yv, check_finite=False)
+        rinv = scipy.linalg.solve_triangular(r, np.eye(k), check_finite=False)
+        resid = yv - x @ beta
+        return KClassFit("ols", beta, 0.0, None, resid, x, rinv @ rinv.T)
+    if Z is None:
+        raise InvalidInputError(
+            f"Method {method!r} needs excluded instruments; pass instruments or use 'ols'."
+        )
+    z = np.asarray(Z, dtype=np.float64)
+    if z.ndim == 1:
+        z = z[:, None]
+    n_inst = z.shape[1]
+    if n_inst < k:
+        raise EstimationError(
+            f"{n_inst} excluded instrument(s) for {k} endogenous regressor(s): the model is not identified; "
+            "add instruments or remove endogenous regressors."
+        )
+    qz, _ = np.linalg.qr(z)
+    qx = qz.T @ x
+    qy = qz.T @ yv
+    xhat = qz @ qx
+    k_liml: float | None = None
+    if kappa is None:
+        if method == "2sls":
+            kappa = 1.0
+        else:
+            k_liml = liml_kappa(yv, x, z)
+            kappa = k_liml
+            if method == "fuller":
+                kappa = k_liml - fuller_alpha / (n - (n_inst + n_partialled))
+    if kappa == 1.0:
+        qq, rr = np.linalg.qr(qx)
+        beta = scipy.linalg.solve_triangular(rr, qq.T @ qy, check_finite=False)
+        rinv = scipy.linalg.solve_triangular(rr, np.eye(k), check_finite=False)
+        bread = rinv @ rinv.T
+    else:
+        xx = x.T @ x
+        a = (1.0 - kappa) * xx + kappa * (qx.T @ qx)
+        b = (1.0 - kappa) * (x.T @ yv) + kappa * (qx.T @ qy)
+        beta, bread = _chol_solve_inv(a, b)
+    resid = yv - x @ beta
+    return KClassFit(method, np.asarray(beta, dtype=np.float64), float(kappa), k_liml, resid, xhat, bread)

@@ -1,0 +1,212 @@
+"""The result of one estimation: stored values as attributes, a readable summary and a JSON-safe dict."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+Array = NDArray[np.float64]
+DIAGNOSTIC_SECTIONS: tuple[str, ...] = (
+    "first_stage",
+    "strength",
+    "weak_iv_robust",
+    "reduced_form",
+    "overid",
+    "endogeneity",
+)
+METHOD_LABELS = {
+    "ols": "OLS (no instruments)",
+    "2sls": "two-stage least squares",
+    "liml": "LIML",
+    "fuller": "Fuller-modified LIML",
+}
+
+
+def json_value(value: Any) -> Any:
+    """Convert numpy scalars/arrays and non-finite floats to JSON-safe values (+/-inf as "inf"/"-inf")."""
+    if isinstance(value, dict):
+        return {str(k): json_value(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [json_value(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return [json_value(v) for v in value.tolist()]
+    if isinstance(value, np.bool_ | bool):
+        return bool(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, float | np.floating):
+        f = float(value)
+        if math.isnan(f):
+            return None
+        if math.isinf(f):
+            return "inf" if f > 0 else "-inf"
+        return f
+    return value
+
+
+@dataclass(frozen=True)
+class NotApplicable:
+    """A diagnostic section that does not apply to this model, with the reason."""
+
+    reason: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe form: status and reason."""
+        return {"status": "not applicable", "reason": self.reason}
+
+
+@dataclass(frozen=True, eq=False)
+class EstimationResult:
+    """Coefficients, standard errors and intervals of the treatment regressors, with the model description.
+
+    ``cov`` is the covariance of ``coef`` (k x k, in the order of ``names``); ``ci`` holds the (1 - alpha)
+    intervals (k x 2). ``diagnostics`` is the weak-instrument suite (or None when it was not computed) and
+    ``not_applicable`` gives the reason when the diagnostics do not apply (OLS).
+    """
+
+    method: str
+    vcov: str
+    outcome: str
+    names: tuple[str, ...]
+    coef: Array
+    se: Array
+    cov: Array
+    ci: Array
+    alpha: float
+    n: int
+    n_dropped: int
+    n_clusters: tuple[int, ...]
+    df_resid: int
+    ci_reference: str
+    kappa: float
+    kappa_liml: float | None
+    sigma: float
+    n_partialled: int
+    n_absorbed: int
+    n_absorbed_nested: int
+    fe_levels: tuple[int, ...]
+    spec: dict[str, Any] = field(default_factory=dict)
+    conventions: dict[str, str] = field(default_factory=dict)
+    diagnostics: Any = None
+    not_applicable: str | None = None
+
+    def coef_of(self, name: str) -> float:
+        """Coefficient of one named regressor."""
+        return float(self.coef[self.names.index(name)])
+
+    def se_of(self, name: str) -> float:
+        """Standard error of one named regressor."""
+        return float(self.se[self.names.index(name)])
+
+    def _section(self, name: str) -> Any:
+        if self.not_applicable is not None:
+            return NotApplicable(self.not_applicable).to_dict()
+        if self.diagnostics is None:
+            return None
+        part = getattr(self.diagnostics, name, None)
+        if part is None:
+            return None
+        return json_value(part.to_dict() if hasattr(part, "to_dict") else part)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict: coefficients by name, the diagnostics sections, the spec and conventions."""
+        out: dict[str, Any] = {
+            "method": self.method,
+            "vcov": self.vcov,
+            "outcome": self.outcome,
+            "n": self.n,
+            "n_dropped": self.n_dropped,
+            "n_clusters": list(self.n_clusters),
+            "coef": {k: json_value(v) for k, v in zip(self.names, self.coef, strict=True)},
+            "se": {k: json_value(v) for k, v in zip(self.names, self.se, strict=True)},
+            "ci": {k: json_value(list(v)) for k, v in zip(self.names, self.ci, strict=True)},
+            "cov": json_value(self.cov),
+            "alpha": self.alpha,
+            "df_resid": self.df_resid,
+            "ci_reference": self.ci_reference,
+            "kappa": json_value(self.kappa),
+            "kappa_liml": json_value(self.kappa_liml),
+            "sigma": json_value(self.sigma),
+            "partialled": {
+                "columns": self.n_partialled,
+                "absorbed_levels": self.n_absorbed,
+                "absorbed_levels_nested_in_cluster": self.n_absorbed_nested,
+                "fixed_effect_levels": list(self.fe_levels),
+            },
+        }
+        for name in DIAGNOSTIC_SECTIONS:
+            out[name] = self._section(name)
+        out["spec"] = json_value(self.spec)
+        out["conventions"] = dict(self.conventions)
+        return out
+
+    def summary(self) -> str:
+        """A plain-text account of the estimate: what was estimated, on which rows, with which uncertainty."""
+        level = f"{100 * (1 - self.alpha):g}%"
+        lines = [
+            f"Estimate of the effect on {self.outcome!r} by {METHOD_LABELS.get(self.method, self.method)}",
+            "",
+            f"  rows used       {self.n:,}"
+            + (f"  ({self.n_dropped:,} incomplete rows left out)" if self.n_dropped else ""),
+            f"  uncertainty     {self._vcov_text()}",
+        ]
+        if self.method in ("liml", "fuller"):
+            lines.append(f"  kappa           {self.kappa:.6f} (LIML kappa {self.kappa_liml:.6f})")
+        partial = self._partial_text()
+        if partial:
+            lines.append(f"  held fixed      {partial}")
+        lines.append("")
+        width = max(len("regressor"), *(len(n) for n in self.names))
+        lines.append(
+            f"  {'regressor':<{width}}  {'estimate':>12}  {'std. error':>12}  {level + ' interval':>27}"
+        )
+        for name, b, s, (lo, hi) in zip(self.names, self.coef, self.se, self.ci, strict=True):
+            lines.append(f"  {name:<{width}}  {b:>12.6g}  {s:>12.6g}  [{lo:>11.6g}, {hi:>11.6g}]")
+        lines.append(f"  intervals use {self.ci_reference}")
+        lines.append("")
+        if self.not_applicable is not None:
+            lines.append(f"  Instrument diagnostics: not applicable ({self.not_applicable}).")
+        elif self.diagnostics is None:
+            lines.append("  Instrument diagnostics: not computed.")
+        else:
+            lines.append(
+                "  Instrument diagnostics: see the first_stage, strength and weak_iv_robust sections."
+            )
+        lines.append(
+            "  Statistics cannot establish that an instrument is excluded or exogenous; decisions for policy "
+            "or "
+            "clinical practice need domain review."
+        )
+        return "\n".join(lines)
+
+    def _vcov_text(self) -> str:
+        text = {
+            "unadjusted": "homoskedastic (unadjusted)",
+            "robust": "heteroskedasticity-robust",
+            "cluster": "cluster-robust",
+        }.get(self.vcov, self.vcov)
+        if self.n_clusters:
+            text += " on " + " and ".join(
+                f"{c:,} clusters of {n!r}"
+                for c, n in zip(self.n_clusters, self.spec.get("cluster", []), strict=False)
+            )
+        return text
+
+    def _partial_text(self) -> str:
+        parts = []
+        controls = self.spec.get("controls") or []
+        if controls:
+            parts.append(f"{len(controls)} control(s)")
+        absorb = self.spec.get("absorb") or []
+        for name, levels in zip(absorb, self.fe_levels, strict=False):
+            parts.append(f"{name!r} ({levels:,} levels)")
+        if not absorb:
+            parts.insert(0, "intercept")
+        return ", ".join(parts)
+
+    def __str__(self) -> str:
+        return self.summary()
