@@ -1,0 +1,619 @@
+"""Weak-instrument-robust inference on partialled data: Anderson–Rubin test and confidence set, tF interval,
+Moreira's conditional likelihood-ratio test and set, and the reduced form.
+
+Anderson–Rubin (1949), one endogenous regressor. With pi_y, pi_x the reduced-form and first-stage coefficients
+on Z and V their joint covariance from ``sandwich`` (any covariance kind), the Wald form of the AR statistic at
+beta is AR(b) = (pi_y - b pi_x)' W(b)^{-1} (pi_y - b pi_x), W(b) = V_yy - b (V_yx + V_xy) + b^2 V_xx. This is
+exactly the Wald test of all Z coefficients in the regression of y - b x on Z with the same covariance,
+because the sandwich is quadratic in the residuals. The set {b : AR(b) <= k F_{1-alpha}(k, d)} is found
+
+* analytically when k = 1 or the covariance is unadjusted (W(b) is then a scalar quadratic times a fixed
+  matrix, so the inequality is one quadratic inequality: bounded, two rays, whole line or empty);
+* numerically otherwise, on a grid in the angle theta = arctan(b) covering the whole line including
+  b = +/-inf, with every sign change refined by ``scipy.optimize.brentq``.
+
+The F-form statistic AR/k is referred to F(k, d), d = n - k - n_partialled (or G - 1 with clusters).
+
+tF (Lee, McCrary, Moreira and Porter 2022): with one instrument, beta_IV +/- c(F) se, where F is the first-stage
+Wald F under the chosen covariance (pi_x^2 / V_xx) and se the delta-method standard error under the same
+covariance, which equals the usual 2SLS sandwich standard error when k = 1.
+
+CLR (Moreira 2003), one endogenous regressor, computed for the unadjusted (homoskedastic) covariance only. The
+p-value is exact given Q_T through one-dimensional numerical integration over the chi-square(k - 1) part:
+P(LR > m | Q_T = q) = P(chi2_{k-1} > m + q) + int_0^{m+q} f_{k-1}(v) P(chi2_1 > m - v m / (m + q)) dv, which
+follows from LR = (Q_1 + Q_{k-1} - q + sqrt((Q_1 + Q_{k-1} + q)^2 - 4 q Q_{k-1})) / 2 with independent
+Q_1 ~ chi2(1) and Q_{k-1} ~ chi2(k-1) under the null. The set inverts the test on the same angle grid.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from ivdossier.estimation.covariance import CovSpec, sandwich
+from ivdossier.estimation.critical_values import TF_SOURCE, tf_critical_value
+from ivdossier.estimation.strength import as_matrix, denominator_df, f_p_value, json_safe, ols, wald
+from numpy.typing import NDArray
+from scipy import integrate, optimize, special, stats
+
+from ivdossier.errors import InvalidInputError
+
+Array = NDArray[np.float64]
+Interval = tuple[float, float]
+HALF_PI = math.pi / 2
+
+
+def classify_set(intervals: list[Interval]) -> str:
+    """Name the shape of a union of intervals: empty, whole_line, bounded, ray, two_rays or union."""
+    if not intervals:
+        return "empty"
+    if len(intervals) == 1:
+        lo, hi = intervals[0]
+        if math.isinf(lo) and math.isinf(hi):
+            return "whole_line"
+        if math.isinf(lo) or math.isinf(hi):
+            return "ray"
+        return "bounded"
+    if len(intervals) == 2 and math.isinf(intervals[0][0]) and math.isinf(intervals[1][1]):
+        return "two_rays"
+    return "union"
+
+
+def quadratic_set(a2: float, a1: float, a0: float, *, scale: float = 1.0) -> list[Interval]:
+    """Solve a2 b^2 + a1 b + a0 <= 0 over the real line; returns sorted closed intervals with +/-inf ends.
+
+    ``scale`` is the size of the coefficients' terms, used to decide when a2 is numerically zero.
+    """
+    inf = math.inf
+    tiny = 1e-12 * max(scale, abs(a2), abs(a1), abs(a0), 1e-300)
+    if abs(a2) <= tiny:
+        if abs(a1) <= tiny:
+            return [(-inf, inf)] if a0 <= 0 else []
+        root = -a0 / a1
+        return [(-inf, root)] if a1 > 0 else [(root, inf)]
+    disc = a1 * a1 - 4 * a2 * a0
+    if disc < 0:
+        return [] if a2 > 0 else [(-inf, inf)]
+    sq = math.sqrt(disc)
+    # numerically stable roots
+    q = -0.5 * (a1 + math.copysign(sq, a1)) if a1 != 0 else -0.5 * sq
+    r1 = q / a2
+    r2 = a0 / q if q != 0 else -r1
+    lo, hi = min(r1, r2), max(r1, r2)
+    if a2 > 0:
+        return [(lo, hi)]
+    return [(-inf, lo), (hi, inf)]
+
+
+def invert_on_circle(
+    margin: Callable[[float], float], thetas: Array, margins: Array, *, xtol: float = 1e-12
+) -> list[Interval]:
+    """Accepted set {b = tan(theta) : margin(theta) <= 0} from margins on a sorted grid over [-pi/2, pi/2].
+
+    Each change of sign between grid points is refined with brentq; the grid ends represent b = -inf and +inf.
+    """
+    accepted = margins <= 0
+    if accepted.all():
+        return [(-math.inf, math.inf)]
+    bounds: list[float] = []
+    for i in np.flatnonzero(accepted[:-1] != accepted[1:]):
+        a, b = float(thetas[i]), float(thetas[i + 1])
+        bounds.append(float(optimize.brentq(margin, a, b, xtol=xtol)))
+    segments: list[tuple[float, float]] = []
+    start = -HALF_PI if accepted[0] else None
+    for root in bounds:
+        if start is None:
+            start = root
+        else:
+            segments.append((start, root))
+            start = None
+    if start is not None:
+        segments.append((start, HALF_PI))
+
+    def to_b(t: float, end: str) -> float:
+        if t <= -HALF_PI:
+            return -math.inf
+        if t >= HALF_PI:
+            return math.inf
+        return math.tan(t)
+
+    return [(to_b(lo, "lo"), to_b(hi, "hi")) for lo, hi in segments]
+
+
+def angle_grid(center: float, scale: float, *, n_uniform: int = 1201, n_local: int = 401) -> Array:
+    """Sorted angles covering [-pi/2, pi/2] uniformly plus a denser band around b = center (+/- 50 scale)."""
+    uniform = np.linspace(-HALF_PI, HALF_PI, n_uniform)
+    local: Array = (
+        np.arctan(center + scale * np.linspace(-50.0, 50.0, n_local))
+        if math.isfinite(center)
+        else np.empty(0)
+    )
+    return np.unique(np.concatenate([uniform, local]))
+
+
+def _refine_dip(margin: Callable[[float], float], thetas: Array, margins: Array) -> tuple[Array, Array]:
+    """If no grid point is accepted, minimise around the smallest margin so a narrow accepted dip is not missed."""
+    if (margins <= 0).any():
+        return thetas, margins
+    i = int(np.argmin(margins))
+    lo, hi = float(thetas[max(i - 1, 0)]), float(thetas[min(i + 1, len(thetas) - 1)])
+    res = optimize.minimize_scalar(margin, bounds=(lo, hi), method="bounded", options={"xatol": 1e-13})
+    if float(res.fun) <= 0:
+        t = float(res.x)
+        order = np.argsort(np.append(thetas, t))
+        return np.append(thetas, t)[order], np.append(margins, float(res.fun))[order]
+    return thetas, margins
+
+
+@dataclass(frozen=True)
+class ReducedForm:
+    """Reduced-form regression of the outcome on the excluded instruments, with the joint Wald test."""
+
+    coefficients: dict[str, float]
+    std_errors: dict[str, float]
+    wald_f: float
+    df: tuple[int, int]
+    p_value: float
+    cov_kind: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict."""
+        return {
+            "coefficients": json_safe(self.coefficients),
+            "std_errors": json_safe(self.std_errors),
+            "wald_f": json_safe(self.wald_f),
+            "df": list(self.df),
+            "p_value": json_safe(self.p_value),
+            "cov": self.cov_kind,
+        }
+
+
+def reduced_form(
+    y: np.ndarray,
+    z: np.ndarray,
+    *,
+    spec: CovSpec,
+    n_partialled: int,
+    n_partialled_nested: int = 0,
+    instrument_names: list[str],
+) -> ReducedForm:
+    """Coefficients of y on each instrument with SEs under the chosen covariance and the F-form Wald test."""
+    ym, zm = as_matrix(y, "y"), as_matrix(z, "Z")
+    n, k = zm.shape
+    coef, resid = ols(zm, ym)
+    cov = sandwich(zm, resid, spec, n_partialled=n_partialled, n_partialled_nested=n_partialled_nested)
+    f = wald(coef[:, 0], cov) / k
+    d = denominator_df(spec, n, k, n_partialled)
+    return ReducedForm(
+        coefficients={nm: float(coef[i, 0]) for i, nm in enumerate(instrument_names)},
+        std_errors={nm: float(math.sqrt(max(cov[i, i], 0.0))) for i, nm in enumerate(instrument_names)},
+        wald_f=f,
+        df=(k, d),
+        p_value=f_p_value(f, k, d),
+        cov_kind=spec.kind,
+    )
+
+
+@dataclass(frozen=True)
+class _Moments:
+    """Reduced-form and first-stage coefficients on Z with their joint covariance (one endogenous regressor)."""
+
+    pi_y: Array
+    pi_x: Array
+    v_yy: Array
+    v_yx: Array
+    v_xx: Array
+    zz: Array
+    k: int
+    d: int
+
+
+def _moments(
+    y: Array, x: Array, z: Array, spec: CovSpec, n_partialled: int, n_partialled_nested: int
+) -> _Moments:
+    n, k = z.shape
+    coef, resid = ols(z, np.column_stack([y[:, 0], x[:, 0]]))
+    v = sandwich(z, resid, spec, n_partialled=n_partialled, n_partialled_nested=n_partialled_nested)
+    return _Moments(
+        pi_y=coef[:, 0],
+        pi_x=coef[:, 1],
+        v_yy=v[:k, :k],
+        v_yx=v[:k, k:],
+        v_xx=v[k:, k:],
+        zz=z.T @ z,
+        k=k,
+        d=denominator_df(spec, n, k, n_partialled),
+    )
+
+
+def _ar_wald(m: _Moments, b: float) -> float:
+    w = m.v_yy - b * (m.v_yx + m.v_yx.T) + b * b * m.v_xx
+    return wald(m.pi_y - b * m.pi_x, w)
+
+
+@dataclass(frozen=True)
+class AndersonRubin:
+    """Anderson–Rubin test at a stated null and, with one endogenous regressor, the confidence set."""
+
+    null: tuple[float, ...]
+    statistic: float
+    df: tuple[int, int]
+    p_value: float
+    alpha: float
+    intervals: list[Interval] | None
+    shape: str | None
+    method: str | None
+    reason: str | None
+    cov_kind: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict; intervals as [[low, high], ...] with "inf"/"-inf" ends."""
+        return {
+            "null": list(self.null),
+            "statistic": json_safe(self.statistic),
+            "statistic_form": "F (Wald / number of instruments)",
+            "df": list(self.df),
+            "p_value": json_safe(self.p_value),
+            "confidence_level": 1 - self.alpha,
+            "confidence_set": None
+            if self.intervals is None
+            else [json_safe(list(iv)) for iv in self.intervals],
+            "shape": self.shape,
+            "set_method": self.method,
+            "reason": self.reason,
+            "cov": self.cov_kind,
+        }
+
+
+def anderson_rubin(
+    y: np.ndarray,
+    x: np.ndarray,
+    z: np.ndarray,
+    *,
+    spec: CovSpec,
+    n_partialled: int,
+    n_partialled_nested: int = 0,
+    alpha: float = 0.05,
+    null: np.ndarray | None = None,
+) -> AndersonRubin:
+    """AR test at ``null`` (default beta = 0) and, for one endogenous regressor, the (1 - alpha) set."""
+    ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
+    if not 0 < alpha < 1:
+        raise InvalidInputError(f"alpha must lie in (0, 1), got {alpha}; use e.g. 0.05.")
+    n, k = zm.shape
+    p = xm.shape[1]
+    b0 = np.zeros(p) if null is None else np.asarray(null, dtype=np.float64).ravel()
+    if b0.shape != (p,):
+        raise InvalidInputError(
+            f"The AR null must have one value per endogenous regressor ({p}), got {b0.size}."
+        )
+    d = denominator_df(spec, n, k, n_partialled)
+    kw: dict[str, Any] = {"n_partialled": n_partialled, "n_partialled_nested": n_partialled_nested}
+    if p > 1:
+        coef, resid = ols(zm, ym - xm @ b0[:, None])
+        cov = sandwich(zm, resid, spec, **kw)
+        stat = wald(coef[:, 0], cov) / k
+        return AndersonRubin(
+            null=tuple(float(v) for v in b0),
+            statistic=stat,
+            df=(k, d),
+            p_value=f_p_value(stat, k, d),
+            alpha=alpha,
+            intervals=None,
+            shape=None,
+            method=None,
+            reason="joint test only: with several endogenous regressors the confidence set (or its projection) "
+            "is not computed",
+            cov_kind=spec.kind,
+        )
+    m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
+    stat = _ar_wald(m, float(b0[0])) / k
+    crit = k * float(stats.f.ppf(1 - alpha, k, d))
+    intervals, how = ar_confidence_set(m, crit, spec.kind)
+    return AndersonRubin(
+        null=(float(b0[0]),),
+        statistic=stat,
+        df=(k, d),
+        p_value=f_p_value(stat, k, d),
+        alpha=alpha,
+        intervals=intervals,
+        shape=classify_set(intervals),
+        method=how,
+        reason=None,
+        cov_kind=spec.kind,
+    )
+
+
+def ar_confidence_set(m: _Moments, crit: float, kind: str) -> tuple[list[Interval], str]:
+    """Invert AR(b) <= crit (Wald units): analytic quadratic when possible, else angle grid plus brentq."""
+    if m.k == 1 or kind == "unadjusted":
+        q = m.zz
+        s_yy = float(np.trace(m.v_yy @ q)) / m.k
+        s_yx = float(np.trace(m.v_yx @ q)) / m.k
+        s_xx = float(np.trace(m.v_xx @ q)) / m.k
+        n_yy = float(m.pi_y @ q @ m.pi_y)
+        n_yx = float(m.pi_y @ q @ m.pi_x)
+        n_xx = float(m.pi_x @ q @ m.pi_x)
+        a2 = n_xx - crit * s_xx
+        a1 = -2.0 * (n_yx - crit * s_yx)
+        a0 = n_yy - crit * s_yy
+        scale = max(n_xx, crit * s_xx, abs(n_yx), crit * abs(s_yx), n_yy, crit * s_yy)
+        return quadratic_set(a2, a1, a0, scale=scale), "analytic quadratic inversion"
+
+    def margin(theta: float) -> float:
+        c, s = math.cos(theta), math.sin(theta)
+        w = c * c * m.v_yy - s * c * (m.v_yx + m.v_yx.T) + s * s * m.v_xx
+        return wald(c * m.pi_y - s * m.pi_x, w) - crit
+
+    center, scale = _iv_center(m)
+    thetas = angle_grid(center, scale)
+    c, s = np.cos(thetas), np.sin(thetas)
+    g = c[:, None] * m.pi_y[None, :] - s[:, None] * m.pi_x[None, :]
+    w = (
+        (c * c)[:, None, None] * m.v_yy
+        - (s * c)[:, None, None] * (m.v_yx + m.v_yx.T)
+        + (s * s)[:, None, None] * m.v_xx
+    )
+    margins = np.einsum("ij,ij->i", g, np.linalg.solve(w, g[:, :, None])[:, :, 0]) - crit
+    thetas, margins = _refine_dip(margin, thetas, margins)
+    return invert_on_circle(
+        margin, thetas, margins
+    ), "numerical inversion on an angle grid with brentq refinement"
+
+
+def _iv_center(m: _Moments) -> tuple[float, float]:
+    """A 2SLS-type point estimate and a scale to centre the dense part of an angle grid."""
+    q = m.zz
+    denom = float(m.pi_x @ q @ m.pi_x)
+    if denom <= 0:
+        return 0.0, 1.0
+    center = float(m.pi_x @ q @ m.pi_y) / denom
+    var = (
+        float((m.pi_x @ q) @ (m.v_yy - center * (m.v_yx + m.v_yx.T) + center**2 * m.v_xx) @ (q @ m.pi_x))
+        / denom**2
+    )
+    return center, math.sqrt(var) if var > 0 else max(abs(center), 1.0)
+
+
+@dataclass(frozen=True)
+class TFResult:
+    """tF inference (Lee, McCrary, Moreira and Porter 2022) for one instrument and one endogenous regressor."""
+
+    applicable: bool
+    reason: str | None
+    estimate: float | None = None
+    std_error: float | None = None
+    first_stage_f: float | None = None
+    critical_value: float | None = None
+    interval: Interval | None = None
+    significant_5pct: bool | None = None
+    t_ratio: float | None = None
+    cov_kind: str | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict."""
+        return {
+            "applicable": self.applicable,
+            "reason": self.reason,
+            "estimate": json_safe(self.estimate),
+            "std_error": json_safe(self.std_error),
+            "t_ratio": json_safe(self.t_ratio),
+            "first_stage_f": json_safe(self.first_stage_f),
+            "first_stage_f_cov": self.cov_kind,
+            "critical_value": json_safe(self.critical_value),
+            "interval": None if self.interval is None else json_safe(list(self.interval)),
+            "significant_5pct": self.significant_5pct,
+            "level": 0.05,
+            "source": TF_SOURCE,
+        }
+
+
+def tf_inference(
+    y: np.ndarray,
+    x: np.ndarray,
+    z: np.ndarray,
+    *,
+    spec: CovSpec,
+    n_partialled: int,
+    n_partialled_nested: int = 0,
+) -> TFResult:
+    """tF interval beta_IV +/- c(F) se at the 5 % level, with F the first-stage Wald F under the chosen covariance."""
+    ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
+    if xm.shape[1] != 1 or zm.shape[1] != 1:
+        return TFResult(
+            applicable=False,
+            reason="the published tF critical values cover one instrument and one endogenous regressor; "
+            f"this model has {zm.shape[1]} instrument(s) and {xm.shape[1]} endogenous regressor(s)",
+        )
+    m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
+    px, py = float(m.pi_x[0]), float(m.pi_y[0])
+    vxx, vyx, vyy = float(m.v_xx[0, 0]), float(m.v_yx[0, 0]), float(m.v_yy[0, 0])
+    f = px * px / vxx
+    if px == 0:
+        return TFResult(False, "the first-stage coefficient is exactly zero, so the IV estimate is undefined")
+    beta = py / px
+    se = math.sqrt(max(vyy - 2 * beta * vyx + beta * beta * vxx, 0.0)) / abs(px)
+    c = tf_critical_value(f)
+    t = beta / se if se > 0 else math.inf
+    interval = (-math.inf, math.inf) if math.isinf(c) else (beta - c * se, beta + c * se)
+    return TFResult(
+        applicable=True,
+        reason=None,
+        estimate=beta,
+        std_error=se,
+        first_stage_f=f,
+        critical_value=c,
+        interval=interval,
+        significant_5pct=bool(abs(t) > c),
+        t_ratio=t,
+        cov_kind=spec.kind,
+    )
+
+
+def clr_p_value(lr: float, qt: float, k: int) -> float:
+    """P(LR > lr | Q_T = qt) under the null for k instruments (Moreira 2003), by numerical integration."""
+    if lr <= 0:
+        return 1.0
+    if k == 1:
+        return float(special.chdtrc(1, lr))
+    upper = lr + qt
+    tail = float(special.chdtrc(k - 1, upper))
+    if k == 2:  # chi2(1) density has an integrable singularity at 0: substitute v = u^2
+        const = math.sqrt(2 / math.pi)
+
+        def integrand(u: float) -> float:
+            return const * math.exp(-u * u / 2) * math.erfc(math.sqrt(max(lr - u * u * lr / upper, 0.0) / 2))
+
+        val, _ = integrate.quad(integrand, 0.0, math.sqrt(upper), limit=200)
+    else:
+        half = (k - 1) / 2
+        log_norm = -half * math.log(2) - math.lgamma(half)
+
+        def integrand(u: float) -> float:
+            v = u
+            dens = (
+                math.exp(log_norm + (half - 1) * math.log(v) - v / 2) if v > 0 else (0.5 if k == 3 else 0.0)
+            )
+            return dens * math.erfc(math.sqrt(max(lr - v * lr / upper, 0.0) / 2))
+
+        val, _ = integrate.quad(integrand, 0.0, upper, limit=200)
+    return float(min(max(tail + val, 0.0), 1.0))
+
+
+@dataclass(frozen=True)
+class CLRResult:
+    """Moreira's conditional likelihood-ratio test at a null and its confidence set (homoskedastic form)."""
+
+    applicable: bool
+    reason: str | None
+    null: float | None = None
+    statistic: float | None = None
+    qt: float | None = None
+    p_value: float | None = None
+    alpha: float | None = None
+    intervals: list[Interval] | None = None
+    shape: str | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict."""
+        return {
+            "applicable": self.applicable,
+            "reason": self.reason,
+            "null": json_safe(self.null),
+            "statistic": json_safe(self.statistic),
+            "conditioning_qt": json_safe(self.qt),
+            "p_value": json_safe(self.p_value),
+            "p_value_method": "exact conditional distribution given Q_T by numerical integration",
+            "confidence_level": None if self.alpha is None else 1 - self.alpha,
+            "confidence_set": None
+            if self.intervals is None
+            else [json_safe(list(iv)) for iv in self.intervals],
+            "shape": self.shape,
+            "cov": "unadjusted (homoskedastic reduced-form errors, Moreira 2003)",
+            "source": "Moreira (2003), A Conditional Likelihood Ratio Test for Structural Models, Econometrica",
+        }
+
+
+def _clr_stats(m: _Moments, omega: Array, theta: float) -> tuple[float, float]:
+    """(LR, Q_T) at beta = tan(theta); homogeneous in (cos, sin) so theta = +/-pi/2 (beta infinite) works."""
+    c, s = math.cos(theta), math.sin(theta)
+    b0 = np.array([c, -s])
+    a0 = np.array([s, c])
+    root = _sqrt_psd(m.zz)
+    psi = root @ np.column_stack([m.pi_y, m.pi_x])
+    oi_a = np.linalg.solve(omega, a0)
+    s_vec = psi @ b0 / math.sqrt(float(b0 @ omega @ b0))
+    t_vec = psi @ oi_a / math.sqrt(float(a0 @ oi_a))
+    qs, qt, qst = float(s_vec @ s_vec), float(t_vec @ t_vec), float(s_vec @ t_vec)
+    lr = 0.5 * (qs - qt + math.sqrt((qs - qt) ** 2 + 4 * qst * qst))
+    return lr, qt
+
+
+def _sqrt_psd(a: Array) -> Array:
+    vals, vecs = np.linalg.eigh((a + a.T) / 2)
+    return (vecs * np.sqrt(np.clip(vals, 0.0, None))) @ vecs.T
+
+
+def clr_inference(
+    y: np.ndarray,
+    x: np.ndarray,
+    z: np.ndarray,
+    *,
+    spec: CovSpec,
+    n_partialled: int,
+    alpha: float = 0.05,
+    null: float = 0.0,
+    n_grid: int = 241,
+) -> CLRResult:
+    """CLR test at ``null`` and the (1 - alpha) CLR set by grid inversion with brentq refinement.
+
+    Computed for one endogenous regressor under the unadjusted covariance; otherwise not applicable.
+    """
+    ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
+    if xm.shape[1] != 1:
+        return CLRResult(False, "the CLR test here covers one endogenous regressor")
+    if spec.kind != "unadjusted":
+        return CLRResult(
+            False,
+            f"the CLR test is computed for the unadjusted (homoskedastic) covariance only; with the {spec.kind} "
+            "covariance use the Anderson–Rubin set, which is robust to it",
+        )
+    m = _moments(ym, xm, zm, spec, n_partialled, 0)
+    k = m.k
+    q = m.zz
+    omega = (
+        np.array(
+            [
+                [np.trace(m.v_yy @ q), np.trace(m.v_yx @ q)],
+                [np.trace(m.v_yx.T @ q), np.trace(m.v_xx @ q)],
+            ]
+        )
+        / k
+    )
+
+    def p_at(theta: float) -> float:
+        lr, qt = _clr_stats(m, omega, theta)
+        return clr_p_value(lr, qt, k)
+
+    lr0, qt0 = _clr_stats(m, omega, math.atan(null))
+    p0 = clr_p_value(lr0, qt0, k)
+
+    def margin(theta: float) -> float:
+        return alpha - p_at(theta)
+
+    center, scale = _iv_center(m)
+    thetas = angle_grid(center, scale, n_uniform=n_grid, n_local=n_grid)
+    margins = np.array([margin(float(t)) for t in thetas])
+    thetas, margins = _refine_dip(margin, thetas, margins)
+    intervals = invert_on_circle(margin, thetas, margins, xtol=1e-10)
+    return CLRResult(
+        applicable=True,
+        reason=None,
+        null=null,
+        statistic=lr0,
+        qt=qt0,
+        p_value=p0,
+        alpha=alpha,
+        intervals=intervals,
+        shape=classify_set(intervals),
+    )
+
+
+@dataclass(frozen=True)
+class WeakIVRobustSection:
+    """Weak-instrument-robust inference: Anderson–Rubin, tF and CLR."""
+
+    anderson_rubin: AndersonRubin
+    tf: TFResult
+    clr: CLRResult
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict."""
+        return {
+            "anderson_rubin": self.anderson_rubin.to_dict(),
+            "tf": self.tf.to_dict(),
+            "clr": self.clr.to_dict(),
+        }
