@@ -2,7 +2,8 @@
 
 One fixed effect is removed exactly by (weighted) group demeaning; several by alternating projections until
 the largest change in a sweep, relative to the column's scale, falls below ``tol``. Controls are then removed
-by a least-squares projection computed with a pivoted QR factorisation. The returned columns are multiplied by
+by a least-squares projection computed with a QR factorisation (in the given column order, so the
+later of two redundant controls is the one reported). The returned columns are multiplied by
 sqrt(w) when the model is weighted, ready for :func:`ivdossier.estimation.covariance.sandwich`.
 
 Degrees of freedom absorbed (stated convention):
@@ -222,11 +223,11 @@ def partial_out(
         dropped = [j for j in range(k_c) if j not in alive]
         if alive:
             sub = cc[:, alive]
-            q, r, piv = scipy.linalg.qr(sub, mode="economic", pivoting=True, check_finite=False)
-            diag = np.abs(np.diag(r))
-            keep = diag > COLLINEAR_TOL * after_fe[np.asarray(alive)[piv]]
-            dropped += [alive[int(piv[i])] for i in range(len(alive)) if not keep[i]]
-            q = q[:, keep]
+            q, r = np.linalg.qr(sub)
+            keep = np.abs(np.diag(r)) > COLLINEAR_TOL * after_fe[np.asarray(alive)]
+            dropped += [alive[i] for i in range(len(alive)) if not keep[i]]
+            if not keep.all():
+                q, _ = np.linalg.qr(sub[:, keep])
             t = t - q @ (q.T @ t)
     fe_levels = tuple(count_levels(cd) for cd in fe_codes)
     n_used_controls = k_c - len(dropped)

@@ -50,7 +50,8 @@ def collinear_columns(
     """Indices of columns that are (numerically) zero or linear combinations of the other columns.
 
     A column counts as zero when its norm is below ``tol`` times ``scale`` (its norm before partialling, if
-    given). The pivoted QR then flags columns whose remaining norm is below ``tol`` times their own norm.
+    given). A QR factorisation in the given column order then flags each column whose part orthogonal to the
+    columns before it is below ``tol`` times its own norm, so the later of two redundant columns is named.
     """
     a = np.asarray(mat, dtype=np.float64)
     if a.ndim == 1:
@@ -61,12 +62,9 @@ def collinear_columns(
     alive = [j for j in range(a.shape[1]) if j not in zero]
     bad = list(zero)
     if len(alive) > 1:
-        _, r, piv = scipy.linalg.qr(a[:, alive], mode="economic", pivoting=True, check_finite=False)
+        r = np.linalg.qr(a[:, alive], mode="r")
         diag = np.abs(np.diag(r))
-        for i in range(len(alive)):
-            j = alive[int(piv[i])]
-            if diag[i] <= tol * norms[j]:
-                bad.append(j)
+        bad += [j for i, j in enumerate(alive) if diag[i] <= tol * norms[j]]
     return sorted(bad)
 
 
