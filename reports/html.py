@@ -1,0 +1,186 @@
+"""Markdown -> one self-contained HTML file: inline CSS, inline trusted SVG, no scripts, no network fetches.
+
+Raw HTML in the Markdown is disabled, so user text containing markup is shown, never executed. Links are
+validated (only relative, #fragment, http(s) and mailto survive). Figures and verdict badges are inserted by the
+renderer from markers that only generated Markdown can contain (a fence with a reserved info string and a code
+span with a reserved prefix; user text has its backticks escaped), and the SVG comes from the `svgs` mapping,
+never from the Markdown itself. A Content-Security-Policy meta tag forbids scripts and remote loads as a second
+line of defence.
+"""
+
+from __future__ import annotations
+
+import html
+import re
+from collections.abc import Mapping, Sequence
+from functools import lru_cache
+from pathlib import Path
+from typing import Any
+
+from ivdossier.reports.mdtext import BADGE_PREFIX, FIGURE_INFO
+from markdown_it import MarkdownIt
+from markdown_it.token import Token
+
+from ivdossier.errors import InvalidInputError
+
+CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:; base-uri 'none'; form-action 'none'"
+_SAFE_SCHEMES = ("http:", "https:", "mailto:")
+_SCHEME = re.compile(r"^([a-z][a-z0-9+.\-]*):")
+_SVG_FORBIDDEN = re.compile(
+    r"<\s*(script|foreignObject|iframe|object|embed|use\b[^>]*href\s*=\s*[\"'](?!#))"
+    r"|\son[a-z]+\s*="
+    r"|javascript:"
+    r"|(?:xlink:)?href\s*=\s*[\"'](?!#)"
+    r"|url\(\s*[\"']?(?!#)"
+    r"|@import",
+    re.IGNORECASE,
+)
+_SVG_PROLOGUE = re.compile(r"<\?xml[^>]*\?>|<!DOCTYPE[^>]*>|<!--.*?-->", re.DOTALL | re.IGNORECASE)
+
+
+def validate_link(url: str) -> bool:
+    """Allow relative links, #fragments, http(s) and mailto; refuse javascript:, data:, file: and the rest."""
+    compact = re.sub(r"[\x00-\x20\x7f]", "", url).lower()
+    match = _SCHEME.match(compact)
+    return match is None or f"{match.group(1)}:" in _SAFE_SCHEMES
+
+
+def clean_svg(svg: str, *, key: str) -> str:
+    """Strip the XML prologue and refuse SVG that could run code or fetch anything."""
+    body = _SVG_PROLOGUE.sub("", svg).strip()
+    if not body.lower().startswith("<svg"):
+        raise InvalidInputError(f"figure {key!r} is not an SVG document; pass the <svg>...</svg> text.")
+    bad = _SVG_FORBIDDEN.search(body)
+    if bad is not None:
+        raise InvalidInputError(
+            f"figure {key!r} contains {bad.group(0)!r}; only self-contained SVG without scripts, event handlers "
+            "or external references can be inlined."
+        )
+    return body
+
+
+@lru_cache(maxsize=1)
+def stylesheet() -> str:
+    """The document stylesheet (reports/dossier.css)."""
+    return (Path(__file__).with_name("dossier.css")).read_text(encoding="utf-8")
+
+
+def _slug(text: str, seen: dict[str, int]) -> str:
+    base = re.sub(r"[^a-z0-9]+", "-", text.lower()).strip("-") or "section"
+    count = seen.get(base, 0)
+    seen[base] = count + 1
+    return base if count == 0 else f"{base}-{count + 1}"
+
+
+def _markdown_it() -> MarkdownIt:
+    md = MarkdownIt("commonmark", {"html": False, "linkify": False, "typographer": False}).enable("table")
+    md.validateLink = validate_link  # type: ignore[method-assign]
+    return md
+
+
+def render_html(
+    markdown: str,
+    *,
+    title: str,
+    svgs: Mapping[str, str] | None = None,
+    badges: Mapping[str, str] | None = None,
+    lang: str = "en",
+    toc: bool = True,
+) -> str:
+    """Render Markdown to one self-contained HTML page.
+
+    `svgs` maps figure keys (from ``mdtext.figure``) to trusted generated SVG; `badges` maps verdict statuses
+    to badge SVG (default: ``plots.verdict_badge_svg``). A figure marker without an SVG raises
+    InvalidInputError, so a missing plot is noticed rather than silently dropped.
+    """
+    figures = {key: clean_svg(svg, key=key) for key, svg in (svgs or {}).items()}
+    if badges is None:
+        from ivdossier.reports.plots import verdict_badge_svg
+
+        badge_svgs = {
+            status: verdict_badge_svg(status) for status in ("holds", "at risk", "broken", "not assessed")
+        }
+    else:
+        badge_svgs = dict(badges)
+    md = _markdown_it()
+    env: dict[str, Any] = {}
+    tokens = md.parse(markdown, env)
+    sections = _assign_ids(tokens)
+
+    def fence(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        tok = toks[idx]
+        if tok.info.strip() == FIGURE_INFO:
+            key = tok.content.strip()
+            if key not in figures:
+                raise InvalidInputError(
+                    f"the document refers to figure {key!r}, but no SVG was given for it."
+                )
+            return f'<figure class="figure" id="figure-{html.escape(key)}">{figures[key]}</figure>\n'
+        return f"<pre><code>{html.escape(tok.content)}</code></pre>\n"
+
+    def code_inline(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        content = toks[idx].content
+        if content.startswith(BADGE_PREFIX):
+            status = content[len(BADGE_PREFIX) :].replace("-", " ")
+            if status in badge_svgs:
+                css = status.replace(" ", "-")
+                return (
+                    f'<span class="badge badge-{css}">'
+                    f'<span class="badge-shape" aria-hidden="true">{badge_svgs[status]}</span>'
+                    f'<span class="badge-word">{html.escape(status)}</span></span>'
+                )
+        return f"<code>{html.escape(content)}</code>"
+
+    def table_open(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        return '<div class="table-wrap"><table>\n'
+
+    def table_close(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        return "</table></div>\n"
+
+    md.add_render_rule("fence", fence)
+    md.add_render_rule("code_inline", code_inline)
+    md.add_render_rule("table_open", table_open)
+    md.add_render_rule("table_close", table_close)
+    body = md.renderer.render(tokens, md.options, env)
+    nav = ""
+    if toc and len(sections) > 1:
+        items = "".join(f'<li><a href="#{ident}">{html.escape(text)}</a></li>' for ident, text in sections)
+        nav = f'<nav class="toc" aria-label="Contents"><p class="toc-title">Contents</p><ol>{items}</ol></nav>\n'
+    body = _insert_after_first_h1(body, nav)
+    return (
+        "<!DOCTYPE html>\n"
+        f'<html lang="{html.escape(lang)}">\n<head>\n<meta charset="utf-8">\n'
+        f'<meta http-equiv="Content-Security-Policy" content="{CSP}">\n'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+        '<meta name="referrer" content="no-referrer">\n'
+        f"<title>{html.escape(title)}</title>\n<style>\n{stylesheet()}</style>\n</head>\n"
+        f'<body>\n<main class="sheet">\n{body}</main>\n</body>\n</html>\n'
+    )
+
+
+def _assign_ids(tokens: list[Token]) -> list[tuple[str, str]]:
+    """Give h2/h3 headings stable ids; return the (id, text) of h2 sections for the contents list."""
+    seen: dict[str, int] = {}
+    sections = []
+    for i, tok in enumerate(tokens):
+        if tok.type == "heading_open" and tok.tag in ("h2", "h3") and i + 1 < len(tokens):
+            inline = tokens[i + 1]
+            text = "".join(
+                child.content for child in inline.children or [] if child.type in ("text", "code_inline")
+            )
+            ident = _slug(text, seen)
+            tok.attrSet("id", ident)
+            if tok.tag == "h2":
+                sections.append((ident, text))
+    return sections
+
+
+def _insert_after_first_h1(body: str, nav: str) -> str:
+    if not nav:
+        return body
+    end = body.find("</h1>")
+    if end < 0:
+        return nav + body
+    cut = body.find("<h2", end)
+    cut = cut if cut >= 0 else end + len("</h1>\n")
+    return body[:cut] + nav + body[cut:]

@@ -1,0 +1,264 @@
+"""Plain, frozen input records for the reports layer; the integrator maps registry rows into these.
+
+Nothing here reads a database or a clock: every timestamp and version is passed in, so the same inputs always
+produce the same document.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Any
+
+from ivdossier.errors import InvalidInputError
+
+CONDITIONS: tuple[str, ...] = ("relevance", "exclusion", "exogeneity", "monotonicity")
+"""The four identifying conditions, in the order every document presents them."""
+
+LINK_STATES: tuple[str, ...] = ("open", "rebutted", "mitigated", "accepted", "fatal")
+"""States a threat linked to an instrument can be in."""
+
+
+def _check_condition(value: str, where: str) -> None:
+    if value not in CONDITIONS:
+        raise InvalidInputError(f"{where} has condition {value!r}; use one of {', '.join(CONDITIONS)}.")
+
+
+def _as_tuple(value: Sequence[Any] | None) -> tuple[Any, ...]:
+    return tuple(value) if value is not None else ()
+
+
+@dataclass(frozen=True)
+class ProgramInfo:
+    """A research question: treatment, outcome, unit and population."""
+
+    slug: str
+    title: str
+    question: str = ""
+    treatment: str = ""
+    outcome: str = ""
+    unit: str = ""
+    population: str = ""
+
+
+@dataclass(frozen=True)
+class InstrumentInfo:
+    """A candidate instrument with its data columns, lifecycle state and the team's claims per condition."""
+
+    slug: str
+    name: str
+    family: str = ""
+    columns: tuple[str, ...] = ()
+    state: str = ""
+    claims: Mapping[str, str] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "columns", _as_tuple(self.columns))
+        for condition in self.claims:
+            _check_condition(condition, f"claim of instrument {self.slug!r}")
+
+
+@dataclass(frozen=True)
+class Rating:
+    """One reviewer's judgement of a linked threat: likelihood and severity on a 1-5 scale."""
+
+    reviewer: str
+    likelihood: int
+    severity: int
+    comment: str = ""
+
+    def __post_init__(self) -> None:
+        for name in ("likelihood", "severity"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= 5:
+                raise InvalidInputError(
+                    f"rating by {self.reviewer!r} has {name}={value!r}; give a whole number from 1 to 5."
+                )
+
+
+@dataclass(frozen=True)
+class CheckInfo:
+    """A check that speaks to a threat (a test, a placebo, a balance table) and what it found."""
+
+    name: str
+    finding: str = ""
+
+
+@dataclass(frozen=True)
+class LinkInfo:
+    """A catalogue threat attached to this instrument, with its state, the team's argument and evidence."""
+
+    threat_code: str
+    title: str
+    condition: str
+    state: str
+    argument: str = ""
+    evidence: str = ""
+    ratings: tuple[Rating, ...] = ()
+    checks: tuple[CheckInfo, ...] = ()
+
+    def __post_init__(self) -> None:
+        _check_condition(self.condition, f"threat link {self.threat_code!r}")
+        if self.state not in LINK_STATES:
+            raise InvalidInputError(
+                f"threat link {self.threat_code!r} has state {self.state!r}; use one of {', '.join(LINK_STATES)}."
+            )
+        ratings = tuple(r if isinstance(r, Rating) else Rating(*r) for r in _as_tuple(self.ratings))
+        checks = tuple(c if isinstance(c, CheckInfo) else CheckInfo(*c) for c in _as_tuple(self.checks))
+        object.__setattr__(self, "ratings", ratings)
+        object.__setattr__(self, "checks", checks)
+
+    @property
+    def mean_severity(self) -> float | None:
+        """Team mean of the rated severity, or None when nobody has rated the link."""
+        if not self.ratings:
+            return None
+        return sum(r.severity for r in self.ratings) / len(self.ratings)
+
+    @property
+    def mean_likelihood(self) -> float | None:
+        """Team mean of the rated likelihood, or None when nobody has rated the link."""
+        if not self.ratings:
+            return None
+        return sum(r.likelihood for r in self.ratings) / len(self.ratings)
+
+
+@dataclass(frozen=True)
+class FirstStageBins:
+    """Binned means of the first stage (instrument on x, treatment on y) after partialling out controls."""
+
+    x_bins: tuple[float, ...]
+    y_bins: tuple[float, ...]
+    x_label: str = "instrument"
+    y_label: str = "treatment"
+
+    def __post_init__(self) -> None:
+        xs = tuple(float(v) for v in self.x_bins)
+        ys = tuple(float(v) for v in self.y_bins)
+        if len(xs) != len(ys) or len(xs) < 2:
+            raise InvalidInputError(
+                f"first-stage bins need equally long x_bins and y_bins with at least 2 points; "
+                f"got {len(xs)} and {len(ys)}."
+            )
+        if not all(math.isfinite(v) for v in xs + ys):
+            raise InvalidInputError("first-stage bins contain a non-finite value; drop or fix that bin.")
+        object.__setattr__(self, "x_bins", xs)
+        object.__setattr__(self, "y_bins", ys)
+
+
+@dataclass(frozen=True)
+class ArCurve:
+    """Anderson-Rubin statistic evaluated over a grid of hypothesised effects, with its critical value."""
+
+    betas: tuple[float, ...]
+    stats: tuple[float, ...]
+    critical_value: float
+
+    def __post_init__(self) -> None:
+        betas = tuple(float(v) for v in self.betas)
+        stats = tuple(float(v) for v in self.stats)
+        if len(betas) != len(stats) or len(betas) < 2:
+            raise InvalidInputError(
+                f"the AR curve needs equally long betas and stats with at least 2 points; "
+                f"got {len(betas)} and {len(stats)}."
+            )
+        if not math.isfinite(float(self.critical_value)):
+            raise InvalidInputError("the AR curve's critical_value must be a finite number.")
+        object.__setattr__(self, "betas", betas)
+        object.__setattr__(self, "stats", stats)
+        object.__setattr__(self, "critical_value", float(self.critical_value))
+
+
+@dataclass(frozen=True)
+class RunInfo:
+    """One estimation run: exact spec, data fingerprint, the estimation result's to_dict(), versions, timing."""
+
+    slug: str
+    created_at: datetime | str
+    method: str
+    vcov: str = ""
+    spec: Mapping[str, Any] = field(default_factory=dict)
+    dataset_path: str = ""
+    dataset_sha256: str = ""
+    results: Mapping[str, Any] = field(default_factory=dict)
+    package_versions: Mapping[str, str] = field(default_factory=dict)
+    seconds: float | None = None
+    first_stage_bins: FirstStageBins | None = None
+    ar_curve: ArCurve | None = None
+
+    @property
+    def created_text(self) -> str:
+        """The creation time as ISO text (seconds precision, as given)."""
+        if isinstance(self.created_at, datetime):
+            return self.created_at.isoformat(timespec="seconds")
+        return str(self.created_at)
+
+
+@dataclass(frozen=True)
+class GraphInfo:
+    """The causal-graph checker's verdict (its to_dict()) and the generated SVG of the diagram."""
+
+    verdict: Mapping[str, Any] = field(default_factory=dict)
+    svg: str = ""
+
+
+@dataclass(frozen=True)
+class AuditEvent:
+    """One entry of the audit trail: who did what to which entity."""
+
+    when: datetime | str
+    actor: str
+    action: str
+    entity: str = ""
+    summary: str = ""
+
+    @property
+    def when_text(self) -> str:
+        if isinstance(self.when, datetime):
+            return self.when.isoformat(timespec="seconds")
+        return str(self.when)
+
+
+@dataclass(frozen=True)
+class CatalogEntry:
+    """A threat as the catalogue describes it, for the site's catalogue page."""
+
+    code: str
+    title: str
+    condition: str
+    families: tuple[str, ...] = ()
+    testability: str = ""
+    description: str = ""
+    checks: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        _check_condition(self.condition, f"catalogue entry {self.code!r}")
+        object.__setattr__(self, "families", _as_tuple(self.families))
+        object.__setattr__(self, "checks", _as_tuple(self.checks))
+
+
+@dataclass(frozen=True)
+class DossierInput:
+    """Everything one dossier shows; `generated_at` and `tool_version` are passed in, never read from the clock."""
+
+    program: ProgramInfo
+    instrument: InstrumentInfo
+    generated_at: datetime | str
+    tool_version: str
+    links: tuple[LinkInfo, ...] = ()
+    runs: tuple[RunInfo, ...] = ()
+    graph: GraphInfo | None = None
+    audit: tuple[AuditEvent, ...] = ()
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "links", _as_tuple(self.links))
+        object.__setattr__(self, "runs", _as_tuple(self.runs))
+        object.__setattr__(self, "audit", _as_tuple(self.audit))
+
+    @property
+    def generated_text(self) -> str:
+        if isinstance(self.generated_at, datetime):
+            return self.generated_at.isoformat(timespec="seconds")
+        return str(self.generated_at)

@@ -1,0 +1,198 @@
+"""SVG figures for documents: first-stage binned scatter, Anderson-Rubin curve, and verdict badges.
+
+matplotlib is imported lazily and used through its object API (no pyplot, no global backend switch). Output is
+deterministic: a fixed `svg.hashsalt` per figure key, no date in the metadata, and text drawn as paths, so the
+SVG carries no user text as markup.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from collections.abc import Sequence
+from typing import Any
+
+from ivdossier.reports.inputs import ArCurve, FirstStageBins
+from ivdossier.reports.mdtext import clean
+
+from ivdossier.errors import InvalidInputError
+
+INK = "#22262b"
+MUTED = "#6b737c"
+ACCENT = "#2c5e6e"
+ALERT = "#9b3b2c"
+SHADE = "#d6e6e8"
+GRID = "#e6e2d8"
+
+_RC: dict[str, Any] = {
+    "svg.fonttype": "path",
+    "font.family": "DejaVu Sans",
+    "font.size": 9,
+    "axes.edgecolor": MUTED,
+    "axes.labelcolor": INK,
+    "axes.linewidth": 0.8,
+    "xtick.color": MUTED,
+    "ytick.color": MUTED,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "figure.facecolor": "white",
+    "axes.facecolor": "white",
+    "legend.frameon": False,
+    "path.simplify": False,
+}
+
+
+def _label(text: str) -> str:
+    """User text as a plain matplotlib label: no mathtext, no control characters."""
+    return clean(text).replace("$", r"\$")[:80]
+
+
+def _render(key: str, draw: Any, size: tuple[float, float] = (6.4, 3.3)) -> str:
+    import matplotlib
+    from matplotlib.backends.backend_svg import FigureCanvasSVG
+    from matplotlib.figure import Figure
+
+    settings: Any = {**_RC, "svg.hashsalt": f"ivdossier-{key}"}
+    with matplotlib.rc_context(settings):
+        fig = Figure(figsize=size)
+        FigureCanvasSVG(fig)
+        ax = fig.add_subplot(1, 1, 1)
+        draw(ax)
+        fig.tight_layout(pad=0.6)
+        buf = io.StringIO()
+        fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
+    return buf.getvalue()
+
+
+def first_stage_svg(bins: FirstStageBins, *, key: str = "first-stage") -> str:
+    """Binned means of treatment against instrument, with the least-squares line through the bin means."""
+    import numpy as np
+
+    x = np.asarray(bins.x_bins)
+    y = np.asarray(bins.y_bins)
+    if np.ptp(x) == 0:
+        raise InvalidInputError("first-stage x_bins are all equal; bin the instrument over its range.")
+    slope, intercept = np.polyfit(x, y, 1)
+
+    def draw(ax: Any) -> None:
+        grid = np.linspace(x.min(), x.max(), 50)
+        ax.grid(True, color=GRID, linewidth=0.6)
+        ax.set_axisbelow(True)
+        ax.plot(
+            grid,
+            intercept + slope * grid,
+            color=ACCENT,
+            linewidth=1.6,
+            label=f"fitted line (slope {slope:.3g})",
+        )
+        ax.scatter(x, y, s=30, color="white", edgecolor=INK, linewidth=1.2, zorder=3, label="bin means")
+        ax.set_xlabel(_label(bins.x_label))
+        ax.set_ylabel(_label(bins.y_label))
+        ax.legend(loc="best", fontsize=8)
+
+    return _render(key, draw)
+
+
+def ar_intervals_from_curve(curve: ArCurve) -> list[tuple[float, float]]:
+    """Stretches of the grid where the AR statistic is at or below the critical value (grid resolution)."""
+    out: list[tuple[float, float]] = []
+    start: float | None = None
+    prev: float | None = None
+    for beta, stat in zip(curve.betas, curve.stats, strict=True):
+        inside = stat <= curve.critical_value
+        if inside and start is None:
+            start = beta
+        if not inside and start is not None and prev is not None:
+            out.append((start, prev))
+            start = None
+        prev = beta
+    if start is not None and prev is not None:
+        out.append((start, prev))
+    return out
+
+
+def ar_curve_svg(
+    curve: ArCurve, *, ar_set: Sequence[tuple[float, float]] | None = None, key: str = "ar-curve"
+) -> str:
+    """AR statistic against the hypothesised effect, the critical value (dashed) and the confidence set (shaded).
+
+    `ar_set` is the set the estimation reported; without it the set is read off the grid.
+    """
+    import numpy as np
+
+    betas = np.asarray(curve.betas)
+    stats = np.asarray(curve.stats)
+    pieces = list(ar_set) if ar_set is not None else ar_intervals_from_curve(curve)
+    lo_grid, hi_grid = float(betas.min()), float(betas.max())
+    finite = stats[np.isfinite(stats)]
+    top = max(
+        curve.critical_value * 3.0, min(float(finite.max()) if finite.size else 1.0, curve.critical_value * 6)
+    )
+
+    def draw(ax: Any) -> None:
+        ax.grid(True, axis="y", color=GRID, linewidth=0.6)
+        ax.set_axisbelow(True)
+        first = True
+        for low, high in pieces:
+            a = max(low, lo_grid) if math.isfinite(low) else lo_grid
+            b = min(high, hi_grid) if math.isfinite(high) else hi_grid
+            if a <= b:
+                ax.axvspan(a, b, color=SHADE, linewidth=0, label="confidence set" if first else None)
+                for edge, raw in ((a, low), (b, high)):
+                    if math.isfinite(raw) and lo_grid <= raw <= hi_grid:
+                        ax.axvline(edge, color=ACCENT, linewidth=0.8, linestyle=":")
+                first = False
+        ax.plot(
+            betas, np.minimum(stats, top * 1.05), color=INK, linewidth=1.5, label="Anderson–Rubin statistic"
+        )
+        ax.axhline(
+            curve.critical_value,
+            color=ALERT,
+            linewidth=1.2,
+            linestyle=(0, (5, 3)),
+            label=f"critical value {curve.critical_value:.3g}",
+        )
+        ax.set_ylim(0, top)
+        ax.set_xlim(lo_grid, hi_grid)
+        ax.set_xlabel("hypothesised effect")
+        ax.set_ylabel("AR statistic")
+        ax.legend(loc="upper center", fontsize=8, ncols=3, bbox_to_anchor=(0.5, 1.13))
+
+    return _render(key, draw)
+
+
+_BADGE_SHAPES = {
+    # filled circle with a tick
+    "holds": '<circle cx="8" cy="8" r="7" fill="currentColor"/>'
+    '<path d="M4.6 8.3l2.3 2.3 4.6-5" fill="none" stroke="#fff" stroke-width="1.8" stroke-linecap="round" '
+    'stroke-linejoin="round"/>',
+    # triangle with an exclamation mark
+    "at risk": '<path d="M8 1.2L15.2 14.3H0.8Z" fill="currentColor"/>'
+    '<path d="M8 5.6v4.2" stroke="#fff" stroke-width="1.8" stroke-linecap="round"/>'
+    '<circle cx="8" cy="12.1" r="1" fill="#fff"/>',
+    # square with a cross
+    "broken": '<rect x="1.2" y="1.2" width="13.6" height="13.6" rx="1.5" fill="currentColor"/>'
+    '<path d="M5 5l6 6M11 5l-6 6" stroke="#fff" stroke-width="1.8" stroke-linecap="round"/>',
+    # dashed empty circle with a bar
+    "not assessed": '<circle cx="8" cy="8" r="6.3" fill="none" stroke="currentColor" stroke-width="1.5" '
+    'stroke-dasharray="2.6 1.9"/><path d="M5.5 8h5" stroke="currentColor" stroke-width="1.6" '
+    'stroke-linecap="round"/>',
+}
+
+
+def verdict_badge_svg(status: str) -> str:
+    """A 16-unit inline SVG whose shape alone tells the verdict apart (circle, triangle, square, dashed ring)."""
+    if status not in _BADGE_SHAPES:
+        raise InvalidInputError(f"unknown verdict {status!r}; use one of {', '.join(_BADGE_SHAPES)}.")
+    return (
+        '<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 16 16" width="14" height="14" '
+        f'focusable="false">{_BADGE_SHAPES[status]}</svg>'
+    )
+
+
+def badge_legend_markdown() -> str:
+    """One Markdown line explaining the badge shapes in words (the shapes are rendered by the HTML layer)."""
+    return (
+        "Verdict shapes: filled circle with a tick = holds; triangle with an exclamation mark = at risk; "
+        "square with a cross = broken; dashed ring = not assessed."
+    )
