@@ -1,0 +1,74 @@
+"""State and options shared by every command: which registry, who is acting, how to report errors."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import Annotated, Any
+
+import typer
+
+JsonFlag = Annotated[bool, typer.Option("--json", help="Print machine-readable JSON instead of a table.")]
+IfVersion = Annotated[
+    int | None,
+    typer.Option(
+        "--if-version", help="Refuse the edit unless the entity is still at this version (optimistic lock)."
+    ),
+]
+
+
+@dataclass
+class Settings:
+    db: str | None = None
+    actor: str | None = None
+    debug: bool = False
+
+
+settings = Settings()
+
+
+def actor() -> str:
+    from ivdossier.registry.records import resolve_actor
+
+    return resolve_actor(settings.actor)
+
+
+@contextmanager
+def writing() -> Iterator[Any]:
+    """A write transaction on the chosen registry; nothing is kept if the command fails."""
+    from ivdossier.registry.db import open_registry
+
+    reg = open_registry(settings.db)
+    try:
+        with reg.writing() as session:
+            yield session
+    finally:
+        reg.dispose()
+
+
+@contextmanager
+def reading() -> Iterator[Any]:
+    from ivdossier.registry.db import open_registry
+
+    reg = open_registry(settings.db)
+    try:
+        with reg.reading() as session:
+            yield session
+    finally:
+        reg.dispose()
+
+
+def read_text_option(value: str | None) -> str | None:
+    """Options that take long text accept @FILE to read it from a file."""
+    if value is None or not value.startswith("@"):
+        return value
+    from pathlib import Path
+
+    from ivdossier.errors import InvalidInputError
+
+    path = Path(value[1:])
+    try:
+        return path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InvalidInputError(f"cannot read {str(path)!r} for a text option: {exc}") from exc

@@ -1,0 +1,150 @@
+"""Build the invented telehealth demo end to end: data files, a registry, claims, threats, runs and documents."""
+
+from __future__ import annotations
+
+import shutil
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from ivdossier.errors import InvalidInputError
+
+MARKER = ".ivdossier-demo"
+PROGRAM = "telehealth-ed"
+
+MEMBERS = (
+    ("amara", "Amara Okafor", "amara@example.org"),
+    ("jonas", "Jonas Lindqvist", "jonas@example.org"),
+    ("priya", "Priya Raman", "priya@example.org"),
+)
+
+INSTRUMENTS: tuple[dict[str, Any], ...] = (
+    {
+        "slug": "fibre-wave",
+        "name": "Months since the fibre roll-out reached the postal district",
+        "family": "distance-geography",
+        "columns": ["fibre_months"],
+        "claims": {
+            "relevance": "Video visits need a fast, stable connection; districts reached earlier by the utility's "
+            "fibre had it for longer before the study year, so their patients could adopt sooner.",
+            "exclusion": "Fibre changes emergency use only by making remote visits possible. The utility's "
+            "schedule added no clinics, staff or transport.",
+            "exogeneity": "The wave order followed duct availability and the cost of trenching, fixed years "
+            "before the study; it was not chosen with health needs in mind.",
+            "monotonicity": "Earlier fibre never makes a patient less able to hold a video visit.",
+        },
+    },
+    {
+        "slug": "clerk-video-rate",
+        "name": "Video-visit share of the scheduling clerk a patient was assigned",
+        "family": "decision-maker-assignment",
+        "columns": ["clerk_video_rate"],
+        "claims": {
+            "relevance": "Clerks differ widely in how often they offer a video slot; patients take what they "
+            "are offered.",
+            "exclusion": "A clerk only books the appointment; nothing else a clerk does should change whether "
+            "a patient ends up in the emergency department.",
+            "exogeneity": "Patients are routed to clerks by a rota that ignores who is calling.",
+            "monotonicity": "A patient who would accept video from a reluctant clerk would also accept it from "
+            "an enthusiastic one.",
+        },
+    },
+    {
+        "slug": "mast-distance",
+        "name": "Distance to the nearest mobile mast",
+        "family": "distance-geography",
+        "columns": ["mast_km"],
+        "claims": {
+            "relevance": "Patients far from a mast have weaker mobile data and may find video visits harder.",
+            "exclusion": "Mast placement matters for emergency use only through the ability to hold a visit.",
+            "exogeneity": "Masts were sited for coverage of roads, not of patients' health.",
+        },
+    },
+)
+
+
+def _prepare_out(out: Path, replace: bool) -> None:
+    if out.exists() and any(out.iterdir()):
+        if not replace:
+            raise InvalidInputError(
+                f"{str(out)!r} already exists and is not empty; pass --replace to rebuild the demo there, "
+                "or choose another --out folder."
+            )
+        if not (out / MARKER).exists():
+            raise InvalidInputError(
+                f"{str(out)!r} holds files that the demo did not write; --replace only clears demo folders. "
+                "Choose an empty or new --out folder."
+            )
+        shutil.rmtree(out)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / MARKER).write_text("folder written by `ivdossier demo`; safe to delete\n", encoding="utf-8")
+
+
+def build_demo(
+    out: Path,
+    *,
+    replace: bool = False,
+    db: str | None = None,
+    actor: str = "demo",
+    progress: Callable[[str], None] | None = None,
+) -> dict[str, Any]:
+    """Write the demo into `out` and return a summary of what was built."""
+    from ivdossier.demo_data import simulate_telehealth
+    from ivdossier.registry import instruments as reg
+    from ivdossier.registry.db import open_registry
+
+    say = progress or (lambda _msg: None)
+    out = Path(out)
+    _prepare_out(out, replace)
+    data_dir = out / "data"
+    data_dir.mkdir()
+    frame = simulate_telehealth()
+    csv_path = data_dir / "telehealth.csv"
+    frame.to_csv(csv_path, index=False)
+    frame.to_parquet(data_dir / "telehealth.parquet", index=False)
+    say(f"simulated {len(frame):,} patients -> {csv_path}")
+
+    registry = open_registry(db or str(out / "ivdossier.sqlite"))
+    summary: dict[str, Any] = {
+        "out": str(out),
+        "registry": registry.url,
+        "data": str(csv_path),
+        "rows": len(frame),
+    }
+    try:
+        with registry.writing() as s:
+            reg.add_program(
+                s,
+                actor=actor,
+                slug=PROGRAM,
+                title="Does adopting telehealth visits reduce emergency-department visits among rural patients?",
+                question="Among rural patients of the regional health service, what is the effect of adopting "
+                "video visits on the number of emergency-department visits in the following year?",
+                treatment="telehealth",
+                outcome="ed_visits",
+                unit="patient",
+                population="Adult patients registered with rural practices of an invented regional health service.",
+            )
+            for handle, name, email in MEMBERS:
+                reg.add_member(s, actor=actor, handle=handle, name=name, email=email)
+            for name, measured, text in (
+                ("age", True, "Age in years at the start of the study year."),
+                ("chronic_conditions", True, "Number of recorded chronic conditions."),
+                ("frailty", False, "Overall frailty; drives both adoption and emergency use; not measured."),
+            ):
+                reg.add_covariate(
+                    s, actor=actor, program=PROGRAM, name=name, measured=measured, description=text
+                )
+            for spec in INSTRUMENTS:
+                reg.add_instrument(s, actor=actor, program=PROGRAM, **spec)
+            reg.move_instrument(
+                s, actor="amara", instrument="fibre-wave", to="vetting", reason="Roll-out schedule obtained."
+            )
+            reg.move_instrument(
+                s, actor="jonas", instrument="clerk-video-rate", to="vetting", reason="Rota logs obtained."
+            )
+        say(f"registry {registry.url}: program {PROGRAM} with {len(INSTRUMENTS)} candidate instruments")
+        summary["instruments"] = [spec["slug"] for spec in INSTRUMENTS]
+    finally:
+        registry.dispose()
+    return summary

@@ -1,0 +1,166 @@
+"""Opening a registry: engine set-up for SQLite or PostgreSQL, automatic migrations, one transaction per write."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from sqlalchemy import event, text
+from sqlalchemy.engine import Engine, make_url
+from sqlalchemy.exc import ArgumentError, IntegrityError, OperationalError
+from sqlalchemy.orm.exc import StaleDataError
+from sqlmodel import Session, create_engine
+
+from ivdossier.errors import ConflictError, InvalidInputError
+
+DEFAULT_PATH = "ivdossier.sqlite"
+ENV_DB = "IVDOSSIER_DB"
+SQLITE_BUSY_TIMEOUT_MS = 30_000
+# Keep in step with the newest file in migrations/versions (a test checks this).
+SCHEMA_HEAD = "0001"
+
+
+def resolve_url(db: str | None) -> str:
+    """Turn a --db value (URL or file path), else $IVDOSSIER_DB, else ./ivdossier.sqlite, into a URL."""
+    value = db or os.environ.get(ENV_DB) or DEFAULT_PATH
+    if "://" in value:
+        if value.startswith("postgresql://") or value.startswith("postgres://"):
+            value = "postgresql+psycopg://" + value.split("://", 1)[1]
+        try:
+            make_url(value)
+        except ArgumentError as exc:
+            raise InvalidInputError(
+                f"--db {value!r} is not a valid database URL; use a file path or "
+                "postgresql://user@host/dbname."
+            ) from exc
+        return value
+    return "sqlite:///" + str(Path(value).expanduser())
+
+
+def _install_sqlite_hooks(engine: Engine) -> None:
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn: Any, _record: Any) -> None:
+        # Manage transactions ourselves so that writers can start with BEGIN IMMEDIATE.
+        dbapi_conn.isolation_level = None
+        cur = dbapi_conn.cursor()
+        cur.execute("PRAGMA foreign_keys=ON")
+        cur.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
+        cur.execute("PRAGMA journal_mode=WAL")
+        cur.execute("PRAGMA synchronous=NORMAL")
+        cur.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn: Any) -> None:
+        # A writer takes the lock up front; waiting happens in busy_timeout, never as "database is locked"
+        # half-way through a transaction.
+        mode = "IMMEDIATE" if conn.get_execution_options().get("ivdossier_write") else "DEFERRED"
+        conn.exec_driver_sql(f"BEGIN {mode}")
+
+
+@dataclass
+class Registry:
+    """An open registry: an engine at the current schema and helpers to read or write in one transaction."""
+
+    url: str
+    engine: Engine
+
+    @property
+    def is_sqlite(self) -> bool:
+        return self.engine.dialect.name == "sqlite"
+
+    @contextmanager
+    def reading(self) -> Iterator[Session]:
+        """A session for reading; closing it ends the read transaction and keeps loaded objects usable."""
+        with Session(self.engine, expire_on_commit=False) as session:
+            yield session
+
+    @contextmanager
+    def writing(self) -> Iterator[Session]:
+        """One transaction: committed if the block succeeds, rolled back entirely if anything fails."""
+        bind = self.engine.execution_options(ivdossier_write=True)
+        with Session(bind, expire_on_commit=False) as session:
+            try:
+                yield session
+                session.commit()
+            except StaleDataError as exc:
+                session.rollback()
+                raise ConflictError(
+                    "someone else changed this entity since it was read; reload it and apply your edit again"
+                ) from exc
+            except IntegrityError as exc:
+                session.rollback()
+                raise ConflictError(_integrity_message(exc)) from exc
+            except BaseException:
+                session.rollback()
+                raise
+
+    def dispose(self) -> None:
+        self.engine.dispose()
+
+
+def _integrity_message(exc: IntegrityError) -> str:
+    detail = str(exc.orig).strip().splitlines()[0] if exc.orig is not None else str(exc)
+    if "UNIQUE" in detail.upper() or "duplicate key" in detail:
+        return f"an entity with the same name already exists ({detail}); choose another slug or edit the existing one"
+    if "FOREIGN KEY" in detail.upper() or "foreign key" in detail:
+        return f"a referenced entity does not exist or is still referenced ({detail})"
+    return f"the registry refused the write ({detail})"
+
+
+def make_engine(url: str) -> Engine:
+    if url.startswith("sqlite"):
+        path = url.split("sqlite:///", 1)[-1]
+        if path and path != ":memory:":
+            parent = Path(path).parent
+            if not parent.exists():
+                raise InvalidInputError(
+                    f"the folder {str(parent)!r} for the registry file does not exist; "
+                    "create it first or pass another --db path."
+                )
+        engine = create_engine(url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000})
+        _install_sqlite_hooks(engine)
+        return engine
+    return create_engine(url, pool_pre_ping=True)
+
+
+def current_revision(engine: Engine) -> str | None:
+    """The schema revision stored in the database, or None for an empty database."""
+    with engine.connect() as conn:
+        try:
+            row = conn.execute(text("SELECT version_num FROM alembic_version")).first()
+        except OperationalError:
+            return None
+        except Exception:  # PostgreSQL raises ProgrammingError for a missing table
+            return None
+        finally:
+            conn.rollback()
+    return None if row is None else str(row[0])
+
+
+def upgrade(engine: Engine, revision: str = "head") -> None:
+    """Apply alembic migrations up to `revision` (imports alembic only when work is needed)."""
+    from ivdossier.registry.migrations.runner import run_upgrade
+
+    run_upgrade(engine, revision)
+
+
+def open_registry(db: str | None = None, *, migrate: bool = True) -> Registry:
+    """Open (and create or upgrade if needed) the registry named by --db, $IVDOSSIER_DB or the default file."""
+    url = resolve_url(db)
+    engine = make_engine(url)
+    try:
+        rev = current_revision(engine)
+    except OperationalError as exc:
+        raise InvalidInputError(f"cannot open the registry at {url!r}: {exc.orig}") from exc
+    if rev != SCHEMA_HEAD:
+        if not migrate:
+            raise InvalidInputError(
+                f"the registry at {url!r} is at schema {rev or 'none'}, not {SCHEMA_HEAD}; "
+                "open it once with migrations enabled."
+            )
+        upgrade(engine)
+    return Registry(url=url, engine=engine)

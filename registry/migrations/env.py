@@ -1,0 +1,22 @@
+"""alembic environment: migrations run on the engine the registry passes in."""
+
+from __future__ import annotations
+
+from alembic import context
+from sqlmodel import SQLModel
+
+import ivdossier.registry.models  # noqa: F401  (registers the tables on SQLModel.metadata)
+
+config = context.config
+engine = config.attributes["engine"]
+target_metadata = SQLModel.metadata
+
+with engine.begin() as connection:
+    context.configure(
+        connection=connection,
+        target_metadata=target_metadata,
+        render_as_batch=connection.dialect.name == "sqlite",
+        compare_type=True,
+    )
+    with context.begin_transaction():
+        context.run_migrations()

@@ -1,0 +1,65 @@
+"""Datasets (identified by SHA-256) and runs: what was estimated, on which data, with which software."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from sqlmodel import Session, select
+
+from ivdossier.registry import records
+from ivdossier.registry.models import Dataset, Instrument, Run
+
+
+def register_dataset(
+    session: Session, *, actor: str, path: str, sha256: str, rows: int, columns: Sequence[str]
+) -> Dataset:
+    """The dataset row for this file content, created on first use (same content, same row)."""
+    existing = session.exec(select(Dataset).where(Dataset.sha256 == sha256)).first()
+    if existing is not None:
+        return existing
+    dataset = Dataset(slug=f"data-{sha256[:12]}", path=path, sha256=sha256, rows=rows, columns=list(columns))
+    return records.create(session, dataset, actor=actor)
+
+
+def next_run_slug(session: Session, instrument: Instrument | None, run_kind: str) -> str:
+    base = f"{instrument.slug if instrument else 'free'}-{run_kind}"[:70]
+    taken = set(session.exec(select(Run.slug).where(Run.slug.startswith(base))))  # type: ignore[attr-defined]
+    n = 1
+    while f"{base}-{n}" in taken:
+        n += 1
+    return f"{base}-{n}"
+
+
+def record_run(
+    session: Session,
+    *,
+    actor: str,
+    instrument: str | None,
+    run_kind: str,
+    spec: Mapping[str, Any],
+    results: Mapping[str, Any],
+    versions: Mapping[str, Any],
+    seconds: float,
+    dataset: Dataset | None = None,
+) -> Run:
+    """Store one run (estimation or evidence check) attached to an instrument."""
+    inst = records.get(session, Instrument, instrument) if instrument else None
+    run = Run(
+        slug=next_run_slug(session, inst, run_kind),
+        instrument_id=inst.id if inst else None,
+        dataset_id=dataset.id if dataset else None,
+        run_kind=run_kind,
+        spec=dict(spec),
+        results=dict(results),
+        versions=dict(versions),
+        seconds=seconds,
+    )
+    return records.create(session, run, actor=actor)
+
+
+def runs_of(session: Session, instrument: Instrument, run_kind: str | None = None) -> list[Run]:
+    query = select(Run).where(Run.instrument_id == instrument.id)
+    if run_kind:
+        query = query.where(Run.run_kind == run_kind)
+    return list(session.exec(query.order_by(Run.created_at, Run.id)))  # type: ignore[arg-type]
