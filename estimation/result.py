@@ -173,15 +173,39 @@ class EstimationResult:
         elif self.diagnostics is None:
             lines.append("  Instrument diagnostics: not computed.")
         else:
-            lines.append(
-                "  Instrument diagnostics: see the first_stage, strength and weak_iv_robust sections."
-            )
+            lines.append("  Instrument diagnostics")
+            lines.extend(f"    {line}" for line in self._diagnostic_lines())
         lines.append(
             "  Statistics cannot establish that an instrument is excluded or exogenous; decisions for policy "
             "or "
             "clinical practice need domain review."
         )
         return "\n".join(lines)
+
+    def _diagnostic_lines(self) -> list[str]:
+        """Headline numbers from the diagnostics sections; a missing entry is skipped, never invented."""
+        d = {name: self._section(name) or {} for name in DIAGNOSTIC_SECTIONS}
+        out: list[str] = []
+        for name, row in (d["first_stage"].get("by_endog") or {}).items():
+            f = row.get("robust_f") if self.vcov != "unadjusted" else row.get("partial_f")
+            if isinstance(f, float):
+                out.append(f"first-stage F for {name!r}: {f:.4g} ({self.vcov} covariance)")
+        eff = (d["strength"].get("effective_f") or {}).get("statistic")
+        if isinstance(eff, float):
+            out.append(f"effective F (Montiel Olea-Pflueger): {eff:.4g}")
+        ar = d["weak_iv_robust"].get("anderson_rubin") or {}
+        if isinstance(ar.get("p_value"), float):
+            out.append(f"Anderson-Rubin test of no effect: p = {ar['p_value']:.4g}")
+        if ar.get("confidence_set") is not None:
+            pieces = ", ".join(f"[{_num(lo)}, {_num(hi)}]" for lo, hi in ar["confidence_set"]) or "empty"
+            out.append(f"Anderson-Rubin {100 * (1 - self.alpha):g}% set ({ar.get('shape', '')}): {pieces}")
+        oid = d["overid"]
+        if isinstance(oid.get("p_value"), float):
+            out.append(f"over-identification ({oid.get('test')}): p = {oid['p_value']:.4g}")
+        endo = d["endogeneity"]
+        if isinstance(endo.get("p_value"), float):
+            out.append(f"endogeneity ({endo.get('test')}): p = {endo['p_value']:.4g}")
+        return out or ["no headline statistics available; see to_dict()"]
 
     def _vcov_text(self) -> str:
         text = {
@@ -210,3 +234,7 @@ class EstimationResult:
 
     def __str__(self) -> str:
         return self.summary()
+
+
+def _num(value: Any) -> str:
+    return value if isinstance(value, str) else f"{value:.4g}"
