@@ -1,0 +1,664 @@
+"""Plausibly exogenous instruments (Conley, Hansen and Rossi 2012): how far can exclusion fail?
+
+Model: Y = X beta + Z gamma + controls + u, where gamma is the direct effect of the instruments on the outcome
+(gamma = 0 is exact exclusion). All numbers come from the partialled arrays of
+:func:`ivdossier.estimation.data.prepare` (controls and fixed effects removed, sqrt(w)-scaled), so controls,
+absorbed fixed effects, weights and every covariance choice of :func:`ivdossier.estimation.estimate` carry over.
+
+Closed forms used instead of refitting (one treatment X, L instruments Z):
+
+* the 2SLS of Y - Z gamma on X gives beta(gamma) = beta_hat - A gamma with A = (X'P_Z X)^{-1} X'Z
+  (partialled cross-products; by Frisch–Waugh–Lovell the same row as the raw formula with the full
+  instrument matrix), and residuals u(gamma) = u_hat - M gamma with M = Z - X A;
+* its variance is a quadratic form Var(gamma) = c' H c with c = (1, -gamma): H is the joint covariance of the
+  m = L + 1 "equations" with residual columns (u_hat, M) sharing the 2SLS score regressors, computed once by
+  :func:`ivdossier.estimation.covariance.sandwich`. This reproduces, for every gamma, the interval a refit
+  would give, with the same small-sample factor and quantile as :func:`ivdossier.estimation.estimate`.
+
+Union of confidence intervals (UCI): the union over gamma in the box [gamma_min, gamma_max] of the (1 - alpha)
+intervals beta(gamma) -/+ q sqrt(Var(gamma)). When H is positive semi-definite (unadjusted, robust, one-way
+cluster), sqrt(Var) is a norm of an affine map of gamma, so the lower end is concave and the upper end convex
+in gamma: the extremes of the union sit at vertices of the box, and the UCI is exact from them. For two-way
+clustering H can be indefinite, so the extremes are taken over the vertices and the evaluation grid (stated
+in the result). Local to zero (LTZ): gamma ~ N(mu, Omega) gives beta_hat approx N(beta + A mu, V + A Omega A'),
+so the interval is beta_hat - A mu -/+ q sqrt(V + A Omega A'). These are statements about what would follow if
+the direct effect lay in the stated range; no statistic establishes exclusion.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any, cast
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+
+from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.estimation.api import estimate_prepared
+from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, is_psd, sandwich
+from ivdossier.estimation.data import PreparedData, as_names, prepare
+from ivdossier.estimation.estimators import fit_kclass
+from ivdossier.estimation.result import json_value
+
+__all__ = [
+    "BreakdownResult",
+    "GammaInterval",
+    "LocalToZeroResult",
+    "UnionIntervalResult",
+    "breakdown_value",
+    "local_to_zero",
+    "plot_sensitivity_svg",
+    "union_of_intervals",
+]
+
+Array = NDArray[np.float64]
+
+
+# ----------------------------------------------------------------------------------------------------------
+# shared core: everything is a closed-form function of gamma once A and H are known
+# ----------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class _Core:
+    treatment: str
+    instruments: tuple[str, ...]
+    beta_hat: float
+    se_hat: float
+    ci_hat: tuple[float, float]
+    shift: Array  # A, shape (L,)
+    quad: Array  # H, shape (L + 1, L + 1)
+    quantile: float
+    ci_reference: str
+    reduced_form: Array  # OLS coefficients of y on Z (partialled), shape (L,)
+    n: int
+    vcov: str
+    alpha: float
+    exact_from_vertices: bool
+
+    def estimate(self, gamma: Array) -> float:
+        return float(self.beta_hat - self.shift @ gamma)
+
+    def variance(self, gamma: Array) -> float:
+        c = np.concatenate([[1.0], -gamma])
+        return float(max(c @ self.quad @ c, 0.0))
+
+    def interval(self, gamma: Array) -> tuple[float, float, float]:
+        est = self.estimate(gamma)
+        half = self.quantile * math.sqrt(self.variance(gamma))
+        return est, est - half, est + half
+
+
+def _spec_options(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str,
+    instruments: str | Sequence[str],
+    controls: str | Sequence[str],
+    absorb: str | Sequence[str],
+    cluster: str | Sequence[str] | None,
+    weights: str | None,
+    vcov: str,
+) -> PreparedData:
+    if not isinstance(treatment, str):
+        raise InvalidInputError(
+            "The plausibly-exogenous analysis takes one treatment column; pass treatment= as a single name."
+        )
+    if vcov not in COV_KINDS:
+        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
+    inst = as_names(instruments, "instruments")
+    if not inst:
+        raise InvalidInputError(
+            "The plausibly-exogenous analysis needs instruments=; name at least one column."
+        )
+    return prepare(
+        data,
+        outcome=outcome,
+        treatment=treatment,
+        instruments=inst,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+    )
+
+
+def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float) -> _Core:
+    base = estimate_prepared(
+        prepared, method="2sls", vcov=vcov, small_sample=small_sample, alpha=alpha, diagnostics=False
+    )
+    spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
+    fit = fit_kclass(prepared.y, prepared.X, prepared.Z, method="2sls", n_partialled=prepared.n_partialled)
+    x, z = prepared.X, prepared.Z
+    shift = (fit.bread @ (x.T @ z)).ravel()  # A = (X'P_Z X)^{-1} X'Z, 1 x L
+    m = z - x @ shift[None, :]
+    quad = sandwich(
+        fit.score_regressors,
+        np.column_stack([fit.resid, m]),
+        spec,
+        n_partialled=prepared.n_partialled,
+        bread=fit.bread,
+        n_partialled_nested=prepared.n_partialled_nested,
+    )
+    se = float(base.se[0])
+    if not se > 0:
+        raise EstimationError(
+            "The 2SLS standard error is zero, so no interval can be formed; check the data."
+        )
+    quantile = float((base.ci[0, 1] - base.coef[0]) / se)
+    rf = fit_kclass(prepared.y, z, None, method="ols").beta
+    two_way = vcov == "cluster" and len(prepared.clusters) == 2
+    return _Core(
+        treatment=prepared.treatment[0],
+        instruments=prepared.instruments,
+        beta_hat=float(base.coef[0]),
+        se_hat=se,
+        ci_hat=(float(base.ci[0, 0]), float(base.ci[0, 1])),
+        shift=np.asarray(shift, dtype=np.float64),
+        quad=np.asarray(quad, dtype=np.float64),
+        quantile=quantile,
+        ci_reference=base.ci_reference,
+        reduced_form=np.asarray(rf, dtype=np.float64),
+        n=prepared.n,
+        vcov=vcov,
+        alpha=alpha,
+        exact_from_vertices=(not two_way) or is_psd(quad),
+    )
+
+
+def _as_vector(value: float | Sequence[float], n_inst: int, name: str) -> Array:
+    arr = np.atleast_1d(np.asarray(value, dtype=np.float64)).ravel()
+    if arr.size == 1 and n_inst > 1:
+        arr = np.full(n_inst, float(arr[0]))
+    if arr.size != n_inst:
+        raise InvalidInputError(
+            f"{name} has {arr.size} entries but there are {n_inst} instruments; give one value per instrument."
+        )
+    if not np.all(np.isfinite(arr)):
+        raise InvalidInputError(f"{name} must be finite; give a bounded range for the direct effect.")
+    return arr
+
+
+# ----------------------------------------------------------------------------------------------------------
+# union of confidence intervals
+# ----------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class GammaInterval:
+    """The 2SLS estimate and interval when the direct effect is ``gamma`` (one value per instrument)."""
+
+    position: float
+    gamma: tuple[float, ...]
+    estimate: float
+    lower: float
+    upper: float
+
+    def to_dict(self) -> dict[str, Any]:
+        return cast(dict[str, Any], json_value(self.__dict__))
+
+
+@dataclass(frozen=True)
+class UnionIntervalResult:
+    """UCI over the box [gamma_min, gamma_max] with the evaluation grid used for the plot.
+
+    ``grid`` runs over gamma itself for one instrument, and along the box diagonal gamma_min + s (gamma_max -
+    gamma_min), s in [0, 1], for several (``position`` holds gamma or s). ``shift`` is A: beta(gamma) =
+    beta_hat - A gamma. ``exact`` says whether the bounds are exact (from the box vertices) or grid-based.
+    """
+
+    treatment: str
+    instruments: tuple[str, ...]
+    gamma_min: tuple[float, ...]
+    gamma_max: tuple[float, ...]
+    lower: float
+    upper: float
+    lower_at: tuple[float, ...]
+    upper_at: tuple[float, ...]
+    covers_zero: bool
+    estimate: float
+    se: float
+    ci: tuple[float, float]
+    shift: tuple[float, ...]
+    reduced_form: tuple[float, ...]
+    grid: tuple[GammaInterval, ...]
+    grid_coordinate: str
+    exact: bool
+    quantile: float
+    ci_reference: str
+    alpha: float
+    vcov: str
+    n: int
+    note: str
+
+    def to_dict(self) -> dict[str, Any]:
+        out = {k: v for k, v in self.__dict__.items() if k != "grid"}
+        out = cast(dict[str, Any], json_value(out))
+        out["grid"] = [g.to_dict() for g in self.grid]
+        out["kind"] = "union_of_confidence_intervals"
+        return out
+
+
+NOTE = (
+    "Sensitivity of the 2SLS interval to a direct effect of the instrument on the outcome in the stated "
+    "range; it does not establish that exclusion holds or that the range is the right one."
+)
+
+
+def union_of_intervals(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str,
+    instruments: str | Sequence[str],
+    gamma_min: float | Sequence[float],
+    gamma_max: float | Sequence[float],
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    vcov: str = "robust",
+    small_sample: bool = True,
+    alpha: float = 0.05,
+    n_grid: int = 101,
+) -> UnionIntervalResult:
+    """Union of the 2SLS (1 - alpha) intervals over direct effects gamma in [gamma_min, gamma_max].
+
+    With several instruments the range is a box (one bound per instrument; a scalar applies to all).
+    """
+    if n_grid < 2:
+        raise InvalidInputError(f"n_grid must be at least 2, got {n_grid}.")
+    prepared = _spec_options(
+        data,
+        outcome=outcome,
+        treatment=treatment,
+        instruments=instruments,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        vcov=vcov,
+    )
+    core = _core(prepared, vcov=vcov, small_sample=small_sample, alpha=alpha)
+    n_inst = len(core.instruments)
+    lo = _as_vector(gamma_min, n_inst, "gamma_min")
+    hi = _as_vector(gamma_max, n_inst, "gamma_max")
+    if np.any(lo > hi):
+        j = int(np.argmax(lo > hi))
+        raise InvalidInputError(
+            f"The direct-effect range for instrument {core.instruments[j]!r} is reversed "
+            f"(gamma_min {lo[j]:g} > gamma_max {hi[j]:g}); swap the bounds."
+        )
+    steps = np.linspace(0.0, 1.0, n_grid)
+    grid: list[GammaInterval] = []
+    for s in steps:
+        g = lo * (1.0 - s) + hi * s  # exact endpoints at s = 0 and s = 1
+        est, lower, upper = core.interval(g)
+        pos = float(g[0]) if n_inst == 1 else float(s)
+        grid.append(GammaInterval(pos, tuple(map(float, g)), est, lower, upper))
+    vertices = [np.where(np.array(bits, dtype=bool), hi, lo) for bits in np.ndindex(*(2,) * n_inst)]
+    candidates = (
+        list(vertices) if core.exact_from_vertices else list(vertices) + [np.array(g.gamma) for g in grid]
+    )
+    bounds = [core.interval(g) for g in candidates]
+    i_lo = int(np.argmin([b[1] for b in bounds]))
+    i_hi = int(np.argmax([b[2] for b in bounds]))
+    lower, upper = bounds[i_lo][1], bounds[i_hi][2]
+    return UnionIntervalResult(
+        treatment=core.treatment,
+        instruments=core.instruments,
+        gamma_min=tuple(map(float, lo)),
+        gamma_max=tuple(map(float, hi)),
+        lower=lower,
+        upper=upper,
+        lower_at=tuple(map(float, candidates[i_lo])),
+        upper_at=tuple(map(float, candidates[i_hi])),
+        covers_zero=bool(lower <= 0.0 <= upper),
+        estimate=core.beta_hat,
+        se=core.se_hat,
+        ci=core.ci_hat,
+        shift=tuple(map(float, core.shift)),
+        reduced_form=tuple(map(float, core.reduced_form)),
+        grid=tuple(grid),
+        grid_coordinate="gamma"
+        if n_inst == 1
+        else "position along the box diagonal (0 = gamma_min, 1 = gamma_max)",
+        exact=core.exact_from_vertices,
+        quantile=core.quantile,
+        ci_reference=core.ci_reference,
+        alpha=alpha,
+        vcov=vcov,
+        n=core.n,
+        note=NOTE,
+    )
+
+
+# ----------------------------------------------------------------------------------------------------------
+# local to zero
+# ----------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class LocalToZeroResult:
+    """LTZ interval: centre beta_hat - A mu, variance V + A Omega A', same quantile as the 2SLS interval."""
+
+    treatment: str
+    instruments: tuple[str, ...]
+    mu: tuple[float, ...]
+    omega: tuple[tuple[float, ...], ...]
+    estimate: float
+    se: float
+    lower: float
+    upper: float
+    covers_zero: bool
+    estimate_2sls: float
+    se_2sls: float
+    ci_2sls: tuple[float, float]
+    shift: tuple[float, ...]
+    quantile: float
+    ci_reference: str
+    alpha: float
+    vcov: str
+    n: int
+    note: str
+
+    def to_dict(self) -> dict[str, Any]:
+        out = cast(dict[str, Any], json_value(dict(self.__dict__)))
+        out["kind"] = "local_to_zero"
+        return out
+
+
+def local_to_zero(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str,
+    instruments: str | Sequence[str],
+    mu: float | Sequence[float],
+    omega: float | Sequence[Sequence[float]] | Sequence[float],
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    vcov: str = "robust",
+    small_sample: bool = True,
+    alpha: float = 0.05,
+) -> LocalToZeroResult:
+    """Interval for beta when the direct effect is gamma ~ N(mu, omega) (Conley, Hansen and Rossi 2012).
+
+    ``omega`` is the L x L prior covariance (a scalar variance for one instrument; a list of L values is read
+    as a diagonal). The prior can come from :func:`ivdossier.estimation.falsification.zero_first_stage`.
+    """
+    prepared = _spec_options(
+        data,
+        outcome=outcome,
+        treatment=treatment,
+        instruments=instruments,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        vcov=vcov,
+    )
+    core = _core(prepared, vcov=vcov, small_sample=small_sample, alpha=alpha)
+    n_inst = len(core.instruments)
+    mu_v = _as_vector(mu, n_inst, "mu")
+    om = np.asarray(omega, dtype=np.float64)
+    if om.ndim == 0:
+        om = np.eye(n_inst) * float(om) if n_inst == 1 else np.full((n_inst, n_inst), np.nan)
+    elif om.ndim == 1:
+        if om.size != n_inst:
+            raise InvalidInputError(
+                f"omega has {om.size} entries but there are {n_inst} instruments; give an L x L matrix."
+            )
+        om = np.diag(om)
+    if om.shape != (n_inst, n_inst) or not np.all(np.isfinite(om)):
+        raise InvalidInputError(
+            f"omega must be a finite {n_inst} x {n_inst} covariance matrix (a scalar only with one instrument)."
+        )
+    if not np.allclose(om, om.T) or not is_psd(om):
+        raise InvalidInputError("omega must be symmetric positive semi-definite; check the prior covariance.")
+    var = core.se_hat**2 + float(core.shift @ om @ core.shift)
+    centre = core.beta_hat - float(core.shift @ mu_v)
+    se = math.sqrt(var)
+    lower, upper = centre - core.quantile * se, centre + core.quantile * se
+    return LocalToZeroResult(
+        treatment=core.treatment,
+        instruments=core.instruments,
+        mu=tuple(map(float, mu_v)),
+        omega=tuple(tuple(map(float, row)) for row in om),
+        estimate=centre,
+        se=se,
+        lower=lower,
+        upper=upper,
+        covers_zero=bool(lower <= 0.0 <= upper),
+        estimate_2sls=core.beta_hat,
+        se_2sls=core.se_hat,
+        ci_2sls=core.ci_hat,
+        shift=tuple(map(float, core.shift)),
+        quantile=core.quantile,
+        ci_reference=core.ci_reference,
+        alpha=alpha,
+        vcov=vcov,
+        n=core.n,
+        note=NOTE,
+    )
+
+
+# ----------------------------------------------------------------------------------------------------------
+# breakdown value
+# ----------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class BreakdownResult:
+    """Smallest direct effect (along ``direction``) at which the interval first covers ``target``.
+
+    ``magnitude`` is |t| for gamma = t * direction (direction has unit length), in outcome units per unit of
+    the instrument combination Z'direction; ``gamma`` is the signed vector. ``relative_to_reduced_form`` is
+    t divided by the reduced-form coefficient of Y on Z'direction: 1 means the whole reduced form would have
+    to be direct effect. ``magnitude`` is 0 when the 2SLS interval already covers the target.
+    """
+
+    treatment: str
+    instruments: tuple[str, ...]
+    target: float
+    direction: tuple[float, ...]
+    t: float
+    magnitude: float
+    gamma: tuple[float, ...]
+    reduced_form: float
+    relative_to_reduced_form: float
+    estimate: float
+    ci: tuple[float, float]
+    covered_without_direct_effect: bool
+    alpha: float
+    vcov: str
+    n: int
+    note: str
+
+    def to_dict(self) -> dict[str, Any]:
+        out = cast(dict[str, Any], json_value(dict(self.__dict__)))
+        out["kind"] = "breakdown_value"
+        return out
+
+
+def _breakdown_t(core: _Core, direction: Array, target: float) -> float:
+    """Smallest |t| with target inside the interval at gamma = t * direction (a quadratic inequality in t)."""
+    a = float(core.shift @ direction)
+    d0 = core.beta_hat - target
+    q2 = core.quantile**2
+    # Var(t) = v0 + 2 v1 t + v2 t^2 from c = (1, -t d)
+    v0 = core.quad[0, 0]
+    v1 = -float(core.quad[0, 1:] @ direction)
+    v2 = float(direction @ core.quad[1:, 1:] @ direction)
+    c2 = a * a - q2 * v2
+    c1 = -2.0 * (a * d0 + q2 * v1)
+    c0 = d0 * d0 - q2 * v0
+    if c0 <= 0:
+        return 0.0
+    if abs(c2) <= 1e-14 * max(a * a, q2 * abs(v2), 1e-300):
+        roots = np.array([-c0 / c1]) if c1 != 0 else np.array([])
+    else:
+        disc = c1 * c1 - 4.0 * c2 * c0
+        if disc < 0:
+            roots = np.array([])
+        else:
+            sq = math.sqrt(disc)
+            # numerically stable pair of roots
+            qq = -0.5 * (c1 + math.copysign(sq, c1))
+            roots = np.array([qq / c2, c0 / qq]) if qq != 0 else np.array([0.0])
+    if roots.size == 0:
+        raise EstimationError(
+            "No direct effect along this direction makes the interval cover the target; the instrument "
+            "combination has no first stage in this direction, choose another direction."
+        )
+    return float(roots[int(np.argmin(np.abs(roots)))])
+
+
+def breakdown_value(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str,
+    instruments: str | Sequence[str],
+    target: float = 0.0,
+    direction: Sequence[float] | None = None,
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    vcov: str = "robust",
+    small_sample: bool = True,
+    alpha: float = 0.05,
+) -> BreakdownResult:
+    """Smallest |gamma| at which the (1 - alpha) interval at that direct effect covers ``target``.
+
+    This equals the half-width g of the smallest symmetric range [-g, g] whose UCI covers the target. With
+    several instruments a ``direction`` (one weight per instrument, normalised to unit length) is required.
+    """
+    prepared = _spec_options(
+        data,
+        outcome=outcome,
+        treatment=treatment,
+        instruments=instruments,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        vcov=vcov,
+    )
+    core = _core(prepared, vcov=vcov, small_sample=small_sample, alpha=alpha)
+    n_inst = len(core.instruments)
+    if direction is None:
+        if n_inst > 1:
+            raise InvalidInputError(
+                f"With {n_inst} instruments the breakdown value needs direction= (one weight per instrument), "
+                "e.g. all ones for an equal direct effect of each."
+            )
+        dvec = np.ones(1)
+    else:
+        dvec = _as_vector(direction, n_inst, "direction")
+    norm = float(np.linalg.norm(dvec))
+    if norm == 0:
+        raise InvalidInputError("direction is the zero vector; give at least one non-zero weight.")
+    dvec = dvec / norm
+    t = _breakdown_t(core, dvec, float(target))
+    rf = float(core.reduced_form @ dvec) if n_inst == 1 else _reduced_form_along(prepared, dvec)
+    return BreakdownResult(
+        treatment=core.treatment,
+        instruments=core.instruments,
+        target=float(target),
+        direction=tuple(map(float, dvec)),
+        t=t,
+        magnitude=abs(t),
+        gamma=tuple(map(float, t * dvec)),
+        reduced_form=rf,
+        relative_to_reduced_form=t / rf if rf != 0 else math.inf,
+        estimate=core.beta_hat,
+        ci=core.ci_hat,
+        covered_without_direct_effect=t == 0.0,
+        alpha=alpha,
+        vcov=vcov,
+        n=core.n,
+        note=NOTE,
+    )
+
+
+def _reduced_form_along(prepared: PreparedData, direction: Array) -> float:
+    """OLS coefficient of the partialled outcome on the instrument combination Z'direction."""
+    zc = prepared.Z @ direction
+    return float(fit_kclass(prepared.y, zc, None, method="ols").beta[0])
+
+
+# ----------------------------------------------------------------------------------------------------------
+# plot
+# ----------------------------------------------------------------------------------------------------------
+
+
+def plot_sensitivity_svg(result: UnionIntervalResult, *, ltz: LocalToZeroResult | None = None) -> str:
+    """SVG (string, no external resources) of the interval against the assumed direct effect."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    pos = np.array([g.position for g in result.grid])
+    est = np.array([g.estimate for g in result.grid])
+    low = np.array([g.lower for g in result.grid])
+    upp = np.array([g.upper for g in result.grid])
+    level = f"{100 * (1 - result.alpha):g}%"
+    with plt.rc_context({"svg.hashsalt": "ivdossier-sensitivity", "svg.fonttype": "path"}):
+        return _draw(plt, result, ltz, pos, est, low, upp, level)
+
+
+def _draw(
+    plt: Any,
+    result: UnionIntervalResult,
+    ltz: LocalToZeroResult | None,
+    pos: Array,
+    est: Array,
+    low: Array,
+    upp: Array,
+    level: str,
+) -> str:
+    fig, ax = plt.subplots(figsize=(6.4, 3.8))
+    try:
+        ax.fill_between(pos, low, upp, color="#c9d6e3", label=f"{level} interval at each direct effect")
+        ax.plot(pos, est, color="#1f3b57", linewidth=1.6, label="2SLS estimate given the direct effect")
+        ax.plot(pos, low, color="#1f3b57", linewidth=0.8, linestyle=":")
+        ax.plot(pos, upp, color="#1f3b57", linewidth=0.8, linestyle=":")
+        ax.axhline(0.0, color="#555555", linewidth=0.8)
+        ax.axhline(result.lower, color="#8a4b08", linewidth=1.0, linestyle="--", label="union of intervals")
+        ax.axhline(result.upper, color="#8a4b08", linewidth=1.0, linestyle="--")
+        if ltz is not None:
+            x0 = float(ltz.mu[0]) if len(result.instruments) == 1 else 0.5
+            ax.errorbar(
+                [x0],
+                [ltz.estimate],
+                yerr=[[ltz.estimate - ltz.lower], [ltz.upper - ltz.estimate]],
+                fmt="s",
+                color="#3d6b1f",
+                capsize=4,
+                label="local-to-zero interval (at prior mean)",
+            )
+        xlabel = (
+            f"assumed direct effect of {result.instruments[0]} on the outcome (gamma)"
+            if len(result.instruments) == 1
+            else "position along the direct-effect box (0 = gamma_min, 1 = gamma_max)"
+        )
+        ax.set_xlabel(xlabel)
+        ax.set_ylabel(f"effect of {result.treatment}")
+        ax.set_title("Plausibly exogenous: interval against the assumed direct effect", fontsize=10)
+        ax.legend(fontsize=7, loc="best", frameon=False)
+        fig.tight_layout()
+        buf = io.StringIO()
+        fig.savefig(buf, format="svg", metadata={"Date": None})  # no timestamp: reproducible documents
+    finally:
+        plt.close(fig)
+    return buf.getvalue()
