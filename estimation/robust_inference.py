@@ -33,13 +33,13 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from ivdossier.estimation.covariance import CovSpec, sandwich
-from ivdossier.estimation.critical_values import TF_SOURCE, tf_critical_value
-from ivdossier.estimation.strength import as_matrix, denominator_df, f_p_value, json_safe, ols, wald
 from numpy.typing import NDArray
 from scipy import integrate, optimize, special, stats
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.covariance import CovSpec, sandwich
+from ivdossier.estimation.critical_values import TF_SOURCE, tf_critical_value
+from ivdossier.estimation.strength import as_matrix, denominator_df, f_p_value, json_safe, ols, wald
 
 Array = NDArray[np.float64]
 Interval = tuple[float, float]
@@ -461,13 +461,15 @@ def clr_p_value(lr: float, qt: float, k: int) -> float:
         return float(special.chdtrc(1, lr))
     upper = lr + qt
     tail = float(special.chdtrc(k - 1, upper))
+    # the chi2(k - 1) mass beyond v_max is below 1e-15, so the integral can stop there
+    v_max = min(upper, float(special.chdtri(k - 1, 1e-15)))
     if k == 2:  # chi2(1) density has an integrable singularity at 0: substitute v = u^2
         const = math.sqrt(2 / math.pi)
 
         def integrand(u: float) -> float:
             return const * math.exp(-u * u / 2) * math.erfc(math.sqrt(max(lr - u * u * lr / upper, 0.0) / 2))
 
-        val, _ = integrate.quad(integrand, 0.0, math.sqrt(upper), limit=200)
+        val, _ = integrate.quad(integrand, 0.0, math.sqrt(v_max), limit=200)
     else:
         half = (k - 1) / 2
         log_norm = -half * math.log(2) - math.lgamma(half)
@@ -479,7 +481,7 @@ def clr_p_value(lr: float, qt: float, k: int) -> float:
             )
             return dens * math.erfc(math.sqrt(max(lr - v * lr / upper, 0.0) / 2))
 
-        val, _ = integrate.quad(integrand, 0.0, upper, limit=200)
+        val, _ = integrate.quad(integrand, 0.0, v_max, limit=200)
     return float(min(max(tail + val, 0.0), 1.0))
 
 

