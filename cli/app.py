@@ -86,10 +86,11 @@ def _global(
 
 
 def _register() -> None:
-    from ivdossier.cli import entities, general
+    from ivdossier.cli import entities, estimation_cmds, general
 
     general.register(app)
     entities.register(app)
+    estimation_cmds.register(app)
 
 
 _register()

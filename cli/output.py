@@ -3,33 +3,12 @@
 from __future__ import annotations
 
 import json
-import math
 from collections.abc import Mapping, Sequence
-from datetime import datetime
 from typing import Any
 
 import typer
 
-
-def json_safe(value: Any) -> Any:
-    """Make a value JSON-safe: infinities become "inf"/"-inf", NaN becomes null, datetimes ISO strings."""
-    if isinstance(value, float):
-        if math.isnan(value):
-            return None
-        if math.isinf(value):
-            return "inf" if value > 0 else "-inf"
-        return value
-    if isinstance(value, Mapping):
-        return {str(k): json_safe(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [json_safe(v) for v in value]
-    if isinstance(value, datetime):
-        return value.isoformat()
-    if hasattr(value, "to_dict"):
-        return json_safe(value.to_dict())
-    if hasattr(value, "item"):  # numpy scalars
-        return json_safe(value.item())
-    return value
+from ivdossier.jsonsafe import json_safe
 
 
 def print_json(data: Any) -> None:
