@@ -104,8 +104,9 @@ def treatment_name(run: RunInfo, fallback: str = "") -> str | None:
     coef = run.results.get("coef")
     names = list(coef) if isinstance(coef, Mapping) else []
     candidates: list[str] = []
-    for key in ("treatment", "endogenous", "endog"):
-        value = run.spec.get(key)
+    specs = [run.spec, run.results.get("spec") if isinstance(run.results.get("spec"), Mapping) else {}]
+    for key, spec in ((k, sp) for sp in specs for k in ("treatment", "endogenous", "endog")):
+        value = spec.get(key)
         if isinstance(value, str):
             candidates.append(value)
         elif isinstance(value, Sequence) and value and isinstance(value[0], str):
@@ -196,7 +197,7 @@ def _run_key_numbers(inp: DossierInput, run: RunInfo) -> str:
         pieces.append(f"Anderson–Rubin set {rv.fmt_set(ar)}")
     if not pieces:
         return ""
-    label = f"{mt.inline(run.method)}" + (f", {mt.inline(run.vcov)}" if run.vcov else "")
+    label = mt.inline(rv.method_label(run.method)) + (f", {mt.inline(run.vcov)}" if run.vcov else "")
     return f"Latest run **{mt.inline(run.slug)}** ({label}): " + "; ".join(pieces) + "."
 
 
@@ -326,22 +327,39 @@ def _estimation(inp: DossierInput, run: RunInfo | None) -> str:
     ]
     detail = [d for d in detail if d]
     if detail:
-        meta = [f"method {mt.inline(run.method)}"]
+        meta = [f"method {mt.inline(rv.method_label(run.method))}"]
         if run.vcov:
             meta.append(f"covariance {mt.inline(run.vcov)}")
-        for key, label in (("n", "observations"), ("n_dropped", "rows dropped"), ("n_clusters", "clusters")):
+        for key, label in (("n", "observations"), ("n_dropped", "incomplete rows left out")):
             if rv.num(res.get(key)) is not None:
                 meta.append(f"{label} {rv.fmt(res.get(key), 12)}")
+        clusters = _clusters(res)
+        if clusters:
+            meta.append(f"clusters {clusters}")
         out.append(f"### Run {mt.inline(run.slug)} in detail\n\n" + "; ".join(meta) + ".")
         out.extend(detail)
     return "\n\n".join(out)
 
 
+def _clusters(res: Mapping[str, Any]) -> str:
+    raw = res.get("n_clusters")
+    values = raw if isinstance(raw, Sequence) and not isinstance(raw, str) else [raw]
+    nums = [rv.num(v) for v in values]
+    return " × ".join(rv.fmt(v, 12) for v in nums if v is not None)
+
+
+def _level_text(res: Mapping[str, Any]) -> str:
+    alpha = rv.num(res.get("alpha"))
+    return f"{rv.fmt(100 * (1 - alpha), 3)} %" if alpha is not None and 0 < alpha < 1 else ""
+
+
 def _runs_overview(inp: DossierInput) -> str:
     rows = []
+    levels = set()
     for run in sorted(inp.runs, key=lambda r: (r.created_text, r.slug)):
         name = treatment_name(run, inp.program.treatment)
         res = run.results
+        levels.add(_level_text(res))
         est = rv.num(_get(res, "coef", name)) if name else None
         se = rv.num(_get(res, "se", name)) if name else None
         ci = rv.intervals(_get(res, "ci", name)) if name else None
@@ -350,8 +368,7 @@ def _runs_overview(inp: DossierInput) -> str:
         rows.append(
             [
                 mt.cell(run.slug),
-                mt.cell(run.method),
-                mt.cell(run.vcov),
+                mt.cell(rv.method_label(run.method) + (f" · {run.vcov}" if run.vcov else "")),
                 rv.fmt(est),
                 rv.fmt(se),
                 rv.fmt_set(ci) if ci else "–",
@@ -361,57 +378,67 @@ def _runs_overview(inp: DossierInput) -> str:
             ]
         )
     title = mt.inline(inp.program.treatment) if inp.program.treatment else "the treatment"
+    level = next(iter(levels)) if len(levels) == 1 and "" not in levels else ""
+    sets = f" Intervals and Anderson–Rubin (AR) sets are at the {level} level." if level else ""
     return (
         f"### Effect of {title} across runs\n\n"
-        "Ordinary least squares rows sit beside the instrumental-variable rows so the gap between them is visible.\n\n"
+        "Ordinary least squares rows sit beside the instrumental-variable rows, so the gap between them shows."
+        + sets
+        + "\n\n"
         + mt.table(
             [
                 "Run",
-                "Method",
-                "Covariance",
+                "Method · covariance",
                 "Estimate",
-                "Std. error",
+                "s.e.",
                 "Wald interval",
                 "Effective F",
-                "Anderson–Rubin set",
+                "AR set",
                 "n",
             ],
             rows,
-            "lllrrrrrr",
+            "llrrrrrr",
         )
     )
 
 
+def _coef_with_se(value: Any, se: Any) -> str:
+    text = rv.fmt(value)
+    se_num = rv.num(value.get("se")) if isinstance(value, Mapping) else rv.num(se)
+    return f"{text} ({rv.fmt(se_num)})" if se_num is not None else text
+
+
+def _ses(entry: Mapping[str, Any]) -> Mapping[str, Any]:
+    for key in ("std_errors", "se"):
+        if isinstance(entry.get(key), Mapping):
+            return entry[key]  # type: ignore[no-any-return]
+    return {}
+
+
 def _first_stage(res: Mapping[str, Any]) -> str:
-    first = rv.section(res, "first_stage")
-    if first is None:
+    entries = rv.first_stage_rows(res)
+    if not entries:
         return ""
-    entries = first if all(isinstance(v, Mapping) for v in first.values()) else {"treatment": first}
     rows = []
     for endog, entry in entries.items():
         coefs = entry.get("coefficients", entry.get("coef"))
-        ses = entry.get("se") if isinstance(entry.get("se"), Mapping) else {}
-        stats = [rv.fmt(entry.get(k)) for k in ("partial_f", "robust_f", "partial_r2")]
+        ses = _ses(entry)
+        stats = [rv.fmt(entry.get(k)) if entry.get(k) is not None else "–" for k in ("partial_f", "robust_f")]
+        stats.append(rv.fmt(entry.get("partial_r2"), 3) if entry.get("partial_r2") is not None else "–")
         if isinstance(coefs, Mapping) and coefs:
             for i, (inst, value) in enumerate(coefs.items()):
-                se = rv.num(value.get("se")) if isinstance(value, Mapping) else rv.num(ses.get(inst))
-                coef = rv.fmt(value)
-                if se is not None:
-                    coef += f" ({rv.fmt(se)})"
-                rows.append(
-                    [
-                        mt.cell(endog) if i == 0 else "",
-                        mt.cell(inst),
-                        coef,
-                        *(stats if i == 0 else ["", "", ""]),
-                    ]
-                )
+                lead = [mt.cell(endog) if i == 0 else "", mt.cell(inst), _coef_with_se(value, ses.get(inst))]
+                rows.append(lead + (stats if i == 0 else ["", "", ""]))
         else:
             rows.append([mt.cell(endog), "–", "–", *stats])
-    return "#### First stage\n\n" + mt.table(
-        ["Treatment", "Instrument", "Coefficient (s.e.)", "Partial F", "Robust F", "Partial R²"],
-        rows,
-        "llrrrr",
+    return (
+        "#### First stage (treatment on instruments)\n\n"
+        + mt.table(
+            ["Treatment", "Instrument", "Coefficient (s.e.)", "Partial F", "Robust F", "Partial R²"],
+            rows,
+            "llrrrr",
+        )
+        + "\n\nPartial F uses homoskedastic errors; robust F uses the run's covariance."
     )
 
 
@@ -420,38 +447,51 @@ def _reduced_form(res: Mapping[str, Any]) -> str:
     if red is None:
         return ""
     coefs = red.get("coefficients", red.get("coef"))
-    ses = red.get("se") if isinstance(red.get("se"), Mapping) else {}
+    ses = _ses(red)
     rows = []
     if isinstance(coefs, Mapping):
-        for inst, value in coefs.items():
-            se = rv.num(value.get("se")) if isinstance(value, Mapping) else rv.num(ses.get(inst))
-            rows.append([mt.cell(inst), rv.fmt(value), rv.fmt(se) if se is not None else "–"])
-    text = "#### Reduced form (outcome on instruments)\n\n"
-    if rows:
-        text += mt.table(["Instrument", "Coefficient", "Std. error"], rows, "lrr")
-    extra = _scalars(red, exclude={"coefficients", "coef", "se"})
-    if extra:
-        text += ("\n\n" if rows else "") + extra
-    return text if rows or extra else ""
-
-
-def _scalars(node: Mapping[str, Any], exclude: set[str]) -> str:
-    rows = []
-    for key, value in node.items():
-        if key in exclude:
-            continue
-        if rv.num(value) is not None and not isinstance(value, Mapping | bool):
-            rows.append([mt.cell(key.replace("_", " ")), rv.fmt(value)])
-        elif isinstance(value, str) and len(value) < 200:
-            rows.append([mt.cell(key.replace("_", " ")), mt.cell(value)])
-    return mt.table(["Quantity", "Value"], rows, "lr") if rows else ""
+        rows = [[mt.cell(inst), _coef_with_se(value, ses.get(inst))] for inst, value in coefs.items()]
+    if not rows:
+        return ""
+    text = "#### Reduced form (outcome on instruments)\n\n" + mt.table(
+        ["Instrument", "Coefficient (s.e.)"], rows, "lr"
+    )
+    wald, p = rv.num(red.get("wald_f")), rv.pvalue(red)
+    if wald is not None:
+        text += (
+            f"\n\nJoint test that every reduced-form coefficient is zero: F = {rv.fmt(wald)}, p = {rv.fmt_p(p)}. "
+            "With valid instruments this is also a weak-instrument-robust test of no effect."
+        )
+    return text
 
 
 _STRENGTH_ROWS = (
-    ("kp_rk_wald_f", "Kleibergen–Paap rk Wald F"),
-    ("cragg_donald_f", "Cragg–Donald F"),
-    ("sanderson_windmeijer_f", "Sanderson–Windmeijer F"),
+    ("kp_rk_wald_f", "Kleibergen–Paap rk Wald F", "kp_rk_wald_reason"),
+    ("cragg_donald_f", "Cragg–Donald F", "cragg_donald_reason"),
+    ("sanderson_windmeijer_f", "Sanderson–Windmeijer F", "sanderson_windmeijer_reason"),
 )
+
+
+def _stock_yogo_rows(strength: Mapping[str, Any]) -> list[list[str]]:
+    raw = strength.get("stock_yogo")
+    if isinstance(raw, Mapping):
+        raw = raw.get("values")
+    rows = []
+    if isinstance(raw, Sequence) and not isinstance(raw, str):
+        for entry in raw:
+            if not isinstance(entry, Mapping) or rv.num(entry.get("critical_value")) is None:
+                continue
+            level = rv.num(entry.get("level"))
+            level_text = f"{rv.fmt(level * 100 if level is not None and level < 1 else level, 3)} %"
+            criterion = str(entry.get("criterion", "")).replace("_", " ")
+            rows.append(
+                [
+                    mt.cell(rv.method_label(str(entry.get("estimator", "")))),
+                    mt.cell(f"{criterion} at most {level_text}"),
+                    rv.fmt(entry.get("critical_value")),
+                ]
+            )
+    return rows
 
 
 def _strength(res: Mapping[str, Any]) -> str:
@@ -460,64 +500,53 @@ def _strength(res: Mapping[str, Any]) -> str:
         return ""
     rows = []
     sentences = []
+    skipped = []
     feff, cvs = rv.effective_f(res)
     if feff is not None:
         cv_text = "; ".join(f"τ = {tau} %: {rv.fmt(v)}" for tau, v in cvs.items()) or "–"
         rows.append(["Effective F (Montiel Olea–Pflueger)", rv.fmt(feff), cv_text])
         passed = [tau for tau, v in cvs.items() if feff >= v]
-        if cvs:
-            if passed:
-                sentences.append(
-                    f"The effective F of {rv.fmt(feff)} exceeds the critical value for τ = {min(passed)} %: at the "
-                    f"5 % level the data reject that the estimator's approximate bias is more than {min(passed)} % "
-                    "of a worst-case benchmark, so the instruments are not weak in that sense."
-                )
-            else:
-                sentences.append(
-                    f"The effective F of {rv.fmt(feff)} is below every listed critical value: the instruments may be "
-                    "weak, so the conventional interval can be badly off — rely on the weak-instrument-robust sets."
-                )
-    for key, label in _STRENGTH_ROWS:
+        if cvs and passed:
+            sentences.append(
+                f"The effective F of {rv.fmt(feff)} exceeds the critical value for τ = {min(passed)} %: at the "
+                f"5 % level the data reject that the estimator's approximate bias is more than {min(passed)} % "
+                "of a worst-case benchmark, so the instruments are not weak in that sense."
+            )
+        elif cvs:
+            sentences.append(
+                f"The effective F of {rv.fmt(feff)} is below every listed critical value: the instruments may be "
+                "weak, so the conventional interval can mislead — lean on the weak-instrument-robust sets."
+            )
+    elif strength.get("effective_f_reason"):
+        skipped.append(f"effective F — {mt.inline(strength['effective_f_reason'])}")
+    for key, label, reason_key in _STRENGTH_ROWS:
         value = strength.get(key)
-        if value is None:
-            continue
         if isinstance(value, Mapping) and rv.num(value) is None:
             for endog, inner in value.items():
                 if rv.num(inner) is not None:
                     rows.append([f"{label}, {mt.inline(endog)}", rv.fmt(inner), "–"])
         elif rv.num(value) is not None:
             rows.append([label, rv.fmt(value), "–"])
-    sy = strength.get("stock_yogo")
-    sy_rows = []
-    if isinstance(sy, Sequence) and not isinstance(sy, str):
-        for cell in sy:
-            if isinstance(cell, Mapping) and rv.num(cell.get("critical_value")) is not None:
-                level = rv.num(cell.get("level"))
-                level_text = f"{round(level * 100) if level is not None and level < 1 else rv.fmt(level)} %"
-                sy_rows.append(
-                    [
-                        mt.cell(cell.get("estimator", "")),
-                        mt.cell(cell.get("criterion", "")),
-                        level_text,
-                        rv.fmt(cell.get("critical_value")),
-                    ]
-                )
+        elif strength.get(reason_key):
+            skipped.append(f"{label} — {mt.inline(strength[reason_key])}")
+    sy_rows = _stock_yogo_rows(strength)
     if not rows and not sy_rows:
         return ""
     text = "#### Instrument strength\n\n"
     if rows:
-        text += mt.table(["Statistic", "Value", "Critical values"], rows, "lrl")
+        text += mt.table(["Statistic", "Value", "Critical values (5 % test)"], rows, "lrl")
     if sy_rows:
-        text += "\n\nStock–Yogo critical values for these dimensions:\n\n" + mt.table(
-            ["Estimator", "Criterion", "Level", "Critical value"], sy_rows, "llrr"
-        )
+        text += "\n\nStock–Yogo critical values for these dimensions, to compare with the Cragg–Donald F:\n\n"
+        text += mt.table(["Estimator", "Weak if", "Critical value"], sy_rows, "llr")
     sentences.append(
-        "Cragg–Donald assumes homoskedastic errors; Kleibergen–Paap and the effective F allow for the chosen "
-        "covariance. Stock–Yogo values were derived for homoskedastic errors, so comparing a robust statistic with "
-        "them is only indicative (common practice). Sanderson–Windmeijer F speaks to each treatment separately "
-        "when there are several."
+        "Cragg–Donald assumes homoskedastic errors; Kleibergen–Paap and the effective F allow for the run's "
+        "covariance. Stock–Yogo values were derived for homoskedastic errors, so holding a robust statistic "
+        "against them is only indicative (common practice)."
     )
-    return text + "\n\n" + " ".join(sentences)
+    text += "\n\n" + " ".join(sentences)
+    if skipped:
+        text += "\n\nNot computed: " + "; ".join(skipped) + "."
+    return text
 
 
 def _robust_inference(inp: DossierInput, run: RunInfo) -> str:
@@ -527,37 +556,50 @@ def _robust_inference(inp: DossierInput, run: RunInfo) -> str:
     ci = rv.intervals(_get(res, "ci", name)) if name else None
     if ci:
         rows.append(["Conventional Wald interval", rv.fmt_set(ci), "–", "–"])
-    robust = rv.section(res, "weak_iv_robust")
-    if robust is None and not rows:
-        return ""
     labels = (
         ("anderson_rubin", "Anderson–Rubin"),
         ("clr", "Conditional likelihood ratio (CLR)"),
         ("tf", "tF"),
     )
+    skipped = []
     for key, label in labels:
         node = rv.section(res, "weak_iv_robust", key)
         if node is None:
+            reason = rv.not_applicable_reason(_get(res, "weak_iv_robust", key))
+            if reason:
+                skipped.append(f"{label} — {mt.inline(reason)}")
             continue
         sets = rv.intervals(node)
-        stat = rv.num(node.get("statistic", node.get("stat")))
-        p = rv.pvalue(node)
         if key == "tf":
             cv = rv.num(node.get("critical_value"))
-            rows.append(
-                [label, rv.fmt_set(sets), f"critical value {rv.fmt(cv)}" if cv is not None else "–", "–"]
-            )
+            stat = f"critical value {rv.fmt(cv)}" if cv is not None else "–"
+            rows.append([label, rv.fmt_set(sets), stat, "–"])
         else:
-            rows.append([label, rv.fmt_set(sets), rv.fmt(stat) if stat is not None else "–", rv.fmt_p(p)])
+            stat_num = rv.num(node.get("statistic", node.get("stat")))
+            stat = rv.fmt(stat_num) if stat_num is not None else "–"
+            rows.append([label, rv.fmt_set(sets), stat, rv.fmt_p(rv.pvalue(node))])
     if len(rows) < 2:
         return ""
-    return (
+    level = _level_text(res)
+    text = (
         "#### Intervals that stay honest when instruments are weak\n\n"
-        + mt.table(["Procedure", "Set for the effect", "Statistic", "p-value (effect 0)"], rows, "llrr")
-        + "\n\nThe Anderson–Rubin and CLR sets keep their coverage however weak the instruments are; tF widens the "
-        "t-test's critical value according to the first-stage F. When these sets are much wider than the "
+        + mt.table(
+            [
+                "Procedure",
+                f"Set for the effect ({level})" if level else "Set for the effect",
+                "Statistic",
+                "p-value (no effect)",
+            ],
+            rows,
+            "llrr",
+        )
+        + "\n\nThe Anderson–Rubin and CLR sets keep their coverage however weak the instruments are; tF widens "
+        "the t-test's critical value according to the first-stage F. When these sets are much wider than the "
         "conventional interval, or unbounded, the conventional interval overstates what the data say."
     )
+    if skipped:
+        text += "\n\nNot computed: " + "; ".join(skipped) + "."
+    return text
 
 
 _OVERID_NOTE = (
@@ -576,19 +618,22 @@ def _tests(res: Mapping[str, Any], key: str, title: str, note: str) -> str:
         reason = rv.section_reason(res, key)
         return f"#### {title}\n\nNot computed: {mt.inline(reason)}." if reason else ""
     items: list[tuple[str, Mapping[str, Any]]] = []
-    if rv.num(node.get("statistic")) is not None:
-        items.append((str(node.get("name", node.get("test", key))), node))
+    if "statistic" in node:
+        if rv.num(node.get("statistic")) is None:
+            reason = node.get("reason")
+            return f"#### {title}\n\nNot computed: {mt.inline(reason)}." if reason else ""
+        items.append((str(node.get("test", node.get("name", key))), node))
     else:
         for sub, inner in node.items():
             if isinstance(inner, Mapping) and rv.num(inner.get("statistic")) is not None:
-                items.append((str(inner.get("name", sub)), inner))
+                items.append((str(inner.get("test", inner.get("name", sub))), inner))
     if not items:
         return ""
     rows = [
         [
             mt.cell(_pretty(label)),
             rv.fmt(inner.get("statistic")),
-            rv.fmt(inner.get("df")) if inner.get("df") is not None else "–",
+            rv.fmt(inner.get("df")) if rv.num(inner.get("df")) is not None else "–",
             rv.fmt_p(rv.pvalue(inner)),
         ]
         for label, inner in items
@@ -606,6 +651,7 @@ _PRETTY = {
     "wu_hausman": "Wu–Hausman",
     "dwh": "Durbin–Wu–Hausman",
     "durbin_wu_hausman": "Durbin–Wu–Hausman",
+    "durbin_wu_hausman_control_function": "Durbin–Wu–Hausman (control function)",
     "robust_score": "Robust score",
     "control_function": "Control function",
 }
@@ -660,9 +706,9 @@ def _provenance(inp: DossierInput) -> str:
         out.append(
             "### Data and runs\n\n" + mt.table(["Run", "Created", "Dataset", "SHA-256", "Seconds"], rows)
         )
-        specs = [_spec_table(r) for r in runs if r.spec]
+        specs = _spec_tables(runs)
         if specs:
-            out.append("### Exact specifications\n\n" + "\n\n".join(specs))
+            out.append("### Exact specifications\n\n" + specs)
         versions: dict[str, set[str]] = {}
         for r in runs:
             for pkg, ver in r.package_versions.items():
@@ -690,9 +736,19 @@ def _spec_value(value: Any) -> str:
         return str(value)
 
 
-def _spec_table(run: RunInfo) -> str:
-    rows = [[mt.cell(k), mt.cell(_spec_value(v))] for k, v in run.spec.items()]
-    return f"Run **{mt.inline(run.slug)}**:\n\n" + mt.table(["Option", "Value"], rows)
+def _spec_tables(runs: Sequence[RunInfo]) -> str:
+    """One option table per distinct specification, naming every run that used it."""
+    groups: dict[str, list[RunInfo]] = {}
+    for run in runs:
+        if run.spec:
+            groups.setdefault(json.dumps(run.spec, sort_keys=True, default=str), []).append(run)
+    blocks = []
+    for members in groups.values():
+        names = ", ".join(f"**{mt.inline(r.slug)}**" for r in members)
+        rows = [[mt.cell(k), mt.cell(_spec_value(v))] for k, v in members[0].spec.items()]
+        label = "Run" if len(members) == 1 else "Runs"
+        blocks.append(f"{label} {names}:\n\n" + mt.table(["Option", "Value"], rows))
+    return "\n\n".join(blocks)
 
 
 def _audit(inp: DossierInput) -> str:

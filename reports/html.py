@@ -17,11 +17,11 @@ from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
-from ivdossier.reports.mdtext import BADGE_PREFIX, FIGURE_INFO
 from markdown_it import MarkdownIt
 from markdown_it.token import Token
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.reports.mdtext import BADGE_PREFIX, FIGURE_INFO
 
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:; base-uri 'none'; form-action 'none'"
 _SAFE_SCHEMES = ("http:", "https:", "mailto:")

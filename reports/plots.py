@@ -12,10 +12,9 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
+from ivdossier.errors import InvalidInputError
 from ivdossier.reports.inputs import ArCurve, FirstStageBins
 from ivdossier.reports.mdtext import clean
-
-from ivdossier.errors import InvalidInputError
 
 INK = "#22262b"
 MUTED = "#6b737c"

@@ -143,7 +143,7 @@ def effective_f(results: Mapping[str, Any] | None) -> tuple[float | None, dict[i
 def intervals(value: Any) -> list[Interval] | None:
     """A confidence set as a list of (low, high): accepts [[lo, hi], ...], [lo, hi] or {"set": ...}."""
     if isinstance(value, Mapping):
-        for key in ("set", "intervals", "interval", "ci"):
+        for key in ("confidence_set", "set", "intervals", "interval", "ci"):
             if key in value:
                 return intervals(value[key])
         return None
@@ -163,6 +163,23 @@ def intervals(value: Any) -> list[Interval] | None:
         else:
             return None
     return out
+
+
+def first_stage_rows(results: Mapping[str, Any] | None) -> dict[str, Mapping[str, Any]]:
+    """First-stage entries keyed by treatment: accepts {"by_endog": {...}}, {name: {...}} or one flat entry."""
+    first = section(results, "first_stage")
+    if first is None:
+        return {}
+    inner = first.get("by_endog", first)
+    if isinstance(inner, Mapping) and inner and all(isinstance(v, Mapping) for v in inner.values()):
+        return {str(k): v for k, v in inner.items()}
+    return {"treatment": first}
+
+
+def method_label(method: str) -> str:
+    """Published estimator names for the method codes the estimation layer uses."""
+    labels = {"ols": "OLS", "2sls": "2SLS", "tsls": "2SLS", "liml": "LIML", "fuller": "Fuller"}
+    return labels.get(method.strip().lower(), method)
 
 
 def is_bounded(sets: list[Interval] | None) -> bool:

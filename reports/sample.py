@@ -57,80 +57,116 @@ def iv_results(
     ar: Any = None,
     overid_p: float | None = 0.41,
 ) -> dict[str, Any]:
-    """An estimation result shaped like `to_dict()` of the estimation layer (invented values)."""
+    """An estimation result shaped like `EstimationResult.to_dict()` of the estimation layer (invented values)."""
     return {
         "method": "2sls",
         "vcov": "cluster",
+        "outcome": "ed_visits",
         "n": 48210,
         "n_dropped": 37,
-        "n_clusters": 212,
-        "coef": {"telehealth": coef, "age": 0.004, "const": 1.12},
-        "se": {"telehealth": se, "age": 0.001, "const": 0.08},
-        "ci": {
-            "telehealth": [coef - 1.96 * se, coef + 1.96 * se],
-            "age": [0.002, 0.006],
-            "const": [0.96, 1.28],
-        },
+        "n_clusters": [212],
+        "alpha": 0.05,
+        "coef": {"telehealth": coef},
+        "se": {"telehealth": se},
+        "ci": {"telehealth": [coef - 1.96 * se, coef + 1.96 * se]},
         "first_stage": {
-            "telehealth": {
-                "coefficients": {"fibre_wave": -0.083, "clerk_propensity": 0.41},
-                "partial_f": 44.1,
-                "robust_f": 39.7,
-                "partial_r2": 0.031,
+            "by_endog": {
+                "telehealth": {
+                    "endog": "telehealth",
+                    "coefficients": {"fibre_wave": -0.083, "clerk_propensity": 0.41},
+                    "std_errors": {"fibre_wave": 0.011, "clerk_propensity": 0.07},
+                    "partial_f": 44.1,
+                    "robust_f": 39.7,
+                    "partial_r2": 0.031,
+                }
             }
         },
-        "reduced_form": {"coefficients": {"fibre_wave": 0.017, "clerk_propensity": -0.088}},
+        "reduced_form": {
+            "coefficients": {"fibre_wave": 0.017, "clerk_propensity": -0.088},
+            "std_errors": {"fibre_wave": 0.006, "clerk_propensity": 0.031},
+            "wald_f": 6.8,
+            "p_value": 0.0011,
+        },
         "strength": {
             "effective_f": {
                 "statistic": feff,
-                "critical_values": {"tau_5": 37.4, "tau_10": 23.1, "tau_20": 15.1, "tau_30": 12.0},
+                "critical_values": {
+                    "tau_5pct": 37.4,
+                    "tau_10pct": 23.1,
+                    "tau_20pct": 15.1,
+                    "tau_30pct": 12.0,
+                },
             },
             "kp_rk_wald_f": 40.2,
             "cragg_donald_f": 46.9,
-            "sanderson_windmeijer_f": {"telehealth": 40.2},
-            "stock_yogo": [
-                {
-                    "table": "bias",
-                    "estimator": "2SLS",
-                    "criterion": "relative bias",
-                    "n_endog": 1,
-                    "k2": 2,
-                    "level": 0.10,
-                    "critical_value": None,
-                    "reason": "needs at least 3 instruments",
-                },
-                {
-                    "table": "size",
-                    "estimator": "2SLS",
-                    "criterion": "size",
-                    "n_endog": 1,
-                    "k2": 2,
-                    "level": 0.10,
-                    "critical_value": 19.93,
-                    "reason": None,
-                },
-            ],
+            "sanderson_windmeijer_f": None,
+            "sanderson_windmeijer_reason": "with one endogenous regressor it equals the first-stage F",
+            "stock_yogo": {
+                "values": [
+                    {
+                        "estimator": "2sls",
+                        "criterion": "relative_bias",
+                        "level": 0.10,
+                        "critical_value": None,
+                        "reason": "needs at least 3 instruments",
+                    },
+                    {
+                        "estimator": "2sls",
+                        "criterion": "size",
+                        "level": 0.10,
+                        "critical_value": 19.93,
+                        "reason": None,
+                    },
+                ]
+            },
         },
         "weak_iv_robust": {
             "anderson_rubin": {
                 "statistic": 6.8,
-                "p_value": 0.033,
-                "set": ar if ar is not None else [[-0.35, -0.07]],
+                "p_value": 0.0011,
+                "confidence_set": ar if ar is not None else [[-0.35, -0.07]],
+                "reason": None,
             },
-            "tf": {"critical_value": 2.03, "interval": [coef - 2.03 * se, coef + 2.03 * se]},
-            "clr": {"statistic": 6.1, "p_value": 0.021, "set": [[-0.34, -0.08]]},
+            "tf": {
+                "applicable": True,
+                "reason": None,
+                "critical_value": 2.03,
+                "interval": [coef - 2.03 * se, coef + 2.03 * se],
+            },
+            "clr": {
+                "applicable": False,
+                "reason": "computed for the unadjusted covariance only",
+                "confidence_set": None,
+            },
         },
-        "overid": None
+        "overid": {
+            "test": "sargan",
+            "statistic": None,
+            "df": None,
+            "p_value": None,
+            "reason": "just identified",
+        }
         if overid_p is None
-        else {"hansen_j": {"statistic": 0.68, "df": 1, "p_value": overid_p}},
-        "endogeneity": {"durbin_wu_hausman": {"statistic": 5.9, "df": 1, "p_value": 0.015}},
+        else {"test": "hansen_j", "statistic": 0.68, "df": 1, "p_value": overid_p, "reason": None},
+        "endogeneity": {
+            "test": "durbin_wu_hausman_control_function",
+            "statistic": 5.9,
+            "df": 1,
+            "p_value": 0.015,
+        },
         "spec": {"outcome": "ed_visits", "treatment": ["telehealth"], "instruments": ["fibre_wave"]},
-        "conventions": {"small_sample": True},
+        "conventions": {"small_sample": "applied"},
     }
 
 
 def ols_results() -> dict[str, Any]:
+    """An OLS result: diagnostics sections marked not applicable, as the estimation layer does."""
+    na = {"status": "not applicable", "reason": "OLS uses no excluded instruments"}
     return {
+        "first_stage": na,
+        "strength": na,
+        "weak_iv_robust": na,
+        "overid": na,
         "method": "ols",
         "vcov": "cluster",
         "n": 48210,

@@ -153,9 +153,7 @@ def latest_run(runs: Sequence[RunInfo]) -> RunInfo | None:
     if not runs:
         return None
     ordered = sorted(runs, key=lambda r: (r.created_text, r.slug))
-    diagnostic = [
-        r for r in ordered if rv.section(r.results, "strength") or rv.section(r.results, "first_stage")
-    ]
+    diagnostic = [r for r in ordered if rv.section(r.results, "strength") or rv.first_stage_rows(r.results)]
     return (diagnostic or ordered)[-1]
 
 
@@ -182,14 +180,10 @@ def _ar_sets(run: RunInfo) -> list[rv.Interval] | None:
 
 
 def _first_stage_f(run: RunInfo) -> float | None:
-    first = rv.section(run.results, "first_stage")
-    if first is None:
-        return None
     values: list[float] = []
-    entries = first.values() if all(isinstance(v, Mapping) for v in first.values()) else [first]
-    for entry in entries:
-        value = rv.num(entry.get("robust_f")) if isinstance(entry, Mapping) else None
-        if value is None and isinstance(entry, Mapping):
+    for entry in rv.first_stage_rows(run.results).values():
+        value = rv.num(entry.get("robust_f"))
+        if value is None:
             value = rv.num(entry.get("partial_f"))
         if value is not None:
             values.append(value)
