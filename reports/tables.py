@@ -1,0 +1,236 @@
+"""Publication table of selected runs: one column per run, estimates over diagnostics, LaTeX or Markdown.
+
+Layout: a numbered column per run with its method beneath; the effect with its standard error in parentheses,
+the Wald interval and the Anderson-Rubin set; then instrument strength; then sample facts; a note names the runs
+and the data fingerprints. LaTeX uses booktabs rules and escapes every text cell.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from ivdossier.errors import InvalidInputError
+from ivdossier.reports import mdtext as mt
+from ivdossier.reports import resultview as rv
+from ivdossier.reports.inputs import RunInfo
+
+_LATEX_SPECIAL = {
+    "\\": r"\textbackslash{}",
+    "&": r"\&",
+    "%": r"\%",
+    "$": r"\$",
+    "#": r"\#",
+    "_": r"\_",
+    "{": r"\{",
+    "}": r"\}",
+    "~": r"\textasciitilde{}",
+    "^": r"\textasciicircum{}",
+    "<": r"\textless{}",
+    ">": r"\textgreater{}",
+    "|": r"\textbar{}",
+}
+_LATEX_RE = re.compile("|".join(re.escape(k) for k in _LATEX_SPECIAL))
+_LATEX_UNICODE = {
+    "τ": r"$\tau$",
+    "–": "--",
+    "—": "---",
+    "−": "-",
+    "≥": r"$\geq$",
+    "≤": r"$\leq$",
+    "×": r"$\times$",
+}
+
+
+def latex_escape(text: object) -> str:
+    """Escape text for LaTeX body text: special characters become commands; control characters and newlines go."""
+    cleaned = " ".join(mt.clean(text).replace("\ufffd", " ").split())
+    escaped = _LATEX_RE.sub(lambda m: _LATEX_SPECIAL[m.group(0)], cleaned)
+    for char, command in _LATEX_UNICODE.items():
+        escaped = escaped.replace(char, command)
+    return escaped
+
+
+@dataclass(frozen=True)
+class _Cell:
+    kind: str  # "text", "num", "se", "set", "blank"
+    value: Any = None
+
+
+def _tex_num(x: float | None, digits: int = 4) -> str:
+    if x is None:
+        return ""
+    if math.isinf(x):
+        return r"$\infty$" if x > 0 else r"$-\infty$"
+    return "$" + rv.fmt(x, digits).replace("−", "-") + "$"
+
+
+def _tex_set(sets: list[rv.Interval]) -> str:
+    if not sets:
+        return "empty"
+    parts = []
+    for lo, hi in sets:
+        left = "(" if math.isinf(lo) else "["
+        right = ")" if math.isinf(hi) else "]"
+        a = r"-\infty" if math.isinf(lo) else rv.fmt(lo).replace("−", "-")
+        b = r"\infty" if math.isinf(hi) else rv.fmt(hi).replace("−", "-")
+        parts.append(f"{left}{a}, {b}{right}")
+    return "$" + r" \cup ".join(parts) + "$"
+
+
+def _render(cell: _Cell, fmt: str) -> str:
+    if cell.kind == "blank" or cell.value is None:
+        return ""
+    if cell.kind == "text":
+        return latex_escape(cell.value) if fmt == "latex" else mt.cell(cell.value)
+    if cell.kind == "num":
+        return _tex_num(cell.value) if fmt == "latex" else rv.fmt(cell.value)
+    if cell.kind == "int":
+        return _tex_num(cell.value, 12) if fmt == "latex" else rv.fmt(cell.value, 12)
+    if cell.kind == "se":
+        inner = _tex_num(cell.value) if fmt == "latex" else rv.fmt(cell.value)
+        return f"({inner})"
+    if cell.kind == "set":
+        return _tex_set(cell.value) if fmt == "latex" else rv.fmt_set(cell.value)
+    raise AssertionError(cell.kind)
+
+
+def _treatment(run: RunInfo, treatment: str | None) -> str | None:
+    from ivdossier.reports.dossier import treatment_name
+
+    return treatment_name(run, treatment or "")
+
+
+def _rows(runs: Sequence[RunInfo], treatment: str | None) -> list[tuple[str, list[_Cell]]]:
+    est, se, ci, ar, feff, cv10, fs, kp, n, clusters, vcov = ([] for _ in range(11))
+    for run in runs:
+        res = run.results
+        name = _treatment(run, treatment)
+        coef = res.get("coef") if isinstance(res.get("coef"), dict) else {}
+        est.append(_Cell("num", rv.num(coef.get(name)) if name else None))
+        ses = res.get("se") if isinstance(res.get("se"), dict) else {}
+        se.append(_Cell("se", rv.num(ses.get(name)) if name else None))
+        cis = res.get("ci") if isinstance(res.get("ci"), dict) else {}
+        ci.append(_Cell("set", rv.intervals(cis.get(name)) if name else None))
+        ar.append(_Cell("set", rv.intervals(rv.section(res, "weak_iv_robust", "anderson_rubin"))))
+        f_eff, cvs = rv.effective_f(res)
+        feff.append(_Cell("num", f_eff))
+        cv10.append(_Cell("num", cvs.get(10)))
+        rows = rv.first_stage_rows(res)
+        robust = [rv.num(r.get("robust_f")) for r in rows.values()]
+        fs.append(_Cell("num", min((f for f in robust if f is not None), default=None)))
+        kp.append(_Cell("num", rv.num((rv.section(res, "strength") or {}).get("kp_rk_wald_f"))))
+        n.append(_Cell("int", rv.num(res.get("n"))))
+        raw = res.get("n_clusters")
+        count = (
+            raw[0]
+            if isinstance(raw, list) and len(raw) == 1
+            else (raw if not isinstance(raw, list) else None)
+        )
+        clusters.append(_Cell("int", rv.num(count)))
+        vcov.append(_Cell("text", run.vcov or res.get("vcov") or None))
+    label = treatment or next((t for r in runs if (t := _treatment(r, None))), None) or "treatment"
+    return [
+        (f"Effect of {label}", est),
+        ("", se),
+        ("Wald interval", ci),
+        ("Anderson–Rubin set", ar),
+        ("@First stage", []),
+        ("Effective F", feff),
+        ("  critical value, τ = 10 %", cv10),
+        ("Robust first-stage F", fs),
+        ("Kleibergen–Paap rk Wald F", kp),
+        ("@Sample", []),
+        ("Observations", n),
+        ("Clusters", clusters),
+        ("Covariance", vcov),
+    ]
+
+
+def runs_table(
+    runs: Sequence[RunInfo], fmt: str = "latex", *, treatment: str | None = None, caption: str | None = None
+) -> str:
+    """A publication table of `runs` (one column each) as LaTeX (booktabs) or Markdown.
+
+    Rows whose cells are empty in every run are left out. `treatment` names the coefficient to report when the
+    runs' specs do not.
+    """
+    if fmt not in ("latex", "markdown"):
+        raise InvalidInputError(f"fmt={fmt!r} is not a table format; use 'latex' or 'markdown'.")
+    if not runs:
+        raise InvalidInputError("runs_table needs at least one run; select runs to tabulate.")
+    k = len(runs)
+    body: list[tuple[str, list[str]]] = []
+    for label, cells in _rows(runs, treatment):
+        if label.startswith("@"):
+            body.append((label, []))
+            continue
+        rendered = [_render(c, fmt) for c in cells]
+        if any(rendered):
+            body.append((label, rendered))
+    # drop group headings with no rows beneath them
+    kept: list[tuple[str, list[str]]] = []
+    for i, (label, texts) in enumerate(body):
+        if label.startswith("@") and (i + 1 == len(body) or body[i + 1][0].startswith("@")):
+            continue
+        kept.append((label, texts))
+    heads = [f"({i + 1})" for i in range(k)]
+    methods = [rv.method_label(r.method) for r in runs]
+    note = "Columns: " + "; ".join(
+        f"({i + 1}) run {r.slug}" + (f", data {r.dataset_sha256[:12]}" if r.dataset_sha256 else "")
+        for i, r in enumerate(runs)
+    )
+    note += ". Standard errors in parentheses; intervals and sets at the level each run used."
+    if fmt == "markdown":
+        return _markdown(kept, heads, methods, note, caption)
+    return _latex(kept, heads, methods, note, caption)
+
+
+def _markdown(
+    body: list[tuple[str, list[str]]], heads: list[str], methods: list[str], note: str, caption: str | None
+) -> str:
+    rows = [["", *[mt.cell(m) for m in methods]]]
+    for label, cells in body:
+        if label.startswith("@"):
+            rows.append([f"*{mt.inline(label[1:])}*", *[""] * len(heads)])
+        else:
+            rows.append([mt.inline(label.strip()) if label.strip() else "", *cells])
+    text = mt.table(["", *heads], rows, "l" + "r" * len(heads))
+    lead = f"**{mt.inline(caption)}**\n\n" if caption else ""
+    return lead + text + "\n\n" + mt.inline(note) + "\n"
+
+
+def _latex(
+    body: list[tuple[str, list[str]]], heads: list[str], methods: list[str], note: str, caption: str | None
+) -> str:
+    k = len(heads)
+    lines = []
+    if caption:
+        lines.append(f"% {latex_escape(caption)}")
+    lines += [
+        r"\begin{tabular}{l" + "c" * k + "}",
+        r"\toprule",
+        " & ".join(["", *heads]) + r" \\",
+        " & ".join(["", *[latex_escape(m) for m in methods]]) + r" \\",
+        r"\midrule",
+    ]
+    for label, cells in body:
+        if label.startswith("@"):
+            lines.append(r"\addlinespace")
+            lines.append(
+                r"\multicolumn{" + str(k + 1) + r"}{l}{\textit{" + latex_escape(label[1:]) + r"}} \\"
+            )
+            continue
+        text = latex_escape(label.strip())
+        if label.startswith("  "):
+            text = r"\quad " + text
+        lines.append(" & ".join([text, *cells]) + r" \\")
+    lines += [
+        r"\bottomrule",
+        r"\multicolumn{" + str(k + 1) + r"}{p{0.9\linewidth}}{\footnotesize " + latex_escape(note) + r"} \\",
+        r"\end{tabular}",
+    ]
+    return "\n".join(lines) + "\n"
