@@ -85,12 +85,20 @@ def _global(
     settings.debug = debug
 
 
-def _register() -> None:
-    from ivdossier.cli import entities, estimation_cmds, general
+# Each module adds its commands through register(app); one line per module.
+COMMAND_MODULES = (
+    "general",
+    "entities",
+    "estimation_cmds",
+    "threat_cmds",
+)
 
-    general.register(app)
-    entities.register(app)
-    estimation_cmds.register(app)
+
+def _register() -> None:
+    import importlib
+
+    for name in COMMAND_MODULES:
+        importlib.import_module(f"ivdossier.cli.{name}").register(app)
 
 
 _register()

@@ -396,9 +396,11 @@ def link_add(
     json_out: JsonFlag = False,
 ) -> None:
     """Attach a catalogue threat to an instrument."""
+    from ivdossier.catalog_sync import ensure_builtin
     from ivdossier.registry.threats import link_threat
 
     with writing() as s:
+        ensure_builtin(s, actor=actor())
         link = link_threat(
             s,
             actor=actor(),

@@ -21,13 +21,11 @@ def register(app: typer.Typer) -> None:
 
 def init() -> None:
     """Create the registry (or upgrade its schema) and load the built-in threat catalogue."""
+    from ivdossier.catalog_sync import ensure_builtin
     from ivdossier.registry.db import resolve_url
-    from ivdossier.registry.threats import sync_catalog
-    from ivdossier.threats_catalog import load_builtin
 
-    catalog = load_builtin()
     with writing() as s:
-        added = sync_catalog(s, (t.to_dict() for t in catalog), version=catalog.version, actor=actor())
+        added = ensure_builtin(s, actor=actor())
 
     typer.echo(f"registry ready at {resolve_url(settings.db)} ({added} catalogue entries added or refreshed)")
 

@@ -1,0 +1,225 @@
+"""`ivdossier threat ...` (the catalogue) and `ivdossier graph ...` (the causal-graph checker)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Any
+
+import typer
+
+from ivdossier.cli.common import JsonFlag, actor, reading, writing
+from ivdossier.cli.output import print_json, print_record, print_table
+
+threat_app = typer.Typer(
+    help="The threat catalogue: built-in entries and the team's own.", no_args_is_help=True
+)
+graph_app = typer.Typer(
+    help="The causal graph of an instrument and the validity verdicts it implies.", no_args_is_help=True
+)
+
+
+def register(app: typer.Typer) -> None:
+    app.add_typer(threat_app, name="threat")
+    app.add_typer(graph_app, name="graph")
+
+
+def _catalog(session: Any) -> Any:
+    """Built-in entries plus the team's entries stored in the registry."""
+    from sqlmodel import select
+
+    from ivdossier.dossiers import catalog_entry
+    from ivdossier.registry.models import Threat
+    from ivdossier.threats_catalog.catalog import load_builtin, merge
+
+    team = [
+        catalog_entry(t)
+        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
+    ]
+    return merge(load_builtin(), team)
+
+
+def _row(t: Any) -> dict[str, Any]:
+    return {**t.to_dict(), "families": ", ".join(t.families), "checks": ", ".join(t.checks)}
+
+
+@threat_app.command("list")
+def threat_list(
+    condition: Annotated[
+        str | None, typer.Option(help="relevance, exclusion, exogeneity or monotonicity.")
+    ] = None,
+    family: Annotated[str | None, typer.Option(help="Instrument family, e.g. weather-shock.")] = None,
+    search: Annotated[str | None, typer.Option(help="Words that must all appear in the entry.")] = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Browse and search the catalogue."""
+    with reading() as s:
+        found = _catalog(s).search(
+            condition=condition, family=family, text=search, include_generic=family is not None
+        )
+    if json_out:
+        print_json([t.to_dict() for t in found])
+    else:
+        print_table(
+            [_row(t) for t in found], ["code", "condition", "testability", "title"], widths={"title": 70}
+        )
+
+
+@threat_app.command("show")
+def threat_show(code: str, json_out: JsonFlag = False) -> None:
+    """Show one catalogue entry in full."""
+    with reading() as s:
+        t = _catalog(s).get(code)
+    if json_out:
+        print_json(t.to_dict())
+        return
+    print_record(
+        [
+            ("code", t.code),
+            ("title", t.title),
+            ("condition", f"{t.condition} ({t.mechanism})"),
+            ("families", ", ".join(t.families)),
+            ("testability", t.testability),
+            ("description", t.description.strip()),
+            ("checks", ", ".join(t.checks) or "(none)"),
+            ("mitigations", "\n".join(f"- {m}" for m in t.mitigations) or "(none)"),
+            ("references", "; ".join(t.references) or "(none)"),
+            ("graph edges", ", ".join(f"{a} -> {b}" for a, b in t.fragment.edges) or "(none)"),
+        ]
+    )
+
+
+@threat_app.command("new")
+def threat_new(
+    file: Annotated[
+        Path, typer.Argument(help="A TOML file in the catalogue's entry format with a 'T-' code.")
+    ],
+    json_out: JsonFlag = False,
+) -> None:
+    """Add the team's own catalogue entry from a TOML file (validated like the built-ins)."""
+    from ivdossier.registry.threats import add_team_threat
+    from ivdossier.threats_catalog.catalog import load_entry_file
+
+    entry = load_entry_file(file)
+    with writing() as s:
+        if entry.code in _catalog(s):
+            from ivdossier.errors import ConflictError
+
+            raise ConflictError(
+                f"threat code {entry.code!r} is already in the catalogue; choose another 'T-' code."
+            )
+        add_team_threat(s, actor=actor(), entry=entry.to_dict())
+    print_json(entry.to_dict()) if json_out else typer.echo(f"team threat {entry.code} added")
+
+
+@threat_app.command("suggest")
+def threat_suggest(instrument: str, json_out: JsonFlag = False) -> None:
+    """Catalogue threats for the instrument's family that are not linked to it yet."""
+    from ivdossier.registry import records
+    from ivdossier.registry.models import Instrument
+    from ivdossier.registry.threats import links_of
+    from ivdossier.threats_catalog.catalog import suggest_for_family
+
+    with reading() as s:
+        inst = records.get(s, Instrument, instrument)
+        if not inst.family:
+            from ivdossier.errors import InvalidInputError
+
+            raise InvalidInputError(
+                f"instrument {instrument!r} has no family; set one with `instrument edit --family`."
+            )
+        linked = {t.code for _, t in links_of(s, inst)}
+        found = [t for t in suggest_for_family(inst.family, _catalog(s)) if t.code not in linked]
+    if json_out:
+        print_json([t.to_dict() for t in found])
+    else:
+        print_table(
+            [_row(t) for t in found], ["code", "condition", "families", "title"], widths={"title": 60}
+        )
+
+
+def _verdict(instrument: str) -> tuple[Any, Any]:
+    from ivdossier.dossiers import instrument_graph
+    from ivdossier.registry import records
+    from ivdossier.registry.models import Instrument
+
+    with reading() as s:
+        return instrument_graph(s, records.get(s, Instrument, instrument))
+
+
+@graph_app.command("check")
+def graph_check(instrument: str, json_out: JsonFlag = False) -> None:
+    """Verdict per condition from d-separation, with every open path that bypasses the treatment."""
+    from ivdossier.threats_catalog.graph import adjustment_sets
+
+    G, verdict = _verdict(instrument)
+    roles = {"instrument": verdict.instrument, "treatment": verdict.treatment, "outcome": verdict.outcome}
+    try:
+        sets = [sorted(x) for x in adjustment_sets(G, max_size=4, **roles)]
+    except Exception as exc:  # too many candidates: report instead of failing the check
+        sets = [[f"not searched: {exc}"]]
+    data = {**verdict.to_dict(), "adjustment_sets": sets}
+    if json_out:
+        print_json(data)
+        return
+    rows = [
+        {"condition": c, "verdict": v["value"], "why": "; ".join(v.get("reasons", []))}
+        for c, v in data["conditions"].items()
+    ]
+    print_table(rows, ["condition", "verdict", "why"], widths={"why": 90})
+    typer.echo(f"\nconditioning on: {', '.join(data['conditioning']) or '(nothing)'}")
+    if data["open_paths"]:
+        typer.echo("open paths from the instrument to the outcome that bypass the treatment:")
+        for p in data["open_paths"]:
+            codes = ", ".join(p["threats"]) or "team-drawn edges"
+            typer.echo(f"  {p['path']}   [{p['condition']}, {p['severity']}; from {codes}]")
+    if not sets:
+        typer.echo("no set of measured covariates restores the instrument criterion")
+    else:
+        typer.echo(
+            "measured covariate sets that satisfy the criterion: "
+            + "; ".join("{" + ", ".join(s) + "}" for s in sets)
+        )
+
+
+@graph_app.command("draw")
+def graph_draw(
+    instrument: str, out: Annotated[Path, typer.Option("--out", help="SVG file to write.")]
+) -> None:
+    """Write the instrument's causal diagram as a self-contained SVG."""
+    from ivdossier.errors import InvalidInputError
+    from ivdossier.threats_catalog.draw import render_svg
+
+    if out.suffix.lower() != ".svg":
+        raise InvalidInputError(f"--out {str(out)!r} must end in .svg.")
+    G, verdict = _verdict(instrument)
+    out.write_text(render_svg(G, verdict, title=f"Causal diagram: {instrument}"), encoding="utf-8")
+    typer.echo(f"diagram written to {out}")
+
+
+@graph_app.command("covariate")
+def graph_covariate(
+    program: str,
+    name: str,
+    unmeasured: Annotated[
+        bool, typer.Option("--unmeasured", help="The variable is not in the data.")
+    ] = False,
+    description: Annotated[str, typer.Option()] = "",
+) -> None:
+    """Declare a variable of the program's causal graph."""
+    from ivdossier.registry.instruments import add_covariate
+
+    with writing() as s:
+        add_covariate(
+            s, actor=actor(), program=program, name=name, measured=not unmeasured, description=description
+        )
+    typer.echo(f"covariate {name} added to {program} ({'unmeasured' if unmeasured else 'measured'})")
+
+
+@graph_app.command("edge")
+def graph_edge(program: str, source: str, target: str, note: Annotated[str, typer.Option()] = "") -> None:
+    """Add an edge of the team's own to the program's causal graph."""
+    from ivdossier.registry.instruments import add_edge
+
+    with writing() as s:
+        add_edge(s, actor=actor(), program=program, source=source, target=target, note=note)
+    typer.echo(f"edge {source} -> {target} added to {program}")

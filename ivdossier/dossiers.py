@@ -1,0 +1,197 @@
+"""Gather what one instrument's dossier shows from the registry: claims, links, ratings, graph verdict, runs.
+
+This module joins the layers (registry rows -> graph checker -> report inputs) so that the CLI, the demo and a
+notebook all build the same documents.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from datetime import datetime
+from typing import Any
+
+from sqlmodel import Session, select
+
+from ivdossier import __version__
+from ivdossier.registry import records
+from ivdossier.registry.history import history
+from ivdossier.registry.instruments import covariates_of, edges_of
+from ivdossier.registry.models import (
+    CONDITIONS,
+    Dataset,
+    Instrument,
+    Member,
+    Program,
+    Rating,
+    Run,
+    Threat,
+)
+from ivdossier.registry.runs import runs_of
+from ivdossier.registry.threats import THREAT_FIELDS, links_of
+from ivdossier.reports import inputs as ri
+
+CONFOUNDER = "U"
+
+
+def graph_roles(program: Program, instrument: Instrument) -> dict[str, str]:
+    """Node names for the graph: the data columns where known, else the role letters."""
+    z = instrument.columns[0] if instrument.columns and len(instrument.columns) == 1 else instrument.slug
+    roles = {"instrument": z, "treatment": program.treatment or "X", "outcome": program.outcome or "Y"}
+    if len(set(roles.values())) < 3:
+        roles = {"instrument": "Z", "treatment": "X", "outcome": "Y"}
+    return roles
+
+
+def conditioning_of(session: Session, instrument: Instrument, program: Program) -> set[str]:
+    """Measured covariates the latest estimation run controlled for: the set W the graph check conditions on."""
+    runs = [r for r in runs_of(session, instrument) if r.run_kind == "estimate"]
+    if not runs:
+        return set()
+    used = set((runs[-1].spec or {}).get("controls", []) or [])
+    measured = {c.name for c in covariates_of(session, program) if c.measured}
+    return used & measured
+
+
+def instrument_graph(session: Session, instrument: Instrument) -> tuple[Any, Any]:
+    """Build the instrument's causal graph from its program and linked threats, and check it."""
+    from ivdossier.threats_catalog.graph import build_graph, check_instrument
+
+    program = records.get_by_id(session, Program, instrument.program_id)
+    roles = graph_roles(program, instrument)
+    fragments = []
+    states: dict[str, str] = {}
+    for link, threat in links_of(session, instrument):
+        states[threat.code] = link.state
+        fragments.append(catalog_entry(threat).fragment)
+    covariates = {c.name: c.measured for c in covariates_of(session, program)}
+    G = build_graph(
+        **roles,
+        covariates=covariates,
+        fragments=fragments,
+        extra_edges=[(e.source, e.target) for e in edges_of(session, program)],
+        link_states=states,
+        confounder=CONFOUNDER,
+    )
+    verdict = check_instrument(G, conditioning=conditioning_of(session, instrument, program), **roles)
+    return G, verdict
+
+
+def catalog_entry(row: Threat) -> Any:
+    """The registry's copy of a threat as a validated catalogue entry (with its graph fragment)."""
+    from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
+
+    data = {f: getattr(row, f) for f in THREAT_FIELDS}
+    data["code"] = row.code
+    for f in ("families", "checks", "mitigations", "references"):
+        data[f] = data[f] or []
+    data["fragment"] = data["fragment"] or {"nodes": [], "edges": []}
+    return CatalogThreat.from_dict(data, source=f"registry threat {row.code}")
+
+
+def _ratings(session: Session, link_id: int | None) -> tuple[ri.Rating, ...]:
+    rows = session.exec(
+        select(Rating, Member)
+        .where(Rating.link_id == link_id, Rating.member_id == Member.id)
+        .order_by(Member.handle)
+    ).all()
+    return tuple(
+        ri.Rating(reviewer=m.handle, likelihood=r.likelihood, severity=r.severity, comment=r.comment)
+        for r, m in rows
+    )
+
+
+def run_info(session: Session, run: Run) -> ri.RunInfo:
+    """A stored run as the reports layer reads it, with its plot summaries."""
+    results: Mapping[str, Any] = run.results or {}
+    plots: Mapping[str, Any] = results.get("plot_data") or {}
+    bins = plots.get("first_stage_bins")
+    curve = plots.get("ar_curve")
+    dataset = session.get(Dataset, run.dataset_id) if run.dataset_id else None
+    return ri.RunInfo(
+        slug=run.slug,
+        created_at=run.created_at,
+        method=str(results.get("method", (run.spec or {}).get("method", ""))),
+        vcov=str(results.get("vcov", (run.spec or {}).get("vcov", ""))),
+        spec=run.spec or {},
+        dataset_path=dataset.path if dataset else "",
+        dataset_sha256=dataset.sha256 if dataset else "",
+        results={k: v for k, v in results.items() if k != "plot_data"},
+        package_versions=run.versions or {},
+        seconds=run.seconds,
+        first_stage_bins=ri.FirstStageBins(
+            x_bins=tuple(bins["x_bins"]),
+            y_bins=tuple(bins["y_bins"]),
+            x_label=bins.get("x_label", "instrument"),
+            y_label=bins.get("y_label", "treatment"),
+        )
+        if bins
+        else None,
+        ar_curve=ri.ArCurve(
+            betas=tuple(curve["betas"]), stats=tuple(curve["stats"]), critical_value=curve["critical_value"]
+        )
+        if curve
+        else None,
+    )
+
+
+def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) -> ri.DossierInput:
+    """Everything the dossier of instrument `slug` shows, read in one session."""
+    from ivdossier.threats_catalog.draw import render_svg
+
+    inst = records.get(session, Instrument, slug)
+    program = records.get_by_id(session, Program, inst.program_id)
+    links = tuple(
+        ri.LinkInfo(
+            threat_code=threat.code,
+            title=threat.title,
+            condition=threat.condition,
+            state=link.state,
+            argument=link.argument,
+            evidence=link.evidence,
+            ratings=_ratings(session, link.id),
+            checks=tuple(ri.CheckInfo(name=c) for c in (threat.checks or [])),
+        )
+        for link, threat in links_of(session, inst)
+    )
+    G, verdict = instrument_graph(session, inst)
+    graph = ri.GraphInfo(
+        verdict=verdict.to_dict(), svg=render_svg(G, verdict, title=f"Causal diagram for {inst.name}")
+    )
+    runs = tuple(run_info(session, r) for r in runs_of(session, inst) if r.run_kind == "estimate")
+    link_uuids = {lk.uuid for lk, _ in links_of(session, inst)}
+    events = [e for e in history(session) if e.entity_uuid == inst.uuid or e.entity_uuid in link_uuids]
+    audit = tuple(
+        ri.AuditEvent(
+            when=e.at,
+            actor=e.actor,
+            action=e.action,
+            entity=e.entity_label,
+            summary=e.reason or ", ".join(sorted((e.after or {}).keys()))[:200],
+        )
+        for e in events
+    )
+    return ri.DossierInput(
+        program=ri.ProgramInfo(
+            slug=program.slug,
+            title=program.title,
+            question=program.question,
+            treatment=program.treatment,
+            outcome=program.outcome,
+            unit=program.unit,
+            population=program.population,
+        ),
+        instrument=ri.InstrumentInfo(
+            slug=inst.slug,
+            name=inst.name,
+            family=inst.family,
+            columns=tuple(inst.columns or ()),
+            state=inst.state,
+            claims={c: getattr(inst, f"claim_{c}") for c in CONDITIONS},
+        ),
+        generated_at=generated_at,
+        tool_version=__version__,
+        links=links,
+        runs=runs,
+        graph=graph,
+        audit=audit,
+    )
