@@ -1,0 +1,754 @@
+"""Falsification checks: balance, a zero-first-stage subsample, placebo outcomes, instruments one at a time.
+
+None of these can establish exclusion or independence; they can only reveal some failures. Each regression
+uses the project's data preparation (:func:`ivdossier.estimation.data.prepare`: listwise deletion, controls
+and absorbed fixed effects partialled out, weights) and covariance
+(:func:`ivdossier.estimation.covariance.sandwich`) with the chosen ``vcov``.
+
+Conventions (stated here once):
+
+* Per-target regressions: target on the instruments, controls and fixed effects partialled out. p-values and
+  intervals use t quantiles with n - k - p degrees of freedom (G - 1 with clusters), or normal quantiles when
+  ``small_sample`` is False — the same references as :func:`ivdossier.estimation.estimate`.
+* Joint test across targets: the m target regressions share their regressors, so their stacked coefficients
+  have the seemingly-unrelated covariance from ``sandwich`` with m equations (cross-equation terms from the
+  same rows or clusters). Wald = b' V^{-1} b, chi-square with m x L degrees of freedom.
+* Standardised difference: for one binary (0/1) instrument the usual (mean1 - mean0) / sqrt((s1^2 + s0^2) / 2)
+  on the raw, unadjusted covariate (sample variances); otherwise the adjusted coefficient times
+  SD(Z) / SD(W), both raw sample SDs in the estimation rows (change in W, in SDs, per SD of Z).
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, replace
+from typing import Any, cast
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+from scipy import stats
+
+from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.estimation.api import estimate_prepared
+from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
+from ivdossier.estimation.data import PreparedData, as_names, prepare
+from ivdossier.estimation.estimators import fit_kclass
+from ivdossier.estimation.result import json_value
+
+__all__ = [
+    "InstrumentCoefficient",
+    "InstrumentRegressions",
+    "JointTest",
+    "JustIdentifiedEstimate",
+    "PerInstrumentResult",
+    "TargetRegression",
+    "ZeroFirstStageResult",
+    "balance",
+    "per_instrument",
+    "placebo_outcomes",
+    "zero_first_stage",
+]
+
+Array = NDArray[np.float64]
+
+CAUTION = (
+    "Falsification checks can reveal some failures of exclusion or independence but cannot establish "
+    "either; conclusions for policy or clinical decisions need domain review."
+)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# result types
+# ----------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class InstrumentCoefficient:
+    """Coefficient of one instrument in one target regression."""
+
+    instrument: str
+    coef: float
+    se: float
+    t: float
+    p_value: float
+    ci_lower: float
+    ci_upper: float
+    std_diff: float
+    std_diff_kind: str  # "binary: (mean1 - mean0) / pooled SD" or "continuous: coef * SD(Z) / SD(W)"
+
+    def to_dict(self) -> dict[str, Any]:
+        return cast(dict[str, Any], json_value(dict(self.__dict__)))
+
+
+@dataclass(frozen=True)
+class TargetRegression:
+    """One target (covariate, placebo outcome, treatment or outcome) regressed on the instruments.
+
+    ``wald``/``wald_df``/``wald_p_value`` test all instrument coefficients of this target jointly (chi-square,
+    df = L); ``f`` is that Wald divided by L (the first-stage F when the target is the treatment).
+    """
+
+    target: str
+    coefficients: tuple[InstrumentCoefficient, ...]
+    wald: float
+    wald_df: int
+    wald_p_value: float
+    f: float
+    n: int
+
+    def to_dict(self) -> dict[str, Any]:
+        out = cast(
+            dict[str, Any], json_value({k: v for k, v in self.__dict__.items() if k != "coefficients"})
+        )
+        out["coefficients"] = [c.to_dict() for c in self.coefficients]
+        return out
+
+
+@dataclass(frozen=True)
+class JointTest:
+    """Stacked (seemingly unrelated) Wald test that every instrument coefficient of every target is zero."""
+
+    statistic: float
+    df: int
+    p_value: float
+    description: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return cast(dict[str, Any], json_value(dict(self.__dict__)))
+
+
+@dataclass(frozen=True)
+class InstrumentRegressions:
+    """Balance table or placebo-outcome table: per-target regressions and the joint test."""
+
+    kind: str  # "balance" or "placebo_outcomes"
+    instruments: tuple[str, ...]
+    rows: tuple[TargetRegression, ...]
+    joint: JointTest
+    n: int
+    n_dropped: int
+    controls: tuple[str, ...]
+    absorb: tuple[str, ...]
+    vcov: str
+    alpha: float
+    reference: str
+    caution: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "kind": self.kind,
+            "instruments": list(self.instruments),
+            "rows": [r.to_dict() for r in self.rows],
+            "joint": self.joint.to_dict(),
+            "n": self.n,
+            "n_dropped": self.n_dropped,
+            "controls": list(self.controls),
+            "absorb": list(self.absorb),
+            "vcov": self.vcov,
+            "alpha": self.alpha,
+            "reference": self.reference,
+            "caution": self.caution,
+        }
+
+
+# ----------------------------------------------------------------------------------------------------------
+# shared core: several targets regressed on the same instruments, on the same rows
+# ----------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class _Stacked:
+    targets: tuple[str, ...]
+    instruments: tuple[str, ...]
+    coef: Array  # (m, L)
+    cov: Array  # (m L, m L), equation-major
+    quantile: float
+    dist: tuple[str, int | None]  # ("t", df) or ("normal", None)
+    n: int
+    n_dropped: int
+    frame: pd.DataFrame  # the estimation rows (raw values)
+    prepared: PreparedData  # of the first target (instruments, n_partialled, clusters)
+
+
+def _check_common(vcov: str, alpha: float, cluster: str | Sequence[str] | None) -> tuple[str, ...]:
+    if vcov not in COV_KINDS:
+        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
+    clus = as_names(cluster, "cluster")
+    if vcov == "cluster" and not clus:
+        raise InvalidInputError("vcov='cluster' needs cluster= (one or two column names); pass cluster=.")
+    if clus and vcov != "cluster":
+        raise InvalidInputError(
+            f"cluster= was given with vcov={vcov!r}; use vcov='cluster' or drop cluster=."
+        )
+    if not 0.0 < alpha < 1.0:
+        raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
+    return clus
+
+
+def _complete_rows(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[pd.DataFrame, int]:
+    """Keep rows complete over ``columns`` (listwise deletion shared by all targets); names a missing column."""
+    missing = [c for c in columns if c not in frame.columns]
+    if missing:
+        close = difflib.get_close_matches(missing[0], [str(c) for c in frame.columns], n=3, cutoff=0.6)
+        hint = f"; did you mean {', '.join(map(repr, close))}?" if close else "; check the spelling."
+        raise InvalidInputError(f"Column {missing[0]!r} is not in the data{hint}")
+    keep = frame[list(dict.fromkeys(columns))].notna().all(axis=1)
+    out = frame.loc[keep]
+    if len(out) == 0:
+        raise InvalidInputError("No row is complete over the used columns; check for missing values.")
+    return out, int((~keep).sum())
+
+
+def _reference(vcov: str, small_sample: bool, df: int, n_clusters: tuple[int, ...]) -> tuple[str, int | None]:
+    if not small_sample:
+        return "normal", None
+    if vcov == "cluster":
+        return "t", min(n_clusters) - 1
+    return "t", df
+
+
+def _stacked(
+    data: pd.DataFrame,
+    *,
+    targets: Sequence[str],
+    instruments: Sequence[str],
+    controls: str | Sequence[str],
+    absorb: str | Sequence[str],
+    cluster: str | Sequence[str] | None,
+    weights: str | None,
+    vcov: str,
+    small_sample: bool,
+    alpha: float,
+) -> _Stacked:
+    if not isinstance(data, pd.DataFrame):
+        raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
+    clus = _check_common(vcov, alpha, cluster)
+    inst = as_names(instruments, "instruments")
+    if not inst:
+        raise InvalidInputError("instruments= is empty; name at least one instrument column.")
+    tgts = tuple(targets)
+    if not tgts:
+        raise InvalidInputError("No target columns were given; name at least one covariate or outcome.")
+    ctrl, fe = as_names(controls, "controls"), as_names(absorb, "absorb")
+    used = [*tgts, *inst, *ctrl, *fe, *clus, *((weights,) if weights else ())]
+    frame, n_dropped = _complete_rows(data, used)
+    for z in inst:
+        col = pd.to_numeric(frame[z], errors="coerce")
+        if col.nunique(dropna=True) < 2:
+            raise EstimationError(f"Instrument {z!r} is constant in the used rows; drop it.")
+    preps = [
+        prepare(
+            frame,
+            outcome=t,
+            treatment=inst,
+            controls=ctrl,
+            absorb=fe,
+            cluster=clus,
+            weights=weights,
+            require_instruments=False,
+        )
+        for t in tgts
+    ]
+    first = preps[0]
+    z = first.X
+    coefs, resids = [], []
+    for p in preps:
+        fit = fit_kclass(p.y, z, None, method="ols")
+        coefs.append(fit.beta)
+        resids.append(fit.resid)
+    spec = CovSpec(cast(CovKind, vcov), first.clusters if vcov == "cluster" else (), small_sample)
+    cov = sandwich(
+        z,
+        np.column_stack(resids),
+        spec,
+        n_partialled=first.n_partialled,
+        n_partialled_nested=first.n_partialled_nested,
+    )
+    df = first.n - len(inst) - first.n_partialled
+    dist = _reference(vcov, small_sample, df, spec.n_clusters())
+    quantile = float(
+        stats.norm.ppf(1 - alpha / 2) if dist[0] == "normal" else stats.t.ppf(1 - alpha / 2, dist[1])
+    )
+    return _Stacked(
+        targets=tgts,
+        instruments=inst,
+        coef=np.vstack(coefs),
+        cov=np.asarray(cov, dtype=np.float64),
+        quantile=quantile,
+        dist=dist,
+        n=first.n,
+        n_dropped=n_dropped,
+        frame=frame,
+        prepared=first,
+    )
+
+
+def _wald(coef: Array, cov: Array) -> float:
+    try:
+        return float(coef @ np.linalg.solve(cov, coef))
+    except np.linalg.LinAlgError:
+        return float(coef @ np.linalg.pinv(cov) @ coef)
+
+
+def _p_two_sided(t: float, dist: tuple[str, int | None]) -> float:
+    if dist[0] == "normal":
+        return float(2 * stats.norm.sf(abs(t)))
+    return float(2 * stats.t.sf(abs(t), dist[1]))
+
+
+def _std_diff(
+    frame: pd.DataFrame, target: str, instrument: str, coef: float, n_inst: int
+) -> tuple[float, str]:
+    w = pd.to_numeric(frame[target]).to_numpy(dtype=np.float64)
+    z = pd.to_numeric(frame[instrument]).to_numpy(dtype=np.float64)
+    if n_inst == 1 and set(np.unique(z)) <= {0.0, 1.0}:
+        w1, w0 = w[z == 1.0], w[z == 0.0]
+        pooled = (
+            math.sqrt((np.var(w1, ddof=1) + np.var(w0, ddof=1)) / 2) if min(w1.size, w0.size) > 1 else 0.0
+        )
+        value = (w1.mean() - w0.mean()) / pooled if pooled > 0 else math.nan
+        return float(value), "binary: (mean1 - mean0) / pooled SD"
+    sd_w = float(np.std(w, ddof=1))
+    value = coef * float(np.std(z, ddof=1)) / sd_w if sd_w > 0 else math.nan
+    return float(value), "continuous: coef * SD(Z) / SD(W)"
+
+
+def _rows(st: _Stacked, *, std_diff: bool = True) -> tuple[TargetRegression, ...]:
+    n_inst = len(st.instruments)
+    out = []
+    for j, target in enumerate(st.targets):
+        block = slice(j * n_inst, (j + 1) * n_inst)
+        cov_j = st.cov[block, block]
+        coefs = []
+        for i, z in enumerate(st.instruments):
+            b = float(st.coef[j, i])
+            se = math.sqrt(max(float(cov_j[i, i]), 0.0))
+            t = b / se if se > 0 else math.inf
+            sd, kind = _std_diff(st.frame, target, z, b, n_inst) if std_diff else (math.nan, "not computed")
+            coefs.append(
+                InstrumentCoefficient(
+                    instrument=z,
+                    coef=b,
+                    se=se,
+                    t=t,
+                    p_value=_p_two_sided(t, st.dist),
+                    ci_lower=b - st.quantile * se,
+                    ci_upper=b + st.quantile * se,
+                    std_diff=sd,
+                    std_diff_kind=kind,
+                )
+            )
+        w = _wald(st.coef[j], cov_j)
+        out.append(
+            TargetRegression(
+                target=target,
+                coefficients=tuple(coefs),
+                wald=w,
+                wald_df=n_inst,
+                wald_p_value=float(stats.chi2.sf(w, n_inst)),
+                f=w / n_inst,
+                n=st.n,
+            )
+        )
+    return tuple(out)
+
+
+def _joint(st: _Stacked) -> JointTest:
+    stat = _wald(st.coef.ravel(), st.cov)
+    df = st.coef.size
+    return JointTest(
+        statistic=stat,
+        df=df,
+        p_value=float(stats.chi2.sf(stat, df)),
+        description=(
+            f"stacked Wald test of all {len(st.instruments)} instrument coefficient(s) in all "
+            f"{len(st.targets)} regression(s), seemingly-unrelated covariance, chi-square with {df} df"
+        ),
+    )
+
+
+def _reference_text(st: _Stacked) -> str:
+    return (
+        "normal quantiles" if st.dist[0] == "normal" else f"t quantiles with {st.dist[1]} degrees of freedom"
+    )
+
+
+def _regressions(kind: str, st: _Stacked, *, vcov: str, alpha: float) -> InstrumentRegressions:
+    return InstrumentRegressions(
+        kind=kind,
+        instruments=st.instruments,
+        rows=_rows(st),
+        joint=_joint(st),
+        n=st.n,
+        n_dropped=st.n_dropped,
+        controls=st.prepared.controls,
+        absorb=st.prepared.absorb,
+        vcov=vcov,
+        alpha=alpha,
+        reference=_reference_text(st),
+        caution=CAUTION,
+    )
+
+
+# ----------------------------------------------------------------------------------------------------------
+# balance and placebo outcomes
+# ----------------------------------------------------------------------------------------------------------
+
+
+def balance(
+    data: pd.DataFrame,
+    *,
+    instruments: str | Sequence[str],
+    covariates: Sequence[str],
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    vcov: str = "robust",
+    small_sample: bool = True,
+    alpha: float = 0.05,
+) -> InstrumentRegressions:
+    """Balance of the instruments against predetermined covariates: one regression per covariate, joint test.
+
+    A covariate should be measured before the instrument could affect it.
+    """
+    covs = as_names(covariates, "covariates")
+    if not covs:
+        raise InvalidInputError("covariates is empty; name at least one predetermined covariate.")
+    st = _stacked(
+        data,
+        targets=covs,
+        instruments=as_names(instruments, "instruments"),
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+    )
+    return _regressions("balance", st, vcov=vcov, alpha=alpha)
+
+
+def placebo_outcomes(
+    data: pd.DataFrame,
+    *,
+    instruments: str | Sequence[str],
+    outcomes: Sequence[str],
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    vcov: str = "robust",
+    small_sample: bool = True,
+    alpha: float = 0.05,
+) -> InstrumentRegressions:
+    """Reduced form of each placebo outcome (one the treatment cannot affect) on the instruments."""
+    outs = as_names(outcomes, "outcomes")
+    if not outs:
+        raise InvalidInputError("outcomes is empty; name at least one placebo outcome column.")
+    st = _stacked(
+        data,
+        targets=outs,
+        instruments=as_names(instruments, "instruments"),
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+    )
+    return _regressions("placebo_outcomes", st, vcov=vcov, alpha=alpha)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# zero first stage
+# ----------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ZeroFirstStageResult:
+    """First stage and reduced form in a subsample where the instrument should not move the treatment.
+
+    ``prior_mu`` and ``prior_omega`` are the reduced-form coefficients of Y on Z in the subsample and their
+    covariance, in outcome units per unit of each instrument: the scale of gamma in
+    :func:`ivdossier.estimation.sensitivity.local_to_zero`. Using them as the local-to-zero prior assumes
+    (i) the treatment does not respond to Z in the subsample, so the reduced form there is the direct effect,
+    and (ii) the direct effect is the same in the subsample and the analysis sample.
+    """
+
+    subsample: str
+    n: int
+    n_dropped: int
+    n_full: int
+    instruments: tuple[str, ...]
+    first_stage: TargetRegression
+    first_stage_p_value: float
+    reduced_form: TargetRegression
+    prior_mu: tuple[float, ...]
+    prior_omega: tuple[tuple[float, ...], ...]
+    assumption: str
+    warning: str | None
+    vcov: str
+    alpha: float
+    caution: str
+
+    def to_dict(self) -> dict[str, Any]:
+        out = cast(
+            dict[str, Any],
+            json_value({k: v for k, v in self.__dict__.items() if k not in ("first_stage", "reduced_form")}),
+        )
+        out["first_stage"] = self.first_stage.to_dict()
+        out["reduced_form"] = self.reduced_form.to_dict()
+        out["kind"] = "zero_first_stage"
+        return out
+
+
+def _select_subsample(
+    data: pd.DataFrame, subsample: str | None, query: str | None
+) -> tuple[pd.DataFrame, str]:
+    if (subsample is None) == (query is None):
+        raise InvalidInputError(
+            "give exactly one of subsample= (a boolean column marking the rows) or query= (a condition on "
+            'columns, e.g. "broadband == 0").'
+        )
+    if subsample is not None:
+        if subsample not in data.columns:
+            raise InvalidInputError(
+                f"Subsample column {subsample!r} is not in the data; name a boolean column."
+            )
+        col = data[subsample]
+        if col.isna().any():
+            raise InvalidInputError(
+                f"Subsample column {subsample!r} has missing values; fill them with False."
+            )
+        values = set(pd.unique(col))
+        if not values <= {True, False}:
+            raise InvalidInputError(
+                f"Subsample column {subsample!r} must be boolean (True/False or 1/0); recode it or use query=."
+            )
+        mask = col.astype(bool).to_numpy()
+        label = f"rows where {subsample} is true"
+    else:
+        assert query is not None
+        try:
+            mask = np.asarray(data.eval(query), dtype=bool)
+        except Exception as exc:  # pandas raises many types for a bad expression
+            raise InvalidInputError(
+                f"query {query!r} could not be evaluated ({exc}); write a condition on column names such as "
+                '"broadband == 0".'
+            ) from exc
+        if mask.shape != (len(data),):
+            raise InvalidInputError(f"query {query!r} does not give one true/false value per row.")
+        label = f"rows where {query}"
+    sub = data.loc[mask]
+    if len(sub) == 0:
+        raise InvalidInputError(f"The subsample ({label}) selects no rows; check the condition.")
+    return sub, label
+
+
+def zero_first_stage(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str,
+    instruments: str | Sequence[str],
+    subsample: str | None = None,
+    query: str | None = None,
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    vcov: str = "robust",
+    small_sample: bool = True,
+    alpha: float = 0.05,
+) -> ZeroFirstStageResult:
+    """First stage (should be near zero) and reduced form of Y on Z in a subsample where Z should not move X.
+
+    The subsample is ``subsample`` (a boolean column) or ``query`` (a pandas expression such as
+    "broadband == 0"); the reduced form doubles as a local-to-zero prior (see the result's ``assumption``).
+    """
+    if not isinstance(data, pd.DataFrame):
+        raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
+    sub, label = _select_subsample(data, subsample, query)
+    inst = as_names(instruments, "instruments")
+    st = _stacked(
+        sub,
+        targets=(treatment, outcome),
+        instruments=inst,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+    )
+    rows = _rows(st, std_diff=False)
+    first, reduced = rows
+    n_inst = len(inst)
+    normal = st.dist[0] == "normal"
+    fs_p = first.wald_p_value if normal else float(stats.f.sf(first.f, n_inst, st.dist[1]))
+    warning = None
+    if fs_p < alpha:
+        warning = (
+            f"the first stage in the subsample is not near zero (F = {first.f:.2f}, p = {fs_p:.3g}): the reduced "
+            "form there mixes the direct effect with an effect through the treatment, so it overstates or "
+            "understates gamma; choose a subsample where the treatment cannot respond"
+        )
+    block = slice(n_inst, 2 * n_inst)
+    omega = st.cov[block, block]
+    return ZeroFirstStageResult(
+        subsample=label,
+        n=st.n,
+        n_dropped=st.n_dropped,
+        n_full=len(data),
+        instruments=inst,
+        first_stage=first,
+        first_stage_p_value=fs_p,
+        reduced_form=reduced,
+        prior_mu=tuple(map(float, st.coef[1])),
+        prior_omega=tuple(tuple(map(float, r)) for r in omega),
+        assumption=(
+            "in the subsample the treatment does not respond to the instrument, so the reduced form of the "
+            "outcome on the instrument is its direct effect; that direct effect is assumed equal in the "
+            "analysis sample (prior mean = subsample reduced form, prior covariance = its sampling covariance)"
+        ),
+        warning=warning,
+        vcov=vcov,
+        alpha=alpha,
+        caution=CAUTION,
+    )
+
+
+# ----------------------------------------------------------------------------------------------------------
+# instruments one at a time
+# ----------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class JustIdentifiedEstimate:
+    """2SLS with one instrument alone (the other instruments left out), on the common estimation rows."""
+
+    instrument: str
+    estimate: float
+    se: float
+    ci_lower: float
+    ci_upper: float
+    first_stage_f: float
+    difference_from_all: float
+
+    def to_dict(self) -> dict[str, Any]:
+        return cast(dict[str, Any], json_value(dict(self.__dict__)))
+
+
+@dataclass(frozen=True)
+class PerInstrumentResult:
+    """Each instrument's just-identified estimate beside the over-identified 2SLS and its J/Sargan test.
+
+    ``first_stage_f`` is the Wald F of the instrument in its own first stage with the chosen covariance. The
+    over-identification test (from :mod:`ivdossier.estimation.specification`) asks whether the instruments
+    agree with one another; agreement cannot show that any of them is valid.
+    """
+
+    treatment: str
+    instruments: tuple[str, ...]
+    rows: tuple[JustIdentifiedEstimate, ...]
+    estimate_all: float
+    se_all: float
+    ci_all: tuple[float, float]
+    overid: dict[str, Any]
+    n: int
+    n_dropped: int
+    vcov: str
+    alpha: float
+    ci_reference: str
+    caution: str
+
+    def to_dict(self) -> dict[str, Any]:
+        out = cast(dict[str, Any], json_value({k: v for k, v in self.__dict__.items() if k != "rows"}))
+        out["rows"] = [r.to_dict() for r in self.rows]
+        out["kind"] = "per_instrument"
+        return out
+
+
+def per_instrument(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str,
+    instruments: Sequence[str],
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    vcov: str = "robust",
+    small_sample: bool = True,
+    alpha: float = 0.05,
+) -> PerInstrumentResult:
+    """Just-identified 2SLS for each instrument and the over-identified comparison (two or more instruments)."""
+    from ivdossier.estimation.specification import overid_test
+
+    if not isinstance(data, pd.DataFrame):
+        raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
+    clus = _check_common(vcov, alpha, cluster)
+    if not isinstance(treatment, str):
+        raise InvalidInputError(
+            "per_instrument takes one treatment column; pass treatment= as a single name."
+        )
+    inst = as_names(instruments, "instruments")
+    if len(inst) < 2:
+        raise InvalidInputError(
+            f"per_instrument compares instruments and needs at least two, got {len(inst)}; add instruments."
+        )
+    ctrl, fe = as_names(controls, "controls"), as_names(absorb, "absorb")
+    used = [outcome, treatment, *inst, *ctrl, *fe, *clus, *((weights,) if weights else ())]
+    frame, n_dropped = _complete_rows(data, used)
+    common = {"controls": ctrl, "absorb": fe, "cluster": clus, "weights": weights}
+    full = prepare(frame, outcome=outcome, treatment=treatment, instruments=inst, **common)  # type: ignore[arg-type]
+    res_all = estimate_prepared(
+        full, method="2sls", vcov=vcov, small_sample=small_sample, alpha=alpha, diagnostics=False
+    )
+    spec = CovSpec(cast(CovKind, vcov), full.clusters if vcov == "cluster" else (), small_sample)
+    overid = overid_test(full.y, full.X, full.Z, beta=res_all.coef, spec=spec, n_partialled=full.n_partialled)
+    rows = []
+    for j, z in enumerate(inst):
+        zj = full.Z[:, j : j + 1]
+        one = replace(full, Z=zj, instruments=(z,))
+        res = estimate_prepared(
+            one, method="2sls", vcov=vcov, small_sample=small_sample, alpha=alpha, diagnostics=False
+        )
+        fs = fit_kclass(full.X[:, 0], zj, None, method="ols")
+        fs_cov = sandwich(
+            zj, fs.resid, spec, n_partialled=full.n_partialled, n_partialled_nested=full.n_partialled_nested
+        )
+        rows.append(
+            JustIdentifiedEstimate(
+                instrument=z,
+                estimate=float(res.coef[0]),
+                se=float(res.se[0]),
+                ci_lower=float(res.ci[0, 0]),
+                ci_upper=float(res.ci[0, 1]),
+                first_stage_f=float(fs.beta[0] ** 2 / fs_cov[0, 0]),
+                difference_from_all=float(res.coef[0] - res_all.coef[0]),
+            )
+        )
+    return PerInstrumentResult(
+        treatment=treatment,
+        instruments=inst,
+        rows=tuple(rows),
+        estimate_all=float(res_all.coef[0]),
+        se_all=float(res_all.se[0]),
+        ci_all=(float(res_all.ci[0, 0]), float(res_all.ci[0, 1])),
+        overid=cast(dict[str, Any], json_value(overid.to_dict())),
+        n=full.n,
+        n_dropped=n_dropped,
+        vcov=vcov,
+        alpha=alpha,
+        ci_reference=res_all.ci_reference,
+        caution=CAUTION,
+    )
