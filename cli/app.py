@@ -89,8 +89,10 @@ def _global(
 COMMAND_MODULES = (
     "general",
     "entities",
+    "team",
     "estimation_cmds",
     "threat_cmds",
+    "report_cmds",
 )
 
 

@@ -3,15 +3,16 @@
 from __future__ import annotations
 
 import os
-from collections.abc import Iterator
+import time
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 from sqlalchemy import event, text
 from sqlalchemy.engine import Engine, make_url
-from sqlalchemy.exc import ArgumentError, IntegrityError, OperationalError
+from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, OperationalError
 from sqlalchemy.orm.exc import StaleDataError
 from sqlmodel import Session, create_engine
 
@@ -22,6 +23,14 @@ ENV_DB = "IVDOSSIER_DB"
 SQLITE_BUSY_TIMEOUT_MS = 30_000
 # Keep in step with the newest file in migrations/versions (a test checks this).
 SCHEMA_HEAD = "0001"
+# PostgreSQL SQLSTATEs after which the whole transaction may simply be run again.
+TRANSIENT_SQLSTATES = {"40001", "40P01"}  # serialization failure, deadlock detected
+
+T = TypeVar("T")
+
+
+class BusyError(ConflictError):
+    """A write lost a race the database could not queue (deadlock, serialization failure, lock timeout)."""
 
 
 def resolve_url(db: str | None) -> str:
@@ -94,12 +103,47 @@ class Registry:
             except IntegrityError as exc:
                 session.rollback()
                 raise ConflictError(_integrity_message(exc)) from exc
+            except DBAPIError as exc:
+                session.rollback()
+                if _is_transient(exc):
+                    raise BusyError(
+                        f"the registry was busy with a conflicting write ({_first_line(exc)}); "
+                        "nothing was written, run the command again."
+                    ) from exc
+                raise
             except BaseException:
                 session.rollback()
                 raise
 
+    def write_retrying(self, work: Callable[[Session], T], *, attempts: int = 5) -> T:
+        """Run `work` in one write transaction, rerunning it from the start after a BusyError.
+
+        Optimistic-locking conflicts (a stale expected version) are not retried: they need a person's decision.
+        """
+        for attempt in range(1, attempts + 1):
+            try:
+                with self.writing() as session:
+                    return work(session)
+            except BusyError:
+                if attempt == attempts:
+                    raise
+                time.sleep(0.01 * 2**attempt)
+        raise AssertionError("unreachable")  # pragma: no cover
+
     def dispose(self) -> None:
         self.engine.dispose()
+
+
+def _first_line(exc: DBAPIError) -> str:
+    return (str(exc.orig) if exc.orig is not None else str(exc)).strip().splitlines()[0]
+
+
+def _is_transient(exc: DBAPIError) -> bool:
+    """Deadlocks and serialization failures (PostgreSQL), or a lock wait that ran out of time (SQLite)."""
+    sqlstate = getattr(exc.orig, "sqlstate", None)
+    if sqlstate in TRANSIENT_SQLSTATES:
+        return True
+    return isinstance(exc, OperationalError) and "database is locked" in str(exc.orig)
 
 
 def _integrity_message(exc: IntegrityError) -> str:

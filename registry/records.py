@@ -138,6 +138,49 @@ def audit(
     return event
 
 
+def check_columns(obj: Entity, values: Mapping[str, Any] | None = None) -> None:
+    """Refuse text a column cannot hold on every backend (NUL characters, values over the column length).
+
+    Checks `values` (column name -> new value) when given, else every column of `obj`.
+    """
+    columns = obj.__table__.columns  # type: ignore[attr-defined]
+    items = values.items() if values is not None else ((c.name, getattr(obj, c.name)) for c in columns)
+    for name, value in items:
+        if not isinstance(value, str) or name not in columns:
+            continue
+        if "\x00" in value:
+            raise InvalidInputError(f"{obj.kind} {name} contains a NUL character; remove it and try again.")
+        limit = getattr(columns[name].type, "length", None)
+        if limit is not None and len(value) > limit:
+            raise InvalidInputError(
+                f"{obj.kind} {name} is {len(value):,} characters long; the limit is {limit:,}; shorten it."
+            )
+
+
+def stale_message(session: Session, obj: Entity, expected_version: int) -> str:
+    """Explain a refused stale edit: who changed the entity since `expected_version`, when, and which fields."""
+    head = f"{obj.kind} {obj.label!r} is at version {obj.version}, not {expected_version}"
+    if expected_version > obj.version:
+        return f"{head}: version {expected_version} does not exist yet; show it again and reapply your edit."
+    # Every version step is one audited write, so the newest (version - expected) events are the changes since.
+    events = list(
+        session.exec(
+            select(AuditEvent)
+            .where(AuditEvent.entity_uuid == obj.uuid)
+            .order_by(AuditEvent.id.desc())  # type: ignore[union-attr]
+            .limit(max(obj.version - expected_version, 1))
+        )
+    )
+    events.reverse()
+    parts = []
+    for event in events:
+        fields = ", ".join(sorted((event.after or event.before or {}).keys()))
+        what = f"{event.action}: {fields}" if event.action != "create" and fields else event.action
+        parts.append(f"by {event.actor} at {event.at:%Y-%m-%d %H:%M:%S} UTC ({what})")
+    who = " it was changed " + ", then ".join(parts) if parts else " it was changed by someone else"
+    return f"{head}:{who}; nothing was written, show it again and reapply your edit."
+
+
 def create(session: Session, obj: E, *, actor: str, reason: str = "") -> E:
     """Insert a new entity and its audit event in the caller's transaction."""
     label = obj.label
@@ -145,6 +188,7 @@ def create(session: Session, obj: E, *, actor: str, reason: str = "") -> E:
         raise ConflictError(
             f"a {obj.kind} named {label!r} already exists; choose another name or edit that one."
         )
+    check_columns(obj)
     session.add(obj)
     session.flush()
     audit(session, actor=actor, action="create", obj=obj, before=None, after=snapshot(obj), reason=reason)
@@ -163,20 +207,15 @@ def edit(
 ) -> E:
     """Apply field changes with optimistic locking; records only the fields that really changed."""
     if expected_version is not None and expected_version != obj.version:
-        last = session.exec(
-            select(AuditEvent).where(AuditEvent.entity_uuid == obj.uuid).order_by(AuditEvent.id.desc())  # type: ignore[union-attr]
-        ).first()
-        who = f" by {last.actor} at {last.at:%Y-%m-%d %H:%M} UTC ({last.action})" if last else ""
-        raise ConflictError(
-            f"{obj.kind} {obj.label!r} is at version {obj.version}, not {expected_version}: it was changed{who}; "
-            "show it again and reapply your edit."
-        )
+        raise ConflictError(stale_message(session, obj, expected_version))
     columns = {c.name for c in obj.__table__.columns}  # type: ignore[attr-defined]
     before: dict[str, Any] = {}
     after: dict[str, Any] = {}
-    for name, value in changes.items():
+    for name in changes:
         if name not in columns or name in BOOKKEEPING or name == "uuid":
             raise InvalidInputError(f"{obj.kind} has no editable field {name!r}.")
+    check_columns(obj, changes)
+    for name, value in changes.items():
         old = getattr(obj, name)
         if old != value:
             before[name] = json_value(old)
