@@ -86,12 +86,13 @@ def render_html(
     badges: Mapping[str, str] | None = None,
     lang: str = "en",
     toc: bool = True,
+    wide: bool = False,
 ) -> str:
     """Render Markdown to one self-contained HTML page.
 
     `svgs` maps figure keys (from ``mdtext.figure``) to trusted generated SVG; `badges` maps verdict statuses
-    to badge SVG (default: ``plots.verdict_badge_svg``). A figure marker without an SVG raises
-    InvalidInputError, so a missing plot is noticed rather than silently dropped.
+    to badge SVG (default: ``plots.verdict_badge_svg``); `wide` widens the sheet for broad comparison tables.
+    A figure marker without an SVG raises InvalidInputError, so a missing plot is noticed, not dropped.
     """
     figures = {key: clean_svg(svg, key=key) for key, svg in (svgs or {}).items()}
     if badges is None:
@@ -154,7 +155,7 @@ def render_html(
         '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
         '<meta name="referrer" content="no-referrer">\n'
         f"<title>{html.escape(title)}</title>\n<style>\n{stylesheet()}</style>\n</head>\n"
-        f'<body>\n<main class="sheet">\n{body}</main>\n</body>\n</html>\n'
+        f'<body>\n<main class="{"sheet wide" if wide else "sheet"}">\n{body}</main>\n</body>\n</html>\n'
     )
 
 

@@ -1,0 +1,256 @@
+"""A static site of dossiers: an index of programs, one comparison page per program, one page per instrument and
+a catalogue page. Every page is a self-contained HTML file; links are relative; file names come from sanitised
+slugs and are checked to stay inside the output folder.
+
+Layout::
+
+    index.html
+    catalogue.html
+    programs/<program>/index.html
+    programs/<program>/instruments/<instrument>.html
+"""
+
+from __future__ import annotations
+
+import re
+import unicodedata
+from collections.abc import Sequence
+from pathlib import Path
+
+from ivdossier.errors import InvalidInputError
+from ivdossier.reports import mdtext as mt
+from ivdossier.reports import resultview as rv
+from ivdossier.reports.dossier import CAUTIONS, dossier_html
+from ivdossier.reports.html import render_html
+from ivdossier.reports.inputs import CONDITIONS, CatalogEntry, DossierInput, LinkInfo, ProgramInfo
+from ivdossier.reports.verdicts import derive_verdicts, latest_run
+
+_RESERVED = {"con", "prn", "aux", "nul", *(f"com{i}" for i in range(10)), *(f"lpt{i}" for i in range(10))}
+_MAX_SLUG = 64
+
+
+def safe_slug(text: str) -> str:
+    """A file-name-safe slug: ASCII letters, digits, '-' and '_' only; never empty, '.', '..' or a device name."""
+    ascii_text = unicodedata.normalize("NFKD", str(text)).encode("ascii", "ignore").decode("ascii")
+    slug = re.sub(r"[^a-z0-9_-]+", "-", ascii_text.lower())
+    slug = re.sub(r"-{2,}", "-", slug).strip("-_")[:_MAX_SLUG].strip("-_")
+    if not slug:
+        slug = "item"
+    if slug in _RESERVED:
+        slug = f"x-{slug}"
+    return slug
+
+
+def _unique(slug: str, used: set[str]) -> str:
+    candidate, n = slug, 2
+    while candidate in used:
+        candidate = f"{slug}-{n}"
+        n += 1
+    used.add(candidate)
+    return candidate
+
+
+def _inside(root: Path, path: Path) -> Path:
+    resolved = path.resolve()
+    if not resolved.is_relative_to(root):
+        raise InvalidInputError(f"refusing to write {path}: it lies outside the site folder {root}.")
+    return resolved
+
+
+def _write(root: Path, relative: str, text: str, written: list[Path]) -> None:
+    path = _inside(root, root / relative)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(text, encoding="utf-8")
+    written.append(path)
+
+
+def build_site(
+    out_dir: str | Path,
+    programs: Sequence[ProgramInfo],
+    dossiers: Sequence[DossierInput],
+    catalog_entries: Sequence[CatalogEntry] = (),
+    *,
+    title: str = "Instrument dossiers",
+) -> list[Path]:
+    """Write the site under `out_dir` and return the written files (index first).
+
+    Dossiers are grouped by their program's slug; a dossier whose program is not in `programs` brings its own.
+    """
+    root = Path(out_dir).resolve()
+    root.mkdir(parents=True, exist_ok=True)
+    ordered: list[ProgramInfo] = list(programs)
+    known = {p.slug for p in ordered}
+    for d in dossiers:
+        if d.program.slug not in known:
+            ordered.append(d.program)
+            known.add(d.program.slug)
+    used_programs: set[str] = set()
+    program_dirs = {p.slug: _unique(safe_slug(p.slug), used_programs) for p in ordered}
+    by_program: dict[str, list[DossierInput]] = {p.slug: [] for p in ordered}
+    for d in dossiers:
+        by_program[d.program.slug].append(d)
+    stamp = _stamp(dossiers)
+    written: list[Path] = []
+    _write(root, "index.html", _index_page(ordered, by_program, program_dirs, title, stamp), written)
+    _write(root, "catalogue.html", _catalogue_page(catalog_entries, stamp), written)
+    for program in ordered:
+        folder = program_dirs[program.slug]
+        used: set[str] = set()
+        files = {id(d): _unique(safe_slug(d.instrument.slug), used) for d in by_program[program.slug]}
+        page = _program_page(program, by_program[program.slug], files, stamp)
+        _write(root, f"programs/{folder}/index.html", page, written)
+        for d in by_program[program.slug]:
+            nav = (
+                f"[All programs](../../../index.html) · [{mt.inline(program.title or program.slug)}](../index.html)"
+                " · [Threat catalogue](../../../catalogue.html)"
+            )
+            _write(
+                root,
+                f"programs/{folder}/instruments/{files[id(d)]}.html",
+                dossier_html(d, preamble=nav),
+                written,
+            )
+    return written
+
+
+def _stamp(dossiers: Sequence[DossierInput]) -> str:
+    if not dossiers:
+        return ""
+    latest = max(dossiers, key=lambda d: d.generated_text)
+    return f"*Generated {mt.inline(latest.generated_text)} by ivdossier {mt.inline(latest.tool_version)}.*"
+
+
+def _index_page(
+    programs: Sequence[ProgramInfo],
+    by_program: dict[str, list[DossierInput]],
+    dirs: dict[str, str],
+    title: str,
+    stamp: str,
+) -> str:
+    parts = [f"# {mt.inline(title)}"]
+    if stamp:
+        parts.append(stamp)
+    if programs:
+        rows = []
+        for p in programs:
+            ds = by_program[p.slug]
+            broken = sum(1 for d in ds if any(v.status == "broken" for v in derive_verdicts(d).values()))
+            rows.append(
+                [
+                    f"[{mt.inline(p.title or p.slug)}](programs/{dirs[p.slug]}/index.html)",
+                    mt.cell(p.question),
+                    str(len(ds)),
+                    str(broken),
+                ]
+            )
+        parts.append(
+            "## Research programs\n\n"
+            + mt.table(
+                ["Program", "Question", "Candidate instruments", "With a broken condition"], rows, "llrr"
+            )
+        )
+    else:
+        parts.append("No programs have been registered yet.")
+    parts.append(
+        "## Reference\n\n[The threat catalogue](catalogue.html) lists every known way an instrument can fail."
+    )
+    parts.append("## Cautions\n\n" + "\n\n".join(CAUTIONS[:3]))
+    return render_html("\n\n".join(parts) + "\n", title=title, svgs={}, toc=False)
+
+
+def _strongest_threat(links: Sequence[LinkInfo]) -> str:
+    live = [lk for lk in links if lk.state in ("fatal", "open", "accepted")]
+    if not live:
+        return "none unresolved"
+
+    def weight(lk: LinkInfo) -> tuple[int, float, str]:
+        score = (lk.mean_likelihood or 0.0) * (lk.mean_severity or 0.0)
+        return (1 if lk.state == "fatal" else 0, score, lk.threat_code)
+
+    top = max(live, key=weight)
+    sev = f", severity {rv.fmt(top.mean_severity, 2)}" if top.mean_severity is not None else ", unrated"
+    return f"{mt.inline(top.threat_code)} {mt.inline(top.title)} ({top.state}{sev})"
+
+
+def _program_page(
+    program: ProgramInfo, dossiers: Sequence[DossierInput], files: dict[int, str], stamp: str
+) -> str:
+    parts = [
+        "[All programs](../../index.html) · [Threat catalogue](../../catalogue.html)",
+        f"# {mt.inline(program.title or program.slug)}",
+    ]
+    facts = [
+        (label, value)
+        for label, value in (
+            ("Question", program.question),
+            ("Treatment", program.treatment),
+            ("Outcome", program.outcome),
+            ("Unit", program.unit),
+            ("Population", program.population),
+        )
+        if value
+    ]
+    if facts:
+        parts.append("\n".join(f"- **{label}:** {mt.inline(value)}" for label, value in facts))
+    if stamp:
+        parts.append(stamp)
+    if dossiers:
+        rows = []
+        for d in sorted(dossiers, key=lambda x: (x.instrument.name or x.instrument.slug).lower()):
+            verdicts = derive_verdicts(d)
+            run = latest_run(d.runs)
+            feff = rv.effective_f(run.results)[0] if run is not None else None
+            ar = rv.intervals(rv.section(run.results, "weak_iv_robust", "anderson_rubin")) if run else None
+            described = ", ".join(mt.inline(x) for x in (d.instrument.family, d.instrument.state) if x)
+            rows.append(
+                [
+                    f"[{mt.inline(d.instrument.name or d.instrument.slug)}](instruments/{files[id(d)]}.html)"
+                    + (f" ({described})" if described else ""),
+                    *[mt.badge(verdicts[c].status) for c in CONDITIONS],
+                    _strongest_threat(d.links),
+                    rv.fmt(feff) if feff is not None else "–",
+                    rv.fmt_set(ar) if ar is not None else "–",
+                ]
+            )
+        headers = ["Instrument (family, state)", *[c.capitalize() for c in CONDITIONS]]
+        headers += ["Strongest unresolved threat", "Effective F", "AR set"]
+        parts.append(
+            "## Candidate instruments side by side\n\n"
+            "Verdicts are derived by the rules in `ivdossier.reports.verdicts`; effective F and the "
+            "Anderson–Rubin (AR) set come from each instrument's latest run with diagnostics.\n\n"
+            + mt.table(headers, rows, "lccccl" + "rr")
+        )
+    else:
+        parts.append("No candidate instruments have been registered for this program yet.")
+    parts.append("## Cautions\n\n" + "\n\n".join(CAUTIONS[:3]))
+    title = f"Program: {program.title or program.slug}"
+    return render_html("\n\n".join(parts) + "\n", title=title, svgs={}, toc=False, wide=True)
+
+
+def _catalogue_page(entries: Sequence[CatalogEntry], stamp: str) -> str:
+    parts = ["[All programs](index.html)", "# Threat catalogue"]
+    if stamp:
+        parts.append(stamp)
+    if not entries:
+        parts.append("The catalogue is empty.")
+    for condition in CONDITIONS:
+        mine = sorted((e for e in entries if e.condition == condition), key=lambda e: e.code)
+        if not mine:
+            continue
+        blocks = [f"## {condition.capitalize()} ({len(mine)})"]
+        for e in mine:
+            facts = []
+            if e.families:
+                facts.append("Families: " + ", ".join(mt.inline(f) for f in e.families))
+            if e.testability:
+                facts.append(f"testability: {mt.inline(e.testability)}")
+            if e.checks:
+                facts.append("checks: " + ", ".join(mt.inline(c) for c in e.checks))
+            block = f"#### {mt.inline(e.code)} · {mt.inline(e.title)}"
+            if e.description.strip():
+                block += "\n\n" + mt.block(e.description)
+            if facts:
+                block += "\n\n" + "; ".join(facts) + "."
+            blocks.append(block)
+        parts.append("\n\n".join(blocks))
+    return render_html("\n\n".join(parts) + "\n", title="Threat catalogue", svgs={}, toc=len(entries) > 0)
