@@ -13,6 +13,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+
+from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.covariance import CovSpec
 from ivdossier.estimation.robust_inference import (
     ReducedForm,
@@ -30,8 +32,6 @@ from ivdossier.estimation.strength import (
     first_stage,
     strength_section,
 )
-
-from ivdossier.errors import InvalidInputError
 
 CAUTION = (
     "These statistics assess instrument strength and internal coherence only; they cannot establish exclusion "

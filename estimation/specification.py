@@ -26,11 +26,11 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from ivdossier.estimation.covariance import CovSpec, sandwich
-from ivdossier.estimation.strength import Array, as_matrix, denominator_df, json_safe, ols, wald
 from scipy import stats
 
 from ivdossier.errors import EstimationError
+from ivdossier.estimation.covariance import CovSpec, sandwich
+from ivdossier.estimation.strength import Array, as_matrix, denominator_df, json_safe, ols, wald
 
 
 @dataclass(frozen=True)

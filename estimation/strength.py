@@ -30,6 +30,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
+from scipy import stats
+
+from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.covariance import CovSpec, sandwich
 from ivdossier.estimation.critical_values import (
     MOP_SOURCE,
@@ -39,10 +43,6 @@ from ivdossier.estimation.critical_values import (
     mop_k_eff,
     stock_yogo_applicable,
 )
-from numpy.typing import NDArray
-from scipy import stats
-
-from ivdossier.errors import EstimationError, InvalidInputError
 
 Array = NDArray[np.float64]
 

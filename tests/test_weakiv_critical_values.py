@@ -6,9 +6,9 @@ import math
 
 import numpy as np
 import pytest
-from ivdossier.estimation import critical_values as cv
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation import critical_values as cv
 
 # Stock and Yogo (2005), Table 5.2, one endogenous regressor (values as in REFERENCE_VALUES.md).
 SY_2SLS_SIZE = {
