@@ -31,9 +31,8 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
-from ivdossier.threats_catalog.checks import CHECKS
-
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
+from ivdossier.threats_catalog.checks import CHECKS
 
 #: Version of the built-in catalogue; bump the minor part when entries are added, the major part when a code's
 #: meaning changes (which the scheme forbids for released codes).

@@ -42,9 +42,9 @@ from dataclasses import dataclass
 from typing import Any
 
 import networkx as nx
-from ivdossier.threats_catalog.catalog import CONDITIONS, GraphFragment
 
 from ivdossier.errors import InvalidInputError, NotFoundError
+from ivdossier.threats_catalog.catalog import CONDITIONS, GraphFragment
 
 LINK_STATES: tuple[str, ...] = ("open", "rebutted", "mitigated", "accepted", "fatal")
 #: Pseudo-state for a fragment passed without a link state when ``link_states`` is given.
