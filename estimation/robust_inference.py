@@ -101,6 +101,12 @@ def invert_on_circle(
     bounds: list[float] = []
     for i in np.flatnonzero(accepted[:-1] != accepted[1:]):
         a, b = float(thetas[i]), float(thetas[i + 1])
+        fa, fb = margin(a), margin(b)
+        if fa == 0.0 or fb == 0.0 or (fa < 0) == (fb < 0):
+            # the scalar margin disagrees in sign with the vectorised one at round-off level: keep the end
+            # point whose margin is closer to zero instead of refining
+            bounds.append(a if abs(fa) <= abs(fb) else b)
+            continue
         bounds.append(float(optimize.brentq(margin, a, b, xtol=xtol)))
     segments: list[tuple[float, float]] = []
     start = -HALF_PI if accepted[0] else None
@@ -113,14 +119,14 @@ def invert_on_circle(
     if start is not None:
         segments.append((start, HALF_PI))
 
-    def to_b(t: float, end: str) -> float:
+    def to_b(t: float) -> float:
         if t <= -HALF_PI:
             return -math.inf
         if t >= HALF_PI:
             return math.inf
         return math.tan(t)
 
-    return [(to_b(lo, "lo"), to_b(hi, "hi")) for lo, hi in segments]
+    return [(to_b(lo), to_b(hi)) for lo, hi in segments]
 
 
 def angle_grid(center: float, scale: float, *, n_uniform: int = 1201, n_local: int = 401) -> Array:
@@ -431,9 +437,11 @@ def tf_inference(
     m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
     px, py = float(m.pi_x[0]), float(m.pi_y[0])
     vxx, vyx, vyy = float(m.v_xx[0, 0]), float(m.v_yx[0, 0]), float(m.v_yy[0, 0])
+    if px == 0 or vxx <= 0:
+        return TFResult(
+            False, "the first-stage coefficient or its variance is zero, so the IV estimate or F is undefined"
+        )
     f = px * px / vxx
-    if px == 0:
-        return TFResult(False, "the first-stage coefficient is exactly zero, so the IV estimate is undefined")
     beta = py / px
     se = math.sqrt(max(vyy - 2 * beta * vyx + beta * beta * vxx, 0.0)) / abs(px)
     c = tf_critical_value(f)
