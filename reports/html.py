@@ -72,7 +72,8 @@ def _slug(text: str, seen: dict[str, int]) -> str:
     return base if count == 0 else f"{base}-{count + 1}"
 
 
-def _markdown_it() -> MarkdownIt:
+def markdown_parser() -> MarkdownIt:
+    """The project's Markdown settings: CommonMark plus tables, raw HTML off, links validated."""
     md = MarkdownIt("commonmark", {"html": False, "linkify": False, "typographer": False}).enable("table")
     md.validateLink = validate_link  # type: ignore[method-assign]
     return md
@@ -103,7 +104,7 @@ def render_html(
         }
     else:
         badge_svgs = dict(badges)
-    md = _markdown_it()
+    md = markdown_parser()
     env: dict[str, Any] = {}
     tokens = md.parse(markdown, env)
     sections = _assign_ids(tokens)

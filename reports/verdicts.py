@@ -19,7 +19,8 @@ R4      relevance       at risk       no effective F: robust (else partial) firs
 R5      relevance       holds         no effective F: robust (else partial) first-stage F of 10 or more
                                       (common-practice rule of thumb) and the AR set, if any, is bounded
 R6      relevance       not assessed  no run reports instrument-strength statistics
-X1      excl./exog.     at risk       latest run's over-identification test rejects at the 5 % level
+X1      excl./exog.     at risk       latest run's over-identification test rejects at the 5 % level,
+                                      or its Anderson-Rubin set is empty (no effect fits every instrument)
 X2      excl./exog.     holds         the graph verdict reports the condition satisfied in the diagram
                                       AND the team has written a claim for it (no statistic involved)
 X3      excl./exog.     not assessed  no graph verdict for the condition, or no written claim
@@ -208,7 +209,10 @@ def _relevance_from_run(run: RunInfo | None) -> Verdict:
             )
         if unbounded:
             return Verdict(c, AT_RISK, f"the Anderson–Rubin set {rv.fmt_set(sets)} is unbounded", "R2")
-        tail = "and the Anderson–Rubin set is bounded" if sets else "(no Anderson–Rubin set reported)"
+        if sets is None:
+            tail = "(no Anderson–Rubin set reported)"
+        else:
+            tail = "and the Anderson–Rubin set is bounded" if sets else "(the Anderson–Rubin set is empty)"
         return Verdict(
             c, HOLDS, f"effective F {rv.fmt(feff)} ≥ τ = 10 % critical value {rv.fmt(cv)} {tail}", "R3"
         )
@@ -264,6 +268,13 @@ def derive_verdict(
             condition,
             AT_RISK,
             f"the over-identification test in run {run.slug} rejects (p = {rv.fmt_p(p)})",
+            "X1",
+        )
+    if run is not None and _ar_sets(run) == []:
+        return Verdict(
+            condition,
+            AT_RISK,
+            f"the Anderson–Rubin set in run {run.slug} is empty: no effect fits every instrument",
             "X1",
         )
     if gstat.outcome == "satisfied" and claim.strip():

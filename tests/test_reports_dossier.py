@@ -1,0 +1,191 @@
+"""The dossier's Markdown: sections in order, numbers equal to the run's values, absent sections left out,
+cautions always present, output deterministic."""
+
+from __future__ import annotations
+
+import dataclasses
+import re
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from ivdossier.reports import resultview as rv
+from ivdossier.reports.dossier import dossier_html, dossier_markdown
+from ivdossier.reports.inputs import DossierInput, InstrumentInfo, RunInfo
+from ivdossier.reports.sample import PROGRAM, iv_results, make_run, sample_input
+
+SECTION_ORDER = [
+    "# Instrument dossier: Fibre rollout wave",
+    "## At a glance",
+    "## The argument, condition by condition",
+    "## Causal diagram",
+    "## Estimates and diagnostics",
+    "## Provenance",
+    "## What this dossier cannot tell you",
+]
+
+
+def h2_and_h1(md: str) -> list[str]:
+    return [line for line in md.splitlines() if re.match(r"^#{1,2} ", line)]
+
+
+def test_sections_appear_once_in_the_designed_order() -> None:
+    md = dossier_markdown(sample_input())
+    assert h2_and_h1(md) == SECTION_ORDER
+
+
+def test_summary_comes_first_and_gives_each_condition_a_verdict_and_reason() -> None:
+    md = dossier_markdown(sample_input())
+    glance = md.split("## At a glance")[1].split("\n## ")[0]
+    for condition in ("Relevance", "Exclusion", "Exogeneity", "Monotonicity"):
+        assert re.search(rf"^\| {condition} \| `verdict:[a-z-]+` \| .+ \| [A-Z]\d \|$", glance, re.M), (
+            condition
+        )
+    assert "`verdict:broken`" in glance  # the sample diagram has a path around the treatment
+    assert "lifecycle state: **under review**" in md.split("## At a glance")[0]
+
+
+def test_claims_sit_beside_the_threats_that_attack_them() -> None:
+    md = dossier_markdown(sample_input())
+    exclusion = md.split("### Exclusion")[1].split("### Exogeneity")[0]
+    assert "Fibre changes emergency use only by making remote consultations possible." in exclusion
+    assert "#### TH-017 · Broadband also brings online pharmacy" in exclusion
+    # ratings: Ana (4, 4) and Ben (3, 5): team mean likelihood 3.5, severity 4.5; severity spread 4-5
+    assert "team mean likelihood 3.5, severity 4.5" in exclusion
+    assert "severity 4–5, likelihood 3–4" in exclusion
+    assert "| Ben | 3 | 5 | large if true |" in exclusion
+    assert "TH-004" not in exclusion  # an exogeneity threat stays under exogeneity
+
+
+def test_every_number_of_the_latest_run_is_reported_as_given() -> None:
+    res = iv_results(coef=-0.1734, se=0.0412, feff=27.35)
+    inp = dataclasses.replace(sample_input(), runs=(make_run(0, method="ols"), make_run(7, results=res)))
+    md = dossier_markdown(inp)
+    detail = md.split("### Run run-007 in detail")[1]
+    feff = re.search(r"\| Effective F \(Montiel Olea–Pflueger\) \| (\S+) \| (.+) \|", detail)
+    assert feff is not None
+    assert rv.parse_fmt(feff.group(1)) == pytest.approx(27.35)
+    cvs = dict(re.findall(r"τ = (\d+) %: ([\d.]+)", feff.group(2)))
+    tau = res["strength"]["effective_f"]["critical_values"]
+    assert {k: float(v) for k, v in cvs.items()} == {
+        "5": tau["tau_5pct"],
+        "10": tau["tau_10pct"],
+        "20": tau["tau_20pct"],
+        "30": tau["tau_30pct"],
+    }
+    row = re.search(r"\| run-007 \| 2SLS · \S+ \| (\S+) \| (\S+) \| \[(\S+), (\S+)\] \|", md)
+    assert row is not None
+    low, high = res["ci"]["telehealth"]
+    got = [rv.parse_fmt(g) for g in row.groups()]
+    assert got == pytest.approx([-0.1734, 0.0412, low, high], rel=5e-4)
+    assert "| Kleibergen–Paap rk Wald F | 40.2 |" in detail
+    assert "| Anderson–Rubin | [−0.35, −0.07] | 6.8 | 0.001 |" in detail
+    assert "| Hansen J | 0.68 | 1 | 0.410 |" in detail
+    assert "| fibre\\_wave | −0.083 (0.011) | 44.1 | 39.7 | 0.031 |" in detail.replace("| telehealth ", "|")
+
+
+def test_ols_run_is_listed_beside_the_iv_runs() -> None:
+    md = dossier_markdown(sample_input(n_runs=3))
+    overview = md.split("### Effect of telehealth across runs")[1].split("###")[0]
+    assert re.search(r"^\| run-000 \| OLS", overview, re.M)
+    assert re.search(r"^\| run-001 \| 2SLS", overview, re.M)
+
+
+def test_absent_inputs_leave_their_sections_out_entirely() -> None:
+    bare = DossierInput(
+        program=PROGRAM,
+        instrument=InstrumentInfo(slug="mast", name="Mast distance"),
+        generated_at="2026-12-01T09:00:00+00:00",
+        tool_version="0.1.0",
+    )
+    md = dossier_markdown(bare)
+    assert h2_and_h1(md) == [
+        "# Instrument dossier: Mast distance",
+        "## At a glance",
+        "## What this dossier cannot tell you",
+    ]
+    for word in ("TODO", "placeholder", "No claim", "None"):
+        assert word not in md
+
+
+def test_not_applicable_diagnostics_are_left_out_or_give_their_reason() -> None:
+    res = iv_results(overid_p=None)  # just identified: over-identification test not computed
+    res["reduced_form"] = None
+    inp = dataclasses.replace(sample_input(), runs=(make_run(1, results=res),))
+    md = dossier_markdown(inp)
+    assert "Reduced form" not in md
+    assert "#### Over-identification\n\nNot computed: just identified." in md
+    assert (
+        "Not computed: Conditional likelihood ratio (CLR) — computed for the unadjusted covariance only."
+        in md
+    )
+
+
+def test_plots_and_diagram_are_referenced_only_when_their_data_exist() -> None:
+    md = dossier_markdown(sample_input())
+    assert "```ivdossier-figure\nfirst-stage\n```" in md
+    assert "```ivdossier-figure\nar-curve\n```" in md
+    assert "```ivdossier-figure\ncausal-diagram\n```" in md
+    plain = dataclasses.replace(sample_input(), runs=(make_run(1, plots=False),), graph=None)
+    md = dossier_markdown(plain)
+    assert "ivdossier-figure" not in md
+    assert "## Causal diagram" not in md
+
+
+def test_cautions_are_always_present_in_plain_words() -> None:
+    for inp in (sample_input(), sample_input(n_links=0, n_runs=1)):
+        tail = dossier_markdown(inp).split("## What this dossier cannot tell you")[1]
+        assert "Statistics cannot establish exclusion or exogeneity." in tail
+        assert "A strong first stage does not make an instrument valid." in tail
+        assert "Conclusions for policy or clinical use need domain review." in tail
+
+
+def test_provenance_lists_fingerprints_specs_versions_and_who_did_what() -> None:
+    md = dossier_markdown(sample_input(n_runs=2))
+    prov = md.split("## Provenance")[1]
+    assert "`01" + "ab3f" * 15 + "9c`" in prov
+    assert "Runs **run-000**, **run-001**:" in prov  # identical specs are shown once
+    assert "| controls | age, sex, distance\\_to\\_ed |" in prov
+    assert "| numpy | 2.1.3 |" in prov
+    assert "| ana | create ×1, run ×1 | 2026-11-02T08:00:00+00:00 | 2026-11-04T11:00:00+00:00 |" in prov
+
+
+def test_output_is_deterministic_and_reads_no_clock() -> None:
+    a = dossier_markdown(sample_input())
+    b = dossier_markdown(sample_input())
+    assert a == b
+    assert "2026-12-01T09:00:00+00:00" in a
+    ha, hb = dossier_html(sample_input()), dossier_html(sample_input())
+    assert ha == hb
+
+
+def test_a_real_estimation_result_renders_with_its_own_numbers() -> None:
+    # the estimation layer's to_dict() is the contract; simulate data with a known design and feed it through
+    from ivdossier.estimation import estimate
+
+    rng = np.random.default_rng(7)
+    n = 400
+    z1, z2, u = rng.normal(size=(3, n))
+    x = 0.6 * z1 + 0.4 * z2 + u + rng.normal(size=n)
+    y = -0.3 * x + u + rng.normal(size=n)
+    frame = pd.DataFrame({"ed_visits": y, "telehealth": x, "fibre_wave": z1, "clerk": z2})
+    result = estimate(frame, outcome="ed_visits", treatment="telehealth", instruments=["fibre_wave", "clerk"])
+    res = result.to_dict()
+    run = RunInfo(
+        slug="real",
+        created_at="2026-11-30T12:00:00+00:00",
+        method=res["method"],
+        vcov=res["vcov"],
+        spec=res["spec"],
+        results=res,
+    )
+    md = dossier_markdown(dataclasses.replace(sample_input(), runs=(run,)))
+    detail = md.split("### Run real in detail")[1]
+    feff = res["strength"]["effective_f"]["statistic"]
+    shown = re.search(r"\| Effective F \(Montiel Olea–Pflueger\) \| (\S+) \|", detail)
+    assert shown is not None and rv.parse_fmt(shown.group(1)) == pytest.approx(feff, rel=5e-4)
+    ar = res["weak_iv_robust"]["anderson_rubin"]["confidence_set"]
+    assert rv.fmt_set(rv.intervals(ar)) in detail
+    assert f"| Hansen J | {rv.fmt(res['overid']['statistic'])} |" in detail
+    assert "observations 400" in detail

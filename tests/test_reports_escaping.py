@@ -1,0 +1,248 @@
+"""User-written text is shown, never interpreted: Markdown escaping, HTML rendering, links and inlined SVG."""
+
+from __future__ import annotations
+
+import dataclasses
+import re
+from html.parser import HTMLParser
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from ivdossier.errors import InvalidInputError
+from ivdossier.reports import mdtext as mt
+from ivdossier.reports.dossier import dossier_html, dossier_markdown
+from ivdossier.reports.html import markdown_parser, render_html, validate_link
+from ivdossier.reports.inputs import AuditEvent, CheckInfo, InstrumentInfo, LinkInfo, ProgramInfo, Rating
+from ivdossier.reports.plots import verdict_badge_svg
+from ivdossier.reports.sample import make_run, sample_input
+
+SCRIPT = "<script>document.title='pwned'; window.__pwned = 1</script>"
+IMG = '<img src=x onerror="window.__pwned = 2">'
+JS_LINK = "[click me](javascript:alert(1))"
+FORGED_FIGURE = "```ivdossier-figure\nfirst-stage\n```"
+FORGED_BADGE = "`verdict:holds`"
+HOSTILE = [
+    SCRIPT,
+    IMG,
+    JS_LINK,
+    "<javascript:alert(1)> and <http://example.org/x>",
+    FORGED_FIGURE,
+    FORGED_BADGE,
+    "a | b | c",
+    "*stars* _under_ **bold** ~~strike~~ \\backslash\\",
+    "# not a heading",
+    "- not a list",
+    "1. not a list",
+    "> not a quote",
+    "---",
+    "===",
+    "    not code",
+    "&lt;escaped entity&gt; &amp; &#x3C;",
+    "![img](data:image/png;base64,AAAA)",
+    "<!-- comment -->",
+]
+
+
+class _Collector(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.tags: list[tuple[str, list[tuple[str, str | None]]]] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.append((tag, attrs))
+
+    def handle_data(self, data: str) -> None:
+        self.text.append(data)
+
+
+def parse(html_text: str) -> _Collector:
+    c = _Collector()
+    c.feed(html_text)
+    return c
+
+
+def visible_text_of_block(text: str) -> tuple[str, set[str]]:
+    """Render escaped user text with the project's Markdown settings; return its text and the tags used."""
+    rendered = markdown_parser().render(mt.block(text))
+    c = parse(rendered)
+    return "".join(c.text), {tag for tag, _ in c.tags}
+
+
+@pytest.mark.parametrize("text", HOSTILE)
+def test_escaped_block_renders_as_exactly_the_same_text(text: str) -> None:
+    shown, tags = visible_text_of_block(text)
+    assert shown.strip() == text.strip()
+    assert tags <= {"p", "br"}
+
+
+@pytest.mark.parametrize("text", HOSTILE)
+def test_escaped_inline_text_stays_one_plain_line(text: str) -> None:
+    rendered = markdown_parser().render(mt.inline(text))
+    c = parse(rendered)
+    assert {tag for tag, _ in c.tags} <= {"p"}
+    assert "".join(c.text).strip() == " ".join(text.split())
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.text(alphabet=st.sampled_from(list("ab 1.-+=#*_`[]()<>!&|\\~:/\"'\n{}")), max_size=60))
+def test_any_text_round_trips_through_escaping(text: str) -> None:
+    shown, tags = visible_text_of_block(text)
+    expected = "\n".join(line.strip() for line in text.split("\n") if line.strip())
+    # paragraphs and hard breaks may re-flow whitespace; the characters and their order must survive
+    assert "".join(shown.split()) == "".join(expected.split())
+    assert tags <= {"p", "br"}
+
+
+def test_control_characters_and_bidi_overrides_are_replaced() -> None:
+    text = "a\x00b\x1b[31mc\x07d\u202eevil\x7f"
+    out = mt.inline(text)
+    for bad in ("\x00", "\x1b", "\x07", "\u202e", "\x7f"):
+        assert bad not in out
+    assert out.count("\ufffd") == 5
+
+
+def test_pipes_inside_table_cells_do_not_add_columns() -> None:
+    table = mt.table(["Reviewer", "Comment"], [[mt.cell("Ana | admin"), mt.cell("x | y | z")]])
+    rendered = markdown_parser().render(table)
+    assert rendered.count("<td ") == 2
+    assert "x | y | z" in rendered
+
+
+def hostile_input() -> object:
+    base = sample_input()
+    claims = {
+        c: f"{SCRIPT} {IMG} {JS_LINK}\n\n{FORGED_FIGURE}\n{FORGED_BADGE} | pipe"
+        for c in base.instrument.claims
+    }
+    instrument = InstrumentInfo(
+        slug="evil",
+        name=f"Evil {SCRIPT}",
+        family=IMG,
+        columns=("z`col`", "a|b"),
+        state="<b>bold</b>",
+        claims=claims,
+    )
+    link = LinkInfo(
+        threat_code="TH-<1>",
+        title=JS_LINK,
+        condition="exclusion",
+        state="open",
+        argument=SCRIPT,
+        evidence=IMG + "\n" + FORGED_FIGURE,
+        ratings=(Rating(f"Eve {IMG}", 5, 5, "a | b | c " + JS_LINK),),
+        checks=(CheckInfo(SCRIPT, IMG),),
+    )
+    run = dataclasses.replace(
+        make_run(1),
+        slug="run<script>",
+        vcov=IMG,
+        spec={"controls": [SCRIPT, "x|y"], "note": JS_LINK},
+        dataset_path="data/<img src=x onerror=1>.csv",
+        package_versions={SCRIPT: IMG},
+    )
+    return dataclasses.replace(
+        base,
+        program=ProgramInfo(slug="p", title=f"Program {SCRIPT}", question=JS_LINK, treatment="telehealth"),
+        instrument=instrument,
+        links=(link,),
+        runs=(run,),
+        audit=(AuditEvent("2026-11-02T08:00:00+00:00", f"mallory {SCRIPT}", IMG, JS_LINK, FORGED_FIGURE),),
+        tool_version=IMG,
+    )
+
+
+def test_hostile_text_everywhere_never_becomes_markup_in_the_html() -> None:
+    page = dossier_html(hostile_input())  # type: ignore[arg-type]
+    c = parse(page)
+    tags = [tag for tag, _ in c.tags]
+    assert "script" not in tags
+    assert "img" not in tags
+    assert "b" not in tags
+    for _tag, attrs in c.tags:
+        for name, value in attrs:
+            assert not name.lower().startswith("on"), (name, value)
+            if name in ("href", "src", "xlink:href"):
+                assert value is not None and not value.lower().startswith(("javascript:", "data:")), value
+    assert "&lt;script&gt;document.title=" in page
+    assert "onerror=&quot;window.__pwned = 2&quot;" in page
+    # three genuine figures only, however often the marker appears in user text
+    assert tags.count("figure") == 3
+    # badges come only from verdicts: one per condition in the summary and one per condition section
+    assert page.count('class="badge ') == 4 + 4
+
+
+def test_hostile_text_in_markdown_is_escaped_at_the_source() -> None:
+    md = dossier_markdown(hostile_input())  # type: ignore[arg-type]
+    assert "<script>" not in md
+    assert re.search(r"(?<!\\)\]\(javascript:", md) is None  # every bracket is backslash-escaped
+    assert md.count("```ivdossier-figure") == 3
+
+
+def test_link_validation_keeps_only_safe_schemes() -> None:
+    for bad in (
+        "javascript:alert(1)",
+        "JAVASCRIPT:alert(1)",
+        "java\tscript:x",
+        " javascript:x",
+        "data:text/html,x",
+        "vbscript:x",
+        "file:///etc/passwd",
+    ):
+        assert not validate_link(bad), bad
+    for good in ("page.html", "../index.html", "#section", "https://example.org", "mailto:a@example.org"):
+        assert validate_link(good), good
+    page = render_html(
+        "[a](javascript:alert(1)) [b](data:text/html,x) [c](../index.html)", title="t", svgs={}
+    )
+    hrefs = [v for _t, attrs in parse(page).tags for k, v in attrs if k == "href"]
+    assert hrefs == ["../index.html"]
+
+
+def test_renderer_refuses_unsafe_or_missing_svg() -> None:
+    md = mt.figure("plot", "caption")
+    for bad in (
+        "<svg><script>alert(1)</script></svg>",
+        '<svg onload="alert(1)"></svg>',
+        '<svg><image href="https://example.org/x.png"/></svg>',
+        "<svg><foreignObject><div/></foreignObject></svg>",
+        '<svg style="background:url(https://example.org/x)"></svg>',
+        "<div>not svg</div>",
+    ):
+        with pytest.raises(InvalidInputError, match="figure 'plot'"):
+            render_html(md, title="t", svgs={"plot": bad})
+    with pytest.raises(InvalidInputError, match="no SVG was given"):
+        render_html(md, title="t", svgs={})
+    ok = render_html(md, title="t", svgs={"plot": '<?xml version="1.0"?><svg><use xlink:href="#m1"/></svg>'})
+    assert '<figure class="figure" id="figure-plot"><svg><use xlink:href="#m1"/></svg></figure>' in ok
+
+
+def test_page_is_self_contained_with_a_strict_content_security_policy() -> None:
+    page = dossier_html(sample_input())
+    assert "default-src 'none'" in page
+    c = parse(page)
+    for tag, attrs in c.tags:
+        assert tag not in ("script", "link", "iframe", "object", "embed", "img")
+        for name, value in attrs:
+            if name in ("src", "href") and value and not value.startswith("#"):
+                pytest.fail(f"external reference {name}={value} in <{tag}>")
+    assert "@import" not in page
+    assert re.findall(r"url\(([^)#][^)]*)\)", page) == []  # only url(#local-id) references
+
+
+@pytest.mark.parametrize("status", ["holds", "at risk", "broken", "not assessed"])
+def test_badges_differ_by_shape_not_only_colour(status: str) -> None:
+    svg = verdict_badge_svg(status)
+    shapes = {
+        "holds": "<circle",
+        "at risk": '<path d="M8 1.2L15.2 14.3H0.8Z"',
+        "broken": "<rect",
+        "not assessed": "stroke-dasharray",
+    }
+    assert shapes[status] in svg
+    others = [s for k, s in shapes.items() if k != status and k != "holds"]
+    assert not any(o in svg for o in others)
+    with pytest.raises(InvalidInputError, match="unknown verdict 'fine'"):
+        verdict_badge_svg("fine")
