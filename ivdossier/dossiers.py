@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from datetime import datetime
+from pathlib import Path
 from typing import Any
 
 from sqlmodel import Session, select
@@ -195,3 +196,14 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
         graph=graph,
         audit=audit,
     )
+
+
+def write_dossier(session: Session, slug: str, out: Path, *, generated_at: datetime | str) -> Path:
+    """Write the dossier of instrument `slug` to `out` (.md Markdown or .html one self-contained page)."""
+    from ivdossier.reports.dossier import dossier_html, dossier_markdown
+
+    inp = dossier_input(session, slug, generated_at=generated_at)
+    text = dossier_html(inp) if out.suffix.lower() == ".html" else dossier_markdown(inp)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(text, encoding="utf-8")
+    return out
