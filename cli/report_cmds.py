@@ -13,6 +13,7 @@ from ivdossier.errors import InvalidInputError
 
 def register(app: typer.Typer) -> None:
     app.command("dossier")(dossier)
+    app.command("site")(site)
     app.command("table")(table)
 
 

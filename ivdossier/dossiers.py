@@ -207,3 +207,42 @@ def write_dossier(session: Session, slug: str, out: Path, *, generated_at: datet
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(text, encoding="utf-8")
     return out
+
+
+def write_site(session: Session, out: Path, *, generated_at: datetime | str) -> list[Path]:
+    """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
+    from ivdossier.reports.site import build_site
+    from ivdossier.threats_catalog.catalog import load_builtin
+
+    programs = list(session.exec(select(Program).order_by(Program.slug)))
+    infos = [
+        ri.ProgramInfo(
+            slug=p.slug,
+            title=p.title,
+            question=p.question,
+            treatment=p.treatment,
+            outcome=p.outcome,
+            unit=p.unit,
+            population=p.population,
+        )
+        for p in programs
+    ]
+    slugs = list(session.exec(select(Instrument.slug).order_by(Instrument.slug)))
+    dossiers = [dossier_input(session, slug, generated_at=generated_at) for slug in slugs]
+    team = [
+        catalog_entry(t)
+        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
+    ]
+    entries = [
+        ri.CatalogEntry(
+            code=t.code,
+            title=t.title,
+            condition=t.condition,
+            families=t.families,
+            testability=t.testability,
+            description=t.description,
+            checks=t.checks,
+        )
+        for t in (*load_builtin().threats, *team)
+    ]
+    return build_site(out, infos, dossiers, entries)
