@@ -1,0 +1,554 @@
+"""Past and published studies: BibTeX import and export, reported statistics, attachments and critiques.
+
+BibTeX is read with bibtexparser 1.x, one entry at a time after a brace-aware scan that knows the line each entry
+starts on, so a malformed file is refused with the line of the faulty entry and nothing is imported. Display
+fields (authors, title, venue) are stored as Unicode (LaTeX accents decoded); the raw BibTeX text of every field
+is kept in ``extra["bibtex"]`` so that export writes the entry back as it was read unless someone edited it.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import re
+import unicodedata
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from sqlmodel import Session, select
+
+from ivdossier.errors import ConflictError, InvalidInputError
+from ivdossier.registry import records
+from ivdossier.registry.models import Critique, Instrument, Study, Threat
+
+KEY_RE = re.compile(r"^[A-Za-z0-9_:.+/\-]{1,120}$")
+TYPE_RE = re.compile(r"[A-Za-z]+")
+VENUE_FIELDS = ("journal", "booktitle", "publisher", "school", "institution", "howpublished")
+CORE_FIELDS = ("author", "title", "year", "doi", *VENUE_FIELDS)
+SKIPPED_TYPES = {"comment"}
+MACRO_TYPES = {"string", "preamble"}
+DISPLAY_TO_BIBTEX = {"authors": "author", "title": "title", "doi": "doi"}
+
+
+@dataclass(frozen=True)
+class BibEntry:
+    """One BibTeX entry as read: its key, type, the line it starts on and its raw field values."""
+
+    key: str
+    entry_type: str
+    line: int
+    fields: dict[str, str]
+
+
+def _entry_end(text: str, start: int, etype: str, line: int) -> int:
+    """Index of the delimiter closing the entry whose opening '{' or '(' is at ``start`` (BibTeX brace counting)."""
+    depth = 0
+    in_quote = False
+    paren = text[start] == "("
+    for k in range(start + 1 if paren else start, len(text)):
+        ch = text[k]
+        if ch == "{":
+            depth += 1
+        elif ch == "}":
+            depth -= 1
+            if depth < 0:
+                bad = text.count("\n", 0, k) + 1
+                raise InvalidInputError(
+                    f"BibTeX line {bad}: a '}}' closes more than was opened in the @{etype} entry that starts on "
+                    f"line {line}; remove it or add the matching '{{'."
+                )
+            if depth == 0 and not paren:
+                return k
+        elif ch == '"' and depth == (0 if paren else 1):
+            in_quote = not in_quote
+        elif ch == ")" and paren and depth == 0 and not in_quote:
+            return k
+    raise InvalidInputError(
+        f"BibTeX line {line}: the @{etype} entry that starts here never closes (an opening brace or parenthesis "
+        "is not matched); balance its braces."
+    )
+
+
+def _scan(text: str) -> tuple[list[tuple[int, str, str]], list[str]]:
+    """Split BibTeX text into (line, type, chunk) entries and @string/@preamble chunks; unbalanced braces raise."""
+    entries: list[tuple[int, str, str]] = []
+    macros: list[str] = []
+    i, n = 0, len(text)
+    while True:
+        at = text.find("@", i)
+        if at < 0:
+            break
+        line = text.count("\n", 0, at) + 1
+        m = TYPE_RE.match(text, at + 1)
+        if m is None:
+            raise InvalidInputError(
+                f"BibTeX line {line}: '@' is not followed by an entry type; write e.g. @article{{key, ...}}."
+            )
+        etype = m.group(0).lower()
+        j = m.end()
+        while j < n and text[j] in " \t\r\n":
+            j += 1
+        if j >= n or text[j] not in "{(":
+            raise InvalidInputError(
+                f"BibTeX line {line}: @{etype} must be followed by '{{'; check the entry there."
+            )
+        end = _entry_end(text, j, etype, line)
+        chunk = text[at : end + 1]
+        if etype in MACRO_TYPES:
+            macros.append(chunk)
+        elif etype not in SKIPPED_TYPES:
+            entries.append((line, etype, chunk))
+        i = end + 1
+    return entries, macros
+
+
+def _parser() -> Any:
+    from bibtexparser.bparser import BibTexParser
+
+    return BibTexParser(common_strings=True, ignore_nonstandard_types=False, interpolate_strings=True)
+
+
+def parse_bibtex(text: str) -> list[BibEntry]:
+    """Read every entry of a BibTeX text; any malformed entry raises InvalidInputError naming its line."""
+    import bibtexparser
+
+    records.check_text(text, field="BibTeX file", max_length=20_000_000)
+    chunks, macros = _scan(text)
+    prefix = "\n".join(macros) + "\n" if macros else ""
+    out: list[BibEntry] = []
+    seen: dict[str, int] = {}
+    for line, etype, chunk in chunks:
+        try:
+            db = bibtexparser.loads(prefix + chunk, parser=_parser())
+        except Exception as exc:  # bibtexparser raises several types, e.g. UndefinedString
+            raise InvalidInputError(
+                f"BibTeX line {line}: the @{etype} entry cannot be read ({type(exc).__name__}: {exc}); "
+                "fix that entry."
+            ) from None
+        if len(db.entries) != 1:
+            raise InvalidInputError(
+                f"BibTeX line {line}: the @{etype} entry cannot be read; check for a missing key, a missing "
+                "comma between fields or a field without '='."
+            )
+        raw = dict(db.entries[0])
+        key = str(raw.pop("ID", "")).strip()
+        raw.pop("ENTRYTYPE", None)
+        if not KEY_RE.match(key):
+            raise InvalidInputError(
+                f"BibTeX line {line}: key {key!r} is not usable; use letters, digits and _:.+/- (no spaces)."
+            )
+        if key in seen:
+            raise InvalidInputError(f"BibTeX line {line}: key {key!r} was already used on line {seen[key]}.")
+        seen[key] = line
+        out.append(BibEntry(key, etype, line, {k.lower(): str(v) for k, v in raw.items()}))
+    return out
+
+
+_SPECIALS = {
+    "ss": "ß", "aa": "å", "AA": "Å", "ae": "æ", "AE": "Æ", "oe": "œ", "OE": "Œ",
+    "o": "ø", "O": "Ø", "l": "ł", "L": "Ł", "i": "i", "j": "j",
+}  # fmt: skip
+_ACCENTS = {
+    "`": "\u0300", "'": "\u0301", "^": "\u0302", '"': "\u0308", "~": "\u0303", "=": "\u0304", ".": "\u0307",
+    "u": "\u0306", "v": "\u030c", "H": "\u030b", "c": "\u0327", "k": "\u0328", "r": "\u030a", "d": "\u0323",
+    "b": "\u0331",
+}  # fmt: skip
+_SPECIAL_RE = re.compile(r"\\(ss|aa|AA|ae|AE|oe|OE|o|O|l|L|i|j)(?![A-Za-z])(\{\})?")
+_SYMBOL_ACCENT_RE = re.compile(r"\\([`'^\"~=.])\s*(?:\{\s*([A-Za-z])\s*\}|([A-Za-z]))")
+_LETTER_ACCENT_RE = re.compile(r"\\([uvHckrdb])(?:\s*\{\s*([A-Za-z])\s*\}|\s+([A-Za-z]))")
+_ESCAPED_RE = re.compile(r"\\([&%$#_{}])")
+
+
+def latex_to_text(value: str) -> str:
+    """Decode the LaTeX a BibTeX field commonly holds (accents, special letters, escapes) and drop grouping
+    braces, for display: ``M{\\"u}ller`` -> ``Müller``, ``{RNA}`` -> ``RNA``."""
+    out = _SPECIAL_RE.sub(lambda m: _SPECIALS[m.group(1)], value)
+
+    def accent(m: re.Match[str]) -> str:
+        return (m.group(2) or m.group(3)) + _ACCENTS[m.group(1)]
+
+    out = _SYMBOL_ACCENT_RE.sub(accent, out)
+    out = _LETTER_ACCENT_RE.sub(accent, out)
+    out = _ESCAPED_RE.sub(lambda m: "\x00" + m.group(1), out)
+    out = re.sub(r"(?<!\x00)[{}]", "", out).replace("\x00", "")
+    return unicodedata.normalize("NFC", " ".join(out.split()))
+
+
+def _unicode(value: str) -> str:
+    return latex_to_text(value)
+
+
+def _year(value: str | None, line: int | None = None) -> int | None:
+    if value is None or not value.strip():
+        return None
+    text = value.strip().strip("{}")
+    if re.fullmatch(r"-?\d{1,4}", text):
+        return int(text)
+    return None  # "forthcoming", "2021a": kept as raw BibTeX, no numeric year
+
+
+def study_from_entry(entry: BibEntry) -> Study:
+    """A Study row from a parsed entry (not yet added to a session)."""
+    fields = entry.fields
+    venue_field = next((f for f in VENUE_FIELDS if fields.get(f)), "")
+    return Study(
+        key=entry.key,
+        entry_type=entry.entry_type,
+        authors=_unicode(fields.get("author", "")),
+        title=_unicode(fields.get("title", "")),
+        year=_year(fields.get("year")),
+        venue=_unicode(fields[venue_field]) if venue_field else "",
+        doi=fields.get("doi", "").strip(),
+        families=[],
+        instruments=[],
+        reported={},
+        extra={"bibtex": dict(fields), "venue_field": venue_field or "journal"},
+    )
+
+
+def import_bibtex(session: Session, *, actor: str, text: str, source: str = "") -> list[Study]:
+    """Parse all of ``text`` first, then add every entry in the caller's transaction (all or nothing)."""
+    entries = parse_bibtex(text)
+    existing = {s for s in session.exec(select(Study.key)) if s in {e.key for e in entries}}
+    if existing:
+        first = next(e for e in entries if e.key in existing)
+        raise ConflictError(
+            f"BibTeX line {first.line}: study {first.key!r} is already in the registry; remove it from the file "
+            "or rename the key (nothing was imported)."
+        )
+    reason = f"imported from BibTeX {source}".strip()
+    return [records.create(session, study_from_entry(e), actor=actor, reason=reason) for e in entries]
+
+
+def check_key(key: str) -> str:
+    if not KEY_RE.match(key):
+        raise InvalidInputError(
+            f"study key {key!r} is not usable; use 1-120 letters, digits and _:.+/- (no spaces), e.g. 'Card1995'."
+        )
+    return key
+
+
+def _balanced(value: str, field: str) -> str:
+    depth = 0
+    for ch in value:
+        depth += {"{": 1, "}": -1}.get(ch, 0)
+        if depth < 0:
+            break
+    if depth != 0:
+        raise InvalidInputError(
+            f"{field} has unbalanced braces ({value!r}); BibTeX export needs them paired."
+        )
+    return value
+
+
+def add_study(
+    session: Session,
+    *,
+    actor: str,
+    key: str,
+    entry_type: str = "article",
+    authors: str = "",
+    title: str = "",
+    year: int | None = None,
+    venue: str = "",
+    doi: str = "",
+) -> Study:
+    """Add one study by hand."""
+    check_key(key)
+    if not TYPE_RE.fullmatch(entry_type):
+        raise InvalidInputError(f"entry type {entry_type!r} must be a word such as article or book.")
+    for name, value in (("authors", authors), ("title", title), ("venue", venue), ("doi", doi)):
+        records.check_text(value, field=name, max_length=5000)
+        _balanced(value, name)
+    study = Study(
+        key=key,
+        entry_type=entry_type.lower(),
+        authors=authors,
+        title=title,
+        year=year,
+        venue=venue,
+        doi=doi,
+        families=[],
+        instruments=[],
+        reported={},
+        extra={},
+    )
+    return records.create(session, study, actor=actor)
+
+
+def _bib_value(value: str) -> str:
+    return "{" + value + "}"
+
+
+def entry_fields(study: Study) -> dict[str, str]:
+    """The BibTeX fields to export: raw text kept from import unless the display value was edited since."""
+    extra = study.extra or {}
+    raw: dict[str, str] = dict(extra.get("bibtex") or {})
+    venue_field = str(
+        extra.get("venue_field") or ("booktitle" if study.entry_type == "inproceedings" else "journal")
+    )
+    out: dict[str, str] = {}
+    current = {
+        "author": study.authors,
+        "title": study.title,
+        venue_field: study.venue,
+        "doi": study.doi,
+        "year": "" if study.year is None else str(study.year),
+    }
+    for name, value in current.items():
+        kept = raw.get(name)
+        if kept is not None and (
+            (name == "year" and (_year(kept) == study.year))
+            or (name != "year" and (_unicode(kept) if name != "doi" else kept.strip()) == value)
+        ):
+            out[name] = _bib_value(kept)
+        elif value:
+            out[name] = _bib_value(value)
+    for name, value in raw.items():
+        if name not in current and name not in out:
+            out[name] = _bib_value(value)
+    return out
+
+
+def export_bibtex(studies: Iterable[Study]) -> str:
+    """BibTeX text for the studies, sorted by key; fields in a fixed order then alphabetically."""
+    order = {name: i for i, name in enumerate(("author", "title", *VENUE_FIELDS, "year", "doi"))}
+    blocks = []
+    for study in sorted(studies, key=lambda s: s.key):
+        fields = entry_fields(study)
+        names = sorted(fields, key=lambda f: (order.get(f, len(order)), f))
+        body = ",\n".join(f"  {name} = {fields[name]}" for name in names)
+        blocks.append(
+            f"@{study.entry_type}{{{study.key},\n{body}\n}}\n"
+            if body
+            else f"@{study.entry_type}{{{study.key}}}\n"
+        )
+    return "\n".join(blocks)
+
+
+def report_stats(
+    session: Session,
+    *,
+    actor: str,
+    key: str,
+    values: Mapping[str, Any],
+    replace: bool = False,
+) -> Study:
+    """Record what a study reported (merged into earlier values unless ``replace``), validated field by field."""
+    from ivdossier.estimation.audit import ReportedStats
+
+    study = records.get(session, Study, key)
+    merged = dict(values) if replace else {**(study.reported or {}), **values}
+    clean = ReportedStats.from_mapping(merged, where=f"study {key!r}").to_dict()
+    return records.edit(session, study, {"reported": clean}, actor=actor, action="report")
+
+
+def import_stats_csv(session: Session, *, actor: str, text: str) -> list[Study]:
+    """Reported statistics for many studies from CSV text (a ``key`` column plus reported fields); all or nothing.
+
+    Optional ``instrument`` and ``family`` columns attach the study as well (several separated by ';').
+    """
+    from ivdossier.estimation.audit import REPORTED_FIELDS, ReportedStats
+
+    reader = csv.DictReader(io.StringIO(text))
+    columns = [c.strip() for c in (reader.fieldnames or [])]
+    if "key" not in columns:
+        raise InvalidInputError("the CSV needs a 'key' column naming each study; add it to the header row.")
+    allowed = {"key", "instrument", "family", *REPORTED_FIELDS}
+    unknown = [c for c in columns if c not in allowed]
+    if unknown:
+        raise InvalidInputError(
+            f"CSV column(s) {', '.join(repr(c) for c in unknown)} are not known; use key, instrument, family and "
+            f"{', '.join(REPORTED_FIELDS)}."
+        )
+    rows = []
+    for row in reader:
+        line = reader.line_num
+        data = {k.strip(): (v or "").strip() for k, v in row.items() if k is not None}
+        key = data.pop("key", "")
+        if not key:
+            raise InvalidInputError(f"CSV line {line}: the key is empty; give the study's key.")
+        inst = [s for s in data.pop("instrument", "").split(";") if s.strip()]
+        fam = [s for s in data.pop("family", "").split(";") if s.strip()]
+        values = {k: v for k, v in data.items() if v != ""}
+        ReportedStats.from_mapping(values, where=f"CSV line {line} ({key})")
+        rows.append((line, key, values, inst, fam))
+    out = []
+    for line, key, values, inst, fam in rows:
+        if records.find(session, Study, key) is None:
+            raise InvalidInputError(
+                f"CSV line {line}: no study with key {key!r}; import its BibTeX or add it with `ivdossier study add`."
+            )
+        study = report_stats(session, actor=actor, key=key, values=values)
+        for slug in inst:
+            attach(session, actor=actor, key=key, instrument=slug.strip())
+        for family in fam:
+            attach(session, actor=actor, key=key, family=family.strip())
+        out.append(study)
+    return out
+
+
+def attach(
+    session: Session, *, actor: str, key: str, instrument: str | None = None, family: str | None = None
+) -> Study:
+    """Attach a study to a candidate instrument or to an instrument family (one of the two)."""
+    if (instrument is None) == (family is None):
+        raise InvalidInputError("attach a study to exactly one of --instrument SLUG or --family FAMILY.")
+    study = records.get(session, Study, key)
+    if instrument is not None:
+        records.get(session, Instrument, instrument)
+        current = list(study.instruments or [])
+        if instrument in current:
+            return study
+        return records.edit(
+            session, study, {"instruments": sorted([*current, instrument])}, actor=actor, action="attach"
+        )
+    assert family is not None
+    records.check_slug(family, what="family")
+    fams = list(study.families or [])
+    if family in fams:
+        return study
+    return records.edit(session, study, {"families": sorted([*fams, family])}, actor=actor, action="attach")
+
+
+def critique(
+    session: Session, *, actor: str, key: str, threat: str, by: str | None = None, note: str = ""
+) -> Critique:
+    """Record that catalogue threat ``threat`` was raised against study ``key`` (by study ``by`` if given)."""
+    study = records.get(session, Study, key)
+    th = records.get(session, Threat, threat)
+    raiser = records.get(session, Study, by) if by else None
+    if raiser is not None and raiser.id == study.id:
+        raise InvalidInputError(f"study {key!r} cannot critique itself; pass another study with --by.")
+    records.check_text(note, field="note")
+    slug = f"{key}--{th.code}--{by or 'team'}"[:280]
+    dup = session.exec(
+        select(Critique).where(
+            Critique.study_id == study.id,
+            Critique.threat_id == th.id,
+            Critique.raised_by_id == (raiser.id if raiser else None),
+        )
+    ).first()
+    if dup is not None:
+        raise ConflictError(
+            f"threat {th.code} was already recorded against {key!r}{' by ' + by if by else ''}."
+        )
+    row = Critique(
+        slug=slug,
+        study_id=study.id or 0,
+        threat_id=th.id or 0,
+        raised_by_id=raiser.id if raiser else None,
+        note=note,
+    )
+    return records.create(session, row, actor=actor)
+
+
+@dataclass(frozen=True)
+class CritiqueInfo:
+    """A critique in plain terms: which threat, by which study, with the note."""
+
+    threat_code: str
+    threat_title: str
+    condition: str
+    raised_by: str | None
+    note: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "threat": self.threat_code,
+            "title": self.threat_title,
+            "condition": self.condition,
+            "raised_by": self.raised_by,
+            "note": self.note,
+        }
+
+
+def critiques_of(session: Session, study: Study) -> list[CritiqueInfo]:
+    """Critiques recorded against one study, ordered by threat code."""
+    rows = session.exec(
+        select(Critique, Threat).where(Critique.study_id == study.id, Critique.threat_id == Threat.id)
+    )
+    out = []
+    for crit, threat in rows:
+        raiser = session.get(Study, crit.raised_by_id) if crit.raised_by_id else None
+        out.append(
+            CritiqueInfo(
+                threat.code, threat.title, threat.condition, raiser.key if raiser else None, crit.note
+            )
+        )
+    return sorted(out, key=lambda c: (c.threat_code, c.raised_by or ""))
+
+
+def list_studies(
+    session: Session, *, instrument: str | None = None, family: str | None = None
+) -> list[Study]:
+    """Studies, optionally those attached to an instrument (directly or through its family) or to a family."""
+    studies = list(session.exec(select(Study).order_by(Study.key)))
+    if instrument is not None:
+        inst = records.get(session, Instrument, instrument)
+        return [
+            s
+            for s in studies
+            if inst.slug in (s.instruments or []) or (inst.family and inst.family in (s.families or []))
+        ]
+    if family is not None:
+        slugs = {i.slug for i in session.exec(select(Instrument).where(Instrument.family == family))}
+        return [s for s in studies if family in (s.families or []) or slugs & set(s.instruments or [])]
+    return studies
+
+
+def citation(study: Study) -> str:
+    """A short author-year label, e.g. 'Card (1995)' or 'Angrist and Krueger (1991)'."""
+    names = [a.strip() for a in re.split(r"\s+and\s+", study.authors) if a.strip()]
+    surnames = [n.split(",")[0].strip() if "," in n else n.split()[-1] for n in names]
+    if not surnames:
+        who = study.key
+    elif len(surnames) == 1:
+        who = surnames[0]
+    elif len(surnames) == 2:
+        who = f"{surnames[0]} and {surnames[1]}"
+    else:
+        who = f"{surnames[0]} et al."
+    return f"{who} ({study.year})" if study.year is not None else who
+
+
+@dataclass(frozen=True)
+class AuditInputs:
+    """Plain data for an audit: the scope's name, its studies with their reported values and critiques."""
+
+    scope: str
+    studies: tuple[tuple[str, str, dict[str, Any], tuple[CritiqueInfo, ...]], ...]
+
+
+def audit_inputs(
+    session: Session, *, instrument: str | None = None, family: str | None = None, key: str | None = None
+) -> AuditInputs:
+    """Collect what the audit needs for one instrument, one family, one study or (none given) every study."""
+    given = [v for v in (instrument, family, key) if v is not None]
+    if len(given) > 1:
+        raise InvalidInputError(
+            "audit one scope at a time: give only one of --instrument, --family or --study."
+        )
+    if key is not None:
+        chosen = [records.get(session, Study, key)]
+        scope = f"study {key}"
+    else:
+        chosen = list_studies(session, instrument=instrument, family=family)
+        scope = f"instrument {instrument}" if instrument else f"family {family}" if family else "all studies"
+    return AuditInputs(
+        scope,
+        tuple((s.key, citation(s), dict(s.reported or {}), tuple(critiques_of(session, s))) for s in chosen),
+    )
+
+
+def study_dict(session: Session, study: Study) -> dict[str, Any]:
+    """A JSON-safe view of one study with its critiques."""
+    data = records.snapshot(study, bookkeeping=True)
+    data["citation"] = citation(study)
+    data["critiques"] = [c.to_dict() for c in critiques_of(session, study)]
+    return data
+
+
+def keys_of(studies: Sequence[Study]) -> list[str]:
+    return [s.key for s in studies]
