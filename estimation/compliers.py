@@ -104,18 +104,15 @@ def _cluster_codes(frame: pd.DataFrame, cluster: str | None) -> np.ndarray[Any, 
     return np.asarray(codes, dtype=np.int64)
 
 
-def _bootstrap_indices(
+def _bootstrap_counts(
     rng: np.random.Generator, n: int, clusters: np.ndarray[Any, np.dtype[np.int64]] | None
-) -> np.ndarray[Any, np.dtype[np.int64]]:
-    """One nonparametric bootstrap draw of row indices; with clusters, whole clusters are resampled."""
+) -> FloatArray:
+    """One nonparametric bootstrap draw as row multiplicities; with clusters, whole clusters are resampled."""
     if clusters is None:
-        return rng.integers(0, n, size=n)
+        return np.bincount(rng.integers(0, n, size=n), minlength=n).astype(np.float64)
     n_groups = int(clusters.max()) + 1
-    order = np.argsort(clusters, kind="stable")
-    starts = np.searchsorted(clusters[order], np.arange(n_groups))
-    ends = np.append(starts[1:], n)
-    drawn = rng.integers(0, n_groups, size=n_groups)
-    return np.concatenate([order[starts[g] : ends[g]] for g in drawn])
+    mult = np.bincount(rng.integers(0, n_groups, size=n_groups), minlength=n_groups)
+    return np.asarray(mult[clusters], dtype=np.float64)
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -240,14 +237,15 @@ def complier_shares(
         )
     _check_n_boot(n_boot)
     rng = np.random.default_rng(seed)
+    parts = np.column_stack([z, z * d, 1.0 - z, (1.0 - z) * d])
     draws = np.empty((n_boot, 3))
     for b in range(n_boot):
-        idx = _bootstrap_indices(rng, d.size, clusters)
-        zb = z[idx]
-        if zb.min() == zb.max():
+        s1, s1d, s0, s0d = _bootstrap_counts(rng, d.size, clusters) @ parts
+        if s1 == 0 or s0 == 0:
             draws[b] = np.nan
             continue
-        draws[b, :3] = _shares(d[idx], zb)[:3]
+        p1b, p0b = s1d / s1, s0d / s0
+        draws[b] = (p1b - p0b, p0b, 1.0 - p1b)
     sd = np.nanstd(draws, axis=0, ddof=1)
     return ComplierShares(
         complier=comp,
@@ -349,15 +347,16 @@ def _json_float(value: float) -> float | str | None:
     return float(value)
 
 
-def _instrument_propensity(z: FloatArray, x: FloatArray | None) -> FloatArray:
-    """P(Z=1 | X): the sample share without covariates, a logit fit with them."""
+def _instrument_propensity(z: FloatArray, x: FloatArray | None, counts: FloatArray) -> FloatArray:
+    """P(Z=1 | X): the (weighted) sample share without covariates, a logit fit with them."""
     if x is None:
-        return np.full(z.shape, float(np.mean(z)))
+        return np.full(z.shape, float(counts @ z / counts.sum()))
     import statsmodels.api as sm  # local import: statsmodels is slow to import
 
     design = np.column_stack([np.ones(z.size), x])
     try:
-        fit = sm.Logit(z, design).fit(disp=0, maxiter=100)
+        model = sm.GLM(z, design, family=sm.families.Binomial(), freq_weights=counts)
+        fit = model.fit(maxiter=100)
     except Exception as exc:  # perfect separation or a singular design
         raise EstimationError(
             f"the logit of the instrument on the propensity covariates failed ({exc}); drop covariates that "
@@ -371,22 +370,24 @@ def _kappa(d: FloatArray, z: FloatArray, pz: FloatArray) -> FloatArray:
 
 
 def _kappa_means(
-    d: FloatArray, z: FloatArray, w: FloatArray, x: FloatArray | None
+    d: FloatArray, z: FloatArray, w: FloatArray, x: FloatArray | None, counts: FloatArray
 ) -> tuple[FloatArray, float]:
-    pz = _instrument_propensity(z, x)
-    if np.any(pz <= 1e-6) or np.any(pz >= 1 - 1e-6):
+    """Kappa-weighted means of the columns of ``w`` with row multiplicities ``counts``, and mean kappa."""
+    pz = _instrument_propensity(z, x, counts)
+    live = counts > 0
+    if np.any(pz[live] <= 1e-6) or np.any(pz[live] >= 1 - 1e-6):
         raise EstimationError(
             "the estimated instrument propensity reaches 0 or 1 for some rows, so kappa weights explode; "
             "drop propensity covariates that separate Z=0 from Z=1."
         )
-    kappa = _kappa(d, z, pz)
+    kappa = _kappa(d, z, pz) * counts
     total = float(np.sum(kappa))
     if total <= 0:
         raise EstimationError(
             "the kappa weights sum to a non-positive number, so there are no compliers to describe; "
             "check that the instrument raises the treatment (recode Z as 1 - Z if it lowers it)."
         )
-    return (kappa @ w) / total, total / d.size
+    return (kappa @ w) / total, total / float(counts.sum())
 
 
 def complier_means(
@@ -417,7 +418,7 @@ def complier_means(
         x = np.column_stack([xcols[c] for c in propensity_covariates])
     clusters = _cluster_codes(frame, cluster)
 
-    means, share = _kappa_means(d, z, w, x)
+    means, share = _kappa_means(d, z, w, x, np.ones(d.size))
     at_mask = (d == 1.0) & (z == 0.0)
     nt_mask = (d == 0.0) & (z == 1.0)
     at_means = w[at_mask].mean(axis=0) if at_mask.any() else np.full(w.shape[1], np.nan)
@@ -427,12 +428,12 @@ def complier_means(
     rng = np.random.default_rng(seed)
     draws = np.full((n_boot, w.shape[1]), np.nan)
     for b in range(n_boot):
-        idx = _bootstrap_indices(rng, d.size, clusters)
-        zb = z[idx]
-        if zb.min() == zb.max():
+        counts = _bootstrap_counts(rng, d.size, clusters)
+        n1 = counts @ z
+        if n1 == 0 or n1 == counts.sum():
             continue
         try:
-            draws[b] = _kappa_means(d[idx], zb, w[idx], None if x is None else x[idx])[0]
+            draws[b] = _kappa_means(d, z, w, x, counts)[0]
         except EstimationError:
             continue
     ok = np.all(np.isfinite(draws), axis=1)
@@ -553,25 +554,26 @@ def _bin_edges(y: FloatArray, bins: int | Sequence[float]) -> FloatArray:
     return np.concatenate([[-np.inf], edges[np.isfinite(edges)], [np.inf]])
 
 
-def _interval_densities(
-    y_bin: np.ndarray[Any, np.dtype[np.int64]], d: FloatArray, z: FloatArray, n_bins: int
-) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
-    """Per-bin joint probabilities P(bin, D=d | Z=z) for the four (d, z) cells."""
-    out = []
-    for dv, zv in ((1.0, 1.0), (1.0, 0.0), (0.0, 0.0), (0.0, 1.0)):
-        zmask = z == zv
-        counts = np.bincount(y_bin[zmask & (d == dv)], minlength=n_bins).astype(np.float64)
-        out.append(counts / max(int(zmask.sum()), 1))
-    return out[0], out[1], out[2], out[3]
+_CELLS = ((1.0, 1.0), (1.0, 0.0), (0.0, 0.0), (0.0, 1.0))  # (d, z): treated arm pair, then untreated pair
+
+
+def _cell_codes(y_bin: np.ndarray[Any, np.dtype[np.int64]], d: FloatArray, z: FloatArray, n_bins: int) -> Any:
+    """Code cell * n_bins + bin for each row, cells ordered as in ``_CELLS``; one bincount then gives all."""
+    cell = np.select([(d == dv) & (z == zv) for dv, zv in _CELLS], [0, 1, 2, 3])
+    return cell * n_bins + y_bin
 
 
 def _interval_stats(
-    y_bin: np.ndarray[Any, np.dtype[np.int64]], d: FloatArray, z: FloatArray, n_bins: int
+    codes: np.ndarray[Any, np.dtype[np.int64]], z: FloatArray, n_bins: int, counts: FloatArray | None
 ) -> tuple[FloatArray, FloatArray]:
-    """Densities and SEs for every interval of contiguous bins, treated arm first then untreated."""
-    p11, p10, p00, p01 = _interval_densities(y_bin, d, z, n_bins)
-    n1 = max(int(np.sum(z == 1.0)), 1)
-    n0 = max(int(np.sum(z == 0.0)), 1)
+    """Densities and SEs for every interval of contiguous bins, treated arm first then untreated.
+
+    Rows are weighted by ``counts`` (bootstrap multiplicities; None for the sample itself).
+    """
+    mass = np.bincount(codes, weights=counts, minlength=4 * n_bins).reshape(4, n_bins)
+    n1 = max(float(z.sum() if counts is None else counts @ z), 1.0)
+    n0 = max(float(z.size - z.sum() if counts is None else counts.sum() - counts @ z), 1.0)
+    p11, p10, p00, p01 = mass[0] / n1, mass[1] / n0, mass[2] / n0, mass[3] / n1
     lo, hi = np.triu_indices(n_bins)
     dens, ses = [], []
     for a, b, na, nb in ((p11, p10, n1, n0), (p00, p01, n0, n1)):
@@ -608,7 +610,8 @@ def check_testable_implications(
     edges = _bin_edges(y, bins)
     n_bins = edges.size - 1
     y_bin = np.asarray(np.searchsorted(edges[1:-1], y, side="right"), dtype=np.int64)
-    dens, ses = _interval_stats(y_bin, d, z, n_bins)
+    codes = _cell_codes(y_bin, d, z, n_bins)
+    dens, ses = _interval_stats(codes, z, n_bins, None)
     floor = 1.0 / np.sqrt(d.size)  # keeps near-empty intervals from dominating the maximum
     weights = 1.0 / np.maximum(ses, floor)
     stat = float(np.max(-dens * weights))
@@ -619,7 +622,8 @@ def check_testable_implications(
     boot = np.empty(n_boot)
     for b in range(n_boot):
         idx = np.concatenate([rng.choice(idx1, idx1.size), rng.choice(idx0, idx0.size)])
-        dens_b, _ = _interval_stats(y_bin[idx], d[idx], z[idx], n_bins)
+        counts = np.bincount(idx, minlength=d.size).astype(np.float64)
+        dens_b, _ = _interval_stats(codes, z, n_bins, counts)
         boot[b] = np.max(-(dens_b - dens) * weights)
     p_value = float((1 + np.sum(boot >= stat)) / (n_boot + 1))
 
