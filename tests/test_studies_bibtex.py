@@ -128,9 +128,11 @@ def test_more_malformed_inputs() -> None:
 def test_existing_key_is_a_conflict_and_nothing_is_imported(reg: Registry) -> None:
     with reg.writing() as s:
         studies.add_study(s, actor="ana", key="Okafor2021", title="Already here")
-    with pytest.raises(ConflictError, match=r"BibTeX line 14: study 'Okafor2021' is already in the registry"):
-        with reg.writing() as s:
-            studies.import_bibtex(s, actor="ana", text=(FIXTURES / "varied.bib").read_text("utf-8"))
+    with (
+        pytest.raises(ConflictError, match=r"BibTeX line 14: study 'Okafor2021' is already in the registry"),
+        reg.writing() as s,
+    ):
+        studies.import_bibtex(s, actor="ana", text=(FIXTURES / "varied.bib").read_text("utf-8"))
     assert list(_fields(reg)) == ["Okafor2021"]
 
 
@@ -183,21 +185,27 @@ def test_study_errors_are_specific(reg: Registry) -> None:
         _setup_program(s)
         studies.add_study(s, actor="ana", key="A2020")
         studies.add_study(s, actor="ana", key="B2021")
-    with pytest.raises(InvalidInputError, match="study 'A2020': std_error must be positive"):
-        with reg.writing() as s:
-            studies.report_stats(s, actor="ana", key="A2020", values={"std_error": 0})
+    with (
+        pytest.raises(InvalidInputError, match="study 'A2020': std_error must be positive"),
+        reg.writing() as s,
+    ):
+        studies.report_stats(s, actor="ana", key="A2020", values={"std_error": 0})
     with pytest.raises(NotFoundError, match="no threat named 'XX-E99'"), reg.writing() as s:
         studies.critique(s, actor="ana", key="A2020", threat="XX-E99")
     with pytest.raises(InvalidInputError, match="cannot critique itself"), reg.writing() as s:
         studies.critique(s, actor="ana", key="A2020", threat="DG-E01", by="A2020")
-    with pytest.raises(InvalidInputError, match="exactly one of --instrument SLUG or --family FAMILY"):
-        with reg.writing() as s:
-            studies.attach(s, actor="ana", key="A2020")
+    with (
+        pytest.raises(InvalidInputError, match="exactly one of --instrument SLUG or --family FAMILY"),
+        reg.writing() as s,
+    ):
+        studies.attach(s, actor="ana", key="A2020")
     with reg.writing() as s:
         studies.critique(s, actor="ana", key="A2020", threat="DG-E01", by="B2021")
-    with pytest.raises(ConflictError, match="DG-E01 was already recorded against 'A2020' by B2021"):
-        with reg.writing() as s:
-            studies.critique(s, actor="ana", key="A2020", threat="DG-E01", by="B2021")
+    with (
+        pytest.raises(ConflictError, match="DG-E01 was already recorded against 'A2020' by B2021"),
+        reg.writing() as s,
+    ):
+        studies.critique(s, actor="ana", key="A2020", threat="DG-E01", by="B2021")
     with pytest.raises(InvalidInputError, match="title has unbalanced braces"), reg.writing() as s:
         studies.add_study(s, actor="ana", key="C2022", title="Open {brace")
 
@@ -212,9 +220,11 @@ def test_csv_of_many_studies_is_all_or_nothing_with_the_line(reg: Registry) -> N
         done = studies.import_stats_csv(s, actor="ana", text=good)
     assert [d.key for d in done] == ["A2020", "B2021"]
     bad = "key,estimate,std_error\nA2020,0.9,0.1\nB2021,0.5,-2\n"
-    with pytest.raises(InvalidInputError, match=r"CSV line 3 \(B2021\): std_error must be positive"):
-        with reg.writing() as s:
-            studies.import_stats_csv(s, actor="ana", text=bad)
+    with (
+        pytest.raises(InvalidInputError, match=r"CSV line 3 \(B2021\): std_error must be positive"),
+        reg.writing() as s,
+    ):
+        studies.import_stats_csv(s, actor="ana", text=bad)
     with reg.reading() as s:
         a = s.exec(select(Study).where(Study.key == "A2020")).one()
     assert a.reported == {
@@ -225,9 +235,7 @@ def test_csv_of_many_studies_is_all_or_nothing_with_the_line(reg: Registry) -> N
         "f_kind": "robust",
     }
     assert a.instruments == ["fibre"]
-    with pytest.raises(InvalidInputError, match=r"CSV column\(s\) 'beta' are not known"):
-        with reg.writing() as s:
-            studies.import_stats_csv(s, actor="ana", text="key,beta\nA2020,1\n")
-    with pytest.raises(InvalidInputError, match=r"CSV line 2: no study with key 'Z1999'"):
-        with reg.writing() as s:
-            studies.import_stats_csv(s, actor="ana", text="key,estimate\nZ1999,1\n")
+    with pytest.raises(InvalidInputError, match=r"CSV column\(s\) 'beta' are not known"), reg.writing() as s:
+        studies.import_stats_csv(s, actor="ana", text="key,beta\nA2020,1\n")
+    with pytest.raises(InvalidInputError, match=r"CSV line 2: no study with key 'Z1999'"), reg.writing() as s:
+        studies.import_stats_csv(s, actor="ana", text="key,estimate\nZ1999,1\n")
