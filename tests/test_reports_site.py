@@ -1,0 +1,109 @@
+"""Static site: pages per program and instrument, relative links only, nothing written outside out_dir."""
+
+from __future__ import annotations
+
+import dataclasses
+import re
+from pathlib import Path
+
+import pytest
+
+from ivdossier.reports.inputs import CatalogEntry, InstrumentInfo, ProgramInfo
+from ivdossier.reports.sample import PROGRAM, make_run, sample_input
+from ivdossier.reports.site import build_site, safe_slug
+
+HOSTILE_SLUGS = [
+    "../../etc/passwd",
+    "/abs/path",
+    "..",
+    ".",
+    "",
+    "a/../../b",
+    "C:\\Windows\\system32",
+    "con",
+    "name with spaces & ümlauts",
+    "x" * 300,
+    "\x00nul",
+]
+
+
+@pytest.mark.parametrize("slug", HOSTILE_SLUGS)
+def test_safe_slug_keeps_only_plain_file_name_characters(slug: str) -> None:
+    out = safe_slug(slug)
+    assert re.fullmatch(r"[a-z0-9][a-z0-9_-]{0,63}", out), out
+    assert out not in ("con", "nul", ".", "..")
+
+
+def test_safe_slug_examples() -> None:
+    assert safe_slug("Fibre Wave (2019)") == "fibre-wave-2019"
+    assert safe_slug("../../etc/passwd") == "etc-passwd"
+    assert safe_slug("Überweisung") == "uberweisung"
+    assert safe_slug("") == "item"
+
+
+def dossier_for(program: ProgramInfo, slug: str, name: str) -> object:
+    base = sample_input(n_links=3, n_runs=2)
+    runs = (make_run(1, plots=False),)  # plots are covered elsewhere; keep this test fast
+    return dataclasses.replace(
+        base, program=program, instrument=InstrumentInfo(slug=slug, name=name), runs=runs
+    )
+
+
+def test_hostile_slugs_never_escape_the_output_folder(tmp_path: Path) -> None:
+    out = tmp_path / "site"
+    evil_program = ProgramInfo(slug="../../outside", title="Evil program")
+    dossiers = [dossier_for(evil_program, s, f"Instrument {i}") for i, s in enumerate(HOSTILE_SLUGS)]
+    written = build_site(out, [evil_program], dossiers, [])  # type: ignore[arg-type]
+    root = out.resolve()
+    assert all(p.resolve().is_relative_to(root) for p in written)
+    assert sorted(p for p in tmp_path.rglob("*") if p.is_file()) == sorted(written)
+    # one page per instrument even when sanitised slugs collide ("." and "" both become "item")
+    pages = [p for p in written if p.parent.name == "instruments"]
+    assert len(pages) == len(HOSTILE_SLUGS) == len({p.name for p in pages})
+
+
+def test_site_layout_and_relative_links(tmp_path: Path) -> None:
+    second = ProgramInfo(slug="telehealth-ed-2", title="A second question")
+    dossiers = [sample_input(), dossier_for(PROGRAM, "mast", "Mast distance"), dossier_for(second, "z", "Z")]
+    catalogue = [
+        CatalogEntry(
+            "TH-017",
+            "Broadband also brings online pharmacy",
+            "exclusion",
+            ("timing of entry",),
+            "partly testable",
+            "Other services arrive with the fibre.",
+            ("placebo outcome",),
+        ),
+    ]
+    written = build_site(tmp_path, [PROGRAM], dossiers, catalogue)  # type: ignore[arg-type]
+    rel = sorted(str(p.relative_to(tmp_path.resolve())) for p in written)
+    assert rel == sorted(
+        [
+            "index.html",
+            "catalogue.html",
+            "programs/telehealth-ed/index.html",
+            "programs/telehealth-ed/instruments/fibre-wave.html",
+            "programs/telehealth-ed/instruments/mast.html",
+            "programs/telehealth-ed-2/index.html",
+            "programs/telehealth-ed-2/instruments/z.html",
+        ]
+    )
+    for page in written:
+        html = page.read_text(encoding="utf-8")
+        for href in re.findall(r'href="([^"]*)"', html):
+            assert not re.match(r"^[a-z]+:", href) and not href.startswith("/"), (page, href)
+            if not href.startswith("#"):
+                assert (page.parent / href).resolve().is_file(), (page, href)
+
+
+def test_program_page_compares_candidates(tmp_path: Path) -> None:
+    dossiers = [sample_input(), dossier_for(PROGRAM, "mast", "Mast distance")]
+    build_site(tmp_path, [PROGRAM], dossiers, [])  # type: ignore[arg-type]
+    page = (tmp_path / "programs/telehealth-ed/index.html").read_text(encoding="utf-8")
+    table = page[page.index("<table>") : page.index("</table>")]
+    assert table.count("<tr>") == 3  # header and two instruments
+    assert "Fibre rollout wave" in table and "Mast distance" in table
+    assert "TH-017 Broadband also brings online pharmacy (open, severity 4.5)" in table
+    assert "38.4" in table and "[−0.35, −0.07]" in table
+    assert table.count('class="badge ') == 8

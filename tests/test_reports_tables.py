@@ -1,0 +1,105 @@
+"""Publication tables: booktabs structure, LaTeX escaping, the runs' numbers in the right columns."""
+
+from __future__ import annotations
+
+import dataclasses
+import re
+
+import pytest
+
+from ivdossier.errors import InvalidInputError
+from ivdossier.reports import resultview as rv
+from ivdossier.reports.sample import iv_results, make_run, ols_results
+from ivdossier.reports.tables import latex_escape, runs_table
+
+
+def runs() -> list:
+    return [
+        make_run(0, method="ols", results=ols_results(), plots=False),
+        make_run(1, results=iv_results(coef=-0.21, se=0.06, feff=38.4)),
+        make_run(2, method="liml", results=iv_results(coef=-0.2345, se=0.0712, feff=31.0)),
+    ]
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        # the ten characters LaTeX reserves, escaped the way LaTeX manuals list them (common practice)
+        ("50% & $5 #1 a_b {x}", r"50\% \& \$5 \#1 a\_b \{x\}"),
+        ("~^\\", r"\textasciitilde{}\textasciicircum{}\textbackslash{}"),
+        ("a<b>c|d", r"a\textless{}b\textgreater{}c\textbar{}d"),
+        ("line\nbreak\x00", "line break"),
+        ("τ = 10 % – ok", r"$\tau$ = 10 \% -- ok"),
+    ],
+)
+def test_latex_escape(text: str, expected: str) -> None:
+    assert latex_escape(text) == expected
+
+
+def test_latex_table_uses_booktabs_and_one_column_per_run() -> None:
+    tex = runs_table(runs())
+    lines = tex.splitlines()
+    assert lines[0] == r"\begin{tabular}{lccc}"
+    assert lines.index(r"\toprule") < lines.index(r"\midrule") < lines.index(r"\bottomrule")
+    assert r"\hline" not in tex
+    assert lines[2] == r" & (1) & (2) & (3) \\"
+    assert lines[3] == r" & OLS & 2SLS & LIML \\"
+    assert tex.rstrip().endswith(r"\end{tabular}")
+
+
+def test_latex_table_reports_each_runs_numbers() -> None:
+    tex = runs_table(runs())
+    est = re.search(r"^Effect of telehealth & (.+) \\\\$", tex, re.M)
+    assert est is not None
+    values = [float(v.strip("$ ")) for v in est.group(1).split("&")]
+    assert values == [-0.05, -0.21, -0.2345]
+    se_line = tex.splitlines()[tex.splitlines().index(est.group(0)) + 1]
+    assert se_line == r" & ($0.01$) & ($0.06$) & ($0.0712$) \\"
+    feff = re.search(r"^Effective F & (.*) \\\\$", tex, re.M)
+    assert feff is not None
+    assert [c.strip() for c in feff.group(1).split("&")] == ["", "$38.4$", "$31$"]
+    assert r"\multicolumn{4}{l}{\textit{First stage}} \\" in tex
+    assert r"$[-0.35, -0.07]$" in tex
+
+
+def test_hostile_names_are_escaped_in_latex() -> None:
+    evil = dataclasses.replace(runs()[1], slug="run_1&2", vcov="cluster{district}%")
+    tex = runs_table([evil], treatment="telehealth")
+    assert r"run\_1\&2" in tex
+    assert r"cluster\{district\}\%" in tex
+    # no unescaped specials outside our own commands and math
+    body = re.sub(r"\$[^$]*\$", "", tex)
+    assert re.search(r"(?<!\\)[%&_#]", body.replace(" & ", " ").replace("&", "")) is None
+
+
+def test_unbounded_sets_print_as_infinity() -> None:
+    run = make_run(1, results=iv_results(ar=[["-inf", -0.4], [0.2, "inf"]]))
+    tex = runs_table([run])
+    assert r"$(-\infty, -0.4] \cup [0.2, \infty)$" in tex
+    md = runs_table([run], "markdown")
+    assert "(−∞, −0.4] ∪ [0.2, ∞)" in md
+
+
+def test_markdown_table_has_the_same_layout() -> None:
+    md = runs_table(runs(), "markdown", caption="Effect | of telehealth")
+    assert md.startswith("**Effect \\| of telehealth**")
+    rows = [line for line in md.splitlines() if line.startswith("|")]
+    assert rows[0] == "|  | (1) | (2) | (3) |"
+    assert rows[2] == "|  | OLS | 2SLS | LIML |"
+    est = next(r for r in rows if r.startswith("| Effect of telehealth"))
+    assert [rv.parse_fmt(c.strip()) for c in est.strip("|").split("|")[1:]] == [-0.05, -0.21, -0.2345]
+
+
+def test_rows_empty_in_every_run_are_left_out() -> None:
+    tex = runs_table([runs()[0]])
+    assert "Effective F" not in tex and "First stage" not in tex
+    assert "Observations" in tex
+
+
+def test_bad_arguments_name_the_fix() -> None:
+    with pytest.raises(
+        InvalidInputError, match="fmt='html' is not a table format; use 'latex' or 'markdown'"
+    ):
+        runs_table(runs(), "html")
+    with pytest.raises(InvalidInputError, match="needs at least one run"):
+        runs_table([])
