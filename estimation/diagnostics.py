@@ -103,7 +103,7 @@ def weak_iv_suite(
     robust = WeakIVRobustSection(
         anderson_rubin=anderson_rubin(ym, xm, zm, alpha=alpha, **kw),
         tf=tf_inference(ym, xm, zm, **kw),
-        clr=clr_inference(ym, xm, zm, spec=spec, n_partialled=n_partialled, alpha=alpha),
+        clr=clr_inference(ym, xm, zm, alpha=alpha, **kw),
     )
     rf = reduced_form(ym, zm, instrument_names=instrument_names, **kw)
     oid = overid_test(ym, xm, zm, beta=b, spec=spec, n_partialled=n_partialled)

@@ -18,8 +18,9 @@ tF (Lee, McCrary, Moreira and Porter 2022): with one instrument, beta_IV +/- c(F
 Wald F under the chosen covariance (pi_x^2 / V_xx) and se the delta-method standard error under the same
 covariance, which equals the usual 2SLS sandwich standard error when k = 1.
 
-CLR (Moreira 2003), one endogenous regressor, computed for the unadjusted (homoskedastic) covariance only. The
-p-value is exact given Q_T through one-dimensional numerical integration over the chi-square(k - 1) part:
+CLR, one endogenous regressor: Moreira (2003) under the unadjusted covariance; under a robust or cluster
+covariance the GMM form of Kleibergen (2005) built from the same pi_y, pi_x and V (it reduces to Moreira's
+statistic under the Kronecker covariance). The p-value is exact given Q_T (for Kleibergen's form: given r) through one-dimensional numerical integration over the chi-square(k - 1) part:
 P(LR > m | Q_T = q) = P(chi2_{k-1} > m + q) + int_0^{m+q} f_{k-1}(v) P(chi2_1 > m - v m / (m + q)) dv, which
 follows from LR = (Q_1 + Q_{k-1} - q + sqrt((Q_1 + Q_{k-1} + q)^2 - 4 q Q_{k-1})) / 2 with independent
 Q_1 ~ chi2(1) and Q_{k-1} ~ chi2(k-1) under the null. The set inverts the test on the same angle grid.
@@ -495,7 +496,7 @@ def clr_p_value(lr: float, qt: float, k: int) -> float:
 
 @dataclass(frozen=True)
 class CLRResult:
-    """Moreira's conditional likelihood-ratio test at a null and its confidence set (homoskedastic form)."""
+    """Conditional likelihood-ratio test at a null and its confidence set (one endogenous regressor)."""
 
     applicable: bool
     reason: str | None
@@ -506,6 +507,8 @@ class CLRResult:
     alpha: float | None = None
     intervals: list[Interval] | None = None
     shape: str | None = None
+    version: str | None = None
+    cov_kind: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-safe dict."""
@@ -522,8 +525,10 @@ class CLRResult:
             if self.intervals is None
             else [json_safe(list(iv)) for iv in self.intervals],
             "shape": self.shape,
-            "cov": "unadjusted (homoskedastic reduced-form errors, Moreira 2003)",
-            "source": "Moreira (2003), A Conditional Likelihood Ratio Test for Structural Models, Econometrica",
+            "cov": self.cov_kind,
+            "version": self.version,
+            "source": "Moreira (2003), A Conditional Likelihood Ratio Test for Structural Models, Econometrica; "
+            "Kleibergen (2005), Testing Parameters in GMM Without Assuming that They Are Identified, Econometrica",
         }
 
 
@@ -547,6 +552,34 @@ def _sqrt_psd(a: Array) -> Array:
     return (vecs * np.sqrt(np.clip(vals, 0.0, None))) @ vecs.T
 
 
+def _clr_stats_robust(m: _Moments, theta: float) -> tuple[float, float]:
+    """(CLR, r) at beta = tan(theta) in the GMM form of Kleibergen (2005) with the moments' own covariance.
+
+    g = pi_y - b pi_x with covariance W(b); the Jacobian -pi_x is orthogonalised against g, giving D; then
+    AR = g'W^{-1}g, LM = the projection of g on D, r = D'V_{DD.g}^{-1}D and
+    CLR = (AR - r + sqrt((AR + r)^2 - 4 (AR - LM) r)) / 2. Every piece is invariant to scaling (cos, sin).
+    """
+    c, s = math.cos(theta), math.sin(theta)
+    g = c * m.pi_y - s * m.pi_x
+    # h = s pi_y + c pi_x spans the Jacobian direction: -h = (-pi_x - s g) / c, so orthogonalising h against g
+    # gives the orthogonalised Jacobian up to scale, without the 0/0 that -pi_x has at beta = +/-inf.
+    h = s * m.pi_y + c * m.pi_x
+    v_xy = m.v_yx.T
+    v_gg = c * c * m.v_yy - s * c * (m.v_yx + v_xy) + s * s * m.v_xx
+    v_hh = s * s * m.v_yy + s * c * (m.v_yx + v_xy) + c * c * m.v_xx
+    v_hg = s * c * m.v_yy - s * s * m.v_yx + c * c * v_xy - s * c * m.v_xx  # Cov(h, g)
+    w_g = np.linalg.solve(v_gg, g)
+    d = h - v_hg @ w_g
+    v_dd_g = v_hh - v_hg @ np.linalg.solve(v_gg, v_hg.T)
+    ar = float(g @ w_g)
+    w_d = np.linalg.solve(v_gg, d)
+    dd = float(d @ w_d)
+    lm = float((g @ w_d) ** 2 / dd) if dd > 0 else 0.0
+    r = max(float(d @ np.linalg.solve(v_dd_g, d)), 0.0)
+    clr = 0.5 * (ar - r + math.sqrt(max((ar + r) ** 2 - 4 * (ar - lm) * r, 0.0)))
+    return clr, r
+
+
 def clr_inference(
     y: np.ndarray,
     x: np.ndarray,
@@ -554,46 +587,51 @@ def clr_inference(
     *,
     spec: CovSpec,
     n_partialled: int,
+    n_partialled_nested: int = 0,
     alpha: float = 0.05,
     null: float = 0.0,
     n_grid: int = 241,
 ) -> CLRResult:
     """CLR test at ``null`` and the (1 - alpha) CLR set by grid inversion with brentq refinement.
 
-    Computed for one endogenous regressor under the unadjusted covariance; otherwise not applicable.
+    One endogenous regressor. Unadjusted covariance: Moreira's (2003) statistic with Omega estimated from the
+    reduced-form residuals. Robust or cluster covariance: the GMM version of Kleibergen (2005), which uses
+    the same conditional null distribution given its rank statistic r (asymptotic under weak instruments).
     """
     ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
     if xm.shape[1] != 1:
         return CLRResult(False, "the CLR test here covers one endogenous regressor")
-    if spec.kind != "unadjusted":
-        return CLRResult(
-            False,
-            f"the CLR test is computed for the unadjusted (homoskedastic) covariance only; with the {spec.kind} "
-            "covariance use the Anderson–Rubin set, which is robust to it",
-        )
-    m = _moments(ym, xm, zm, spec, n_partialled, 0)
+    m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
     k = m.k
     q = m.zz
-    omega = (
-        np.array(
-            [
-                [np.trace(m.v_yy @ q), np.trace(m.v_yx @ q)],
-                [np.trace(m.v_yx.T @ q), np.trace(m.v_xx @ q)],
-            ]
+    if spec.kind == "unadjusted":
+        omega = (
+            np.array(
+                [
+                    [np.trace(m.v_yy @ q), np.trace(m.v_yx @ q)],
+                    [np.trace(m.v_yx.T @ q), np.trace(m.v_xx @ q)],
+                ]
+            )
+            / k
         )
-        / k
-    )
 
-    def p_at(theta: float) -> float:
-        lr, qt = _clr_stats(m, omega, theta)
-        return clr_p_value(lr, qt, k)
+        def stats_at(theta: float) -> tuple[float, float]:
+            return _clr_stats(m, omega, theta)
 
-    lr0, qt0 = _clr_stats(m, omega, math.atan(null))
-    p0 = clr_p_value(lr0, qt0, k)
+        version = "Moreira (2003), homoskedastic"
+    else:
+
+        def stats_at(theta: float) -> tuple[float, float]:
+            return _clr_stats_robust(m, theta)
+
+        version = f"Kleibergen (2005) GMM form with the {spec.kind} covariance"
 
     def margin(theta: float) -> float:
-        return alpha - p_at(theta)
+        lr, qt = stats_at(theta)
+        return alpha - clr_p_value(lr, qt, k)
 
+    lr0, qt0 = stats_at(math.atan(null))
+    p0 = clr_p_value(lr0, qt0, k)
     center, scale = _iv_center(m)
     thetas = angle_grid(center, scale, n_uniform=n_grid, n_local=n_grid)
     margins = np.array([margin(float(t)) for t in thetas])
@@ -609,6 +647,8 @@ def clr_inference(
         alpha=alpha,
         intervals=intervals,
         shape=classify_set(intervals),
+        version=version,
+        cov_kind=spec.kind,
     )
 
 

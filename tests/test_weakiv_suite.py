@@ -61,7 +61,9 @@ def test_suite_sections_are_json_safe_and_complete(mroz_arrays: dict[str, Any], 
     assert d["weak_iv_robust"]["anderson_rubin"]["shape"] == "bounded"
     assert d["weak_iv_robust"]["tf"]["applicable"] is False  # two instruments: tF not tabulated
     assert d["overid"]["test"] == ("sargan" if kind == "unadjusted" else "hansen_j")
-    assert (d["weak_iv_robust"]["clr"]["applicable"] is True) == (kind == "unadjusted")
+    clr = d["weak_iv_robust"]["clr"]
+    assert clr["applicable"] is True and clr["cov"] == kind
+    assert clr["version"].startswith("Moreira" if kind == "unadjusted" else "Kleibergen")
 
 
 def test_suite_agrees_with_linearmodels_on_mroz(mroz_arrays: dict[str, Any]) -> None:
