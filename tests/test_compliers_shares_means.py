@@ -96,7 +96,7 @@ def test_kappa_with_logit_propensity_matches_share_version_when_z_is_random(sim:
     # (simulation design); both stay near the truth.
     part = sim.iloc[:6000]
     res = complier_means(
-        part, treatment="d", instrument="z", covariates=["w"], propensity_covariates=["w"], n_boot=40, seed=4
+        part, treatment="d", instrument="z", covariates=["w"], propensity_covariates=["w"], n_boot=50, seed=4
     )
     assert res.propensity.startswith("logit")
     assert abs(res.profiles[0].complier_mean - TRUE_MEANS["complier"]) < 4 * res.profiles[0].complier_mean_se
