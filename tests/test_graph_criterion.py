@@ -378,3 +378,16 @@ def test_adjustment_sets_equal_brute_force_minimal_sets(case: tuple[nx.DiGraph, 
     ]
     minimal = sorted((s for s in valid if not any(o < s for o in valid)), key=lambda s: (len(s), sorted(s)))
     assert adjustment_sets(G, **ROLES) == minimal
+
+
+def test_whole_catalogue_graph_is_checked_and_has_no_adjustment_set() -> None:
+    # Every built-in fragment at once: many unobserved bypass paths (e.g. WS-E01's household income) can never
+    # be blocked by measured variables, so the answer is [] (the search stops early on such a path).
+    cat = load_builtin()
+    G = build_graph(fragments=[t.fragment for t in cat])
+    v = verdict(G)
+    assert v.value("exclusion") == v.value("exogeneity") == "broken"
+    assert "Z -> household_income -> Y" in {p.text for p in v.open_paths}
+    assert not v.paths_truncated
+    assert adjustment_sets(G, **ROLES) == []
+    assert not reference_criterion(G, set())

@@ -483,6 +483,8 @@ def adjustment_sets(
         and n not in banned
         and n not in {instrument, treatment, outcome}
     )
+    if S & banned or _unblockable(G, instrument, treatment, outcome, set(candidates), S):
+        return []
     top = len(candidates) if max_size is None else min(max_size, len(candidates))
     total = sum(math.comb(len(candidates), k) for k in range(top + 1))
     if total > _MAX_SUBSETS:
@@ -539,6 +541,19 @@ def _conditioning_issues(G: nx.DiGraph, W: set[str], S: set[str], x: str, y: str
                 f"effect or opens a path through {x}; use only pre-treatment variables"
             )
     return issues
+
+
+def _unblockable(G: nx.DiGraph, z: str, x: str, y: str, candidates: set[str], S: set[str]) -> bool:
+    """True when a collider-free Z-Y path avoiding X runs only through nodes nobody may condition on.
+
+    Such a path (a trek Z <- ... <- T -> ... -> Y, T possibly Z itself) stays open under every allowed W,
+    so the adjustment search can stop at once.
+    """
+    keep = {n for n in G if n not in candidates and n not in S and n != x} | {z, y}
+    H = G.subgraph(keep)
+    up_z = set(nx.ancestors(H, z)) | {z}
+    up_y = set(nx.ancestors(H, y)) | {y}
+    return bool(up_z & up_y)
 
 
 def _criterion(G: nx.DiGraph, z: str, x: str, y: str, C: set[str] | frozenset[str], banned: set[str]) -> bool:
