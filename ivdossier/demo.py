@@ -63,6 +63,68 @@ INSTRUMENTS: tuple[dict[str, Any], ...] = (
 )
 
 
+# (instrument, threat code, state, argument, evidence)
+LINKS: tuple[tuple[str, str, str, str, str], ...] = (
+    (
+        "fibre-wave",
+        "DG-I01",
+        "rebutted",
+        "Patients did not move in response to a schedule that was published only after the study year began.",
+        "Address histories show no rise in moves into early-wave districts.",
+    ),
+    (
+        "fibre-wave",
+        "DG-E01",
+        "mitigated",
+        "The roll-out came with no new services; early districts are compared with late ones of similar size.",
+        "",
+    ),
+    (
+        "fibre-wave",
+        "AN-E01",
+        "open",
+        "Patients who learn fibre is coming might change how they use services before they adopt video visits.",
+        "",
+    ),
+    (
+        "clerk-video-rate",
+        "DM-E01",
+        "open",
+        "Clerks who like video slots may also book prompt follow-ups, which could prevent emergency visits "
+        "without any video visit taking place.",
+        "",
+    ),
+    (
+        "clerk-video-rate",
+        "DM-I01",
+        "rebutted",
+        "The rota assigns calls in arrival order.",
+        "Rota logs, 2025.",
+    ),
+    ("clerk-video-rate", "DM-M01", "open", "", ""),
+    ("mast-distance", "DG-R01", "open", "Most patients use fixed broadband, so masts matter little.", ""),
+)
+# (member, link, likelihood, severity, comment)
+RATINGS: tuple[tuple[str, str, int, int, str], ...] = (
+    ("amara", "clerk-video-rate--dm-e01", 4, 5, "Follow-up booking is part of the same job."),
+    ("jonas", "clerk-video-rate--dm-e01", 2, 4, "Follow-ups are booked by nurses, mostly."),
+    ("priya", "clerk-video-rate--dm-e01", 5, 5, ""),
+    ("amara", "fibre-wave--an-e01", 2, 2, ""),
+    ("jonas", "fibre-wave--an-e01", 1, 2, "Nobody knew the schedule."),
+    ("priya", "mast-distance--dg-r01", 5, 3, "The first stage will be thin."),
+)
+CONTROLS = ("age", "chronic_conditions")
+# (instrument the run is attached to, instruments used, method)
+RUNS: tuple[tuple[str, tuple[str, ...], str], ...] = (
+    ("fibre-wave", (), "ols"),
+    ("fibre-wave", ("fibre_months",), "liml"),
+    ("fibre-wave", ("fibre_months",), "2sls"),
+    ("mast-distance", ("mast_km",), "2sls"),
+    ("clerk-video-rate", ("clerk_video_rate", "fibre_months"), "2sls"),
+    ("clerk-video-rate", ("clerk_video_rate",), "2sls"),
+)
+
+
 def _prepare_out(out: Path, replace: bool) -> None:
     if out.exists() and any(out.iterdir()):
         if not replace:
@@ -145,6 +207,69 @@ def build_demo(
             )
         say(f"registry {registry.url}: program {PROGRAM} with {len(INSTRUMENTS)} candidate instruments")
         summary["instruments"] = [spec["slug"] for spec in INSTRUMENTS]
+        summary["links"] = _link_threats(registry, actor)
+        say(f"linked {summary['links']} catalogue threats and recorded {len(RATINGS)} ratings")
+        summary["runs"] = _estimate(registry, csv_path, actor)
+        say(f"stored {len(summary['runs'])} estimation runs")
+        summary["documents"] = _documents(registry, out)
+        say(f"wrote {len(summary['documents'])} documents under {out}")
     finally:
         registry.dispose()
     return summary
+
+
+def _link_threats(registry: Any, actor: str) -> int:
+    from ivdossier.catalog_sync import ensure_builtin
+    from ivdossier.registry.threats import link_threat, rate_link
+
+    with registry.writing() as s:
+        ensure_builtin(s, actor=actor)
+        for instrument, code, state, argument, evidence in LINKS:
+            link_threat(
+                s,
+                actor=actor,
+                instrument=instrument,
+                code=code,
+                state=state,
+                argument=argument,
+                evidence=evidence,
+            )
+        for member, link, likelihood, severity, comment in RATINGS:
+            rate_link(s, actor=member, link=link, likelihood=likelihood, severity=severity, comment=comment)
+    return len(LINKS)
+
+
+def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
+    from ivdossier.runs import estimate_file, store_run
+
+    slugs = []
+    for instrument, used, method in RUNS:
+        run = estimate_file(
+            csv_path,
+            outcome="ed_visits",
+            treatment="telehealth",
+            instruments=used,
+            controls=CONTROLS,
+            cluster="district",
+            method=method,
+            vcov="cluster",
+        )
+        with registry.writing() as s:
+            slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
+    return slugs
+
+
+def _documents(registry: Any, out: Path) -> list[str]:
+    from datetime import UTC, datetime
+
+    from ivdossier.dossiers import write_dossier, write_site
+
+    generated = datetime.now(UTC).isoformat(timespec="seconds")
+    written = []
+    with registry.reading() as s:
+        for spec in INSTRUMENTS:
+            for suffix in (".md", ".html"):
+                path = out / "dossiers" / f"{spec['slug']}{suffix}"
+                written.append(str(write_dossier(s, spec["slug"], path, generated_at=generated)))
+        written.extend(str(p) for p in write_site(s, out / "site", generated_at=generated))
+    return written
