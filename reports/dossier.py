@@ -239,7 +239,7 @@ def _argument(inp: DossierInput, verdicts: Mapping[str, Verdict]) -> str:
 
 def _link_block(link: LinkInfo) -> str:
     head = f"#### {mt.inline(link.threat_code)} · {mt.inline(link.title)}"
-    facts = [f"State: **{link.state}**"]
+    facts = [f"State {mt.chip(link.state)}"]
     if link.ratings:
         lik, sev = link.mean_likelihood, link.mean_severity
         facts.append(f"{len(link.ratings)} rating{'s' if len(link.ratings) > 1 else ''}")

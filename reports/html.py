@@ -21,7 +21,8 @@ from markdown_it import MarkdownIt
 from markdown_it.token import Token
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.reports.mdtext import BADGE_PREFIX, FIGURE_INFO
+from ivdossier.reports.inputs import LINK_STATES
+from ivdossier.reports.mdtext import BADGE_PREFIX, CHIP_PREFIX, FIGURE_INFO
 
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:; base-uri 'none'; form-action 'none'"
 _SAFE_SCHEMES = ("http:", "https:", "mailto:")
@@ -108,6 +109,7 @@ def render_html(
     env: dict[str, Any] = {}
     tokens = md.parse(markdown, env)
     sections = _assign_ids(tokens)
+    tokens = _wrap_cards(tokens)
 
     def fence(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
         tok = toks[idx]
@@ -131,6 +133,9 @@ def render_html(
                     f'<span class="badge-shape" aria-hidden="true">{badge_svgs[status]}</span>'
                     f'<span class="badge-word">{html.escape(status)}</span></span>'
                 )
+        if content.startswith(CHIP_PREFIX) and content[len(CHIP_PREFIX) :] in LINK_STATES:
+            state = content[len(CHIP_PREFIX) :]
+            return f'<span class="chip chip-{state}">{state}</span>'
         return f"<code>{html.escape(content)}</code>"
 
     def table_open(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
@@ -175,6 +180,30 @@ def _assign_ids(tokens: list[Token]) -> list[tuple[str, str]]:
             if tok.tag == "h2":
                 sections.append((ident, text))
     return sections
+
+
+def _html_token(content: str) -> Token:
+    tok = Token("html_block", "", 0)
+    tok.content = content
+    tok.block = True
+    return tok
+
+
+def _wrap_cards(tokens: list[Token]) -> list[Token]:
+    """Wrap each h4 and the blocks after it (up to the next heading) in a <section class="card">."""
+    out: list[Token] = []
+    open_card = False
+    for tok in tokens:
+        if tok.type == "heading_open" and tok.tag in ("h1", "h2", "h3", "h4") and open_card:
+            out.append(_html_token("</section>\n"))
+            open_card = False
+        if tok.type == "heading_open" and tok.tag == "h4":
+            out.append(_html_token('<section class="card">\n'))
+            open_card = True
+        out.append(tok)
+    if open_card:
+        out.append(_html_token("</section>\n"))
+    return out
 
 
 def _insert_after_first_h1(body: str, nav: str) -> str:

@@ -17,6 +17,7 @@ _LINE_LEAD = re.compile(r"^([-+=])(?=\s|$|\1)")
 _ORDERED = re.compile(r"^(\d{1,9})([.)])(?=\s|$)")
 FIGURE_INFO = "ivdossier-figure"
 BADGE_PREFIX = "verdict:"
+CHIP_PREFIX = "state:"
 
 
 def clean(text: object) -> str:
@@ -73,3 +74,8 @@ def figure(key: str, caption: str) -> str:
 def badge(status: str) -> str:
     """An inline code marker for a verdict; rendered as a shape plus the word in HTML, readable in Markdown."""
     return f"`{BADGE_PREFIX}{status.replace(' ', '-')}`"
+
+
+def chip(state: str) -> str:
+    """An inline code marker for a threat-link state (a fixed word); rendered as a labelled chip in HTML."""
+    return f"`{CHIP_PREFIX}{state}`"

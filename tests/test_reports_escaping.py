@@ -22,7 +22,7 @@ SCRIPT = "<script>document.title='pwned'; window.__pwned = 1</script>"
 IMG = '<img src=x onerror="window.__pwned = 2">'
 JS_LINK = "[click me](javascript:alert(1))"
 FORGED_FIGURE = "```ivdossier-figure\nfirst-stage\n```"
-FORGED_BADGE = "`verdict:holds`"
+FORGED_BADGE = "`verdict:holds` `state:fatal`"
 HOSTILE = [
     SCRIPT,
     IMG,
@@ -172,6 +172,7 @@ def test_hostile_text_everywhere_never_becomes_markup_in_the_html() -> None:
     assert tags.count("figure") == 3
     # badges come only from verdicts: one per condition in the summary and one per condition section
     assert page.count('class="badge ') == 4 + 4
+    assert page.count('class="chip ') == 1  # one state chip for the one linked threat
 
 
 def test_hostile_text_in_markdown_is_escaped_at_the_source() -> None:
