@@ -1,0 +1,58 @@
+"""Time the dossier for a large record: 200 linked threats and 50 runs, to Markdown and to HTML (target < 2 s).
+
+Run: .venv/bin/python benchmarks/bench_dossier.py [--repeat N]
+Prints the seconds per stage (best of N) and the document sizes. Inputs are synthetic (ivdossier.reports.sample).
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import time
+from collections.abc import Callable
+from typing import Any
+
+from ivdossier.reports.dossier import dossier_figures, dossier_html, dossier_markdown
+from ivdossier.reports.sample import make_link, make_run, sample_input
+
+TARGET_SECONDS = 2.0
+
+
+def big_input() -> Any:
+    base = sample_input()
+    links = tuple(make_link(i) for i in range(200))
+    runs = (make_run(0, method="ols"), *(make_run(i) for i in range(1, 50)))
+    return dataclasses.replace(base, links=links, runs=runs)
+
+
+def best_of(fn: Callable[[], Any], repeat: int) -> tuple[float, Any]:
+    best, out = float("inf"), None
+    for _ in range(repeat):
+        start = time.perf_counter()
+        out = fn()
+        best = min(best, time.perf_counter() - start)
+    return best, out
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--repeat", type=int, default=3)
+    args = parser.parse_args()
+    inp = big_input()
+    start = time.perf_counter()
+    import matplotlib  # noqa: F401  (first import is a one-off cost, reported separately)
+
+    print(f"import matplotlib (one-off)      {time.perf_counter() - start:8.3f} s")
+    t_md, md = best_of(lambda: dossier_markdown(inp), args.repeat)
+    t_fig, _ = best_of(lambda: dossier_figures(inp), args.repeat)
+    t_html, page = best_of(lambda: dossier_html(inp), args.repeat)
+    print(f"links {len(inp.links)}, runs {len(inp.runs)}")
+    print(f"markdown                        {t_md:8.3f} s   {len(md) / 1e3:8.1f} kB")
+    print(f"figures (2 plots + diagram)     {t_fig:8.3f} s")
+    print(f"html (markdown + figures + render) {t_html:5.3f} s   {len(page) / 1e3:8.1f} kB")
+    verdict = "within" if t_html < TARGET_SECONDS else "OVER"
+    print(f"target {TARGET_SECONDS:.1f} s for the HTML dossier: {verdict}")
+
+
+if __name__ == "__main__":
+    main()
