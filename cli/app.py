@@ -90,6 +90,7 @@ COMMAND_MODULES = (
     "general",
     "entities",
     "team",
+    "portability",
     "estimation_cmds",
     "threat_cmds",
     "report_cmds",

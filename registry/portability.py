@@ -1,0 +1,888 @@
+"""Export the whole registry as a folder of text files (one per entity, stable bytes) and import it back.
+
+Layout written under the chosen folder:
+
+    manifest.json               format name and version, schema revision, entity counts
+    <kind>/<label>.json         one entity: every column but the integer id, references as UUIDs
+    <kind>/_<uuid>.json         the same when the label is not a safe, unique lower-case file name
+    audit.jsonl                 the audit trail, one event per line, oldest first
+
+JSON is UTF-8 with sorted keys, two-space indent and a final newline; datetimes are ISO-8601 UTC with
+microseconds; references to other entities are `<name>_uuid` fields. Import checks everything first, then
+writes in one transaction: it adds what is new, leaves identical entities alone and reports conflicts.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import unicodedata
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from sqlalchemy import Boolean, Column, DateTime, Float, Integer, Table, insert, update
+from sqlalchemy import select as sa_select
+from sqlalchemy.types import JSON
+from sqlmodel import Session, select
+
+from ivdossier.errors import ConflictError, InvalidInputError
+from ivdossier.registry import records
+from ivdossier.registry.db import SCHEMA_HEAD
+from ivdossier.registry.models import (
+    CONDITIONS,
+    ENTITY_CLASSES,
+    LIFECYCLE_STATES,
+    LINK_STATES,
+    AuditEvent,
+    Entity,
+)
+
+FORMAT_NAME = "ivdossier-export"
+FORMAT_VERSION = 1
+MANIFEST = "manifest.json"
+AUDIT_FILE = "audit.jsonl"
+MAX_FILE_BYTES = 50_000_000
+MAX_TEXT = 1_000_000  # longest unbounded text field accepted on import
+MAX_REPORTED = 20
+ON_CONFLICT = ("stop", "keep-registry", "take-import")
+UUID_RE = re.compile(r"^[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}$")
+SAFE_NAME_RE = re.compile(r"^[a-z0-9][a-z0-9._-]{0,199}$")
+AUDIT_KEYS = (
+    "action",
+    "actor",
+    "after",
+    "at",
+    "before",
+    "entity_kind",
+    "entity_label",
+    "entity_uuid",
+    "reason",
+)
+CLASSES: dict[str, type[Entity]] = {cls.kind: cls for cls in ENTITY_CLASSES}
+# Labels people type and the registry checks as slugs.
+SLUG_LABELS = {"program", "instrument", "member"}
+# Closed vocabularies worth checking on import (kind -> column -> allowed values).
+VOCABULARIES: dict[str, dict[str, tuple[str, ...]]] = {
+    "instrument": {"state": LIFECYCLE_STATES},
+    "link": {"state": LINK_STATES},
+    "threat": {"condition": CONDITIONS},
+}
+
+
+# ---------------------------------------------------------------- encoding
+
+
+def format_datetime(value: datetime) -> str:
+    """ISO-8601 in UTC with microseconds, e.g. 2026-12-02T02:45:14.123456+00:00 (naive values are UTC)."""
+    aware = value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+    return aware.isoformat(timespec="microseconds")
+
+
+def parse_datetime(value: Any, *, where: str) -> datetime:
+    if not isinstance(value, str):
+        raise InvalidInputError(f"{where} must be an ISO-8601 date-time string, got {type(value).__name__}.")
+    try:
+        parsed = datetime.fromisoformat(value)
+    except ValueError as exc:
+        raise InvalidInputError(
+            f"{where} {value[:40]!r} is not an ISO-8601 date-time; use 2026-01-31T12:00:00+00:00."
+        ) from exc
+    if parsed.tzinfo is None:
+        raise InvalidInputError(f"{where} {value!r} has no time zone; add +00:00 (UTC).")
+    return parsed.astimezone(UTC)
+
+
+def dumps_document(doc: Mapping[str, Any], *, where: str) -> str:
+    """One entity file's text: sorted keys, two-space indent, trailing newline."""
+    try:
+        return json.dumps(doc, sort_keys=True, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    except ValueError as exc:
+        raise InvalidInputError(
+            f"{where} holds a NaN or infinite number that JSON cannot carry; store it as the string 'inf' or null."
+        ) from exc
+
+
+def dumps_event(event: Mapping[str, Any]) -> str:
+    """One audit line: sorted keys, compact separators, no newline inside."""
+    try:
+        return json.dumps(event, sort_keys=True, ensure_ascii=False, separators=(",", ":"), allow_nan=False)
+    except ValueError as exc:
+        raise InvalidInputError(
+            f"audit event of {event.get('entity_label')!r} holds a NaN or infinite number; it cannot be exported."
+        ) from exc
+
+
+def _fk_columns(table: Table) -> dict[str, str]:
+    """Foreign-key column -> kind of the referenced entity."""
+    kinds_by_table = {cls.__tablename__: cls.kind for cls in ENTITY_CLASSES}  # type: ignore[attr-defined]
+    out: dict[str, str] = {}
+    for col in table.columns:
+        for fk in col.foreign_keys:
+            out[col.name] = kinds_by_table[fk.column.table.name]
+    return out
+
+
+def _doc_key(column: str, fks: Mapping[str, str]) -> str:
+    return column[: -len("_id")] + "_uuid" if column in fks else column
+
+
+def entity_document(obj: Entity, uuid_of: Mapping[tuple[str, int], str]) -> dict[str, Any]:
+    """The exported form of one entity: columns without the integer id, references as UUIDs."""
+    table: Table = obj.__table__  # type: ignore[attr-defined]
+    fks = _fk_columns(table)
+    doc: dict[str, Any] = {}
+    for col in table.columns:
+        if col.name == "id":
+            continue
+        value = getattr(obj, col.name)
+        if col.name in fks:
+            value = None if value is None else uuid_of[(fks[col.name], value)]
+        elif isinstance(value, datetime):
+            value = format_datetime(value)
+        doc[_doc_key(col.name, fks)] = value
+    return doc
+
+
+def event_document(event: AuditEvent) -> dict[str, Any]:
+    return {
+        "action": event.action,
+        "actor": event.actor,
+        "after": event.after,
+        "at": format_datetime(event.at),
+        "before": event.before,
+        "entity_kind": event.entity_kind,
+        "entity_label": event.entity_label,
+        "entity_uuid": event.entity_uuid,
+        "reason": event.reason,
+    }
+
+
+def file_name(label: str, uuid: str) -> str:
+    """A label that is already a safe lower-case file name, else `_<uuid>` (labels never start with '_')."""
+    lowered = label.lower()
+    if SAFE_NAME_RE.match(lowered) and ".." not in lowered:
+        return lowered
+    return "_" + (uuid if UUID_RE.match(uuid) else re.sub(r"[^0-9a-f-]", "", uuid.lower())[:36] or "entity")
+
+
+def _names_for(entities: Sequence[Entity]) -> list[str]:
+    names = [file_name(e.label, e.uuid) for e in entities]
+    seen: dict[str, int] = {}
+    for n in names:
+        seen[n] = seen.get(n, 0) + 1
+    # Labels that collide once lower-cased fall back to their UUID, so no two files share a name.
+    return [n if seen[n] == 1 else file_name("", e.uuid) for n, e in zip(names, entities, strict=True)]
+
+
+# ---------------------------------------------------------------- export
+
+
+@dataclass(frozen=True)
+class ExportSummary:
+    """What an export wrote: entity counts per kind and how many files changed on disk."""
+
+    directory: str
+    counts: dict[str, int]
+    audit_events: int
+    written: int
+    unchanged: int
+    removed: int
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "directory": self.directory,
+            "counts": dict(self.counts),
+            "audit_events": self.audit_events,
+            "written": self.written,
+            "unchanged": self.unchanged,
+            "removed": self.removed,
+        }
+
+
+def _repeatable_read(session: Session) -> None:
+    """Read the whole registry from one snapshot (SQLite read transactions already are one)."""
+    if session.get_bind().dialect.name == "postgresql":
+        session.connection(execution_options={"isolation_level": "REPEATABLE READ"})
+
+
+def render_export(session: Session) -> dict[str, str]:
+    """The export as relative path -> file text, read in one snapshot."""
+    _repeatable_read(session)
+    loaded: dict[str, list[Entity]] = {}
+    uuid_of: dict[tuple[str, int], str] = {}
+    for cls in ENTITY_CLASSES:
+        rows = list(session.exec(select(cls).order_by(cls.uuid)))  # type: ignore[arg-type]
+        loaded[cls.kind] = rows
+        uuid_of.update(((cls.kind, r.id), r.uuid) for r in rows)
+    files: dict[str, str] = {}
+    for kind, rows in loaded.items():
+        for name, obj in zip(_names_for(rows), rows, strict=True):
+            files[f"{kind}/{name}.json"] = dumps_document(
+                entity_document(obj, uuid_of), where=f"{kind} {obj.label!r}"
+            )
+    events = session.exec(select(AuditEvent).order_by(AuditEvent.at, AuditEvent.id))  # type: ignore[arg-type]
+    lines = [dumps_event(event_document(e)) + "\n" for e in events]
+    files[AUDIT_FILE] = "".join(lines)
+    manifest = {
+        "format": FORMAT_NAME,
+        "format_version": FORMAT_VERSION,
+        "schema": SCHEMA_HEAD,
+        "counts": {kind: len(rows) for kind, rows in loaded.items()},
+        "audit_events": len(lines),
+    }
+    files[MANIFEST] = dumps_document(manifest, where="manifest")
+    return files
+
+
+def _inside(root: Path, rel: str) -> Path:
+    """root/rel, refusing any path that resolves outside root (through '..' or a symbolic link)."""
+    target = (root / rel).resolve()
+    if not target.is_relative_to(root):
+        raise InvalidInputError(f"refusing to write {rel!r}: it resolves outside {str(root)!r}.")
+    return target
+
+
+def _existing_export_files(root: Path) -> set[str]:
+    """Files of an earlier export in root; anything else there (besides dot-entries such as .git) is refused."""
+    if not root.exists():
+        return set()
+    if not root.is_dir():
+        raise InvalidInputError(
+            f"{str(root)!r} is not a folder; choose a new or empty folder for the export."
+        )
+    entries = [p for p in root.iterdir() if not p.name.startswith(".")]
+    if not entries:
+        return set()
+    if not (root / MANIFEST).is_file() or _read_manifest_format(root / MANIFEST) != FORMAT_NAME:
+        shown = ", ".join(sorted(p.name for p in entries)[:5])
+        raise InvalidInputError(
+            f"{str(root)!r} already holds files that are not an ivdossier export ({shown}); "
+            "choose a new or empty folder."
+        )
+    found: set[str] = set()
+    strays: list[str] = []
+    for entry in entries:
+        if entry.name in (MANIFEST, AUDIT_FILE) and entry.is_file() and not entry.is_symlink():
+            found.add(entry.name)
+        elif entry.name in CLASSES and entry.is_dir() and not entry.is_symlink():
+            for item in entry.iterdir():
+                if item.suffix == ".json" and item.is_file() and not item.is_symlink():
+                    found.add(f"{entry.name}/{item.name}")
+                else:
+                    strays.append(f"{entry.name}/{item.name}")
+        else:
+            strays.append(entry.name)
+    if strays:
+        raise InvalidInputError(
+            f"{str(root)!r} holds an earlier export plus other content ({', '.join(sorted(strays)[:5])}); "
+            "move that content away or choose another folder."
+        )
+    return found
+
+
+def _read_manifest_format(path: Path) -> str | None:
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return data.get("format") if isinstance(data, dict) else None
+
+
+def _write_atomically(path: Path, text: str) -> None:
+    tmp = path.with_name(f".{path.name}.tmp")
+    tmp.write_bytes(text.encode("utf-8"))
+    os.replace(tmp, path)
+
+
+def write_export(files: Mapping[str, str], directory: str | Path) -> tuple[int, int, int]:
+    """Write rendered files under `directory`, touching only files that changed; returns (written, same, removed)."""
+    root = Path(directory).expanduser().resolve()
+    old = _existing_export_files(root)
+    root.mkdir(parents=True, exist_ok=True)
+    written = same = removed = 0
+    for rel, text in sorted(files.items()):
+        target = _inside(root, rel)
+        target.parent.mkdir(exist_ok=True)
+        data = text.encode("utf-8")
+        if target.is_file() and target.read_bytes() == data:
+            same += 1
+            continue
+        _write_atomically(target, text)
+        written += 1
+    for rel in sorted(old - set(files)):
+        _inside(root, rel).unlink()
+        removed += 1
+    for kind in CLASSES:
+        folder = root / kind
+        if folder.is_dir() and not any(folder.iterdir()):
+            folder.rmdir()
+    return written, same, removed
+
+
+def export_registry(session: Session, directory: str | Path) -> ExportSummary:
+    """Write the whole registry under `directory` (new, empty, or holding an earlier export)."""
+    files = render_export(session)
+    written, same, removed = write_export(files, directory)
+    manifest = json.loads(files[MANIFEST])
+    return ExportSummary(
+        directory=str(Path(directory)),
+        counts={k: v for k, v in manifest["counts"].items() if v},
+        audit_events=manifest["audit_events"],
+        written=written,
+        unchanged=same,
+        removed=removed,
+    )
+
+
+# ---------------------------------------------------------------- reading an export
+
+
+@dataclass
+class Problems:
+    """Validation problems gathered over the whole export, reported together."""
+
+    items: list[str] = field(default_factory=list)
+
+    def add(self, message: str) -> None:
+        self.items.append(message)
+
+    def raise_if_any(self, directory: Path) -> None:
+        if not self.items:
+            return
+        shown = "; ".join(self.items[:MAX_REPORTED])
+        more = f" (and {len(self.items) - MAX_REPORTED} more)" if len(self.items) > MAX_REPORTED else ""
+        raise InvalidInputError(
+            f"the export in {str(directory)!r} cannot be imported, nothing was written: {shown}{more}; "
+            "fix these files and import again."
+        )
+
+
+def _no_constants(name: str) -> Any:
+    raise ValueError(f"{name} is not valid JSON")
+
+
+def _unique_pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for key, value in pairs:
+        if key in out:
+            raise ValueError(f"key {key!r} appears twice")
+        out[key] = value
+    return out
+
+
+def load_json_text(text: str) -> Any:
+    """Strict JSON: no NaN/Infinity, no repeated keys."""
+    return json.loads(text, parse_constant=_no_constants, object_pairs_hook=_unique_pairs)
+
+
+def _read_text(path: Path, rel: str, problems: Problems) -> str | None:
+    try:
+        if path.stat().st_size > MAX_FILE_BYTES:
+            problems.add(f"{rel} is larger than {MAX_FILE_BYTES:,} bytes")
+            return None
+        return path.read_bytes().decode("utf-8")
+    except UnicodeDecodeError as exc:
+        problems.add(f"{rel} is not UTF-8 text ({exc.reason} at byte {exc.start})")
+    except OSError as exc:
+        problems.add(f"{rel} cannot be read ({exc.strerror})")
+    return None
+
+
+def _parse_json_file(path: Path, rel: str, problems: Problems) -> Any:
+    text = _read_text(path, rel, problems)
+    if text is None:
+        return None
+    try:
+        return load_json_text(text)
+    except (ValueError, RecursionError) as exc:
+        problems.add(f"{rel} is not valid JSON ({str(exc)[:120]})")
+        return None
+
+
+def _json_has_nul(value: Any, depth: int = 0) -> bool:
+    if depth > 200:
+        return True
+    if isinstance(value, str):
+        return "\x00" in value
+    if isinstance(value, dict):
+        return any(_json_has_nul(k, depth + 1) or _json_has_nul(v, depth + 1) for k, v in value.items())
+    if isinstance(value, list):
+        return any(_json_has_nul(v, depth + 1) for v in value)
+    return False
+
+
+@dataclass
+class Incoming:
+    """One validated entity from the export: its kind, file, plain column values and referenced UUIDs."""
+
+    kind: str
+    rel: str
+    uuid: str
+    label: str
+    doc: dict[str, Any]
+    values: dict[str, Any]
+    refs: dict[str, str | None]  # fk column -> uuid
+
+
+def _check_value(col: Column[Any], value: Any, where: str, problems: Problems) -> Any:
+    """Check one plain column value against its type; returns the value to store."""
+    if value is None:
+        if not col.nullable and not isinstance(col.type, JSON):
+            problems.add(f"{where} must not be null")
+        return value
+    ctype = col.type
+    if isinstance(getattr(ctype, "impl", ctype), DateTime):
+        try:
+            return parse_datetime(value, where=where)
+        except InvalidInputError as exc:
+            problems.add(str(exc).rstrip("."))
+            return None
+    if isinstance(ctype, Boolean):
+        if not isinstance(value, bool):
+            problems.add(f"{where} must be true or false")
+        return value
+    if isinstance(ctype, Integer):
+        if not isinstance(value, int) or isinstance(value, bool) or abs(value) > 2**62:
+            problems.add(f"{where} must be a whole number")
+        return value
+    if isinstance(ctype, Float):
+        if not isinstance(value, int | float) or isinstance(value, bool):
+            problems.add(f"{where} must be a number")
+        return value
+    if isinstance(ctype, JSON):
+        if _json_has_nul(value):
+            problems.add(f"{where} contains a NUL character or nests deeper than 200 levels")
+        return value
+    if not isinstance(value, str):
+        problems.add(f"{where} must be a string, got {type(value).__name__}")
+        return value
+    limit = getattr(ctype, "length", None) or MAX_TEXT
+    if "\x00" in value:
+        problems.add(f"{where} contains a NUL character")
+    elif len(value) > limit:
+        problems.add(f"{where} is {len(value):,} characters long; the limit is {limit:,}")
+    return value
+
+
+def _check_label(kind: str, label: Any, where: str, problems: Problems) -> None:
+    if not isinstance(label, str) or not label:
+        problems.add(f"{where} needs a non-empty name")
+        return
+    if kind in SLUG_LABELS:
+        try:
+            records.check_slug(label, what=kind)
+        except InvalidInputError as exc:
+            problems.add(f"{where}: {str(exc).rstrip('.')}")
+    elif any(unicodedata.category(c)[0] == "C" for c in label):
+        problems.add(f"{where} name {label[:40]!r} contains control characters")
+
+
+def parse_entity(kind: str, rel: str, data: Any, problems: Problems) -> Incoming | None:
+    """Validate one entity document; returns None (with problems recorded) when it cannot be used."""
+    cls = CLASSES[kind]
+    table: Table = cls.__table__  # type: ignore[attr-defined]
+    fks = _fk_columns(table)
+    if not isinstance(data, dict):
+        problems.add(f"{rel} must hold a JSON object")
+        return None
+    expected = {_doc_key(c.name, fks): c for c in table.columns if c.name != "id"}
+    missing = sorted(set(expected) - set(data))
+    unknown = sorted(set(data) - set(expected))
+    if missing or unknown:
+        parts = ([f"missing {', '.join(missing)}"] if missing else []) + (
+            [f"unknown {', '.join(u[:40] for u in unknown[:5])}"] if unknown else []
+        )
+        problems.add(f"{rel} has the wrong fields ({'; '.join(parts)})")
+        return None
+    before = len(problems.items)
+    uuid = data["uuid"]
+    if not isinstance(uuid, str) or not UUID_RE.match(uuid):
+        problems.add(f"{rel} uuid must be a lower-case UUID like 1b4e28ba-2fa1-11d2-883f-0016d3cca427")
+    label = data.get(cls.label_field)
+    _check_label(kind, label, rel, problems)
+    values: dict[str, Any] = {}
+    refs: dict[str, str | None] = {}
+    for key, col in expected.items():
+        value = data[key]
+        where = f"{rel} field {key}"
+        if col.name in fks:
+            if value is None and col.nullable:
+                refs[col.name] = None
+            elif not isinstance(value, str) or not UUID_RE.match(value):
+                problems.add(f"{where} must be the UUID of a {fks[col.name]}")
+            else:
+                refs[col.name] = value
+            continue
+        values[col.name] = _check_value(col, value, where, problems)
+    version = data["version"]
+    if isinstance(version, int) and not isinstance(version, bool) and version < 1:
+        problems.add(f"{rel} field version must be 1 or more")
+    for column, allowed in VOCABULARIES.get(kind, {}).items():
+        if data[column] not in allowed:
+            problems.add(
+                f"{rel} field {column} {str(data[column])[:40]!r} is not one of {', '.join(allowed)}"
+            )
+    if kind == "rating":
+        for column in ("likelihood", "severity"):
+            if not (isinstance(data[column], int) and 1 <= data[column] <= 5):
+                problems.add(f"{rel} field {column} must be a whole number from 1 to 5")
+    if len(problems.items) > before:
+        return None
+    return Incoming(kind=kind, rel=rel, uuid=uuid, label=str(label), doc=data, values=values, refs=refs)
+
+
+def parse_event(line_no: int, data: Any, problems: Problems) -> dict[str, Any] | None:
+    where = f"{AUDIT_FILE} line {line_no}"
+    if not isinstance(data, dict) or set(data) != set(AUDIT_KEYS):
+        problems.add(f"{where} must be an object with exactly the keys {', '.join(AUDIT_KEYS)}")
+        return None
+    before = len(problems.items)
+    table: Table = AuditEvent.__table__  # type: ignore[attr-defined]
+    values: dict[str, Any] = {}
+    for key in AUDIT_KEYS:
+        values[key] = _check_value(table.c[key], data[key], f"{where} field {key}", problems)
+    for key in ("before", "after"):
+        if data[key] is not None and not isinstance(data[key], dict):
+            problems.add(f"{where} field {key} must be an object or null")
+    if data["entity_kind"] not in CLASSES:
+        problems.add(f"{where} field entity_kind {str(data['entity_kind'])[:40]!r} is not a kind of entity")
+    if len(problems.items) > before:
+        return None
+    return values
+
+
+@dataclass(frozen=True)
+class ExportContent:
+    """A validated export folder: entities in insertion order and the audit events with their canonical lines."""
+
+    directory: Path
+    entities: tuple[Incoming, ...]
+    events: tuple[tuple[str, dict[str, Any]], ...]
+
+
+def read_export(directory: str | Path) -> ExportContent:
+    """Read and validate an export folder completely (no database access); InvalidInputError lists problems."""
+    root = Path(directory).expanduser()
+    if not root.is_dir():
+        raise InvalidInputError(f"{str(root)!r} is not a folder; pass the folder `ivdossier export` wrote.")
+    problems = Problems()
+    manifest = _parse_json_file(root / MANIFEST, MANIFEST, problems) if (root / MANIFEST).is_file() else None
+    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT_NAME:
+        raise InvalidInputError(
+            f"{str(root)!r} has no ivdossier export manifest ({MANIFEST}); pass the folder `ivdossier export` wrote."
+        )
+    if manifest.get("format_version") != FORMAT_VERSION:
+        raise InvalidInputError(
+            f"the export uses format version {manifest.get('format_version')!r}; this ivdossier reads version "
+            f"{FORMAT_VERSION}; export it again with this version."
+        )
+    if manifest.get("schema") != SCHEMA_HEAD:
+        raise InvalidInputError(
+            f"the export was written at schema {manifest.get('schema')!r}, this registry is at {SCHEMA_HEAD}; "
+            "open the source registry with this version of ivdossier and export it again."
+        )
+    raw_counts = manifest.get("counts")
+    counts: dict[str, Any] = raw_counts if isinstance(raw_counts, dict) else {}
+    entities: list[Incoming] = []
+    for entry in sorted(root.iterdir()):
+        if entry.name.startswith(".") or entry.name in (MANIFEST, AUDIT_FILE):
+            continue
+        if entry.name not in CLASSES or not entry.is_dir() or entry.is_symlink():
+            problems.add(
+                f"{entry.name[:60]!r} is not part of an export (expected {MANIFEST}, {AUDIT_FILE} or kind folders)"
+            )
+    for kind in CLASSES:
+        folder = root / kind
+        files: list[Path] = []
+        if folder.is_dir() and not folder.is_symlink():
+            for item in sorted(folder.iterdir()):
+                if item.suffix != ".json" or not item.is_file() or item.is_symlink():
+                    problems.add(
+                        f"{kind}/{item.name[:60]} is not an entity file (plain <name>.json expected)"
+                    )
+                else:
+                    files.append(item)
+        if len(files) != counts.get(kind, 0):
+            problems.add(
+                f"the manifest counts {counts.get(kind, 0)} {kind} files but the folder has {len(files)}"
+            )
+        for item in files:
+            rel = f"{kind}/{item.name}"
+            data = _parse_json_file(item, rel, problems)
+            if data is not None:
+                parsed = parse_entity(kind, rel, data, problems)
+                if parsed is not None:
+                    entities.append(parsed)
+    events: list[tuple[str, dict[str, Any]]] = []
+    audit_path = root / AUDIT_FILE
+    if audit_path.is_symlink() or not audit_path.is_file():
+        problems.add(f"{AUDIT_FILE} is missing")
+    else:
+        text = _read_text(audit_path, AUDIT_FILE, problems) or ""
+        lines = text.split("\n")
+        if lines and lines[-1] == "":
+            lines.pop()
+        for n, line in enumerate(lines, start=1):
+            try:
+                data = load_json_text(line)
+            except (ValueError, RecursionError) as exc:
+                problems.add(f"{AUDIT_FILE} line {n} is not valid JSON ({str(exc)[:80]})")
+                continue
+            values = parse_event(n, data, problems)
+            if values is not None:
+                events.append((dumps_event(data), values))
+        if len(lines) != manifest.get("audit_events"):
+            problems.add(
+                f"the manifest counts {manifest.get('audit_events')} audit events but {AUDIT_FILE} has {len(lines)}"
+            )
+    _check_uniqueness(entities, problems)
+    problems.raise_if_any(root)
+    order = {cls.kind: i for i, cls in enumerate(ENTITY_CLASSES)}
+    entities.sort(key=lambda e: (order[e.kind], e.uuid))
+    return ExportContent(directory=root, entities=tuple(entities), events=tuple(events))
+
+
+def _check_uniqueness(entities: Iterable[Incoming], problems: Problems) -> None:
+    by_uuid: dict[str, str] = {}
+    by_label: dict[tuple[str, str], str] = {}
+    for e in entities:
+        if e.uuid in by_uuid:
+            problems.add(f"{e.rel} repeats the uuid of {by_uuid[e.uuid]}")
+        by_uuid.setdefault(e.uuid, e.rel)
+        if (e.kind, e.label) in by_label:
+            problems.add(f"{e.rel} repeats the name {e.label[:40]!r} of {by_label[(e.kind, e.label)]}")
+        by_label.setdefault((e.kind, e.label), e.rel)
+
+
+# ---------------------------------------------------------------- import
+
+
+@dataclass(frozen=True)
+class ImportConflict:
+    """One entity the import cannot apply as it stands."""
+
+    kind: str
+    label: str
+    uuid: str
+    reason: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"kind": self.kind, "label": self.label, "uuid": self.uuid, "reason": self.reason}
+
+    def describe(self) -> str:
+        return f"{self.kind} {self.label[:60]!r} ({self.uuid}): {self.reason}"
+
+
+@dataclass(frozen=True)
+class ImportReport:
+    """Per kind, how many entities were added, replaced by the import, kept as in the registry or unchanged."""
+
+    added: dict[str, int]
+    replaced: dict[str, int]
+    kept: dict[str, int]
+    unchanged: dict[str, int]
+    audit_events_added: int
+    conflicts: tuple[ImportConflict, ...]
+    dry_run: bool
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "added": dict(self.added),
+            "replaced": dict(self.replaced),
+            "kept": dict(self.kept),
+            "unchanged": dict(self.unchanged),
+            "audit_events_added": self.audit_events_added,
+            "conflicts": [c.to_dict() for c in self.conflicts],
+            "dry_run": self.dry_run,
+        }
+
+
+def _bump(counter: dict[str, int], kind: str) -> None:
+    counter[kind] = counter.get(kind, 0) + 1
+
+
+def import_registry(
+    session: Session,
+    content: ExportContent,
+    *,
+    actor: str,
+    on_conflict: str = "stop",
+    dry_run: bool = False,
+) -> ImportReport:
+    """Merge a validated export into the registry by UUID, inside the caller's write transaction.
+
+    New entities are added with their exported history. An entity whose UUID exists with other content is a
+    conflict: `stop` refuses the whole import, `keep-registry` leaves the registry's copy, `take-import`
+    replaces it (at a new version, audited as an import by `actor`). A new UUID whose name is taken by another
+    entity is always refused. With `dry_run` the report is computed and nothing is written.
+    """
+    if on_conflict not in ON_CONFLICT:
+        raise InvalidInputError(
+            f"--on-conflict {on_conflict!r} is not known; use one of: {', '.join(ON_CONFLICT)}."
+        )
+    uuid_of: dict[tuple[str, int], str] = {}
+    id_of: dict[tuple[str, str], int] = {}
+    local: dict[str, Entity] = {}
+    local_labels: dict[tuple[str, str], str] = {}
+    for cls in ENTITY_CLASSES:
+        for obj in session.exec(select(cls)):
+            uuid_of[(cls.kind, obj.id)] = obj.uuid
+            id_of[(cls.kind, obj.uuid)] = obj.id
+            local[obj.uuid] = obj
+            local_labels[(cls.kind, obj.label)] = obj.uuid
+    incoming_kind = {e.uuid: e.kind for e in content.entities}
+    conflicts: list[ImportConflict] = []
+    problems = Problems()
+    plan: list[tuple[str, Incoming]] = []  # ("add" | "replace", entity)
+    added: dict[str, int] = {}
+    replaced: dict[str, int] = {}
+    kept: dict[str, int] = {}
+    unchanged: dict[str, int] = {}
+    for e in content.entities:
+        table: Table = CLASSES[e.kind].__table__  # type: ignore[attr-defined]
+        fks = _fk_columns(table)
+        for column, ref in e.refs.items():
+            if ref is None:
+                continue
+            target_kind = fks[column]
+            found = incoming_kind.get(ref) or (local[ref].kind if ref in local else None)
+            if found != target_kind:
+                problems.add(
+                    f"{e.rel} field {_doc_key(column, fks)} names no {target_kind} in the export or registry"
+                )
+        if (
+            e.kind == "comment"
+            and e.values["entity_uuid"] not in incoming_kind
+            and e.values["entity_uuid"] not in local
+        ):
+            problems.add(
+                f"{e.rel} comments on {e.values['entity_uuid']!r}, which is in neither the export nor the registry"
+            )
+        mine = local.get(e.uuid)
+        if mine is None:
+            holder = local_labels.get((e.kind, e.label))
+            if holder is not None:
+                conflicts.append(
+                    ImportConflict(
+                        e.kind,
+                        e.label,
+                        e.uuid,
+                        f"the registry has another {e.kind} of this name (uuid {holder}); rename one of them",
+                    )
+                )
+            else:
+                plan.append(("add", e))
+                _bump(added, e.kind)
+            continue
+        if mine.kind != e.kind:
+            problems.add(f"{e.rel} reuses the uuid of a {mine.kind} in the registry")
+            continue
+        if entity_document(mine, uuid_of) == e.doc:
+            _bump(unchanged, e.kind)
+            continue
+        if on_conflict == "stop":
+            conflicts.append(
+                ImportConflict(
+                    e.kind,
+                    e.label,
+                    e.uuid,
+                    f"differs from the registry (registry version {mine.version}, export version {e.doc['version']})",
+                )
+            )
+        elif on_conflict == "keep-registry":
+            _bump(kept, e.kind)
+        else:
+            plan.append(("replace", e))
+            _bump(replaced, e.kind)
+    problems.raise_if_any(content.directory)
+    if conflicts and not dry_run:
+        shown = "; ".join(c.describe() for c in conflicts[:MAX_REPORTED])
+        more = f" (and {len(conflicts) - MAX_REPORTED} more)" if len(conflicts) > MAX_REPORTED else ""
+        hint = (
+            "rerun with --on-conflict keep-registry or take-import, or rename the clashing entities"
+            if on_conflict == "stop"
+            else "rename the clashing entities"
+        )
+        raise ConflictError(
+            f"import refused, nothing was written: {len(conflicts)} conflicts: {shown}{more}; {hint}."
+        )
+    known_events = {dumps_event(event_document(ev)) for ev in session.exec(select(AuditEvent))}
+    new_events = [values for line, values in content.events if line not in known_events]
+    report = ImportReport(
+        added=added,
+        replaced=replaced,
+        kept=kept,
+        unchanged=unchanged,
+        audit_events_added=len(new_events),
+        conflicts=tuple(conflicts),
+        dry_run=dry_run,
+    )
+    if dry_run:
+        return report
+    _apply(session, plan, new_events, local, id_of, uuid_of, actor=actor)
+    return report
+
+
+def _row_values(e: Incoming, id_of: Mapping[tuple[str, str], int]) -> dict[str, Any]:
+    table: Table = CLASSES[e.kind].__table__  # type: ignore[attr-defined]
+    fks = _fk_columns(table)
+    values = dict(e.values)
+    for column, ref in e.refs.items():
+        values[column] = None if ref is None else id_of[(fks[column], ref)]
+    return values
+
+
+def _apply(
+    session: Session,
+    plan: Sequence[tuple[str, Incoming]],
+    events: Sequence[dict[str, Any]],
+    local: Mapping[str, Entity],
+    id_of: dict[tuple[str, str], int],
+    uuid_of: Mapping[tuple[str, int], str],
+    *,
+    actor: str,
+) -> None:
+    """Write the planned rows kind by kind (parents first), then the new audit events."""
+    for cls in ENTITY_CLASSES:
+        table: Table = cls.__table__  # type: ignore[attr-defined]
+        mine = [(action, e) for action, e in plan if e.kind == cls.kind]
+        adds = [_row_values(e, id_of) for action, e in mine if action == "add"]
+        if adds:
+            session.connection().execute(insert(table), adds)
+            uuids = [row["uuid"] for row in adds]
+            for start in range(0, len(uuids), 500):
+                chunk = uuids[start : start + 500]
+                for ident, uuid in session.connection().execute(
+                    sa_select(table.c.id, table.c.uuid).where(table.c.uuid.in_(chunk))
+                ):
+                    id_of[(cls.kind, uuid)] = ident
+        for action, e in mine:
+            if action != "replace":
+                continue
+            current = local[e.uuid]
+            before = entity_document(current, uuid_of)
+            values = _row_values(e, id_of)
+            values["version"] = max(current.version, int(e.doc["version"])) + 1
+            session.connection().execute(update(table).where(table.c.id == current.id).values(**values))
+            changed = sorted(
+                k for k in e.doc if k not in ("version", "updated_at") and e.doc[k] != before.get(k)
+            )
+            session.add(
+                AuditEvent(
+                    actor=actor,
+                    action="import",
+                    entity_kind=e.kind,
+                    entity_uuid=e.uuid,
+                    entity_label=e.label[:300],
+                    before={k: before.get(k) for k in changed},
+                    after={k: e.doc[k] for k in changed},
+                    reason="replaced by an imported export (--on-conflict take-import)",
+                )
+            )
+    if events:
+        session.connection().execute(insert(AuditEvent.__table__), list(events))  # type: ignore[attr-defined]
+    session.flush()
