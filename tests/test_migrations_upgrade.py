@@ -1,0 +1,72 @@
+"""Registries written by every released schema version open, upgrade and keep their content under the current
+code. tests/fixtures/registry-<rev>.sqlite holds one small registry per released revision; registry-0001 was
+built with tests/test_portability_roundtrip.py::build_rich_registry at schema 0001 (the first schema), then
+checkpointed, switched to journal_mode=DELETE and vacuumed with page_size=1024 so it is one small file."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pytest
+from sqlalchemy import create_engine
+
+from ivdossier.registry import records
+from ivdossier.registry import threats as thr
+from ivdossier.registry.backup import restore_registry
+from ivdossier.registry.db import SCHEMA_HEAD, current_revision, open_registry
+from ivdossier.registry.models import Instrument, Program
+from ivdossier.registry.portability import export_registry
+
+FIXTURES = Path(__file__).resolve().parent / "fixtures"
+VERSIONS = Path(__file__).resolve().parent.parent / "registry" / "migrations" / "versions"
+REVISIONS = sorted(p.name.split("_", 1)[0] for p in VERSIONS.glob("[0-9]*_*.py"))
+
+
+def test_every_released_schema_has_a_fixture_registry() -> None:
+    # Every revision before the head has been released; 0001 is the first release.
+    released = [r for r in REVISIONS if r < SCHEMA_HEAD] + ["0001"]
+    missing = sorted({r for r in released if not (FIXTURES / f"registry-{r}.sqlite").is_file()})
+    assert missing == [], f"add tests/fixtures/registry-<rev>.sqlite for {missing}"
+
+
+@pytest.mark.parametrize("revision", [r for r in REVISIONS if (FIXTURES / f"registry-{r}.sqlite").is_file()])
+def test_fixture_registry_upgrades_to_head_and_keeps_its_content(revision: str, tmp_path: Path) -> None:
+    copy = tmp_path / "old.sqlite"
+    shutil.copyfile(FIXTURES / f"registry-{revision}.sqlite", copy)
+    raw = create_engine(f"sqlite:///{copy}")
+    assert current_revision(raw) == revision
+    raw.dispose()
+    registry = open_registry(str(copy))
+    try:
+        assert current_revision(registry.engine) == SCHEMA_HEAD
+        with registry.reading() as s:
+            inst = records.get(s, Instrument, "fibre")
+            assert (inst.state, inst.version, inst.claim_exclusion) == (
+                "vetting",
+                2,
+                "Only through access 🚀",
+            )
+            [summary] = [x for x in thr.rating_summaries(s, inst) if x.code == "T-ROUTE"]
+            assert summary.ratings == (("ana", 4, 5, "worried"), ("ben", 2, 3, ""))
+        with registry.writing() as s:  # and it takes new writes under the current code
+            records.edit(
+                s, records.get(s, Program, "tele"), {"unit": "patient"}, actor="ana", expected_version=1
+            )
+        with registry.reading() as s:
+            export_registry(s, tmp_path / "out")
+        assert json.loads((tmp_path / "out" / "manifest.json").read_text())["schema"] == SCHEMA_HEAD
+    finally:
+        registry.dispose()
+
+
+def test_restoring_an_old_backup_upgrades_it(tmp_path: Path) -> None:
+    summary = restore_registry(FIXTURES / "registry-0001.sqlite", str(tmp_path / "restored.sqlite"))
+    assert summary.schema == SCHEMA_HEAD
+    registry = open_registry(str(tmp_path / "restored.sqlite"), migrate=False)
+    try:
+        with registry.reading() as s:
+            assert records.get(s, Program, "tele").title == "Télésanté & urgences <i>rural</i>"
+    finally:
+        registry.dispose()
