@@ -297,9 +297,11 @@ def _diagram(inp: DossierInput) -> str:
         status = graph_status(inp.graph.verdict, condition)
         if status.outcome is None and not status.paths:
             continue
-        outcome = {"satisfied": "satisfied in the diagram", "violated": "violated in the diagram"}.get(
-            status.outcome or "", "not decided"
-        )
+        outcome = {
+            "satisfied": "satisfied in the diagram",
+            "violated": "violated in the diagram",
+            "at risk": "at risk in the diagram",
+        }.get(status.outcome or "", "not decided")
         paths = "; ".join(mt.inline(p) for p in status.paths) or "–"
         rows.append([condition.capitalize(), outcome, paths, mt.cell(status.reason)])
     if rows:

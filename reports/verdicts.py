@@ -11,6 +11,7 @@ rule    condition       verdict       fires when
 T1      any             broken        a threat linked to the condition is in state *fatal*
 G1      any but mono.   broken        the graph verdict reports the condition violated in the diagram
 T2      any             at risk       a linked threat on the condition is unresolved (see above)
+G2      any but mono.   at risk       the graph verdict reports the condition at risk
 R1      relevance       at risk       latest run: effective F below its tau = 10 % critical value
 R2      relevance       at risk       latest run: Anderson-Rubin set unbounded (rays or whole line)
 R3      relevance       holds         latest run: effective F at or above its tau = 10 % critical value
@@ -80,22 +81,28 @@ class GraphStatus:
 
 
 _GOOD = {"holds", "satisfied", "ok", "pass", "passes", "passed", "valid", "true", "blocked", "closed"}
-_BAD = {"violated", "fails", "fail", "failed", "broken", "invalid", "false", "open", "at risk", "unblocked"}
+_BAD = {"violated", "fails", "fail", "failed", "broken", "invalid", "false", "open", "unblocked"}
+_RISKY = {"at risk", "risky", "warning"}
 
 
 def _path_text(path: Any) -> str:
     if isinstance(path, Sequence) and not isinstance(path, str):
         return " → ".join(str(node) for node in path)
     if isinstance(path, Mapping):
-        nodes = path.get("nodes") or path.get("path")
-        text = _path_text(nodes) if nodes is not None else str(path.get("text", ""))
-        via = path.get("threat") or path.get("threat_code")
+        nodes = path.get("nodes")
+        text = _path_text(nodes) if nodes else str(path.get("path") or path.get("text") or "")
+        via = path.get("threats") or path.get("threat") or path.get("threat_code")
+        if isinstance(via, Sequence) and not isinstance(via, str):
+            via = ", ".join(str(v) for v in via)
         return f"{text} (threat {via})" if via else text
     return str(path)
 
 
 def graph_status(verdict: Mapping[str, Any] | None, condition: str) -> GraphStatus:
-    """Read the graph checker's verdict for one condition, tolerating the usual shapes of its to_dict()."""
+    """Read the graph checker's verdict for one condition, tolerating the usual shapes of its to_dict().
+
+    Outcomes: "satisfied", "at risk", "violated", or None when the graph says nothing (or "not assessed").
+    """
     if not verdict:
         return GraphStatus(None, "", ())
     node: Any = None
@@ -127,23 +134,35 @@ def graph_status(verdict: Mapping[str, Any] | None, condition: str) -> GraphStat
         if outcome is None and isinstance(node.get("violated"), bool):
             outcome = "violated" if node["violated"] else "satisfied"
         if outcome is None:
-            for key in ("status", "verdict", "outcome", "result"):
+            for key in ("value", "status", "verdict", "outcome", "result"):
                 if isinstance(node.get(key), str):
                     outcome = _word_outcome(node[key])
                     break
-        reason = str(node.get("reason") or node.get("explanation") or node.get("message") or "")
+        reasons = node.get("reasons")
+        if isinstance(reasons, Sequence) and not isinstance(reasons, str) and reasons:
+            reason = "; ".join(str(r) for r in reasons)
+        else:
+            reason = str(node.get("reason") or node.get("explanation") or node.get("message") or "")
         for key in ("paths", "open_paths", "violating_paths", "offending_paths", "backdoor_paths"):
             raw = node.get(key)
             if isinstance(raw, Sequence) and not isinstance(raw, str) and raw:
                 paths = tuple(_path_text(p) for p in raw)
                 break
+    if not paths and isinstance(verdict.get("open_paths"), Sequence):
+        paths = tuple(
+            _path_text(p)
+            for p in verdict["open_paths"]
+            if isinstance(p, Mapping) and p.get("condition") == condition and p.get("open", True)
+        )
     return GraphStatus(outcome, reason, paths)
 
 
 def _word_outcome(word: str) -> str | None:
-    lowered = word.strip().lower().replace("_", " ")
+    lowered = word.strip().lower().replace("_", " ").replace("-", " ")
     if lowered in _GOOD:
         return "satisfied"
+    if lowered in _RISKY:
+        return "at risk"
     if lowered in _BAD:
         return "violated"
     return None
@@ -253,6 +272,9 @@ def derive_verdict(
     if unresolved:
         first, rest = unresolved[0], len(unresolved) - 1
         return Verdict(condition, AT_RISK, first + (f"; {rest} more unresolved" if rest else ""), "T2")
+    if gstat.outcome == "at risk":
+        detail = f": {gstat.paths[0]}" if gstat.paths else (f": {gstat.reason}" if gstat.reason else "")
+        return Verdict(condition, AT_RISK, f"the causal diagram puts it at risk{detail}", "G2")
     if condition == "relevance":
         return _relevance_from_run(run)
     if condition == "monotonicity":

@@ -189,3 +189,26 @@ def test_a_real_estimation_result_renders_with_its_own_numbers() -> None:
     assert rv.fmt_set(rv.intervals(ar)) in detail
     assert f"| Hansen J | {rv.fmt(res['overid']['statistic'])} |" in detail
     assert "observations 400" in detail
+
+
+def test_the_graph_checkers_svg_is_inlined_as_the_diagram() -> None:
+    from ivdossier.reports.inputs import GraphInfo
+    from ivdossier.threats_catalog.draw import render_svg
+    from ivdossier.threats_catalog.graph import build_graph, check_instrument
+
+    roles = {"instrument": "fibre_wave", "treatment": "telehealth", "outcome": "ed_visits"}
+    G = build_graph(
+        **roles,
+        covariates={"pharmacy": False},
+        extra_edges=[("fibre_wave", "pharmacy"), ("pharmacy", "ed_visits")],
+    )
+    verdict = check_instrument(G, **roles)
+    svg = render_svg(G, verdict, title="Causal diagram <fibre>")
+    inp = dataclasses.replace(
+        sample_input(), graph=GraphInfo(verdict=verdict.to_dict(), svg=svg), runs=(make_run(1, plots=False),)
+    )
+    md = dossier_markdown(inp)
+    assert "| Exclusion | violated in the diagram | fibre\\_wave → pharmacy → ed\\_visits |" in md
+    page = dossier_html(inp)
+    start = page.index('<figure class="figure" id="figure-causal-diagram">')
+    assert page[start:].split(">", 1)[1].startswith("<svg")

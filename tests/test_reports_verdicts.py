@@ -207,3 +207,31 @@ def test_x1_empty_ar_set_puts_exogeneity_at_risk_but_relevance_still_holds() -> 
     assert (v.status, v.rule) == (AT_RISK, "X1")
     r = derive_verdict("relevance", run=run)
     assert r.status == HOLDS and "empty" in r.reason
+
+
+def _real_graph_verdict(with_bypass: bool) -> dict[str, object]:
+    # the graph checker's own to_dict() is the contract the verdict rules read
+    from ivdossier.threats_catalog.graph import build_graph, check_instrument
+
+    roles = {"instrument": "fibre_wave", "treatment": "telehealth", "outcome": "ed_visits"}
+    extra = [("fibre_wave", "pharmacy"), ("pharmacy", "ed_visits")] if with_bypass else []
+    G = build_graph(**roles, covariates={"pharmacy": False}, extra_edges=extra)
+    return check_instrument(G, **roles).to_dict()
+
+
+def test_rules_read_the_graph_checkers_real_verdict() -> None:
+    broken = _real_graph_verdict(with_bypass=True)
+    v = derive_verdict("exclusion", claim="c", graph_verdict=broken)
+    assert (v.status, v.rule) == (BROKEN, "G1")
+    assert "fibre_wave → pharmacy → ed_visits" in v.reason
+    clean = _real_graph_verdict(with_bypass=False)
+    # the checker reports "not-assessed" when no threat was considered: the rules must not turn that into holds
+    assert derive_verdict("exclusion", claim="c", graph_verdict=clean).status == NOT_ASSESSED
+    assert graph_status(clean, "relevance").outcome == "satisfied"
+
+
+def test_g2_graph_at_risk_puts_the_condition_at_risk() -> None:
+    graph = {"conditions": {"exogeneity": {"value": "at-risk", "reasons": ["open path via an open threat"]}}}
+    v = derive_verdict("exogeneity", claim="c", graph_verdict=graph)
+    assert (v.status, v.rule) == (AT_RISK, "G2")
+    assert "open path via an open threat" in v.reason
