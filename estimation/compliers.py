@@ -19,6 +19,7 @@ import pandas as pd
 from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.estimation.result import json_value
 
 __all__ = [
     "ComplierMeans",
@@ -164,18 +165,20 @@ class ComplierShares:
             }
             for name in ("complier", "always_taker", "never_taker")
         }
-        return {
-            "shares": shares,
-            "p_treated_given_z1": self.p_treated_given_z1,
-            "p_treated_given_z0": self.p_treated_given_z0,
-            "n_z1": self.n_z1,
-            "n_z0": self.n_z0,
-            "alpha": self.alpha,
-            "se_method": self.se_method,
-            "n_boot": self.n_boot,
-            "seed": self.seed,
-            "monotonicity_note": self.monotonicity_note,
-        }
+        return json_value(
+            {
+                "shares": shares,
+                "p_treated_given_z1": self.p_treated_given_z1,
+                "p_treated_given_z0": self.p_treated_given_z0,
+                "n_z1": self.n_z1,
+                "n_z0": self.n_z0,
+                "alpha": self.alpha,
+                "se_method": self.se_method,
+                "n_boot": self.n_boot,
+                "seed": self.seed,
+                "monotonicity_note": self.monotonicity_note,
+            }
+        )
 
 
 def _shares(d: FloatArray, z: FloatArray) -> tuple[float, float, float, float, int, int]:
@@ -294,15 +297,17 @@ class CovariateProfile:
     complier_to_overall_ratio: float
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "covariate": self.covariate,
-            "overall_mean": self.overall_mean,
-            "complier_mean": self.complier_mean,
-            "complier_mean_se": self.complier_mean_se,
-            "always_taker_mean": self.always_taker_mean,
-            "never_taker_mean": self.never_taker_mean,
-            "complier_to_overall_ratio": _json_float(self.complier_to_overall_ratio),
-        }
+        return json_value(
+            {
+                "covariate": self.covariate,
+                "overall_mean": self.overall_mean,
+                "complier_mean": self.complier_mean,
+                "complier_mean_se": self.complier_mean_se,
+                "always_taker_mean": self.always_taker_mean,
+                "never_taker_mean": self.never_taker_mean,
+                "complier_to_overall_ratio": json_value(self.complier_to_overall_ratio),
+            }
+        )
 
 
 @dataclass(frozen=True)
@@ -326,25 +331,17 @@ class ComplierMeans:
     seed: int
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "profiles": [p.to_dict() for p in self.profiles],
-            "complier_share_kappa": self.complier_share_kappa,
-            "propensity": self.propensity,
-            "n": self.n,
-            "se_method": self.se_method,
-            "n_boot": self.n_boot,
-            "seed": self.seed,
-        }
-
-
-def _json_float(value: float) -> float | str | None:
-    if np.isnan(value):
-        return None
-    if np.isposinf(value):
-        return "inf"
-    if np.isneginf(value):
-        return "-inf"
-    return float(value)
+        return json_value(
+            {
+                "profiles": [p.to_dict() for p in self.profiles],
+                "complier_share_kappa": self.complier_share_kappa,
+                "propensity": self.propensity,
+                "n": self.n,
+                "se_method": self.se_method,
+                "n_boot": self.n_boot,
+                "seed": self.seed,
+            }
+        )
 
 
 def _instrument_propensity(z: FloatArray, x: FloatArray | None, counts: FloatArray) -> FloatArray:
@@ -487,13 +484,15 @@ class IntervalViolation:
     se: float
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "arm": self.arm,
-            "lower": _json_float(self.lower),
-            "upper": _json_float(self.upper),
-            "density": self.density,
-            "se": self.se,
-        }
+        return json_value(
+            {
+                "arm": self.arm,
+                "lower": json_value(self.lower),
+                "upper": json_value(self.upper),
+                "density": self.density,
+                "se": self.se,
+            }
+        )
 
 
 @dataclass(frozen=True)
@@ -525,16 +524,18 @@ class ImplicationCheck:
         return self.most_negative.density < 0
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "bin_edges": [_json_float(e) for e in self.bin_edges],
-            "most_negative": self.most_negative.to_dict(),
-            "statistic": self.statistic,
-            "p_value": self.p_value,
-            "n_intervals": self.n_intervals,
-            "n_boot": self.n_boot,
-            "seed": self.seed,
-            "procedure": self.procedure,
-        }
+        return json_value(
+            {
+                "bin_edges": [json_value(e) for e in self.bin_edges],
+                "most_negative": self.most_negative.to_dict(),
+                "statistic": self.statistic,
+                "p_value": self.p_value,
+                "n_intervals": self.n_intervals,
+                "n_boot": self.n_boot,
+                "seed": self.seed,
+                "procedure": self.procedure,
+            }
+        )
 
 
 def _bin_edges(y: FloatArray, bins: int | Sequence[float]) -> FloatArray:

@@ -31,6 +31,7 @@ import numpy as np
 from scipy import optimize, stats
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.result import json_value
 
 __all__ = [
     "FirstStageOutlook",
@@ -46,14 +47,6 @@ __all__ = [
 ]
 
 FORMULA = "Var(beta) = DEFF * sigma_u^2 / (N * R2_partial * Var(X)), DEFF = 1 + (m - 1) * ICC"
-
-
-def _json_float(value: float | None) -> float | str | None:
-    if value is None or math.isnan(value):
-        return None
-    if math.isinf(value):
-        return "inf" if value > 0 else "-inf"
-    return float(value)
 
 
 @dataclass(frozen=True)
@@ -83,20 +76,22 @@ class IVDesign:
         return self.n - self.n_instruments - self.n_controls - 1
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "n": self.n,
-            "partial_r2": self.partial_r2,
-            "residual_sd": self.residual_sd,
-            "treatment_sd": self.treatment_sd,
-            "n_instruments": self.n_instruments,
-            "n_controls": self.n_controls,
-            "cluster_size": self.cluster_size,
-            "icc": self.icc,
-            "design_effect": self.design_effect,
-            "alpha": self.alpha,
-            "residual_sd_source": self.residual_sd_source,
-            "partial_r2_source": self.partial_r2_source,
-        }
+        return json_value(
+            {
+                "n": self.n,
+                "partial_r2": self.partial_r2,
+                "residual_sd": self.residual_sd,
+                "treatment_sd": self.treatment_sd,
+                "n_instruments": self.n_instruments,
+                "n_controls": self.n_controls,
+                "cluster_size": self.cluster_size,
+                "icc": self.icc,
+                "design_effect": self.design_effect,
+                "alpha": self.alpha,
+                "residual_sd_source": self.residual_sd_source,
+                "partial_r2_source": self.partial_r2_source,
+            }
+        )
 
 
 def _mean_ncf(k: int, df2: int, lam: float) -> float:
@@ -243,21 +238,23 @@ class FirstStageOutlook:
     tf_critical_value_at_expected_f: float
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "plug_in_f": _json_float(self.plug_in_f),
-            "expected_f": _json_float(self.expected_f),
-            "noncentrality": _json_float(self.noncentrality),
-            "critical_values": [
-                {
-                    "label": label,
-                    "critical_value": _json_float(value),
-                    "probability_exceeded": _json_float(prob),
-                    "source": source,
-                }
-                for label, value, prob, source in self.critical_values
-            ],
-            "tf_critical_value_at_expected_f": _json_float(self.tf_critical_value_at_expected_f),
-        }
+        return json_value(
+            {
+                "plug_in_f": json_value(self.plug_in_f),
+                "expected_f": json_value(self.expected_f),
+                "noncentrality": json_value(self.noncentrality),
+                "critical_values": [
+                    {
+                        "label": label,
+                        "critical_value": json_value(value),
+                        "probability_exceeded": json_value(prob),
+                        "source": source,
+                    }
+                    for label, value, prob, source in self.critical_values
+                ],
+                "tf_critical_value_at_expected_f": json_value(self.tf_critical_value_at_expected_f),
+            }
+        )
 
 
 def expected_first_stage(design: IVDesign) -> FirstStageOutlook:
@@ -321,19 +318,21 @@ class PowerAnalysis:
     assumptions: tuple[str, ...]
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "design": self.design.to_dict(),
-            "se": self.se,
-            "effect": self.effect,
-            "power": self.power,
-            "target_power": self.target_power,
-            "mde": self.mde,
-            "n_required": self.n_required,
-            "clusters_required": self.clusters_required,
-            "first_stage": self.first_stage.to_dict(),
-            "formula": self.formula,
-            "assumptions": list(self.assumptions),
-        }
+        return json_value(
+            {
+                "design": self.design.to_dict(),
+                "se": self.se,
+                "effect": self.effect,
+                "power": self.power,
+                "target_power": self.target_power,
+                "mde": self.mde,
+                "n_required": self.n_required,
+                "clusters_required": self.clusters_required,
+                "first_stage": self.first_stage.to_dict(),
+                "formula": self.formula,
+                "assumptions": list(self.assumptions),
+            }
+        )
 
 
 ASSUMPTIONS: tuple[str, ...] = (

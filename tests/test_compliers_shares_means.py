@@ -10,9 +10,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from ivdossier.estimation.compliers import check_testable_implications, complier_means, complier_shares
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.compliers import check_testable_implications, complier_means, complier_shares
 
 TRUE_SHARES = {"always_taker": 0.2, "complier": 0.5, "never_taker": 0.3}
 TRUE_MEANS = {"always_taker": 1.0, "complier": 2.0, "never_taker": -1.0}
@@ -150,3 +150,22 @@ def test_missing_column_and_missing_values_are_named(sim: pd.DataFrame) -> None:
 def test_constant_instrument_is_rejected(sim: pd.DataFrame) -> None:
     with pytest.raises(InvalidInputError, match="takes only the value 1"):
         complier_shares(sim.assign(z=1.0), treatment="d", instrument="z")
+
+
+def test_to_dict_is_strict_json_even_without_always_takers() -> None:
+    # one-sided non-compliance: nobody is treated when Z = 0, so always-taker means are undefined (None)
+    import json
+
+    rng = np.random.default_rng(9)
+    n = 3000
+    z = rng.binomial(1, 0.5, size=n).astype(float)
+    complier = rng.binomial(1, 0.6, size=n).astype(float)
+    frame = pd.DataFrame({"d": z * complier, "z": z, "w": rng.normal(size=n) + complier})
+    res = complier_means(frame, treatment="d", instrument="z", covariates=["w"], n_boot=50)
+    out = json.loads(json.dumps(res.to_dict(), allow_nan=False))
+    assert out["profiles"][0]["always_taker_mean"] is None
+    shares = complier_shares(frame, treatment="d", instrument="z")
+    assert shares.always_taker == 0.0 and shares.always_taker_se == 0.0
+    json.dumps(shares.to_dict(), allow_nan=False)
+    check = check_testable_implications(frame, outcome="w", treatment="d", instrument="z", n_boot=50)
+    json.dumps(check.to_dict(), allow_nan=False)

@@ -7,6 +7,9 @@ import math
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from statsmodels.stats.power import NormalIndPower, TTestIndPower
+
+from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.covariance import CovSpec, sandwich
 from ivdossier.estimation.estimators import fit_kclass
 from ivdossier.estimation.power import (
@@ -18,9 +21,6 @@ from ivdossier.estimation.power import (
     power_analysis,
     se_2sls,
 )
-from statsmodels.stats.power import NormalIndPower, TTestIndPower
-
-from ivdossier.errors import InvalidInputError
 
 
 def test_perfect_first_stage_equals_two_sample_normal_power() -> None:
@@ -177,3 +177,12 @@ def test_bad_power_targets_are_named() -> None:
         mde_2sls(design, power=0.01)
     with pytest.raises(InvalidInputError, match="effect must be non-zero"):
         n_for_power(design, 0.0)
+
+
+def test_to_dict_is_strict_json_with_a_perfect_first_stage() -> None:
+    import json
+
+    design = iv_design(n=300, partial_r2=1.0, residual_sd=2.0, treatment_sd=0.5)
+    out = json.loads(json.dumps(power_analysis(design, effect=0.5).to_dict(), allow_nan=False))
+    assert out["first_stage"]["plug_in_f"] == "inf"  # no first-stage noise at all
+    assert out["first_stage"]["critical_values"][0]["probability_exceeded"] == 1.0
