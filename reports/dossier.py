@@ -306,7 +306,7 @@ def _diagram(inp: DossierInput) -> str:
         rows.append([condition.capitalize(), outcome, paths, mt.cell(status.reason)])
     if rows:
         out.append("What the graph check found:")
-        out.append(mt.table(["Condition", "Graph check", "Paths found", "Explanation"], rows))
+        out.append(mt.table(["Condition", "In the diagram", "Paths found", "Explanation"], rows))
     return "\n\n".join(out) if len(out) > 1 else ""
 
 
@@ -333,7 +333,7 @@ def _estimation(inp: DossierInput, run: RunInfo | None) -> str:
         if run.vcov:
             meta.append(f"covariance {mt.inline(run.vcov)}")
         for key, label in (("n", "observations"), ("n_dropped", "incomplete rows left out")):
-            if rv.num(res.get(key)) is not None:
+            if rv.num(res.get(key)):
                 meta.append(f"{label} {rv.fmt(res.get(key), 12)}")
         clusters = _clusters(res)
         if clusters:
@@ -461,7 +461,7 @@ def _reduced_form(res: Mapping[str, Any]) -> str:
     wald, p = rv.num(red.get("wald_f")), rv.pvalue(red)
     if wald is not None:
         text += (
-            f"\n\nJoint test that every reduced-form coefficient is zero: F = {rv.fmt(wald)}, p = {rv.fmt_p(p)}. "
+            f"\n\nJoint test that every reduced-form coefficient is zero: F = {rv.fmt(wald)}, {rv.p_clause(p)}. "
             "With valid instruments this is also a weak-instrument-robust test of no effect."
         )
     return text
@@ -726,6 +726,8 @@ def _provenance(inp: DossierInput) -> str:
 
 
 def _spec_value(value: Any) -> str:
+    if value is None:
+        return "(none)"
     if isinstance(value, str):
         return value
     if isinstance(value, Sequence):
@@ -738,19 +740,44 @@ def _spec_value(value: Any) -> str:
         return str(value)
 
 
+MAX_DIFFERING_OPTIONS = 6
+
+
 def _spec_tables(runs: Sequence[RunInfo]) -> str:
-    """One option table per distinct specification, naming every run that used it."""
-    groups: dict[str, list[RunInfo]] = {}
-    for run in runs:
-        if run.spec:
-            groups.setdefault(json.dumps(run.spec, sort_keys=True, default=str), []).append(run)
-    blocks = []
-    for members in groups.values():
-        names = ", ".join(f"**{mt.inline(r.slug)}**" for r in members)
-        rows = [[mt.cell(k), mt.cell(_spec_value(v))] for k, v in members[0].spec.items()]
-        label = "Run" if len(members) == 1 else "Runs"
-        blocks.append(f"{label} {names}:\n\n" + mt.table(["Option", "Value"], rows))
-    return "\n\n".join(blocks)
+    """Options every run shares in one table; options that differ in a second table with one row per run."""
+    with_spec = [r for r in runs if r.spec]
+    if not with_spec:
+        return ""
+    keys: list[str] = []
+    for run in with_spec:
+        keys.extend(str(k) for k in run.spec if str(k) not in keys)
+    values = {k: [_spec_value(r.spec.get(k)) if k in r.spec else "–" for r in with_spec] for k in keys}
+    shared = [k for k in keys if len(set(values[k])) == 1]
+    differing = [k for k in keys if k not in shared]
+    if len(differing) > MAX_DIFFERING_OPTIONS:
+        blocks = []
+        for run in with_spec:
+            rows = [[mt.cell(k), mt.cell(_spec_value(v))] for k, v in run.spec.items()]
+            blocks.append(f"Run **{mt.inline(run.slug)}**:\n\n" + mt.table(["Option", "Value"], rows))
+        return "\n\n".join(blocks)
+    parts = []
+    if shared:
+        label = (
+            "Options shared by every run:"
+            if len(with_spec) > 1
+            else f"Run **{mt.inline(with_spec[0].slug)}**:"
+        )
+        rows = [[mt.cell(k), mt.cell(values[k][0])] for k in shared]
+        parts.append(label + "\n\n" + mt.table(["Option", "Value"], rows))
+    if differing:
+        rows = [
+            [mt.cell(r.slug), *[mt.cell(values[k][i]) for k in differing]] for i, r in enumerate(with_spec)
+        ]
+        parts.append(
+            "Options that differ between runs:\n\n"
+            + mt.table(["Run", *[mt.cell(k) for k in differing]], rows)
+        )
+    return "\n\n".join(parts)
 
 
 def _audit(inp: DossierInput) -> str:

@@ -219,6 +219,12 @@ def fmt_p(value: Any) -> str:
     return f"{x:.3f}"
 
 
+def p_clause(value: Any) -> str:
+    """ "p = 0.012" or "p < 0.001", for running text."""
+    text = fmt_p(value)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
+
+
 def fmt_set(sets: list[Interval] | None) -> str:
     """A union of intervals in plain notation; open brackets at infinity."""
     if sets is None:

@@ -145,7 +145,8 @@ def test_provenance_lists_fingerprints_specs_versions_and_who_did_what() -> None
     md = dossier_markdown(sample_input(n_runs=2))
     prov = md.split("## Provenance")[1]
     assert "`01" + "ab3f" * 15 + "9c`" in prov
-    assert "Runs **run-000**, **run-001**:" in prov  # identical specs are shown once
+    assert "Options shared by every run:" in prov  # identical specs are shown once
+    assert "Options that differ between runs:" not in prov
     assert "| controls | age, sex, distance\\_to\\_ed |" in prov
     assert "| numpy | 2.1.3 |" in prov
     assert "| ana | create ×1, run ×1 | 2026-11-02T08:00:00+00:00 | 2026-11-04T11:00:00+00:00 |" in prov
@@ -212,3 +213,17 @@ def test_the_graph_checkers_svg_is_inlined_as_the_diagram() -> None:
     page = dossier_html(inp)
     start = page.index('<figure class="figure" id="figure-causal-diagram">')
     assert page[start:].split(">", 1)[1].startswith("<svg")
+
+
+def test_specs_that_differ_are_tabulated_run_by_run() -> None:
+    runs = tuple(
+        dataclasses.replace(
+            make_run(i, plots=False), spec={"outcome": "ed_visits", "method": m, "weights": None}
+        )
+        for i, m in enumerate(["ols", "2sls", "liml"])
+    )
+    md = dossier_markdown(dataclasses.replace(sample_input(), runs=runs))
+    prov = md.split("### Exact specifications")[1].split("###")[0]
+    assert "| outcome | ed\\_visits |" in prov and "| weights | (none) |" in prov
+    assert "| Run | method |" in prov
+    assert "| run-002 | liml |" in prov
