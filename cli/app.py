@@ -94,6 +94,8 @@ COMMAND_MODULES = (
     "estimation_cmds",
     "threat_cmds",
     "report_cmds",
+    "studies",
+    "plans",
 )
 
 

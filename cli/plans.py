@@ -1,0 +1,335 @@
+"""`ivdossier plan ...`: draft, show, edit, freeze, verify, export and compare pre-analysis plans."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Annotated, Any
+
+import typer
+
+from ivdossier.cli.common import IfVersion, JsonFlag, actor, read_text_option, reading, writing
+from ivdossier.cli.output import print_json, print_table
+from ivdossier.cli.studies import write_output
+
+plan_app = typer.Typer(
+    help="Pre-analysis plans: draft from the registry, fix decision rules, freeze, verify and compare runs.",
+    no_args_is_help=True,
+)
+DOC_SUFFIXES = (".md", ".html", ".json")
+
+
+def register(app: typer.Typer) -> None:
+    app.add_typer(plan_app, name="plan")
+
+
+def _suffix(path: Path, allowed: tuple[str, ...], option: str) -> str:
+    from ivdossier.errors import InvalidInputError
+
+    suffix = path.suffix.lower()
+    if suffix not in allowed:
+        raise InvalidInputError(f"{option} {str(path)!r} must end in {', '.join(allowed)}.")
+    return suffix
+
+
+def _power(
+    n: int | None,
+    expected_f: float | None,
+    partial_r2: float | None,
+    outcome_sd: float | None,
+    residual_sd: float | None,
+    treatment_sd: float,
+    cluster_size: float,
+    icc: float,
+    effect: float | None,
+    power: float,
+    n_instruments: int,
+) -> dict[str, Any] | None:
+    from ivdossier.errors import InvalidInputError
+
+    strength_given = expected_f is not None or partial_r2 is not None
+    sd_given = outcome_sd is not None or residual_sd is not None
+    if not strength_given and not sd_given and effect is None:
+        return None
+    if n is None or not strength_given or not sd_given:
+        raise InvalidInputError(
+            "power needs --n, one of --expected-f or --partial-r2, and one of --outcome-sd or --residual-sd; "
+            "give all three or none."
+        )
+    from ivdossier.estimation.power import iv_design, power_analysis
+
+    design = iv_design(n=n, partial_r2=partial_r2, first_stage_f=expected_f, residual_sd=residual_sd,
+                       outcome_sd=outcome_sd, treatment_sd=treatment_sd, n_instruments=n_instruments,
+                       cluster_size=cluster_size, icc=icc)  # fmt: skip
+    return power_analysis(design, effect=effect, target_power=power).to_dict()
+
+
+@plan_app.command("draft")
+def draft(
+    target: Annotated[
+        str, typer.Argument(help="A program slug (all its active candidates) or an instrument slug.")
+    ],
+    slug: Annotated[str | None, typer.Option(help="Plan slug (default TARGET-plan).")] = None,
+    title: Annotated[str | None, typer.Option(help="Plan title.")] = None,
+    control: Annotated[list[str] | None, typer.Option(help="Control column (repeat).")] = None,
+    absorb: Annotated[list[str] | None, typer.Option(help="Fixed-effect column to absorb (repeat).")] = None,
+    cluster: Annotated[list[str] | None, typer.Option(help="Cluster column (one or two).")] = None,
+    method: Annotated[str, typer.Option(help="Estimator: 2sls, liml or fuller.")] = "2sls",
+    vcov: Annotated[
+        str | None, typer.Option(help="unadjusted, robust or cluster (default: cluster if --cluster).")
+    ] = None,
+    alpha: Annotated[float, typer.Option(help="Test level.")] = 0.05,
+    data: Annotated[str | None, typer.Option(help="Data description, or @FILE.")] = None,
+    sample: Annotated[str | None, typer.Option(help="Sample definition, or @FILE.")] = None,
+    n: Annotated[int | None, typer.Option(help="Planned number of observations.")] = None,
+    expected_f: Annotated[float | None, typer.Option(help="Expected first-stage F (for power).")] = None,
+    partial_r2: Annotated[
+        float | None, typer.Option(help="Expected partial R-squared of the instruments.")
+    ] = None,
+    outcome_sd: Annotated[
+        float | None, typer.Option(help="SD of the outcome (used as the error SD).")
+    ] = None,
+    residual_sd: Annotated[float | None, typer.Option(help="SD of the structural error.")] = None,
+    treatment_sd: Annotated[float, typer.Option(help="SD of the treatment after controls.")] = 1.0,
+    cluster_size: Annotated[float, typer.Option(help="Average cluster size (design effect).")] = 1.0,
+    icc: Annotated[float, typer.Option(help="Intra-cluster correlation (design effect).")] = 0.0,
+    effect: Annotated[float | None, typer.Option(help="Effect size for power and the N needed.")] = None,
+    power: Annotated[float, typer.Option(help="Target power for the MDE.")] = 0.8,
+    out: Annotated[
+        Path | None, typer.Option(help="Also write the plan document to FILE.md or FILE.html.")
+    ] = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Draft a pre-analysis plan from the registry (edit it, then freeze it)."""
+    from ivdossier.registry import plans
+
+    if out is not None:
+        _suffix(out, (".md", ".html"), "--out")
+    with writing() as s:
+        from ivdossier.registry import records
+        from ivdossier.registry.models import Instrument
+
+        inst = records.find(s, Instrument, target)
+        n_inst = len(inst.columns or []) if inst is not None else 1
+        pw = _power(n, expected_f, partial_r2, outcome_sd, residual_sd, treatment_sd, cluster_size, icc, effect,
+                    power, max(n_inst, 1))  # fmt: skip
+        plan = plans.draft_plan(
+            s, actor=actor(), target=target, slug=slug, title=title, controls=control or [], absorb=absorb or [],
+            cluster=cluster or [], method=method, vcov=vcov, alpha=alpha, data_description=read_text_option(data) or "",
+            sample=read_text_option(sample) or "", expected_n=n, power=pw,
+        )  # fmt: skip
+        view = plans.plan_dict(s, plan)
+        sealed = plans.sealed_document(s, plan)
+    if out is not None:
+        write_output(out, _render(out.suffix.lower(), sealed, "draft", ""))
+    print_json(view) if json_out else typer.echo(f"plan {view['slug']} drafted for {target}")
+
+
+def _render(suffix: str, sealed: dict[str, Any], state: str, sha: str) -> str:
+    from ivdossier.reports.plan_doc import plan_html, plan_markdown
+
+    if suffix == ".html":
+        return plan_html(sealed, state=state, sha256=sha)
+    if suffix == ".json":
+        return (
+            json.dumps(
+                {"state": state, "sha256": sha, "plan": sealed}, indent=2, sort_keys=True, ensure_ascii=False
+            )
+            + "\n"
+        )
+    return plan_markdown(sealed, state=state, sha256=sha)
+
+
+@plan_app.command("list")
+def list_(json_out: JsonFlag = False) -> None:
+    """List plans with their state and hash."""
+    from sqlmodel import select
+
+    from ivdossier.registry import plans
+    from ivdossier.registry.models import Plan
+
+    with reading() as s:
+        rows = [plans.plan_dict(s, p) for p in s.exec(select(Plan).order_by(Plan.slug))]
+    if json_out:
+        print_json(rows)
+        return
+    for row in rows:
+        row["sha256"] = (row.get("sha256") or "")[:12]
+    print_table(
+        rows, ["slug", "program", "instrument", "state", "frozen_at", "sha256", "title"], widths={"title": 40}
+    )
+
+
+@plan_app.command("show")
+def show(plan: str, json_out: JsonFlag = False) -> None:
+    """Print the plan document (Markdown) or, with --json, the stored plan."""
+    from ivdossier.registry import plans, records
+    from ivdossier.registry.models import Plan
+
+    with reading() as s:
+        row = records.get(s, Plan, plan)
+        view = plans.plan_dict(s, row)
+        sealed = plans.sealed_document(s, row)
+    if json_out:
+        print_json(view)
+    else:
+        typer.echo(_render(".md", sealed, row.state, row.sha256), nl=False)
+
+
+@plan_app.command("edit")
+def edit(
+    plan: str,
+    title: Annotated[str | None, typer.Option(help="New title.")] = None,
+    data: Annotated[str | None, typer.Option(help="Data description, or @FILE.")] = None,
+    sample: Annotated[str | None, typer.Option(help="Sample definition, or @FILE.")] = None,
+    rules: Annotated[
+        Path | None, typer.Option(help="JSON file with the full list of decision rules.")
+    ] = None,
+    specs: Annotated[
+        Path | None, typer.Option(help="JSON file with the full list of estimation specs.")
+    ] = None,
+    deviations: Annotated[str | None, typer.Option(help="How deviations will be reported, or @FILE.")] = None,
+    if_version: IfVersion = None,
+) -> None:
+    """Change a draft plan (frozen plans refuse every change)."""
+    from ivdossier.registry import plans, records
+    from ivdossier.registry.models import Plan
+
+    sections: dict[str, Any] = {}
+    if rules is not None:
+        sections["decision_rules"] = _json_file(rules, "decision rules")
+    if specs is not None:
+        sections["specs"] = _json_file(specs, "specs")
+    if deviations is not None:
+        sections["deviations"] = read_text_option(deviations)
+    with writing() as s:
+        if data is not None or sample is not None:
+            current = dict((records.get(s, Plan, plan).content or {}).get("data") or {})
+            if data is not None:
+                current["description"] = read_text_option(data)
+            if sample is not None:
+                current["sample"] = read_text_option(sample)
+            sections["data"] = current
+        row = plans.edit_plan(
+            s, actor=actor(), slug=plan, title=title, sections=sections, expected_version=if_version
+        )
+        version = row.version
+    typer.echo(f"plan {plan} now at version {version}")
+
+
+def _json_file(path: Path, what: str) -> Any:
+    from ivdossier.cli.studies import _read_file
+    from ivdossier.errors import InvalidInputError
+
+    text = _read_file(path, f"{what} file")
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InvalidInputError(
+            f"{what} file {str(path)!r} is not valid JSON (line {exc.lineno}: {exc.msg})."
+        ) from None
+
+
+@plan_app.command("freeze")
+def freeze(plan: str) -> None:
+    """Seal a plan: canonical form, SHA-256, time and author are stored and the plan becomes read-only."""
+    from ivdossier.registry import plans
+
+    with writing() as s:
+        row = plans.freeze_plan(s, actor=actor(), slug=plan)
+        stamp, who, sha = plans.iso(row.frozen_at), row.frozen_by, row.sha256  # type: ignore[arg-type]
+    typer.echo(f"plan {plan} frozen at {stamp} by {who}\nsha256 {sha}")
+
+
+@plan_app.command("export")
+def export(
+    plan: str,
+    out: Annotated[Path, typer.Option(help="FILE.json (sealed copy), FILE.md or FILE.html.")],
+) -> None:
+    """Write a frozen plan to a file that `plan verify --file` can check later."""
+    from ivdossier.registry import plans, records
+    from ivdossier.registry.models import Plan
+
+    suffix = _suffix(out, DOC_SUFFIXES, "--out")
+    with reading() as s:
+        if suffix == ".json":
+            text = plans.export_document(s, plan)
+        else:
+            row = records.get(s, Plan, plan)
+            if row.state != "frozen":
+                plans.export_document(s, plan)  # raises the draft error
+            text = _render(suffix, plans.sealed_document(s, row), row.state, row.sha256)
+    write_output(out, text)
+    typer.echo(f"wrote {out}")
+
+
+@plan_app.command("verify")
+def verify(
+    plan: str,
+    file: Annotated[
+        Path | None, typer.Option(help="Also check an exported copy (.json, .md or .html).")
+    ] = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Check a frozen plan (and an exported copy) against its seal; exit 1 and list each difference if changed."""
+    from ivdossier.registry import plans, records
+    from ivdossier.registry.models import Plan
+    from ivdossier.reports.plan_doc import verify_document
+
+    text = suffix = None
+    if file is not None:
+        from ivdossier.cli.studies import _read_file
+
+        suffix = _suffix(file, DOC_SUFFIXES, "--file")
+        text = _read_file(file, "exported plan")
+    with reading() as s:
+        report = plans.verify_plan(s, plan, exported=text if suffix == ".json" else None)
+        if text is not None and suffix in (".md", ".html"):
+            row = records.get(s, Plan, plan)
+            seal = plans.recorded_seal(s, row) or plans.sealed_document(s, row)
+            extra = verify_document(text, seal, sha256=row.sha256, fmt=suffix[1:])
+            report = plans.VerifyReport(report.plan, report.sha256, report.intact and not extra,
+                                        report.differences + tuple(extra), report.notes)  # fmt: skip
+    if json_out:
+        print_json(report.to_dict())
+    elif report.intact:
+        typer.echo(f"plan {plan} is intact (sha256 {report.sha256})" + (f"; {file} matches" if file else ""))
+    else:
+        typer.echo(f"plan {plan} has CHANGED since it was frozen ({len(report.differences)} difference(s)):")
+        print_table([d.to_dict() for d in report.differences], ["where", "path", "frozen", "found"],
+                    widths={"frozen": 50, "found": 50})  # fmt: skip
+        for note in report.notes:
+            typer.echo(f"note: {note}")
+    if not report.intact:
+        raise typer.Exit(code=1)
+
+
+@plan_app.command("compare")
+def compare(
+    plan: str,
+    runs: Annotated[list[str], typer.Argument(help="Run slugs to compare with the plan.")],
+    json_out: JsonFlag = False,
+) -> None:
+    """List every deviation of the runs from the plan and apply its decision rules to each run."""
+    from ivdossier.registry import plans
+
+    with reading() as s:
+        result = plans.compare_plan(s, plan, runs)
+    if json_out:
+        print_json(result.to_dict())
+        return
+    for note in result.notes:
+        typer.echo(f"note: {note}")
+    typer.echo(
+        f"plan {plan} ({result.state}): {result.n_deviations} deviation(s) in {len(result.runs)} run(s)"
+    )
+    devs = [d.to_dict() for r in result.runs for d in r.deviations]
+    if devs:
+        print_table(devs, ["run", "kind", "field", "planned", "actual"], widths={"planned": 40, "actual": 40})
+    rules = [{"run": r.run, **o.to_dict()} for r in result.runs for o in r.rules]
+    if rules:
+        typer.echo("")
+        print_table(rules, ["run", "rule", "holds", "action"], widths={"action": 70})
+    for r in result.runs:
+        for note in r.notes:
+            typer.echo(f"note: {note}")
