@@ -17,7 +17,6 @@ from __future__ import annotations
 import json
 import os
 import re
-import unicodedata
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -477,8 +476,6 @@ def _check_label(kind: str, label: Any, where: str, problems: Problems) -> None:
             records.check_slug(label, what=kind)
         except InvalidInputError as exc:
             problems.add(f"{where}: {str(exc).rstrip('.')}")
-    elif any(unicodedata.category(c)[0] == "C" for c in label):
-        problems.add(f"{where} name {label[:40]!r} contains control characters")
 
 
 def parse_entity(kind: str, rel: str, data: Any, problems: Problems) -> Incoming | None:

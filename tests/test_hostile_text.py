@@ -1,0 +1,216 @@
+"""Hostile text in every field: arbitrary Unicode, control characters, markup and huge strings are either stored
+exactly or refused with a clear error, and a refused write leaves the registry as it was (both backends)."""
+
+from __future__ import annotations
+
+import itertools
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from ivdossier.errors import ConflictError, InvalidInputError, IvdossierError
+from ivdossier.registry import comments, records
+from ivdossier.registry import instruments as reg
+from ivdossier.registry import threats as thr
+from ivdossier.registry.db import Registry, open_registry
+from ivdossier.registry.models import Comment, Instrument, Link, Member, Program, Study
+from ivdossier.registry.portability import SAFE_NAME_RE, export_registry, render_export
+
+HOSTILE_SETTINGS = settings(
+    max_examples=40,
+    deadline=None,
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+MARKUP = [
+    "<script>alert(1)</script>",
+    "](javascript:x)",
+    "{{7*7}}",
+    "'; DROP TABLE program; --",
+    "\u202e",
+    "\r\n",
+]
+
+# Any Unicode text (surrogates excluded: they cannot be encoded as UTF-8 at all), with control characters,
+# markup fragments, and now and then a huge string around the field limits.
+hostile_text = st.one_of(
+    st.text(),
+    st.text(alphabet=st.characters(codec="utf-8"), max_size=300),
+    st.lists(st.sampled_from(MARKUP) | st.text(max_size=5), max_size=8).map("".join),
+    st.tuples(
+        st.sampled_from(["x", "é", "🚀", "\x07"]), st.sampled_from([63, 64, 65, 299, 300, 301, 100_001])
+    ).map(lambda t: t[0] * t[1]),
+)
+_counter = itertools.count()
+
+
+def _seeded(db: str) -> Registry:
+    registry = open_registry(db)
+    with registry.writing() as s:
+        reg.add_program(s, actor="ana", slug="tele", title="Telehealth")
+        reg.add_member(s, actor="ana", handle="ana")
+        reg.add_instrument(s, actor="ana", program="tele", slug="fibre", name="Fibre")
+        thr.add_team_threat(s, actor="ana", entry={"code": "T-H", "title": "h", "condition": "exclusion"})
+        thr.link_threat(s, actor="ana", instrument="fibre", code="T-H")
+    return registry
+
+
+def _state(registry: Registry) -> dict[str, str]:
+    with registry.reading() as s:
+        return render_export(s)
+
+
+def _write_or_refuse(registry: Registry, work: Any) -> bool:
+    """Run one write; True when it was stored, False when refused (and then nothing may have changed)."""
+    before = _state(registry)
+    try:
+        with registry.writing() as s:
+            work(s)
+    except (InvalidInputError, ConflictError) as exc:
+        assert str(exc).endswith(".") and "\n" not in str(exc)  # one sentence on one line
+        assert _state(registry) == before
+        return False
+    return True
+
+
+FIELD_WRITES = {
+    "program.notes": (Program, "tele", "notes"),
+    "program.title": (Program, "tele", "title"),
+    "program.unit": (Program, "tele", "unit"),
+    "instrument.claim_exclusion": (Instrument, "fibre", "claim_exclusion"),
+    "instrument.name": (Instrument, "fibre", "name"),
+    "link.argument": (Link, "fibre--t-h", "argument"),
+    "member.name": (Member, "ana", "name"),
+}
+
+
+def _check_fields(registry: Registry, field: str, text: str) -> None:
+    cls, label, column = FIELD_WRITES[field]
+    stored = _write_or_refuse(
+        registry, lambda s: records.edit(s, records.get(s, cls, label), {column: text}, actor="ana")
+    )
+    with registry.reading() as s:
+        value = getattr(records.get(s, cls, label), column)
+    if stored:
+        assert value == text  # exactly what was typed, markup and control characters included
+    else:
+        assert "\x00" in text or len(text) > 64
+
+
+@HOSTILE_SETTINGS
+@given(field=st.sampled_from(sorted(FIELD_WRITES)), text=hostile_text)
+def test_edited_text_is_stored_exactly_or_refused_on_sqlite(sqlite_path: str, field: str, text: str) -> None:
+    registry = _cached(sqlite_path)
+    _check_fields(registry, field, text)
+
+
+@pytest.mark.postgres
+@settings(HOSTILE_SETTINGS, max_examples=15)
+@given(field=st.sampled_from(sorted(FIELD_WRITES)), text=hostile_text)
+def test_edited_text_is_stored_exactly_or_refused_on_postgresql(
+    pg_registry: Registry, field: str, text: str
+) -> None:
+    _check_fields(pg_registry, field, text)
+
+
+_registries: dict[str, Registry] = {}
+
+
+def _cached(db: str) -> Registry:
+    if db not in _registries:
+        _registries[db] = _seeded(db)
+    return _registries[db]
+
+
+@pytest.fixture(scope="module")
+def pg_registry(pg_server: Any) -> Any:
+    registry = _seeded(pg_server.create_database())
+    yield registry
+    registry.dispose()
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _dispose_cached() -> Any:
+    yield
+    for registry in _registries.values():
+        registry.dispose()
+    _registries.clear()
+
+
+@HOSTILE_SETTINGS
+@given(slug=st.text(max_size=80), title=hostile_text, claim=hostile_text)
+def test_new_entities_with_hostile_names_and_claims(
+    sqlite_path: str, slug: str, title: str, claim: str
+) -> None:
+    registry = _cached(sqlite_path)
+    stored = _write_or_refuse(
+        registry,
+        lambda s: reg.add_instrument(
+            s, actor="ana", program="tele", slug=slug, name=title, claims={"exogeneity": claim}
+        ),
+    )
+    if stored:
+        assert records.SLUG_RE.match(slug)
+        with registry.reading() as s:
+            inst = records.get(s, Instrument, slug)
+            assert (inst.name, inst.claim_exogeneity) == (title, claim)
+
+
+@HOSTILE_SETTINGS
+@given(body=hostile_text, actor=st.text(max_size=70))
+def test_comments_with_hostile_bodies_and_actor_names(sqlite_path: str, body: str, actor: str) -> None:
+    registry = _cached(sqlite_path)
+    try:
+        who = records.resolve_actor(actor) if actor.strip() else "ana"
+    except InvalidInputError as exc:
+        assert "is not a usable name; pass --as HANDLE" in str(exc)
+        return
+    made: list[str] = []
+    stored = _write_or_refuse(
+        registry, lambda s: made.append(comments.add_comment(s, actor=who, target="fibre", body=body).slug)
+    )
+    if stored:
+        with registry.reading() as s:
+            assert records.get(s, Comment, made[0]).body == body
+
+
+@settings(HOSTILE_SETTINGS, max_examples=30)
+@given(
+    labels=st.lists(
+        st.text(min_size=1, max_size=120).filter(lambda t: "\x00" not in t), min_size=1, max_size=4
+    )
+)
+def test_no_label_can_steer_an_export_outside_its_folder(labels: list[str]) -> None:
+    """Labels stored around the slug checks (dots, slashes, drive letters, NUL-free control text) stay inside."""
+    with tempfile.TemporaryDirectory() as tmp:
+        root = Path(tmp)
+        registry = open_registry(str(root / "r.sqlite"))
+        try:
+            with registry.writing() as s:
+                for n, label in enumerate(dict.fromkeys(labels)):
+                    records.create(s, Study(key=label, title=str(n)), actor="ana")
+            with registry.reading() as s:
+                export_registry(s, root / "out" / "deep")
+        finally:
+            registry.dispose()
+        written = [p for p in root.rglob("*") if p.is_file() and p.suffix == ".json"]
+        for path in written:
+            assert path.resolve().is_relative_to((root / "out" / "deep").resolve())
+            assert SAFE_NAME_RE.match(path.stem) or path.stem.startswith("_")
+        assert len([p for p in written if p.parent.name == "study"]) == len(dict.fromkeys(labels))
+
+
+def test_refused_writes_name_the_field_and_the_fix(sqlite_path: str) -> None:
+    registry = _cached(sqlite_path)
+    with (
+        pytest.raises(
+            InvalidInputError, match="program unit is 201 characters long; the limit is 200; shorten it"
+        ),
+        registry.writing() as s,
+    ):
+        records.edit(s, records.get(s, Program, "tele"), {"unit": "u" * 201}, actor="ana")
+    with pytest.raises(IvdossierError, match=r"slug '\.\./x' is not allowed"), registry.writing() as s:
+        reg.add_instrument(s, actor="ana", program="tele", slug="../x", name="x")
