@@ -357,6 +357,8 @@ def test_criterion_matches_the_networkx_reference_on_random_graphs(case: tuple[n
     assert criterion_holds(G, conditioning=W, **ROLES) == reference_criterion(G, W)
     v = check_instrument(G, conditioning=W, **ROLES)
     assert v.criterion_holds == reference_criterion(G, W)
+    # the listed open paths agree with d-separation: none listed exactly when the criterion's part (2) holds
+    assert v.criterion_holds == (v.relevance_connected and not v.open_paths and not v.conditioning_issues)
     for found in adjustment_sets(G, **ROLES):
         assert reference_criterion(G, set(found))
         smaller = itertools.combinations(found, len(found) - 1) if found else ()
@@ -391,3 +393,15 @@ def test_whole_catalogue_graph_is_checked_and_has_no_adjustment_set() -> None:
     assert not v.paths_truncated
     assert adjustment_sets(G, **ROLES) == []
     assert not reference_criterion(G, set())
+
+
+def test_truncated_path_listing_never_hides_a_failed_criterion(monkeypatch: pytest.MonkeyPatch) -> None:
+    import ivdossier.threats_catalog.graph as graph_module
+
+    monkeypatch.setattr(graph_module, "_MAX_PATHS_VISITED", 0)
+    G = build_graph(fragments=[MEDIATOR])
+    v = verdict(G)
+    assert v.paths_truncated and v.open_paths == ()
+    assert not v.criterion_holds  # decided by d-separation, not by the (empty) listing
+    assert v.value("exclusion") == "at-risk"
+    assert "path listing stopped early" in v.condition("exclusion").reasons[-1]

@@ -57,6 +57,7 @@ VERDICT_VALUES: tuple[str, ...] = ("holds", "at-risk", "broken", "not-assessed")
 ROLES: tuple[str, ...] = ("instrument", "treatment", "outcome", "unobserved", "covariate", "intermediate")
 
 _MAX_OPEN_PATHS = 200
+_MAX_PATHS_VISITED = 20_000
 _MAX_SUBSETS = 1 << 16
 
 
@@ -411,14 +412,24 @@ def check_instrument(
     states = {code: info["state"] for code, info in threat_info.items()}
 
     open_paths, blocked_paths, truncated = _bypass_paths(mutilated, z, y, x, C, S, states)
-    criterion = connected and not open_paths and not issues and not (C & {z, x, y})
+    # the criterion itself comes from d-separation, so a truncated path listing can never make it look satisfied
+    separated = d_separated(mutilated, {z}, {y}, C)
+    criterion = connected and separated and not issues
 
-    verdicts = (
+    verdicts: tuple[ConditionVerdict, ...] = (
         _relevance_verdict(connected, W, threat_info),
         _path_verdict("exclusion", open_paths, blocked_paths, threat_info, G, (), W),
         _path_verdict("exogeneity", open_paths, blocked_paths, threat_info, G, issues, W),
         _monotonicity_verdict(threat_info),
     )
+    if truncated and not separated:
+        note = "path listing stopped early; d-separation shows an open bypass path not listed here"
+        verdicts = tuple(
+            ConditionVerdict(v.condition, "at-risk", (*v.reasons, note), v.threats)
+            if v.condition in ("exclusion", "exogeneity") and v.value in ("holds", "not-assessed")
+            else v
+            for v in verdicts
+        )
     effects = []
     for code, info in threat_info.items():
         hit = sorted({p.condition for p in open_paths if code in p.threats})
@@ -579,7 +590,10 @@ def _bypass_paths(
     opened_list: list[BypassPath] = []
     blocked_list: list[BypassPath] = []
     truncated = False
-    for nodes in nx.all_simple_paths(skeleton, z, y):
+    for visited, nodes in enumerate(nx.all_simple_paths(skeleton, z, y), start=1):
+        if visited > _MAX_PATHS_VISITED:
+            truncated = True
+            break
         path = _describe(M, nodes, C, S, anc_c, states)
         if path.is_open:
             opened_list.append(path)
