@@ -534,6 +534,8 @@ def _strength(res: Mapping[str, Any]) -> str:
     sy_rows = _stock_yogo_rows(strength)
     if not rows and not sy_rows:
         return ""
+    if sy_rows:
+        rows = [[r[0], r[1], "Stock–Yogo, below"] if r[0] == "Cragg–Donald F" else r for r in rows]
     text = "#### Instrument strength\n\n"
     if rows:
         text += mt.table(["Statistic", "Value", "Critical values (5 % test)"], rows, "lrl")

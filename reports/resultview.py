@@ -191,7 +191,7 @@ def fmt(value: Any, digits: int = 4) -> str:
     """A number with `digits` significant digits, no exponent in the usual range, a true minus and infinity."""
     x = num(value)
     if x is None:
-        return "–" if value is None else str(value)
+        return "–"  # never echo a non-numeric value: it could carry markup
     if math.isnan(x):
         return "n/a"
     if math.isinf(x):

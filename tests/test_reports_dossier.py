@@ -227,3 +227,12 @@ def test_specs_that_differ_are_tabulated_run_by_run() -> None:
     assert "| outcome | ed\\_visits |" in prov and "| weights | (none) |" in prov
     assert "| Run | method |" in prov
     assert "| run-002 | liml |" in prov
+
+
+def test_non_numeric_values_in_a_result_are_never_echoed() -> None:
+    res = iv_results()
+    res["coef"]["telehealth"] = "<script>alert(1)</script>"
+    res["strength"]["kp_rk_wald_f"] = "[x](javascript:alert(1))"
+    md = dossier_markdown(dataclasses.replace(sample_input(), runs=(make_run(1, results=res, plots=False),)))
+    assert "<script>" not in md and "javascript:" not in md
+    assert rv.fmt("12.5") == "12.5" and rv.fmt("abc") == "–" and rv.fmt(None) == "–"
