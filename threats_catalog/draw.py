@@ -272,7 +272,8 @@ def _edge_extent(G: nx.DiGraph, boxes: Mapping[str, _Box], spine_y: float) -> tu
 
 def _edge_svg(
     G: nx.DiGraph, boxes: Mapping[str, _Box], u: str, v: str, severity: str | None, spine_y: float, ids: str
-) -> list[str]:
+) -> tuple[list[str], list[str]]:
+    """The edge's path and, separately, its threat-code label (drawn last so nodes never hide it)."""
     x1, y1, cx, cy, x2, y2, bow = _edge_geometry(G, boxes, u, v, spine_y)
     data = G.edges[u, v]
     codes = list(data.get("threats", []))
@@ -303,19 +304,20 @@ def _edge_svg(
         if codes
         else ("team" if data.get("team") else "")
     )
+    tag: list[str] = []
     if label:
         lx = 0.25 * x1 + 0.5 * cx + 0.25 * x2 if bow else (x1 + x2) / 2
         ly = (0.25 * y1 + 0.5 * cy + 0.25 * y2 if bow else (y1 + y2) / 2) - 6
         tw = _text_width(label, 9.5) + 8
-        out.append(
+        tag.append(
             f'<rect x="{lx - tw / 2:.1f}" y="{ly - 10:.1f}" width="{tw:.1f}" height="14" rx="3" fill="{PAPER}" '
             f'fill-opacity="0.92" stroke="{MUTED}" stroke-width="0.6"/>'
         )
-        out.append(
+        tag.append(
             f'<text x="{lx:.1f}" y="{ly + 1:.1f}" text-anchor="middle" font-size="9.5" '
             f'font-family="DejaVu Sans Mono, monospace" fill="{INK}">{esc(label)}</text>'
         )
-    return out
+    return out, tag
 
 
 def _glyph(value: str, x: float, y: float) -> str:
@@ -522,10 +524,14 @@ def render_svg(G: nx.DiGraph, verdict: GraphVerdict | None, *, title: str | None
             f"{esc(f'Conditional instrument {crit}, conditioning on {given}.')}</text>"
         )
 
+    tags: list[str] = []
     for u, v in sorted(G.edges, key=lambda e: (severity.get(e) is not None, e)):
-        body.extend(_edge_svg(G, boxes, u, v, severity.get((u, v)), spine_y, ids))
+        line, tag = _edge_svg(G, boxes, u, v, severity.get((u, v)), spine_y, ids)
+        body.extend(line)
+        tags.extend(tag)
     for node in sorted(boxes):
         body.extend(_node_svg(boxes[node], ids))
+    body.extend(tags)
 
     y = bottom + 8
     if verdict is not None:

@@ -115,7 +115,7 @@ def build_graph(
     G.graph.update(roles={"instrument": instrument, "treatment": treatment, "outcome": outcome}, threats={})
     for role, name in roles.items():
         G.add_node(name, role=role, observed=role != "unobserved", label=name, selection=False, threats=[])
-    G.nodes[confounder]["label"] = "unmeasured causes of X and Y"
+    G.nodes[confounder]["label"] = f"unmeasured causes of {treatment} and {outcome}"
     for u, v in (
         (instrument, treatment),
         (treatment, outcome),
