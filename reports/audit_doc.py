@@ -86,9 +86,7 @@ def _study_row(a: StudyAudit) -> list[str]:
     f_text = f"{_num(rep.first_stage_f)} ({mt.inline(rep.f_kind)})" if rep.first_stage_f is not None else "–"
     tf = a.tf
     tf_text = (
-        f"c = {_num(tf.critical_value, 3)}; {_interval(*tf.interval)}"
-        if tf.applicable and tf.interval
-        else "–"
+        f"c = {_num(tf.critical_value)}; {_interval(*tf.interval)}" if tf.applicable and tf.interval else "–"
     )
     ar = a.ar
     ar_text = f"{_set_text(ar.set_95)} ({ar.cov_source})" if ar.applicable else "–"
