@@ -11,6 +11,10 @@ Conventions (stated here once):
 * F-form Wald statistics are Wald / q with q restrictions; their p-values use F(q, d) with
   d = n - k - n_partialled for the unadjusted and robust covariances and d = G - 1 (G the smallest number of
   clusters) for cluster covariances (common practice).
+* Effective F (Montiel Olea and Pflueger 2013) uses V_pi from ``sandwich`` with its small-sample factors, so
+  with one instrument it equals the robust first-stage F exactly; its critical values come from the
+  simplified conservative procedure with K_eff computed from S = (Z'Z)^{1/2} V_pi (Z'Z)^{1/2} and refer to the
+  2SLS Nagar-bias benchmark.
 * Cragg–Donald F is the smallest eigenvalue of Sigma^{-1/2} X'P_Z X Sigma^{-1/2} / k with
   Sigma = X'M_Z X / (n - k - n_partialled) (Stock and Yogo 2005).
 * Kleibergen–Paap rk Wald F is the rk Wald statistic for rank p - 1 (Kleibergen and Paap 2006) divided by k,
