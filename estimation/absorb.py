@@ -171,37 +171,68 @@ def centred_norms(values: Array, weights: Array | None = None) -> Array:
     return out
 
 
+def _columns(values: np.ndarray | Sequence[np.ndarray] | None, n: int | None) -> list[np.ndarray]:
+    """Split a 1-D array, a 2-D array or a list of 1-D arrays into a list of 1-D columns (no copy)."""
+    if values is None:
+        return []
+    if isinstance(values, np.ndarray):
+        return [values] if values.ndim == 1 else [values[:, j] for j in range(values.shape[1])]
+    return [np.asarray(v) for v in values]
+
+
+def _project_out(t: Array, cc: Array, norms: Array) -> tuple[Array, list[int]]:
+    """Residualise t on the columns of cc; returns the residuals and the positions of collinear columns.
+
+    Fast path: Cholesky of the column-scaled Gram matrix, used only when it is well conditioned (every
+    diagonal element of the factor above 1e-3, i.e. no column has R^2 above 1 - 1e-6 on the ones before it).
+    Otherwise a Householder QR in the given column order detects collinear columns and projects exactly.
+    """
+    s = 1.0 / norms
+    gram = (cc.T @ cc) * np.outer(s, s)
+    try:
+        chol = np.linalg.cholesky(gram)
+        fast = bool(np.diag(chol).min() > 1e-3)
+    except np.linalg.LinAlgError:
+        fast = False
+    if fast:
+        coef = scipy.linalg.cho_solve((chol, True), (cc.T @ t) * s[:, None], check_finite=False) * s[:, None]
+        return t - cc @ coef, []
+    q, r = np.linalg.qr(cc)
+    keep = np.abs(np.diag(r)) > COLLINEAR_TOL * norms
+    if not keep.all():
+        q, _ = np.linalg.qr(cc[:, keep])
+    return t - q @ (q.T @ t), [i for i in range(cc.shape[1]) if not keep[i]]
+
+
 def partial_out(
-    targets: np.ndarray,
+    targets: np.ndarray | Sequence[np.ndarray],
     *,
-    controls: np.ndarray | None = None,
+    controls: np.ndarray | Sequence[np.ndarray] | None = None,
     fe_codes: Sequence[np.ndarray] = (),
     weights: np.ndarray | None = None,
     cluster_codes: Sequence[np.ndarray] = (),
     tol: float = DEFAULT_TOL,
     max_iter: int = DEFAULT_MAX_ITER,
 ) -> Absorbed:
-    """Residualise ``targets`` (n x p) on an intercept, ``controls`` (n x c) and the fixed effects.
+    """Residualise ``targets`` (n x p, or a list of p columns) on an intercept, ``controls`` and fixed effects.
 
     The intercept is implied: by the fixed effects when present, otherwise added explicitly. Weighted
-    projections use ``weights``; the returned columns are multiplied by sqrt(w). ``dropped_controls`` lists
-    the controls that are constant, absorbed by the fixed effects or collinear with earlier controls; they are
-    left out of the projection and of the degrees of freedom (the caller decides whether that is an error).
+    projections use ``weights``; the returned columns (Fortran order) are multiplied by sqrt(w).
+    ``dropped_controls`` lists the controls that are constant, absorbed by the fixed effects or collinear
+    with earlier controls; they are left out of the projection and of the degrees of freedom (the caller
+    decides whether that is an error).
     """
-    tg = np.asarray(targets, dtype=np.float64)
-    if tg.ndim == 1:
-        tg = tg[:, None]
-    n, p = tg.shape
-    cn = np.zeros((n, 0)) if controls is None else np.asarray(controls, dtype=np.float64)
-    if cn.ndim == 1:
-        cn = cn[:, None]
-    k_c = cn.shape[1]
+    t_cols = _columns(targets, None)
+    c_cols = _columns(controls, None)
+    n = t_cols[0].shape[0]
+    p, k_c = len(t_cols), len(c_cols)
     both = np.empty((n, p + k_c), dtype=np.float64, order="F")
-    both[:, :p] = tg
-    both[:, p:] = cn
+    for j, col in enumerate(t_cols + c_cols):
+        both[:, j] = col
+    del t_cols, c_cols
     w = None if weights is None else np.asarray(weights, dtype=np.float64)
-    pre = centred_norms(both, w)
     if fe_codes:
+        pre = centred_norms(both, w)
         iterations = demean(both, fe_codes, w, tol=tol, max_iter=max_iter)
         n_absorbed, n_nested = absorbed_df(fe_codes, cluster_codes)
         n_intercept = 0
@@ -210,6 +241,10 @@ def partial_out(
         wsum = float(n) if w is None else float(w.sum())
         means = (both.sum(axis=0) if w is None else w @ both) / wsum
         both -= means[None, :]
+        if w is None:
+            pre = np.sqrt(np.einsum("ij,ij->j", both, both))
+        else:
+            pre = np.sqrt(np.einsum("ij,ij,i->j", both, both, w))
         n_absorbed, n_nested = 0, 0
         n_intercept = 1
     if w is not None:
@@ -222,17 +257,13 @@ def partial_out(
         alive = [j for j in range(k_c) if after_fe[j] > COLLINEAR_TOL * pre[p + j] and pre[p + j] > 0]
         dropped = [j for j in range(k_c) if j not in alive]
         if alive:
-            sub = cc[:, alive]
-            q, r = np.linalg.qr(sub)
-            keep = np.abs(np.diag(r)) > COLLINEAR_TOL * after_fe[np.asarray(alive)]
-            dropped += [alive[i] for i in range(len(alive)) if not keep[i]]
-            if not keep.all():
-                q, _ = np.linalg.qr(sub[:, keep])
-            t = t - q @ (q.T @ t)
+            sub = cc if len(alive) == k_c else cc[:, alive]
+            t, bad = _project_out(t, sub, after_fe[np.asarray(alive)])
+            dropped += [alive[i] for i in bad]
     fe_levels = tuple(count_levels(cd) for cd in fe_codes)
     n_used_controls = k_c - len(dropped)
     return Absorbed(
-        columns=np.ascontiguousarray(t),
+        columns=np.asfortranarray(t),
         n_partialled=n_intercept + n_used_controls + n_absorbed,
         n_controls=n_used_controls,
         n_absorbed=n_absorbed,

@@ -17,11 +17,11 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from ivdossier.estimation.absorb import DEFAULT_MAX_ITER, DEFAULT_TOL, partial_out
-from ivdossier.estimation.estimators import collinear_columns
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.estimation.absorb import DEFAULT_MAX_ITER, DEFAULT_TOL, partial_out
+from ivdossier.estimation.estimators import collinear_columns
 
 Array = NDArray[np.float64]
 READERS = {".csv": "CSV", ".parquet": "Parquet", ".dta": "Stata .dta"}
@@ -242,19 +242,19 @@ def prepare(
     for name, col in zip(inst, cols[1 + k : 1 + k + n_inst], strict=True):
         if np.ptp(col) == 0:
             raise EstimationError(f"Instrument {name!r} is constant in the used rows; drop it.")
-    targets = np.column_stack(cols[: 1 + k + n_inst])
-    controls_mat = np.column_stack(cols[1 + k + n_inst :]) if ctrl else None
+    targets = cols[: 1 + k + n_inst]
+    controls_cols = cols[1 + k + n_inst :]
     del cols
     absorbed = partial_out(
         targets,
-        controls=controls_mat,
+        controls=controls_cols or None,
         fe_codes=fe_codes,
         weights=w,
         cluster_codes=cl_codes,
         tol=tol,
         max_iter=max_iter,
     )
-    del targets, controls_mat
+    del targets, controls_cols
     if absorbed.dropped_controls:
         listed = ", ".join(repr(ctrl[j]) for j in absorbed.dropped_controls)
         raise EstimationError(
