@@ -112,7 +112,7 @@ def main() -> None:
 
         def reference() -> Any:
             exog = pd.concat([pd.Series(1.0, index=df.index, name="const"), df[controls]], axis=1)
-            fit = IV2SLS(df["y"], exog, df["x"], df[["z1", "z2"]]).fit(
+            fit: Any = IV2SLS(df["y"], exog, df["x"], df[["z1", "z2"]]).fit(
                 cov_type="clustered", clusters=df["cluster"].to_numpy(), debiased=True
             )
             diag = fit.first_stage.diagnostics
