@@ -405,3 +405,14 @@ def test_truncated_path_listing_never_hides_a_failed_criterion(monkeypatch: pyte
     assert not v.criterion_holds  # decided by d-separation, not by the (empty) listing
     assert v.value("exclusion") == "at-risk"
     assert "path listing stopped early" in v.condition("exclusion").reasons[-1]
+
+
+def test_hand_made_graph_without_attributes_is_read_as_drawn() -> None:
+    # A plain networkx graph: every edge counts as asserted, so an open bypass path breaks exclusion, and a graph
+    # without one holds (the team drew it, so it was considered).
+    plain = nx.DiGraph([("Z", "X"), ("X", "Y"), ("U", "X"), ("U", "Y"), ("Z", "M"), ("M", "Y")])
+    nx.set_node_attributes(plain, {n: n != "U" for n in plain}, "observed")
+    v = verdict(plain)
+    assert v.value("exclusion") == "broken" and v.open_paths[0].severity == "broken"
+    plain.remove_node("M")
+    assert verdict(plain).value("exclusion") == "holds"

@@ -637,10 +637,12 @@ def _describe(
         for code in data.get("threats", []):
             if code not in codes:
                 codes.append(code)
+        # an edge no threat drew (base, team-drawn, or from a hand-made graph) is asserted as drawn
+        edge_codes = data.get("threats", [])
         edge_asserted = (
-            data.get("base", False)
+            not edge_codes
             or data.get("team", False)
-            or any(states.get(c, "open") in ASSERTED_STATES for c in data.get("threats", []))
+            or any(states.get(c, "open") in ASSERTED_STATES for c in edge_codes)
         )
         asserted = asserted and edge_asserted
     is_open = True
@@ -739,7 +741,8 @@ def _path_verdict(
     elif risky_paths or graphless:
         value = "at-risk"
     else:
-        team_drawn = any(d.get("team") for _, _, d in G.edges(data=True))
+        # hand-made graphs (edges without build_graph's attributes) count as drawn by the team
+        team_drawn = any(d.get("team") or "base" not in d for _, _, d in G.edges(data=True))
         considered = [c for c, d in info.items() if d["condition"] == condition]
         if not considered and not team_drawn:
             return ConditionVerdict(
