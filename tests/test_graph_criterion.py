@@ -1,6 +1,6 @@
 """The conditional instrument criterion and the per-condition verdicts on textbook graph configurations.
 
-Definition (Pearl 2009, Causality, 2nd ed., sec. 7.4.5; Brito and Pearl 2002, "Generalized instrumental
+Definition (Pearl 2009, Causality, 2nd ed., ch. 7; Brito and Pearl 2002, "Generalized instrumental
 variables"), total-effect form: Z is an instrument for X -> Y given W when W has no descendant of X or Y,
 W d-separates Z from Y once the edges out of X are removed, and W does not d-separate Z from X. Every expected
 verdict below follows from that definition by hand; each graph is also re-checked with networkx's own

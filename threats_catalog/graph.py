@@ -1,6 +1,6 @@
 """Causal-graph checker: build the instrument's graph from threat fragments and test the instrument criterion.
 
-The criterion used is the conditional instrument definition (Pearl 2009, Causality, sec. 7.4.5; Brito and
+The criterion used is the conditional instrument definition (Pearl 2009, Causality, 2nd ed., ch. 7; Brito and
 Pearl 2002) in its total-effect form: Z is an instrument for the effect of X on Y given a set W when
 
 1. W holds no descendant of X or Y (and never X, Y or Z themselves);
@@ -31,6 +31,11 @@ Verdict per condition (the graph part; statistics come from the estimation layer
   link is open, mitigated, accepted or suggested; else ``holds`` (``ivdossier estimate`` judges strength).
 * monotonicity: a graph cannot express defiers, so the value comes from links alone: fatal -> broken; any
   open, mitigated, accepted or suggested -> at-risk; only rebutted links -> holds; no links -> not-assessed.
+
+Other rules: nodes flagged ``selection`` are always conditioned on; conditioning on an unobserved node (or on
+Z, X, Y) raises InvalidInputError; the criterion itself is decided by d-separation, while the path listing (for
+explanation) stops after 200 open or 20,000 visited paths and then says so. Edges that no threat drew (base,
+team-drawn, or a hand-made ``nx.DiGraph`` without our attributes) count as asserted.
 """
 
 from __future__ import annotations
