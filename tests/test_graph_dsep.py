@@ -1,7 +1,7 @@
 """Our d-separation against the textbook rules and against networkx's own implementation.
 
-Rules for chains, forks and colliders: Pearl (2009), Causality, 2nd ed., ch. 1, definition of d-separation (section number from memory: 1.2.3). The
-property test compares with ``networkx.is_d_separator`` (networkx >= 3.3; ``d_separated`` in older releases),
+Rules for chains, forks and colliders: Pearl (2009), Causality, 2nd ed., ch. 1, definition of d-separation
+(section number from memory: 1.2.3). The property test compares with ``networkx.is_d_separator`` (networkx >= 3.3; ``d_separated`` in older releases),
 which is an implementation independent of ours.
 """
 
