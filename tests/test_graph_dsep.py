@@ -1,8 +1,8 @@
 """Our d-separation against the textbook rules and against networkx's own implementation.
 
 Rules for chains, forks and colliders: Pearl (2009), Causality, 2nd ed., ch. 1, definition of d-separation
-(section number from memory: 1.2.3). The property test compares with ``networkx.is_d_separator`` (networkx >= 3.3; ``d_separated`` in older releases),
-which is an implementation independent of ours.
+(section number from memory: 1.2.3). The property test compares with ``networkx.is_d_separator``
+(networkx >= 3.3; ``d_separated`` in older releases), an implementation independent of ours.
 """
 
 from __future__ import annotations
