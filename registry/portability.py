@@ -347,7 +347,8 @@ class Problems:
     items: list[str] = field(default_factory=list)
 
     def add(self, message: str) -> None:
-        self.items.append(message)
+        # File names and values come from the folder: escape anything unprintable so the error stays one line.
+        self.items.append("".join(c if c.isprintable() else repr(c)[1:-1] for c in message))
 
     def raise_if_any(self, directory: Path) -> None:
         if not self.items:
