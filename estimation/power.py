@@ -116,7 +116,8 @@ def iv_design(
     """Validate a planned design, converting an expected first-stage F to a partial R^2 when needed.
 
     Give exactly one of ``partial_r2`` or ``first_stage_f`` (read as the expected first-stage F, E[F], and
-    converted to R2 by inverting the mean of the noncentral F), and one of ``residual_sd`` (sigma_u) or
+    converted to R2 by inverting the mean of the noncentral F; with clusters it is the F of the
+    cluster-robust test, noncentrality lambda / DEFF), and one of ``residual_sd`` (sigma_u) or
     ``outcome_sd`` (used as sigma_u: an approximation, conservative when the treatment and controls explain
     part of Y and confounding is modest).
     """
@@ -156,7 +157,10 @@ def iv_design(
                 f"first_stage_f = {first_stage_f} is not above {floor:.3f}, the mean F with an irrelevant "
                 "instrument; give a larger expected F or a partial_r2."
             )
-        lam = first_stage_f * n_instruments * (df2 - 2.0) / df2 - n_instruments
+        # E[F] = df2/(df2-2) (k + lambda/DEFF)/k, so the given F round-trips through expected_first_stage
+        lam = (first_stage_f * n_instruments * (df2 - 2.0) / df2 - n_instruments) * (
+            1.0 + (cluster_size - 1.0) * icc
+        )
         r2 = lam / (n + lam)
         r2_source = f"from expected first-stage F = {first_stage_f:g}"
     if (residual_sd is None) == (outcome_sd is None):
@@ -312,7 +316,7 @@ class PowerAnalysis:
     target_power: float
     mde: float
     n_required: int | None
-    clusters_required: float | None
+    clusters_required: int | None
     first_stage: FirstStageOutlook
     formula: str
     assumptions: tuple[str, ...]
@@ -360,7 +364,7 @@ def power_analysis(
         target_power=target_power,
         mde=mde_2sls(design, power=target_power),
         n_required=n_req,
-        clusters_required=None if n_req is None else n_req / design.cluster_size,
+        clusters_required=None if n_req is None else math.ceil(n_req / design.cluster_size - 1e-9),
         first_stage=expected_first_stage(design),
         formula=FORMULA,
         assumptions=ASSUMPTIONS,

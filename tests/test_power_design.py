@@ -86,6 +86,15 @@ def test_first_stage_f_input_round_trips_to_expected_f() -> None:
     assert stats.ncf.mean(2, design.df2, outlook.noncentrality) == pytest.approx(20.0, rel=1e-10)
 
 
+def test_first_stage_f_input_round_trips_with_clusters() -> None:
+    # the given F is read as the expected F of the (cluster-robust) test the plan will use (module docstring)
+    design = iv_design(n=1200, first_stage_f=15.0, residual_sd=1.0, cluster_size=8, icc=0.1)
+    assert expected_first_stage(design).expected_f == pytest.approx(15.0, rel=1e-10)
+    analysis = power_analysis(design, effect=0.2)
+    assert analysis.n_required is not None and analysis.clusters_required is not None
+    assert analysis.clusters_required * 8 >= analysis.n_required > (analysis.clusters_required - 1) * 8
+
+
 def test_outlook_uses_published_critical_values() -> None:
     design = iv_design(n=400, partial_r2=0.05, residual_sd=1.0)
     outlook = expected_first_stage(design)
