@@ -65,21 +65,25 @@ def count_levels(codes: np.ndarray) -> int:
 
 
 def bipartite_components(a: np.ndarray, b: np.ndarray) -> int:
-    """Connected components of the graph whose nodes are the levels of a and b and whose edges are rows."""
-    _, ia = np.unique(a, return_inverse=True)
-    _, ib = np.unique(b, return_inverse=True)
-    na, nb = int(ia.max()) + 1, int(ib.max()) + 1
-    graph = scipy.sparse.coo_matrix(
-        (np.ones(ia.size, dtype=np.int8), (ia.ravel(), ib.ravel() + na)), shape=(na + nb, na + nb)
-    ).tocsr()
+    """Connected components of the graph whose nodes are the levels of a and b and whose edges are rows.
+
+    Codes are non-negative integers; codes that never occur are not nodes (they are not counted).
+    """
+    na, nb = int(a.max()) + 1, int(b.max()) + 1
+    graph = scipy.sparse.csr_matrix(
+        (np.ones(a.size, dtype=np.int8), (a.astype(np.int64), b.astype(np.int64) + na)),
+        shape=(na + nb, na + nb),
+    )
     n_comp, _ = connected_components(graph, directed=False)
-    return int(n_comp)
+    absent = (na - count_levels(a)) + (nb - count_levels(b))
+    return int(n_comp) - absent
 
 
 def is_nested(inner: np.ndarray, outer: np.ndarray) -> bool:
     """True when every level of ``inner`` lies within a single level of ``outer``."""
-    pairs = inner.astype(np.int64) * (int(outer.max()) + 1) + outer.astype(np.int64)
-    return int(np.unique(pairs).size) == count_levels(inner)
+    first = np.zeros(int(inner.max()) + 1, dtype=np.int64)
+    first[inner] = outer  # one representative outer code per inner level
+    return bool(np.array_equal(first[inner], outer))
 
 
 def absorbed_df(fe_codes: Sequence[np.ndarray], cluster_codes: Sequence[np.ndarray] = ()) -> tuple[int, int]:
@@ -100,16 +104,12 @@ def absorbed_df(fe_codes: Sequence[np.ndarray], cluster_codes: Sequence[np.ndarr
     return int(sum(contrib)), int(nested)
 
 
-def _group_means(codes: np.ndarray, values: Array, w: Array | None, wsum: Array) -> Array:
-    g = wsum.shape[0]
-    out = np.empty((g, values.shape[1]))
-    for j in range(values.shape[1]):
-        col = values[:, j] if w is None else values[:, j] * w
-        out[:, j] = np.bincount(codes, weights=col, minlength=g)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        out /= wsum[:, None]
-    out[~np.isfinite(out)] = 0.0
-    return out
+def _subtract_group_means(col: Array, codes: np.ndarray, weights: Array | None, inv_wsum: Array) -> float:
+    """Subtract the (weighted) group means from one column in place; returns the largest absolute mean."""
+    sums = np.bincount(codes, weights=col if weights is None else col * weights, minlength=inv_wsum.shape[0])
+    means = sums * inv_wsum
+    col -= means[codes]
+    return float(np.abs(means).max()) if means.size else 0.0
 
 
 def demean(
@@ -120,11 +120,11 @@ def demean(
     tol: float = DEFAULT_TOL,
     max_iter: int = DEFAULT_MAX_ITER,
 ) -> int:
-    """Remove the fixed effects from the columns of ``values`` in place; returns the number of sweeps.
+    """Remove the fixed effects from the columns of ``values`` in place; returns the most sweeps a column took.
 
-    One fixed effect: one exact (weighted) demeaning. Several: alternating projections until the largest
-    absolute change of a column in a sweep is below ``tol`` times that column's largest absolute value (or tol
-    itself for a zero column); raises EstimationError after ``max_iter`` sweeps.
+    One fixed effect: one exact (weighted) demeaning. Several: alternating projections, column by column,
+    until the largest absolute change of the column in a sweep is below ``tol`` times the larger of 1 and the
+    column's largest absolute value; raises EstimationError after ``max_iter`` sweeps.
     """
     if not fe_codes:
         return 0
@@ -132,23 +132,27 @@ def demean(
         np.asarray(np.bincount(c) if weights is None else np.bincount(c, weights=weights), dtype=np.float64)
         for c in fe_codes
     ]
+    inv_w = [np.where(ws > 0, 1.0 / np.where(ws > 0, ws, 1.0), 0.0) for ws in wsums]
     if len(fe_codes) == 1:
-        values -= _group_means(fe_codes[0], values, weights, wsums[0])[fe_codes[0]]
+        for jcol in range(values.shape[1]):
+            _subtract_group_means(values[:, jcol], fe_codes[0], weights, inv_w[0])
         return 1
-    scale = np.maximum(np.abs(values).max(axis=0), 1.0) if values.size else np.ones(values.shape[1])
-    active = np.arange(values.shape[1])
-    for sweep in range(1, max_iter + 1):
-        sub = values[:, active]
-        change = np.zeros(active.size)
-        for codes, wsum in zip(fe_codes, wsums, strict=True):
-            means = _group_means(codes, sub, weights, wsum)
-            sub -= means[codes]
-            change = np.maximum(change, np.abs(means).max(axis=0))
-        values[:, active] = sub
-        done = change <= tol * scale[active]
-        active = active[~done]
-        if active.size == 0:
-            return sweep
+    worst = 0
+    for jcol in range(values.shape[1]):
+        col = values[:, jcol]
+        limit = tol * max(float(np.abs(col).max()) if col.size else 0.0, 1.0)
+        for sweep in range(1, max_iter + 1):
+            change = 0.0
+            for codes, iw in zip(fe_codes, inv_w, strict=True):
+                change = max(change, _subtract_group_means(col, codes, weights, iw))
+            if change <= limit:
+                worst = max(worst, sweep)
+                break
+        else:
+            worst = -1
+            break
+    if worst >= 0:
+        return worst
     raise EstimationError(
         f"Absorbing {len(fe_codes)} fixed effects did not converge within {max_iter} sweeps "
         f"(tolerance {tol:g}); "

@@ -107,8 +107,14 @@ def group_sums(codes: np.ndarray, values: np.ndarray) -> Array:
 def intersection_codes(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Codes 0..G12-1 of the intersection clusters of two cluster code arrays."""
     combined = a.astype(np.int64) * (int(b.max()) + 1) + b.astype(np.int64)
+    top = int(combined.max()) + 1 if combined.size else 0
+    if top <= 8 * combined.size + 1024:  # dense enough: rank the codes with a boolean table, no sort
+        present = np.zeros(top, dtype=bool)
+        present[combined] = True
+        rank = np.cumsum(present) - 1
+        return np.asarray(rank[combined], dtype=np.int64)
     _, inv = np.unique(combined, return_inverse=True)
-    return inv.astype(np.int64).ravel()
+    return np.asarray(inv, dtype=np.int64).ravel()
 
 
 def _cluster_meat(scores: Array, codes: np.ndarray) -> tuple[Array, int]:
