@@ -576,6 +576,25 @@ def zero_first_stage(
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     sub, label = _select_subsample(data, subsample, query)
     inst = as_names(instruments, "instruments")
+    treated = pd.to_numeric(sub[treatment], errors="coerce") if treatment in sub.columns else None
+    if treated is not None and treated.nunique(dropna=True) == 1:
+        # The treatment cannot respond at all in the subsample (e.g. nobody there can take it up): the first
+        # stage is exactly zero, the cleanest case of the design, and only the reduced form is estimated.
+        return _zero_first_stage_exact(
+            sub,
+            label=label,
+            n_full=len(data),
+            outcome=outcome,
+            treatment=treatment,
+            instruments=inst,
+            controls=controls,
+            absorb=absorb,
+            cluster=cluster,
+            weights=weights,
+            vcov=vcov,
+            small_sample=small_sample,
+            alpha=alpha,
+        )
     st = _stacked(
         sub,
         targets=(treatment, outcome),
@@ -613,12 +632,88 @@ def zero_first_stage(
         reduced_form=reduced,
         prior_mu=tuple(map(float, st.coef[1])),
         prior_omega=tuple(tuple(map(float, r)) for r in omega),
-        assumption=(
-            "in the subsample the treatment does not respond to the instrument, so the reduced form of the "
-            "outcome on the instrument is its direct effect; that direct effect is assumed equal in the "
-            "analysis sample (prior mean = subsample reduced form, prior covariance = its sampling covariance)"
-        ),
+        assumption=ZERO_FIRST_STAGE_ASSUMPTION,
         warning=warning,
+        vcov=vcov,
+        alpha=alpha,
+        caution=CAUTION,
+    )
+
+
+ZERO_FIRST_STAGE_ASSUMPTION = (
+    "in the subsample the treatment does not respond to the instrument, so the reduced form of the "
+    "outcome on the instrument is its direct effect; that direct effect is assumed equal in the "
+    "analysis sample (prior mean = subsample reduced form, prior covariance = its sampling covariance)"
+)
+
+
+def _zero_first_stage_exact(
+    sub: pd.DataFrame,
+    *,
+    label: str,
+    n_full: int,
+    outcome: str,
+    treatment: str,
+    instruments: tuple[str, ...],
+    controls: str | Sequence[str],
+    absorb: str | Sequence[str],
+    cluster: str | Sequence[str] | None,
+    weights: str | None,
+    vcov: str,
+    small_sample: bool,
+    alpha: float,
+) -> ZeroFirstStageResult:
+    """The subsample's treatment is constant: report a first stage of exactly zero and the reduced form."""
+    st = _stacked(
+        sub,
+        targets=(outcome,),
+        instruments=instruments,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+    )
+    (reduced,) = _rows(st, std_diff=False)
+    zero = tuple(
+        InstrumentCoefficient(
+            instrument=z,
+            coef=0.0,
+            se=0.0,
+            t=float("nan"),
+            p_value=1.0,
+            ci_lower=0.0,
+            ci_upper=0.0,
+            std_diff=float("nan"),
+            std_diff_kind="not computed: the treatment is constant in the subsample",
+        )
+        for z in instruments
+    )
+    first = TargetRegression(
+        target=treatment,
+        coefficients=zero,
+        wald=0.0,
+        wald_df=len(instruments),
+        wald_p_value=1.0,
+        f=0.0,
+        n=st.n,
+    )
+    return ZeroFirstStageResult(
+        subsample=label,
+        n=st.n,
+        n_dropped=st.n_dropped,
+        n_full=n_full,
+        instruments=instruments,
+        first_stage=first,
+        first_stage_p_value=1.0,
+        reduced_form=reduced,
+        prior_mu=tuple(map(float, st.coef[0])),
+        prior_omega=tuple(tuple(map(float, r)) for r in st.cov),
+        assumption=ZERO_FIRST_STAGE_ASSUMPTION + f"; here {treatment!r} is constant in the subsample, so the "
+        "first stage is exactly zero",
+        warning=None,
         vcov=vcov,
         alpha=alpha,
         caution=CAUTION,
