@@ -11,15 +11,15 @@ from typing import Any, cast
 
 import numpy as np
 import pandas as pd
+from numpy.typing import NDArray
+from scipy import stats
+
+from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.absorb import partial_out
 from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import METHODS, KClassFit, fit_kclass
 from ivdossier.estimation.result import EstimationResult
-from numpy.typing import NDArray
-from scipy import stats
-
-from ivdossier.errors import InvalidInputError
 
 Array = NDArray[np.float64]
 
@@ -127,7 +127,7 @@ def estimate(
 
 def _interval_quantile(
     vcov: str, small_sample: bool, df_resid: int, n_clusters: tuple[int, ...], alpha: float
-):
+) -> tuple[float, str]:
     if not small_sample:
         return float(stats.norm.ppf(1 - alpha / 2)), "normal quantiles"
     if vcov == "cluster":

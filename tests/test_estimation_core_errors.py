@@ -7,9 +7,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from ivdossier.estimation import estimate, file_sha256, load_table
 
 from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.estimation import estimate, file_sha256, load_table
 
 
 @pytest.fixture

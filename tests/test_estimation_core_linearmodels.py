@@ -115,6 +115,7 @@ def simulated() -> pd.DataFrame:
             "firm": firm,
             "year": year,
             "wt": rng.uniform(0.5, 2.0, n),
+            "zone": rng.integers(0, 20, n),  # crosses firm and year, so neither fixed effect is nested in it
         }
     )
 
@@ -326,3 +327,37 @@ def test_ols_matches_linearmodels_ols(simulated):
         cov_type="clustered", clusters=simulated["firm"].to_numpy(), debiased=True
     )
     assert_matches(ours, ref, ["x1", "x2"])
+
+
+@pytest.mark.parametrize("method", ["2sls", "fuller"])
+def test_absorbed_fixed_effects_with_non_nested_cluster(simulated, method):
+    # source: linearmodels IV2SLS / IVLIML(fuller=1) with firm and year dummies, clustered on zone, debiased=True;
+    # zone nests neither fixed effect, so both programs count all 67 absorbed levels in the cluster factor
+    kwargs: dict[str, Any] = dict(outcome="y", instruments=["z1", "z2", "z3"], controls=["w1"], method=method)
+    ours = estimate(
+        simulated, treatment=["x1", "x2"], absorb=["firm", "year"], cluster="zone", vcov="cluster", **kwargs
+    )
+    ref = reference_fit(
+        simulated,
+        treatment=["x1", "x2"],
+        dummies=["firm", "year"],
+        cluster=["zone"],
+        vcov="cluster",
+        **kwargs,
+    )
+    assert_matches(ours, ref, ["x1", "x2"])
+    assert ours.n_absorbed_nested == 0
+
+
+def test_wage2_listwise_deletion_matches_linearmodels():
+    # source: linearmodels IV2SLS on Wooldridge WAGE2 after dropna over the used columns, robust, debiased=True;
+    # brthord and meduc have missing values, so rows are dropped listwise in both programs
+    wage2 = wooldridge.data("wage2")
+    spec: dict[str, Any] = dict(outcome="lwage", instruments=["sibs", "brthord", "meduc"])
+    ours = estimate(wage2, treatment="educ", controls=["exper", "tenure", "black"], **spec)
+    ref = reference_fit(
+        wage2, treatment=["educ"], controls=["exper", "tenure", "black"], vcov="robust", **spec
+    )
+    assert_matches(ours, ref, ["educ"])
+    assert ours.n == int(ref.nobs)
+    assert ours.n_dropped == len(wage2) - int(ref.nobs) > 0
