@@ -319,7 +319,7 @@ def anderson_rubin(
     m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
     stat = _ar_wald(m, float(b0[0])) / k
     crit = k * float(stats.f.ppf(1 - alpha, k, d))
-    intervals, how = ar_confidence_set(m, crit, spec.kind)
+    intervals, how = _ar_confidence_set(m, crit, spec.kind)
     return AndersonRubin(
         null=(float(b0[0]),),
         statistic=stat,
@@ -334,7 +334,7 @@ def anderson_rubin(
     )
 
 
-def ar_confidence_set(m: _Moments, crit: float, kind: str) -> tuple[list[Interval], str]:
+def _ar_confidence_set(m: _Moments, crit: float, kind: str) -> tuple[list[Interval], str]:
     """Invert AR(b) <= crit (Wald units): analytic quadratic when possible, else angle grid plus brentq."""
     if m.k == 1 or kind == "unadjusted":
         q = m.zz
