@@ -10,6 +10,8 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from ivdossier.reports.inputs import RunInfo
+
 Interval = tuple[float, float]
 
 _VALUE_KEYS = ("statistic", "value", "stat", "f", "estimate", "effective_f", "f_eff")
@@ -246,3 +248,33 @@ def parse_fmt(text: str) -> float:
     """Inverse of `fmt` for tests and tooling: reads the true minus and infinity back."""
     cleaned = text.replace("−", "-").replace("∞", "inf")
     return float(cleaned)
+
+
+def get(mapping: Mapping[str, Any] | None, *keys: str | None) -> Any:
+    """The nested value at `keys`, or None when any level is missing."""
+    node: Any = mapping
+    for key in keys:
+        if not isinstance(node, Mapping) or key is None:
+            return None
+        node = node.get(key)
+    return node
+
+
+def treatment_name(run: RunInfo, fallback: str = "") -> str | None:
+    """The coefficient name of the treatment in a run: spec treatment/endogenous, the program's, or the first."""
+    coef = run.results.get("coef")
+    names = list(coef) if isinstance(coef, Mapping) else []
+    candidates: list[str] = []
+    specs = [run.spec, run.results.get("spec") if isinstance(run.results.get("spec"), Mapping) else {}]
+    for key, spec in ((k, sp) for sp in specs for k in ("treatment", "endogenous", "endog")):
+        value = spec.get(key)
+        if isinstance(value, str):
+            candidates.append(value)
+        elif isinstance(value, Sequence) and value and isinstance(value[0], str):
+            candidates.append(value[0])
+    if fallback:
+        candidates.append(fallback)
+    for name in candidates:
+        if name in names:
+            return name
+    return names[0] if names else None

@@ -99,9 +99,7 @@ def _render(cell: _Cell, fmt: str) -> str:
 
 
 def _treatment(run: RunInfo, treatment: str | None) -> str | None:
-    from ivdossier.reports.dossier import treatment_name
-
-    return treatment_name(run, treatment or "")
+    return rv.treatment_name(run, treatment or "")
 
 
 def _rows(runs: Sequence[RunInfo], treatment: str | None) -> list[tuple[str, list[_Cell]]]:
