@@ -127,13 +127,11 @@ def estimate(
 
 def _interval_quantile(
     vcov: str, small_sample: bool, df_resid: int, n_clusters: tuple[int, ...], alpha: float
-) -> tuple[float, str]:
-    if not small_sample:
-        return float(stats.norm.ppf(1 - alpha / 2)), "normal quantiles"
-    if vcov == "cluster":
-        g = min(n_clusters)
-        return float(stats.t.ppf(1 - alpha / 2, g - 1)), f"t quantiles with {g - 1} degrees of freedom"
-    return float(stats.t.ppf(1 - alpha / 2, df_resid)), f"t quantiles with {df_resid} degrees of freedom"
+) -> tuple[float, str, int | None]:
+    df = None if not small_sample else (min(n_clusters) - 1 if vcov == "cluster" else df_resid)
+    if df is None:
+        return float(stats.norm.ppf(1 - alpha / 2)), "normal quantiles", None
+    return float(stats.t.ppf(1 - alpha / 2, df)), f"t quantiles with {df} degrees of freedom", df
 
 
 def _load_suite() -> Any:
@@ -170,7 +168,7 @@ def estimate_prepared(
     n, k = prepared.X.shape
     df_resid = n - k - prepared.n_partialled
     n_clusters = spec.n_clusters()
-    q, ci_ref = _interval_quantile(vcov, small_sample, df_resid, n_clusters, alpha)
+    q, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, n_clusters, alpha)
     ci = np.column_stack([fit.beta - q * se, fit.beta + q * se])
     suite = None
     not_applicable = OLS_REASON if method == "ols" else None
@@ -220,6 +218,7 @@ def estimate_prepared(
         n_clusters=n_clusters,
         df_resid=df_resid,
         ci_reference=ci_ref,
+        ref_df=ref_df,
         kappa=fit.kappa,
         kappa_liml=fit.kappa_liml,
         sigma=float(np.sqrt(fit.resid @ fit.resid / df_resid)),

@@ -8,6 +8,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy import stats
 
 Array = NDArray[np.float64]
 DIAGNOSTIC_SECTIONS: tuple[str, ...] = (
@@ -82,6 +83,7 @@ class EstimationResult:
     n_clusters: tuple[int, ...]
     df_resid: int
     ci_reference: str
+    ref_df: int | None
     kappa: float
     kappa_liml: float | None
     sigma: float
@@ -93,6 +95,18 @@ class EstimationResult:
     conventions: dict[str, str] = field(default_factory=dict)
     diagnostics: Any = None
     not_applicable: str | None = None
+
+    @property
+    def tstat(self) -> Array:
+        """Coefficient divided by its standard error (test of a zero effect)."""
+        return np.asarray(self.coef / self.se, dtype=np.float64)
+
+    @property
+    def pvalue(self) -> Array:
+        """Two-sided p-values of a zero effect, from the same reference distribution as the intervals."""
+        t = np.abs(self.tstat)
+        dist = stats.norm if self.ref_df is None else stats.t(self.ref_df)
+        return np.asarray(2 * dist.sf(t), dtype=np.float64)
 
     def coef_of(self, name: str) -> float:
         """Coefficient of one named regressor."""
@@ -128,6 +142,8 @@ class EstimationResult:
             "alpha": self.alpha,
             "df_resid": self.df_resid,
             "ci_reference": self.ci_reference,
+            "t": {k: json_value(v) for k, v in zip(self.names, self.tstat, strict=True)},
+            "p_value": {k: json_value(v) for k, v in zip(self.names, self.pvalue, strict=True)},
             "kappa": json_value(self.kappa),
             "kappa_liml": json_value(self.kappa_liml),
             "sigma": json_value(self.sigma),

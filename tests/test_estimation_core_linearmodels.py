@@ -282,6 +282,8 @@ def test_intervals_use_t_quantiles_like_debiased_linearmodels(card):
     )
     np.testing.assert_allclose(ours.ci[0], ref.conf_int().loc["educ"].to_numpy(), rtol=RTOL)
     assert ours.df_resid == int(ref.df_resid)
+    # source: linearmodels pvalues with debiased=True use t(df_resid), as ours do
+    np.testing.assert_allclose(ours.pvalue, ref.pvalues[["educ"]].to_numpy(), rtol=1e-7)
 
 
 def test_mroz_liml_and_fuller_overidentified(card):
