@@ -210,3 +210,28 @@ def test_export_and_verify_refuse_drafts(reg: Registry) -> None:
         plans.verify_plan(s, slug)
     with reg.reading() as s, pytest.raises(InvalidInputError, match="is a draft; freeze it before exporting"):
         plans.export_document(s, slug)
+
+
+def test_freeze_and_verify_on_each_backend(db_url: str) -> None:
+    """The same seal on SQLite and PostgreSQL: timestamps and JSON read back identically, so the hash holds."""
+    from ivdossier.registry.instruments import add_instrument, add_program
+
+    registry = open_registry(db_url)
+    try:
+        with registry.writing() as s:
+            add_program(s, actor="ana", slug="tele", title="Telehealth", treatment="x", outcome="y")
+            add_instrument(s, actor="ana", program="tele", slug="fibre", name="Fibre", columns=["z"])
+            plans.draft_plan(s, actor="ana", target="fibre", power={"mde": 0.125, "se": 1 / 3})
+            plans.freeze_plan(s, actor="bo", slug="fibre-plan", at=FROZEN_AT)
+        with registry.reading() as s:
+            report = plans.verify_plan(s, "fibre-plan", exported=plans.export_document(s, "fibre-plan"))
+        assert report.intact, report.to_dict()
+        with pytest.raises(ConflictError, match="is frozen"), registry.writing() as s:
+            plans.edit_plan(s, actor="ana", slug="fibre-plan", sections={"deviations": "none"})
+        with registry.engine.begin() as conn:
+            conn.execute(text("UPDATE plan SET frozen_by = 'mallory' WHERE slug = 'fibre-plan'"))
+        with registry.reading() as s:
+            report = plans.verify_plan(s, "fibre-plan")
+        assert [(d.path, d.frozen, d.found) for d in report.differences] == [("frozen_by", "bo", "mallory")]
+    finally:
+        registry.dispose()

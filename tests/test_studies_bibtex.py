@@ -239,3 +239,18 @@ def test_csv_of_many_studies_is_all_or_nothing_with_the_line(reg: Registry) -> N
         studies.import_stats_csv(s, actor="ana", text="key,beta\nA2020,1\n")
     with pytest.raises(InvalidInputError, match=r"CSV line 2: no study with key 'Z1999'"), reg.writing() as s:
         studies.import_stats_csv(s, actor="ana", text="key,estimate\nZ1999,1\n")
+
+
+def test_round_trip_on_each_backend(db_url: str) -> None:
+    registry = open_registry(db_url)
+    try:
+        text = (FIXTURES / "varied.bib").read_text("utf-8")
+        with registry.writing() as s:
+            studies.import_bibtex(s, actor="ana", text=text)
+        with registry.reading() as s:
+            exported = studies.export_bibtex(s.exec(select(Study)))
+        assert [e.fields for e in studies.parse_bibtex(exported)] == [
+            e.fields for e in sorted(studies.parse_bibtex(text), key=lambda e: e.key)
+        ]
+    finally:
+        registry.dispose()
