@@ -211,41 +211,33 @@ def _first_stage_f(run: RunInfo) -> float | None:
 
 
 def _relevance_from_run(run: RunInfo | None) -> Verdict:
+    """Rules R1-R6, in the order of the table."""
     c = "relevance"
     if run is None:
         return Verdict(c, NOT_ASSESSED, "no estimation run has been recorded yet", "R6")
     sets = _ar_sets(run)
-    unbounded = sets is not None and not rv.is_bounded(sets) and len(sets) > 0
+    unbounded = sets is not None and len(sets) > 0 and not rv.is_bounded(sets)
     feff, cvs = rv.effective_f(run.results)
     cv = cvs.get(RELEVANCE_TAU)
+    if feff is not None and cv is not None and feff < cv:
+        reason = f"effective F {rv.fmt(feff)} is below the τ = 10 % critical value {rv.fmt(cv)}"
+        return Verdict(c, AT_RISK, reason, "R1")
+    if unbounded:
+        return Verdict(c, AT_RISK, f"the Anderson–Rubin set {rv.fmt_set(sets)} is unbounded", "R2")
+    if sets is None:
+        tail = "(no Anderson–Rubin set reported)"
+    else:
+        tail = "and the Anderson–Rubin set is bounded" if sets else "(the Anderson–Rubin set is empty)"
     if feff is not None and cv is not None:
-        if feff < cv:
-            return Verdict(
-                c,
-                AT_RISK,
-                f"effective F {rv.fmt(feff)} is below the τ = 10 % critical value {rv.fmt(cv)}",
-                "R1",
-            )
-        if unbounded:
-            return Verdict(c, AT_RISK, f"the Anderson–Rubin set {rv.fmt_set(sets)} is unbounded", "R2")
-        if sets is None:
-            tail = "(no Anderson–Rubin set reported)"
-        else:
-            tail = "and the Anderson–Rubin set is bounded" if sets else "(the Anderson–Rubin set is empty)"
         return Verdict(
             c, HOLDS, f"effective F {rv.fmt(feff)} ≥ τ = 10 % critical value {rv.fmt(cv)} {tail}", "R3"
         )
     fs = _first_stage_f(run)
+    if fs is not None and fs < RULE_OF_THUMB_F:
+        return Verdict(c, AT_RISK, f"first-stage F {rv.fmt(fs)} is below the rule-of-thumb 10", "R4")
     if fs is not None:
-        if fs < RULE_OF_THUMB_F:
-            return Verdict(c, AT_RISK, f"first-stage F {rv.fmt(fs)} is below the rule-of-thumb 10", "R4")
-        if unbounded:
-            return Verdict(c, AT_RISK, f"the Anderson–Rubin set {rv.fmt_set(sets)} is unbounded", "R2")
-        return Verdict(
-            c, HOLDS, f"first-stage F {rv.fmt(fs)} ≥ 10 (no effective F reported; rule of thumb)", "R5"
-        )
-    if unbounded:
-        return Verdict(c, AT_RISK, f"the Anderson–Rubin set {rv.fmt_set(sets)} is unbounded", "R2")
+        reason = f"first-stage F {rv.fmt(fs)} ≥ 10 (no effective F reported; rule of thumb) {tail}"
+        return Verdict(c, HOLDS, reason, "R5")
     return Verdict(c, NOT_ASSESSED, f"run {run.slug} reports no instrument-strength statistics", "R6")
 
 

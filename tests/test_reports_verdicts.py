@@ -235,3 +235,12 @@ def test_g2_graph_at_risk_puts_the_condition_at_risk() -> None:
     v = derive_verdict("exogeneity", claim="c", graph_verdict=graph)
     assert (v.status, v.rule) == (AT_RISK, "G2")
     assert "open path via an open threat" in v.reason
+
+
+def test_relevance_rules_fire_in_table_order() -> None:
+    # no effective F, a weak first stage AND an unbounded AR set: R2 comes before R4 in the table
+    res = _without_effective_f(4.0)
+    res["weak_iv_robust"]["anderson_rubin"]["confidence_set"] = [["-inf", "inf"]]  # type: ignore[index]
+    v = derive_verdict("relevance", run=make_run(1, results=res))
+    assert (v.status, v.rule) == (AT_RISK, "R2")
+    assert "(−∞, ∞) (whole line)" in v.reason
