@@ -62,7 +62,15 @@ def collinear_columns(
     alive = [j for j in range(a.shape[1]) if j not in zero]
     bad = list(zero)
     if len(alive) > 1:
-        r = np.linalg.qr(a[:, alive], mode="r")
+        sub = a[:, alive]
+        inv_norm = 1.0 / norms[alive]
+        try:  # fast path: a well-conditioned scaled Gram matrix proves full rank without an n x k QR
+            chol = np.linalg.cholesky((sub.T @ sub) * np.outer(inv_norm, inv_norm))
+            if np.diag(chol).min() > 1e-3:
+                return sorted(bad)
+        except np.linalg.LinAlgError:
+            pass
+        r = np.linalg.qr(sub, mode="r")
         diag = np.abs(np.diag(r))
         bad += [j for i, j in enumerate(alive) if diag[i] <= tol * norms[j]]
     return sorted(bad)
