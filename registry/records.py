@@ -11,6 +11,7 @@ from collections.abc import Mapping
 from datetime import datetime
 from typing import Any, TypeVar
 
+from sqlalchemy.orm.exc import StaleDataError
 from sqlmodel import Session, select
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
@@ -225,9 +226,31 @@ def edit(
         return obj
     obj.updated_at = utcnow()
     session.add(obj)
-    session.flush()
+    read = (type(obj), obj.id, obj.label, obj.version)  # the failed flush expires the object's attributes
+    try:
+        session.flush()
+    except StaleDataError as exc:
+        # Another transaction committed a change after we read the row (PostgreSQL, READ COMMITTED).
+        raise ConflictError(_changed_meanwhile(session, *read)) from exc
     audit(session, actor=actor, action=action, obj=obj, before=before, after=after, reason=reason)
     return obj
+
+
+def _changed_meanwhile(
+    session: Session, cls: type[Entity], ident: int | None, label: str, read_version: int
+) -> str:
+    """The stale-edit message for a row changed by a concurrent transaction, read in a fresh transaction."""
+    bind = session.get_bind()
+    if bind.dialect.name == "sqlite":  # writers hold the database lock; a second connection would wait on it
+        return (
+            f"{cls.kind} {label!r} was changed by someone else while you were editing it; "
+            "nothing was written, show it again and reapply your edit."
+        )
+    with Session(bind) as fresh:
+        current = fresh.get(cls, ident)
+        if current is None:
+            return f"{cls.kind} {label!r} was deleted while you were editing it; nothing was written."
+        return stale_message(fresh, current, read_version)
 
 
 def delete(session: Session, obj: Entity, *, actor: str, reason: str = "") -> None:

@@ -100,3 +100,25 @@ def test_optimistic_lock_conflicts_are_not_retried(sqlite_path: str) -> None:
         assert calls == [1]
     finally:
         registry.dispose()
+
+
+@pytest.mark.postgres
+def test_change_committed_between_read_and_write_is_named_in_the_conflict(pg_server: Any) -> None:
+    """Our transaction read version 1; another committed version 2 before our UPDATE: refused, and it says why."""
+    registry = _two_programs(pg_server.create_database())
+    try:
+        with (
+            pytest.raises(
+                ConflictError, match=r"version 2, not 1: it was changed by ben at .* \(edit: notes\)"
+            ),
+            registry.writing() as s,
+        ):
+            prog = records.get(s, Program, "a")  # read at version 1
+            with registry.writing() as other:
+                records.edit(other, records.get(other, Program, "a"), {"notes": "ben's"}, actor="ben")
+            records.edit(s, prog, {"title": "ana's"}, actor="ana", expected_version=1)
+        with registry.reading() as s:
+            prog = records.get(s, Program, "a")
+            assert (prog.title, prog.notes, prog.version) == ("A", "ben's", 2)
+    finally:
+        registry.dispose()
