@@ -1,5 +1,5 @@
-"""The weak-instrument diagnostic suite: one call that gathers first stage, strength, weak-IV-robust inference,
-reduced form, over-identification and endogeneity for a fitted IV model.
+"""The weak-instrument diagnostic suite: one call that gathers first stage, strength, weak-IV-robust
+inference, reduced form, over-identification and endogeneity for a fitted IV model.
 
 All inputs are partialled on the controls and absorbed fixed effects and scaled by sqrt(weights); see the
 modules ``strength``, ``robust_inference`` and ``specification`` for each statistic's conventions. Statistics
@@ -34,8 +34,8 @@ from ivdossier.estimation.strength import (
 )
 
 CAUTION = (
-    "These statistics assess instrument strength and internal coherence only; they cannot establish exclusion "
-    "or exogeneity, and conclusions for policy or clinical decisions need domain review."
+    "These statistics assess instrument strength and internal coherence only; they cannot establish "
+    "exclusion or exogeneity, and conclusions for policy or clinical decisions need domain review."
 )
 
 
@@ -86,7 +86,8 @@ def weak_iv_suite(
         raise InvalidInputError(f"y must be one column, got {ym.shape[1]}; pass the outcome as a 1-D array.")
     if not (ym.shape[0] == xm.shape[0] == zm.shape[0]):
         raise InvalidInputError(
-            f"y, X and Z have {ym.shape[0]}, {xm.shape[0]} and {zm.shape[0]} rows; pass arrays for the same rows."
+            f"y, X and Z have {ym.shape[0]}, {xm.shape[0]} and {zm.shape[0]} rows; "
+            "pass arrays for the same rows."
         )
     b = np.asarray(beta, dtype=np.float64).ravel()
     if b.shape != (xm.shape[1],):
@@ -95,9 +96,9 @@ def weak_iv_suite(
         )
     if spec.kind == "cluster" and min(spec.n_clusters()) - 1 < zm.shape[1]:
         raise EstimationError(
-            f"The cluster covariance has {min(spec.n_clusters())} clusters for {zm.shape[1]} instruments, so it "
-            "is singular and the weak-instrument statistics are undefined; use at least one more cluster than "
-            "instruments, fewer instruments, or a robust covariance."
+            f"The cluster covariance has {min(spec.n_clusters())} clusters for {zm.shape[1]} instruments, "
+            "so it is singular and the weak-instrument statistics are undefined; use at least one more "
+            "cluster than instruments, fewer instruments, or a robust covariance."
         )
     kw: dict[str, Any] = {
         "spec": spec,

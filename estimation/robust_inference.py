@@ -1,11 +1,11 @@
 """Weak-instrument-robust inference on partialled data: Anderson–Rubin test and confidence set, tF interval,
 Moreira's conditional likelihood-ratio test and set, and the reduced form.
 
-Anderson–Rubin (1949), one endogenous regressor. With pi_y, pi_x the reduced-form and first-stage coefficients
-on Z and V their joint covariance from ``sandwich`` (any covariance kind), the Wald form of the AR statistic at
-beta is AR(b) = (pi_y - b pi_x)' W(b)^{-1} (pi_y - b pi_x), W(b) = V_yy - b (V_yx + V_xy) + b^2 V_xx. This is
-exactly the Wald test of all Z coefficients in the regression of y - b x on Z with the same covariance,
-because the sandwich is quadratic in the residuals. The set {b : AR(b) <= k F_{1-alpha}(k, d)} is found
+Anderson–Rubin (1949), one endogenous regressor. With pi_y, pi_x the reduced-form and first-stage
+coefficients on Z and V their joint covariance from ``sandwich`` (any covariance kind), the Wald form of the
+AR statistic at beta is AR(b) = (pi_y - b pi_x)' W(b)^{-1} (pi_y - b pi_x), with
+W(b) = V_yy - b (V_yx + V_xy) + b^2 V_xx. This is exactly the Wald test of all Z coefficients in the
+regression of y - b x on Z with the same covariance, because the sandwich is quadratic in the residuals. The set {b : AR(b) <= k F_{1-alpha}(k, d)} is found
 
 * analytically when k = 1 or the covariance is unadjusted (W(b) is then a scalar quadratic times a fixed
   matrix, so the inequality is one quadratic inequality: bounded, two rays, whole line or empty);
@@ -14,13 +14,14 @@ because the sandwich is quadratic in the residuals. The set {b : AR(b) <= k F_{1
 
 The F-form statistic AR/k is referred to F(k, d), d = n - k - n_partialled (or G - 1 with clusters).
 
-tF (Lee, McCrary, Moreira and Porter 2022): with one instrument, beta_IV +/- c(F) se, where F is the first-stage
-Wald F under the chosen covariance (pi_x^2 / V_xx) and se the delta-method standard error under the same
-covariance, which equals the usual 2SLS sandwich standard error when k = 1.
+tF (Lee, McCrary, Moreira and Porter 2022): with one instrument, beta_IV +/- c(F) se, where F is the
+first-stage Wald F under the chosen covariance (pi_x^2 / V_xx) and se the delta-method standard error
+under the same covariance, which equals the usual 2SLS sandwich standard error when k = 1.
 
 CLR, one endogenous regressor: Moreira (2003) under the unadjusted covariance; under a robust or cluster
 covariance the GMM form of Kleibergen (2005) built from the same pi_y, pi_x and V (it reduces to Moreira's
-statistic under the Kronecker covariance). The p-value is exact given Q_T (for Kleibergen's form: given r) through one-dimensional numerical integration over the chi-square(k - 1) part:
+statistic under the Kronecker covariance). The p-value is exact given Q_T (for Kleibergen's form: given r)
+through one-dimensional numerical integration over the chi-square(k - 1) part:
 P(LR > m | Q_T = q) = P(chi2_{k-1} > m + q) + int_0^{m+q} f_{k-1}(v) P(chi2_1 > m - v m / (m + q)) dv, which
 follows from LR = (Q_1 + Q_{k-1} - q + sqrt((Q_1 + Q_{k-1} + q)^2 - 4 q Q_{k-1})) / 2 with independent
 Q_1 ~ chi2(1) and Q_{k-1} ~ chi2(k-1) under the null. The set inverts the test on the same angle grid.
@@ -142,7 +143,7 @@ def angle_grid(center: float, scale: float, *, n_uniform: int = 1201, n_local: i
 
 
 def _refine_dip(margin: Callable[[float], float], thetas: Array, margins: Array) -> tuple[Array, Array]:
-    """If no grid point is accepted, minimise around the smallest margin so a narrow accepted dip is not missed."""
+    """With no accepted grid point, minimise near the smallest margin so a narrow dip is not missed."""
     if (margins <= 0).any():
         return thetas, margins
     i = int(np.argmin(margins))
@@ -206,7 +207,7 @@ def reduced_form(
 
 @dataclass(frozen=True)
 class _Moments:
-    """Reduced-form and first-stage coefficients on Z with their joint covariance (one endogenous regressor)."""
+    """Reduced-form and first-stage coefficients on Z and their joint covariance (one endogenous)."""
 
     pi_y: Array
     pi_x: Array
@@ -312,8 +313,8 @@ def anderson_rubin(
             intervals=None,
             shape=None,
             method=None,
-            reason="joint test only: with several endogenous regressors the confidence set (or its projection) "
-            "is not computed",
+            reason="joint test only: with several endogenous regressors the confidence set "
+            "(or its projection) is not computed",
             cov_kind=spec.kind,
         )
     m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
@@ -387,7 +388,7 @@ def _iv_center(m: _Moments) -> tuple[float, float]:
 
 @dataclass(frozen=True)
 class TFResult:
-    """tF inference (Lee, McCrary, Moreira and Porter 2022) for one instrument and one endogenous regressor."""
+    """tF inference (Lee, McCrary, Moreira and Porter 2022): one instrument, one endogenous regressor."""
 
     applicable: bool
     reason: str | None
@@ -427,7 +428,7 @@ def tf_inference(
     n_partialled: int,
     n_partialled_nested: int = 0,
 ) -> TFResult:
-    """tF interval beta_IV +/- c(F) se at the 5 % level, with F the first-stage Wald F under the chosen covariance."""
+    """tF interval beta_IV +/- c(F) se at the 5 % level; F is the first-stage Wald F, chosen covariance."""
     ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
     if xm.shape[1] != 1 or zm.shape[1] != 1:
         return TFResult(
@@ -527,8 +528,9 @@ class CLRResult:
             "shape": self.shape,
             "cov": self.cov_kind,
             "version": self.version,
-            "source": "Moreira (2003), A Conditional Likelihood Ratio Test for Structural Models, Econometrica; "
-            "Kleibergen (2005), Testing Parameters in GMM Without Assuming that They Are Identified, Econometrica",
+            "source": "Moreira (2003), A Conditional Likelihood Ratio Test for Structural Models, "
+            "Econometrica; Kleibergen (2005), Testing Parameters in GMM Without Assuming that They Are "
+            "Identified, Econometrica",
         }
 
 

@@ -19,11 +19,11 @@ Conventions (stated here once):
   Sigma = X'M_Z X / (n - k - n_partialled) (Stock and Yogo 2005).
 * Kleibergen–Paap rk Wald F is the rk Wald statistic for rank p - 1 (Kleibergen and Paap 2006) divided by k,
   with Theta = (Z'Z)^{1/2} Pi Sigma^{-1/2} and the covariance of vec(Pi) from ``sandwich`` (so the HC1/CR1
-  small-sample factors of that module apply). Under the unadjusted covariance it equals Cragg–Donald F exactly;
-  with one endogenous regressor it equals the robust first-stage F.
+  small-sample factors of that module apply). Under the unadjusted covariance it equals Cragg–Donald F
+  exactly; with one endogenous regressor it equals the robust first-stage F.
 * Sanderson–Windmeijer conditional F for regressor j: eps_j = x_j - X_{-j} delta_j with delta_j the 2SLS
-  coefficients of x_j on the other endogenous regressors; F_j = Wald(Z coefficients of eps_j on Z) / (k - p + 1)
-  with the chosen covariance; under the unadjusted covariance this is
+  coefficients of x_j on the other endogenous regressors; F_j = Wald(Z coefficients of eps_j on Z) /
+  (k - p + 1) with the chosen covariance; under the unadjusted covariance this is
   [eps'P_Z eps / (k - p + 1)] / [eps'M_Z eps / (n - k - n_partialled)] (Sanderson and Windmeijer 2016).
 """
 
@@ -194,7 +194,7 @@ def first_stage(
     endog_names: list[str],
     instrument_names: list[str],
 ) -> FirstStageSection:
-    """First-stage coefficients, SEs (chosen covariance), conventional partial F, robust Wald F, partial R^2."""
+    """First-stage coefficients and SEs (chosen covariance), conventional partial F, robust F, partial R^2."""
     xm, zm = as_matrix(x, "X"), as_matrix(z, "Z")
     _check_shapes(xm, zm)
     n, k = zm.shape
@@ -255,7 +255,8 @@ class EffectiveF:
             },
             "k_eff": {f"tau_{round(t * 100)}pct": json_safe(c) for t, c in self.k_eff.items()},
             "test_level": self.level,
-            "benchmark": "2SLS Nagar bias relative to a worst-case benchmark (simplified conservative procedure)",
+            "benchmark": "2SLS Nagar bias relative to a worst-case benchmark "
+            "(simplified conservative procedure)",
             "source": MOP_SOURCE,
         }
 
@@ -314,8 +315,8 @@ class RankTest:
             "df": self.df,
             "p_value": json_safe(self.p_value),
             "f_form": json_safe(self.f_form),
-            "f_form_note": "rk Wald / K2 with the covariance's own small-sample factors; equals Cragg–Donald F "
-            "under the unadjusted covariance",
+            "f_form_note": "rk Wald / K2 with the covariance's own small-sample factors; "
+            "equals Cragg–Donald F under the unadjusted covariance",
         }
 
 
@@ -381,7 +382,7 @@ def sanderson_windmeijer_f(
 
 @dataclass(frozen=True)
 class StrengthSection:
-    """Instrument-strength summary: effective F, Cragg–Donald, Kleibergen–Paap, Sanderson–Windmeijer, Stock–Yogo."""
+    """Strength summary: effective F, Cragg–Donald, Kleibergen–Paap, Sanderson–Windmeijer, Stock–Yogo."""
 
     effective_f: EffectiveF | None
     effective_f_reason: str | None

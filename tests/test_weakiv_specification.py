@@ -121,7 +121,7 @@ def test_dwh_robust_and_cluster_match_linearmodels_regression_test(card: pd.Data
         ref = model.fit(cov_type="clustered", clusters=card["region"], debiased=True)
         spec = CovSpec("cluster", (card["region"].to_numpy().astype(np.int64),))
     got = sp.durbin_wu_hausman(y, x, z, spec=spec, n_partialled=npart)
-    # linearmodels Wooldridge regression test of exogeneity (control-function Wald under the fit's covariance).
+    # linearmodels Wooldridge regression test of exogeneity (control-function Wald, fit's covariance).
     assert got.statistic == pytest.approx(ref.wooldridge_regression.stat, rel=1e-8)
     assert got.df == 1
 

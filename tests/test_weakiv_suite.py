@@ -80,7 +80,7 @@ def test_suite_agrees_with_linearmodels_on_mroz(mroz_arrays: dict[str, Any]) -> 
     assert suite.overid.statistic == pytest.approx(ref.sargan.stat, rel=1e-9)
     assert suite.endogeneity.f_statistic == pytest.approx(ref.wu_hausman().stat, rel=1e-9)
     assert suite.strength.cragg_donald_f == pytest.approx(suite.first_stage.rows[0].partial_f, rel=1e-10)
-    # The 2SLS estimate lies inside the AR set here (instruments strong and over-identifying restriction holds).
+    # The 2SLS estimate lies inside the AR set here (strong instruments, over-identification not rejected).
     ar = suite.weak_iv_robust.anderson_rubin
     assert ar.intervals is not None and any(lo < ref.params["educ"] < hi for lo, hi in ar.intervals)
 
