@@ -30,7 +30,7 @@ CONDITION_TITLES = {
 CAUTIONS = (
     "**Statistics cannot establish exclusion or exogeneity.** Over-identification and endogeneity tests compare "
     "the instruments with one another or with ordinary least squares; every instrument can be invalid in the same "
-    "direction and pass them all. These two conditions rest on the argument and the causal diagram above.",
+    "direction and pass them all. These two conditions rest on the team's argument and the causal diagram.",
     "**A strong first stage does not make an instrument valid.** Strength guards against weak-instrument bias "
     "and misleading intervals; an instrument can move the treatment a great deal and still reach the outcome "
     "by another path.",

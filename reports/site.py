@@ -152,7 +152,7 @@ def _index_page(
     else:
         parts.append("No programs have been registered yet.")
     parts.append(
-        "## Reference\n\n[The threat catalogue](catalogue.html) lists every known way an instrument can fail."
+        "## Reference\n\n[The threat catalogue](catalogue.html) describes the recorded ways an instrument can fail, by condition."
     )
     parts.append("## Cautions\n\n" + "\n\n".join(CAUTIONS[:3]))
     return render_html("\n\n".join(parts) + "\n", title=title, svgs={}, toc=False)
