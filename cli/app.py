@@ -94,6 +94,7 @@ COMMAND_MODULES = (
     "estimation_cmds",
     "threat_cmds",
     "report_cmds",
+    "evidence_cmds",
     "studies",
     "plans",
 )

@@ -63,6 +63,27 @@ INSTRUMENTS: tuple[dict[str, Any], ...] = (
 )
 
 
+# A threat the team writes itself, in the catalogue's format (team codes start with "T-").
+TEAM_THREAT: dict[str, Any] = {
+    "code": "T-CLERK-FOLLOWUP",
+    "title": "Clerks who favour video visits also book prompt follow-ups",
+    "condition": "exclusion",
+    "mechanism": "alternative-pathway",
+    "families": ["decision-maker-assignment"],
+    "description": "Scheduling clerks do more than offer a video slot: some also book a follow-up within days. "
+    "A prompt follow-up can head off an emergency visit whether or not the patient ever uses video.",
+    "testability": "partly-testable",
+    "checks": ["zero-first-stage-reduced-form", "per-instrument-estimates", "exclusion-sensitivity"],
+    "mitigations": ["Measure each clerk's follow-up booking rate and control for it."],
+    "references": ["Team note, 2026 (internal)"],
+    "fragment": {
+        "nodes": [
+            {"name": "followup_booking", "observed": False, "label": "prompt follow-up booked by the clerk"}
+        ],
+        "edges": [["Z", "followup_booking"], ["followup_booking", "Y"]],
+    },
+}
+
 # (instrument, threat code, state, argument, evidence)
 LINKS: tuple[tuple[str, str, str, str, str], ...] = (
     (
@@ -92,6 +113,14 @@ LINKS: tuple[tuple[str, str, str, str, str], ...] = (
         "open",
         "Clerks who like video slots may also book prompt follow-ups, which could prevent emergency visits "
         "without any video visit taking place.",
+        "",
+    ),
+    (
+        "clerk-video-rate",
+        "T-CLERK-FOLLOWUP",
+        "open",
+        "If patients who cannot take video visits still have fewer emergency visits with video-minded clerks, "
+        "the clerk reaches the outcome some other way.",
         "",
     ),
     (
@@ -211,6 +240,8 @@ def build_demo(
         say(f"linked {summary['links']} catalogue threats and recorded {len(RATINGS)} ratings")
         summary["runs"] = _estimate(registry, csv_path, actor)
         say(f"stored {len(summary['runs'])} estimation runs")
+        summary["checks"] = _checks(registry, csv_path, actor)
+        say(f"stored {len(summary['checks'])} falsification and sensitivity runs")
         summary["documents"] = _documents(registry, out)
         say(f"wrote {len(summary['documents'])} documents under {out}")
     finally:
@@ -220,10 +251,12 @@ def build_demo(
 
 def _link_threats(registry: Any, actor: str) -> int:
     from ivdossier.catalog_sync import ensure_builtin
-    from ivdossier.registry.threats import link_threat, rate_link
+    from ivdossier.registry.threats import add_team_threat, link_threat, rate_link
+    from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
 
     with registry.writing() as s:
         ensure_builtin(s, actor=actor)
+        add_team_threat(s, actor="jonas", entry=CatalogThreat.from_dict(TEAM_THREAT).to_dict())
         for instrument, code, state, argument, evidence in LINKS:
             link_threat(
                 s,
@@ -254,6 +287,47 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
             method=method,
             vcov="cluster",
         )
+        with registry.writing() as s:
+            slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
+    return slugs
+
+
+def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
+    """Falsification and sensitivity runs: the zero-first-stage subgroup and the placebo outcome for each."""
+    from ivdossier.estimation import falsification, sensitivity
+    from ivdossier.runs import analyse_file, store_run
+
+    common = {"controls": list(CONTROLS), "cluster": ["district"], "vcov": "cluster"}
+    model = {"outcome": "ed_visits", "treatment": "telehealth"}
+    jobs: list[tuple[str, str, Any, dict[str, Any]]] = []
+    for slug, column in (
+        ("fibre-wave", "fibre_months"),
+        ("clerk-video-rate", "clerk_video_rate"),
+        ("mast-distance", "mast_km"),
+    ):
+        inst = {"instruments": [column], **common}
+        zero = {**model, **inst, "query": "has_device == 0"}
+        jobs.append((slug, "falsify-zero-first-stage", falsification.zero_first_stage, zero))
+        placebo = {**inst, "outcomes": ["prior_ed_visits"]}
+        jobs.append((slug, "falsify-placebo", falsification.placebo_outcomes, placebo))
+    both = {**model, "instruments": ["clerk_video_rate", "fibre_months"], **common}
+    jobs.append(("clerk-video-rate", "falsify-per-instrument", falsification.per_instrument, both))
+    balance = {
+        "instruments": ["fibre_months"],
+        "covariates": list(CONTROLS),
+        "cluster": ["district"],
+        "vcov": "cluster",
+    }
+    jobs.append(("fibre-wave", "falsify-balance", falsification.balance, balance))
+    breakdown = {**model, "instruments": ["fibre_months"], **common}
+    jobs.append(("fibre-wave", "sensitivity", sensitivity.breakdown_value, breakdown))
+    slugs = []
+    for instrument, kind, func, spec in jobs:
+
+        def compute(frame: Any, f: Any = func, kw: dict[str, Any] = spec) -> tuple[Any, dict[str, Any]]:
+            return f(frame, **kw), {}
+
+        run = analyse_file(kind, csv_path, compute, spec)
         with registry.writing() as s:
             slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
     return slugs

@@ -6,7 +6,7 @@ notebook all build the same documents.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -89,6 +89,28 @@ def catalog_entry(row: Threat) -> Any:
     return CatalogThreat.from_dict(data, source=f"registry threat {row.code}")
 
 
+def check_finding(check: str, runs: Sequence[Run]) -> str:
+    """What the newest relevant run found for a catalogue check, or that it has not been run yet.
+
+    Over-identification looks for the newest run that has more instruments than treatments.
+    """
+    from ivdossier.findings import finding, run_kind_for_command
+    from ivdossier.threats_catalog.checks import CHECKS
+
+    spec = CHECKS.get(check)
+    if spec is None:
+        return ""
+    kind = run_kind_for_command(spec.command)
+    candidates = [r for r in reversed(runs) if r.run_kind == kind]
+    if check == "over-identification":
+        candidates = [
+            r for r in candidates if ((r.results or {}).get("overid") or {}).get("p_value") is not None
+        ]
+    if not candidates:
+        return f"not run yet (`{spec.command}`)"
+    return f"{finding(check, candidates[0].results or {})} (run {candidates[0].slug})"
+
+
 def _ratings(session: Session, link_id: int | None) -> tuple[ri.Rating, ...]:
     rows = session.exec(
         select(Rating, Member)
@@ -141,6 +163,7 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
 
     inst = records.get(session, Instrument, slug)
     program = records.get_by_id(session, Program, inst.program_id)
+    all_runs = runs_of(session, inst)
     links = tuple(
         ri.LinkInfo(
             threat_code=threat.code,
@@ -150,7 +173,9 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
             argument=link.argument,
             evidence=link.evidence,
             ratings=_ratings(session, link.id),
-            checks=tuple(ri.CheckInfo(name=c) for c in (threat.checks or [])),
+            checks=tuple(
+                ri.CheckInfo(name=c, finding=check_finding(c, all_runs)) for c in (threat.checks or [])
+            ),
         )
         for link, threat in links_of(session, inst)
     )

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import platform
 import time
-from collections.abc import Sequence
-from dataclasses import dataclass
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
 from importlib import metadata
 from pathlib import Path
 from typing import Any
@@ -28,16 +28,40 @@ def package_versions() -> dict[str, str]:
 
 @dataclass(frozen=True)
 class FileRun:
-    """An estimation on a file: the result, the plot summaries, the data fingerprint and the timing."""
+    """One analysis of a data file: its result object, the data fingerprint, the exact spec and the timing."""
 
-    result: Any  # EstimationResult
+    kind: str
+    result: Any  # an object with to_dict()
     path: str
     sha256: str
     rows: int
     columns: tuple[str, ...]
-    plot_data: dict[str, Any]
     seconds: float
     spec: dict[str, Any]
+    extra: dict[str, Any] = field(default_factory=dict)  # stored beside the results (e.g. plot summaries)
+
+
+def analyse_file(
+    kind: str, path: Path | str, compute: Callable[[Any], tuple[Any, dict[str, Any]]], spec: Mapping[str, Any]
+) -> FileRun:
+    """Load the file, run `compute(frame) -> (result, extra)` and record fingerprint, spec and timing."""
+    from ivdossier.estimation import file_sha256, load_table
+
+    start = time.perf_counter()
+    frame = load_table(path)
+    result, extra = compute(frame)
+    seconds = time.perf_counter() - start
+    return FileRun(
+        kind=kind,
+        result=result,
+        path=str(path),
+        sha256=file_sha256(path),
+        rows=len(frame),
+        columns=tuple(str(c) for c in frame.columns),
+        seconds=seconds,
+        spec={"data": str(path), **spec},
+        extra=extra,
+    )
 
 
 def estimate_file(
@@ -54,58 +78,49 @@ def estimate_file(
     vcov: str = "robust",
     alpha: float = 0.05,
 ) -> FileRun:
-    """Load the file, estimate with every diagnostic, and summarise what the dossier plots."""
-    from ivdossier.estimation import file_sha256, load_table
+    """Estimate with every diagnostic and summarise what the dossier plots."""
     from ivdossier.estimation.api import estimate_prepared
     from ivdossier.estimation.data import as_names, prepare
     from ivdossier.estimation.plot_data import ar_curve, first_stage_bins
 
-    start = time.perf_counter()
-    frame = load_table(path)
-    clus = as_names(cluster, "cluster")
-    prepared = prepare(
-        frame,
-        outcome=outcome,
-        treatment=treatment,
-        instruments=tuple(instruments),
-        controls=tuple(controls),
-        absorb=tuple(absorb),
-        cluster=clus,
-        weights=weights,
-        require_instruments=method != "ols",
-    )
-    result = estimate_prepared(prepared, method=method, vcov=vcov, alpha=alpha)
-    plots: dict[str, Any] = {}
-    if method != "ols":
-        plots = {"first_stage_bins": first_stage_bins(prepared), "ar_curve": ar_curve(prepared, result)}
-    seconds = time.perf_counter() - start
-    spec = {"data": str(path), **result.spec}
-    return FileRun(
-        result=result,
-        path=str(path),
-        sha256=file_sha256(path),
-        rows=len(frame),
-        columns=tuple(str(c) for c in frame.columns),
-        plot_data=plots,
-        seconds=seconds,
-        spec=spec,
-    )
+    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
+        prepared = prepare(
+            frame,
+            outcome=outcome,
+            treatment=treatment,
+            instruments=tuple(instruments),
+            controls=tuple(controls),
+            absorb=tuple(absorb),
+            cluster=as_names(cluster, "cluster"),
+            weights=weights,
+            require_instruments=method != "ols",
+        )
+        result = estimate_prepared(prepared, method=method, vcov=vcov, alpha=alpha)
+        plots: dict[str, Any] = {}
+        if method != "ols":
+            plots = {"first_stage_bins": first_stage_bins(prepared), "ar_curve": ar_curve(prepared, result)}
+        return result, {"plot_data": plots}
+
+    run = analyse_file("estimate", path, compute, {})
+    return FileRun(**{**run.__dict__, "spec": {"data": str(path), **run.result.spec}})
 
 
-def store_run(session: Any, run: FileRun, *, instrument: str, actor: str, run_kind: str = "estimate") -> Any:
+def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any:
     """Record the dataset (by SHA-256) and the run, attached to an instrument, in the caller's transaction."""
     from ivdossier.jsonsafe import json_safe
     from ivdossier.registry.runs import record_run, register_dataset
 
-    dataset = register_dataset(
-        session, actor=actor, path=run.path, sha256=run.sha256, rows=run.rows, columns=run.columns
-    )
-    results = json_safe({**run.result.to_dict(), "plot_data": run.plot_data})
+    dataset = None
+    if run.sha256:
+        dataset = register_dataset(
+            session, actor=actor, path=run.path, sha256=run.sha256, rows=run.rows, columns=run.columns
+        )
+    results = json_safe({**run.result.to_dict(), **run.extra})
     return record_run(
         session,
         actor=actor,
         instrument=instrument,
-        run_kind=run_kind,
+        run_kind=run.kind,
         spec=json_safe(run.spec),
         results=results,
         versions=package_versions(),

@@ -1,0 +1,482 @@
+"""Evidence beyond the first stage: `sensitivity`, `falsify`, `compliers` and `power`, each with --json/--attach."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Any
+
+import typer
+
+from ivdossier.cli.common import JsonFlag, actor, writing
+from ivdossier.cli.output import print_json, print_record, print_table
+from ivdossier.errors import InvalidInputError
+
+sensitivity_app = typer.Typer(
+    help="How large a direct effect of the instrument on the outcome would change the conclusion.",
+    no_args_is_help=True,
+)
+falsify_app = typer.Typer(help="Checks the instrument should pass if it is valid.", no_args_is_help=True)
+
+
+def register(app: typer.Typer) -> None:
+    app.add_typer(sensitivity_app, name="sensitivity")
+    app.add_typer(falsify_app, name="falsify")
+    app.command("compliers")(compliers)
+    app.command("power")(power)
+
+
+Data = Annotated[Path, typer.Option("--data", help="CSV, Parquet or Stata .dta file.")]
+Outcome = Annotated[str, typer.Option(help="Outcome column Y.")]
+Treatment = Annotated[str, typer.Option(help="Treatment column X.")]
+Instruments = Annotated[list[str], typer.Option("--instrument", help="Instrument column(s) Z (repeatable).")]
+Controls = Annotated[list[str] | None, typer.Option("--control", help="Control column(s) (repeatable).")]
+Absorb = Annotated[list[str] | None, typer.Option("--absorb", help="Fixed effect(s) to absorb (repeatable).")]
+Cluster = Annotated[list[str] | None, typer.Option("--cluster", help="Cluster column(s), one or two.")]
+Weights = Annotated[str | None, typer.Option(help="Column of analytic weights.")]
+Vcov = Annotated[str, typer.Option(help="unadjusted, robust or cluster.")]
+Alpha = Annotated[float, typer.Option(help="1 - confidence level.")]
+Attach = Annotated[str | None, typer.Option(help="Store the result as a run of this instrument.")]
+PlotOut = Annotated[Path | None, typer.Option("--plot", help="Also write the plot to this .svg file.")]
+
+
+def _spec(controls: Any, absorb: Any, cluster: Any, weights: Any, vcov: str, alpha: float) -> dict[str, Any]:
+    return {
+        "controls": list(controls or []),
+        "absorb": list(absorb or []),
+        "cluster": list(cluster or []) or None,
+        "weights": weights,
+        "vcov": vcov,
+        "alpha": alpha,
+    }
+
+
+def _finish(run: Any, *, attach: str | None, json_out: bool, checks: tuple[str, ...]) -> None:
+    """Store the run if asked, then print JSON or the one-line findings for the checks it speaks to."""
+    from ivdossier.findings import finding
+    from ivdossier.jsonsafe import json_safe
+    from ivdossier.runs import store_run
+
+    slug = None
+    if attach:
+        with writing() as session:
+            slug = store_run(session, run, instrument=attach, actor=actor()).slug
+    data = json_safe(run.result.to_dict())
+    if json_out:
+        print_json({**data, "run": slug} if slug else data)
+        return
+    for check in checks:
+        typer.echo(f"{check}: {finding(check, data)}")
+    caution = data.get("caution") or data.get("note")
+    if caution:
+        typer.echo(f"note: {caution}")
+    if slug:
+        typer.echo(f"stored as run {slug} on instrument {attach}")
+
+
+# ---------------------------------------------------------------- sensitivity
+
+
+@sensitivity_app.command("range")
+def sensitivity_range(
+    data: Data,
+    outcome: Outcome,
+    treatment: Treatment,
+    instrument: Instruments,
+    gamma_min: Annotated[
+        list[float], typer.Option(help="Lowest direct effect (one, or one per instrument).")
+    ],
+    gamma_max: Annotated[
+        list[float], typer.Option(help="Highest direct effect (one, or one per instrument).")
+    ],
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    plot: PlotOut = None,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Union of 2SLS intervals over a range of direct effects (Conley, Hansen and Rossi 2012)."""
+    from ivdossier.estimation.sensitivity import plot_sensitivity_svg, union_of_intervals
+    from ivdossier.runs import analyse_file
+
+    spec = {
+        "outcome": outcome,
+        "treatment": treatment,
+        "instruments": list(instrument),
+        "gamma_min": gamma_min,
+        "gamma_max": gamma_max,
+        **_spec(control, absorb, cluster, weights, vcov, alpha),
+    }
+
+    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
+        kw = {k: v for k, v in spec.items() if k not in ("gamma_min", "gamma_max")}
+        return union_of_intervals(frame, gamma_min=_one(gamma_min), gamma_max=_one(gamma_max), **kw), {}
+
+    run = analyse_file("sensitivity", data, compute, spec)
+    if plot is not None:
+        plot.write_text(plot_sensitivity_svg(run.result), encoding="utf-8")
+    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
+
+
+def _one(values: list[float]) -> float | list[float]:
+    return values[0] if len(values) == 1 else values
+
+
+@sensitivity_app.command("prior")
+def sensitivity_prior(
+    data: Data,
+    outcome: Outcome,
+    treatment: Treatment,
+    instrument: Instruments,
+    prior_mean: Annotated[
+        list[float], typer.Option(help="Prior mean of the direct effect (one per instrument).")
+    ],
+    prior_sd: Annotated[list[float], typer.Option(help="Prior standard deviation (one per instrument).")],
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Local-to-zero interval with a normal prior on the direct effect (independent across instruments)."""
+    from ivdossier.estimation.sensitivity import local_to_zero
+    from ivdossier.runs import analyse_file
+
+    if len(prior_mean) != len(instrument) or len(prior_sd) != len(instrument):
+        raise InvalidInputError(
+            "give one --prior-mean and one --prior-sd per --instrument, in the same order."
+        )
+    omega = [[(sd**2 if i == j else 0.0) for j, sd in enumerate(prior_sd)] for i in range(len(prior_sd))]
+    spec = {
+        "outcome": outcome,
+        "treatment": treatment,
+        "instruments": list(instrument),
+        "prior_mean": prior_mean,
+        "prior_sd": prior_sd,
+        **_spec(control, absorb, cluster, weights, vcov, alpha),
+    }
+
+    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
+        kw = {k: v for k, v in spec.items() if k not in ("prior_mean", "prior_sd")}
+        return local_to_zero(frame, mu=prior_mean, omega=omega, **kw), {}
+
+    run = analyse_file("sensitivity", data, compute, spec)
+    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
+
+
+@sensitivity_app.command("breakdown")
+def sensitivity_breakdown(
+    data: Data,
+    outcome: Outcome,
+    treatment: Treatment,
+    instrument: Instruments,
+    target: Annotated[
+        float, typer.Option(help="The effect size the interval should reach (default 0).")
+    ] = 0.0,
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """The smallest direct effect at which the interval first reaches the target effect."""
+    from ivdossier.estimation.sensitivity import breakdown_value
+    from ivdossier.runs import analyse_file
+
+    spec = {
+        "outcome": outcome,
+        "treatment": treatment,
+        "instruments": list(instrument),
+        "target": target,
+        **_spec(control, absorb, cluster, weights, vcov, alpha),
+    }
+    run = analyse_file("sensitivity", data, lambda frame: (breakdown_value(frame, **spec), {}), spec)
+    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
+
+
+# ---------------------------------------------------------------- falsification
+
+
+@falsify_app.command("balance")
+def falsify_balance(
+    data: Data,
+    instrument: Instruments,
+    covariate: Annotated[list[str], typer.Option(help="Predetermined covariate(s) (repeatable).")],
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Balance of the instrument on predetermined covariates: per covariate and jointly."""
+    from ivdossier.estimation.falsification import balance
+    from ivdossier.runs import analyse_file
+
+    spec = {
+        "instruments": list(instrument),
+        "covariates": list(covariate),
+        **_spec(control, absorb, cluster, weights, vcov, alpha),
+    }
+    run = analyse_file("falsify-balance", data, lambda frame: (balance(frame, **spec), {}), spec)
+    _table_of_targets(run, json_out)
+    _finish(run, attach=attach, json_out=json_out, checks=("covariate-balance",))
+
+
+@falsify_app.command("placebo")
+def falsify_placebo(
+    data: Data,
+    instrument: Instruments,
+    placebo_outcome: Annotated[list[str], typer.Option(help="Outcome(s) the instrument cannot have caused.")],
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Reduced form of placebo outcomes on the instrument(s); each should be null."""
+    from ivdossier.estimation.falsification import placebo_outcomes
+    from ivdossier.runs import analyse_file
+
+    spec = {
+        "instruments": list(instrument),
+        "outcomes": list(placebo_outcome),
+        **_spec(control, absorb, cluster, weights, vcov, alpha),
+    }
+    run = analyse_file("falsify-placebo", data, lambda frame: (placebo_outcomes(frame, **spec), {}), spec)
+    _table_of_targets(run, json_out)
+    _finish(run, attach=attach, json_out=json_out, checks=("placebo-outcome",))
+
+
+def _table_of_targets(run: Any, json_out: bool) -> None:
+    if json_out:
+        return
+    rows = [
+        {
+            "target": r.target,
+            "instrument": c.instrument,
+            "coef": f"{c.coef:.4g}",
+            "se": f"{c.se:.4g}",
+            "p": f"{c.p_value:.3g}",
+            "std_diff": "" if c.std_diff != c.std_diff else f"{c.std_diff:.3f}",
+        }
+        for r in run.result.rows
+        for c in r.coefficients
+    ]
+    print_table(rows, ["target", "instrument", "coef", "se", "p", "std_diff"])
+
+
+@falsify_app.command("zero-first-stage")
+def falsify_zero_first_stage(
+    data: Data,
+    outcome: Outcome,
+    treatment: Treatment,
+    instrument: Instruments,
+    where: Annotated[str | None, typer.Option(help='Rows of the subsample, e.g. "has_device == 0".')] = None,
+    subsample: Annotated[str | None, typer.Option(help="Boolean column marking the subsample.")] = None,
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Reduced form where the instrument cannot move the treatment; an effect there points to another path."""
+    from ivdossier.estimation.falsification import zero_first_stage
+    from ivdossier.runs import analyse_file
+
+    spec = {
+        "outcome": outcome,
+        "treatment": treatment,
+        "instruments": list(instrument),
+        "query": where,
+        "subsample": subsample,
+        **_spec(control, absorb, cluster, weights, vcov, alpha),
+    }
+    run = analyse_file(
+        "falsify-zero-first-stage", data, lambda frame: (zero_first_stage(frame, **spec), {}), spec
+    )
+    _finish(run, attach=attach, json_out=json_out, checks=("zero-first-stage-reduced-form",))
+
+
+@falsify_app.command("per-instrument")
+def falsify_per_instrument(
+    data: Data,
+    outcome: Outcome,
+    treatment: Treatment,
+    instrument: Instruments,
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Each instrument's own just-identified estimate beside the estimate using all of them."""
+    from ivdossier.estimation.falsification import per_instrument
+    from ivdossier.runs import analyse_file
+
+    spec = {
+        "outcome": outcome,
+        "treatment": treatment,
+        "instruments": list(instrument),
+        **_spec(control, absorb, cluster, weights, vcov, alpha),
+    }
+    run = analyse_file(
+        "falsify-per-instrument", data, lambda frame: (per_instrument(frame, **spec), {}), spec
+    )
+    _finish(run, attach=attach, json_out=json_out, checks=("per-instrument-estimates", "over-identification"))
+
+
+# ---------------------------------------------------------------- compliers and power
+
+
+class _ComplierReport:
+    """Shares, and where asked, complier means and the implied-density check, as one result."""
+
+    def __init__(self, shares: Any, means: Any, implications: Any) -> None:
+        self.shares, self.means, self.implications = shares, means, implications
+
+    def to_dict(self) -> dict[str, Any]:
+        out = dict(self.shares.to_dict())
+        out["means"] = self.means.to_dict() if self.means is not None else None
+        out["implications"] = self.implications.to_dict() if self.implications is not None else None
+        return out
+
+
+def compliers(
+    data: Data,
+    treatment: Annotated[str, typer.Option(help="Binary treatment column (0/1).")],
+    instrument: Annotated[str, typer.Option(help="Binary instrument column (0/1).")],
+    covariate: Annotated[list[str] | None, typer.Option(help="Covariates to profile compliers on.")] = None,
+    outcome: Annotated[str | None, typer.Option(help="Outcome for the implied-density check.")] = None,
+    bins: Annotated[int, typer.Option(help="Outcome bins for the implied-density check.")] = 5,
+    cluster: Annotated[str | None, typer.Option(help="Cluster column for bootstrap resampling.")] = None,
+    seed: Annotated[int, typer.Option(help="Seed of the bootstrap.")] = 0,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Complier, always-taker and never-taker shares; complier profile; implied complier densities."""
+    from ivdossier.estimation.compliers import check_testable_implications, complier_means, complier_shares
+    from ivdossier.runs import analyse_file
+
+    spec = {
+        "treatment": treatment,
+        "instrument": instrument,
+        "covariates": list(covariate or []),
+        "outcome": outcome,
+        "bins": bins,
+        "cluster": cluster,
+        "seed": seed,
+    }
+
+    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
+        shares = complier_shares(
+            frame, treatment=treatment, instrument=instrument, cluster=cluster, seed=seed
+        )
+        means = (
+            complier_means(
+                frame,
+                treatment=treatment,
+                instrument=instrument,
+                covariates=covariate,
+                cluster=cluster,
+                seed=seed,
+            )
+            if covariate
+            else None
+        )
+        impl = (
+            check_testable_implications(
+                frame, outcome=outcome, treatment=treatment, instrument=instrument, bins=bins, seed=seed
+            )
+            if outcome
+            else None
+        )
+        return _ComplierReport(shares, means, impl), {}
+
+    run = analyse_file("compliers", data, compute, spec)
+    checks = ("complier-profile",) + (("complier-density-sign",) if outcome else ())
+    _finish(run, attach=attach, json_out=json_out, checks=checks)
+
+
+def power(
+    n: Annotated[int, typer.Option(help="Planned number of observations.")],
+    partial_r2: Annotated[
+        float | None, typer.Option(help="First-stage partial R² of the instruments.")
+    ] = None,
+    first_stage_f: Annotated[
+        float | None, typer.Option(help="Expected first-stage F (instead of R²).")
+    ] = None,
+    outcome_sd: Annotated[float | None, typer.Option(help="Standard deviation of the outcome.")] = None,
+    residual_sd: Annotated[
+        float | None, typer.Option(help="Standard deviation of the structural error.")
+    ] = None,
+    treatment_sd: Annotated[float, typer.Option(help="Standard deviation of the treatment.")] = 1.0,
+    instruments: Annotated[int, typer.Option(help="Number of instruments.")] = 1,
+    cluster_size: Annotated[float, typer.Option(help="Average cluster size (1 = no clustering).")] = 1.0,
+    icc: Annotated[float, typer.Option(help="Intra-cluster correlation of the outcome.")] = 0.0,
+    effect: Annotated[float | None, typer.Option(help="Effect to compute power for.")] = None,
+    target_power: Annotated[float, typer.Option("--power", help="Target power for MDE and N.")] = 0.8,
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """Power, minimum detectable effect and required N of a planned 2SLS design, with its expected first stage."""
+    from ivdossier.estimation.power import iv_design, power_analysis
+    from ivdossier.runs import FileRun
+
+    spec = {
+        "n": n,
+        "partial_r2": partial_r2,
+        "first_stage_f": first_stage_f,
+        "outcome_sd": outcome_sd,
+        "residual_sd": residual_sd,
+        "treatment_sd": treatment_sd,
+        "n_instruments": instruments,
+        "cluster_size": cluster_size,
+        "icc": icc,
+        "alpha": alpha,
+    }
+    analysis = power_analysis(iv_design(**spec), effect=effect, target_power=target_power)
+    run = FileRun(
+        kind="power",
+        result=analysis,
+        path="",
+        sha256="",
+        rows=0,
+        columns=(),
+        seconds=0.0,
+        spec={**spec, "effect": effect, "target_power": target_power},
+    )
+    if not json_out:
+        d = analysis.to_dict()
+        fs = d.get("first_stage") or {}
+        print_record(
+            [
+                ("standard error of 2SLS", f"{d['se']:.4g}"),
+                ("power at the effect", "—" if d.get("power") is None else f"{d['power']:.3f}"),
+                (f"minimum detectable effect ({target_power:.0%} power)", f"{d['mde']:.4g}"),
+                ("observations needed", d.get("n_required") or "—"),
+                ("expected first-stage F", f"{fs.get('expected_f', float('nan')):.3g}"),
+            ]
+        )
+    _finish(run, attach=attach, json_out=json_out, checks=())
