@@ -5,7 +5,8 @@ Anderson–Rubin (1949), one endogenous regressor. With pi_y, pi_x the reduced-f
 coefficients on Z and V their joint covariance from ``sandwich`` (any covariance kind), the Wald form of the
 AR statistic at beta is AR(b) = (pi_y - b pi_x)' W(b)^{-1} (pi_y - b pi_x), with
 W(b) = V_yy - b (V_yx + V_xy) + b^2 V_xx. This is exactly the Wald test of all Z coefficients in the
-regression of y - b x on Z with the same covariance, because the sandwich is quadratic in the residuals. The set {b : AR(b) <= k F_{1-alpha}(k, d)} is found
+regression of y - b x on Z with the same covariance, because the sandwich is quadratic in the residuals.
+The set {b : AR(b) <= k F_{1-alpha}(k, d)} is found
 
 * analytically when k = 1 or the covariance is unadjusted (W(b) is then a scalar quadratic times a fixed
   matrix, so the inequality is one quadratic inequality: bounded, two rays, whole line or empty);

@@ -4,8 +4,8 @@ and the CLR conditional distribution against direct simulation of its definition
 
 Brute-force reference (Anderson and Rubin 1949): for each b, regress y - b x on [1, Z] with statsmodels under
 the same covariance (nonrobust, HC1, or cluster with its default CR1 correction) and Wald-test all Z
-coefficients; b is in the set when that Wald statistic is at most k * F_{0.95}(k, d). Our arrays partial out the intercept
-(n_partialled = 1), so both sides use the residual df n - k - 1.
+coefficients; b is in the set when that Wald statistic is at most k * F_{0.95}(k, d). Our arrays partial
+out the intercept (n_partialled = 1), so both sides use the residual df n - k - 1.
 """
 
 from __future__ import annotations
