@@ -34,7 +34,7 @@ CAUTIONS = (
     "**A strong first stage does not make an instrument valid.** Strength guards against weak-instrument bias "
     "and misleading intervals; an instrument can move the treatment a great deal and still reach the outcome "
     "by another path.",
-    "**Conclusions for policy or clinical use need domain review.** This dossier organises the team's own "
+    "**Conclusions for policy or clinical use need domain review.** These documents organise the team's own "
     "claims, threat reviews and estimates. Before any result informs a policy or clinical decision, people who "
     "know the setting should review the argument and the data.",
     "**Verdicts are derived, not measured.** They follow fixed, published rules from the inputs shown here "
