@@ -111,29 +111,28 @@ def _parser() -> Any:
 
 def parse_bibtex(text: str) -> list[BibEntry]:
     """Read every entry of a BibTeX text; any malformed entry raises InvalidInputError naming its line."""
-    import bibtexparser
-
     records.check_text(text, field="BibTeX file", max_length=20_000_000)
     chunks, macros = _scan(text)
     prefix = "\n".join(macros) + "\n" if macros else ""
+    try:
+        whole = _load(prefix + "\n".join(chunk for _, _, chunk in chunks)) if chunks else []
+    except Exception:  # one bad entry spoils the whole parse; the slow path below names it
+        whole = []
+    keys = [str(e.get("ID", "")).strip() for e in whole]
+    if len(whole) != len(chunks) or (not whole and chunks):
+        # Something did not parse: find the first entry that fails on its own (slow path, errors only).
+        for line, etype, chunk in chunks:
+            _entry_or_error(prefix, line, etype, chunk)
+        raise InvalidInputError(
+            "the BibTeX file could not be read as a whole; check entries that share a key."
+        )
     out: list[BibEntry] = []
     seen: dict[str, int] = {}
-    for line, etype, chunk in chunks:
-        try:
-            db = bibtexparser.loads(prefix + chunk, parser=_parser())
-        except Exception as exc:  # bibtexparser raises several types, e.g. UndefinedString
-            raise InvalidInputError(
-                f"BibTeX line {line}: the @{etype} entry cannot be read ({type(exc).__name__}: {exc}); "
-                "fix that entry."
-            ) from None
-        if len(db.entries) != 1:
-            raise InvalidInputError(
-                f"BibTeX line {line}: the @{etype} entry cannot be read; check for a missing key, a missing "
-                "comma between fields or a field without '='."
-            )
-        raw = dict(db.entries[0])
-        key = str(raw.pop("ID", "")).strip()
-        raw.pop("ENTRYTYPE", None)
+    for (line, etype, chunk), raw_entry, key in zip(chunks, whole, keys, strict=True):
+        raw = dict(raw_entry)
+        if not KEY_RE.match(key) or _chunk_key(chunk) != key:
+            raw = _entry_or_error(prefix, line, etype, chunk)
+            key = str(raw.get("ID", "")).strip()
         if not KEY_RE.match(key):
             raise InvalidInputError(
                 f"BibTeX line {line}: key {key!r} is not usable; use letters, digits and _:.+/- (no spaces)."
@@ -141,8 +140,37 @@ def parse_bibtex(text: str) -> list[BibEntry]:
         if key in seen:
             raise InvalidInputError(f"BibTeX line {line}: key {key!r} was already used on line {seen[key]}.")
         seen[key] = line
+        raw.pop("ID", None)
+        raw.pop("ENTRYTYPE", None)
         out.append(BibEntry(key, etype, line, {k.lower(): str(v) for k, v in raw.items()}))
     return out
+
+
+def _load(text: str) -> list[dict[str, Any]]:
+    import bibtexparser
+
+    return list(bibtexparser.loads(text, parser=_parser()).entries)
+
+
+def _chunk_key(chunk: str) -> str:
+    m = re.match(r"@\s*[A-Za-z]+\s*[{(]\s*([^,\s{}()=]*)", chunk)
+    return m.group(1) if m else ""
+
+
+def _entry_or_error(prefix: str, line: int, etype: str, chunk: str) -> dict[str, Any]:
+    """Parse one entry alone; any failure raises InvalidInputError naming the entry's line."""
+    try:
+        entries = _load(prefix + chunk)
+    except Exception as exc:  # bibtexparser raises several types, e.g. UndefinedString
+        raise InvalidInputError(
+            f"BibTeX line {line}: the @{etype} entry cannot be read ({type(exc).__name__}: {exc}); fix that entry."
+        ) from None
+    if len(entries) != 1:
+        raise InvalidInputError(
+            f"BibTeX line {line}: the @{etype} entry cannot be read; check for a missing key, a missing "
+            "comma between fields or a field without '='."
+        )
+    return dict(entries[0])
 
 
 _SPECIALS = {
@@ -210,7 +238,8 @@ def study_from_entry(entry: BibEntry) -> Study:
 def import_bibtex(session: Session, *, actor: str, text: str, source: str = "") -> list[Study]:
     """Parse all of ``text`` first, then add every entry in the caller's transaction (all or nothing)."""
     entries = parse_bibtex(text)
-    existing = {s for s in session.exec(select(Study.key)) if s in {e.key for e in entries}}
+    wanted = {e.key for e in entries}
+    existing = {k for k in session.exec(select(Study.key)) if k in wanted}
     if existing:
         first = next(e for e in entries if e.key in existing)
         raise ConflictError(
