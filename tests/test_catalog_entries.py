@@ -111,19 +111,20 @@ def test_every_fragment_is_acyclic_with_the_base_graph() -> None:
     "code", [t.code for t in load_builtin() if t.condition in ("exclusion", "exogeneity")]
 )
 def test_exclusion_and_exogeneity_fragments_break_their_own_condition(code: str) -> None:
-    """An open link to one of these threats, alone, must make the graph verdict for its condition 'broken'
-    (fragments are drawn so that the definitions in graph.py expose the threat); measurement entries that the
-    graph cannot draw instead make it 'at-risk'."""
+    """A fatal link to one of these threats, alone, must make the graph verdict for its condition 'broken' and an
+    open link 'at-risk' (fragments are drawn so that the definitions in graph.py expose the threat); measurement
+    entries that the graph cannot draw make it 'at-risk' while unresolved."""
     threat = CATALOG.get(code)
-    G = build_graph(fragments=[threat.fragment], link_states={code: "open"})
-    verdict = check_instrument(G, instrument="Z", treatment="X", outcome="Y")
-    if threat.fragment.is_empty:
-        assert threat.mechanism == "measurement"
-        assert verdict.value(threat.condition) == "at-risk"
-    else:
-        assert verdict.value(threat.condition) == "broken"
-        assert any(code in p.threats and p.condition == threat.condition for p in verdict.open_paths)
-    assert not verdict.criterion_holds or threat.fragment.is_empty
+    for state, expected in (("fatal", "broken"), ("open", "at-risk")):
+        G = build_graph(fragments=[threat.fragment], link_states={code: state})
+        verdict = check_instrument(G, instrument="Z", treatment="X", outcome="Y")
+        if threat.fragment.is_empty:
+            assert threat.mechanism == "measurement"
+            assert verdict.value(threat.condition) == ("broken" if state == "fatal" else "at-risk")
+        else:
+            assert verdict.value(threat.condition) == expected
+            assert any(code in p.threats and p.condition == threat.condition for p in verdict.open_paths)
+        assert not verdict.criterion_holds or threat.fragment.is_empty
 
 
 @pytest.mark.parametrize(

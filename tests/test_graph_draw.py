@@ -34,7 +34,7 @@ def demo() -> tuple[nx.DiGraph, GraphVerdict]:
         outcome="ed_visits",
         covariates={"district_income": True},
         fragments=[roads, cat.get("DG-I01").fragment, cat.get("AN-I02").fragment],
-        link_states={"T-ROADS": "open", "DG-I01": "mitigated", "AN-I02": "open"},
+        link_states={"T-ROADS": "fatal", "DG-I01": "mitigated", "AN-I02": "open"},
         extra_edges=[("district_income", "fibre_wave")],
     )
     v = check_instrument(

@@ -12,17 +12,19 @@ Link states and the graph
 The registry attaches threats to an instrument as links with a state; ``build_graph(link_states=...)`` reads:
 
 * ``rebutted``: the fragment is dropped, its nodes and edges are not drawn;
-* ``open``, ``fatal``: the fragment is drawn and its edges are *asserted*;
+* ``fatal``: the fragment is drawn and its edges are *asserted* (the team judges the threat real);
+* ``open``: the fragment is drawn and its edges are only *possible* (raised, not yet answered);
 * ``mitigated``, ``accepted``: the fragment is drawn but its edges are only *possible* (the team argues
   the effect is handled or small);
 * a fragment whose code has no state, when ``link_states`` is given, is a ``suggested`` preview (possible);
-  with ``link_states=None`` every fragment counts as ``open``.
+  with ``link_states=None`` (a hand-drawn hypothesis graph, no registry links) every fragment counts as
+  ``open`` and its edges are asserted.
 
 Verdict per condition (the graph part; statistics come from the estimation layer)
 ---------------------------------------------------------------------------------
 * exclusion / exogeneity: every open path from Z to Y that avoids X (given W plus selection nodes) is
   classified as exclusion when all its arrows point from Z towards Y, otherwise exogeneity.
-  ``broken`` = an open path of that kind whose edges are all asserted (base, team-drawn, or from open/fatal
+  ``broken`` = an open path of that kind whose edges are all asserted (base, team-drawn, or from fatal
   links), or a fatal link for that condition, or (exogeneity) W holds a descendant of X or Y;
   ``at-risk`` = an open path that uses at least one merely possible edge, or an unresolved link whose threat
   has no fragment; ``holds`` = none of these, and at least one threat for the condition was considered
@@ -57,7 +59,7 @@ SUGGESTED = "suggested"
 #: States whose fragments stay in the graph.
 KEPT_STATES: frozenset[str] = frozenset({"open", "mitigated", "accepted", "fatal", SUGGESTED})
 #: States whose edges are asserted (an open path made only of asserted edges breaks a condition).
-ASSERTED_STATES: frozenset[str] = frozenset({"open", "fatal"})
+ASSERTED_STATES: frozenset[str] = frozenset({"fatal"})
 VERDICT_VALUES: tuple[str, ...] = ("holds", "at-risk", "broken", "not-assessed")
 ROLES: tuple[str, ...] = ("instrument", "treatment", "outcome", "unobserved", "covariate", "intermediate")
 
@@ -117,7 +119,11 @@ def build_graph(
     token = {"Z": instrument, "X": treatment, "Y": outcome, "U": confounder}
 
     G: nx.DiGraph = nx.DiGraph()
-    G.graph.update(roles={"instrument": instrument, "treatment": treatment, "outcome": outcome}, threats={})
+    G.graph.update(
+        roles={"instrument": instrument, "treatment": treatment, "outcome": outcome},
+        threats={},
+        assert_fragments=link_states is None,
+    )
     for role, name in roles.items():
         G.add_node(name, role=role, observed=role != "unobserved", label=name, selection=False, threats=[])
     G.nodes[confounder]["label"] = f"unmeasured causes of {treatment} and {outcome}"
@@ -414,7 +420,9 @@ def check_instrument(
     mutilated = G.copy()
     mutilated.remove_edges_from(list(G.out_edges(x)))
     threat_info: dict[str, dict[str, Any]] = dict(G.graph.get("threats", {}))
-    states = {code: info["state"] for code, info in threat_info.items()}
+    # Which fragments' edges count as asserted: all of them in a hand-drawn graph, else fatal links only.
+    assert_all = bool(G.graph.get("assert_fragments", False))
+    states = {code: "fatal" if assert_all else info["state"] for code, info in threat_info.items()}
 
     open_paths, blocked_paths, truncated = _bypass_paths(mutilated, z, y, x, C, S, states)
     # the criterion itself comes from d-separation, so a truncated path listing can never make it look satisfied
