@@ -242,6 +242,8 @@ def build_demo(
         say(f"stored {len(summary['runs'])} estimation runs")
         summary["checks"] = _checks(registry, csv_path, actor)
         say(f"stored {len(summary['checks'])} falsification and sensitivity runs")
+        summary["caught"] = _record_what_the_checks_found(registry)
+        say(f"the zero-first-stage check caught the planted violation: {summary['caught']}")
         summary["documents"] = _documents(registry, out)
         say(f"wrote {len(summary['documents'])} documents under {out}")
     finally:
@@ -331,6 +333,35 @@ def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
         with registry.writing() as s:
             slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
     return slugs
+
+
+def _record_what_the_checks_found(registry: Any) -> str:
+    """The team reads the zero-first-stage result for the clerk instrument and marks the follow-up threat fatal."""
+    from ivdossier.findings import finding
+    from ivdossier.registry import records
+    from ivdossier.registry.instruments import move_instrument
+    from ivdossier.registry.models import Run
+    from ivdossier.registry.threats import set_link
+
+    with registry.writing() as s:
+        run = records.get(s, Run, "clerk-video-rate-falsify-zero-first-stage-1")
+        found = finding("zero-first-stage-reduced-form", run.results or {})
+        set_link(
+            s,
+            actor="priya",
+            link="clerk-video-rate--t-clerk-followup",
+            state="fatal",
+            evidence=f"Run {run.slug}: {found}. Patients without a capable device cannot take video visits, "
+            "yet their emergency visits fall with the clerk's video share.",
+        )
+        move_instrument(
+            s,
+            actor="priya",
+            instrument="clerk-video-rate",
+            to="rejected",
+            reason="The clerk reaches emergency visits through follow-up booking (zero-first-stage check).",
+        )
+    return found
 
 
 def _documents(registry: Any, out: Path) -> list[str]:
