@@ -74,10 +74,10 @@ DEFAULT_DIAGNOSTICS: tuple[str, ...] = (
     "Durbin–Wu–Hausman endogeneity test",
 )
 DEVIATIONS_TEXT = (
-    "Every estimation run is compared with this frozen plan by `ivdossier plan compare`, which lists each "
+    "Every estimation run is compared with this frozen plan by the plan comparison command, which lists each "
     "difference in specification, sample, controls, covariance and instrument set. The report will show "
     "results under the planned specification first; any other specification will be labelled as a deviation, "
-    "with the reason and the date it was decided. Decision rules are applied exactly as written below."
+    "with the reason and the date it was decided. The decision rules are applied exactly as written in this plan."
 )
 
 

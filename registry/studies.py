@@ -539,7 +539,10 @@ def citation(study: Study) -> str:
         who = f"{surnames[0]} and {surnames[1]}"
     else:
         who = f"{surnames[0]} et al."
-    return f"{who} ({study.year})" if study.year is not None else who
+    if study.year is not None:
+        return f"{who} ({study.year})"
+    raw_year = str(((study.extra or {}).get("bibtex") or {}).get("year", "")).strip()
+    return f"{who} ({latex_to_text(raw_year)})" if raw_year else who
 
 
 @dataclass(frozen=True)
