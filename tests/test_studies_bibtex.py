@@ -53,6 +53,14 @@ def test_import_decodes_accents_and_braces_and_keeps_missing_fields_empty(reg: R
     assert got["Garcia2024"][1] == "García, Lucía"
     assert got["Garcia2024"][3] is None  # year "forthcoming" is not a number; the raw text is kept
     assert got["Garcia2024"][6]["year"] == "forthcoming"  # type: ignore[index]
+    with reg.reading() as s:
+        cites = {st.key: studies.citation(st) for st in s.exec(select(Study))}
+    assert cites == {
+        "Nakamura2019": "Nakamura et al. (2019)",
+        "Okafor2021": "Okafor and Lindqvist (2021)",
+        "Doe2023": "Doe2023",
+        "Garcia2024": "García (forthcoming)",
+    }
 
 
 def test_bibtex_round_trip_is_faithful(reg: Registry, tmp_path: Path) -> None:
