@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import difflib
 import json
+import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -49,8 +50,10 @@ def condition_text(cond: Mapping[str, Any]) -> str:
 
 
 def _code(text: str) -> str:
-    """A code span for generated identifiers (paths from rules); backticks inside are dropped."""
-    return "`" + text.replace("`", "") + "`"
+    """A code span for generated values (hashes, the power formula); anything else is escaped as plain text."""
+    if not re.fullmatch(r"[A-Za-z0-9 ()*/^+=_,.\-]+", text) or text.startswith(mt.BADGE_PREFIX):
+        return mt.inline(text)
+    return "`" + text + "`"
 
 
 def plan_markdown(sealed: Mapping[str, Any], *, state: str, sha256: str = "") -> str:
@@ -197,7 +200,7 @@ def _rules(rules: Sequence[Mapping[str, Any]]) -> str:
         if rule.get("description"):
             lines.append(mt.block(rule["description"]))
         lines.append(
-            f"- **When:** {_code(condition_text(rule.get('when') or {}))}\n"
+            f"- **When:** {mt.inline(condition_text(rule.get('when') or {}))}\n"
             f"- **Then:** {mt.inline(rule.get('then'))}\n"
             f"- **Otherwise:** {mt.inline(rule.get('otherwise'))}"
         )

@@ -56,8 +56,13 @@ def test_sections_in_order_and_rules_as_readable_conditions() -> None:
         "## What this plan cannot settle",
     ]
     assert f"SHA-256 of the canonical form: `{sha256_of(sealed)}`" in md
+    # a rule path that imitates a verdict badge marker is plain escaped text, never a code span
+    hostile = _sealed()
+    hostile["content"]["decision_rules"][0]["when"] = {"statistic": "verdict:holds", "op": ">=", "value": 1}
+    assert "`verdict:" not in plan_markdown(hostile, state="draft")
     assert (
-        "- **When:** `strength.effective_f.statistic ≥ strength.effective_f.critical_values.tau_10pct`" in md
+        "- **When:** strength.effective\\_f.statistic ≥ strength.effective\\_f.critical\\_values.tau\\_10pct"
+        in md
     )
     assert "| fibre | DG-E01 | Roads | exclusion | open | placebo-outcome (ivdossier falsify placebo) |" in md
     assert "Statistics cannot establish exclusion or exogeneity." in md and "need domain review" in md
