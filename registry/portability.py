@@ -806,7 +806,8 @@ def import_registry(
             else "rename the clashing entities"
         )
         raise ConflictError(
-            f"import refused, nothing was written: {len(conflicts)} conflicts: {shown}{more}; {hint}."
+            f"import refused, nothing was written: {len(conflicts)} conflicting "
+            f"{'entity' if len(conflicts) == 1 else 'entities'}: {shown}{more}; {hint}."
         )
     known_events = {dumps_event(event_document(ev)) for ev in session.exec(select(AuditEvent))}
     new_events = [values for line, values in content.events if line not in known_events]

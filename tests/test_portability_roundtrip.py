@@ -279,7 +279,7 @@ def test_changed_entities_are_conflicts_resolved_only_by_a_chosen_flag(tmp_path:
         events_before = _count(target, AuditEvent)
         with pytest.raises(
             ConflictError,
-            match=r"import refused, nothing was written: 1 conflicts: program 'tele' \(.*\): differs from the "
+            match=r"import refused, nothing was written: 1 conflicting entity: program 'tele' \(.*\): differs from the "
             r"registry \(registry version 2, export version 2\); rerun with --on-conflict keep-registry",
         ):
             _import(target, folder)
