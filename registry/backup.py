@@ -82,6 +82,23 @@ def _copy(source: Path, destination: Path) -> None:
         src.close()
 
 
+def _match_page_size(staged: Path, target: Path) -> None:
+    """A WAL-mode destination only accepts a backup with its own page size: rewrite the staged copy to match."""
+    conn = sqlite3.connect(str(target), timeout=30)
+    try:
+        size = int(conn.execute("PRAGMA page_size").fetchone()[0])
+    finally:
+        conn.close()
+    conn = sqlite3.connect(str(staged))
+    try:
+        if int(conn.execute("PRAGMA page_size").fetchone()[0]) != size:
+            conn.execute("PRAGMA journal_mode=DELETE")
+            conn.execute(f"PRAGMA page_size={size}")
+            conn.execute("VACUUM")
+    finally:
+        conn.close()
+
+
 def backup_registry(db: str | None, destination: str | Path, *, replace: bool = False) -> BackupSummary:
     """Copy the registry into `destination` as one consistent snapshot, even while others are writing."""
     source = sqlite_path(db)
@@ -134,7 +151,20 @@ def restore_registry(source: str | Path, db: str | None, *, replace: bool = Fals
             )
     if not target.parent.is_dir():
         raise InvalidInputError(f"the folder {str(target.parent)!r} does not exist; create it first.")
-    _copy(src, target)
+    staged = target.with_name(f".{target.name}.restore")
+    staged.unlink(missing_ok=True)
+    try:
+        _copy(src, staged)
+        if target.exists() and target.stat().st_size > 0:
+            _match_page_size(staged, target)
+        try:
+            _copy(staged, target)
+        except sqlite3.OperationalError as exc:
+            raise InvalidInputError(
+                f"cannot restore into {str(target)!r} ({exc}); close other programs using the registry and retry."
+            ) from exc
+    finally:
+        staged.unlink(missing_ok=True)
     registry = open_registry(str(target))  # upgrades an older schema
     registry.dispose()
     schema_now, events = _inspect(target)

@@ -12,6 +12,7 @@ from pathlib import Path
 import pytest
 from sqlalchemy import create_engine
 
+from ivdossier.registry import instruments as reg
 from ivdossier.registry import records
 from ivdossier.registry import threats as thr
 from ivdossier.registry.backup import restore_registry
@@ -68,5 +69,21 @@ def test_restoring_an_old_backup_upgrades_it(tmp_path: Path) -> None:
     try:
         with registry.reading() as s:
             assert records.get(s, Program, "tele").title == "Télésanté & urgences <i>rural</i>"
+    finally:
+        registry.dispose()
+
+
+def test_restoring_an_old_backup_over_a_live_registry_replaces_it(tmp_path: Path) -> None:
+    """The fixture uses 1,024-byte pages; a live WAL registry uses 4,096: the restore adapts the copy first."""
+    live = str(tmp_path / "live.sqlite")
+    registry = open_registry(live)
+    try:
+        with registry.writing() as s:
+            reg.add_program(s, actor="ana", slug="mine", title="Mine")
+        summary = restore_registry(FIXTURES / "registry-0001.sqlite", live, replace=True)
+        assert summary.schema == SCHEMA_HEAD
+        with registry.reading() as s:  # the open registry sees the restored content
+            assert records.find(s, Program, "mine") is None
+            assert records.get(s, Program, "tele").version == 1
     finally:
         registry.dispose()
