@@ -122,3 +122,36 @@ def test_change_committed_between_read_and_write_is_named_in_the_conflict(pg_ser
             assert (prog.title, prog.notes, prog.version) == ("A", "ben's", 2)
     finally:
         registry.dispose()
+
+
+@pytest.mark.postgres
+def test_racing_creates_of_one_slug_leave_one_row_and_one_clear_conflict(pg_server: Any) -> None:
+    """Both writers pass the 'name free?' check; the unique index decides and the loser gets a ConflictError."""
+    registry = open_registry(pg_server.create_database())
+    barrier = threading.Barrier(2, timeout=20)
+    outcomes: dict[str, BaseException | None] = {}
+
+    def writer(name: str) -> None:
+        try:
+            with registry.writing() as s:
+                assert records.find(s, Program, "tele") is None
+                barrier.wait()
+                reg.add_program(s, actor=name, slug="tele", title=f"{name}'s program")
+            outcomes[name] = None
+        except BaseException as exc:
+            outcomes[name] = exc
+
+    threads = [threading.Thread(target=writer, args=(n,)) for n in ("ana", "ben")]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(timeout=60)
+    try:
+        failures = [exc for exc in outcomes.values() if exc is not None]
+        assert len(failures) == 1 and isinstance(failures[0], ConflictError), outcomes
+        assert "an entity with the same name already exists" in str(failures[0])
+        with registry.reading() as s:
+            winner = next(n for n, exc in outcomes.items() if exc is None)
+            assert records.get(s, Program, "tele").title == f"{winner}'s program"
+    finally:
+        registry.dispose()
