@@ -84,6 +84,51 @@ TEAM_THREAT: dict[str, Any] = {
     },
 }
 
+# Two invented earlier studies that used broadband roll-out timing, for the literature audit.
+PRIOR_STUDIES_BIBTEX = r"""
+@article{nakamura2023broadband,
+  author  = {Nakamura, Ren and Sj{\"o}berg, Elin},
+  title   = {Broadband Arrival and Remote Consultations in Rural Clinics},
+  journal = {Invented Journal of Rural Health Services},
+  year    = {2023},
+  doi     = {10.0000/invented.2023.001}
+}
+@article{ferreira2024fibre,
+  author  = {Ferreira, Lu{\'\i}sa and Adeyemi, Tunde},
+  title   = {Fibre Schedules as Natural Experiments in Primary Care},
+  journal = {Invented Review of Health Policy},
+  year    = {2024}
+}
+"""
+# (study key, reported statistics)
+PRIOR_STUDY_STATS: tuple[tuple[str, dict[str, Any]], ...] = (
+    (
+        "nakamura2023broadband",
+        {
+            "estimate": -0.42,
+            "std_error": 0.17,
+            "first_stage_f": 11.5,
+            "f_kind": "robust",
+            "n": 4200,
+            "first_stage_coef": 0.011,
+            "first_stage_se": 0.0032,
+            "reduced_form_coef": -0.0046,
+            "reduced_form_se": 0.0019,
+        },
+    ),
+    (
+        "ferreira2024fibre",
+        {
+            "estimate": -0.8,
+            "std_error": 0.21,
+            "first_stage_f": 48.0,
+            "f_kind": "cluster",
+            "n": 9100,
+            "n_clusters": 140,
+        },
+    ),
+)
+
 # (instrument, threat code, state, argument, evidence)
 LINKS: tuple[tuple[str, str, str, str, str], ...] = (
     (
@@ -238,6 +283,8 @@ def build_demo(
         summary["instruments"] = [spec["slug"] for spec in INSTRUMENTS]
         summary["links"] = _link_threats(registry, actor)
         say(f"linked {summary['links']} catalogue threats and recorded {len(RATINGS)} ratings")
+        summary["studies"] = _prior_studies(registry)
+        say(f"imported {summary['studies']} invented earlier studies for the literature audit")
         summary["runs"] = _estimate(registry, csv_path, actor)
         say(f"stored {len(summary['runs'])} estimation runs")
         summary["checks"] = _checks(registry, csv_path, actor)
@@ -272,6 +319,25 @@ def _link_threats(registry: Any, actor: str) -> int:
         for member, link, likelihood, severity, comment in RATINGS:
             rate_link(s, actor=member, link=link, likelihood=likelihood, severity=severity, comment=comment)
     return len(LINKS)
+
+
+def _prior_studies(registry: Any) -> int:
+    from ivdossier.registry.studies import attach, critique, import_bibtex, report_stats
+
+    with registry.writing() as s:
+        studies = import_bibtex(s, actor="amara", text=PRIOR_STUDIES_BIBTEX, source="demo")
+        for key, stats in PRIOR_STUDY_STATS:
+            report_stats(s, actor="amara", key=key, values=stats)
+            attach(s, actor="amara", key=key, family="distance-geography")
+        critique(
+            s,
+            actor="jonas",
+            key="nakamura2023broadband",
+            threat="DG-I01",
+            by="ferreira2024fibre",
+            note="Early-wave districts were wealthier suburbs.",
+        )
+    return len(studies)
 
 
 def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:

@@ -197,6 +197,7 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
         for e in events
     )
     return ri.DossierInput(
+        extra_sections=_prior_uses(session, inst),
         program=ri.ProgramInfo(
             slug=program.slug,
             title=program.title,
@@ -221,6 +222,17 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
         graph=graph,
         audit=audit,
     )
+
+
+def _prior_uses(session: Session, instrument: Instrument) -> tuple[str, ...]:
+    """The literature audit of studies attached to the instrument or its family, when there are any."""
+    from ivdossier.registry.studies import audit_inputs
+    from ivdossier.reports.audit_doc import audit_section_markdown, build_audit
+
+    inputs = audit_inputs(session, instrument=instrument.slug)
+    if not inputs.studies:
+        return ()
+    return (audit_section_markdown(build_audit(inputs), inputs),)
 
 
 def write_dossier(session: Session, slug: str, out: Path, *, generated_at: datetime | str) -> Path:

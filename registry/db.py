@@ -194,6 +194,8 @@ def upgrade(engine: Engine, revision: str = "head") -> None:
 
 def open_registry(db: str | None = None, *, migrate: bool = True) -> Registry:
     """Open (and create or upgrade if needed) the registry named by --db, $IVDOSSIER_DB or the default file."""
+    import ivdossier.registry.plans  # noqa: F401  (registers the guard that keeps frozen plans read-only)
+
     url = resolve_url(db)
     engine = make_engine(url)
     try:

@@ -52,6 +52,7 @@ def dossier_markdown(inp: DossierInput) -> str:
         _argument(inp, verdicts),
         _diagram(inp),
         estimates_markdown(inp, run),
+        *inp.extra_sections,
         provenance_markdown(inp),
         _cautions(),
     ]

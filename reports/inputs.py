@@ -251,11 +251,15 @@ class DossierInput:
     runs: tuple[RunInfo, ...] = ()
     graph: GraphInfo | None = None
     audit: tuple[AuditEvent, ...] = ()
+    # Whole "##" sections built by other report builders that escape their own user text (e.g. the literature
+    # audit); placed after the estimates. Never put raw user text here.
+    extra_sections: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "links", _as_tuple(self.links))
         object.__setattr__(self, "runs", _as_tuple(self.runs))
         object.__setattr__(self, "audit", _as_tuple(self.audit))
+        object.__setattr__(self, "extra_sections", _as_tuple(self.extra_sections))
 
     @property
     def generated_text(self) -> str:
