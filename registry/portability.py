@@ -15,6 +15,7 @@ writes in one transaction: it adds what is new, leaves identical entities alone 
 from __future__ import annotations
 
 import json
+import math
 import os
 import re
 from collections.abc import Iterable, Mapping, Sequence
@@ -374,9 +375,18 @@ def _unique_pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     return out
 
 
+def _finite_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):
+        raise ValueError(f"number {text[:30]} is too large for a float")
+    return value
+
+
 def load_json_text(text: str) -> Any:
-    """Strict JSON: no NaN/Infinity, no repeated keys."""
-    return json.loads(text, parse_constant=_no_constants, object_pairs_hook=_unique_pairs)
+    """Strict JSON: no NaN/Infinity (spelled out or overflowing), no repeated keys."""
+    return json.loads(
+        text, parse_constant=_no_constants, parse_float=_finite_float, object_pairs_hook=_unique_pairs
+    )
 
 
 def _read_text(path: Path, rel: str, problems: Problems) -> str | None:

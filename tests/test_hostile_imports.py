@@ -228,3 +228,19 @@ def test_export_folder_problems_are_listed_together(export_template: Path, tmp_p
     assert "program/tele.json is not UTF-8 text" in message
     assert "'evil' is not part of an export" in message
     assert message.endswith("fix these files and import again.")
+
+
+def test_numbers_json_cannot_carry_are_refused(export_template: Path, tmp_path: Path) -> None:
+    folder = tmp_path / "export"
+    shutil.copytree(export_template, folder)
+    text = (folder / "instrument" / "fibre.json").read_text()
+    (folder / "instrument" / "fibre.json").write_text(text.replace('"columns": [', '"columns": [1e400, '))
+    (folder / "member" / "ana.json").write_text(
+        (folder / "member" / "ana.json").read_text().replace('"name": ""', '"name": NaN')
+    )
+    with pytest.raises(InvalidInputError) as info:
+        read_export(folder)
+    assert "instrument/fibre.json is not valid JSON (number 1e400 is too large for a float)" in str(
+        info.value
+    )
+    assert "member/ana.json is not valid JSON (NaN is not valid JSON)" in str(info.value)
