@@ -413,15 +413,16 @@ def _parse_json_file(path: Path, rel: str, problems: Problems) -> Any:
         return None
 
 
-def _json_has_nul(value: Any, depth: int = 0) -> bool:
+def _json_unstorable(value: Any, depth: int = 0) -> bool:
+    """True when a JSON value holds text no backend can store (NUL, lone surrogates) or nests absurdly deep."""
     if depth > 200:
         return True
     if isinstance(value, str):
-        return "\x00" in value
+        return "\x00" in value or not records.is_utf8(value)
     if isinstance(value, dict):
-        return any(_json_has_nul(k, depth + 1) or _json_has_nul(v, depth + 1) for k, v in value.items())
+        return any(_json_unstorable(k, depth + 1) or _json_unstorable(v, depth + 1) for k, v in value.items())
     if isinstance(value, list):
-        return any(_json_has_nul(v, depth + 1) for v in value)
+        return any(_json_unstorable(v, depth + 1) for v in value)
     return False
 
 
@@ -464,8 +465,10 @@ def _check_value(col: Column[Any], value: Any, where: str, problems: Problems) -
             problems.add(f"{where} must be a number")
         return value
     if isinstance(ctype, JSON):
-        if _json_has_nul(value):
-            problems.add(f"{where} contains a NUL character or nests deeper than 200 levels")
+        if _json_unstorable(value):
+            problems.add(
+                f"{where} contains a NUL character, text that is not UTF-8, or nests deeper than 200 levels"
+            )
         return value
     if not isinstance(value, str):
         problems.add(f"{where} must be a string, got {type(value).__name__}")
@@ -473,6 +476,8 @@ def _check_value(col: Column[Any], value: Any, where: str, problems: Problems) -
     limit = getattr(ctype, "length", None) or MAX_TEXT
     if "\x00" in value:
         problems.add(f"{where} contains a NUL character")
+    elif not records.is_utf8(value):
+        problems.add(f"{where} contains text that is not UTF-8 (a lone surrogate escape)")
     elif len(value) > limit:
         problems.add(f"{where} is {len(value):,} characters long; the limit is {limit:,}")
     return value

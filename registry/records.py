@@ -139,6 +139,15 @@ def audit(
     return event
 
 
+def is_utf8(value: str) -> bool:
+    """False for strings holding lone surrogates (undecodable bytes from the command line or a file)."""
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
 def check_columns(obj: Entity, values: Mapping[str, Any] | None = None) -> None:
     """Refuse text a column cannot hold on every backend (NUL characters, values over the column length).
 
@@ -151,6 +160,10 @@ def check_columns(obj: Entity, values: Mapping[str, Any] | None = None) -> None:
             continue
         if "\x00" in value:
             raise InvalidInputError(f"{obj.kind} {name} contains a NUL character; remove it and try again.")
+        if not is_utf8(value):
+            raise InvalidInputError(
+                f"{obj.kind} {name} contains bytes that are not UTF-8 text; re-save the text as UTF-8 and retry."
+            )
         limit = getattr(columns[name].type, "length", None)
         if limit is not None and len(value) > limit:
             raise InvalidInputError(

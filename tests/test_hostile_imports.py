@@ -244,3 +244,14 @@ def test_numbers_json_cannot_carry_are_refused(export_template: Path, tmp_path: 
         info.value
     )
     assert "member/ana.json is not valid JSON (NaN is not valid JSON)" in str(info.value)
+
+
+def test_lone_surrogate_escapes_are_refused(export_template: Path, tmp_path: Path) -> None:
+    folder = tmp_path / "export"
+    shutil.copytree(export_template, folder)
+    path = folder / "instrument" / "clerk.json"
+    path.write_text(path.read_text().replace('"name": "Clerk"', '"name": "Cl\\ud800rk"'))
+    with pytest.raises(
+        InvalidInputError, match=r"instrument/clerk.json field name contains text that is not UTF-8"
+    ):
+        read_export(folder)

@@ -224,3 +224,10 @@ def test_refused_writes_name_the_field_and_the_fix(sqlite_path: str) -> None:
         records.edit(s, records.get(s, Program, "tele"), {"unit": "u" * 201}, actor="ana")
     with pytest.raises(IvdossierError, match=r"slug '\.\./x' is not allowed"), registry.writing() as s:
         reg.add_instrument(s, actor="ana", program="tele", slug="../x", name="x")
+
+
+def test_undecodable_command_line_bytes_are_refused_not_crashing(cli) -> None:  # type: ignore[no-untyped-def]
+    # Linux hands undecodable argv bytes to Python as lone surrogates (surrogateescape), e.g. b"\xff" -> "\udcff".
+    code, _, err = cli("program", "add", "tele", "--title", "caf\udcff")
+    assert code == 2 and "program title contains bytes that are not UTF-8 text" in err
+    assert cli("program", "list", "--json")[1].strip() == "[]"
