@@ -47,7 +47,9 @@ def concurrent(db: str, workers: int, rounds: int) -> None:
     audit_gap = outcome.audit_events - outcome.setup_events - outcome.successful_writes
     print(
         f"  {workers} processes x {rounds} rounds: {outcome.successful_writes} writes in {outcome.seconds:.1f} s "
-        f"= {outcome.successful_writes / outcome.seconds:.0f} writes/s (incl. process start); "
+        f"= {outcome.successful_writes / outcome.seconds:.0f} writes/s including process start, "
+        f"{outcome.successful_writes / outcome.write_seconds:.0f} writes/s while writing "
+        f"({outcome.write_seconds:.1f} s); "
         f"{outcome.conflicts} refused stale attempts retried; lost updates {lost}; "
         f"audit events minus writes {audit_gap}; errors {len(outcome.errors)}"
     )

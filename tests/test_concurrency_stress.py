@@ -28,6 +28,8 @@ class WorkerTally:
     writes: dict[str, int] = field(default_factory=dict)
     conflicts: int = 0
     errors: list[str] = field(default_factory=list)
+    started: float = 0.0  # wall-clock time of the first write attempt (after imports and opening)
+    finished: float = 0.0
 
     def count(self, kind: str) -> None:
         self.writes[kind] = self.writes.get(kind, 0) + 1
@@ -105,6 +107,7 @@ def run_worker(db_url: str, worker: int, rounds: int) -> WorkerTally:
             return
         tally.errors.append(f"increment: still conflicting after {MAX_ATTEMPTS} attempts")
 
+    tally.started = time.time()
     try:
         for i in range(rounds):
             slug = f"{me}-z{i}"
@@ -140,6 +143,7 @@ def run_worker(db_url: str, worker: int, rounds: int) -> WorkerTally:
     except Exception:
         tally.errors.append(traceback.format_exc())
     finally:
+        tally.finished = time.time()
         registry.dispose()
     return tally
 
@@ -170,6 +174,11 @@ class StressOutcome:
     @property
     def conflicts(self) -> int:
         return sum(t.conflicts for t in self.tallies)
+
+    @property
+    def write_seconds(self) -> float:
+        """From the first worker's first write to the last worker's last: the span the writers overlapped in."""
+        return max(t.finished for t in self.tallies) - min(t.started for t in self.tallies)
 
     @property
     def errors(self) -> list[str]:
