@@ -30,6 +30,7 @@ from numpy.typing import NDArray
 from scipy.sparse.csgraph import connected_components
 
 from ivdossier.errors import EstimationError
+from ivdossier.estimation.linalg import Projector
 
 Array = NDArray[np.float64]
 
@@ -187,25 +188,18 @@ def _columns(values: np.ndarray | Sequence[np.ndarray] | None, n: int | None) ->
 def _project_out(t: Array, cc: Array, norms: Array) -> tuple[Array, list[int]]:
     """Residualise t on the columns of cc; returns the residuals and the positions of collinear columns.
 
-    Fast path: Cholesky of the column-scaled Gram matrix, used only when it is well conditioned (every
-    diagonal element of the factor above 1e-3, i.e. no column has R^2 above 1 - 1e-6 on the ones before it).
-    Otherwise a Householder QR in the given column order detects collinear columns and projects exactly.
+    Fast path: :class:`~ivdossier.estimation.linalg.Projector` with a well-conditioned scaled Gram matrix
+    (then no column is near-collinear). Otherwise a Householder QR in the given column order detects the
+    collinear columns and the projection on the others is exact.
     """
-    s = 1.0 / norms
-    gram = (cc.T @ cc) * np.outer(s, s)
-    try:
-        chol = np.linalg.cholesky(gram)
-        fast = bool(np.diag(chol).min() > 1e-3)
-    except np.linalg.LinAlgError:
-        fast = False
-    if fast:
-        coef = scipy.linalg.cho_solve((chol, True), (cc.T @ t) * s[:, None], check_finite=False) * s[:, None]
-        return t - cc @ coef, []
-    q, r = np.linalg.qr(cc)
+    proj = Projector(cc)
+    if not proj.exact:
+        return proj.residual(t), []
+    r = np.linalg.qr(cc, mode="r")
     keep = np.abs(np.diag(r)) > COLLINEAR_TOL * norms
     if not keep.all():
-        q, _ = np.linalg.qr(cc[:, keep])
-    return t - q @ (q.T @ t), [i for i in range(cc.shape[1]) if not keep[i]]
+        proj = Projector(cc[:, keep])
+    return proj.residual(t), [i for i in range(cc.shape[1]) if not keep[i]]
 
 
 def partial_out(

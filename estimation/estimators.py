@@ -25,6 +25,7 @@ import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.estimation.linalg import Projector, tall_matmul
 
 Array = NDArray[np.float64]
 METHODS: tuple[str, ...] = ("ols", "2sls", "liml", "fuller")
@@ -105,10 +106,18 @@ def _chol_solve_inv(a: Array, b: Array) -> tuple[Array, Array]:
 
 def liml_kappa(y: np.ndarray, X: np.ndarray, Z: np.ndarray) -> float:
     """Smallest eigenvalue of (W'M_Z W)^{-1} W'W with W = [y, X]; equals 1 when exactly identified."""
-    w = np.column_stack([y, X])
-    q, _ = np.linalg.qr(Z)
-    qw = q.T @ w
-    ww = w.T @ w
+    yv = np.asarray(y, dtype=np.float64).ravel()
+    x = np.asarray(X, dtype=np.float64)
+    x = x[:, None] if x.ndim == 1 else x
+    proj = Projector(Z)
+    return _liml_kappa_from(yv, x, proj.coords(yv), proj.coords(x))
+
+
+def _liml_kappa_from(y: Array, x: Array, qy: Array, qx: Array) -> float:
+    """LIML kappa from the data and their coordinates Q'y, Q'X in an orthonormal basis of the instruments."""
+    qw = np.column_stack([qy, qx])
+    xy = x.T @ y
+    ww = np.block([[np.atleast_2d(y @ y), xy[None, :]], [xy[:, None], x.T @ x]])
     wmw = ww - qw.T @ qw
     try:
         vals = scipy.linalg.eigh(ww, wmw, eigvals_only=True, check_finite=False)
@@ -139,6 +148,9 @@ def fit_kclass(
         x = x[:, None]
     n, k = x.shape
     if method == "ols":
+        if not Projector(x).exact:  # well-conditioned: Cholesky of X'X is as accurate as QR here
+            beta, bread = _chol_solve_inv(x.T @ x, x.T @ yv)
+            return KClassFit("ols", beta, 0.0, None, tall_matmul(x, beta, subtract_from=yv), x, bread)
         q, r = np.linalg.qr(x)
         if np.any(np.abs(np.diag(r)) <= RANK_TOL * np.sqrt(np.einsum("ij,ij->j", x, x))):
             raise EstimationError("The regressors are collinear; drop the redundant regressor.")
@@ -159,16 +171,16 @@ def fit_kclass(
             f"{n_inst} excluded instrument(s) for {k} endogenous regressor(s): the model is not identified; "
             "add instruments or remove endogenous regressors."
         )
-    qz, _ = np.linalg.qr(z)
-    qx = qz.T @ x
-    qy = qz.T @ yv
-    xhat = qz @ qx
+    proj = Projector(z)
+    qx = proj.coords(x)
+    qy = proj.coords(yv)
+    xhat = proj.fitted(qx)
     k_liml: float | None = None
     if kappa is None:
         if method == "2sls":
             kappa = 1.0
         else:
-            k_liml = liml_kappa(yv, x, z)
+            k_liml = _liml_kappa_from(yv, x, qy, qx)
             kappa = k_liml
             if method == "fuller":
                 kappa = k_liml - fuller_alpha / (n - (n_inst + n_partialled))
@@ -182,5 +194,5 @@ def fit_kclass(
         a = (1.0 - kappa) * xx + kappa * (qx.T @ qx)
         b = (1.0 - kappa) * (x.T @ yv) + kappa * (qx.T @ qy)
         beta, bread = _chol_solve_inv(a, b)
-    resid = yv - x @ beta
+    resid = tall_matmul(x, beta, subtract_from=yv)
     return KClassFit(method, np.asarray(beta, dtype=np.float64), float(kappa), k_liml, resid, xhat, bread)
