@@ -21,7 +21,7 @@ cluster factor, because the cluster-robust meat already allows for them.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
@@ -44,6 +44,7 @@ class CovSpec:
     kind: CovKind
     clusters: tuple[np.ndarray, ...] = ()
     small_sample: bool = True
+    _counts: tuple[int, ...] = field(default=(), init=False, repr=False)
 
     def __post_init__(self) -> None:
         if self.kind not in COV_KINDS:
@@ -75,10 +76,12 @@ class CovSpec:
                 f"Cluster codes were given with covariance kind {self.kind!r}; "
                 "use kind 'cluster' or drop them."
             )
+        counts = tuple(int(np.count_nonzero(np.bincount(c))) for c in self.clusters)
+        object.__setattr__(self, "_counts", counts)
 
     def n_clusters(self) -> tuple[int, ...]:
         """Number of distinct clusters in each cluster dimension (empty tuple when not clustered)."""
-        return tuple(int(np.count_nonzero(np.bincount(c))) for c in self.clusters)
+        return self._counts
 
 
 def df_resid(n: int, k: int, n_partialled: int) -> int:
