@@ -238,28 +238,21 @@ def test_one_absorbed_fixed_effect_on_card_matches_dummies(card):
     assert ours.fe_levels == (9,)
 
 
-def test_large_sample_formulas_match_debiased_false(card):
-    # source: linearmodels IV2SLS fit(debiased=False) = our small_sample=False (HC0, normal quantiles)
+@pytest.mark.parametrize("method", ["2sls", "liml"])
+@pytest.mark.parametrize("vcov", ["unadjusted", "robust", "cluster"])
+def test_large_sample_formulas_match_debiased_false(card, method, vcov):
+    # source: linearmodels fit(debiased=False) = our small_sample=False (e'e/n, HC0, CR0; normal quantiles)
+    cluster = ["state_block"] if vcov == "cluster" else []
+    spec: dict[str, Any] = dict(outcome="lwage", instruments=["nearc4", "nearc2"], controls=CARD_CONTROLS)
     ours = estimate(
-        card,
-        outcome="lwage",
-        treatment="educ",
-        instruments=["nearc4", "nearc2"],
-        controls=CARD_CONTROLS,
-        vcov="robust",
-        small_sample=False,
+        card, treatment="educ", cluster=cluster or None, method=method, vcov=vcov, small_sample=False, **spec
     )
     ref = reference_fit(
-        card,
-        outcome="lwage",
-        treatment=["educ"],
-        instruments=["nearc4", "nearc2"],
-        controls=CARD_CONTROLS,
-        vcov="robust",
-        debiased=False,
+        card, treatment=["educ"], cluster=cluster, method=method, vcov=vcov, debiased=False, **spec
     )
     assert_matches(ours, ref, ["educ"])
     np.testing.assert_allclose(ours.ci[0], ref.conf_int().loc["educ"].to_numpy(), rtol=RTOL)
+    np.testing.assert_allclose(ours.pvalue, ref.pvalues[["educ"]].to_numpy(), rtol=1e-7)
 
 
 def test_intervals_use_t_quantiles_like_debiased_linearmodels(card):
