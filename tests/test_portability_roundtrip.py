@@ -364,3 +364,26 @@ def test_cli_export_import_and_their_mistakes(cli, sqlite_path: str, tmp_path: P
         code == 2
         and "--on-conflict 'merge' is not known; use one of: stop, keep-registry, take-import" in err
     )
+
+
+def test_cli_dry_run_reports_conflicts_and_writes_nothing(cli, sqlite_path: str, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    registry = open_registry(sqlite_path)
+    build_rich_registry(registry)
+    registry.dispose()
+    assert cli("export", str(tmp_path / "dump"))[0] == 0
+    assert cli("program", "edit", "tele", "--unit", "patient")[0] == 0
+    assert cli("program", "add", "extra", "--title", "Extra")[0] == 0
+    code, out, _ = cli("import", str(tmp_path / "dump"), "--dry-run")
+    assert code == 0
+    lines = out.splitlines()
+    assert lines[0] == "would add nothing and 0 audit events"
+    assert (
+        lines[-1].startswith("conflict: program 'tele' (")
+        and "registry version 2, export version 1" in lines[-1]
+    )
+    code, _, err = cli("import", str(tmp_path / "dump"))
+    assert code == 4 and "import refused, nothing was written: 1 conflicting entity: program 'tele'" in err
+    (tmp_path / "notes").mkdir()
+    (tmp_path / "notes" / "todo.md").write_text("x")
+    code, _, err = cli("export", str(tmp_path / "notes"))
+    assert code == 2 and "already holds files that are not an ivdossier export (todo.md)" in err
