@@ -208,5 +208,24 @@ def open_registry(db: str | None = None, *, migrate: bool = True) -> Registry:
                 f"the registry at {url!r} is at schema {rev or 'none'}, not {SCHEMA_HEAD}; "
                 "open it once with migrations enabled."
             )
-        upgrade(engine)
+        _upgrade_once(engine)
     return Registry(url=url, engine=engine)
+
+
+def _upgrade_once(engine: Engine, attempts: int = 5) -> None:
+    """Upgrade, tolerating other processes that open the same new registry at the same moment.
+
+    Migrations run in one transaction, so a process that loses the race fails on "table already exists"
+    after the winner committed; it then finds the schema at the head and carries on.
+    """
+    for attempt in range(1, attempts + 1):
+        try:
+            upgrade(engine)
+            return
+        except DBAPIError:
+            engine.dispose()
+            if current_revision(engine) == SCHEMA_HEAD:
+                return
+            if attempt == attempts:
+                raise
+            time.sleep(0.05 * attempt)
