@@ -9,6 +9,7 @@ import typer
 
 from ivdossier.cli.common import JsonFlag, actor, reading, writing
 from ivdossier.cli.output import print_json, print_record, print_table
+from ivdossier.errors import ConflictError, InvalidInputError
 
 threat_app = typer.Typer(
     help="The threat catalogue: built-in entries and the team's own.", no_args_is_help=True
@@ -96,14 +97,18 @@ def threat_new(
     json_out: JsonFlag = False,
 ) -> None:
     """Add the team's own catalogue entry from a TOML file (validated like the built-ins)."""
-    from ivdossier.registry.threats import add_team_threat
-    from ivdossier.threats_catalog.catalog import load_entry_file
+    import tomllib
 
-    entry = load_entry_file(file)
+    from ivdossier.registry.threats import add_team_threat
+    from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
+
+    try:
+        data = tomllib.loads(file.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise InvalidInputError(f"cannot read {str(file)!r} as a TOML catalogue entry: {exc}") from exc
+    entry = CatalogThreat.from_dict(data, source=str(file))
     with writing() as s:
         if entry.code in _catalog(s):
-            from ivdossier.errors import ConflictError
-
             raise ConflictError(
                 f"threat code {entry.code!r} is already in the catalogue; choose another 'T-' code."
             )
@@ -122,8 +127,6 @@ def threat_suggest(instrument: str, json_out: JsonFlag = False) -> None:
     with reading() as s:
         inst = records.get(s, Instrument, instrument)
         if not inst.family:
-            from ivdossier.errors import InvalidInputError
-
             raise InvalidInputError(
                 f"instrument {instrument!r} has no family; set one with `instrument edit --family`."
             )
@@ -186,7 +189,6 @@ def graph_draw(
     instrument: str, out: Annotated[Path, typer.Option("--out", help="SVG file to write.")]
 ) -> None:
     """Write the instrument's causal diagram as a self-contained SVG."""
-    from ivdossier.errors import InvalidInputError
     from ivdossier.threats_catalog.draw import render_svg
 
     if out.suffix.lower() != ".svg":
