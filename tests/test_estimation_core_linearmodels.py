@@ -195,6 +195,7 @@ def test_two_way_cluster_matches_linearmodels(simulated, method):
     assert ours.n_clusters == (60, 8)
 
 
+@pytest.mark.slow  # the linearmodels reference with ~70 dummy columns takes seconds
 @pytest.mark.parametrize("method", ["2sls", "liml", "fuller"])
 @pytest.mark.parametrize("vcov", ["unadjusted", "robust"])
 def test_absorbed_fixed_effects_match_dummy_regression(simulated, method, vcov):
@@ -324,6 +325,7 @@ def test_ols_matches_linearmodels_ols(simulated):
     assert_matches(ours, ref, ["x1", "x2"])
 
 
+@pytest.mark.slow  # the linearmodels reference with ~70 dummy columns takes seconds
 @pytest.mark.parametrize("method", ["2sls", "fuller"])
 def test_absorbed_fixed_effects_with_non_nested_cluster(simulated, method):
     # source: linearmodels IV2SLS / IVLIML(fuller=1) with firm and year dummies, clustered on zone, debiased=True;
