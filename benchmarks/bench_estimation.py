@@ -8,6 +8,9 @@ diagnostic) against linearmodels IV2SLS(...).fit(cov_type="clustered") plus its 
     .venv/bin/python benchmarks/bench_estimation.py --n 10000000    # n = 1e7 (reference skipped if RAM is short)
     .venv/bin/python benchmarks/bench_estimation.py --two-way-fe    # also absorb two FEs, 100,000 levels each
 
+Multithreaded OpenBLAS can be much slower on tall-and-skinny products on small machines; run once more with
+OPENBLAS_NUM_THREADS=1 in the environment to see both libraries without that effect.
+
 Peak memory is measured with tracemalloc (numpy registers its allocations there) in a separate run, and
 reported relative to the size of the numeric data (float64 columns plus int64 cluster codes).
 """
