@@ -19,7 +19,7 @@ import pandas as pd
 from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.result import json_value
+from ivdossier.jsonsafe import json_safe
 
 __all__ = [
     "ComplierMeans",
@@ -165,7 +165,7 @@ class ComplierShares:
             }
             for name in ("complier", "always_taker", "never_taker")
         }
-        return json_value(
+        return json_safe(
             {
                 "shares": shares,
                 "p_treated_given_z1": self.p_treated_given_z1,
@@ -297,7 +297,7 @@ class CovariateProfile:
     complier_to_overall_ratio: float
 
     def to_dict(self) -> dict[str, Any]:
-        return json_value(
+        return json_safe(
             {
                 "covariate": self.covariate,
                 "overall_mean": self.overall_mean,
@@ -305,7 +305,7 @@ class CovariateProfile:
                 "complier_mean_se": self.complier_mean_se,
                 "always_taker_mean": self.always_taker_mean,
                 "never_taker_mean": self.never_taker_mean,
-                "complier_to_overall_ratio": json_value(self.complier_to_overall_ratio),
+                "complier_to_overall_ratio": json_safe(self.complier_to_overall_ratio),
             }
         )
 
@@ -331,7 +331,7 @@ class ComplierMeans:
     seed: int
 
     def to_dict(self) -> dict[str, Any]:
-        return json_value(
+        return json_safe(
             {
                 "profiles": [p.to_dict() for p in self.profiles],
                 "complier_share_kappa": self.complier_share_kappa,
@@ -484,11 +484,11 @@ class IntervalViolation:
     se: float
 
     def to_dict(self) -> dict[str, Any]:
-        return json_value(
+        return json_safe(
             {
                 "arm": self.arm,
-                "lower": json_value(self.lower),
-                "upper": json_value(self.upper),
+                "lower": json_safe(self.lower),
+                "upper": json_safe(self.upper),
                 "density": self.density,
                 "se": self.se,
             }
@@ -524,9 +524,9 @@ class ImplicationCheck:
         return self.most_negative.density < 0
 
     def to_dict(self) -> dict[str, Any]:
-        return json_value(
+        return json_safe(
             {
-                "bin_edges": [json_value(e) for e in self.bin_edges],
+                "bin_edges": [json_safe(e) for e in self.bin_edges],
                 "most_negative": self.most_negative.to_dict(),
                 "statistic": self.statistic,
                 "p_value": self.p_value,

@@ -36,7 +36,7 @@ from ivdossier.estimation.api import estimate_prepared
 from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
-from ivdossier.estimation.result import json_value
+from ivdossier.jsonsafe import json_safe
 
 __all__ = [
     "InstrumentCoefficient",
@@ -80,7 +80,7 @@ class InstrumentCoefficient:
     std_diff_kind: str  # "binary: (mean1 - mean0) / pooled SD" or "continuous: coef * SD(Z) / SD(W)"
 
     def to_dict(self) -> dict[str, Any]:
-        return cast(dict[str, Any], json_value(dict(self.__dict__)))
+        return cast(dict[str, Any], json_safe(dict(self.__dict__)))
 
 
 @dataclass(frozen=True)
@@ -100,9 +100,7 @@ class TargetRegression:
     n: int
 
     def to_dict(self) -> dict[str, Any]:
-        out = cast(
-            dict[str, Any], json_value({k: v for k, v in self.__dict__.items() if k != "coefficients"})
-        )
+        out = cast(dict[str, Any], json_safe({k: v for k, v in self.__dict__.items() if k != "coefficients"}))
         out["coefficients"] = [c.to_dict() for c in self.coefficients]
         return out
 
@@ -117,7 +115,7 @@ class JointTest:
     description: str
 
     def to_dict(self) -> dict[str, Any]:
-        return cast(dict[str, Any], json_value(dict(self.__dict__)))
+        return cast(dict[str, Any], json_safe(dict(self.__dict__)))
 
 
 @dataclass(frozen=True)
@@ -500,7 +498,7 @@ class ZeroFirstStageResult:
     def to_dict(self) -> dict[str, Any]:
         out = cast(
             dict[str, Any],
-            json_value({k: v for k, v in self.__dict__.items() if k not in ("first_stage", "reduced_form")}),
+            json_safe({k: v for k, v in self.__dict__.items() if k not in ("first_stage", "reduced_form")}),
         )
         out["first_stage"] = self.first_stage.to_dict()
         out["reduced_form"] = self.reduced_form.to_dict()
@@ -738,7 +736,7 @@ class JustIdentifiedEstimate:
     difference_from_all: float
 
     def to_dict(self) -> dict[str, Any]:
-        return cast(dict[str, Any], json_value(dict(self.__dict__)))
+        return cast(dict[str, Any], json_safe(dict(self.__dict__)))
 
 
 @dataclass(frozen=True)
@@ -765,7 +763,7 @@ class PerInstrumentResult:
     caution: str
 
     def to_dict(self) -> dict[str, Any]:
-        out = cast(dict[str, Any], json_value({k: v for k, v in self.__dict__.items() if k != "rows"}))
+        out = cast(dict[str, Any], json_safe({k: v for k, v in self.__dict__.items() if k != "rows"}))
         out["rows"] = [r.to_dict() for r in self.rows]
         out["kind"] = "per_instrument"
         return out
@@ -839,7 +837,7 @@ def per_instrument(
         estimate_all=float(res_all.coef[0]),
         se_all=float(res_all.se[0]),
         ci_all=(float(res_all.ci[0, 0]), float(res_all.ci[0, 1])),
-        overid=cast(dict[str, Any], json_value(overid.to_dict())),
+        overid=cast(dict[str, Any], json_safe(overid.to_dict())),
         n=full.n,
         n_dropped=n_dropped,
         vcov=vcov,

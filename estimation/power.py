@@ -31,7 +31,7 @@ import numpy as np
 from scipy import optimize, stats
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.result import json_value
+from ivdossier.jsonsafe import json_safe
 
 __all__ = [
     "FirstStageOutlook",
@@ -76,7 +76,7 @@ class IVDesign:
         return self.n - self.n_instruments - self.n_controls - 1
 
     def to_dict(self) -> dict[str, Any]:
-        return json_value(
+        return json_safe(
             {
                 "n": self.n,
                 "partial_r2": self.partial_r2,
@@ -242,21 +242,21 @@ class FirstStageOutlook:
     tf_critical_value_at_expected_f: float
 
     def to_dict(self) -> dict[str, Any]:
-        return json_value(
+        return json_safe(
             {
-                "plug_in_f": json_value(self.plug_in_f),
-                "expected_f": json_value(self.expected_f),
-                "noncentrality": json_value(self.noncentrality),
+                "plug_in_f": json_safe(self.plug_in_f),
+                "expected_f": json_safe(self.expected_f),
+                "noncentrality": json_safe(self.noncentrality),
                 "critical_values": [
                     {
                         "label": label,
-                        "critical_value": json_value(value),
-                        "probability_exceeded": json_value(prob),
+                        "critical_value": json_safe(value),
+                        "probability_exceeded": json_safe(prob),
                         "source": source,
                     }
                     for label, value, prob, source in self.critical_values
                 ],
-                "tf_critical_value_at_expected_f": json_value(self.tf_critical_value_at_expected_f),
+                "tf_critical_value_at_expected_f": json_safe(self.tf_critical_value_at_expected_f),
             }
         )
 
@@ -322,7 +322,7 @@ class PowerAnalysis:
     assumptions: tuple[str, ...]
 
     def to_dict(self) -> dict[str, Any]:
-        return json_value(
+        return json_safe(
             {
                 "design": self.design.to_dict(),
                 "se": self.se,

@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 from scipy import stats
+
+from ivdossier.jsonsafe import json_safe
 
 Array = NDArray[np.float64]
 DIAGNOSTIC_SECTIONS: tuple[str, ...] = (
@@ -25,28 +26,6 @@ METHOD_LABELS = {
     "liml": "LIML",
     "fuller": "Fuller-modified LIML",
 }
-
-
-def json_value(value: Any) -> Any:
-    """Convert numpy scalars/arrays and non-finite floats to JSON-safe values (+/-inf as "inf"/"-inf")."""
-    if isinstance(value, dict):
-        return {str(k): json_value(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [json_value(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return [json_value(v) for v in value.tolist()]
-    if isinstance(value, np.bool_ | bool):
-        return bool(value)
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, float | np.floating):
-        f = float(value)
-        if math.isnan(f):
-            return None
-        if math.isinf(f):
-            return "inf" if f > 0 else "-inf"
-        return f
-    return value
 
 
 @dataclass(frozen=True)
@@ -124,7 +103,7 @@ class EstimationResult:
         part = getattr(self.diagnostics, name, None)
         if part is None:
             return None
-        return json_value(part.to_dict() if hasattr(part, "to_dict") else part)
+        return json_safe(part.to_dict() if hasattr(part, "to_dict") else part)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-safe dict: coefficients by name, the diagnostics sections, the spec and conventions."""
@@ -135,18 +114,18 @@ class EstimationResult:
             "n": self.n,
             "n_dropped": self.n_dropped,
             "n_clusters": list(self.n_clusters),
-            "coef": {k: json_value(v) for k, v in zip(self.names, self.coef, strict=True)},
-            "se": {k: json_value(v) for k, v in zip(self.names, self.se, strict=True)},
-            "ci": {k: json_value(list(v)) for k, v in zip(self.names, self.ci, strict=True)},
-            "cov": json_value(self.cov),
+            "coef": {k: json_safe(v) for k, v in zip(self.names, self.coef, strict=True)},
+            "se": {k: json_safe(v) for k, v in zip(self.names, self.se, strict=True)},
+            "ci": {k: json_safe(list(v)) for k, v in zip(self.names, self.ci, strict=True)},
+            "cov": json_safe(self.cov),
             "alpha": self.alpha,
             "df_resid": self.df_resid,
             "ci_reference": self.ci_reference,
-            "t": {k: json_value(v) for k, v in zip(self.names, self.tstat, strict=True)},
-            "p_value": {k: json_value(v) for k, v in zip(self.names, self.pvalue, strict=True)},
-            "kappa": json_value(self.kappa),
-            "kappa_liml": json_value(self.kappa_liml),
-            "sigma": json_value(self.sigma),
+            "t": {k: json_safe(v) for k, v in zip(self.names, self.tstat, strict=True)},
+            "p_value": {k: json_safe(v) for k, v in zip(self.names, self.pvalue, strict=True)},
+            "kappa": json_safe(self.kappa),
+            "kappa_liml": json_safe(self.kappa_liml),
+            "sigma": json_safe(self.sigma),
             "partialled": {
                 "columns": self.n_partialled,
                 "absorbed_levels": self.n_absorbed,
@@ -156,7 +135,7 @@ class EstimationResult:
         }
         for name in DIAGNOSTIC_SECTIONS:
             out[name] = self._section(name)
-        out["spec"] = json_value(self.spec)
+        out["spec"] = json_safe(self.spec)
         out["conventions"] = dict(self.conventions)
         return out
 

@@ -42,7 +42,8 @@ from scipy import integrate, optimize, special, stats
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.covariance import CovSpec, sandwich
 from ivdossier.estimation.critical_values import TF_SOURCE, tf_critical_value
-from ivdossier.estimation.strength import as_matrix, denominator_df, f_p_value, json_safe, ols, wald
+from ivdossier.estimation.strength import as_matrix, denominator_df, f_p_value, ols, wald
+from ivdossier.jsonsafe import json_safe
 
 Array = NDArray[np.float64]
 Interval = tuple[float, float]

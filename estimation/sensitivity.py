@@ -42,7 +42,7 @@ from ivdossier.estimation.api import estimate_prepared
 from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, is_psd, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
-from ivdossier.estimation.result import json_value
+from ivdossier.jsonsafe import json_safe
 
 __all__ = [
     "BreakdownResult",
@@ -200,7 +200,7 @@ class GammaInterval:
     upper: float
 
     def to_dict(self) -> dict[str, Any]:
-        return cast(dict[str, Any], json_value(self.__dict__))
+        return cast(dict[str, Any], json_safe(self.__dict__))
 
 
 @dataclass(frozen=True)
@@ -238,7 +238,7 @@ class UnionIntervalResult:
 
     def to_dict(self) -> dict[str, Any]:
         out = {k: v for k, v in self.__dict__.items() if k != "grid"}
-        out = cast(dict[str, Any], json_value(out))
+        out = cast(dict[str, Any], json_safe(out))
         out["grid"] = [g.to_dict() for g in self.grid]
         out["kind"] = "union_of_confidence_intervals"
         return out
@@ -368,7 +368,7 @@ class LocalToZeroResult:
     note: str
 
     def to_dict(self) -> dict[str, Any]:
-        out = cast(dict[str, Any], json_value(dict(self.__dict__)))
+        out = cast(dict[str, Any], json_safe(dict(self.__dict__)))
         out["kind"] = "local_to_zero"
         return out
 
@@ -483,7 +483,7 @@ class BreakdownResult:
     note: str
 
     def to_dict(self) -> dict[str, Any]:
-        out = cast(dict[str, Any], json_value(dict(self.__dict__)))
+        out = cast(dict[str, Any], json_safe(dict(self.__dict__)))
         out["kind"] = "breakdown_value"
         return out
 

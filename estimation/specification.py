@@ -30,7 +30,8 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError
 from ivdossier.estimation.covariance import CovSpec, sandwich
-from ivdossier.estimation.strength import Array, as_matrix, denominator_df, json_safe, ols, wald
+from ivdossier.estimation.strength import Array, as_matrix, denominator_df, ols, wald
+from ivdossier.jsonsafe import json_safe
 
 
 @dataclass(frozen=True)

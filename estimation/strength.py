@@ -47,32 +47,9 @@ from ivdossier.estimation.critical_values import (
     mop_k_eff,
     stock_yogo_applicable,
 )
+from ivdossier.jsonsafe import json_safe
 
 Array = NDArray[np.float64]
-
-
-def json_safe(value: Any) -> Any:
-    """Convert floats, arrays, tuples and dicts to JSON-safe values: +/-inf become "inf"/"-inf", NaN None."""
-    if isinstance(value, dict):
-        return {str(k): json_safe(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [json_safe(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return json_safe(value.tolist())
-    if isinstance(value, bool | np.bool_):
-        return bool(value)
-    if isinstance(value, int | np.integer):
-        return int(value)
-    if isinstance(value, float | np.floating):
-        f = float(value)
-        if math.isnan(f):
-            return None
-        if math.isinf(f):
-            return "inf" if f > 0 else "-inf"
-        return f
-    if hasattr(value, "to_dict"):
-        return value.to_dict()
-    return value
 
 
 def as_matrix(a: np.ndarray, name: str) -> Array:

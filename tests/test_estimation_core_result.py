@@ -11,7 +11,7 @@ import pytest
 from ivdossier.estimation import EstimationResult, estimate
 from ivdossier.estimation.api import estimate_prepared, fit_arrays
 from ivdossier.estimation.data import prepare
-from ivdossier.estimation.result import json_value
+from ivdossier.jsonsafe import json_safe as json_value
 
 TOP_KEYS = {
     "method",
