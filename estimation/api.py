@@ -7,14 +7,14 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Any, cast
+from typing import cast
 
 import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 from scipy import stats
 
-from ivdossier.errors import InvalidInputError
+from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
 from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
@@ -134,14 +134,6 @@ def _interval_quantile(
     return float(stats.t.ppf(1 - alpha / 2, df)), f"t quantiles with {df} degrees of freedom", df
 
 
-def _load_suite() -> Any:
-    try:
-        from ivdossier.estimation.diagnostics import weak_iv_suite
-    except ImportError:
-        return None
-    return weak_iv_suite
-
-
 def estimate_prepared(
     prepared: PreparedData,
     *,
@@ -173,8 +165,9 @@ def estimate_prepared(
     suite = None
     not_applicable = OLS_REASON if method == "ols" else None
     if diagnostics and method != "ols":
-        weak_iv_suite = _load_suite()
-        if weak_iv_suite is not None:
+        from ivdossier.estimation.diagnostics import weak_iv_suite
+
+        try:
             suite = weak_iv_suite(
                 prepared.y,
                 prepared.X,
@@ -189,6 +182,9 @@ def estimate_prepared(
                 instrument_names=list(prepared.instruments),
                 alpha=alpha,
             )
+        except EstimationError as exc:
+            # e.g. no more clusters than instruments: the coefficients stand, the diagnostics cannot be had
+            not_applicable = f"instrument diagnostics not computed: {exc}"
     echo = {
         "outcome": prepared.outcome,
         "treatment": list(prepared.treatment),
