@@ -242,14 +242,25 @@ def instrument_show(slug: str, json_out: JsonFlag = False) -> None:
         print_json(data)
         return
     print_record(
-        [(k, data[k]) for k in ("slug", "name", "program", "family", "columns", "state", "version")]
+        [(k, data[k]) for k in ("slug", "name", "program", "family", "state", "version")]
+        + [("columns", ", ".join(data["columns"] or []) or "(none)")]
         + [(f"{c} claim", data[f"claim_{c}"] or "(not written yet)") for c in CONDITION_OPTS]
     )
     typer.echo("")
     print_table(data["links"], ["code", "condition", "state", "title"], widths={"title": 60})
     if data["raised_elsewhere"]:
         typer.echo("\nraised on other instruments of this family (link or dismiss here):")
-        print_table(data["raised_elsewhere"], ["code", "condition", "title", "raised_on"])
+        rows = [
+            {
+                **r,
+                "raised_on": ", ".join(r["raised_on"])
+                + (
+                    f" (+{r['count'] - len(r['raised_on'])} more)" if r["count"] > len(r["raised_on"]) else ""
+                ),
+            }
+            for r in data["raised_elsewhere"]
+        ]
+        print_table(rows, ["code", "condition", "title", "raised_on"])
 
 
 @instrument_app.command("edit")

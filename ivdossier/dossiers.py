@@ -185,7 +185,7 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
     )
     runs = tuple(run_info(session, r) for r in runs_of(session, inst) if r.run_kind == "estimate")
     link_uuids = {lk.uuid for lk, _ in links_of(session, inst)}
-    events = [e for e in history(session) if e.entity_uuid == inst.uuid or e.entity_uuid in link_uuids]
+    events = history(session, entity_uuids={inst.uuid, *link_uuids})
     audit = tuple(
         ri.AuditEvent(
             when=e.at,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from datetime import datetime
 
 from sqlmodel import Session, select
@@ -13,6 +14,7 @@ def history(
     session: Session,
     *,
     entity_uuid: str | None = None,
+    entity_uuids: Collection[str] | None = None,
     since: datetime | None = None,
     until: datetime | None = None,
     actor: str | None = None,
@@ -22,6 +24,8 @@ def history(
     query = select(AuditEvent)
     if entity_uuid is not None:
         query = query.where(AuditEvent.entity_uuid == entity_uuid)
+    if entity_uuids is not None:
+        query = query.where(AuditEvent.entity_uuid.in_(list(entity_uuids)))  # type: ignore[attr-defined]
     if since is not None:
         query = query.where(AuditEvent.at >= since)
     if until is not None:

@@ -240,11 +240,11 @@ def rating_summaries(session: Session, instrument: Instrument) -> list[RatingSum
 def unrated_links(session: Session, *, member: str, instrument: Instrument | None = None) -> list[Link]:
     """Links the member has not rated yet (optionally within one instrument)."""
     m = records.get(session, Member, member)
-    rated = set(session.exec(select(Rating.link_id).where(Rating.member_id == m.id)))
-    query = select(Link).order_by(Link.slug)
+    rated = select(Rating.link_id).where(Rating.member_id == m.id)
+    query = select(Link).where(Link.id.not_in(rated)).order_by(Link.slug)  # type: ignore[union-attr]
     if instrument is not None:
         query = query.where(Link.instrument_id == instrument.id)
-    return [link for link in session.exec(query) if link.id not in rated]
+    return list(session.exec(query))
 
 
 def dismiss(session: Session, *, actor: str, instrument: str, code: str, reason: str) -> Dismissal:
@@ -261,12 +261,13 @@ def dismiss(session: Session, *, actor: str, instrument: str, code: str, reason:
 
 @dataclass(frozen=True)
 class RaisedElsewhere:
-    """A threat linked to another instrument of the same family and not yet addressed here."""
+    """A threat linked to other instruments of the same family and not yet addressed here."""
 
     code: str
     title: str
     condition: str
-    raised_on: tuple[str, ...]
+    raised_on: tuple[str, ...]  # the first few sibling instruments, by slug
+    count: int  # how many sibling instruments carry the link
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -274,31 +275,38 @@ class RaisedElsewhere:
             "title": self.title,
             "condition": self.condition,
             "raised_on": list(self.raised_on),
+            "count": self.count,
         }
+
+
+RAISED_ON_SHOWN = 5
 
 
 def raised_elsewhere(session: Session, instrument: Instrument) -> list[RaisedElsewhere]:
     """Family propagation: threats linked on siblings of the same family, until linked or dismissed here."""
     if not instrument.family:
         return []
-    here = set(session.exec(select(Link.threat_id).where(Link.instrument_id == instrument.id)))
-    here |= set(session.exec(select(Dismissal.threat_id).where(Dismissal.instrument_id == instrument.id)))
+    linked_here = select(Link.threat_id).where(Link.instrument_id == instrument.id)
+    dismissed_here = select(Dismissal.threat_id).where(Dismissal.instrument_id == instrument.id)
     rows = session.exec(
-        select(Threat, Instrument.slug)
+        select(Threat.code, Threat.title, Threat.condition, Instrument.slug)
         .where(
             Link.threat_id == Threat.id,
             Link.instrument_id == Instrument.id,
             Instrument.family == instrument.family,
             Instrument.id != instrument.id,
+            Threat.id.not_in(linked_here),  # type: ignore[union-attr]
+            Threat.id.not_in(dismissed_here),  # type: ignore[union-attr]
         )
         .order_by(Threat.code, Instrument.slug)
     )
-    found: dict[str, tuple[Threat, list[str]]] = {}
-    for threat, slug in rows:
-        if threat.id in here:
-            continue
-        found.setdefault(threat.code, (threat, []))[1].append(slug)
+    found: dict[str, tuple[str, str, list[str], list[int]]] = {}
+    for code, title, condition, slug in rows:
+        _, _, shown, count = found.setdefault(code, (title, condition, [], [0]))
+        count[0] += 1
+        if len(shown) < RAISED_ON_SHOWN:
+            shown.append(slug)
     return [
-        RaisedElsewhere(code=t.code, title=t.title, condition=t.condition, raised_on=tuple(slugs))
-        for t, slugs in found.values()
+        RaisedElsewhere(code=code, title=title, condition=cond, raised_on=tuple(shown), count=count[0])
+        for code, (title, cond, shown, count) in found.items()
     ]
