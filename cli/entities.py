@@ -6,6 +6,7 @@ from typing import Annotated, Any
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import IfVersion, JsonFlag, actor, read_text_option, reading, writing
 from ivdossier.cli.output import print_json, print_record, print_table
 
@@ -24,10 +25,10 @@ TextOpt = Annotated[str | None, typer.Option(help="Text, or @FILE to read it fro
 
 
 def register(app: typer.Typer) -> None:
-    app.add_typer(program_app, name="program")
-    app.add_typer(instrument_app, name="instrument")
-    app.add_typer(member_app, name="member")
-    app.add_typer(link_app, name="link")
+    app.add_typer(program_app, name="program", rich_help_panel=panels.REGISTRY)
+    app.add_typer(instrument_app, name="instrument", rich_help_panel=panels.REGISTRY)
+    app.add_typer(member_app, name="member", rich_help_panel=panels.REGISTRY)
+    app.add_typer(link_app, name="link", rich_help_panel=panels.REGISTRY)
 
 
 def _entity_dict(obj: Any) -> dict[str, Any]:

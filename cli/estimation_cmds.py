@@ -7,12 +7,13 @@ from typing import Annotated
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, writing
 from ivdossier.cli.output import print_json
 
 
 def register(app: typer.Typer) -> None:
-    app.command("estimate")(estimate)
+    app.command("estimate", rich_help_panel=panels.EVIDENCE)(estimate)
 
 
 DataOpt = Annotated[Path, typer.Option("--data", help="CSV, Parquet or Stata .dta file.")]

@@ -7,6 +7,7 @@ from typing import Annotated, Any
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, writing
 from ivdossier.cli.output import print_json, print_record, print_table
 from ivdossier.errors import InvalidInputError
@@ -19,10 +20,10 @@ falsify_app = typer.Typer(help="Checks the instrument should pass if it is valid
 
 
 def register(app: typer.Typer) -> None:
-    app.add_typer(sensitivity_app, name="sensitivity")
-    app.add_typer(falsify_app, name="falsify")
-    app.command("compliers")(compliers)
-    app.command("power")(power)
+    app.add_typer(sensitivity_app, name="sensitivity", rich_help_panel=panels.EVIDENCE)
+    app.add_typer(falsify_app, name="falsify", rich_help_panel=panels.EVIDENCE)
+    app.command("compliers", rich_help_panel=panels.EVIDENCE)(compliers)
+    app.command("power", rich_help_panel=panels.EVIDENCE)(power)
 
 
 Data = Annotated[Path, typer.Option("--data", help="CSV, Parquet or Stata .dta file.")]

@@ -8,15 +8,16 @@ from typing import Annotated
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, reading, settings, writing
 from ivdossier.cli.output import print_json, print_table
 from ivdossier.errors import InvalidInputError
 
 
 def register(app: typer.Typer) -> None:
-    app.command("init")(init)
-    app.command("history")(history)
-    app.command("demo")(demo)
+    app.command("init", rich_help_panel=panels.REGISTRY)(init)
+    app.command("history", rich_help_panel=panels.REGISTRY)(history)
+    app.command("demo", rich_help_panel=panels.MOVING)(demo)
 
 
 def init() -> None:

@@ -8,6 +8,7 @@ from typing import Annotated, Any
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import IfVersion, JsonFlag, actor, read_text_option, reading, writing
 from ivdossier.cli.output import print_json, print_table
 from ivdossier.cli.studies import write_output
@@ -21,7 +22,7 @@ DOC_SUFFIXES = (".md", ".html", ".json")
 
 
 def register(app: typer.Typer) -> None:
-    app.add_typer(plan_app, name="plan")
+    app.add_typer(plan_app, name="plan", rich_help_panel=panels.LITERATURE)
 
 
 def _suffix(path: Path, allowed: tuple[str, ...], option: str) -> str:

@@ -7,6 +7,7 @@ from typing import Annotated
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, reading, settings, writing
 from ivdossier.cli.output import print_json
 
@@ -20,10 +21,10 @@ OnConflict = Annotated[
 
 
 def register(app: typer.Typer) -> None:
-    app.command("export")(export)
-    app.command("import")(import_)
-    app.command("backup")(backup)
-    app.command("restore")(restore)
+    app.command("export", rich_help_panel=panels.MOVING)(export)
+    app.command("import", rich_help_panel=panels.MOVING)(import_)
+    app.command("backup", rich_help_panel=panels.MOVING)(backup)
+    app.command("restore", rich_help_panel=panels.MOVING)(restore)
 
 
 def _counts(counts: dict[str, int]) -> str:

@@ -7,14 +7,15 @@ from typing import Annotated
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import reading
 from ivdossier.errors import InvalidInputError
 
 
 def register(app: typer.Typer) -> None:
-    app.command("dossier")(dossier)
-    app.command("site")(site)
-    app.command("table")(table)
+    app.command("dossier", rich_help_panel=panels.DOCUMENTS)(dossier)
+    app.command("site", rich_help_panel=panels.DOCUMENTS)(site)
+    app.command("table", rich_help_panel=panels.DOCUMENTS)(table)
 
 
 def _now() -> str:

@@ -7,6 +7,7 @@ from typing import Annotated, Any
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, read_text_option, reading, writing
 from ivdossier.cli.output import print_json, print_record, print_table
 
@@ -19,8 +20,8 @@ TextOpt = Annotated[str | None, typer.Option(help="Text, or @FILE to read it fro
 
 
 def register(app: typer.Typer) -> None:
-    app.add_typer(study_app, name="study")
-    app.command("audit")(audit)
+    app.add_typer(study_app, name="study", rich_help_panel=panels.LITERATURE)
+    app.command("audit", rich_help_panel=panels.LITERATURE)(audit)
 
 
 def _read_file(path: Path, what: str) -> str:

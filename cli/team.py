@@ -6,6 +6,7 @@ from typing import Annotated, Any
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, read_text_option, reading, writing
 from ivdossier.cli.output import print_json, print_table
 
@@ -15,8 +16,8 @@ comment_app = typer.Typer(
 
 
 def register(app: typer.Typer) -> None:
-    app.command("review")(review)
-    app.add_typer(comment_app, name="comment")
+    app.command("review", rich_help_panel=panels.REGISTRY)(review)
+    app.add_typer(comment_app, name="comment", rich_help_panel=panels.REGISTRY)
 
 
 def _fmt(value: float | None) -> str:

@@ -7,6 +7,7 @@ from typing import Annotated, Any
 
 import typer
 
+from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, reading, writing
 from ivdossier.cli.output import print_json, print_record, print_table
 from ivdossier.errors import ConflictError, InvalidInputError
@@ -20,8 +21,8 @@ graph_app = typer.Typer(
 
 
 def register(app: typer.Typer) -> None:
-    app.add_typer(threat_app, name="threat")
-    app.add_typer(graph_app, name="graph")
+    app.add_typer(threat_app, name="threat", rich_help_panel=panels.THREATS)
+    app.add_typer(graph_app, name="graph", rich_help_panel=panels.THREATS)
 
 
 def _catalog(session: Any) -> Any:
