@@ -1,0 +1,39 @@
+"""Every command has help text and is documented in the README; .ci/run calls the README's test command."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import typer
+
+from ivdossier.cli.app import app
+
+ROOT = Path(__file__).resolve().parent.parent
+README = (ROOT / "README.md").read_text(encoding="utf-8")
+
+
+def _commands() -> list[tuple[str, object]]:
+    group = typer.main.get_command(app)
+    out = []
+    for name, cmd in group.commands.items():  # type: ignore[attr-defined]
+        out.append((name, cmd))
+        for sub, subcmd in getattr(cmd, "commands", {}).items():
+            out.append((f"{name} {sub}", subcmd))
+    return out
+
+
+def test_every_command_has_help_text() -> None:
+    missing = [name for name, cmd in _commands() if not (getattr(cmd, "help", None) or "").strip()]
+    assert missing == []
+
+
+def test_every_top_level_command_is_in_the_readme() -> None:
+    names = sorted({name.split()[0] for name, _ in _commands()})
+    assert [n for n in names if f"ivdossier {n}" not in README] == []
+
+
+def test_ci_runs_the_readme_test_command_verbatim() -> None:
+    command = "python3 scripts/run_tests.py"
+    assert command in README
+    ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
+    assert any(line.strip() == command for line in ci.splitlines())
