@@ -357,6 +357,9 @@ def member_list(json_out: JsonFlag = False) -> None:
     print_json(rows) if json_out else print_table(rows, ["handle", "name", "email"])
 
 
+UNRATED_SHOWN = 25
+
+
 @member_app.command("show")
 def member_show(handle: str, json_out: JsonFlag = False) -> None:
     """Show a member and the links they have not rated yet."""
@@ -366,14 +369,19 @@ def member_show(handle: str, json_out: JsonFlag = False) -> None:
 
     with reading() as s:
         data = _entity_dict(records.get(s, Member, handle))
-        data["unrated_links"] = [lk.slug for lk in unrated_links(s, member=handle)]
+        data["unrated_links"] = unrated_links(s, member=handle)
     if json_out:
         print_json(data)
         return
     print_record([(k, data[k]) for k in ("handle", "name", "email", "version")])
-    typer.echo(f"links not yet rated: {len(data['unrated_links'])}")
-    for slug in data["unrated_links"]:
+    todo = data["unrated_links"]
+    typer.echo(f"links not yet rated: {len(todo)}")
+    for slug in todo[:UNRATED_SHOWN]:
         typer.echo(f"  {slug}")
+    if len(todo) > UNRATED_SHOWN:
+        typer.echo(
+            f"  ... and {len(todo) - UNRATED_SHOWN} more (`ivdossier review INSTRUMENT --unrated-by {handle}`)"
+        )
 
 
 @member_app.command("edit")

@@ -40,7 +40,7 @@ def review(
         inst = records.get(s, Instrument, instrument)
         summaries = rating_summaries(s, inst)
         if unrated_by is not None:
-            todo = {lk.slug for lk in unrated_links(s, member=unrated_by, instrument=inst)}
+            todo = set(unrated_links(s, member=unrated_by, instrument=inst))
             summaries = [x for x in summaries if x.link in todo]
     if json_out:
         print_json({"instrument": instrument, "unrated_by": unrated_by, "links": summaries})

@@ -237,11 +237,11 @@ def rating_summaries(session: Session, instrument: Instrument) -> list[RatingSum
     return out
 
 
-def unrated_links(session: Session, *, member: str, instrument: Instrument | None = None) -> list[Link]:
-    """Links the member has not rated yet (optionally within one instrument)."""
+def unrated_links(session: Session, *, member: str, instrument: Instrument | None = None) -> list[str]:
+    """Slugs of the links the member has not rated yet (optionally within one instrument), in slug order."""
     m = records.get(session, Member, member)
     rated = select(Rating.link_id).where(Rating.member_id == m.id)
-    query = select(Link).where(Link.id.not_in(rated)).order_by(Link.slug)  # type: ignore[union-attr]
+    query = select(Link.slug).where(Link.id.not_in(rated)).order_by(Link.slug)  # type: ignore[union-attr]
     if instrument is not None:
         query = query.where(Link.instrument_id == instrument.id)
     return list(session.exec(query))
