@@ -266,11 +266,17 @@ def build_demo(
             for name, measured, text in (
                 ("age", True, "Age in years at the start of the study year."),
                 ("chronic_conditions", True, "Number of recorded chronic conditions."),
-                ("frailty", False, "Overall frailty; drives both adoption and emergency use; not measured."),
             ):
                 reg.add_covariate(
                     s, actor=actor, program=PROGRAM, name=name, measured=measured, description=text
                 )
+            for source, target in (
+                ("age", "telehealth"),
+                ("age", "ed_visits"),
+                ("chronic_conditions", "telehealth"),
+                ("chronic_conditions", "ed_visits"),
+            ):
+                reg.add_edge(s, actor="amara", program=PROGRAM, source=source, target=target)
             for spec in INSTRUMENTS:
                 reg.add_instrument(s, actor=actor, program=PROGRAM, **spec)
             reg.move_instrument(
