@@ -12,7 +12,6 @@ from ivdossier.cli import panels
 from ivdossier.cli.common import IfVersion, JsonFlag, actor, read_text_option, reading, writing
 from ivdossier.cli.output import print_json, print_table
 from ivdossier.cli.studies import write_output
-from ivdossier.registry import plans as _plans  # noqa: F401  (registers the frozen-plan guard for every command)
 
 plan_app = typer.Typer(
     help="Pre-analysis plans: draft from the registry, fix decision rules, freeze, verify and compare runs.",

@@ -37,3 +37,20 @@ def test_ci_runs_the_readme_test_command_verbatim() -> None:
     assert command in README
     ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
     assert any(line.strip() == command for line in ci.splitlines())
+
+
+def test_help_imports_no_database_or_numerics_libraries() -> None:
+    """`ivdossier --help` stays fast because command modules import heavy libraries only inside commands."""
+    import subprocess
+    import sys
+
+    probe = (
+        "import sys, ivdossier.cli.app\n"
+        "heavy = [m for m in ('sqlmodel', 'sqlalchemy', 'pandas', 'numpy', 'scipy', 'statsmodels', 'matplotlib',"
+        " 'networkx') if m in sys.modules]\n"
+        "print(','.join(heavy))"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", probe], capture_output=True, text=True, check=True
+    ).stdout.strip()
+    assert out == ""
