@@ -89,6 +89,19 @@ def catalog_entry(row: Threat) -> Any:
     return CatalogThreat.from_dict(data, source=f"registry threat {row.code}")
 
 
+def program_info(program: Program) -> ri.ProgramInfo:
+    """A program as the reports layer reads it."""
+    return ri.ProgramInfo(
+        slug=program.slug,
+        title=program.title,
+        question=program.question,
+        treatment=program.treatment,
+        outcome=program.outcome,
+        unit=program.unit,
+        population=program.population,
+    )
+
+
 def check_finding(check: str, runs: Sequence[Run]) -> str:
     """What the newest relevant run found for a catalogue check, or that it has not been run yet.
 
@@ -198,15 +211,7 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
     )
     return ri.DossierInput(
         extra_sections=_prior_uses(session, inst),
-        program=ri.ProgramInfo(
-            slug=program.slug,
-            title=program.title,
-            question=program.question,
-            treatment=program.treatment,
-            outcome=program.outcome,
-            unit=program.unit,
-            population=program.population,
-        ),
+        program=program_info(program),
         instrument=ri.InstrumentInfo(
             slug=inst.slug,
             name=inst.name,
@@ -252,18 +257,7 @@ def write_site(session: Session, out: Path, *, generated_at: datetime | str) -> 
     from ivdossier.threats_catalog.catalog import load_builtin
 
     programs = list(session.exec(select(Program).order_by(Program.slug)))
-    infos = [
-        ri.ProgramInfo(
-            slug=p.slug,
-            title=p.title,
-            question=p.question,
-            treatment=p.treatment,
-            outcome=p.outcome,
-            unit=p.unit,
-            population=p.population,
-        )
-        for p in programs
-    ]
+    infos = [program_info(p) for p in programs]
     slugs = list(session.exec(select(Instrument.slug).order_by(Instrument.slug)))
     dossiers = [dossier_input(session, slug, generated_at=generated_at) for slug in slugs]
     team = [
