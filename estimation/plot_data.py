@@ -11,10 +11,11 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from ivdossier.estimation.covariance import CovSpec, sandwich
+from ivdossier.estimation.covariance import CovSpec
 from ivdossier.estimation.data import PreparedData
 from ivdossier.estimation.result import EstimationResult
-from ivdossier.estimation.strength import denominator_df, ols
+from ivdossier.estimation.robust_inference import ar_statistics
+from ivdossier.estimation.strength import ols
 
 
 def first_stage_bins(prepared: PreparedData, *, bins: int = 20) -> dict[str, Any] | None:
@@ -47,22 +48,17 @@ def ar_curve(
         prepared.clusters if result.vcov == "cluster" else (),
         bool(result.spec.get("small_sample", True)),
     )
-    z = prepared.Z
-    n, k = z.shape
-    coef, resid = ols(z, np.column_stack([prepared.y, prepared.X[:, 0]]))
-    v = sandwich(
-        z, resid, spec, n_partialled=prepared.n_partialled, n_partialled_nested=prepared.n_partialled_nested
-    )
-    pi_y, pi_x = coef[:, 0], coef[:, 1]
-    v_yy, v_yx, v_xx = v[:k, :k], v[:k, k:], v[k:, k:]
     centre, se = float(result.coef[0]), float(result.se[0])
     half = width * se if np.isfinite(se) and se > 0 else max(1.0, abs(centre))
     betas = np.linspace(centre - half, centre + half, points)
-    values = []
-    for b in betas:
-        g = pi_y - b * pi_x
-        w = v_yy - b * (v_yx + v_yx.T) + b * b * v_xx
-        values.append(float(g @ np.linalg.solve(w, g)) / k)
-    d = denominator_df(spec, n, k, prepared.n_partialled)
-    crit = float(stats.f.ppf(1 - result.alpha, k, d))
-    return {"betas": [float(b) for b in betas], "stats": values, "critical_value": crit, "form": "F"}
+    values, d = ar_statistics(
+        prepared.y,
+        prepared.X,
+        prepared.Z,
+        spec=spec,
+        n_partialled=prepared.n_partialled,
+        n_partialled_nested=prepared.n_partialled_nested,
+        betas=betas,
+    )
+    crit = float(stats.f.ppf(1 - result.alpha, prepared.Z.shape[1], d))
+    return {"betas": betas.tolist(), "stats": values.tolist(), "critical_value": crit, "form": "F"}

@@ -244,6 +244,24 @@ def _ar_wald(m: _Moments, b: float) -> float:
     return wald(m.pi_y - b * m.pi_x, w)
 
 
+def ar_statistics(
+    y: np.ndarray,
+    x: np.ndarray,
+    z: np.ndarray,
+    *,
+    spec: CovSpec,
+    n_partialled: int,
+    n_partialled_nested: int = 0,
+    betas: np.ndarray,
+) -> tuple[Array, int]:
+    """The AR statistic (F form: Wald / number of instruments) at each hypothesised effect in ``betas``, for one
+    endogenous regressor, with the denominator degrees of freedom of its F reference distribution."""
+    m = _moments(
+        as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z"), spec, n_partialled, n_partialled_nested
+    )
+    return np.array([_ar_wald(m, float(b)) / m.k for b in np.asarray(betas, dtype=np.float64)]), m.d
+
+
 @dataclass(frozen=True)
 class AndersonRubin:
     """Anderson–Rubin test at a stated null and, with one endogenous regressor, the confidence set."""
