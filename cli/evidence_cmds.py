@@ -347,6 +347,54 @@ def falsify_per_instrument(
     _finish(run, attach=attach, json_out=json_out, checks=("per-instrument-estimates", "over-identification"))
 
 
+@falsify_app.command("first-stage-signs")
+def falsify_first_stage_signs(
+    data: Data,
+    treatment: Treatment,
+    instrument: Instruments,
+    by: Annotated[str, typer.Option(help="Covariate that defines the subgroups.")],
+    bins: Annotated[int, typer.Option(help="Quantile bins when --by has many values.")] = 4,
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """First stage within subgroups; a significantly reversed sign somewhere is evidence of defiers."""
+    from ivdossier.estimation.subgroups import subgroup_first_stages
+    from ivdossier.runs import analyse_file
+
+    spec = {
+        "treatment": treatment,
+        "instruments": list(instrument),
+        "by": by,
+        "bins": bins,
+        **_spec(control, absorb, cluster, weights, vcov, alpha),
+    }
+    run = analyse_file(
+        "falsify-first-stage-signs", data, lambda frame: (subgroup_first_stages(frame, **spec), {}), spec
+    )
+    if not json_out:
+        rows = [
+            {
+                "group": g.group,
+                "n": g.n,
+                "instrument": c.instrument,
+                "coef": f"{c.coef:.4g}",
+                "se": f"{c.se:.4g}",
+                "p": f"{c.p_value:.3g}",
+                "reversed": "yes" if c.instrument in g.opposite else "",
+            }
+            for g in run.result.groups
+            for c in g.regression.coefficients
+        ]
+        print_table(rows, ["group", "n", "instrument", "coef", "se", "p", "reversed"])
+    _finish(run, attach=attach, json_out=json_out, checks=("subgroup-first-stage-signs",))
+
+
 # ---------------------------------------------------------------- compliers and power
 
 

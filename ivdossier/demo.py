@@ -368,7 +368,7 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
 
 def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
     """Falsification and sensitivity runs: the zero-first-stage subgroup and the placebo outcome for each."""
-    from ivdossier.estimation import falsification, sensitivity
+    from ivdossier.estimation import falsification, sensitivity, subgroups
     from ivdossier.runs import analyse_file, store_run
 
     common = {"controls": list(CONTROLS), "cluster": ["district"], "vcov": "cluster"}
@@ -393,6 +393,8 @@ def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
         "vcov": "cluster",
     }
     jobs.append(("fibre-wave", "falsify-balance", falsification.balance, balance))
+    signs = {"treatment": "telehealth", "instruments": ["clerk_video_rate"], "by": "age", **common}
+    jobs.append(("clerk-video-rate", "falsify-first-stage-signs", subgroups.subgroup_first_stages, signs))
     breakdown = {**model, "instruments": ["fibre_months"], **common}
     jobs.append(("fibre-wave", "sensitivity", sensitivity.breakdown_value, breakdown))
     slugs = []

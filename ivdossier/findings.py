@@ -98,6 +98,14 @@ def _compliers(res: Results) -> str:
     return "complier profile computed"
 
 
+def _subgroup_signs(res: Results) -> str:
+    groups = res.get("groups") or []
+    flagged = res.get("flagged") or []
+    if not flagged:
+        return f"first stage of the same sign (or not significantly reversed) in all {len(groups)} subgroups of {res.get('by')}"
+    return f"first stage significantly reversed where {res.get('by')} is in {', '.join(flagged)}: possible defiers"
+
+
 def _power(res: Results) -> str:
     return f"power {_num(res.get('power'))} for effect {_num(res.get('effect'))}; MDE {_num(res.get('mde'))}"
 
@@ -114,7 +122,7 @@ FINDERS: dict[str, Callable[[Results], str]] = {
     "exclusion-sensitivity": _sensitivity,
     "complier-profile": _compliers,
     "complier-density-sign": _compliers,
-    "subgroup-first-stage-signs": _compliers,
+    "subgroup-first-stage-signs": _subgroup_signs,
     "power-analysis": _power,
 }
 

@@ -17,6 +17,7 @@ COMMANDS: tuple[str, ...] = (
     "ivdossier falsify zero-first-stage",
     "ivdossier falsify placebo",
     "ivdossier falsify per-instrument",
+    "ivdossier falsify first-stage-signs",
     "ivdossier sensitivity",
     "ivdossier compliers",
     "ivdossier power",
@@ -95,7 +96,7 @@ _CHECK_LIST: tuple[Check, ...] = (
     Check(
         "subgroup-first-stage-signs",
         "First stage within covariate subgroups; opposite signs in some subgroup are evidence of defiers.",
-        "ivdossier compliers",
+        "ivdossier falsify first-stage-signs",
     ),
     Check(
         "complier-density-sign",
