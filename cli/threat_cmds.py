@@ -25,19 +25,10 @@ def register(app: typer.Typer) -> None:
     app.add_typer(graph_app, name="graph", rich_help_panel=panels.THREATS)
 
 
-def _catalog(session: Any) -> Any:
-    """Built-in entries plus the team's entries stored in the registry."""
-    from sqlmodel import select
+def _registry_catalog(session: Any) -> Any:
+    from ivdossier.dossiers import registry_catalog
 
-    from ivdossier.dossiers import catalog_entry
-    from ivdossier.registry.models import Threat
-    from ivdossier.threats_catalog.catalog import load_builtin, merge
-
-    team = [
-        catalog_entry(t)
-        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
-    ]
-    return merge(load_builtin(), team)
+    return registry_catalog(session)
 
 
 def _row(t: Any) -> dict[str, Any]:
@@ -55,7 +46,7 @@ def threat_list(
 ) -> None:
     """Browse and search the catalogue."""
     with reading() as s:
-        found = _catalog(s).search(
+        found = _registry_catalog(s).search(
             condition=condition, family=family, text=search, include_generic=family is not None
         )
     if json_out:
@@ -70,7 +61,7 @@ def threat_list(
 def threat_show(code: str, json_out: JsonFlag = False) -> None:
     """Show one catalogue entry in full."""
     with reading() as s:
-        t = _catalog(s).get(code)
+        t = _registry_catalog(s).get(code)
     if json_out:
         print_json(t.to_dict())
         return
@@ -109,7 +100,7 @@ def threat_new(
         raise InvalidInputError(f"cannot read {str(file)!r} as a TOML catalogue entry: {exc}") from exc
     entry = CatalogThreat.from_dict(data, source=str(file))
     with writing() as s:
-        if entry.code in _catalog(s):
+        if entry.code in _registry_catalog(s):
             raise ConflictError(
                 f"threat code {entry.code!r} is already in the catalogue; choose another 'T-' code."
             )
@@ -132,7 +123,7 @@ def threat_suggest(instrument: str, json_out: JsonFlag = False) -> None:
                 f"instrument {instrument!r} has no family; set one with `instrument edit --family`."
             )
         linked = {t.code for _, t in links_of(s, inst)}
-        found = [t for t in suggest_for_family(inst.family, _catalog(s)) if t.code not in linked]
+        found = [t for t in suggest_for_family(inst.family, _registry_catalog(s)) if t.code not in linked]
     if json_out:
         print_json([t.to_dict() for t in found])
     else:

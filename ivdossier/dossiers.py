@@ -89,6 +89,17 @@ def catalog_entry(row: Threat) -> Any:
     return CatalogThreat.from_dict(data, source=f"registry threat {row.code}")
 
 
+def registry_catalog(session: Session) -> Any:
+    """The catalogue as this registry sees it: built-in entries followed by the team's own."""
+    from ivdossier.threats_catalog.catalog import load_builtin, merge
+
+    team = [
+        catalog_entry(t)
+        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
+    ]
+    return merge(load_builtin(), team)
+
+
 def program_info(program: Program) -> ri.ProgramInfo:
     """A program as the reports layer reads it."""
     return ri.ProgramInfo(
@@ -254,16 +265,11 @@ def write_dossier(session: Session, slug: str, out: Path, *, generated_at: datet
 def write_site(session: Session, out: Path, *, generated_at: datetime | str) -> list[Path]:
     """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
     from ivdossier.reports.site import build_site
-    from ivdossier.threats_catalog.catalog import load_builtin
 
     programs = list(session.exec(select(Program).order_by(Program.slug)))
     infos = [program_info(p) for p in programs]
     slugs = list(session.exec(select(Instrument.slug).order_by(Instrument.slug)))
     dossiers = [dossier_input(session, slug, generated_at=generated_at) for slug in slugs]
-    team = [
-        catalog_entry(t)
-        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
-    ]
     entries = [
         ri.CatalogEntry(
             code=t.code,
@@ -274,6 +280,6 @@ def write_site(session: Session, out: Path, *, generated_at: datetime | str) -> 
             description=t.description,
             checks=t.checks,
         )
-        for t in (*load_builtin().threats, *team)
+        for t in registry_catalog(session)
     ]
     return build_site(out, infos, dossiers, entries)
