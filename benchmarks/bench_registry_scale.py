@@ -210,8 +210,8 @@ def cli_timer(db: str) -> Callable[..., Callable[[], None]]:
 
 
 def bench_backend(name: str, db: str, site_db: str, args: argparse.Namespace, out: Path) -> None:
-    from ivdossier.dossiers import write_dossier, write_site
     from ivdossier.registry.db import open_registry
+    from ivdossier.workflows.dossiers import write_dossier, write_site
 
     if not args.site_only:
         start = time.perf_counter()

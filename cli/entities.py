@@ -417,8 +417,8 @@ def link_add(
     json_out: JsonFlag = False,
 ) -> None:
     """Attach a catalogue threat to an instrument."""
-    from ivdossier.catalog_sync import ensure_builtin
     from ivdossier.registry.threats import link_threat
+    from ivdossier.workflows.catalog_sync import ensure_builtin
 
     with writing() as s:
         ensure_builtin(s, actor=actor())

@@ -43,7 +43,7 @@ def estimate(
     json_out: JsonFlag = False,
 ) -> None:
     """Estimate the effect with the full weak-instrument diagnostic suite."""
-    from ivdossier.runs import estimate_file
+    from ivdossier.workflows.runs import estimate_file
 
     outcome_run = estimate_file(
         data,
@@ -60,7 +60,7 @@ def estimate(
     )
     slug = None
     if attach:
-        from ivdossier.runs import store_run
+        from ivdossier.workflows.runs import store_run
 
         with writing() as session:
             slug = store_run(session, outcome_run, instrument=attach, actor=actor()).slug

@@ -53,9 +53,9 @@ def _spec(controls: Any, absorb: Any, cluster: Any, weights: Any, vcov: str, alp
 
 def _finish(run: Any, *, attach: str | None, json_out: bool, checks: tuple[str, ...]) -> None:
     """Store the run if asked, then print JSON or the one-line findings for the checks it speaks to."""
-    from ivdossier.findings import finding
     from ivdossier.jsonsafe import json_safe
-    from ivdossier.runs import store_run
+    from ivdossier.workflows.findings import finding
+    from ivdossier.workflows.runs import store_run
 
     slug = None
     if attach:
@@ -101,7 +101,7 @@ def sensitivity_range(
 ) -> None:
     """Union of 2SLS intervals over a range of direct effects (Conley, Hansen and Rossi 2012)."""
     from ivdossier.estimation.sensitivity import plot_sensitivity_svg, union_of_intervals
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     spec = {
         "outcome": outcome,
@@ -147,7 +147,7 @@ def sensitivity_prior(
 ) -> None:
     """Local-to-zero interval with a normal prior on the direct effect (independent across instruments)."""
     from ivdossier.estimation.sensitivity import local_to_zero
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     if len(prior_mean) != len(instrument) or len(prior_sd) != len(instrument):
         raise InvalidInputError(
@@ -191,7 +191,7 @@ def sensitivity_breakdown(
 ) -> None:
     """The smallest direct effect at which the interval first reaches the target effect."""
     from ivdossier.estimation.sensitivity import breakdown_value
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     spec = {
         "outcome": outcome,
@@ -223,7 +223,7 @@ def falsify_balance(
 ) -> None:
     """Balance of the instrument on predetermined covariates: per covariate and jointly."""
     from ivdossier.estimation.falsification import balance
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     spec = {
         "instruments": list(instrument),
@@ -251,7 +251,7 @@ def falsify_placebo(
 ) -> None:
     """Reduced form of placebo outcomes on the instrument(s); each should be null."""
     from ivdossier.estimation.falsification import placebo_outcomes
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     spec = {
         "instruments": list(instrument),
@@ -300,7 +300,7 @@ def falsify_zero_first_stage(
 ) -> None:
     """Reduced form where the instrument cannot move the treatment; an effect there points to another path."""
     from ivdossier.estimation.falsification import zero_first_stage
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     spec = {
         "outcome": outcome,
@@ -333,7 +333,7 @@ def falsify_per_instrument(
 ) -> None:
     """Each instrument's own just-identified estimate beside the estimate using all of them."""
     from ivdossier.estimation.falsification import per_instrument
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     spec = {
         "outcome": outcome,
@@ -365,7 +365,7 @@ def falsify_first_stage_signs(
 ) -> None:
     """First stage within subgroups; a significantly reversed sign somewhere is evidence of defiers."""
     from ivdossier.estimation.subgroups import subgroup_first_stages
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     spec = {
         "treatment": treatment,
@@ -425,7 +425,7 @@ def compliers(
 ) -> None:
     """Complier, always-taker and never-taker shares; complier profile; implied complier densities."""
     from ivdossier.estimation.compliers import check_testable_implications, complier_means, complier_shares
-    from ivdossier.runs import analyse_file
+    from ivdossier.workflows.runs import analyse_file
 
     spec = {
         "treatment": treatment,
@@ -491,7 +491,7 @@ def power(
 ) -> None:
     """Power, minimum detectable effect and required N of a planned 2SLS design, with its expected first stage."""
     from ivdossier.estimation.power import iv_design, power_analysis
-    from ivdossier.runs import FileRun
+    from ivdossier.workflows.runs import FileRun
 
     spec = {
         "n": n,

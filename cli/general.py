@@ -22,8 +22,8 @@ def register(app: typer.Typer) -> None:
 
 def init() -> None:
     """Create the registry (or upgrade its schema) and load the built-in threat catalogue."""
-    from ivdossier.catalog_sync import ensure_builtin
     from ivdossier.registry.db import resolve_url
+    from ivdossier.workflows.catalog_sync import ensure_builtin
 
     with writing() as s:
         added = ensure_builtin(s, actor=actor())
@@ -87,7 +87,7 @@ def demo(
     json_out: JsonFlag = False,
 ) -> None:
     """Build the invented telehealth scenario end to end: data, registry, threats, runs and documents."""
-    from ivdossier.demo import build_demo
+    from ivdossier.workflows.demo import build_demo
 
     summary = build_demo(out, replace=replace, db=settings.db, actor=actor(), progress=typer.echo)
     if json_out:

@@ -31,7 +31,7 @@ def dossier(
     ],
 ) -> None:
     """Write one instrument's dossier: argument, threats, causal diagram, estimates and provenance."""
-    from ivdossier.dossiers import write_dossier
+    from ivdossier.workflows.dossiers import write_dossier
 
     suffix = out.suffix.lower()
     if suffix not in (".md", ".html"):
@@ -45,7 +45,7 @@ def site(
     out: Annotated[Path, typer.Argument(help="Folder for the static site (created if missing).")],
 ) -> None:
     """Write a static, linked HTML site of the whole registry."""
-    from ivdossier.dossiers import write_site
+    from ivdossier.workflows.dossiers import write_site
 
     with reading() as s:
         pages = write_site(s, out, generated_at=_now())
@@ -60,10 +60,10 @@ def table(
     ] = None,
 ) -> None:
     """A publication table of selected runs: estimates, standard errors, first-stage statistics, AR set."""
-    from ivdossier.dossiers import run_info
     from ivdossier.registry import records
     from ivdossier.registry.models import Run
     from ivdossier.reports.tables import runs_table
+    from ivdossier.workflows.dossiers import run_info
 
     with reading() as s:
         infos = [run_info(s, records.get(s, Run, slug)) for slug in runs]

@@ -189,7 +189,7 @@ def report(
     json_out: JsonFlag = False,
 ) -> None:
     """Record the statistics a study reported for its headline IV specification."""
-    from ivdossier.registry.studies import report_stats
+    from ivdossier.workflows.studies import report_stats
 
     given = {
         "estimate": estimate, "std_error": se, "first_stage_f": first_stage_f, "f_kind": f_kind, "n": n,
@@ -213,7 +213,7 @@ def import_stats(
     """Reported statistics for many studies from a CSV (columns: key, estimate, std_error, first_stage_f, f_kind,
     n, n_clusters, n_instruments, first_stage_coef, first_stage_se, reduced_form_coef, reduced_form_se, fs_rf_cov,
     method, label, and optionally instrument and family); all rows or none."""
-    from ivdossier.registry.studies import import_stats_csv
+    from ivdossier.workflows.studies import import_stats_csv
 
     text = _read_file(file, "CSV file")
     with writing() as s:
@@ -270,8 +270,8 @@ def audit(
     from ivdossier.errors import InvalidInputError
     from ivdossier.registry.models import utcnow
     from ivdossier.registry.plans import iso
-    from ivdossier.registry.studies import audit_inputs
-    from ivdossier.reports.audit_doc import audit_html, audit_json, audit_markdown, build_audit
+    from ivdossier.reports.audit_doc import audit_html, audit_json, audit_markdown
+    from ivdossier.workflows.studies import audit_inputs, build_audit
 
     if out is not None and out.suffix.lower() not in (".md", ".html"):
         raise InvalidInputError(f"--out {str(out)!r} must end in .md or .html.")

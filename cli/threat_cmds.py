@@ -26,7 +26,7 @@ def register(app: typer.Typer) -> None:
 
 
 def _registry_catalog(session: Any) -> Any:
-    from ivdossier.dossiers import registry_catalog
+    from ivdossier.workflows.dossiers import registry_catalog
 
     return registry_catalog(session)
 
@@ -133,9 +133,9 @@ def threat_suggest(instrument: str, json_out: JsonFlag = False) -> None:
 
 
 def _verdict(instrument: str) -> tuple[Any, Any]:
-    from ivdossier.dossiers import instrument_graph
     from ivdossier.registry import records
     from ivdossier.registry.models import Instrument
+    from ivdossier.workflows.dossiers import instrument_graph
 
     with reading() as s:
         return instrument_graph(s, records.get(s, Instrument, instrument))

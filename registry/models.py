@@ -10,7 +10,10 @@ from sqlalchemy import JSON, Column, Index, UniqueConstraint
 from sqlalchemy.orm import declared_attr
 from sqlmodel import Field, SQLModel
 
-LIFECYCLE_STATES = ("proposed", "vetting", "adopted", "rejected", "shelved")
+from ivdossier.vocabulary import CONDITIONS, LIFECYCLE_STATES, LINK_STATES
+
+__all__ = ["CONDITIONS", "LIFECYCLE_STATES", "LINK_STATES"]
+
 # Allowed lifecycle moves: from -> set of targets.
 LIFECYCLE_MOVES: dict[str, tuple[str, ...]] = {
     "proposed": ("vetting", "rejected", "shelved"),
@@ -19,8 +22,6 @@ LIFECYCLE_MOVES: dict[str, tuple[str, ...]] = {
     "rejected": ("vetting",),
     "shelved": ("proposed", "vetting"),
 }
-CONDITIONS = ("relevance", "exclusion", "exogeneity", "monotonicity")
-LINK_STATES = ("open", "rebutted", "mitigated", "accepted", "fatal")
 
 
 def utcnow() -> datetime:

@@ -33,6 +33,7 @@ from ivdossier.registry.models import (
     Run,
     utcnow,
 )
+from ivdossier.vocabulary import INACTIVE_STATES
 
 PLAN_SCHEMA = "ivdossier-plan/1"
 EXPORT_FORMAT = "ivdossier-frozen-plan/1"
@@ -64,7 +65,6 @@ DEVIATION_KIND = {
     "small_sample": "vcov",
     "alpha": "spec",
 }
-INACTIVE_STATES = ("rejected", "shelved")
 DEFAULT_DIAGNOSTICS: tuple[str, ...] = (
     "first-stage coefficients, partial R-squared and first-stage F for each instrument",
     "effective F (Montiel Olea and Pflueger 2013) with its tau = 5, 10, 20 and 30 % critical values",

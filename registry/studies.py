@@ -8,11 +8,9 @@ is kept in ``extra["bibtex"]`` so that export writes the entry back as it was re
 
 from __future__ import annotations
 
-import csv
-import io
 import re
 import unicodedata
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -356,68 +354,6 @@ def export_bibtex(studies: Iterable[Study]) -> str:
     return "\n".join(blocks)
 
 
-def report_stats(
-    session: Session,
-    *,
-    actor: str,
-    key: str,
-    values: Mapping[str, Any],
-    replace: bool = False,
-) -> Study:
-    """Record what a study reported (merged into earlier values unless ``replace``), validated field by field."""
-    from ivdossier.estimation.audit import ReportedStats
-
-    study = records.get(session, Study, key)
-    merged = dict(values) if replace else {**(study.reported or {}), **values}
-    clean = ReportedStats.from_mapping(merged, where=f"study {key!r}").to_dict()
-    return records.edit(session, study, {"reported": clean}, actor=actor, action="report")
-
-
-def import_stats_csv(session: Session, *, actor: str, text: str) -> list[Study]:
-    """Reported statistics for many studies from CSV text (a ``key`` column plus reported fields); all or nothing.
-
-    Optional ``instrument`` and ``family`` columns attach the study as well (several separated by ';').
-    """
-    from ivdossier.estimation.audit import REPORTED_FIELDS, ReportedStats
-
-    reader = csv.DictReader(io.StringIO(text))
-    columns = [c.strip() for c in (reader.fieldnames or [])]
-    if "key" not in columns:
-        raise InvalidInputError("the CSV needs a 'key' column naming each study; add it to the header row.")
-    allowed = {"key", "instrument", "family", *REPORTED_FIELDS}
-    unknown = [c for c in columns if c not in allowed]
-    if unknown:
-        raise InvalidInputError(
-            f"CSV column(s) {', '.join(repr(c) for c in unknown)} are not known; use key, instrument, family and "
-            f"{', '.join(REPORTED_FIELDS)}."
-        )
-    rows = []
-    for row in reader:
-        line = reader.line_num
-        data = {k.strip(): (v or "").strip() for k, v in row.items() if k is not None}
-        key = data.pop("key", "")
-        if not key:
-            raise InvalidInputError(f"CSV line {line}: the key is empty; give the study's key.")
-        inst = [s for s in data.pop("instrument", "").split(";") if s.strip()]
-        fam = [s for s in data.pop("family", "").split(";") if s.strip()]
-        values = {k: v for k, v in data.items() if v != ""}
-        ReportedStats.from_mapping(values, where=f"CSV line {line} ({key})")
-        rows.append((line, key, values, inst, fam))
-    out = []
-    for line, key, values, inst, fam in rows:
-        if records.find(session, Study, key) is None:
-            raise InvalidInputError(
-                f"CSV line {line}: no study with key {key!r}; import its BibTeX or add it with `ivdossier study add`."
-            )
-        study = report_stats(session, actor=actor, key=key, values=values)
-        for slug in inst:
-            attach(session, actor=actor, key=key, instrument=slug.strip())
-        for family in fam:
-            attach(session, actor=actor, key=key, family=family.strip())
-        out.append(study)
-    return out
-
-
 def attach(
     session: Session, *, actor: str, key: str, instrument: str | None = None, family: str | None = None
 ) -> Study:
@@ -473,28 +409,8 @@ def critique(
     return records.create(session, row, actor=actor)
 
 
-@dataclass(frozen=True)
-class CritiqueInfo:
-    """A critique in plain terms: which threat, by which study, with the note."""
-
-    threat_code: str
-    threat_title: str
-    condition: str
-    raised_by: str | None
-    note: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "threat": self.threat_code,
-            "title": self.threat_title,
-            "condition": self.condition,
-            "raised_by": self.raised_by,
-            "note": self.note,
-        }
-
-
-def critiques_of(session: Session, study: Study) -> list[CritiqueInfo]:
-    """Critiques recorded against one study, ordered by threat code."""
+def critique_rows(session: Session, study: Study) -> list[dict[str, Any]]:
+    """Critiques recorded against one study as plain rows (threat, title, condition, raised_by, note), by code."""
     rows = session.exec(
         select(Critique, Threat).where(Critique.study_id == study.id, Critique.threat_id == Threat.id)
     )
@@ -502,11 +418,15 @@ def critiques_of(session: Session, study: Study) -> list[CritiqueInfo]:
     for crit, threat in rows:
         raiser = session.get(Study, crit.raised_by_id) if crit.raised_by_id else None
         out.append(
-            CritiqueInfo(
-                threat.code, threat.title, threat.condition, raiser.key if raiser else None, crit.note
-            )
+            {
+                "threat": threat.code,
+                "title": threat.title,
+                "condition": threat.condition,
+                "raised_by": raiser.key if raiser else None,
+                "note": crit.note,
+            }
         )
-    return sorted(out, key=lambda c: (c.threat_code, c.raised_by or ""))
+    return sorted(out, key=lambda c: (c["threat"], c["raised_by"] or ""))
 
 
 def list_studies(
@@ -545,40 +465,11 @@ def citation(study: Study) -> str:
     return f"{who} ({latex_to_text(raw_year)})" if raw_year else who
 
 
-@dataclass(frozen=True)
-class AuditInputs:
-    """Plain data for an audit: the scope's name, its studies with their reported values and critiques."""
-
-    scope: str
-    studies: tuple[tuple[str, str, dict[str, Any], tuple[CritiqueInfo, ...]], ...]
-
-
-def audit_inputs(
-    session: Session, *, instrument: str | None = None, family: str | None = None, key: str | None = None
-) -> AuditInputs:
-    """Collect what the audit needs for one instrument, one family, one study or (none given) every study."""
-    given = [v for v in (instrument, family, key) if v is not None]
-    if len(given) > 1:
-        raise InvalidInputError(
-            "audit one scope at a time: give only one of --instrument, --family or --study."
-        )
-    if key is not None:
-        chosen = [records.get(session, Study, key)]
-        scope = f"study {key}"
-    else:
-        chosen = list_studies(session, instrument=instrument, family=family)
-        scope = f"instrument {instrument}" if instrument else f"family {family}" if family else "all studies"
-    return AuditInputs(
-        scope,
-        tuple((s.key, citation(s), dict(s.reported or {}), tuple(critiques_of(session, s))) for s in chosen),
-    )
-
-
 def study_dict(session: Session, study: Study) -> dict[str, Any]:
     """A JSON-safe view of one study with its critiques."""
     data = records.snapshot(study, bookkeeping=True)
     data["citation"] = citation(study)
-    data["critiques"] = [c.to_dict() for c in critiques_of(session, study)]
+    data["critiques"] = critique_rows(session, study)
     return data
 
 

@@ -1,6 +1,5 @@
 """The literature audit as a document: a scope's prior uses of an instrument re-examined from what they reported.
 
-``build_audit`` joins the registry's plain audit inputs with the numerics of ``estimation.audit``;
 ``audit_markdown`` renders a stand-alone document and ``audit_section_markdown`` the same content as one section
 for the instrument dossier. Every user- or BibTeX-supplied text goes through ``mdtext`` escaping.
 """
@@ -8,14 +7,13 @@ for the instrument dossier. Every user- or BibTeX-supplied text goes through ``m
 from __future__ import annotations
 
 import math
-from collections import Counter
 from collections.abc import Sequence
 from typing import Any
 
-from ivdossier.estimation.audit import VERDICTS, AuditSummary, StudyAudit, ThreatCount, audit_study, summarise
+from ivdossier.estimation.audit import VERDICTS, AuditSummary, StudyAudit
 from ivdossier.estimation.critical_values import TF_NORMAL_FROM
-from ivdossier.registry.studies import AuditInputs, CritiqueInfo
 from ivdossier.reports import mdtext as mt
+from ivdossier.reports.inputs import AuditInputs
 
 CAUTIONS = (
     "**Statistics cannot establish exclusion or exogeneity.** A prior use whose significance survives every "
@@ -41,23 +39,6 @@ METHOD_NOTES = (
     "homoskedastic errors, so indicative only for robust or cluster F) and against Montiel Olea–Pflueger "
     "effective-F critical values (exact with one instrument).",
 )
-
-
-def build_audit(inputs: AuditInputs, *, top: int = 5) -> AuditSummary:
-    """Audit every study in scope that has reported statistics and count the threats raised against them."""
-    audits = [
-        audit_study(key, reported, citation=cite) for key, cite, reported, _ in inputs.studies if reported
-    ]
-    counts: Counter[str] = Counter()
-    meta: dict[str, CritiqueInfo] = {}
-    for _, _, _, critiques in inputs.studies:
-        for c in critiques:
-            counts[c.threat_code] += 1
-            meta.setdefault(c.threat_code, c)
-    threats = [
-        ThreatCount(code, meta[code].threat_title, meta[code].condition, n) for code, n in counts.items()
-    ]
-    return summarise(inputs.scope, audits, n_studies=len(inputs.studies), threats=threats, top=top)
 
 
 def _num(value: float | None, digits: int = 4) -> str:

@@ -13,12 +13,7 @@ from datetime import datetime
 from typing import Any
 
 from ivdossier.errors import InvalidInputError
-
-CONDITIONS: tuple[str, ...] = ("relevance", "exclusion", "exogeneity", "monotonicity")
-"""The four identifying conditions, in the order every document presents them."""
-
-LINK_STATES: tuple[str, ...] = ("open", "rebutted", "mitigated", "accepted", "fatal")
-"""States a threat linked to an instrument can be in."""
+from ivdossier.vocabulary import CONDITIONS, LINK_STATES
 
 
 def _check_condition(value: str, where: str) -> None:
@@ -266,3 +261,31 @@ class DossierInput:
         if isinstance(self.generated_at, datetime):
             return self.generated_at.isoformat(timespec="seconds")
         return str(self.generated_at)
+
+
+@dataclass(frozen=True)
+class CritiqueInfo:
+    """A critique in plain terms: which threat, by which study, with the note."""
+
+    threat_code: str
+    threat_title: str
+    condition: str
+    raised_by: str | None
+    note: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "threat": self.threat_code,
+            "title": self.threat_title,
+            "condition": self.condition,
+            "raised_by": self.raised_by,
+            "note": self.note,
+        }
+
+
+@dataclass(frozen=True)
+class AuditInputs:
+    """Plain data for an audit: the scope's name, its studies with their reported values and critiques."""
+
+    scope: str
+    studies: tuple[tuple[str, str, dict[str, Any], tuple[CritiqueInfo, ...]], ...]

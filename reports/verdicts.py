@@ -43,12 +43,9 @@ from typing import Any
 
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.inputs import CONDITIONS, DossierInput, LinkInfo, RunInfo
+from ivdossier.vocabulary import AT_RISK, BROKEN, HOLDS, NOT_ASSESSED, VERDICTS
 
-HOLDS = "holds"
-AT_RISK = "at risk"
-BROKEN = "broken"
-NOT_ASSESSED = "not assessed"
-STATUSES: tuple[str, ...] = (HOLDS, AT_RISK, BROKEN, NOT_ASSESSED)
+STATUSES = VERDICTS
 
 HIGH_SEVERITY = 4.0
 """Team-mean severity (1-5) from which an open or accepted threat counts as unresolved."""

@@ -9,7 +9,7 @@ import sys
 
 from _venv import ensure_venv, run
 
-LIBRARIES = ["ivdossier", "registry", "threats_catalog", "estimation", "reports", "cli"]
+LIBRARIES = ["ivdossier", "registry", "threats_catalog", "estimation", "reports", "workflows", "cli"]
 
 if __name__ == "__main__":
     bin_dir = ensure_venv()

@@ -2,14 +2,14 @@
 
 from __future__ import annotations
 
-from ivdossier.registry.studies import AuditInputs, CritiqueInfo
 from ivdossier.reports.audit_doc import (
     audit_html,
     audit_json,
     audit_markdown,
     audit_section_markdown,
-    build_audit,
 )
+from ivdossier.reports.inputs import AuditInputs, CritiqueInfo
+from ivdossier.workflows.studies import build_audit
 
 HOSTILE = "<script>alert(1)</script> *Smith* | [x](javascript:alert(1))"
 

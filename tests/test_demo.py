@@ -7,9 +7,9 @@ from pathlib import Path
 
 import pytest
 
-from ivdossier.demo import build_demo
-from ivdossier.demo_data import TRUE_EFFECT, simulate_telehealth
 from ivdossier.errors import InvalidInputError
+from ivdossier.workflows.demo import build_demo
+from ivdossier.workflows.demo_data import TRUE_EFFECT, simulate_telehealth
 
 
 @pytest.fixture(scope="module")

@@ -22,6 +22,7 @@ from ivdossier.registry import studies
 from ivdossier.registry import threats as thr
 from ivdossier.registry.db import Registry, open_registry
 from ivdossier.registry.portability import export_registry, import_registry, read_export, render_export
+from ivdossier.workflows import studies as study_work
 
 SETTINGS = settings(
     max_examples=30,
@@ -185,7 +186,7 @@ def test_study_statistics_csv_imports_whole_or_not_at_all(target: Registry, raw:
             studies.import_bibtex(
                 s, actor="ben", text="@article{hostile-key,\n  title = {T},\n  year = 2020\n}\n"
             )
-    _import_or_refuse(target, lambda s: studies.import_stats_csv(s, actor="ben", text=raw))
+    _import_or_refuse(target, lambda s: study_work.import_stats_csv(s, actor="ben", text=raw))
 
 
 @settings(SETTINGS, max_examples=40)

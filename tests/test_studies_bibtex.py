@@ -12,6 +12,7 @@ from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry import studies
 from ivdossier.registry.db import Registry, open_registry
 from ivdossier.registry.models import Study
+from ivdossier.workflows import studies as study_work
 
 FIXTURES = Path(__file__).parent / "fixtures" / "bibtex"
 
@@ -161,10 +162,10 @@ def test_reported_statistics_attachments_and_critiques(reg: Registry) -> None:
     with reg.writing() as s:
         _setup_program(s)
         studies.import_bibtex(s, actor="ana", text=(FIXTURES / "varied.bib").read_text("utf-8"))
-        studies.report_stats(
+        study_work.report_stats(
             s, actor="ana", key="Nakamura2019", values={"estimate": "-0.4", "std_error": 0.1}
         )
-        studies.report_stats(
+        study_work.report_stats(
             s, actor="ana", key="Nakamura2019", values={"first_stage_f": 12.5, "f_kind": "cluster"}
         )
         studies.attach(s, actor="ana", key="Nakamura2019", instrument="fibre")
@@ -175,7 +176,7 @@ def test_reported_statistics_attachments_and_critiques(reg: Registry) -> None:
     with reg.reading() as s:
         nak = studies.study_dict(s, s.exec(select(Study).where(Study.key == "Nakamura2019")).one())
         in_scope = [st.key for st in studies.list_studies(s, instrument="fibre")]
-        inputs = studies.audit_inputs(s, family="distance-geography")
+        inputs = study_work.audit_inputs(s, family="distance-geography")
     assert nak["reported"] == {"estimate": -0.4, "std_error": 0.1, "first_stage_f": 12.5, "f_kind": "cluster"}
     assert nak["instruments"] == ["fibre"]
     assert nak["citation"] == "Nakamura et al. (2019)"
@@ -197,7 +198,7 @@ def test_study_errors_are_specific(reg: Registry) -> None:
         pytest.raises(InvalidInputError, match="study 'A2020': std_error must be positive"),
         reg.writing() as s,
     ):
-        studies.report_stats(s, actor="ana", key="A2020", values={"std_error": 0})
+        study_work.report_stats(s, actor="ana", key="A2020", values={"std_error": 0})
     with pytest.raises(NotFoundError, match="no threat named 'XX-E99'"), reg.writing() as s:
         studies.critique(s, actor="ana", key="A2020", threat="XX-E99")
     with pytest.raises(InvalidInputError, match="cannot critique itself"), reg.writing() as s:
@@ -225,14 +226,14 @@ def test_csv_of_many_studies_is_all_or_nothing_with_the_line(reg: Registry) -> N
         studies.add_study(s, actor="ana", key="B2021")
     good = "key,estimate,std_error,first_stage_f,f_kind,n,instrument\nA2020,0.3,0.1,25,robust,1000,fibre\nB2021,0.5,0.2,8,,400,\n"
     with reg.writing() as s:
-        done = studies.import_stats_csv(s, actor="ana", text=good)
+        done = study_work.import_stats_csv(s, actor="ana", text=good)
     assert [d.key for d in done] == ["A2020", "B2021"]
     bad = "key,estimate,std_error\nA2020,0.9,0.1\nB2021,0.5,-2\n"
     with (
         pytest.raises(InvalidInputError, match=r"CSV line 3 \(B2021\): std_error must be positive"),
         reg.writing() as s,
     ):
-        studies.import_stats_csv(s, actor="ana", text=bad)
+        study_work.import_stats_csv(s, actor="ana", text=bad)
     with reg.reading() as s:
         a = s.exec(select(Study).where(Study.key == "A2020")).one()
     assert a.reported == {
@@ -244,9 +245,9 @@ def test_csv_of_many_studies_is_all_or_nothing_with_the_line(reg: Registry) -> N
     }
     assert a.instruments == ["fibre"]
     with pytest.raises(InvalidInputError, match=r"CSV column\(s\) 'beta' are not known"), reg.writing() as s:
-        studies.import_stats_csv(s, actor="ana", text="key,beta\nA2020,1\n")
+        study_work.import_stats_csv(s, actor="ana", text="key,beta\nA2020,1\n")
     with pytest.raises(InvalidInputError, match=r"CSV line 2: no study with key 'Z1999'"), reg.writing() as s:
-        studies.import_stats_csv(s, actor="ana", text="key,estimate\nZ1999,1\n")
+        study_work.import_stats_csv(s, actor="ana", text="key,estimate\nZ1999,1\n")
 
 
 def test_round_trip_on_each_backend(db_url: str) -> None:

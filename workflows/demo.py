@@ -225,9 +225,9 @@ def build_demo(
     progress: Callable[[str], None] | None = None,
 ) -> dict[str, Any]:
     """Write the demo into `out` and return a summary of what was built."""
-    from ivdossier.demo_data import simulate_telehealth
     from ivdossier.registry import instruments as reg
     from ivdossier.registry.db import open_registry
+    from ivdossier.workflows.demo_data import simulate_telehealth
 
     say = progress or (lambda _msg: None)
     out = Path(out)
@@ -305,9 +305,9 @@ def build_demo(
 
 
 def _link_threats(registry: Any, actor: str) -> int:
-    from ivdossier.catalog_sync import ensure_builtin
     from ivdossier.registry.threats import add_team_threat, link_threat, rate_link
     from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
+    from ivdossier.workflows.catalog_sync import ensure_builtin
 
     with registry.writing() as s:
         ensure_builtin(s, actor=actor)
@@ -328,7 +328,8 @@ def _link_threats(registry: Any, actor: str) -> int:
 
 
 def _prior_studies(registry: Any) -> int:
-    from ivdossier.registry.studies import attach, critique, import_bibtex, report_stats
+    from ivdossier.registry.studies import attach, critique, import_bibtex
+    from ivdossier.workflows.studies import report_stats
 
     with registry.writing() as s:
         studies = import_bibtex(s, actor="amara", text=PRIOR_STUDIES_BIBTEX, source="demo")
@@ -347,7 +348,7 @@ def _prior_studies(registry: Any) -> int:
 
 
 def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
-    from ivdossier.runs import estimate_file, store_run
+    from ivdossier.workflows.runs import estimate_file, store_run
 
     slugs = []
     for instrument, used, method in RUNS:
@@ -369,7 +370,7 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
 def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
     """Falsification and sensitivity runs: the zero-first-stage subgroup and the placebo outcome for each."""
     from ivdossier.estimation import falsification, sensitivity, subgroups
-    from ivdossier.runs import analyse_file, store_run
+    from ivdossier.workflows.runs import analyse_file, store_run
 
     common = {"controls": list(CONTROLS), "cluster": ["district"], "vcov": "cluster"}
     model = {"outcome": "ed_visits", "treatment": "telehealth"}
@@ -411,11 +412,11 @@ def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
 
 def _record_what_the_checks_found(registry: Any) -> str:
     """The team reads the zero-first-stage result for the clerk instrument and marks the follow-up threat fatal."""
-    from ivdossier.findings import finding
     from ivdossier.registry import records
     from ivdossier.registry.instruments import move_instrument
     from ivdossier.registry.models import Run
     from ivdossier.registry.threats import set_link
+    from ivdossier.workflows.findings import finding
 
     with registry.writing() as s:
         run = records.get(s, Run, "clerk-video-rate-falsify-zero-first-stage-1")
@@ -441,7 +442,7 @@ def _record_what_the_checks_found(registry: Any) -> str:
 def _documents(registry: Any, out: Path) -> list[str]:
     from datetime import UTC, datetime
 
-    from ivdossier.dossiers import write_dossier, write_site
+    from ivdossier.workflows.dossiers import write_dossier, write_site
 
     generated = datetime.now(UTC).isoformat(timespec="seconds")
     written = []

@@ -118,8 +118,8 @@ def check_finding(check: str, runs: Sequence[Run]) -> str:
 
     Over-identification looks for the newest run that has more instruments than treatments.
     """
-    from ivdossier.findings import finding, run_kind_for_command
     from ivdossier.threats_catalog.checks import CHECKS
+    from ivdossier.workflows.findings import finding, run_kind_for_command
 
     spec = CHECKS.get(check)
     if spec is None:
@@ -242,8 +242,8 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
 
 def _prior_uses(session: Session, instrument: Instrument) -> tuple[str, ...]:
     """The literature audit of studies attached to the instrument or its family, when there are any."""
-    from ivdossier.registry.studies import audit_inputs
-    from ivdossier.reports.audit_doc import audit_section_markdown, build_audit
+    from ivdossier.reports.audit_doc import audit_section_markdown
+    from ivdossier.workflows.studies import audit_inputs, build_audit
 
     inputs = audit_inputs(session, instrument=instrument.slug)
     if not inputs.studies:
