@@ -198,13 +198,13 @@ class VariantTable:
 def read_variant_table(path: str | Path, *, columns: Mapping[str, str] | None = None) -> VariantTable:
     """Read a per-variant CSV or TSV file (delimiter from the extension or sniffed) and check it."""
     p = Path(path)
-    if not p.is_file():
-        raise InvalidInputError(f"Cannot read {str(p)!r}: no such file; check the path.")
     suffix = p.suffix.lower()
     if suffix not in (".csv", ".tsv", ".txt"):
         raise InvalidInputError(
             f"Cannot read {str(p)!r}: unknown extension {suffix or '(none)'!r}; use .csv, .tsv or .txt."
         )
+    if not p.is_file():
+        raise InvalidInputError(f"Cannot read {str(p)!r}: no such file; check the path.")
     try:
         head = p.read_text(encoding="utf-8", errors="replace")[:4096]
         sep = (
