@@ -128,8 +128,8 @@ class Harmonisation:
             text += f"; {len(self.strand_complemented)} matched on the opposite strand"
         if self.palindromic:
             text += (
-                f"; {len(self.palindromic)} palindromic (A/T or C/G) variant(s) kept as reported, their "
-                "strand cannot be checked without allele frequencies"
+                f"; {len(self.palindromic)} palindromic (A/T or C/G) variant(s) aligned by their reported "
+                "alleles, their strand cannot be checked without allele frequencies"
             )
         return text + "."
 
