@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import csv
 import math
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -83,6 +84,7 @@ ALLELE_PAIRS = (
 )
 OPTIONAL_NUMERIC = ("exposure_n", "outcome_n", "exposure_r2", "outcome_r2")
 _COMPLEMENT = str.maketrans("ACGT", "TGCA")
+_ALLELE = re.compile(r"[ACGT]+|[DI]")
 
 
 def _as_dict(obj: Any) -> dict[str, Any]:
@@ -231,8 +233,8 @@ def _numeric_column(frame: pd.DataFrame, name: str, variants: Sequence[str]) -> 
         rows = [variants[int(i)] for i in np.flatnonzero(bad.to_numpy())]
         raw = frame[name].iloc[int(np.flatnonzero(bad.to_numpy())[0])]
         raise InvalidInputError(
-            f"Column {name!r} has missing or non-numeric values (e.g. {raw!r}) for variant(s) {_list(rows)}; "
-            "fill them in or drop those rows."
+            f"Column {name!r} has missing, infinite or non-numeric values (e.g. '{raw}') for variant(s) "
+            f"{_list(rows)}; fill them in or drop those rows."
         )
     return col.to_numpy(dtype=np.float64)
 
@@ -256,6 +258,11 @@ def variant_table(
             )
     df = frame.rename(columns=rename)
     df.columns = [str(c).strip().lower() for c in df.columns]
+    twice = sorted({c for c in df.columns if list(df.columns).count(c) > 1})
+    if twice:
+        raise InvalidInputError(
+            f"Column name(s) {_list(twice)} occur more than once (ignoring case and spaces); keep one of each."
+        )
     missing = [c for c in REQUIRED_COLUMNS if c not in df.columns]
     if missing:
         raise InvalidInputError(
@@ -349,7 +356,14 @@ def _harmonise(df: pd.DataFrame, variants: list[str], by: Array) -> tuple[Array,
             raise InvalidInputError(
                 f"Column {n!r} is empty for variant(s) {_list(rows)}; fill in the alleles."
             )
-        cols.append([str(a).strip().upper() for a in col])
+        alleles = [str(a).strip().upper() for a in col]
+        odd = [f"{v} ({a})" for v, a in zip(variants, alleles, strict=True) if not _ALLELE.fullmatch(a)]
+        if odd:
+            raise InvalidInputError(
+                f"Column {n!r} holds values that are not alleles for {_list(odd)}; use the letters A, C, G and T "
+                "(or D and I for deletions and insertions)."
+            )
+        cols.append(alleles)
     out = by.copy()
     flipped: list[str] = []
     strand: list[str] = []

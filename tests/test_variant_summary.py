@@ -15,6 +15,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from scipy import stats
 from statsmodels.stats.meta_analysis import combine_effects
 
@@ -288,6 +290,21 @@ def test_mismatched_alleles_name_the_variant() -> None:
         variant_table(f)
 
 
+def test_values_that_are_not_alleles_are_refused() -> None:
+    f = _with_alleles()
+    f.loc[1, "exposure_other_allele"] = "2"
+    with pytest.raises(
+        InvalidInputError, match=r"'exposure_other_allele' holds values that are not alleles for 'v01 \(2\)'"
+    ):
+        variant_table(f)
+
+
+def test_column_names_that_collide_when_case_is_ignored_are_refused() -> None:
+    f = _frame().assign(Variant="x")
+    with pytest.raises(InvalidInputError, match=r"Column name\(s\) 'variant' occur more than once"):
+        variant_table(f)
+
+
 def test_incomplete_allele_columns_are_refused() -> None:
     f = _with_alleles().drop(columns=["outcome_other_allele"])
     with pytest.raises(InvalidInputError, match="'outcome_other_allele' missing; give all four"):
@@ -325,7 +342,8 @@ def test_non_numeric_effects_name_the_value() -> None:
     f["outcome_effect"] = f["outcome_effect"].astype(object)
     f.loc[3, "outcome_effect"] = "n/a"
     with pytest.raises(
-        InvalidInputError, match=r"'outcome_effect' has missing or non-numeric values \(e.g. 'n/a'\)"
+        InvalidInputError,
+        match=r"'outcome_effect' has missing, infinite or non-numeric values \(e.g. 'n/a'\)",
     ):
         variant_table(f)
 
@@ -367,3 +385,20 @@ def test_evidence_prints_the_caution_and_round_trips_to_json(table) -> None:  # 
     assert data["kind"] == "summary_data_evidence"
     assert data["ivw"]["estimate"] == pytest.approx(ev.ivw.estimate)  # type: ignore[union-attr]
     assert len(data["table"]["rows"]) == table.n_variants
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(
+    raw=st.text(
+        alphabet=st.sampled_from(list("variant,exposure_effect_se\toutcome0.1-e\r\n\"';x")), max_size=200
+    )
+)
+def test_any_file_content_gives_a_table_or_one_clear_error(tmp_path: Path, raw: str) -> None:
+    """Hostile input: arbitrary text in a .csv or .txt file is read or refused with InvalidInputError only."""
+    for name in ("hostile.csv", "hostile.txt"):
+        path = tmp_path / name
+        path.write_text(raw, encoding="utf-8")
+        try:
+            read_variant_table(path)
+        except InvalidInputError as exc:
+            assert str(exc)  # one message naming the problem
