@@ -8,6 +8,7 @@ STROBE-MR, Skrivankova et al. 2021), computed items come from the evidence, and 
 
 from __future__ import annotations
 
+import json
 import re
 
 import numpy as np
@@ -15,7 +16,13 @@ import pandas as pd
 import pytest
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.omitted_variable import contour_grid, robustness_values
+from ivdossier.estimation.omitted_variable import (
+    IvRobustness,
+    NotApplicable,
+    contour_grid,
+    iv_robustness,
+    robustness_values,
+)
 from ivdossier.estimation.variant_summary import SummaryEvidence, summary_evidence, variant_table
 from ivdossier.reports.html import clean_svg
 from ivdossier.reports.inputs import CONDITIONS
@@ -26,6 +33,7 @@ from ivdossier.reports.variant_plots import (
     robustness_contour_svg,
     variant_scatter_svg,
 )
+from ivdossier.reports.variant_sections import robustness_markdown, summary_evidence_markdown
 
 
 def _evidence(j: int = 8, name: str = "rs{}") -> SummaryEvidence:
@@ -99,3 +107,31 @@ def test_checklist_markdown_escapes_notes_and_states_the_limits() -> None:
 def test_unknown_checklist_codes_are_refused() -> None:
     with pytest.raises(InvalidInputError, match=r"Unknown checklist code\(s\) 'GV-Z9'"):
         fill_checklist(notes={"GV-Z9": "x"})
+
+
+def test_sections_render_the_same_from_the_result_and_from_its_stored_json() -> None:
+    ev = _evidence(name="v_{}*")
+    md = summary_evidence_markdown(ev)
+    assert md == summary_evidence_markdown(json.loads(json.dumps(ev.to_dict())))
+    assert "| IVW, fixed effect |" in md and "MR-Egger intercept" in md and "Weighted median" in md
+    assert "Statistics cannot establish exclusion or exogeneity." in md
+    assert re.search(r"dropped", md) and re.search(r"v\\_\d+\\\*", md)  # the variant name arrives escaped
+
+
+def test_robustness_section_states_the_values_and_escapes_names() -> None:
+    rng = np.random.default_rng(6)
+    n = 400
+    df = pd.DataFrame({"z": rng.normal(size=n), "ctl|<b>": rng.normal(size=n)})
+    df["d"] = 0.5 * df["z"] + 0.3 * df["ctl|<b>"] + rng.normal(size=n)
+    df["y"] = 0.4 * df["d"] + 0.2 * df["ctl|<b>"] + rng.normal(size=n)
+    res = iv_robustness(
+        df, outcome="y", treatment="d", instrument="z", controls=["ctl|<b>"], benchmarks=["ctl|<b>"]
+    )
+    assert isinstance(res, IvRobustness)
+    md = robustness_markdown(res)
+    assert md == robustness_markdown(json.loads(json.dumps(res.to_dict())))
+    assert f"{100 * res.iv.rv_alpha:.3g}%" in md and f"{100 * res.reduced_form.rv:.3g}%" in md
+    assert re.search(r"(?<!\\)<b>", md) is None and r"ctl\|" in md
+    assert "need domain review" in md
+    na = robustness_markdown(NotApplicable("two instruments given"))
+    assert "Not applicable: two instruments given." in na
