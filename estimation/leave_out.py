@@ -53,14 +53,15 @@ def leave_out_means(values: np.ndarray, groups: np.ndarray, *, clusters: np.ndar
     sums = np.bincount(g, weights=v, minlength=n_groups)
     counts = np.bincount(g, minlength=n_groups).astype(np.float64)
     if clusters is None:
-        own_sum, own_count = v, np.ones_like(v)
+        own_sum, own_count = v, np.ones(v.shape, dtype=np.float64)
     else:
         c = np.asarray(clusters).astype(np.int64)
         cell = g.astype(np.int64) * (int(c.max()) + 1) + c
         cell_codes, _ = pd.factorize(cell, sort=False)
         cell_sums = np.bincount(cell_codes, weights=v)
         cell_counts = np.bincount(cell_codes).astype(np.float64)
-        own_sum, own_count = cell_sums[cell_codes], cell_counts[cell_codes]
+        own_sum = np.asarray(cell_sums[cell_codes], dtype=np.float64)
+        own_count = np.asarray(cell_counts[cell_codes], dtype=np.float64)
     denom = counts[g] - own_count
     bad = denom <= 0
     if bad.any():
@@ -268,11 +269,11 @@ def decision_maker_propensity(
     counts = np.bincount(dm_codes)
     singles = np.flatnonzero(counts == 1)
     if singles.size:
-        ids = [dm_ids[i] for i in singles]
+        single_ids = [dm_ids[int(i)] for i in singles]
         rows = data.index[np.isin(dm_codes, singles)].tolist()
         raise InvalidInputError(
             f"{singles.size} decision-maker(s) in {decision_maker!r} have a single case "
-            f"({_names(ids)}; row index {_names(rows)}), so their leave-one-out propensity is undefined; "
+            f"({_names(single_ids)}; row index {_names(rows)}), so their leave-one-out propensity is undefined; "
             "drop those cases or merge the decision-makers before building the instrument."
         )
     t = data[treatment].to_numpy(dtype=np.float64)
@@ -288,7 +289,7 @@ def decision_maker_propensity(
         except InvalidInputError:
             cell = pd.factorize(dm_codes.astype(np.int64) * (int(clus.max()) + 1) + clus)[0]
             n_clus_per_dm = np.bincount(dm_codes[np.unique(cell, return_index=True)[1]])
-            lonely = [dm_ids[i] for i in np.flatnonzero(n_clus_per_dm == 1)]
+            lonely = [dm_ids[int(i)] for i in np.flatnonzero(n_clus_per_dm == 1)]
             raise InvalidInputError(
                 f"{len(lonely)} decision-maker(s) in {decision_maker!r} have all their cases in one "
                 f"{cluster!r} cluster ({_names(lonely)}), so leaving the own cluster out leaves nothing; "
