@@ -23,6 +23,7 @@ implemented here.
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 from typing import Any
 
@@ -250,7 +251,7 @@ def _confidence_set(pieces: _Pieces, z: float) -> tuple[tuple[float, float], ...
     scale = max([1.0] + [abs(x) for x in pts])
     edges = [-np.inf, *pts, np.inf]
     out: list[list[float]] = []
-    for lo, hi in zip(edges[:-1], edges[1:], strict=True):
+    for lo, hi in itertools.pairwise(edges):
         if np.isinf(lo) and np.isinf(hi):
             mid = 0.0
         elif np.isinf(lo):

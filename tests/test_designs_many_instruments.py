@@ -31,7 +31,7 @@ def brute_force(y: np.ndarray, x: np.ndarray, z: np.ndarray, w: np.ndarray, b: f
     m_w = np.eye(n) - w @ np.linalg.pinv(w)
     zt = m_w @ z
     p = zt @ np.linalg.pinv(zt)
-    k = int(round(np.trace(p)))
+    k = round(float(np.trace(p)))
     m = np.eye(n) - p
 
     def stat(v: np.ndarray) -> float:
