@@ -194,7 +194,7 @@ def _grouped_pieces(ey: Array, ex: Array, dm: np.ndarray, cells: np.ndarray) -> 
     sy, sx = np.bincount(dm, weights=ey), np.bincount(dm, weights=ex)
     cy, cx = np.bincount(cells, weights=ey), np.bincount(cells, weights=ex)
 
-    def quad(a_dm: Array, b_dm: Array, a_c: Array, b_c: Array) -> float:
+    def quad(a_dm: np.ndarray, b_dm: np.ndarray, a_c: np.ndarray, b_c: np.ndarray) -> float:
         return float(np.sum(a_dm * b_dm / n_dm) - np.sum(a_c * b_c / n_cell))
 
     num = np.array(
