@@ -283,6 +283,11 @@ def decision_maker_jackknife_iv(
             f"{int(na.sum())} row(s) have missing values in {cols} (index {data.index[na][:8].tolist()}); "
             "drop or fill them first."
         )
+    for c in (outcome, treatment, *ctrl):
+        if not (pd.api.types.is_numeric_dtype(data[c]) or pd.api.types.is_bool_dtype(data[c])):
+            raise InvalidInputError(
+                f"Column {c!r} must be numeric, got dtype {data[c].dtype}; recode it as numbers."
+            )
     y = data[outcome].to_numpy(dtype=np.float64)
     x = data[treatment].to_numpy(dtype=np.float64)
     dm, dm_ids = pd.factorize(data[decision_maker], sort=False)

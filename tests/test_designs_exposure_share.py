@@ -228,3 +228,22 @@ def test_bad_tables_raise_one_error_naming_the_rows() -> None:
     design = build_shift_share(long, shocks, unit="district", shock="rollout")
     with pytest.raises(InvalidInputError, match=r"Unit ids do not match \(missing from the data: 'D0\d\d'\)"):
         align_units(design, data.iloc[1:], "district")
+
+
+def test_sector_clusters_of_one_sector_change_nothing_and_clustered_akm_matches_bhj() -> None:
+    long, shocks, data = invented_region_data(complete=True, seed=5)
+    design = build_shift_share(long, shocks, unit="district", shock="rollout", units=data["district"])
+    data = align_units(design, data, "district")
+    y, x = data["ed_visits"].to_numpy(), data["telehealth"].to_numpy()
+    own = list(design.sectors)  # every sector its own cluster
+    assert exposure_robust_iv(design, y, x, sector_clusters=own).se_akm == pytest.approx(
+        exposure_robust_iv(design, y, x).se_akm, rel=1e-12
+    )  # algebra: a sum over one-sector clusters is the unclustered sum
+    groups = [int(s[1:]) % 3 for s in design.sectors]
+    akm = exposure_robust_iv(design, y, x, sector_clusters=groups)
+    bhj = shock_level_iv(design, y, x, sector_clusters=groups)
+    # same algebra as the unclustered identity above, summed within clusters of sectors
+    assert akm.se_akm == pytest.approx(bhj.std_error, rel=1e-9)
+    assert akm.n_sector_clusters == bhj.n_sector_clusters == 3
+    with pytest.raises(InvalidInputError, match=r"one label per sector \(12\), got 2"):
+        exposure_robust_iv(design, y, x, sector_clusters=[0, 1])
