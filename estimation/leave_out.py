@@ -88,6 +88,7 @@ class PropensityRecipe:
     min_cases: int
     n_cases: int
     n_decision_makers: int
+    dropped_controls: tuple[str, ...] = ()  # constant, absorbed by the cells or collinear: left out
 
     @property
     def description(self) -> str:
@@ -120,6 +121,7 @@ class PropensityRecipe:
             "min_cases": self.min_cases,
             "n_cases": self.n_cases,
             "n_decision_makers": self.n_decision_makers,
+            "dropped_controls": list(self.dropped_controls),
             "description": self.description,
         }
 
@@ -277,10 +279,13 @@ def decision_maker_propensity(
             "drop those cases or merge the decision-makers before building the instrument."
         )
     t = data[treatment].to_numpy(dtype=np.float64)
+    dropped: tuple[str, ...] = ()
     if ctrl or fes:
         fe_codes = [pd.factorize(data[f], sort=False)[0].astype(np.int64) for f in fes]
         cvals = data[list(ctrl)].to_numpy(dtype=np.float64) if ctrl else None
-        t = partial_out(t[:, None], controls=cvals, fe_codes=fe_codes).columns[:, 0]
+        absorbed = partial_out(t[:, None], controls=cvals, fe_codes=fe_codes)
+        t = absorbed.columns[:, 0]
+        dropped = tuple(ctrl[i] for i in absorbed.dropped_controls)
     clus = None
     if cluster is not None:
         clus = pd.factorize(data[cluster], sort=False)[0]
@@ -310,6 +315,7 @@ def decision_maker_propensity(
         min_cases=min_cases,
         n_cases=len(data),
         n_decision_makers=len(ids),
+        dropped_controls=dropped,
     )
     return DecisionMakerPropensity(
         values=values,

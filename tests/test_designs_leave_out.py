@@ -72,6 +72,7 @@ def test_residualised_propensity_is_the_leave_out_mean_of_the_least_squares_resi
     np.testing.assert_allclose(res.values, expected, rtol=0, atol=1e-10)  # exact identity up to rounding
     assert res.recipe.to_dict()["residualised"] is True
     assert "fixed-effect cells ['month']" in res.recipe.description
+    assert res.recipe.dropped_controls == ()
 
 
 def test_counts_and_small_decision_makers_are_reported(cases: pd.DataFrame) -> None:
@@ -124,3 +125,13 @@ def test_missing_values_and_wrong_options_are_named(cases: pd.DataFrame) -> None
 def test_array_core_names_groups_without_other_cases() -> None:
     with pytest.raises(InvalidInputError, match=r"1 group code\(s\) have no other case to average over: 2"):
         leave_out_means(np.array([1.0, 0.0, 1.0, 1.0, 0.0]), np.array([0, 0, 2, 1, 1]))
+
+
+def test_a_control_absorbed_by_the_cells_is_reported_as_dropped(cases: pd.DataFrame) -> None:
+    df = cases.assign(month_twice=2.0 * cases["month"])  # constant within each month cell
+    res = decision_maker_propensity(
+        df, decision_maker="clerk", treatment="video", controls="month_twice", absorb="month"
+    )
+    assert res.recipe.dropped_controls == (
+        "month_twice",
+    )  # exact collinearity with the cells, by construction
