@@ -40,12 +40,9 @@ def report_stats(
     return records.edit(session, study, {"reported": clean}, actor=actor, action="report")
 
 
-def import_stats_csv(session: Session, *, actor: str, text: str) -> list[Study]:
-    """Reported statistics for many studies from CSV text (a ``key`` column plus reported fields); all or nothing.
-
-    Optional ``instrument`` and ``family`` columns attach the study as well (several separated by ';').
-    """
-    reader = csv.DictReader(io.StringIO(text))
+def _stats_rows(text: str) -> list[tuple[int, str, dict[str, str], list[str], list[str]]]:
+    """Parse and check every row of the statistics CSV before anything is written."""
+    reader = csv.DictReader(io.StringIO(text, newline=""))
     columns = [c.strip() for c in (reader.fieldnames or [])]
     if "key" not in columns:
         raise InvalidInputError("the CSV needs a 'key' column naming each study; add it to the header row.")
@@ -68,6 +65,20 @@ def import_stats_csv(session: Session, *, actor: str, text: str) -> list[Study]:
         values = {k: v for k, v in data.items() if v != ""}
         ReportedStats.from_mapping(values, where=f"CSV line {line} ({key})")
         rows.append((line, key, values, inst, fam))
+    return rows
+
+
+def import_stats_csv(session: Session, *, actor: str, text: str) -> list[Study]:
+    """Reported statistics for many studies from CSV text (a ``key`` column plus reported fields); all or nothing.
+
+    Optional ``instrument`` and ``family`` columns attach the study as well (several separated by ';').
+    """
+    try:
+        rows = _stats_rows(text)
+    except csv.Error as exc:
+        raise InvalidInputError(
+            f"the statistics CSV cannot be read ({exc}); save it as plain comma-separated text with one row per line."
+        ) from exc
     out = []
     for line, key, values, inst, fam in rows:
         if records.find(session, Study, key) is None:
