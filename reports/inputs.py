@@ -289,3 +289,17 @@ class AuditInputs:
 
     scope: str
     studies: tuple[tuple[str, str, dict[str, Any], tuple[CritiqueInfo, ...]], ...]
+
+
+@dataclass(frozen=True)
+class Difference:
+    """One field of a frozen plan that differs: where (registry or exported file), its path, the frozen value
+    and the value found now."""
+
+    where: str
+    path: str
+    frozen: Any
+    found: Any
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"where": self.where, "path": self.path, "frozen": self.frozen, "found": self.found}

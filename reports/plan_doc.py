@@ -1,6 +1,6 @@
 """The pre-analysis plan as a document (Markdown, or HTML through the shared renderer) and checks of exported copies.
 
-The document is rendered from the plan's sealed form (``registry.plans.sealed_document``) plus its state and hash,
+The document is rendered from the plan's sealed form (``ivdossier.registry.plans.sealed_document``) plus its state and hash,
 so the same plan always gives the same text; ``verify_document`` re-renders it from the sealed record and names
 every line of an exported Markdown or HTML copy that differs. User text is escaped with ``mdtext``.
 """
@@ -13,8 +13,8 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from ivdossier.registry.plans import Difference
 from ivdossier.reports import mdtext as mt
+from ivdossier.reports.inputs import Difference
 
 CAUTIONS = (
     "**Statistics cannot establish exclusion or exogeneity.** The diagnostics planned here speak to instrument "
