@@ -361,14 +361,18 @@ def write_dossier(
     return out
 
 
-def write_site(session: Session, out: Path, *, generated_at: datetime | str) -> list[Path]:
+def write_site(
+    session: Session, out: Path, *, generated_at: datetime | str, relative_to: Path | None = None
+) -> list[Path]:
     """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
     from ivdossier.reports.site import build_site
 
     programs = list(session.exec(select(Program).order_by(Program.slug)))
     infos = [program_info(p) for p in programs]
     slugs = list(session.exec(select(Instrument.slug).order_by(Instrument.slug)))
-    dossiers = [dossier_input(session, slug, generated_at=generated_at) for slug in slugs]
+    dossiers = [
+        dossier_input(session, slug, generated_at=generated_at, relative_to=relative_to) for slug in slugs
+    ]
     entries = [
         ri.CatalogEntry(
             code=t.code,

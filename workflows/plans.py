@@ -20,6 +20,7 @@ from ivdossier.registry.models import Covariate, GraphEdge, Instrument, Plan, Pr
 from ivdossier.registry.threats import links_of
 from ivdossier.threats_catalog.checks import get_check
 from ivdossier.vocabulary import INACTIVE_STATES
+from ivdossier.workflows.dossiers import instrument_check
 from ivdossier.workflows.plan_rules import check_rules, default_rules
 
 PLAN_SCHEMA = store.PLAN_SCHEMA
@@ -83,7 +84,10 @@ def draft_content(
     expected_n: int | None = None,
     power: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
-    """The content of a new plan, assembled from the registry and the given specification options."""
+    """The content of a new plan, assembled from the registry and the given specification options.
+
+    Each instrument carries its verdicts as the verdict engine derives them at drafting time, so the sealed plan
+    records how the argument stood when the plan was written."""
     cov = vcov or ("cluster" if cluster else "robust")
     if cov == "cluster" and not cluster:
         raise InvalidInputError("vcov 'cluster' needs --cluster COLUMN; name the clustering column.")
@@ -138,6 +142,7 @@ def draft_content(
                     "exogeneity": i.claim_exogeneity,
                     "monotonicity": i.claim_monotonicity,
                 },
+                "verdicts": [v.to_dict() for v in instrument_check(session, i).verdicts],
             }
             for i in instruments
         ],
