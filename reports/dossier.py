@@ -21,7 +21,7 @@ from ivdossier.reports.resultview import treatment_name
 from ivdossier.vocabulary import Verdict
 
 if TYPE_CHECKING:
-    from ivdossier.threats_catalog.graph import BypassPath
+    from ivdossier.threats_catalog.graph import BypassPath, GraphVerdict
 
 STATE_ORDER = {"fatal": 0, "open": 1, "accepted": 2, "mitigated": 3, "rebutted": 4}
 CONDITION_TITLES = {
@@ -164,7 +164,7 @@ def _summary(inp: DossierInput, run: RunInfo | None) -> str:
     out = ["## At a glance"]
     if inp.verdicts:
         out.append(
-            mt.table(["Condition", "Verdict", "Why", "Rule"], [_glance_row(v) for v in inp.verdicts], "lllc")
+            mt.table(["Condition", "Verdict", "Why", "Rule"], [_glance_row(v) for v in _ordered(inp)], "lllc")
         )
         out.append(
             "Verdict shapes: filled circle with a tick = holds; triangle with an exclamation mark = at risk; "
@@ -185,6 +185,10 @@ def _summary(inp: DossierInput, run: RunInfo | None) -> str:
         text = ", ".join(f"{counts[s]} {s}" for s in STATE_ORDER if counts[s])
         out.append(f"Linked threats: {len(inp.links)} ({text}). Estimation runs: {len(inp.runs)}.")
     return "\n\n".join(out)
+
+
+def _ordered(inp: DossierInput) -> list[Verdict]:
+    return [v for c in CONDITIONS if (v := inp.verdict(c)) is not None]
 
 
 def _glance_row(v: Verdict) -> list[str]:
@@ -298,10 +302,17 @@ def _diagram(inp: DossierInput) -> str:
                 "with the paths that linked threats add.",
             )
         )
+    rows = _graph_rows(inp.graph.verdict) if inp.graph.verdict is not None else []
+    if rows:
+        out.append("What the graph check found:")
+        out.append(mt.table(["Condition", "In the diagram", "Paths found", "Explanation"], rows))
+    return "\n\n".join(out) if len(out) > 1 else ""
+
+
+def _graph_rows(graph: GraphVerdict) -> list[list[str]]:
+    """What the graph check found for relevance, exclusion and exogeneity (the evidence behind rules G1 and G2)."""
     rows = []
-    graph = inp.graph.verdict
-    for condition in CONDITIONS[:3] if graph is not None else ():
-        assert graph is not None
+    for condition in CONDITIONS[:3]:
         found = [c for c in graph.conditions if c.condition == condition]
         value = found[0].value if found else ""
         paths = [path_text(p) for p in graph.open_paths if p.is_open and p.condition == condition]
@@ -316,10 +327,7 @@ def _diagram(inp: DossierInput) -> str:
         rows.append(
             [condition.capitalize(), outcome, "; ".join(mt.inline(p) for p in paths) or "–", mt.cell(reason)]
         )
-    if rows:
-        out.append("What the graph check found:")
-        out.append(mt.table(["Condition", "In the diagram", "Paths found", "Explanation"], rows))
-    return "\n\n".join(out) if len(out) > 1 else ""
+    return rows
 
 
 def _cautions() -> str:
