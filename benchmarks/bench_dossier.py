@@ -14,6 +14,7 @@ from typing import Any
 
 from ivdossier.reports.dossier import dossier_figures, dossier_html, dossier_markdown
 from ivdossier.reports.sample import make_link, make_run, sample_input
+from ivdossier.workflows.verdicts import with_verdicts
 
 TARGET_SECONDS = 2.0
 
@@ -22,7 +23,7 @@ def big_input() -> Any:
     base = sample_input()
     links = tuple(make_link(i) for i in range(200))
     runs = (make_run(0, method="ols"), *(make_run(i) for i in range(1, 50)))
-    return dataclasses.replace(base, links=links, runs=runs)
+    return with_verdicts(dataclasses.replace(base, links=links, runs=runs))
 
 
 def best_of(fn: Callable[[], Any], repeat: int) -> tuple[float, Any]:

@@ -103,6 +103,7 @@ def draft(
 ) -> None:
     """Draft a pre-analysis plan from the registry (edit it, then freeze it)."""
     from ivdossier.registry import plans
+    from ivdossier.workflows.plans import draft_plan
 
     if out is not None:
         _suffix(out, (".md", ".html"), "--out")
@@ -114,7 +115,7 @@ def draft(
         n_inst = len(inst.columns or []) if inst is not None else 1
         pw = _power(n, expected_f, partial_r2, outcome_sd, residual_sd, treatment_sd, cluster_size, icc, effect,
                     power, max(n_inst, 1))  # fmt: skip
-        plan = plans.draft_plan(
+        plan = draft_plan(
             s, actor=actor(), target=target, slug=slug, title=title, controls=control or [], absorb=absorb or [],
             cluster=cluster or [], method=method, vcov=vcov, alpha=alpha, data_description=read_text_option(data) or "",
             sample=read_text_option(sample) or "", expected_n=n, power=pw,
@@ -193,8 +194,9 @@ def edit(
     if_version: IfVersion = None,
 ) -> None:
     """Change a draft plan (frozen plans refuse every change)."""
-    from ivdossier.registry import plans, records
+    from ivdossier.registry import records
     from ivdossier.registry.models import Plan
+    from ivdossier.workflows.plans import edit_plan
 
     sections: dict[str, Any] = {}
     if rules is not None:
@@ -211,7 +213,7 @@ def edit(
             if sample is not None:
                 current["sample"] = read_text_option(sample)
             sections["data"] = current
-        row = plans.edit_plan(
+        row = edit_plan(
             s, actor=actor(), slug=plan, title=title, sections=sections, expected_version=if_version
         )
         version = row.version
@@ -235,9 +237,10 @@ def _json_file(path: Path, what: str) -> Any:
 def freeze(plan: str) -> None:
     """Seal a plan: canonical form, SHA-256, time and author are stored and the plan becomes read-only."""
     from ivdossier.registry import plans
+    from ivdossier.workflows.plans import freeze_plan
 
     with writing() as s:
-        row = plans.freeze_plan(s, actor=actor(), slug=plan)
+        row = freeze_plan(s, actor=actor(), slug=plan)
         stamp, who, sha = plans.iso(row.frozen_at), row.frozen_by, row.sha256  # type: ignore[arg-type]
     typer.echo(f"plan {plan} frozen at {stamp} by {who}\nsha256 {sha}")
 
@@ -276,6 +279,7 @@ def verify(
     from ivdossier.registry import plans, records
     from ivdossier.registry.models import Plan
     from ivdossier.reports.plan_doc import verify_document
+    from ivdossier.workflows.plan_check import VerifyReport, verify_plan
 
     text = suffix = None
     if file is not None:
@@ -284,12 +288,12 @@ def verify(
         suffix = _suffix(file, DOC_SUFFIXES, "--file")
         text = _read_file(file, "exported plan")
     with reading() as s:
-        report = plans.verify_plan(s, plan, exported=text if suffix == ".json" else None)
+        report = verify_plan(s, plan, exported=text if suffix == ".json" else None)
         if text is not None and suffix in (".md", ".html"):
             row = records.get(s, Plan, plan)
             seal = plans.recorded_seal(s, row) or plans.sealed_document(s, row)
             extra = verify_document(text, seal, sha256=row.sha256, fmt=suffix[1:])
-            report = plans.VerifyReport(report.plan, report.sha256, report.intact and not extra,
+            report = VerifyReport(report.plan, report.sha256, report.intact and not extra,
                                         report.differences + tuple(extra), report.notes)  # fmt: skip
     if json_out:
         print_json(report.to_dict())
@@ -312,10 +316,10 @@ def compare(
     json_out: JsonFlag = False,
 ) -> None:
     """List every deviation of the runs from the plan and apply its decision rules to each run."""
-    from ivdossier.registry import plans
+    from ivdossier.workflows.plan_check import compare_plan
 
     with reading() as s:
-        result = plans.compare_plan(s, plan, runs)
+        result = compare_plan(s, plan, runs)
     if json_out:
         print_json(result.to_dict())
         return

@@ -132,35 +132,40 @@ def threat_suggest(instrument: str, json_out: JsonFlag = False) -> None:
         )
 
 
-def _verdict(instrument: str) -> tuple[Any, Any]:
+def _checked(instrument: str) -> Any:
     from ivdossier.registry import records
     from ivdossier.registry.models import Instrument
-    from ivdossier.workflows.dossiers import instrument_graph
+    from ivdossier.workflows.dossiers import instrument_check
 
     with reading() as s:
-        return instrument_graph(s, records.get(s, Instrument, instrument))
+        return instrument_check(s, records.get(s, Instrument, instrument))
 
 
 @graph_app.command("check")
 def graph_check(instrument: str, json_out: JsonFlag = False) -> None:
-    """Verdict per condition from d-separation, with every open path that bypasses the treatment."""
+    """Verdict per condition (the dossier's), with every open path that bypasses the treatment."""
     from ivdossier.threats_catalog.graph import adjustment_sets
 
-    G, verdict = _verdict(instrument)
+    checked = _checked(instrument)
+    G, verdict = checked.graph, checked.check
     roles = {"instrument": verdict.instrument, "treatment": verdict.treatment, "outcome": verdict.outcome}
     try:
         sets = [sorted(x) for x in adjustment_sets(G, max_size=4, **roles)]
     except Exception as exc:  # too many candidates: report instead of failing the check
         sets = [[f"not searched: {exc}"]]
-    data = {**verdict.to_dict(), "adjustment_sets": sets}
+    data = {
+        **verdict.to_dict(),
+        "adjustment_sets": sets,
+        "verdicts": [v.to_dict() for v in checked.verdicts],
+    }
     if json_out:
         print_json(data)
         return
     rows = [
-        {"condition": c, "verdict": v["value"], "why": "; ".join(v.get("reasons", []))}
-        for c, v in data["conditions"].items()
+        {"condition": v.condition, "verdict": v.status, "rule": v.rule, "why": v.reason}
+        for v in checked.verdicts
     ]
-    print_table(rows, ["condition", "verdict", "why"], widths={"why": 90})
+    print_table(rows, ["condition", "verdict", "rule", "why"], widths={"why": 90})
     typer.echo(f"\nconditioning on: {', '.join(data['conditioning']) or '(nothing)'}")
     if data["open_paths"]:
         typer.echo("open paths from the instrument to the outcome that bypass the treatment:")
@@ -185,8 +190,11 @@ def graph_draw(
 
     if out.suffix.lower() != ".svg":
         raise InvalidInputError(f"--out {str(out)!r} must end in .svg.")
-    G, verdict = _verdict(instrument)
-    out.write_text(render_svg(G, verdict, title=f"Causal diagram: {instrument}"), encoding="utf-8")
+    checked = _checked(instrument)
+    svg = render_svg(
+        checked.graph, checked.check, title=f"Causal diagram: {instrument}", verdicts=checked.verdicts
+    )
+    out.write_text(svg, encoding="utf-8")
     typer.echo(f"diagram written to {out}")
 
 

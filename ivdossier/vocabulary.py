@@ -1,9 +1,16 @@
-"""The project's words, defined once: identifying conditions, link states, lifecycle states and verdict values.
+"""The project's words, defined once: identifying conditions, link states, lifecycle states, verdict values and
+the verdict object every document renders.
 
 Every layer imports these names from here; a test fails if another module defines its own copy.
 """
 
 from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+from ivdossier.errors import InvalidInputError
 
 CONDITIONS: tuple[str, ...] = ("relevance", "exclusion", "exogeneity", "monotonicity")
 """The four identifying conditions, in the order every document presents them."""
@@ -26,3 +33,57 @@ BROKEN = "broken"
 NOT_ASSESSED = "not assessed"
 VERDICTS: tuple[str, ...] = (HOLDS, AT_RISK, BROKEN, NOT_ASSESSED)
 """Derived verdict values of a condition (never typed in by a person)."""
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """One condition's derived verdict: its status, the rule that fired, a one-line reason and the graph paths
+    behind it. Computed once by ``ivdossier.workflows.verdicts``; the dossier table, the diagram's badges, the
+    site, the plan document and the terminal all render this object."""
+
+    condition: str
+    status: str
+    rule: str
+    reason: str
+    paths: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        if self.condition not in CONDITIONS:
+            raise InvalidInputError(
+                f"verdict condition {self.condition!r} is not one of {', '.join(CONDITIONS)}"
+            )
+        if self.status not in VERDICTS:
+            raise InvalidInputError(f"verdict status {self.status!r} is not one of {', '.join(VERDICTS)}")
+        object.__setattr__(self, "paths", tuple(self.paths))
+
+    @property
+    def key(self) -> str:
+        """The status as one token (``at-risk``), for badges, CSS classes and data attributes."""
+        return verdict_key(self.status)
+
+    def __str__(self) -> str:
+        return f"{self.condition}: {self.status} ({self.rule}) — {self.reason}"
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "condition": self.condition,
+            "status": self.status,
+            "rule": self.rule,
+            "reason": self.reason,
+            "paths": list(self.paths),
+        }
+
+    @classmethod
+    def from_dict(cls, data: Mapping[str, Any]) -> Verdict:
+        return cls(
+            condition=str(data["condition"]),
+            status=str(data["status"]),
+            rule=str(data["rule"]),
+            reason=str(data["reason"]),
+            paths=tuple(str(p) for p in data.get("paths") or ()),
+        )
+
+
+def verdict_key(status: str) -> str:
+    """``at risk`` -> ``at-risk``: a verdict value as one token."""
+    return status.replace(" ", "-")

@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import uuid as uuid_mod
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from contextvars import ContextVar
 from datetime import UTC, datetime
 from typing import Any, ClassVar
 
@@ -24,9 +27,23 @@ LIFECYCLE_MOVES: dict[str, tuple[str, ...]] = {
 }
 
 
+_CLOCK: ContextVar[Callable[[], datetime] | None] = ContextVar("ivdossier_registry_clock", default=None)
+
+
 def utcnow() -> datetime:
-    """Current time in UTC, timezone-aware, truncated to microseconds."""
-    return datetime.now(UTC)
+    """Current time in UTC, timezone-aware; inside ``with clock(source)`` the source answers instead."""
+    source = _CLOCK.get()
+    return source() if source is not None else datetime.now(UTC)
+
+
+@contextmanager
+def clock(source: Callable[[], datetime]) -> Iterator[None]:
+    """Take every registry timestamp in the block from `source` (a reproducible demo, golden-file tests)."""
+    token = _CLOCK.set(source)
+    try:
+        yield
+    finally:
+        _CLOCK.reset(token)
 
 
 def new_uuid() -> str:

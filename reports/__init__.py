@@ -1,12 +1,12 @@
 """Documents from plain inputs: the per-instrument dossier (Markdown, self-contained HTML), a static site,
 publication tables and SVG plots.
 
-Entry points (no database access here; callers build the frozen inputs of :mod:`ivdossier.reports.inputs`):
+Entry points (no database access here; callers build the frozen inputs of :mod:`ivdossier.reports.inputs`,
+including the verdicts derived by :mod:`ivdossier.workflows.verdicts`):
 
 - :func:`ivdossier.reports.dossier.dossier_markdown`, :func:`ivdossier.reports.dossier.dossier_html`
 - :func:`ivdossier.reports.html.render_html`
 - :func:`ivdossier.reports.site.build_site`
 - :func:`ivdossier.reports.tables.runs_table`
-- :func:`ivdossier.reports.verdicts.derive_verdicts`
 - :mod:`ivdossier.reports.plots` (matplotlib is imported only when a plot is drawn)
 """

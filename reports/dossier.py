@@ -8,8 +8,8 @@ All user-written text goes through `mdtext` escaping.
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Mapping, Sequence
-from typing import Any
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, Any
 
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
@@ -18,7 +18,10 @@ from ivdossier.reports.inputs import CONDITIONS, DossierInput, LinkInfo, RunInfo
 from ivdossier.reports.provenance import provenance_markdown
 from ivdossier.reports.resultview import get as _get
 from ivdossier.reports.resultview import treatment_name
-from ivdossier.reports.verdicts import Verdict, derive_verdicts, graph_status, latest_run
+from ivdossier.vocabulary import Verdict
+
+if TYPE_CHECKING:
+    from ivdossier.threats_catalog.graph import BypassPath, GraphVerdict
 
 STATE_ORDER = {"fatal": 0, "open": 1, "accepted": 2, "mitigated": 3, "rebutted": 4}
 CONDITION_TITLES = {
@@ -38,18 +41,17 @@ CAUTIONS = (
     "claims, threat reviews and estimates. Before any result informs a policy or clinical decision, people who "
     "know the setting should review the argument and the data.",
     "**Verdicts are derived, not measured.** They follow fixed, published rules from the inputs shown here "
-    "(the rule table lives in `ivdossier.reports.verdicts`); they summarise the record and can be no better than it.",
+    "(the rule table lives in `ivdossier.workflows.verdicts`); they summarise the record and can be no better than it.",
 )
 
 
 def dossier_markdown(inp: DossierInput) -> str:
     """Render the dossier for one instrument as Markdown (deterministic for equal inputs)."""
-    verdicts = derive_verdicts(inp)
     run = latest_run(inp.runs)
     parts = [
         _header(inp),
-        _summary(inp, verdicts, run),
-        _argument(inp, verdicts),
+        _summary(inp, run),
+        _argument(inp),
         _diagram(inp),
         estimates_markdown(inp, run),
         *inp.extra_sections,
@@ -100,6 +102,24 @@ def figure_keys(inp: DossierInput) -> dict[str, str]:
     return keys
 
 
+def latest_run(runs: Sequence[RunInfo]) -> RunInfo | None:
+    """The most recent run that reports diagnostics (strength or first stage), else the most recent run."""
+    if not runs:
+        return None
+    ordered = sorted(runs, key=lambda r: (r.created_text, r.slug))
+    diagnostic = [r for r in ordered if rv.section(r.results, "strength") or rv.first_stage_rows(r.results)]
+    return (diagnostic or ordered)[-1]
+
+
+def path_text(path: BypassPath) -> str:
+    """A bypass path in words, e.g. ``fibre_wave → pharmacy → ed_visits (threat DG-E01)``."""
+    parts = [path.nodes[0]]
+    for arrow, node in zip(path.arrows, path.nodes[1:], strict=True):
+        parts += ["→" if arrow == "->" else "←", node]
+    text = " ".join(parts)
+    return f"{text} (threat {', '.join(path.threats)})" if path.threats else text
+
+
 # ----------------------------------------------------------------------------------------------- header
 
 
@@ -140,15 +160,22 @@ def _join(items: Sequence[Any]) -> str:
 # ---------------------------------------------------------------------------------------------- summary
 
 
-def _summary(inp: DossierInput, verdicts: Mapping[str, Verdict], run: RunInfo | None) -> str:
-    rows = [[c.capitalize(), mt.badge(v.status), mt.cell(v.reason), v.rule] for c, v in verdicts.items()]
-    out = [
-        "## At a glance",
-        mt.table(["Condition", "Verdict", "Why", "Rule"], rows, "lllc"),
-        "Verdict shapes: filled circle with a tick = holds; triangle with an exclamation mark = at risk; "
-        "square with a cross = broken; dashed ring = not assessed. Rules are listed in "
-        "`ivdossier.reports.verdicts`.",
-    ]
+def _summary(inp: DossierInput, run: RunInfo | None) -> str:
+    out = ["## At a glance"]
+    if inp.verdicts:
+        out.append(
+            mt.table(["Condition", "Verdict", "Why", "Rule"], [_glance_row(v) for v in _ordered(inp)], "lllc")
+        )
+        out.append(
+            "Verdict shapes: filled circle with a tick = holds; triangle with an exclamation mark = at risk; "
+            "square with a cross = broken; dashed ring = not assessed. Rules are listed in "
+            "`ivdossier.workflows.verdicts`."
+        )
+    else:
+        out.append(
+            "No verdicts were derived for this input; build it with `ivdossier.workflows.dossiers.dossier_input` "
+            "or pass it through `ivdossier.workflows.verdicts.with_verdicts`."
+        )
     if run is not None:
         key = _run_key_numbers(inp, run)
         if key:
@@ -158,6 +185,14 @@ def _summary(inp: DossierInput, verdicts: Mapping[str, Verdict], run: RunInfo | 
         text = ", ".join(f"{counts[s]} {s}" for s in STATE_ORDER if counts[s])
         out.append(f"Linked threats: {len(inp.links)} ({text}). Estimation runs: {len(inp.runs)}.")
     return "\n\n".join(out)
+
+
+def _ordered(inp: DossierInput) -> list[Verdict]:
+    return [v for c in CONDITIONS if (v := inp.verdict(c)) is not None]
+
+
+def _glance_row(v: Verdict) -> list[str]:
+    return [v.condition.capitalize(), mt.badge(v.status), mt.cell(v.reason), v.rule]
 
 
 def _run_key_numbers(inp: DossierInput, run: RunInfo) -> str:
@@ -185,7 +220,7 @@ def _run_key_numbers(inp: DossierInput, run: RunInfo) -> str:
 # --------------------------------------------------------------------------------------------- argument
 
 
-def _argument(inp: DossierInput, verdicts: Mapping[str, Verdict]) -> str:
+def _argument(inp: DossierInput) -> str:
     blocks = []
     for condition in CONDITIONS:
         claim = inp.instrument.claims.get(condition, "")
@@ -195,7 +230,10 @@ def _argument(inp: DossierInput, verdicts: Mapping[str, Verdict]) -> str:
         )
         if not claim.strip() and not links:
             continue
-        part = [f"### {CONDITION_TITLES[condition]}", f"Verdict: {mt.badge(verdicts[condition].status)}"]
+        part = [f"### {CONDITION_TITLES[condition]}"]
+        verdict = inp.verdict(condition)
+        if verdict is not None:
+            part.append(f"Verdict: {mt.badge(verdict.status)}")
         if claim.strip():
             part.append("**The team's claim.**\n\n" + mt.block(claim))
         if links:
@@ -264,22 +302,32 @@ def _diagram(inp: DossierInput) -> str:
                 "with the paths that linked threats add.",
             )
         )
-    rows = []
-    for condition in CONDITIONS[:3]:
-        status = graph_status(inp.graph.verdict, condition)
-        if status.outcome is None and not status.paths:
-            continue
-        outcome = {
-            "satisfied": "satisfied in the diagram",
-            "violated": "violated in the diagram",
-            "at risk": "at risk in the diagram",
-        }.get(status.outcome or "", "not decided")
-        paths = "; ".join(mt.inline(p) for p in status.paths) or "–"
-        rows.append([condition.capitalize(), outcome, paths, mt.cell(status.reason)])
+    rows = _graph_rows(inp.graph.verdict) if inp.graph.verdict is not None else []
     if rows:
         out.append("What the graph check found:")
         out.append(mt.table(["Condition", "In the diagram", "Paths found", "Explanation"], rows))
     return "\n\n".join(out) if len(out) > 1 else ""
+
+
+def _graph_rows(graph: GraphVerdict) -> list[list[str]]:
+    """What the graph check found for relevance, exclusion and exogeneity (the evidence behind rules G1 and G2)."""
+    rows = []
+    for condition in CONDITIONS[:3]:
+        found = [c for c in graph.conditions if c.condition == condition]
+        value = found[0].value if found else ""
+        paths = [path_text(p) for p in graph.open_paths if p.is_open and p.condition == condition]
+        if value in ("", "not-assessed") and not paths:
+            continue
+        outcome = {
+            "holds": "satisfied in the diagram",
+            "broken": "violated in the diagram",
+            "at-risk": "at risk in the diagram",
+        }.get(value, "not decided")
+        reason = "; ".join(found[0].reasons) if found else ""
+        rows.append(
+            [condition.capitalize(), outcome, "; ".join(mt.inline(p) for p in paths) or "–", mt.cell(reason)]
+        )
+    return rows
 
 
 def _cautions() -> str:

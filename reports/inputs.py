@@ -10,10 +10,13 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.vocabulary import CONDITIONS, LINK_STATES
+from ivdossier.vocabulary import CONDITIONS, LINK_STATES, Verdict
+
+if TYPE_CHECKING:
+    from ivdossier.threats_catalog.graph import GraphVerdict
 
 
 def _check_condition(value: str, where: str) -> None:
@@ -193,9 +196,9 @@ class RunInfo:
 
 @dataclass(frozen=True)
 class GraphInfo:
-    """The causal-graph checker's verdict (its to_dict()) and the generated SVG of the diagram."""
+    """The causal-graph checker's result (a typed ``GraphVerdict``) and the generated SVG of the diagram."""
 
-    verdict: Mapping[str, Any] = field(default_factory=dict)
+    verdict: GraphVerdict | None = None
     svg: str = ""
 
 
@@ -246,6 +249,8 @@ class DossierInput:
     runs: tuple[RunInfo, ...] = ()
     graph: GraphInfo | None = None
     audit: tuple[AuditEvent, ...] = ()
+    # One derived verdict per condition (``ivdossier.workflows.verdicts``); every part of the document renders these.
+    verdicts: tuple[Verdict, ...] = ()
     # Whole "##" sections built by other report builders that escape their own user text (e.g. the literature
     # audit); placed after the estimates. Never put raw user text here.
     extra_sections: tuple[str, ...] = ()
@@ -255,6 +260,17 @@ class DossierInput:
         object.__setattr__(self, "runs", _as_tuple(self.runs))
         object.__setattr__(self, "audit", _as_tuple(self.audit))
         object.__setattr__(self, "extra_sections", _as_tuple(self.extra_sections))
+        object.__setattr__(self, "verdicts", _as_tuple(self.verdicts))
+        seen = [v.condition for v in self.verdicts]
+        if len(seen) != len(set(seen)):
+            raise InvalidInputError(
+                f"dossier input for {self.instrument.slug!r} has two verdicts for one condition ({seen}); "
+                "derive them once with ivdossier.workflows.verdicts.derive_verdicts."
+            )
+
+    def verdict(self, condition: str) -> Verdict | None:
+        """The derived verdict for one condition, or None when verdicts were not derived."""
+        return next((v for v in self.verdicts if v.condition == condition), None)
 
     @property
     def generated_text(self) -> str:
@@ -289,3 +305,17 @@ class AuditInputs:
 
     scope: str
     studies: tuple[tuple[str, str, dict[str, Any], tuple[CritiqueInfo, ...]], ...]
+
+
+@dataclass(frozen=True)
+class Difference:
+    """One field of a frozen plan that differs: where (registry or exported file), its path, the frozen value
+    and the value found now."""
+
+    where: str
+    path: str
+    frozen: Any
+    found: Any
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"where": self.where, "path": self.path, "frozen": self.frozen, "found": self.found}

@@ -1,6 +1,6 @@
 """The pre-analysis plan as a document (Markdown, or HTML through the shared renderer) and checks of exported copies.
 
-The document is rendered from the plan's sealed form (``registry.plans.sealed_document``) plus its state and hash,
+The document is rendered from the plan's sealed form (``ivdossier.registry.plans.sealed_document``) plus its state and hash,
 so the same plan always gives the same text; ``verify_document`` re-renders it from the sealed record and names
 every line of an exported Markdown or HTML copy that differs. User text is escaped with ``mdtext``.
 """
@@ -13,8 +13,9 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from ivdossier.registry.plans import Difference
 from ivdossier.reports import mdtext as mt
+from ivdossier.reports.inputs import Difference
+from ivdossier.vocabulary import Verdict
 
 CAUTIONS = (
     "**Statistics cannot establish exclusion or exogeneity.** The diagnostics planned here speak to instrument "
@@ -123,8 +124,24 @@ def _instruments(insts: Sequence[Mapping[str, Any]]) -> str:
             f"- **{c.capitalize()}:** {mt.inline(claims.get(c)) if claims.get(c) else '*not written*'}"
             for c in CONDITION_ORDER
         ]
-        out.append("\n\n".join([head, facts, "\n".join(lines)]))
+        block = [head, facts, "\n".join(lines)]
+        if inst.get("verdicts"):
+            block.append(_verdicts(inst["verdicts"]))
+        out.append("\n\n".join(block))
     return "\n\n".join(out)
+
+
+def _verdicts(items: Sequence[Mapping[str, Any]]) -> str:
+    """The verdicts recorded when the plan was drafted (``ivdossier.vocabulary.Verdict`` objects as dicts)."""
+    rows = []
+    for item in items:
+        v = Verdict.from_dict(item)
+        rows.append([v.condition.capitalize(), mt.badge(v.status), mt.cell(v.reason), mt.cell(v.rule)])
+    return (
+        "Verdicts when the plan was drafted (derived from the record at that time by the rules in "
+        "`ivdossier.workflows.verdicts`; they describe the argument, they are not decision rules):\n\n"
+        + mt.table(["Condition", "Verdict", "Why", "Rule"], rows, "lllc")
+    )
 
 
 def _graph(graph: Mapping[str, Any], threats: Sequence[Mapping[str, Any]]) -> str:
@@ -247,7 +264,6 @@ def plan_html(sealed: Mapping[str, Any], *, state: str, sha256: str = "") -> str
     return render_html(
         plan_markdown(sealed, state=state, sha256=sha256),
         title=str(sealed.get("title") or "Pre-analysis plan"),
-        badges={},
     )
 
 

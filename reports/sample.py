@@ -1,6 +1,7 @@
 """Invented example inputs (rural telehealth scenario) for tests, the benchmark and trying the renderer.
 
-The numbers are made up to look like a typical estimation result; they are not computed from data.
+The numbers are made up to look like a typical estimation result; they are not computed from data. Verdicts are
+not attached here (reports cannot run the engine): pass an input through ``ivdossier.workflows.verdicts.with_verdicts``.
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ from ivdossier.reports.inputs import (
     Rating,
     RunInfo,
 )
+from ivdossier.threats_catalog.graph import BypassPath, ConditionVerdict, GraphVerdict
 
 PROGRAM = ProgramInfo(
     slug="telehealth-ed",
@@ -255,17 +257,39 @@ def sample_input(*, n_links: int = 4, n_runs: int = 2, graph_svg: str = "") -> D
     ]
     links += [make_link(i) for i in range(max(0, n_links - 2))]
     runs = [make_run(0, method="ols", plots=False)] + [make_run(i) for i in range(1, n_runs)]
-    verdict = {
-        "conditions": {
-            "relevance": {"holds": True, "reason": "fibre_wave → telehealth edge present"},
-            "exclusion": {
-                "holds": False,
-                "reason": "a path avoids the treatment",
-                "paths": [["fibre_wave", "online_pharmacy", "ed_visits"]],
-            },
-            "exogeneity": {"holds": True, "reason": "no back-door path from the instrument to the outcome"},
-        }
-    }
+    pharmacy = BypassPath(
+        nodes=("fibre_wave", "online_pharmacy", "ed_visits"),
+        arrows=("->", "->"),
+        threats=(),
+        team_edges=True,
+        condition="exclusion",
+        severity="broken",
+        is_open=True,
+        opened_by=(),
+        blocked_by=(),
+    )
+    verdict = GraphVerdict(
+        instrument="fibre_wave",
+        treatment="telehealth",
+        outcome="ed_visits",
+        conditioning=(),
+        selection=(),
+        relevance_connected=True,
+        criterion_holds=False,
+        conditioning_issues=(),
+        conditions=(
+            ConditionVerdict("relevance", "holds", ("fibre_wave → telehealth edge present",), ()),
+            ConditionVerdict("exclusion", "broken", ("a path avoids the treatment",), ()),
+            ConditionVerdict(
+                "exogeneity", "holds", ("no back-door path from the instrument to the outcome",), ()
+            ),
+            ConditionVerdict("monotonicity", "not-assessed", ("a graph cannot show defiers",), ()),
+        ),
+        open_paths=(pharmacy,),
+        blocked_paths=(),
+        threats=(),
+        paths_truncated=False,
+    )
     return DossierInput(
         program=PROGRAM,
         instrument=FIBRE,

@@ -20,10 +20,10 @@ from pathlib import Path
 from ivdossier.errors import InvalidInputError
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
-from ivdossier.reports.dossier import CAUTIONS, dossier_html
+from ivdossier.reports.dossier import CAUTIONS, dossier_html, latest_run
 from ivdossier.reports.html import render_html
 from ivdossier.reports.inputs import CONDITIONS, CatalogEntry, DossierInput, LinkInfo, ProgramInfo
-from ivdossier.reports.verdicts import derive_verdicts, latest_run
+from ivdossier.vocabulary import BROKEN
 
 _RESERVED = {"con", "prn", "aux", "nul", *(f"com{i}" for i in range(10)), *(f"lpt{i}" for i in range(10))}
 _MAX_SLUG = 64
@@ -134,7 +134,7 @@ def _index_page(
         rows = []
         for p in programs:
             ds = by_program[p.slug]
-            broken = sum(1 for d in ds if any(v.status == "broken" for v in derive_verdicts(d).values()))
+            broken = sum(1 for d in ds if any(v.status == BROKEN for v in d.verdicts))
             rows.append(
                 [
                     f"[{mt.inline(p.title or p.slug)}](programs/{dirs[p.slug]}/index.html)",
@@ -156,6 +156,11 @@ def _index_page(
     )
     parts.append("## Cautions\n\n" + "\n\n".join(CAUTIONS[:3]))
     return render_html("\n\n".join(parts) + "\n", title=title, svgs={}, toc=False)
+
+
+def _badge(d: DossierInput, condition: str) -> str:
+    verdict = d.verdict(condition)
+    return mt.badge(verdict.status) if verdict is not None else "–"
 
 
 def _strongest_threat(links: Sequence[LinkInfo]) -> str:
@@ -197,7 +202,6 @@ def _program_page(
     if dossiers:
         rows = []
         for d in sorted(dossiers, key=lambda x: (x.instrument.name or x.instrument.slug).lower()):
-            verdicts = derive_verdicts(d)
             run = latest_run(d.runs)
             feff = rv.effective_f(run.results)[0] if run is not None else None
             ar = rv.intervals(rv.section(run.results, "weak_iv_robust", "anderson_rubin")) if run else None
@@ -206,7 +210,7 @@ def _program_page(
                 [
                     f"[{mt.inline(d.instrument.name or d.instrument.slug)}](instruments/{files[id(d)]}.html)"
                     + (f" ({described})" if described else ""),
-                    *[mt.badge(verdicts[c].status) for c in CONDITIONS],
+                    *[_badge(d, c) for c in CONDITIONS],
                     _strongest_threat(d.links),
                     rv.fmt(feff) if feff is not None else "–",
                     rv.fmt_set(ar) if ar is not None else "–",
@@ -216,7 +220,7 @@ def _program_page(
         headers += ["Strongest unresolved threat", "Effective F", "AR set"]
         parts.append(
             "## Candidate instruments side by side\n\n"
-            "Verdicts are derived by the rules in `ivdossier.reports.verdicts`; effective F and the "
+            "Verdicts are derived by the rules in `ivdossier.workflows.verdicts`; effective F and the "
             "Anderson–Rubin (AR) set come from each instrument's latest run with diagnostics.\n\n"
             + mt.table(headers, rows, "lccccl" + "rr")
         )

@@ -23,6 +23,7 @@ from ivdossier.reports.dossier import dossier_html
 from ivdossier.reports.inputs import CatalogEntry, InstrumentInfo
 from ivdossier.reports.sample import PROGRAM, make_run, sample_input
 from ivdossier.reports.site import build_site
+from ivdossier.workflows.verdicts import with_verdicts
 
 pytestmark = pytest.mark.browser
 
@@ -88,7 +89,9 @@ def _hostile_input() -> Any:
     base = sample_input(n_links=6, n_runs=3)
     claims = dict(base.instrument.claims)
     claims["exclusion"] = HOSTILE_CLAIM
-    return dataclasses.replace(base, instrument=dataclasses.replace(base.instrument, claims=claims))
+    return with_verdicts(
+        dataclasses.replace(base, instrument=dataclasses.replace(base.instrument, claims=claims))
+    )
 
 
 def _requested_urls(drv: Any) -> list[str]:
@@ -152,7 +155,7 @@ def test_dossier_renders_figures_offline_and_keeps_hostile_text_inert(driver: An
 
 def test_dossier_prints_to_clean_pages(driver: Any, tmp_path: Path) -> None:
     page = tmp_path / "dossier.html"
-    page.write_text(dossier_html(sample_input(n_links=4, n_runs=2)), encoding="utf-8")
+    page.write_text(dossier_html(with_verdicts(sample_input(n_links=4, n_runs=2))), encoding="utf-8")
     driver.get(page.as_uri())
     driver.execute_cdp_cmd("Emulation.setEmulatedMedia", {"media": "print"})
     try:
@@ -177,7 +180,7 @@ def test_site_index_links_through_to_a_dossier(driver: Any, tmp_path: Path) -> N
         runs=(make_run(1, plots=False),),
     )
     entries = [CatalogEntry("TH-017", "Broadband also brings online pharmacy", "exclusion")]
-    build_site(tmp_path / "site", [PROGRAM], [_hostile_input(), mast], entries)
+    build_site(tmp_path / "site", [PROGRAM], [_hostile_input(), with_verdicts(mast)], entries)
     driver.get_log("performance")
     driver.get((tmp_path / "site" / "index.html").as_uri())
     assert driver.title == "Instrument dossiers"

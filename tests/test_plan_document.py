@@ -5,8 +5,9 @@ from __future__ import annotations
 import re
 from typing import Any
 
-from ivdossier.registry.plans import default_rules, sha256_of
+from ivdossier.registry.plans import sha256_of
 from ivdossier.reports.plan_doc import condition_text, plan_html, plan_markdown, verify_document
+from ivdossier.workflows.plan_rules import default_rules
 
 HOSTILE = "<img src=x onerror=alert(1)> **loud** `code`"
 

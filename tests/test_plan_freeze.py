@@ -15,6 +15,8 @@ from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import plans, records
 from ivdossier.registry.db import Registry, open_registry
 from ivdossier.registry.models import Plan
+from ivdossier.workflows import plan_check
+from ivdossier.workflows import plans as drafting
 
 FROZEN_AT = datetime(2026, 1, 31, 9, 30, 5, tzinfo=UTC)
 
@@ -37,17 +39,17 @@ def reg(tmp_path: Path) -> Iterator[Registry]:
 
 def _draft_and_freeze(reg: Registry, target: str = "fibre", **options: Any) -> str:
     with reg.writing() as s:
-        plan = plans.draft_plan(
+        plan = drafting.draft_plan(
             s, actor="ana", target=target, controls=["age", "rural"], cluster=["district"], **options
         )
         slug = plan.slug
-        plans.freeze_plan(s, actor="bo", slug=slug, at=FROZEN_AT)
+        drafting.freeze_plan(s, actor="bo", slug=slug, at=FROZEN_AT)
     return slug
 
 
 def test_draft_collects_question_instruments_specs_and_default_rules(reg: Registry) -> None:
     with reg.writing() as s:
-        plan = plans.draft_plan(s, actor="ana", target="tele", controls=["age"], expected_n=5000)
+        plan = drafting.draft_plan(s, actor="ana", target="tele", controls=["age"], expected_n=5000)
         content = plan.content or {}
     assert plan.slug == "tele-plan" and plan.state == "draft"
     assert content["question"]["question"] == "Does telehealth reduce emergency visits?"
@@ -59,7 +61,7 @@ def test_draft_collects_question_instruments_specs_and_default_rules(reg: Regist
     assert [r["id"] for r in content["decision_rules"]] == ["strength-gate", "effect-claim"]
     assert content["data"]["expected_n"] == 5000
     with reg.writing() as s:
-        assert plans.draft_plan(s, actor="ana", target="tele").slug == "tele-plan-2"
+        assert drafting.draft_plan(s, actor="ana", target="tele").slug == "tele-plan-2"
 
 
 def test_freeze_stores_hash_time_and_author_and_the_row_becomes_read_only(reg: Registry) -> None:
@@ -73,7 +75,7 @@ def test_freeze_stores_hash_time_and_author_and_the_row_becomes_read_only(reg: R
         pytest.raises(ConflictError, match=r"plan 'fibre-plan' is frozen .* cannot be changed"),
         reg.writing() as s,
     ):
-        plans.edit_plan(s, actor="ana", slug=slug, title="New title")
+        drafting.edit_plan(s, actor="ana", slug=slug, title="New title")
     # a generic audited edit (bypassing plans.edit_plan) is refused too, at flush time
     with (
         pytest.raises(ConflictError, match=r"plan 'fibre-plan' is frozen and cannot be changed"),
@@ -83,9 +85,9 @@ def test_freeze_stores_hash_time_and_author_and_the_row_becomes_read_only(reg: R
     with pytest.raises(ConflictError, match="frozen and cannot be deleted"), reg.writing() as s:
         records.delete(s, records.get(s, Plan, slug), actor="ana")
     with pytest.raises(ConflictError, match="is frozen"), reg.writing() as s:
-        plans.freeze_plan(s, actor="ana", slug=slug)
+        drafting.freeze_plan(s, actor="ana", slug=slug)
     with reg.reading() as s:
-        report = plans.verify_plan(s, slug)
+        report = plan_check.verify_plan(s, slug)
     assert report.intact and report.differences == ()
 
 
@@ -150,7 +152,7 @@ def test_every_single_field_change_in_the_database_row_is_detected(reg: Registry
             conn.execute(text("UPDATE plan SET content = :c WHERE id = :i"),
                          {"c": json.dumps(_set(content, path, new)), "i": plan_id})  # fmt: skip
         with reg.reading() as s:
-            report = plans.verify_plan(s, slug)
+            report = plan_check.verify_plan(s, slug)
         assert not report.intact, path
         assert [(d.path, d.frozen, d.found) for d in report.differences] == [(f"content.{path}", old, new)]
     with reg.engine.begin() as conn:
@@ -172,42 +174,42 @@ def test_every_single_field_change_in_the_database_row_is_detected(reg: Registry
                 value = other_program
             conn.execute(text(f"UPDATE plan SET {column} = :v WHERE id = :i"), {"v": value, "i": plan_id})
         with reg.reading() as s:
-            report = plans.verify_plan(s, slug)
+            report = plan_check.verify_plan(s, slug)
         assert not report.intact, column
         assert path in [d.path for d in report.differences], (column, report.to_dict())
         with reg.engine.begin() as conn:
             conn.execute(text(f"UPDATE plan SET {column} = :v WHERE id = :i"), {"v": old, "i": plan_id})
     with reg.reading() as s:
-        assert plans.verify_plan(s, slug).intact
+        assert plan_check.verify_plan(s, slug).intact
 
 
 def test_every_single_field_change_in_an_exported_copy_is_detected(reg: Registry) -> None:
     slug = _draft_and_freeze(reg)
     with reg.reading() as s:
         exported = plans.export_document(s, slug)
-        assert plans.verify_plan(s, slug, exported=exported).intact
+        assert plan_check.verify_plan(s, slug, exported=exported).intact
     data = json.loads(exported)
     for path, old in _leaves(data):
         new = _changed(old)
         tampered = json.dumps(_set(data, path, new), indent=2)
         with reg.reading() as s:
-            report = plans.verify_plan(s, slug, exported=tampered)
+            report = plan_check.verify_plan(s, slug, exported=tampered)
         assert not report.intact, path
         found = [(d.where, d.path) for d in report.differences]
         expected = path.removeprefix("sealed.")
         assert ("exported file", expected) in found, (path, found)
     with reg.reading() as s, pytest.raises(InvalidInputError, match=r"not valid JSON \(line 1, column 1"):
-        plans.verify_plan(s, slug, exported="not json")
+        plan_check.verify_plan(s, slug, exported="not json")
 
 
 def test_export_and_verify_refuse_drafts(reg: Registry) -> None:
     with reg.writing() as s:
-        slug = plans.draft_plan(s, actor="ana", target="fibre").slug
+        slug = drafting.draft_plan(s, actor="ana", target="fibre").slug
     with (
         reg.reading() as s,
         pytest.raises(InvalidInputError, match="is a draft; only frozen plans can be verified"),
     ):
-        plans.verify_plan(s, slug)
+        plan_check.verify_plan(s, slug)
     with reg.reading() as s, pytest.raises(InvalidInputError, match="is a draft; freeze it before exporting"):
         plans.export_document(s, slug)
 
@@ -221,17 +223,17 @@ def test_freeze_and_verify_on_each_backend(db_url: str) -> None:
         with registry.writing() as s:
             add_program(s, actor="ana", slug="tele", title="Telehealth", treatment="x", outcome="y")
             add_instrument(s, actor="ana", program="tele", slug="fibre", name="Fibre", columns=["z"])
-            plans.draft_plan(s, actor="ana", target="fibre", power={"mde": 0.125, "se": 1 / 3})
-            plans.freeze_plan(s, actor="bo", slug="fibre-plan", at=FROZEN_AT)
+            drafting.draft_plan(s, actor="ana", target="fibre", power={"mde": 0.125, "se": 1 / 3})
+            drafting.freeze_plan(s, actor="bo", slug="fibre-plan", at=FROZEN_AT)
         with registry.reading() as s:
-            report = plans.verify_plan(s, "fibre-plan", exported=plans.export_document(s, "fibre-plan"))
+            report = plan_check.verify_plan(s, "fibre-plan", exported=plans.export_document(s, "fibre-plan"))
         assert report.intact, report.to_dict()
         with pytest.raises(ConflictError, match="is frozen"), registry.writing() as s:
-            plans.edit_plan(s, actor="ana", slug="fibre-plan", sections={"deviations": "none"})
+            drafting.edit_plan(s, actor="ana", slug="fibre-plan", sections={"deviations": "none"})
         with registry.engine.begin() as conn:
             conn.execute(text("UPDATE plan SET frozen_by = 'mallory' WHERE slug = 'fibre-plan'"))
         with registry.reading() as s:
-            report = plans.verify_plan(s, "fibre-plan")
+            report = plan_check.verify_plan(s, "fibre-plan")
         assert [(d.path, d.frozen, d.found) for d in report.differences] == [("frozen_by", "bo", "mallory")]
     finally:
         registry.dispose()

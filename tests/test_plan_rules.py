@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.registry import plans
+from ivdossier.workflows import plan_check, plan_rules
 
 
 def _results(strength: float, seed: int = 3, **kw: Any) -> dict[str, Any]:
@@ -26,9 +26,9 @@ def _results(strength: float, seed: int = 3, **kw: Any) -> dict[str, Any]:
 
 
 def test_default_rules_evaluate_on_a_strong_and_a_weak_run() -> None:
-    rules = plans.default_rules(1)
+    rules = plan_rules.default_rules(1)
     strong, weak = _results(0.8), _results(0.02)
-    gate = plans.evaluate_rule(rules[0], strong)
+    gate = plan_rules.evaluate_rule(rules[0], strong)
     eff = strong["strength"]["effective_f"]
     # the rule compares the run's own effective F with its own tau = 10 % critical value (23.109 just identified,
     # Montiel Olea and Pflueger 2013 as listed in REFERENCE_VALUES.md)
@@ -36,19 +36,19 @@ def test_default_rules_evaluate_on_a_strong_and_a_weak_run() -> None:
     assert gate.holds is (eff["statistic"] >= eff["critical_values"]["tau_10pct"]) is True
     assert gate.action.startswith("report 2SLS with t-based inference")
     assert gate.comparisons[0].threshold_from == "strength.effective_f.critical_values.tau_10pct"
-    weak_gate = plans.evaluate_rule(rules[0], weak)
+    weak_gate = plan_rules.evaluate_rule(rules[0], weak)
     assert weak_gate.holds is False and weak_gate.action.startswith("report the Anderson–Rubin set")
-    claim = plans.evaluate_rule(rules[1], strong)
+    claim = plan_rules.evaluate_rule(rules[1], strong)
     ar_set = strong["weak_iv_robust"]["anderson_rubin"]["confidence_set"]
     assert claim.holds is all(not (lo <= 0 <= hi) for lo, hi in ar_set)
 
 
 def test_missing_or_not_applicable_statistics_make_a_rule_not_evaluable() -> None:
-    rule = plans.default_rules(2)[2]
-    outcome = plans.evaluate_rule(rule, _results(0.8))  # just identified: overid p-value is null
+    rule = plan_rules.default_rules(2)[2]
+    outcome = plan_rules.evaluate_rule(rule, _results(0.8))  # just identified: overid p-value is null
     assert outcome.holds is None
     assert outcome.action == "not evaluable: overid.p_value is empty in this run (not applicable)"
-    missing = plans.evaluate_rule(rule, {})
+    missing = plan_rules.evaluate_rule(rule, {})
     assert missing.action == "not evaluable: the run has no overid.p_value"
 
 
@@ -63,10 +63,10 @@ def test_composite_conditions_and_interval_operators() -> None:
         "then": "yes",
         "otherwise": "no",
     }  # fmt: skip
-    plans.check_rule(rule)
-    out = plans.evaluate_rule(rule, results)
+    plan_rules.check_rule(rule)
+    out = plan_rules.evaluate_rule(rule, results)
     assert (out.holds, out.action) == (True, "yes")
-    assert plans.evaluate_rule(rule, {**results, "a": 3}).holds is False
+    assert plan_rules.evaluate_rule(rule, {**results, "a": 3}).holds is False
 
 
 @pytest.mark.parametrize(
@@ -85,13 +85,13 @@ def test_composite_conditions_and_interval_operators() -> None:
 )  # fmt: skip
 def test_malformed_rules_are_refused_with_the_rule_and_field(rule: dict[str, Any], message: str) -> None:
     with pytest.raises(InvalidInputError, match=message):
-        plans.check_rules([rule])
+        plan_rules.check_rules([rule])
 
 
 def test_duplicate_rule_ids_are_refused() -> None:
-    rule = plans.default_rules(1)[0]
+    rule = plan_rules.default_rules(1)[0]
     with pytest.raises(InvalidInputError, match="strength-gate are used twice"):
-        plans.check_rules([rule, rule])
+        plan_rules.check_rules([rule, rule])
 
 
 def test_compare_lists_every_deviation_from_the_planned_spec_and_sample() -> None:
@@ -99,9 +99,9 @@ def test_compare_lists_every_deviation_from_the_planned_spec_and_sample() -> Non
             "absorb": [], "cluster": ["g"], "weights": None, "method": "2sls", "vcov": "cluster",
             "small_sample": True, "alpha": 0.05}  # fmt: skip
     content = {"specs": [spec], "data": {"expected_n": 600, "dataset_sha256": "a" * 64},
-               "decision_rules": plans.default_rules(1)}  # fmt: skip
+               "decision_rules": plan_rules.default_rules(1)}  # fmt: skip
     results = _results(0.8)
-    on_plan = plans.RunView("on-plan", {**spec}, {**results}, "a" * 64, datetime(2026, 2, 1, tzinfo=UTC))
+    on_plan = plan_check.RunView("on-plan", {**spec}, {**results}, "a" * 64, datetime(2026, 2, 1, tzinfo=UTC))
     off_spec = {
         **results["spec"],
         "controls": ["w", "age"],
@@ -109,10 +109,10 @@ def test_compare_lists_every_deviation_from_the_planned_spec_and_sample() -> Non
         "cluster": [],
         "instruments": ["z", "z2"],
     }
-    off = plans.RunView(
+    off = plan_check.RunView(
         "off-plan", off_spec, {**results, "n": 580}, "b" * 64, datetime(2026, 1, 1, tzinfo=UTC)
     )
-    got = plans.compare_runs(content, [on_plan, off], frozen_at=datetime(2026, 1, 15, tzinfo=UTC))
+    got = plan_check.compare_runs(content, [on_plan, off], frozen_at=datetime(2026, 1, 15, tzinfo=UTC))
     assert got[0].deviations == ()
     assert {(d.kind, d.field, str(d.planned), str(d.actual)) for d in got[1].deviations} == {
         ("controls", "controls", "['w']", "['age', 'w']"),

@@ -14,6 +14,7 @@ from ivdossier.reports import resultview as rv
 from ivdossier.reports.dossier import dossier_html, dossier_markdown
 from ivdossier.reports.inputs import DossierInput, InstrumentInfo, RunInfo
 from ivdossier.reports.sample import PROGRAM, iv_results, make_run, sample_input
+from ivdossier.workflows.verdicts import with_verdicts
 
 SECTION_ORDER = [
     "# Instrument dossier: Fibre rollout wave",
@@ -36,7 +37,7 @@ def test_sections_appear_once_in_the_designed_order() -> None:
 
 
 def test_summary_comes_first_and_gives_each_condition_a_verdict_and_reason() -> None:
-    md = dossier_markdown(sample_input())
+    md = dossier_markdown(with_verdicts(sample_input()))
     glance = md.split("## At a glance")[1].split("\n## ")[0]
     for condition in ("Relevance", "Exclusion", "Exogeneity", "Monotonicity"):
         assert re.search(rf"^\| {condition} \| `verdict:[a-z-]+` \| .+ \| [A-Z]\d \|$", glance, re.M), (
@@ -99,7 +100,7 @@ def test_absent_inputs_leave_their_sections_out_entirely() -> None:
         generated_at="2026-12-01T09:00:00+00:00",
         tool_version="0.1.0",
     )
-    md = dossier_markdown(bare)
+    md = dossier_markdown(with_verdicts(bare))
     assert h2_and_h1(md) == [
         "# Instrument dossier: Mast distance",
         "## At a glance",
@@ -205,8 +206,10 @@ def test_the_graph_checkers_svg_is_inlined_as_the_diagram() -> None:
     )
     verdict = check_instrument(G, **roles)
     svg = render_svg(G, verdict, title="Causal diagram <fibre>")
-    inp = dataclasses.replace(
-        sample_input(), graph=GraphInfo(verdict=verdict.to_dict(), svg=svg), runs=(make_run(1, plots=False),)
+    inp = with_verdicts(
+        dataclasses.replace(
+            sample_input(), graph=GraphInfo(verdict=verdict, svg=svg), runs=(make_run(1, plots=False),)
+        )
     )
     md = dossier_markdown(inp)
     assert "| Exclusion | violated in the diagram | fibre\\_wave → pharmacy → ed\\_visits |" in md

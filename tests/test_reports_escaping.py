@@ -17,6 +17,7 @@ from ivdossier.reports.html import markdown_parser, render_html, validate_link
 from ivdossier.reports.inputs import AuditEvent, CheckInfo, InstrumentInfo, LinkInfo, ProgramInfo, Rating
 from ivdossier.reports.plots import verdict_badge_svg
 from ivdossier.reports.sample import make_run, sample_input
+from ivdossier.workflows.verdicts import with_verdicts
 
 SCRIPT = "<script>document.title='pwned'; window.__pwned = 1</script>"
 IMG = '<img src=x onerror="window.__pwned = 2">'
@@ -143,7 +144,7 @@ def hostile_input() -> object:
         dataset_path="data/<img src=x onerror=1>.csv",
         package_versions={SCRIPT: IMG},
     )
-    return dataclasses.replace(
+    hostile = dataclasses.replace(
         base,
         program=ProgramInfo(slug="p", title=f"Program {SCRIPT}", question=JS_LINK, treatment="telehealth"),
         instrument=instrument,
@@ -152,6 +153,7 @@ def hostile_input() -> object:
         audit=(AuditEvent("2026-11-02T08:00:00+00:00", f"mallory {SCRIPT}", IMG, JS_LINK, FORGED_FIGURE),),
         tool_version=IMG,
     )
+    return with_verdicts(hostile)
 
 
 def test_hostile_text_everywhere_never_becomes_markup_in_the_html() -> None:
@@ -221,7 +223,7 @@ def test_renderer_refuses_unsafe_or_missing_svg() -> None:
 
 
 def test_page_is_self_contained_with_a_strict_content_security_policy() -> None:
-    page = dossier_html(sample_input())
+    page = dossier_html(with_verdicts(sample_input()))
     assert "default-src 'none'" in page
     c = parse(page)
     for tag, attrs in c.tags:

@@ -11,6 +11,7 @@ import pytest
 from ivdossier.reports.inputs import CatalogEntry, InstrumentInfo, ProgramInfo
 from ivdossier.reports.sample import PROGRAM, make_run, sample_input
 from ivdossier.reports.site import build_site, safe_slug
+from ivdossier.workflows.verdicts import with_verdicts
 
 HOSTILE_SLUGS = [
     "../../etc/passwd",
@@ -53,7 +54,7 @@ def test_hostile_slugs_never_escape_the_output_folder(tmp_path: Path) -> None:
     out = tmp_path / "site"
     evil_program = ProgramInfo(slug="../../outside", title="Evil program")
     dossiers = [dossier_for(evil_program, s, f"Instrument {i}") for i, s in enumerate(HOSTILE_SLUGS)]
-    written = build_site(out, [evil_program], dossiers, [])  # type: ignore[arg-type]
+    written = build_site(out, [evil_program], [with_verdicts(d) for d in dossiers], [])  # type: ignore[arg-type]
     root = out.resolve()
     assert all(p.resolve().is_relative_to(root) for p in written)
     assert sorted(p for p in tmp_path.rglob("*") if p.is_file()) == sorted(written)
@@ -76,7 +77,7 @@ def test_site_layout_and_relative_links(tmp_path: Path) -> None:
             ("placebo outcome",),
         ),
     ]
-    written = build_site(tmp_path, [PROGRAM], dossiers, catalogue)  # type: ignore[arg-type]
+    written = build_site(tmp_path, [PROGRAM], [with_verdicts(d) for d in dossiers], catalogue)  # type: ignore[arg-type]
     rel = sorted(str(p.relative_to(tmp_path.resolve())) for p in written)
     assert rel == sorted(
         [
@@ -99,7 +100,7 @@ def test_site_layout_and_relative_links(tmp_path: Path) -> None:
 
 def test_program_page_compares_candidates(tmp_path: Path) -> None:
     dossiers = [sample_input(), dossier_for(PROGRAM, "mast", "Mast distance")]
-    build_site(tmp_path, [PROGRAM], dossiers, [])  # type: ignore[arg-type]
+    build_site(tmp_path, [PROGRAM], [with_verdicts(d) for d in dossiers], [])  # type: ignore[arg-type]
     page = (tmp_path / "programs/telehealth-ed/index.html").read_text(encoding="utf-8")
     table = page[page.index("<table>") : page.index("</table>")]
     assert table.count("<tr>") == 3  # header and two instruments

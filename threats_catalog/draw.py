@@ -20,13 +20,14 @@ import hashlib
 import math
 import re
 import textwrap
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import networkx as nx
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.threats_catalog.graph import GraphVerdict
+from ivdossier.vocabulary import Verdict, verdict_key
 
 FONT = "DejaVu Sans, Liberation Sans, Arial, Helvetica, sans-serif"
 INK = "#1f1f1f"
@@ -418,9 +419,17 @@ def _legend(x: float, y: float, ids: str) -> tuple[list[str], float]:
     return out, y + 16
 
 
-def render_svg(G: nx.DiGraph, verdict: GraphVerdict | None, *, title: str | None = None) -> str:
+def render_svg(
+    G: nx.DiGraph,
+    verdict: GraphVerdict | None,
+    *,
+    title: str | None = None,
+    verdicts: Sequence[Verdict] | None = None,
+) -> str:
     """Draw ``G`` (from :func:`build_graph`) with ``verdict`` (from :func:`check_instrument`) as one SVG string.
 
+    The badge strip shows ``verdicts``, the derived per-condition verdicts (``ivdossier.workflows.verdicts``) that
+    the dossier's table shows too; without them (a graph drawn on its own) it shows the graph check's values.
     The result has no scripts, external fonts or links; every user-supplied string is escaped. Passing
     ``verdict=None`` draws the graph alone, without the verdict strip and path emphasis.
     """
@@ -503,25 +512,29 @@ def render_svg(G: nx.DiGraph, verdict: GraphVerdict | None, *, title: str | None
         y_text += 30
     if verdict is not None:
         x = MARGIN
-        for cond in verdict.conditions:
-            text = f"{cond.condition}: {cond.value.replace('-', ' ')}"
+        strip = (
+            [(v.condition, verdict_key(v.status)) for v in verdicts]
+            if verdicts is not None
+            else [(c.condition, c.value) for c in verdict.conditions]
+        )
+        for condition, value in strip:
+            text = f"{condition}: {value.replace('-', ' ')}"
             wbox = _text_width(text, 12) + 40
-            dash = ' stroke-dasharray="4 3"' if cond.value == "not-assessed" else ""
-            stroke_w = "2.4" if cond.value == "broken" else "1.2"
+            dash = ' stroke-dasharray="4 3"' if value == "not-assessed" else ""
+            stroke_w = "2.4" if value == "broken" else "1.2"
             body.append(
-                f'<g class="verdict" data-condition="{esc(cond.condition)}" data-value="{esc(cond.value)}">'
+                f'<g class="verdict" data-condition="{esc(condition)}" data-value="{esc(value)}">'
                 f'<rect x="{x:.1f}" y="{y_text - 16:.1f}" width="{wbox:.1f}" height="26" rx="4" fill="{PAPER}" '
                 f'stroke="{INK}" stroke-width="{stroke_w}"{dash}/>'
-                + _glyph(cond.value, x + 14, y_text - 3)
+                + _glyph(value, x + 14, y_text - 3)
                 + f'<text x="{x + 26:.1f}" y="{y_text + 1:.1f}" font-size="12" fill="{INK}">{esc(text)}</text></g>'
             )
             x += wbox + 10
         width = max(width, x + MARGIN)
-        crit = "criterion holds" if verdict.criterion_holds else "criterion fails"
         given = ", ".join(verdict.conditioning) or "nothing"
         body.append(
             f'<text x="{MARGIN:.1f}" y="{y_text + 28:.1f}" font-size="11" fill="{MUTED}">'
-            f"{esc(f'Conditional instrument {crit}, conditioning on {given}.')}</text>"
+            f"{esc(f'{criterion_sentence(verdict)}, conditioning on {given}.')}</text>"
         )
 
     tags: list[str] = []
@@ -578,6 +591,22 @@ def render_svg(G: nx.DiGraph, verdict: GraphVerdict | None, *, title: str | None
         )
         + "\n"
     )
+
+
+def criterion_sentence(verdict: GraphVerdict) -> str:
+    """The conditional instrument criterion in words, graded like the verdicts: an open path made only of merely
+    possible edges (open, mitigated or accepted threats) puts conditions at risk, it does not break them."""
+    if verdict.criterion_holds:
+        return "Conditional instrument criterion holds in this diagram"
+    breaks = (
+        not verdict.relevance_connected
+        or bool(verdict.conditioning_issues)
+        or any(p.severity == "broken" for p in verdict.open_paths)
+        or any(c.value == "broken" for c in verdict.conditions if c.condition != "monotonicity")
+    )
+    if breaks:
+        return "Conditional instrument criterion fails"
+    return "Conditional instrument criterion holds only if the possible edges on the open paths are absent"
 
 
 def open_path_edges(verdict: GraphVerdict) -> set[tuple[str, str]]:

@@ -52,15 +52,16 @@ import networkx as nx
 
 from ivdossier.errors import InvalidInputError, NotFoundError
 from ivdossier.threats_catalog.catalog import CONDITIONS, GraphFragment
+from ivdossier.vocabulary import LINK_STATES, VERDICTS, verdict_key
 
-LINK_STATES: tuple[str, ...] = ("open", "rebutted", "mitigated", "accepted", "fatal")
 #: Pseudo-state for a fragment passed without a link state when ``link_states`` is given.
 SUGGESTED = "suggested"
 #: States whose fragments stay in the graph.
 KEPT_STATES: frozenset[str] = frozenset({"open", "mitigated", "accepted", "fatal", SUGGESTED})
 #: States whose edges are asserted (an open path made only of asserted edges breaks a condition).
 ASSERTED_STATES: frozenset[str] = frozenset({"fatal"})
-VERDICT_VALUES: tuple[str, ...] = ("holds", "at-risk", "broken", "not-assessed")
+#: The vocabulary's verdict values as one token each: holds, at-risk, broken, not-assessed.
+VERDICT_VALUES: tuple[str, ...] = tuple(verdict_key(v) for v in VERDICTS)
 ROLES: tuple[str, ...] = ("instrument", "treatment", "outcome", "unobserved", "covariate", "intermediate")
 
 _MAX_OPEN_PATHS = 200

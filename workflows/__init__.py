@@ -1,5 +1,6 @@
 """The integration layer: joins the registry, the catalogue, the numerics and the documents.
 
-Runs, dossier assembly, findings, catalogue sync, plan drafting and checking, study audits and the demo live here,
-so that the command line stays a thin layer and a notebook can attach its own results to a registry.
+Runs, dossier assembly, findings, the verdict engine, catalogue sync, plan drafting, decision rules and checking,
+study audits and the demo live here, so that the command line stays a thin layer and a notebook can attach its own
+results to a registry.
 """

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import contextlib
 import shutil
 from collections.abc import Callable
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -223,8 +225,36 @@ def build_demo(
     db: str | None = None,
     actor: str = "demo",
     progress: Callable[[str], None] | None = None,
+    clock: Callable[[], datetime] | None = None,
 ) -> dict[str, Any]:
-    """Write the demo into `out` and return a summary of what was built."""
+    """Write the demo into `out` and return a summary of what was built.
+
+    `clock` supplies every timestamp (registry records and the documents' generation time) instead of the wall
+    clock, e.g. ``ticking_clock()`` for a reproducible build; dataset paths in the documents are relative to `out`.
+    """
+    from ivdossier.registry.models import clock as registry_clock
+
+    with registry_clock(clock) if clock is not None else contextlib.nullcontext():
+        return _build(out, replace=replace, db=db, actor=actor, progress=progress, clock=clock)
+
+
+def ticking_clock(
+    start: datetime = datetime(2026, 3, 2, 9, 0, tzinfo=UTC), step_seconds: int = 1
+) -> Callable[[], datetime]:
+    """A clock that starts at `start` and moves on `step_seconds` every time it is read (deterministic)."""
+    ticks = iter(range(1 << 62))
+    return lambda: start + timedelta(seconds=step_seconds * next(ticks))
+
+
+def _build(
+    out: Path,
+    *,
+    replace: bool,
+    db: str | None,
+    actor: str,
+    progress: Callable[[str], None] | None,
+    clock: Callable[[], datetime] | None,
+) -> dict[str, Any]:
     from ivdossier.registry import instruments as reg
     from ivdossier.registry.db import open_registry
     from ivdossier.workflows.demo_data import simulate_telehealth
@@ -297,7 +327,7 @@ def build_demo(
         say(f"stored {len(summary['checks'])} falsification and sensitivity runs")
         summary["caught"] = _record_what_the_checks_found(registry)
         say(f"the zero-first-stage check caught the planted violation: {summary['caught']}")
-        summary["documents"] = _documents(registry, out)
+        summary["documents"] = _documents(registry, out, (clock or (lambda: datetime.now(UTC)))())
         say(f"wrote {len(summary['documents'])} documents under {out}")
     finally:
         registry.dispose()
@@ -439,17 +469,43 @@ def _record_what_the_checks_found(registry: Any) -> str:
     return found
 
 
-def _documents(registry: Any, out: Path) -> list[str]:
-    from datetime import UTC, datetime
-
+def _documents(registry: Any, out: Path, now: datetime) -> list[str]:
     from ivdossier.workflows.dossiers import write_dossier, write_site
 
-    generated = datetime.now(UTC).isoformat(timespec="seconds")
+    generated = now.isoformat(timespec="seconds")
     written = []
     with registry.reading() as s:
         for spec in INSTRUMENTS:
             for suffix in (".md", ".html"):
                 path = out / "dossiers" / f"{spec['slug']}{suffix}"
-                written.append(str(write_dossier(s, spec["slug"], path, generated_at=generated)))
-        written.extend(str(p) for p in write_site(s, out / "site", generated_at=generated))
+                written.append(
+                    str(write_dossier(s, spec["slug"], path, generated_at=generated, relative_to=out))
+                )
+        written.extend(str(p) for p in write_site(s, out / "site", generated_at=generated, relative_to=out))
     return written
+
+
+REPRODUCIBLE_AT = datetime(2026, 3, 2, 12, 0, tzinfo=UTC)
+"""The generation time the golden files of the demo's dossiers are rendered with."""
+
+
+def demo_markdown(out: Path, *, generated_at: datetime | str = REPRODUCIBLE_AT) -> dict[str, str]:
+    """The Markdown dossier of every demo instrument, read back from the demo registry in `out`, reproducibly:
+    paths relative to `out`, the given generation time, and no run timings or installed versions."""
+    from ivdossier.registry.db import open_registry
+    from ivdossier.reports.dossier import dossier_markdown
+    from ivdossier.workflows.dossiers import dossier_input
+
+    registry = open_registry(str(Path(out) / "ivdossier.sqlite"))
+    try:
+        with registry.reading() as s:
+            return {
+                spec["slug"]: dossier_markdown(
+                    dossier_input(
+                        s, spec["slug"], generated_at=generated_at, relative_to=Path(out), reproducible=True
+                    )
+                )
+                for spec in INSTRUMENTS
+            }
+    finally:
+        registry.dispose()

@@ -6,7 +6,9 @@ notebook all build the same documents.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -30,6 +32,8 @@ from ivdossier.registry.models import (
 from ivdossier.registry.runs import runs_of
 from ivdossier.registry.threats import THREAT_FIELDS, links_of
 from ivdossier.reports import inputs as ri
+from ivdossier.threats_catalog.graph import GraphVerdict
+from ivdossier.vocabulary import Verdict
 
 CONFOUNDER = "U"
 
@@ -53,7 +57,7 @@ def conditioning_of(session: Session, instrument: Instrument, program: Program) 
     return used & measured
 
 
-def instrument_graph(session: Session, instrument: Instrument) -> tuple[Any, Any]:
+def instrument_graph(session: Session, instrument: Instrument) -> tuple[Any, GraphVerdict]:
     """Build the instrument's causal graph from its program and linked threats, and check it."""
     from ivdossier.threats_catalog.graph import build_graph, check_instrument
 
@@ -181,14 +185,8 @@ def run_info(session: Session, run: Run) -> ri.RunInfo:
     )
 
 
-def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) -> ri.DossierInput:
-    """Everything the dossier of instrument `slug` shows, read in one session."""
-    from ivdossier.threats_catalog.draw import render_svg
-
-    inst = records.get(session, Instrument, slug)
-    program = records.get_by_id(session, Program, inst.program_id)
-    all_runs = runs_of(session, inst)
-    links = tuple(
+def _links(session: Session, inst: Instrument, all_runs: Sequence[Run]) -> tuple[ri.LinkInfo, ...]:
+    return tuple(
         ri.LinkInfo(
             threat_code=threat.code,
             title=threat.title,
@@ -203,11 +201,87 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
         )
         for link, threat in links_of(session, inst)
     )
-    G, verdict = instrument_graph(session, inst)
-    graph = ri.GraphInfo(
-        verdict=verdict.to_dict(), svg=render_svg(G, verdict, title=f"Causal diagram for {inst.name}")
+
+
+def _instrument_info(inst: Instrument) -> ri.InstrumentInfo:
+    return ri.InstrumentInfo(
+        slug=inst.slug,
+        name=inst.name,
+        family=inst.family,
+        columns=tuple(inst.columns or ()),
+        state=inst.state,
+        claims={c: getattr(inst, f"claim_{c}") for c in CONDITIONS},
     )
-    runs = tuple(run_info(session, r) for r in runs_of(session, inst) if r.run_kind == "estimate")
+
+
+@dataclass(frozen=True)
+class InstrumentCheck:
+    """An instrument's causal graph, the graph check on it and the derived verdicts (computed once)."""
+
+    graph: Any
+    check: GraphVerdict
+    verdicts: tuple[Verdict, ...]
+
+
+def instrument_check(session: Session, instrument: Instrument) -> InstrumentCheck:
+    """The graph, the graph check and the four verdicts of one instrument, as `graph check` and `graph draw` show
+    them and as its dossier shows them."""
+    G, inp = _assemble(
+        session, instrument, generated_at="", relative_to=None, reproducible=False, prior=False
+    )
+    assert inp.graph is not None and inp.graph.verdict is not None
+    return InstrumentCheck(G, inp.graph.verdict, inp.verdicts)
+
+
+def dossier_input(
+    session: Session,
+    slug: str,
+    *,
+    generated_at: datetime | str,
+    relative_to: Path | None = None,
+    reproducible: bool = False,
+) -> ri.DossierInput:
+    """Everything the dossier of instrument `slug` shows, read in one session, with its verdicts derived once.
+
+    `relative_to` shows dataset paths relative to that folder when they lie inside it; `reproducible` leaves out
+    what differs from machine to machine (run timings and installed package versions), for golden files.
+    """
+    from ivdossier.threats_catalog.draw import render_svg
+
+    inst = records.get(session, Instrument, slug)
+    G, inp = _assemble(
+        session,
+        inst,
+        generated_at=generated_at,
+        relative_to=relative_to,
+        reproducible=reproducible,
+        prior=True,
+    )
+    assert inp.graph is not None
+    svg = render_svg(G, inp.graph.verdict, title=f"Causal diagram for {inst.name}", verdicts=inp.verdicts)
+    return dataclasses.replace(inp, graph=ri.GraphInfo(verdict=inp.graph.verdict, svg=svg))
+
+
+def _assemble(
+    session: Session,
+    inst: Instrument,
+    *,
+    generated_at: datetime | str,
+    relative_to: Path | None,
+    reproducible: bool,
+    prior: bool,
+) -> tuple[Any, ri.DossierInput]:
+    """The graph and the dossier input (without the drawing) with its verdicts derived once."""
+    from ivdossier.workflows.verdicts import with_verdicts
+
+    program = records.get_by_id(session, Program, inst.program_id)
+    all_runs = runs_of(session, inst)
+    G, check = instrument_graph(session, inst)
+    runs = tuple(
+        _portable(run_info(session, r), relative_to, reproducible)
+        for r in all_runs
+        if r.run_kind == "estimate"
+    )
     link_uuids = {lk.uuid for lk, _ in links_of(session, inst)}
     events = history(session, entity_uuids={inst.uuid, *link_uuids})
     audit = tuple(
@@ -220,24 +294,39 @@ def dossier_input(session: Session, slug: str, *, generated_at: datetime | str) 
         )
         for e in events
     )
-    return ri.DossierInput(
-        extra_sections=_prior_uses(session, inst),
+    inp = ri.DossierInput(
+        extra_sections=_prior_uses(session, inst) if prior else (),
         program=program_info(program),
-        instrument=ri.InstrumentInfo(
-            slug=inst.slug,
-            name=inst.name,
-            family=inst.family,
-            columns=tuple(inst.columns or ()),
-            state=inst.state,
-            claims={c: getattr(inst, f"claim_{c}") for c in CONDITIONS},
-        ),
+        instrument=_instrument_info(inst),
         generated_at=generated_at,
         tool_version=__version__,
-        links=links,
+        links=_links(session, inst, all_runs),
         runs=runs,
-        graph=graph,
+        graph=ri.GraphInfo(verdict=check),
         audit=audit,
     )
+    return G, with_verdicts(inp)
+
+
+def _portable(run: ri.RunInfo, relative_to: Path | None, reproducible: bool) -> ri.RunInfo:
+    """The run with its dataset path relative to `relative_to` and, when reproducible, no timing or versions."""
+    changes: dict[str, Any] = {}
+    if relative_to is not None:
+        changes["dataset_path"] = _relative(run.dataset_path, relative_to)
+        if isinstance(run.spec.get("data"), str):
+            changes["spec"] = {**run.spec, "data": _relative(run.spec["data"], relative_to)}
+    if reproducible:
+        changes.update(seconds=None, package_versions={})
+    return dataclasses.replace(run, **changes) if changes else run
+
+
+def _relative(path: str, base: Path) -> str:
+    if not path:
+        return path
+    try:
+        return Path(path).resolve().relative_to(base.resolve()).as_posix()
+    except ValueError:
+        return path
 
 
 def _prior_uses(session: Session, instrument: Instrument) -> tuple[str, ...]:
@@ -251,25 +340,39 @@ def _prior_uses(session: Session, instrument: Instrument) -> tuple[str, ...]:
     return (audit_section_markdown(build_audit(inputs), inputs),)
 
 
-def write_dossier(session: Session, slug: str, out: Path, *, generated_at: datetime | str) -> Path:
+def write_dossier(
+    session: Session,
+    slug: str,
+    out: Path,
+    *,
+    generated_at: datetime | str,
+    relative_to: Path | None = None,
+    reproducible: bool = False,
+) -> Path:
     """Write the dossier of instrument `slug` to `out` (.md Markdown or .html one self-contained page)."""
     from ivdossier.reports.dossier import dossier_html, dossier_markdown
 
-    inp = dossier_input(session, slug, generated_at=generated_at)
+    inp = dossier_input(
+        session, slug, generated_at=generated_at, relative_to=relative_to, reproducible=reproducible
+    )
     text = dossier_html(inp) if out.suffix.lower() == ".html" else dossier_markdown(inp)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(text, encoding="utf-8")
     return out
 
 
-def write_site(session: Session, out: Path, *, generated_at: datetime | str) -> list[Path]:
+def write_site(
+    session: Session, out: Path, *, generated_at: datetime | str, relative_to: Path | None = None
+) -> list[Path]:
     """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
     from ivdossier.reports.site import build_site
 
     programs = list(session.exec(select(Program).order_by(Program.slug)))
     infos = [program_info(p) for p in programs]
     slugs = list(session.exec(select(Instrument.slug).order_by(Instrument.slug)))
-    dossiers = [dossier_input(session, slug, generated_at=generated_at) for slug in slugs]
+    dossiers = [
+        dossier_input(session, slug, generated_at=generated_at, relative_to=relative_to) for slug in slugs
+    ]
     entries = [
         ri.CatalogEntry(
             code=t.code,
