@@ -144,15 +144,18 @@ def _verdict(instrument: str) -> tuple[Any, Any]:
 @graph_app.command("check")
 def graph_check(instrument: str, json_out: JsonFlag = False) -> None:
     """Verdict per condition from d-separation, with every open path that bypasses the treatment."""
-    from ivdossier.threats_catalog.graph import adjustment_sets
+    from ivdossier.threats_catalog.graph import adjustment_advice
 
     G, verdict = _verdict(instrument)
     roles = {"instrument": verdict.instrument, "treatment": verdict.treatment, "outcome": verdict.outcome}
     try:
-        sets = [sorted(x) for x in adjustment_sets(G, max_size=4, **roles)]
+        advice = adjustment_advice(G, max_size=4, **roles)
+        sets = [list(a.members) for a in advice]
+        texts = [str(a) for a in advice]
+        warnings = [a.warning for a in advice]
     except Exception as exc:  # too many candidates: report instead of failing the check
-        sets = [[f"not searched: {exc}"]]
-    data = {**verdict.to_dict(), "adjustment_sets": sets}
+        sets, texts, warnings = [[f"not searched: {exc}"]], [f"not searched: {exc}"], [""]
+    data = {**verdict.to_dict(), "adjustment_sets": sets, "adjustment_warnings": warnings}
     if json_out:
         print_json(data)
         return
@@ -170,10 +173,7 @@ def graph_check(instrument: str, json_out: JsonFlag = False) -> None:
     if not sets:
         typer.echo("no set of measured covariates restores the instrument criterion")
     else:
-        typer.echo(
-            "measured covariate sets that satisfy the criterion: "
-            + "; ".join("{" + ", ".join(s) + "}" for s in sets)
-        )
+        typer.echo("measured covariate sets that satisfy the criterion: " + "; ".join(texts))
 
 
 @graph_app.command("draw")
