@@ -34,12 +34,24 @@ def actor() -> str:
     return resolve_actor(settings.actor)
 
 
-@contextmanager
-def writing() -> Iterator[Any]:
-    """A write transaction on the chosen registry; nothing is kept if the command fails."""
+def _open() -> Any:
+    """Open the chosen registry and bring its copy of the built-in catalogue up to date."""
+    from ivdossier.catalog_sync import sync_on_open
     from ivdossier.registry.db import open_registry
 
     reg = open_registry(settings.db)
+    try:
+        sync_on_open(reg, actor=actor())
+    except BaseException:
+        reg.dispose()
+        raise
+    return reg
+
+
+@contextmanager
+def writing() -> Iterator[Any]:
+    """A write transaction on the chosen registry; nothing is kept if the command fails."""
+    reg = _open()
     try:
         with reg.writing() as session:
             yield session
@@ -49,9 +61,7 @@ def writing() -> Iterator[Any]:
 
 @contextmanager
 def reading() -> Iterator[Any]:
-    from ivdossier.registry.db import open_registry
-
-    reg = open_registry(settings.db)
+    reg = _open()
     try:
         with reg.reading() as session:
             yield session

@@ -20,6 +20,9 @@ LIFECYCLE_MOVES: dict[str, tuple[str, ...]] = {
     "shelved": ("proposed", "vetting"),
 }
 CONDITIONS = ("relevance", "exclusion", "exogeneity", "monotonicity")
+# Threats of kind "reading" name one of these aspects in their condition column instead of a condition.
+READING_ASPECTS = ("target", "uncertainty", "specification")
+THREAT_KINDS = ("condition", "reading")
 LINK_STATES = ("open", "rebutted", "mitigated", "accepted", "fatal")
 
 
@@ -142,6 +145,14 @@ class Threat(Entity, table=True):
     references: list[str] | None = _json()
     origin: str = Field(default="team", max_length=10)  # "builtin" or "team"
     catalog_version: str = Field(default="", max_length=20)
+    # The catalogue's "kind" ("kind" names the entity class here): "condition" (attacks relevance, exclusion,
+    # exogeneity or monotonicity) or "reading" (what the estimate means, its uncertainty, how the specification
+    # was chosen). Added in schema 0002.
+    threat_kind: str = Field(
+        default="condition", max_length=12, sa_column_kwargs={"server_default": "condition"}
+    )
+    # For a built-in code that was merged or replaced: the successor's code (links were carried over to it).
+    retired_into: str = Field(default="", max_length=32, sa_column_kwargs={"server_default": ""})
 
 
 class Link(Entity, table=True):

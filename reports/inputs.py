@@ -21,9 +21,15 @@ LINK_STATES: tuple[str, ...] = ("open", "rebutted", "mitigated", "accepted", "fa
 """States a threat linked to an instrument can be in."""
 
 
+READING_ASPECTS: tuple[str, ...] = ("target", "uncertainty", "specification")
+"""What a threat of kind "reading" undermines instead of a condition: what the estimate means, its
+uncertainty, or how the specification was chosen (the catalogue files these in the condition field)."""
+
+
 def _check_condition(value: str, where: str) -> None:
-    if value not in CONDITIONS:
-        raise InvalidInputError(f"{where} has condition {value!r}; use one of {', '.join(CONDITIONS)}.")
+    if value not in CONDITIONS + READING_ASPECTS:
+        allowed = ", ".join(CONDITIONS + READING_ASPECTS)
+        raise InvalidInputError(f"{where} has condition {value!r}; use one of {allowed}.")
 
 
 def _as_tuple(value: Sequence[Any] | None) -> tuple[Any, ...]:

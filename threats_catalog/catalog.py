@@ -46,7 +46,7 @@ from ivdossier.threats_catalog.checks import CHECKS
 
 #: Version of the built-in catalogue; bump the minor part when entries are added, the major part when a code's
 #: meaning changes (which the scheme forbids for released codes).
-CATALOGUE_VERSION = "1.0.0"
+CATALOGUE_VERSION = "1.1.0"
 
 CONDITIONS: tuple[str, ...] = ("relevance", "exclusion", "exogeneity", "monotonicity")
 #: What a threat of kind ``reading`` undermines: what the estimate is an estimate of (``target``), whether its
