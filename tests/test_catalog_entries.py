@@ -96,11 +96,16 @@ def test_every_mechanism_category_is_used() -> None:
     assert set(used) == set(MECHANISMS)
 
 
-def test_interference_is_filed_under_exclusion() -> None:
-    # documented decision in catalog.py: spillovers bypass the unit's own treatment, so they attack exclusion
+def test_interference_is_filed_by_the_shape_of_its_path() -> None:
+    # documented in catalog.py: a unit's own instrument moving others' treatment bypasses its own treatment
+    # (exclusion); an instrument merely correlated with neighbours' instruments runs back to a shared cause
+    # (exogeneity)
     spill = CATALOG.search(mechanism="interference")
-    assert len(spill) >= 3
-    assert {t.condition for t in spill} == {"exclusion"}
+    assert len(spill) >= 4
+    for threat in spill:
+        G = build_graph(fragments=[threat.fragment])
+        assert (threat.condition == "exclusion") == (not list(G.predecessors("Z"))), threat.code
+        assert threat.condition in ("exclusion", "exogeneity")
 
 
 def test_every_fragment_is_acyclic_with_the_base_graph() -> None:

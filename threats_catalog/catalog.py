@@ -12,8 +12,11 @@ with a team's.
 Conditions and mechanisms
 -------------------------
 The condition attacked is one of :data:`CONDITIONS`. Interference between units (spillovers) is filed under
-condition ``exclusion`` with mechanism ``interference``: in a per-unit graph, unit i's instrument reaching
-unit i's outcome through other units' treatment is a path that bypasses unit i's own treatment. Measurement
+condition ``exclusion`` with mechanism ``interference`` when unit i's own instrument reaches unit i's outcome
+through other units' treatment (a path that bypasses unit i's own treatment), and under ``exogeneity`` when
+unit i's instrument is merely correlated with its neighbours' instruments, whose treatment then spills over
+(the path runs back from Z to a shared assignment). A ``bad-control`` is a control in the model that the
+instrument itself moves (fragment node flagged ``adjusted``). Measurement
 problems use mechanism ``measurement`` with whichever condition they damage (a noisy instrument weakens
 relevance; an instrument recorded with error that tracks outcome causes breaks independence). The allowed
 mechanism/condition pairs are in :data:`MECHANISMS`.
@@ -91,8 +94,9 @@ MECHANISMS: dict[str, tuple[str, ...]] = {
     "outcome-measurement": ("exclusion",),
     "behavioural-response": ("exclusion",),
     "general-equilibrium": ("exclusion",),
-    "interference": ("exclusion",),
+    "interference": ("exclusion", "exogeneity"),
     "common-cause": ("exogeneity",),
+    "bad-control": ("exogeneity",),
     "selection-attrition": ("exogeneity",),
     "reverse-timing": ("exogeneity",),
     "defiers": ("monotonicity",),
@@ -128,7 +132,7 @@ ROLE_TOKENS: tuple[str, ...] = ("Z", "X", "Y", "U")
 BASE_EDGES: tuple[tuple[str, str], ...] = (("Z", "X"), ("X", "Y"), ("U", "X"), ("U", "Y"))
 
 #: Boolean flags a fragment node may set (see :class:`FragmentNode`).
-NODE_FLAGS: tuple[str, ...] = ("observed", "selection", "adjusted", "determines_instrument")
+NODE_FLAGS: tuple[str, ...] = ("observed", "selection", "adjusted", "fixes_instrument")
 
 TEAM_PREFIX = "T-"
 _BUILTIN_CODE = re.compile(r"^(?P<prefix>[A-Z]{2})-(?P<letter>[REIMTUS])(?P<serial>[0-9]{2})$")
@@ -150,15 +154,20 @@ _FIELDS = (
 )
 
 
+#: Keys that :meth:`Threat.to_dict` adds for readers and that parsing ignores (they are recomputed).
+_DERIVED = ("uncomputed_checks",)
+
+
 @dataclass(frozen=True)
 class FragmentNode:
     """A non-role node a fragment adds.
 
     ``observed`` means "usually measurable"; ``selection`` means the analysis sample is restricted on this node
     and ``adjusted`` that the analysis already holds it fixed as a control (the graph checker always conditions
-    on both); ``determines_instrument`` marks a node of which the instrument is a deterministic function (a
-    running variable), which d-separation cannot see: holding it fixed leaves the instrument no variation, so
-    it is never offered as an adjustment.
+    on both); ``fixes_instrument`` marks a node that pins the instrument down (the instrument is a deterministic
+    function of it, as of a running variable, or it is a one-to-one function of the instrument, as age on a
+    fixed test date is of birth date), which d-separation cannot see: holding it fixed leaves the instrument no
+    variation, so it is never offered as an adjustment.
     """
 
     name: str
@@ -166,7 +175,7 @@ class FragmentNode:
     label: str = ""
     selection: bool = False
     adjusted: bool = False
-    determines_instrument: bool = False
+    fixes_instrument: bool = False
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-safe form (the two newer flags only when set, so older stored fragments compare equal)."""
@@ -235,6 +244,11 @@ class Threat:
         return kind_of(self.condition)
 
     @property
+    def uncomputed_checks(self) -> tuple[str, ...]:
+        """The entry's checks that ``ivdossier`` cannot compute yet (the team runs them by hand meanwhile)."""
+        return tuple(name for name in self.checks if not CHECKS[name].computable)
+
+    @property
     def is_team(self) -> bool:
         """True for team-written entries (code in the ``T-`` namespace)."""
         return self.code.startswith(TEAM_PREFIX)
@@ -254,6 +268,7 @@ class Threat:
             "mitigations": list(self.mitigations),
             "references": list(self.references),
             "fragment": self.fragment.to_dict(),
+            "uncomputed_checks": list(self.uncomputed_checks),
         }
 
     @classmethod
@@ -491,7 +506,7 @@ def _parse_threat(data: Mapping[str, Any], source: str) -> Threat:
         raise InvalidInputError(
             f"{source}: an entry must be a table/dict of fields, got {type(data).__name__}"
         )
-    unknown = sorted(set(data) - set(_FIELDS))
+    unknown = sorted(set(data) - set(_FIELDS) - set(_DERIVED))
     if unknown:
         raise InvalidInputError(
             f"{source}: unknown field(s) {', '.join(map(repr, unknown))}; allowed: {', '.join(_FIELDS)}"
@@ -627,7 +642,7 @@ def _parse_fragment(raw: Any, code: str, condition: str, src: str) -> GraphFragm
                 label.strip(),
                 bool(rn.get("selection", False)),
                 bool(rn.get("adjusted", False)),
-                bool(rn.get("determines_instrument", False)),
+                bool(rn.get("fixes_instrument", False)),
             )
         )
     names = [n.name for n in nodes]

@@ -123,10 +123,10 @@ _CHECK_LIST: tuple[Check, ...] = (
     ),
     Check(
         "per-instrument-estimates",
-        "Estimates from each instrument on its own; diverging answers mean some instrument fails or "
-        "compliers differ.",
+        "Estimates and first stages from each instrument on its own; diverging answers mean some instrument "
+        "fails, carries the whole first stage, or has different compliers.",
         "ivdossier falsify per-instrument",
-        _to("exclusion", "exogeneity", "monotonicity", "target"),
+        _to("relevance", "exclusion", "exogeneity", "monotonicity", "target"),
     ),
     Check(
         "exclusion-sensitivity",

@@ -155,9 +155,7 @@ def build_graph(
                     attrs["observed"] = attrs["observed"] and node.observed
                 attrs["selection"] = attrs["selection"] or node.selection
                 attrs["adjusted"] = attrs.get("adjusted", False) or node.adjusted
-                attrs["determines_instrument"] = (
-                    attrs.get("determines_instrument", False) or node.determines_instrument
-                )
+                attrs["fixes_instrument"] = attrs.get("fixes_instrument", False) or node.fixes_instrument
                 attrs["threats"].append(code)
                 if not attrs["label"] or attrs["label"] == node.name:
                     attrs["label"] = node.label or node.name
@@ -170,7 +168,7 @@ def build_graph(
                     label=node.label or node.name,
                     selection=node.selection,
                     adjusted=node.adjusted,
-                    determines_instrument=node.determines_instrument,
+                    fixes_instrument=node.fixes_instrument,
                     threats=[code],
                 )
             if G.nodes[node.name]["role"] != "covariate":
@@ -422,7 +420,7 @@ def check_instrument(
     S = {n for n, d in G.nodes(data=True) if d.get("selection")}
     C = W | S
     issues = _conditioning_issues(G, W, S, x, y)
-    fixing = sorted(n for n in C if G.nodes[n].get("determines_instrument"))
+    fixing = sorted(n for n in C if G.nodes[n].get("fixes_instrument"))
     connected = not d_separated(G, {z}, {x}, C - {z, x}) and not fixing
     mutilated = G.copy()
     mutilated.remove_edges_from(list(G.out_edges(x)))
@@ -483,7 +481,7 @@ def criterion_holds(
     """Fast yes/no form of the conditional instrument criterion (no path listing)."""
     W = _validate_conditioning(G, conditioning, instrument, treatment, outcome) | _adjusted(G)
     S = {n for n, d in G.nodes(data=True) if d.get("selection")}
-    if any(G.nodes[n].get("determines_instrument") for n in W | S):
+    if any(G.nodes[n].get("fixes_instrument") for n in W | S):
         return False
     return _criterion(G, instrument, treatment, outcome, W | S, _descendants(G, treatment, outcome))
 
@@ -516,7 +514,7 @@ def adjustment_sets(
         n
         for n in relevant
         if G.nodes[n].get("observed")
-        and not G.nodes[n].get("determines_instrument")
+        and not G.nodes[n].get("fixes_instrument")
         and n not in S
         and n not in banned
         and n not in {instrument, treatment, outcome}
@@ -784,8 +782,8 @@ def _relevance_verdict(
     given = f" given {{{', '.join(sorted(W))}}}" if W else ""
     if fixing:
         reason = (
-            f"conditioning on {', '.join(map(repr, fixing))} leaves the instrument no variation (the "
-            "instrument is a deterministic function of it); compare units close to the cut-off instead"
+            f"conditioning on {', '.join(map(repr, fixing))} leaves the instrument no variation (the two "
+            "determine each other); compare units close together on it instead of holding it fixed"
         )
         return ConditionVerdict("relevance", "broken", (reason,), ())
     if not connected:
