@@ -113,7 +113,9 @@ def test_cli_backup_and_restore(cli, sqlite_path: str, tmp_path: Path) -> None: 
     _seed(sqlite_path)
     code, out, err = cli("backup", str(tmp_path / "b.sqlite"))
     assert code == 0, err
-    assert out.startswith(f"backed up {sqlite_path} to {tmp_path / 'b.sqlite'} (schema {SCHEMA_HEAD}, 3 audit events)")
+    assert out.startswith(
+        f"backed up {sqlite_path} to {tmp_path / 'b.sqlite'} (schema {SCHEMA_HEAD}, 3 audit events)"
+    )
     fresh = tmp_path / "fresh.sqlite"
     code, out, err = cli("--db", str(fresh), "restore", str(tmp_path / "b.sqlite"), "--json")
     assert code == 0, err
