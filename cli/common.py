@@ -34,24 +34,25 @@ def actor() -> str:
     return resolve_actor(settings.actor)
 
 
-def _open() -> Any:
-    """Open the chosen registry and bring its copy of the built-in catalogue up to date."""
+def _open(*, sync: bool = True) -> Any:
+    """Open the chosen registry and (unless ``sync`` is off) bring its copy of the built-in catalogue up to date."""
     from ivdossier.catalog_sync import sync_on_open
     from ivdossier.registry.db import open_registry
 
     reg = open_registry(settings.db)
-    try:
-        sync_on_open(reg, actor=actor())
-    except BaseException:
-        reg.dispose()
-        raise
+    if sync:
+        try:
+            sync_on_open(reg)
+        except BaseException:
+            reg.dispose()
+            raise
     return reg
 
 
 @contextmanager
-def writing() -> Iterator[Any]:
+def writing(*, sync: bool = True) -> Iterator[Any]:
     """A write transaction on the chosen registry; nothing is kept if the command fails."""
-    reg = _open()
+    reg = _open(sync=sync)
     try:
         with reg.writing() as session:
             yield session

@@ -13,6 +13,10 @@ from ivdossier.registry.db import Registry
 from ivdossier.registry.models import Threat
 from ivdossier.registry.threats import sync_catalog
 
+#: Who the audit trail names for catalogue refreshes and carry-overs made when a registry is opened: the tool,
+#: not the person whose command happened to open the registry first.
+CATALOG_ACTOR = "ivdossier-catalogue"
+
 
 def catalog_is_current(session: Session) -> bool:
     """True when every built-in row carries the shipped catalogue version (and there is at least one)."""
@@ -37,7 +41,7 @@ def ensure_builtin(session: Session, *, actor: str) -> int:
     )
 
 
-def sync_on_open(registry: Registry, *, actor: str) -> int:
+def sync_on_open(registry: Registry, *, actor: str = CATALOG_ACTOR) -> int:
     """Bring an opened registry's catalogue up to date in its own short transaction (nothing when current)."""
     with registry.reading() as session:
         if catalog_is_current(session):

@@ -5,6 +5,7 @@ threats_catalog/catalog.py (RETIRED) and the rules in registry/threats.py::carry
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import pytest
@@ -141,3 +142,14 @@ def test_every_retired_code_has_a_current_successor_and_is_not_shipped() -> None
     for old, new in RETIRED.items():
         assert old not in catalog and new in catalog, (old, new)
     assert CATALOGUE_VERSION != "1.0.0"  # bumped with the merges and the new entries
+
+
+def test_any_cli_command_brings_the_catalogue_in_and_credits_the_tool(cli) -> None:  # type: ignore[no-untyped-def]
+    code, out, err = cli("threat", "show", "AN-T01", "--json")
+    assert code == 0, err
+    assert json.loads(out)["kind"] == "reading"
+    _, out, _ = cli("history", "--json")
+    events = json.loads(out)
+    assert len(events) == len(load_builtin()) and {e["actor"] for e in events} == {"ivdossier-catalogue"}
+    _, out, _ = cli("threat", "show", "AN-I02")
+    assert "differential-attrition (not computable by ivdossier yet)" in out
