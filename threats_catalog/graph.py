@@ -34,7 +34,11 @@ Verdict per condition (the graph part; statistics come from the estimation layer
 * monotonicity: a graph cannot express defiers, so the value comes from links alone: fatal -> broken; any
   open, mitigated, accepted or suggested -> at-risk; only rebutted links -> holds; no links -> not-assessed.
 
-Other rules: nodes flagged ``selection`` are always conditioned on; conditioning on an unobserved node (or on
+Other rules: nodes flagged ``selection`` or ``adjusted`` are always conditioned on; conditioning on a node
+flagged ``fixes_instrument`` breaks relevance (the instrument has no variation left), and such nodes are never
+offered by :func:`adjustment_sets`; a set that holds a descendant of the instrument comes last and
+:func:`adjustment_advice` attaches the warning that it is valid only if nothing unmeasured causes that node;
+conditioning on an unobserved node (or on
 Z, X, Y) raises InvalidInputError; the criterion itself is decided by d-separation, while the path listing (for
 explanation) stops after 200 open or 20,000 visited paths and then says so. Edges that no threat drew (base,
 team-drawn, or a hand-made ``nx.DiGraph`` without our attributes) count as asserted.
