@@ -137,7 +137,9 @@ _CHECK_LIST: tuple[Check, ...] = (
     ),
     Check(
         "complier-profile",
-        "Share and covariate means of compliers, to judge whom the estimate describes.",
+        "Share and covariate means of compliers, to judge whom the estimate describes; implied shares or "
+        "means outside their possible range point to defiers. The command needs a binary instrument: with a "
+        "many-valued one, compare two of its values (e.g. top and bottom quartile).",
         "ivdossier compliers",
         _to("target", "relevance", "monotonicity"),
     ),
