@@ -256,3 +256,14 @@ def test_threat_list_json_shows_at_least_110_entries(cli) -> None:  # type: igno
     assert len(entries) >= 110
     assert {e["kind"] for e in entries} == {"condition", "reading"}
     assert not {e["code"] for e in entries} & set(RETIRED)
+
+
+def test_every_fragment_draws_with_its_verdict_and_held_nodes_carry_the_conditioning_badge() -> None:
+    from ivdossier.threats_catalog.draw import render_svg
+
+    for threat in CATALOG:
+        G = build_graph(fragments=[threat.fragment])
+        svg = render_svg(G, check_instrument(G, **ROLES))
+        assert svg.startswith("<svg") and svg.rstrip().endswith("</svg>"), threat.code
+    G = build_graph(fragments=[CATALOG.get("AN-I04").fragment])
+    assert check_instrument(G, **ROLES).conditioning == ("moved_control",)  # drawn with the W badge
