@@ -34,12 +34,25 @@ def actor() -> str:
     return resolve_actor(settings.actor)
 
 
-@contextmanager
-def writing() -> Iterator[Any]:
-    """A write transaction on the chosen registry; nothing is kept if the command fails."""
+def _open(*, sync: bool = True) -> Any:
+    """Open the chosen registry and (unless ``sync`` is off) bring its copy of the built-in catalogue up to date."""
     from ivdossier.registry.db import open_registry
+    from ivdossier.workflows.catalog_sync import sync_on_open
 
     reg = open_registry(settings.db)
+    if sync:
+        try:
+            sync_on_open(reg)
+        except BaseException:
+            reg.dispose()
+            raise
+    return reg
+
+
+@contextmanager
+def writing(*, sync: bool = True) -> Iterator[Any]:
+    """A write transaction on the chosen registry; nothing is kept if the command fails."""
+    reg = _open(sync=sync)
     try:
         with reg.writing() as session:
             yield session
@@ -49,9 +62,7 @@ def writing() -> Iterator[Any]:
 
 @contextmanager
 def reading() -> Iterator[Any]:
-    from ivdossier.registry.db import open_registry
-
-    reg = open_registry(settings.db)
+    reg = _open()
     try:
         with reg.reading() as session:
             yield session

@@ -23,10 +23,10 @@ def register(app: typer.Typer) -> None:
 def init() -> None:
     """Create the registry (or upgrade its schema) and load the built-in threat catalogue."""
     from ivdossier.registry.db import resolve_url
-    from ivdossier.workflows.catalog_sync import ensure_builtin
+    from ivdossier.workflows.catalog_sync import CATALOG_ACTOR, ensure_builtin
 
-    with writing() as s:
-        added = ensure_builtin(s, actor=actor())
+    with writing(sync=False) as s:
+        added = ensure_builtin(s, actor=CATALOG_ACTOR)
 
     typer.echo(f"registry ready at {resolve_url(settings.db)} ({added} catalogue entries added or refreshed)")
 

@@ -35,25 +35,46 @@ def _row(t: Any) -> dict[str, Any]:
     return {**t.to_dict(), "families": ", ".join(t.families), "checks": ", ".join(t.checks)}
 
 
+def _checks_text(t: Any) -> str:
+    """The entry's checks, each one the tool cannot compute yet marked as such."""
+    from ivdossier.threats_catalog.checks import NOT_COMPUTABLE
+
+    return (
+        ", ".join(f"{c} ({NOT_COMPUTABLE})" if c in t.uncomputed_checks else c for c in t.checks) or "(none)"
+    )
+
+
 @threat_app.command("list")
 def threat_list(
     condition: Annotated[
-        str | None, typer.Option(help="relevance, exclusion, exogeneity or monotonicity.")
+        str | None,
+        typer.Option(
+            help="relevance, exclusion, exogeneity or monotonicity; or, for reading threats, target, "
+            "uncertainty or specification."
+        ),
     ] = None,
     family: Annotated[str | None, typer.Option(help="Instrument family, e.g. weather-shock.")] = None,
     search: Annotated[str | None, typer.Option(help="Words that must all appear in the entry.")] = None,
+    kind: Annotated[
+        str | None,
+        typer.Option(
+            help="condition (threats to the four conditions) or reading (to how the estimate is read)."
+        ),
+    ] = None,
     json_out: JsonFlag = False,
 ) -> None:
     """Browse and search the catalogue."""
     with reading() as s:
         found = _registry_catalog(s).search(
-            condition=condition, family=family, text=search, include_generic=family is not None
+            condition=condition, family=family, text=search, include_generic=family is not None, kind=kind
         )
     if json_out:
         print_json([t.to_dict() for t in found])
     else:
         print_table(
-            [_row(t) for t in found], ["code", "condition", "testability", "title"], widths={"title": 70}
+            [_row(t) for t in found],
+            ["code", "kind", "condition", "testability", "title"],
+            widths={"title": 70},
         )
 
 
@@ -69,11 +90,12 @@ def threat_show(code: str, json_out: JsonFlag = False) -> None:
         [
             ("code", t.code),
             ("title", t.title),
+            ("kind", t.kind),
             ("condition", f"{t.condition} ({t.mechanism})"),
             ("families", ", ".join(t.families)),
             ("testability", t.testability),
             ("description", t.description.strip()),
-            ("checks", ", ".join(t.checks) or "(none)"),
+            ("checks", _checks_text(t)),
             ("mitigations", "\n".join(f"- {m}" for m in t.mitigations) or "(none)"),
             ("references", "; ".join(t.references) or "(none)"),
             ("graph edges", ", ".join(f"{a} -> {b}" for a, b in t.fragment.edges) or "(none)"),
@@ -144,18 +166,22 @@ def _checked(instrument: str) -> Any:
 @graph_app.command("check")
 def graph_check(instrument: str, json_out: JsonFlag = False) -> None:
     """Verdict per condition (the dossier's), with every open path that bypasses the treatment."""
-    from ivdossier.threats_catalog.graph import adjustment_sets
+    from ivdossier.threats_catalog.graph import adjustment_advice
 
     checked = _checked(instrument)
     G, verdict = checked.graph, checked.check
     roles = {"instrument": verdict.instrument, "treatment": verdict.treatment, "outcome": verdict.outcome}
     try:
-        sets = [sorted(x) for x in adjustment_sets(G, max_size=4, **roles)]
+        advice = adjustment_advice(G, max_size=4, **roles)
+        sets = [list(a.members) for a in advice]
+        texts = [str(a) for a in advice]
+        warnings = [a.warning for a in advice]
     except Exception as exc:  # too many candidates: report instead of failing the check
-        sets = [[f"not searched: {exc}"]]
+        sets, texts, warnings = [[f"not searched: {exc}"]], [f"not searched: {exc}"], [""]
     data = {
         **verdict.to_dict(),
         "adjustment_sets": sets,
+        "adjustment_warnings": warnings,
         "verdicts": [v.to_dict() for v in checked.verdicts],
     }
     if json_out:
@@ -175,10 +201,7 @@ def graph_check(instrument: str, json_out: JsonFlag = False) -> None:
     if not sets:
         typer.echo("no set of measured covariates restores the instrument criterion")
     else:
-        typer.echo(
-            "measured covariate sets that satisfy the criterion: "
-            + "; ".join("{" + ", ".join(s) + "}" for s in sets)
-        )
+        typer.echo("measured covariate sets that satisfy the criterion: " + "; ".join(texts))
 
 
 @graph_app.command("draw")

@@ -24,6 +24,13 @@ LIFECYCLE_STATES: tuple[str, ...] = ("proposed", "vetting", "adopted", "rejected
 INACTIVE_STATES: tuple[str, ...] = ("rejected", "shelved")
 """Lifecycle states of instruments that no longer take part in a program's plan."""
 
+THREAT_KINDS: tuple[str, ...] = ("condition", "reading")
+"""A threat attacks one of the four conditions, or how the estimate is read (what it means, its stated
+uncertainty, how the specification was chosen)."""
+
+READING_ASPECTS: tuple[str, ...] = ("target", "uncertainty", "specification")
+"""What a threat of kind "reading" is about; stored in the condition column in place of a condition."""
+
 TESTABILITY: tuple[str, ...] = ("testable", "partly-testable", "argument-only")
 """How far data can speak to a threat."""
 

@@ -13,9 +13,9 @@ from sqlalchemy import JSON, Column, Index, UniqueConstraint
 from sqlalchemy.orm import declared_attr
 from sqlmodel import Field, SQLModel
 
-from ivdossier.vocabulary import CONDITIONS, LIFECYCLE_STATES, LINK_STATES
+from ivdossier.vocabulary import CONDITIONS, LIFECYCLE_STATES, LINK_STATES, READING_ASPECTS, THREAT_KINDS
 
-__all__ = ["CONDITIONS", "LIFECYCLE_STATES", "LINK_STATES"]
+__all__ = ["CONDITIONS", "LIFECYCLE_STATES", "LINK_STATES", "READING_ASPECTS", "THREAT_KINDS"]
 
 # Allowed lifecycle moves: from -> set of targets.
 LIFECYCLE_MOVES: dict[str, tuple[str, ...]] = {
@@ -160,6 +160,14 @@ class Threat(Entity, table=True):
     references: list[str] | None = _json()
     origin: str = Field(default="team", max_length=10)  # "builtin" or "team"
     catalog_version: str = Field(default="", max_length=20)
+    # The catalogue's "kind" ("kind" names the entity class here): "condition" (attacks relevance, exclusion,
+    # exogeneity or monotonicity) or "reading" (what the estimate means, its uncertainty, how the specification
+    # was chosen). Added in schema 0002.
+    threat_kind: str = Field(
+        default="condition", max_length=12, sa_column_kwargs={"server_default": "condition"}
+    )
+    # For a built-in code that was merged or replaced: the successor's code (links were carried over to it).
+    retired_into: str = Field(default="", max_length=32, sa_column_kwargs={"server_default": ""})
 
 
 class Link(Entity, table=True):

@@ -37,6 +37,8 @@ from ivdossier.registry.models import (
     ENTITY_CLASSES,
     LIFECYCLE_STATES,
     LINK_STATES,
+    READING_ASPECTS,
+    THREAT_KINDS,
     AuditEvent,
     Entity,
 )
@@ -69,7 +71,7 @@ SLUG_LABELS = {"program", "instrument", "member"}
 VOCABULARIES: dict[str, dict[str, tuple[str, ...]]] = {
     "instrument": {"state": LIFECYCLE_STATES},
     "link": {"state": LINK_STATES},
-    "threat": {"condition": CONDITIONS},
+    "threat": {"condition": CONDITIONS + READING_ASPECTS, "threat_kind": THREAT_KINDS},
 }
 
 

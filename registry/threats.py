@@ -14,6 +14,8 @@ from ivdossier.registry import records
 from ivdossier.registry.models import (
     CONDITIONS,
     LINK_STATES,
+    READING_ASPECTS,
+    Critique,
     Dismissal,
     Instrument,
     Link,
@@ -36,32 +38,170 @@ THREAT_FIELDS = (
 )
 
 
-def sync_catalog(session: Session, entries: Iterable[Mapping[str, Any]], *, version: str, actor: str) -> int:
-    """Add built-in entries the registry lacks and refresh older built-ins; team entries are never touched.
+#: Audit action of a link, dismissal or critique moved from a retired built-in code to its successor.
+CARRY_ACTION = "carry-to-successor"
 
-    Returns the number of entries added or refreshed.
+
+def _values(entry: Mapping[str, Any]) -> dict[str, Any]:
+    values = {f: entry.get(f) for f in THREAT_FIELDS}
+    condition = str(entry.get("condition", ""))
+    values["threat_kind"] = str(
+        entry.get("kind") or ("reading" if condition in READING_ASPECTS else "condition")
+    )
+    return values
+
+
+def sync_catalog(
+    session: Session,
+    entries: Iterable[Mapping[str, Any]],
+    *,
+    version: str,
+    actor: str,
+    retired: Mapping[str, str] | None = None,
+) -> int:
+    """Add built-in entries the registry lacks, refresh older built-ins and retire merged or replaced codes.
+
+    ``retired`` maps a retired built-in code to its successor: links, dismissals and critiques that point at
+    the retired code are carried over to the successor (each move is an audit event) and the retired row stays,
+    marked with ``retired_into``, so history and old exports still resolve. Team entries are never touched.
+    Returns the number of entries added, refreshed or retired.
     """
     existing = {t.code: t for t in session.exec(select(Threat))}
     changed = 0
     for entry in entries:
         code = str(entry["code"])
-        values = {f: entry.get(f) for f in THREAT_FIELDS}
+        values = _values(entry)
         current = existing.get(code)
         if current is None:
             threat = Threat(code=code, origin="builtin", catalog_version=version, **values)
             records.create(session, threat, actor=actor, reason=f"built-in catalogue {version}")
+            existing[code] = threat
             changed += 1
         elif current.origin == "builtin" and current.catalog_version != version:
             records.edit(
                 session,
                 current,
-                {**values, "catalog_version": version},
+                {**values, "catalog_version": version, "retired_into": ""},
                 actor=actor,
                 action="catalog-upgrade",
                 reason=f"built-in catalogue {current.catalog_version} -> {version}",
             )
             changed += 1
+    for old_code, new_code in sorted((retired or {}).items()):
+        old = existing.get(old_code)
+        new = existing.get(new_code)
+        if old is None or old.origin != "builtin" or new is None or old.retired_into == new_code:
+            continue
+        carry_to_successor(session, old, new, actor=actor, version=version)
+        records.edit(
+            session,
+            old,
+            {"retired_into": new_code, "catalog_version": version},
+            actor=actor,
+            action="catalog-retire",
+            reason=f"built-in catalogue {version}: {old_code} was merged into or replaced by {new_code}",
+        )
+        changed += 1
     return changed
+
+
+def carry_to_successor(session: Session, old: Threat, new: Threat, *, actor: str, version: str) -> int:
+    """Move every link, dismissal and critique of ``old`` to ``new``; return how many rows moved or merged.
+
+    A link whose instrument already has a link to ``new`` is merged into that link: its argument and evidence
+    are appended (with the old code and state named), its ratings move unless the reviewer already rated the
+    successor, and the old link is deleted. Every step is an audit event with the reason.
+    """
+    reason = f"catalogue {version}: {old.code} was merged into or replaced by {new.code}"
+    moved = 0
+    for link in list(session.exec(select(Link).where(Link.threat_id == old.id))):
+        inst = records.get_by_id(session, Instrument, link.instrument_id)
+        target = session.exec(
+            select(Link).where(Link.instrument_id == link.instrument_id, Link.threat_id == new.id)
+        ).first()
+        if target is None:
+            records.edit(
+                session,
+                link,
+                {"threat_id": new.id, "slug": link_slug(inst, new)},
+                actor=actor,
+                action=CARRY_ACTION,
+                reason=reason,
+            )
+        else:
+            note = f"[carried from {old.code}, state {link.state}]"
+            changes = {
+                name: (getattr(target, name) + "\n\n" if getattr(target, name) else "")
+                + f"{note} {getattr(link, name)}"
+                for name in ("argument", "evidence")
+                if getattr(link, name).strip()
+            }
+            if changes:
+                records.edit(session, target, changes, actor=actor, action=CARRY_ACTION, reason=reason)
+            rated = {r.member_id for r in session.exec(select(Rating).where(Rating.link_id == target.id))}
+            for rating in list(session.exec(select(Rating).where(Rating.link_id == link.id))):
+                if rating.member_id in rated:
+                    records.delete(session, rating, actor=actor, reason=f"{reason}; reviewer rated both")
+                else:
+                    records.edit(
+                        session,
+                        rating,
+                        {
+                            "link_id": target.id,
+                            "slug": f"{target.slug}--{rating.slug.rsplit('--', 1)[-1]}"[:170],
+                        },
+                        actor=actor,
+                        action=CARRY_ACTION,
+                        reason=reason,
+                    )
+            records.delete(session, link, actor=actor, reason=f"{reason}; merged into {target.slug}")
+        moved += 1
+    for dismissal in list(session.exec(select(Dismissal).where(Dismissal.threat_id == old.id))):
+        clash = session.exec(
+            select(Dismissal).where(
+                Dismissal.instrument_id == dismissal.instrument_id, Dismissal.threat_id == new.id
+            )
+        ).first()
+        linked = session.exec(
+            select(Link).where(Link.instrument_id == dismissal.instrument_id, Link.threat_id == new.id)
+        ).first()
+        if clash is not None or linked is not None:
+            records.delete(session, dismissal, actor=actor, reason=f"{reason}; successor already handled")
+        else:
+            inst = records.get_by_id(session, Instrument, dismissal.instrument_id)
+            records.edit(
+                session,
+                dismissal,
+                {"threat_id": new.id, "slug": link_slug(inst, new)},
+                actor=actor,
+                action=CARRY_ACTION,
+                reason=reason,
+            )
+        moved += 1
+    for critique in list(session.exec(select(Critique).where(Critique.threat_id == old.id))):
+        clash = session.exec(
+            select(Critique).where(
+                Critique.study_id == critique.study_id,
+                Critique.threat_id == new.id,
+                Critique.raised_by_id == critique.raised_by_id,
+            )
+        ).first()
+        if clash is not None:
+            records.delete(session, critique, actor=actor, reason=f"{reason}; successor already raised")
+        else:
+            records.edit(
+                session,
+                critique,
+                {
+                    "threat_id": new.id,
+                    "slug": critique.slug.replace(f"--{old.code}--", f"--{new.code}--")[:280],
+                },
+                actor=actor,
+                action=CARRY_ACTION,
+                reason=reason,
+            )
+        moved += 1
+    return moved
 
 
 def add_team_threat(session: Session, *, actor: str, entry: Mapping[str, Any]) -> Threat:
@@ -72,10 +212,21 @@ def add_team_threat(session: Session, *, actor: str, entry: Mapping[str, Any]) -
             f"team threat codes start with 'T-' (got {code!r}); built-in codes are reserved."
         )
     condition = str(entry.get("condition", ""))
-    if condition not in CONDITIONS:
-        raise InvalidInputError(f"unknown condition {condition!r}; use one of: {', '.join(CONDITIONS)}.")
-    values = {f: entry.get(f) for f in THREAT_FIELDS if entry.get(f) is not None}
+    allowed = CONDITIONS + READING_ASPECTS
+    if condition not in allowed:
+        raise InvalidInputError(f"unknown condition {condition!r}; use one of: {', '.join(allowed)}.")
+    values = {k: v for k, v in _values(entry).items() if v is not None}
     return records.create(session, Threat(code=code, origin="team", **values), actor=actor)
+
+
+def current_threat(session: Session, code: str) -> Threat:
+    """The threat with ``code``; a retired built-in code is refused with its successor named."""
+    threat = records.get(session, Threat, code)
+    if threat.retired_into:
+        raise InvalidInputError(
+            f"threat {code} was merged into or replaced by {threat.retired_into}; use {threat.retired_into}."
+        )
+    return threat
 
 
 def link_slug(instrument: Instrument, threat: Threat) -> str:
@@ -100,7 +251,7 @@ def link_threat(
 ) -> Link:
     """Attach a catalogue threat to an instrument."""
     inst = records.get(session, Instrument, instrument)
-    threat = records.get(session, Threat, code)
+    threat = current_threat(session, code)
     _check_state(state)
     link = Link(
         slug=link_slug(inst, threat),
@@ -250,7 +401,7 @@ def unrated_links(session: Session, *, member: str, instrument: Instrument | Non
 def dismiss(session: Session, *, actor: str, instrument: str, code: str, reason: str) -> Dismissal:
     """Record that a threat raised on a sibling instrument does not apply to this one."""
     inst = records.get(session, Instrument, instrument)
-    threat = records.get(session, Threat, code)
+    threat = current_threat(session, code)
     if not reason.strip():
         raise InvalidInputError("a dismissal needs a reason; pass --reason '...'.")
     obj = Dismissal(

@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING, Any
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.estimates import estimates_markdown
-from ivdossier.reports.inputs import CONDITIONS, DossierInput, LinkInfo, RunInfo
+from ivdossier.reports.inputs import CONDITIONS, READING_ASPECTS, DossierInput, LinkInfo, RunInfo
 from ivdossier.reports.provenance import provenance_markdown
 from ivdossier.reports.resultview import get as _get
 from ivdossier.reports.resultview import treatment_name
@@ -242,9 +242,37 @@ def _argument(inp: DossierInput) -> str:
             part.append(f"**Threats attacking {condition}** — {len(links)} linked ({text}).")
             part.extend(_link_block(link) for link in links)
         blocks.append("\n\n".join(part))
+    reading = _reading_block(inp)
+    if reading:
+        blocks.append(reading)
     if not blocks:
         return ""
     return "## The argument, condition by condition\n\n" + "\n\n".join(blocks)
+
+
+READING_TITLES = {
+    "target": "what the estimate is an estimate of",
+    "uncertainty": "whether its stated uncertainty is right",
+    "specification": "how the specification was chosen",
+}
+
+
+def _reading_block(inp: DossierInput) -> str:
+    """Threats of kind "reading": the instrument may be valid, but how the estimate is read is at risk."""
+    links = sorted(
+        (link for link in inp.links if link.condition in READING_ASPECTS),
+        key=lambda lk: (READING_ASPECTS.index(lk.condition), STATE_ORDER[lk.state], lk.threat_code),
+    )
+    if not links:
+        return ""
+    part = [
+        "### Reading the estimate — threats beyond the four conditions",
+        "These threats leave relevance, exclusion, exogeneity and monotonicity alone and put at risk "
+        + "; ".join(f"{READING_TITLES[a]} ({a})" for a in READING_ASPECTS)
+        + ". They do not change any condition's verdict.",
+    ]
+    part.extend(f"{_link_block(link)}\n\nPuts at risk: {READING_TITLES[link.condition]}." for link in links)
+    return "\n\n".join(part)
 
 
 def _link_block(link: LinkInfo) -> str:

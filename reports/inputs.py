@@ -13,15 +13,16 @@ from datetime import datetime
 from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.vocabulary import CONDITIONS, LINK_STATES, Verdict
+from ivdossier.vocabulary import CONDITIONS, LINK_STATES, READING_ASPECTS, Verdict
 
 if TYPE_CHECKING:
     from ivdossier.threats_catalog.graph import GraphVerdict
 
 
 def _check_condition(value: str, where: str) -> None:
-    if value not in CONDITIONS:
-        raise InvalidInputError(f"{where} has condition {value!r}; use one of {', '.join(CONDITIONS)}.")
+    if value not in CONDITIONS + READING_ASPECTS:
+        allowed = ", ".join(CONDITIONS + READING_ASPECTS)
+        raise InvalidInputError(f"{where} has condition {value!r}; use one of {allowed}.")
 
 
 def _as_tuple(value: Sequence[Any] | None) -> tuple[Any, ...]:

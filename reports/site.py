@@ -23,7 +23,7 @@ from ivdossier.reports import resultview as rv
 from ivdossier.reports.dossier import CAUTIONS, dossier_html, latest_run
 from ivdossier.reports.html import render_html
 from ivdossier.reports.inputs import CONDITIONS, CatalogEntry, DossierInput, LinkInfo, ProgramInfo
-from ivdossier.vocabulary import BROKEN
+from ivdossier.vocabulary import BROKEN, READING_ASPECTS
 
 _RESERVED = {"con", "prn", "aux", "nul", *(f"com{i}" for i in range(10)), *(f"lpt{i}" for i in range(10))}
 _MAX_SLUG = 64
@@ -237,11 +237,12 @@ def _catalogue_page(entries: Sequence[CatalogEntry], stamp: str) -> str:
         parts.append(stamp)
     if not entries:
         parts.append("The catalogue is empty.")
-    for condition in CONDITIONS:
+    for condition in CONDITIONS + READING_ASPECTS:
         mine = sorted((e for e in entries if e.condition == condition), key=lambda e: e.code)
         if not mine:
             continue
-        blocks = [f"## {condition.capitalize()} ({len(mine)})"]
+        kind = " (reading the estimate)" if condition in READING_ASPECTS else ""
+        blocks = [f"## {condition.capitalize()}{kind} ({len(mine)})"]
         for e in mine:
             facts = []
             if e.families:

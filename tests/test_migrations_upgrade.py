@@ -87,3 +87,34 @@ def test_restoring_an_old_backup_over_a_live_registry_replaces_it(tmp_path: Path
             assert records.get(s, Program, "tele").version == 1
     finally:
         registry.dispose()
+
+
+def test_a_schema_0001_registry_gets_the_threat_kind_column_and_the_current_catalogue_on_open(
+    tmp_path: Path,
+) -> None:
+    from sqlmodel import select
+
+    from ivdossier.registry.models import AuditEvent, Threat
+    from ivdossier.threats_catalog import load_builtin
+    from ivdossier.workflows.catalog_sync import CATALOG_ACTOR, sync_on_open
+
+    copy = tmp_path / "old.sqlite"
+    shutil.copyfile(FIXTURES / "registry-0001.sqlite", copy)
+    registry = open_registry(str(copy))
+    try:
+        with registry.reading() as s:  # migration 0002 gives the old team entries the default kind
+            assert {t.code: t.threat_kind for t in s.exec(select(Threat))} == {
+                "T-ROUTE": "condition",
+                "T-Case": "condition",
+            }
+        assert sync_on_open(registry) == len(load_builtin())
+        with registry.reading() as s:
+            kinds = {t.code: t.threat_kind for t in s.exec(select(Threat)) if t.origin == "builtin"}
+            assert set(kinds) == set(load_builtin().codes())
+            assert {k for c, k in kinds.items() if load_builtin().get(c).kind == "reading"} == {"reading"}
+            actors = {e.actor for e in s.exec(select(AuditEvent).where(AuditEvent.entity_kind == "threat"))}
+            assert CATALOG_ACTOR in actors
+            inst = records.get(s, Instrument, "fibre")
+            assert [t.code for _, t in thr.links_of(s, inst)] == ["T-ROUTE"]  # team links are untouched
+    finally:
+        registry.dispose()

@@ -15,7 +15,7 @@ from ivdossier.errors import InvalidInputError
 from ivdossier.registry import instruments as reg
 from ivdossier.registry import records
 from ivdossier.registry.backup import backup_registry, restore_registry
-from ivdossier.registry.db import open_registry
+from ivdossier.registry.db import SCHEMA_HEAD, open_registry
 from ivdossier.registry.models import AuditEvent, Program
 
 
@@ -42,7 +42,7 @@ def test_backup_and_restore_round_trip(tmp_path: Path) -> None:
     db = str(tmp_path / "live.sqlite")
     _seed(db)
     summary = backup_registry(db, tmp_path / "copy.sqlite")
-    assert (summary.schema, summary.audit_events) == ("0001", 3)
+    assert (summary.schema, summary.audit_events) == (SCHEMA_HEAD, 3)
     registry = open_registry(db)
     with registry.writing() as s:
         records.edit(s, records.get(s, Program, "p0"), {"title": "changed after the backup"}, actor="ben")
@@ -113,7 +113,9 @@ def test_cli_backup_and_restore(cli, sqlite_path: str, tmp_path: Path) -> None: 
     _seed(sqlite_path)
     code, out, err = cli("backup", str(tmp_path / "b.sqlite"))
     assert code == 0, err
-    assert out.startswith(f"backed up {sqlite_path} to {tmp_path / 'b.sqlite'} (schema 0001, 3 audit events)")
+    assert out.startswith(
+        f"backed up {sqlite_path} to {tmp_path / 'b.sqlite'} (schema {SCHEMA_HEAD}, 3 audit events)"
+    )
     fresh = tmp_path / "fresh.sqlite"
     code, out, err = cli("--db", str(fresh), "restore", str(tmp_path / "b.sqlite"), "--json")
     assert code == 0, err

@@ -15,7 +15,7 @@ from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import comments, records, runs
 from ivdossier.registry import instruments as reg
 from ivdossier.registry import threats as thr
-from ivdossier.registry.db import Registry, open_registry
+from ivdossier.registry.db import SCHEMA_HEAD, Registry, open_registry
 from ivdossier.registry.models import AuditEvent, Critique, Instrument, Plan, Program, Study
 from ivdossier.registry.portability import export_registry, import_registry, read_export
 
@@ -188,7 +188,7 @@ def test_files_are_sorted_json_with_uuids_for_references_and_utc_microseconds(
     # Threat codes become lower-case file names; the manifest names the schema.
     assert (root / "threat" / "t-case.json").is_file()
     manifest = json.loads((root / "manifest.json").read_text())
-    assert manifest["schema"] == "0001" and manifest["counts"]["comment"] == 1
+    assert manifest["schema"] == SCHEMA_HEAD and manifest["counts"]["comment"] == 1
     lines = (root / "audit.jsonl").read_text().splitlines()
     stamps = [json.loads(line)["at"] for line in lines]
     assert stamps == sorted(stamps) and len(lines) == manifest["audit_events"]

@@ -12,11 +12,24 @@ with a team's.
 Conditions and mechanisms
 -------------------------
 The condition attacked is one of :data:`CONDITIONS`. Interference between units (spillovers) is filed under
-condition ``exclusion`` with mechanism ``interference``: in a per-unit graph, unit i's instrument reaching
-unit i's outcome through other units' treatment is a path that bypasses unit i's own treatment. Measurement
+condition ``exclusion`` with mechanism ``interference`` when unit i's own instrument reaches unit i's outcome
+through other units' treatment (a path that bypasses unit i's own treatment), and under ``exogeneity`` when
+unit i's instrument is merely correlated with its neighbours' instruments, whose treatment then spills over
+(the path runs back from Z to a shared assignment). A ``bad-control`` is a control in the model that the
+instrument itself moves (fragment node flagged ``adjusted``). Measurement
 problems use mechanism ``measurement`` with whichever condition they damage (a noisy instrument weakens
 relevance; an instrument recorded with error that tracks outcome causes breaks independence). The allowed
 mechanism/condition pairs are in :data:`MECHANISMS`.
+
+Threats of kind ``reading``
+---------------------------
+Some threats leave the four conditions alone and undermine how the estimate is read instead: what it is an
+estimate of (aspect ``target``: compliers unlike the population a decision concerns, linear covariates that
+give some units negative weight), whether its stated uncertainty is right (``uncertainty``: few clusters), or
+how the specification was arrived at (``specification``: instrument, controls or sample chosen after seeing
+results). Their ``condition`` field holds the aspect, their code letter is ``T``, ``U`` or ``S``, and
+:attr:`Threat.kind` is ``reading`` (``condition`` for the rest). They draw no graph fragment: a graph cannot
+express them, and they never change a condition's verdict.
 """
 
 from __future__ import annotations
@@ -33,17 +46,40 @@ from typing import Any
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.threats_catalog.checks import CHECKS
+from ivdossier.vocabulary import CONDITIONS, READING_ASPECTS, THREAT_KINDS
 
 #: Version of the built-in catalogue; bump the minor part when entries are added, the major part when a code's
 #: meaning changes (which the scheme forbids for released codes).
-CATALOGUE_VERSION = "1.0.0"
+CATALOGUE_VERSION = "1.1.0"
 
-CONDITIONS: tuple[str, ...] = ("relevance", "exclusion", "exogeneity", "monotonicity")
+#: Every value the ``condition`` field may take: one of the four conditions, or a reading aspect.
+ATTACKS: tuple[str, ...] = CONDITIONS + READING_ASPECTS
+#: ``condition``: the entry attacks one of the four identifying conditions. ``reading``: the instrument may be
+#: valid, but the way the estimate is read (its meaning, its uncertainty, its specification) is at risk.
+KINDS: tuple[str, ...] = THREAT_KINDS
 CONDITION_LETTERS: dict[str, str] = {
     "relevance": "R",
     "exclusion": "E",
     "exogeneity": "I",
     "monotonicity": "M",
+    "target": "T",
+    "uncertainty": "U",
+    "specification": "S",
+}
+
+
+def kind_of(condition: str) -> str:
+    """``reading`` for the reading aspects, ``condition`` for the four conditions."""
+    return "reading" if condition in READING_ASPECTS else "condition"
+
+
+#: Built-in codes that were merged into another entry or replaced, with their successor. Registries carry
+#: links, dismissals and critiques of a retired code over to its successor (with an audit event).
+RETIRED: dict[str, str] = {
+    "LE-I01": "AN-I02",  # follow-up response depending on the draw: a case of selection on observation
+    "DM-E02": "PP-E02",  # the same person decides and records: one entry for both families
+    "HC-R01": "AN-R02",  # a few historical units carry the first stage: a case of a fragile first stage
+    "PT-M01": "PT-T01",  # stockpiling is intertemporal substitution, not defiance
 }
 
 #: Mechanism category -> the conditions it may attack.
@@ -55,12 +91,17 @@ MECHANISMS: dict[str, tuple[str, ...]] = {
     "outcome-measurement": ("exclusion",),
     "behavioural-response": ("exclusion",),
     "general-equilibrium": ("exclusion",),
-    "interference": ("exclusion",),
+    "interference": ("exclusion", "exogeneity"),
     "common-cause": ("exogeneity",),
+    "bad-control": ("exogeneity",),
     "selection-attrition": ("exogeneity",),
     "reverse-timing": ("exogeneity",),
     "defiers": ("monotonicity",),
-    "measurement": ("relevance", "exclusion", "exogeneity"),
+    "measurement": ("relevance", "exclusion", "exogeneity", "target"),
+    "estimand-scope": ("target",),
+    "covariate-weighting": ("target",),
+    "inference": ("uncertainty",),
+    "specification-search": ("specification",),
 }
 
 #: Family slug -> two-letter code prefix. ``any`` marks generic entries that apply to every family.
@@ -87,13 +128,17 @@ TESTABILITY: tuple[str, ...] = ("testable", "partly-testable", "argument-only")
 ROLE_TOKENS: tuple[str, ...] = ("Z", "X", "Y", "U")
 BASE_EDGES: tuple[tuple[str, str], ...] = (("Z", "X"), ("X", "Y"), ("U", "X"), ("U", "Y"))
 
+#: Boolean flags a fragment node may set (see :class:`FragmentNode`).
+NODE_FLAGS: tuple[str, ...] = ("observed", "selection", "adjusted", "fixes_instrument")
+
 TEAM_PREFIX = "T-"
-_BUILTIN_CODE = re.compile(r"^(?P<prefix>[A-Z]{2})-(?P<letter>[REIM])(?P<serial>[0-9]{2})$")
+_BUILTIN_CODE = re.compile(r"^(?P<prefix>[A-Z]{2})-(?P<letter>[REIMTUS])(?P<serial>[0-9]{2})$")
 _TEAM_CODE = re.compile(r"^T-[A-Z0-9]+(?:-[A-Z0-9]+)*$")
 _NODE_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_]{0,47}$")
 _FIELDS = (
     "code",
     "title",
+    "kind",
     "condition",
     "mechanism",
     "families",
@@ -106,24 +151,41 @@ _FIELDS = (
 )
 
 
+#: Keys that :meth:`Threat.to_dict` adds for readers and that parsing ignores (they are recomputed).
+_DERIVED = ("uncomputed_checks",)
+
+
 @dataclass(frozen=True)
 class FragmentNode:
-    """A non-role node a fragment adds; ``observed`` means "usually measurable", ``selection`` means the
-    analysis sample is restricted on this node (so the graph checker always conditions on it)."""
+    """A non-role node a fragment adds.
+
+    ``observed`` means "usually measurable"; ``selection`` means the analysis sample is restricted on this node
+    and ``adjusted`` that the analysis already holds it fixed as a control (the graph checker always conditions
+    on both); ``fixes_instrument`` marks a node that pins the instrument down (the instrument is a deterministic
+    function of it, as of a running variable, or it is a one-to-one function of the instrument, as age on a
+    fixed test date is of birth date), which d-separation cannot see: holding it fixed leaves the instrument no
+    variation, so it is never offered as an adjustment.
+    """
 
     name: str
     observed: bool = False
     label: str = ""
     selection: bool = False
+    adjusted: bool = False
+    fixes_instrument: bool = False
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain JSON-safe form."""
-        return {
+        """Plain JSON-safe form (the two newer flags only when set, so older stored fragments compare equal)."""
+        out: dict[str, Any] = {
             "name": self.name,
             "observed": self.observed,
             "label": self.label,
             "selection": self.selection,
         }
+        for flag in NODE_FLAGS[2:]:
+            if getattr(self, flag):
+                out[flag] = True
+        return out
 
 
 @dataclass(frozen=True)
@@ -174,6 +236,16 @@ class Threat:
     fragment: GraphFragment
 
     @property
+    def kind(self) -> str:
+        """``condition`` (attacks one of the four conditions) or ``reading`` (see :data:`KINDS`)."""
+        return kind_of(self.condition)
+
+    @property
+    def uncomputed_checks(self) -> tuple[str, ...]:
+        """The entry's checks that ``ivdossier`` cannot compute yet (the team runs them by hand meanwhile)."""
+        return tuple(name for name in self.checks if not CHECKS[name].computable)
+
+    @property
     def is_team(self) -> bool:
         """True for team-written entries (code in the ``T-`` namespace)."""
         return self.code.startswith(TEAM_PREFIX)
@@ -183,6 +255,7 @@ class Threat:
         return {
             "code": self.code,
             "title": self.title,
+            "kind": self.kind,
             "condition": self.condition,
             "mechanism": self.mechanism,
             "families": list(self.families),
@@ -192,6 +265,7 @@ class Threat:
             "mitigations": list(self.mitigations),
             "references": list(self.references),
             "fragment": self.fragment.to_dict(),
+            "uncomputed_checks": list(self.uncomputed_checks),
         }
 
     @classmethod
@@ -247,15 +321,19 @@ class Catalog:
         mechanism: str | None = None,
         testability: str | None = None,
         include_generic: bool = False,
+        kind: str | None = None,
     ) -> list[Threat]:
         """Threats matching every given filter, in catalogue order.
 
+        ``condition`` takes a condition or a reading aspect; ``kind`` is ``condition`` or ``reading``;
         ``family`` matches entries listing that family (plus ``any`` entries when ``include_generic``);
         ``text`` is split into words that must all occur, case-insensitively, in the code, title,
         description, mechanism or mitigations.
         """
         if condition is not None:
-            _check_choice(condition, CONDITIONS, "condition", "search")
+            _check_choice(condition, ATTACKS, "condition", "search")
+        if kind is not None:
+            _check_choice(kind, KINDS, "kind", "search")
         if family is not None:
             _check_choice(family, FAMILIES, "family", "search")
         if mechanism is not None:
@@ -266,6 +344,8 @@ class Catalog:
         out = []
         for threat in self.threats:
             if condition is not None and threat.condition != condition:
+                continue
+            if kind is not None and threat.kind != kind:
                 continue
             if mechanism is not None and threat.mechanism != mechanism:
                 continue
@@ -287,9 +367,10 @@ class Catalog:
         return out
 
     def counts(self) -> dict[str, dict[str, int]]:
-        """Number of entries per family and per condition (an entry counts once for each family it lists)."""
+        """Number of entries per family and per condition or reading aspect (an entry counts once for each
+        family it lists)."""
         per_family = {f: 0 for f in FAMILIES}
-        per_condition = {c: 0 for c in CONDITIONS}
+        per_condition = {c: 0 for c in ATTACKS}
         for threat in self.threats:
             per_condition[threat.condition] += 1
             for fam in threat.families:
@@ -344,11 +425,12 @@ def load_builtin() -> Catalog:
 def suggest_for_family(family: str, catalog: Catalog | None = None) -> list[Threat]:
     """Threats worth considering for an instrument of ``family``: its own entries first, then generic ones.
 
-    Ordered by condition (relevance, exclusion, exogeneity, monotonicity) within each group.
+    Ordered by condition (relevance, exclusion, exogeneity, monotonicity, then the reading aspects target,
+    uncertainty, specification) within each group.
     """
     _check_choice(family, FAMILIES, "family", "suggest_for_family")
     cat = catalog if catalog is not None else load_builtin()
-    order = {c: i for i, c in enumerate(CONDITIONS)}
+    order = {c: i for i, c in enumerate(ATTACKS)}
     own = [t for t in cat if family in t.families]
     generic = [t for t in cat if "any" in t.families and family not in t.families]
     return sorted(own, key=lambda t: order[t.condition]) + sorted(generic, key=lambda t: order[t.condition])
@@ -421,7 +503,7 @@ def _parse_threat(data: Mapping[str, Any], source: str) -> Threat:
         raise InvalidInputError(
             f"{source}: an entry must be a table/dict of fields, got {type(data).__name__}"
         )
-    unknown = sorted(set(data) - set(_FIELDS))
+    unknown = sorted(set(data) - set(_FIELDS) - set(_DERIVED))
     if unknown:
         raise InvalidInputError(
             f"{source}: unknown field(s) {', '.join(map(repr, unknown))}; allowed: {', '.join(_FIELDS)}"
@@ -432,7 +514,14 @@ def _parse_threat(data: Mapping[str, Any], source: str) -> Threat:
             f"{source}: field 'code' is missing; add e.g. code = \"WS-E01\" (or T-... for teams)"
         )
     src = f"{source} [{code}]"
-    condition = _check_choice(data.get("condition"), CONDITIONS, "field 'condition'", src)
+    condition = _check_choice(data.get("condition"), ATTACKS, "field 'condition'", src)
+    if "kind" in data:
+        _check_choice(data["kind"], KINDS, "field 'kind'", src)
+        if data["kind"] != kind_of(condition):
+            raise InvalidInputError(
+                f"{src}: kind {data['kind']!r} does not fit condition {condition!r}; kind 'reading' goes with "
+                f"{', '.join(READING_ASPECTS)}, kind 'condition' with {', '.join(CONDITIONS)}"
+            )
     mechanism = _check_choice(data.get("mechanism"), tuple(MECHANISMS), "field 'mechanism'", src)
     if condition not in MECHANISMS[mechanism]:
         raise InvalidInputError(
@@ -456,6 +545,11 @@ def _parse_threat(data: Mapping[str, Any], source: str) -> Threat:
                 "threats_catalog/checks.py"
             )
     fragment = _parse_fragment(data.get("fragment", {}), code, condition, src)
+    if kind_of(condition) == "reading" and not fragment.is_empty:
+        raise InvalidInputError(
+            f"{src}: a threat of kind 'reading' ({condition}) draws no graph fragment; remove the fragment or "
+            "file the threat under the condition it breaks"
+        )
     return Threat(
         code=code,
         title=_text(data, "title", src, min_len=8, max_len=100),
@@ -514,10 +608,10 @@ def _parse_fragment(raw: Any, code: str, condition: str, src: str) -> GraphFragm
         where = f"{src}: fragment node #{i + 1}"
         if not isinstance(rn, Mapping) or not isinstance(rn.get("name"), str):
             raise InvalidInputError(f"{where} needs a 'name' string")
-        bad = sorted(set(rn) - {"name", "observed", "label", "selection"})
+        bad = sorted(set(rn) - {"name", "label", *NODE_FLAGS})
         if bad:
             raise InvalidInputError(
-                f"{where} has unknown key(s) {', '.join(bad)}; use name, observed, label, selection"
+                f"{where} has unknown key(s) {', '.join(bad)}; use name, label, {', '.join(NODE_FLAGS)}"
             )
         name = rn["name"]
         if name in ROLE_TOKENS:
@@ -528,15 +622,24 @@ def _parse_fragment(raw: Any, code: str, condition: str, src: str) -> GraphFragm
             raise InvalidInputError(
                 f"{where}: name {name!r} must start with a letter and use letters, digits or '_' (max 48)"
             )
-        for flag in ("observed", "selection"):
+        for flag in NODE_FLAGS:
             if not isinstance(rn.get(flag, False), bool):
                 raise InvalidInputError(f"{where}: {flag!r} must be true or false")
+        if rn.get("adjusted", False) and not rn.get("observed", False):
+            raise InvalidInputError(
+                f"{where}: an 'adjusted' node is a control in the model, so it must also be observed = true"
+            )
         label = rn.get("label", "")
         if not isinstance(label, str):
             raise InvalidInputError(f"{where}: 'label' must be a string")
         nodes.append(
             FragmentNode(
-                name, bool(rn.get("observed", False)), label.strip(), bool(rn.get("selection", False))
+                name,
+                bool(rn.get("observed", False)),
+                label.strip(),
+                bool(rn.get("selection", False)),
+                bool(rn.get("adjusted", False)),
+                bool(rn.get("fixes_instrument", False)),
             )
         )
     names = [n.name for n in nodes]

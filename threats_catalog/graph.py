@@ -34,7 +34,11 @@ Verdict per condition (the graph part; statistics come from the estimation layer
 * monotonicity: a graph cannot express defiers, so the value comes from links alone: fatal -> broken; any
   open, mitigated, accepted or suggested -> at-risk; only rebutted links -> holds; no links -> not-assessed.
 
-Other rules: nodes flagged ``selection`` are always conditioned on; conditioning on an unobserved node (or on
+Other rules: nodes flagged ``selection`` or ``adjusted`` are always conditioned on; conditioning on a node
+flagged ``fixes_instrument`` breaks relevance (the instrument has no variation left), and such nodes are never
+offered by :func:`adjustment_sets`; a set that holds a descendant of the instrument comes last and
+:func:`adjustment_advice` attaches the warning that it is valid only if nothing unmeasured causes that node;
+conditioning on an unobserved node (or on
 Z, X, Y) raises InvalidInputError; the criterion itself is decided by d-separation, while the path listing (for
 explanation) stops after 200 open or 20,000 visited paths and then says so. Edges that no threat drew (base,
 team-drawn, or a hand-made ``nx.DiGraph`` without our attributes) count as asserted.
@@ -155,6 +159,8 @@ def build_graph(
                 if node.name not in covs:
                     attrs["observed"] = attrs["observed"] and node.observed
                 attrs["selection"] = attrs["selection"] or node.selection
+                attrs["adjusted"] = attrs.get("adjusted", False) or node.adjusted
+                attrs["fixes_instrument"] = attrs.get("fixes_instrument", False) or node.fixes_instrument
                 attrs["threats"].append(code)
                 if not attrs["label"] or attrs["label"] == node.name:
                     attrs["label"] = node.label or node.name
@@ -166,6 +172,8 @@ def build_graph(
                     observed=observed,
                     label=node.label or node.name,
                     selection=node.selection,
+                    adjusted=node.adjusted,
+                    fixes_instrument=node.fixes_instrument,
                     threats=[code],
                 )
             if G.nodes[node.name]["role"] != "covariate":
@@ -413,11 +421,12 @@ def check_instrument(
         raise InvalidInputError("instrument, treatment and outcome must be three different nodes")
     if not nx.is_directed_acyclic_graph(G):
         raise InvalidInputError("the graph has a cycle; build it with build_graph, which names the cycle")
-    W = _validate_conditioning(G, conditioning, z, x, y)
+    W = _validate_conditioning(G, conditioning, z, x, y) | _adjusted(G)
     S = {n for n, d in G.nodes(data=True) if d.get("selection")}
     C = W | S
     issues = _conditioning_issues(G, W, S, x, y)
-    connected = not d_separated(G, {z}, {x}, C - {z, x})
+    fixing = sorted(n for n in C if G.nodes[n].get("fixes_instrument"))
+    connected = not d_separated(G, {z}, {x}, C - {z, x}) and not fixing
     mutilated = G.copy()
     mutilated.remove_edges_from(list(G.out_edges(x)))
     threat_info: dict[str, dict[str, Any]] = dict(G.graph.get("threats", {}))
@@ -431,7 +440,7 @@ def check_instrument(
     criterion = connected and separated and not issues
 
     verdicts: tuple[ConditionVerdict, ...] = (
-        _relevance_verdict(connected, W, threat_info),
+        _relevance_verdict(connected, W, threat_info, fixing),
         _path_verdict("exclusion", open_paths, blocked_paths, threat_info, G, (), W),
         _path_verdict("exogeneity", open_paths, blocked_paths, threat_info, G, issues, W),
         _monotonicity_verdict(threat_info),
@@ -475,8 +484,10 @@ def criterion_holds(
     G: nx.DiGraph, *, instrument: str, treatment: str, outcome: str, conditioning: Iterable[str] = frozenset()
 ) -> bool:
     """Fast yes/no form of the conditional instrument criterion (no path listing)."""
-    W = _validate_conditioning(G, conditioning, instrument, treatment, outcome)
+    W = _validate_conditioning(G, conditioning, instrument, treatment, outcome) | _adjusted(G)
     S = {n for n, d in G.nodes(data=True) if d.get("selection")}
+    if any(G.nodes[n].get("fixes_instrument") for n in W | S):
+        return False
     return _criterion(G, instrument, treatment, outcome, W | S, _descendants(G, treatment, outcome))
 
 
@@ -488,7 +499,11 @@ def adjustment_sets(
     Returns ``[frozenset()]`` when no conditioning is needed and ``[]`` when no measured set works (None is
     never returned). Sets are searched among measured, non-selection ancestors of Z, X, Y and the selection
     nodes that are not descendants of X or Y, up to ``max_size`` members (all when None); a search of more
-    than 65,536 candidate sets asks for ``max_size``. Sorted by size, then names.
+    than 65,536 candidate sets asks for ``max_size``. Nodes the instrument is a deterministic function of are
+    never candidates. Sets free of descendants of the instrument come first (such a node is a valid adjustment
+    only if nothing unmeasured causes it; :func:`adjustment_advice` says so), then by size and names.
+    Nodes flagged ``adjusted`` (controls already in the model) are candidates like any other, so a set
+    without them tells the team to drop them.
     """
     for role, name in (("instrument", instrument), ("treatment", treatment), ("outcome", outcome)):
         if name not in G:
@@ -504,6 +519,7 @@ def adjustment_sets(
         n
         for n in relevant
         if G.nodes[n].get("observed")
+        and not G.nodes[n].get("fixes_instrument")
         and n not in S
         and n not in banned
         and n not in {instrument, treatment, outcome}
@@ -524,7 +540,61 @@ def adjustment_sets(
                 continue
             if _criterion(G, instrument, treatment, outcome, W | S, banned):
                 found.append(W)
-    return sorted(found, key=lambda s: (len(s), sorted(s)))
+    below_z = set(nx.descendants(G, instrument))
+    return sorted(found, key=lambda s: (bool(s & below_z), len(s), sorted(s)))
+
+
+#: What the tool says whenever an adjustment set holds a descendant of the instrument or the treatment.
+DESCENDANT_WARNING = (
+    "{nodes} {verb} caused by the instrument; holding {pronoun} fixed is valid only if nothing unmeasured "
+    "also causes {pronoun} (otherwise it opens a path from the instrument through {pronoun} to the "
+    "unmeasured causes of the outcome). Prefer a set without {pronoun}, or argue that claim explicitly."
+)
+
+
+@dataclass(frozen=True)
+class AdjustmentAdvice:
+    """One adjustment set as the tool presents it: its members, those the instrument or treatment causes, and
+    the plain warning that comes with them (empty when there is none)."""
+
+    members: tuple[str, ...]
+    caused_by_instrument: tuple[str, ...]
+    warning: str
+
+    def __str__(self) -> str:
+        text = "{" + ", ".join(self.members) + "}"
+        return f"{text} (warning: {self.warning})" if self.warning else text
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-safe form."""
+        return {
+            "members": list(self.members),
+            "caused_by_instrument": list(self.caused_by_instrument),
+            "warning": self.warning,
+        }
+
+
+def adjustment_advice(
+    G: nx.DiGraph, *, instrument: str, treatment: str, outcome: str, max_size: int | None = None
+) -> tuple[AdjustmentAdvice, ...]:
+    """The sets of :func:`adjustment_sets`, each with the warning it needs: a member that descends from the
+    instrument or the treatment is never presented without saying that it is valid only if nothing
+    unmeasured causes it. Sets without such members come first."""
+    sets = adjustment_sets(G, instrument=instrument, treatment=treatment, outcome=outcome, max_size=max_size)
+    below = set(nx.descendants(G, instrument)) | set(nx.descendants(G, treatment))
+    out = []
+    for members in sets:
+        flagged = tuple(sorted(members & below))
+        warning = ""
+        if flagged:
+            many = len(flagged) > 1
+            warning = DESCENDANT_WARNING.format(
+                nodes=", ".join(map(repr, flagged)),
+                verb="are" if many else "is",
+                pronoun="them" if many else "it",
+            )
+        out.append(AdjustmentAdvice(tuple(sorted(members)), flagged, warning))
+    return tuple(out)
 
 
 # ------------------------------------------------------------------------------------------------ internals
@@ -548,6 +618,11 @@ def _validate_conditioning(G: nx.DiGraph, conditioning: Iterable[str], z: str, x
                 f"cannot condition on {name!r}: it is unobserved; remove it or mark it measured in covariates"
             )
     return W
+
+
+def _adjusted(G: nx.DiGraph) -> set[str]:
+    """Nodes a fragment marks as controls already in the model (always conditioned on)."""
+    return {n for n, d in G.nodes(data=True) if d.get("adjusted")}
 
 
 def _descendants(G: nx.DiGraph, x: str, y: str) -> set[str]:
@@ -706,10 +781,16 @@ def _link_rule(
 
 
 def _relevance_verdict(
-    connected: bool, W: set[str], info: Mapping[str, Mapping[str, Any]]
+    connected: bool, W: set[str], info: Mapping[str, Mapping[str, Any]], fixing: Sequence[str] = ()
 ) -> ConditionVerdict:
     fatal, unresolved, _ = _link_rule("relevance", info)
     given = f" given {{{', '.join(sorted(W))}}}" if W else ""
+    if fixing:
+        reason = (
+            f"conditioning on {', '.join(map(repr, fixing))} leaves the instrument no variation (the two "
+            "determine each other); compare units close together on it instead of holding it fixed"
+        )
+        return ConditionVerdict("relevance", "broken", (reason,), ())
     if not connected:
         return ConditionVerdict(
             "relevance", "broken", (f"instrument and treatment are d-separated{given}",), ()

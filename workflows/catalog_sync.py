@@ -1,21 +1,50 @@
-"""Keep the registry's copy of the built-in threat catalogue current (team entries are never touched)."""
+"""Keep the registry's copy of the built-in threat catalogue current (team entries are never touched).
+
+A registry picks up a new catalogue the first time it is opened by a newer ``ivdossier``: new entries are
+added, changed ones refreshed, and links to merged or replaced codes carried to their successors, each step an
+audit event. The check that decides whether anything is due is one small query, so opening stays cheap.
+"""
 
 from __future__ import annotations
 
 from sqlmodel import Session, func, select
 
+from ivdossier.registry.db import Registry
 from ivdossier.registry.models import Threat
 from ivdossier.registry.threats import sync_catalog
 
+#: Who the audit trail names for catalogue refreshes and carry-overs made when a registry is opened: the tool,
+#: not the person whose command happened to open the registry first.
+CATALOG_ACTOR = "ivdossier-catalogue"
+
+
+def catalog_is_current(session: Session) -> bool:
+    """True when every built-in row carries the shipped catalogue version (and there is at least one)."""
+    from ivdossier.threats_catalog.catalog import CATALOGUE_VERSION
+
+    builtin = select(func.count()).select_from(Threat).where(Threat.origin == "builtin")
+    total = session.exec(builtin).one()
+    stale = session.exec(builtin.where(Threat.catalog_version != CATALOGUE_VERSION)).one()
+    return bool(total) and not stale
+
 
 def ensure_builtin(session: Session, *, actor: str) -> int:
-    """Add or refresh built-in entries when the registry's copy is older than the shipped catalogue."""
+    """Add, refresh or retire built-in entries when the registry's copy is older than the shipped catalogue."""
     from ivdossier.threats_catalog import load_builtin
+    from ivdossier.threats_catalog.catalog import RETIRED
 
-    catalog = load_builtin()
-    current = session.exec(
-        select(func.count()).where(Threat.origin == "builtin", Threat.catalog_version == catalog.version)
-    ).one()
-    if current == len(catalog):
+    if catalog_is_current(session):
         return 0
-    return sync_catalog(session, (t.to_dict() for t in catalog), version=catalog.version, actor=actor)
+    catalog = load_builtin()
+    return sync_catalog(
+        session, (t.to_dict() for t in catalog), version=catalog.version, actor=actor, retired=RETIRED
+    )
+
+
+def sync_on_open(registry: Registry, *, actor: str = CATALOG_ACTOR) -> int:
+    """Bring an opened registry's catalogue up to date in its own short transaction (nothing when current)."""
+    with registry.reading() as session:
+        if catalog_is_current(session):
+            return 0
+    with registry.writing() as session:
+        return ensure_builtin(session, actor=actor)

@@ -128,6 +128,8 @@ def check_finding(check: str, runs: Sequence[Run]) -> str:
     spec = CHECKS.get(check)
     if spec is None:
         return ""
+    if not spec.computable:
+        return spec.how_to_run
     kind = run_kind_for_command(spec.command)
     candidates = [r for r in reversed(runs) if r.run_kind == kind]
     if check == "over-identification":

@@ -47,7 +47,7 @@ def _threat_rows(session: Session, inst: Instrument) -> list[dict[str, Any]]:
         for name in threat.checks or []:
             try:
                 chk = get_check(name)
-                checks.append({"name": name, "description": chk.description, "command": chk.command})
+                checks.append({"name": name, "description": chk.description, "command": chk.how_to_run})
             except NotFoundError:
                 checks.append({"name": name, "description": "", "command": ""})
         rows.append(
@@ -55,7 +55,9 @@ def _threat_rows(session: Session, inst: Instrument) -> list[dict[str, Any]]:
                 "instrument": inst.slug,
                 "code": threat.code,
                 "title": threat.title,
-                "condition": threat.condition,
+                "condition": threat.condition
+                if threat.threat_kind != "reading"
+                else f"reading: {threat.condition}",
                 "state": link.state,
                 "testability": threat.testability,
                 "checks": checks,
