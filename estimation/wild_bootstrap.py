@@ -1,0 +1,544 @@
+"""Wild restricted efficient (WRE) bootstrap for one endogenous regressor (Davidson and MacKinnon 2010, JBES).
+
+Under H0: beta = b0 the bootstrap data are built from the restricted structural residuals u = M_W(y - b0 x)
+and the efficient reduced-form residuals v = x - Z pi, where (pi, delta) come from the OLS regression of x on
+the instruments, the controls and u (so v carries delta u). Draw b multiplies every residual of cluster g by
+the same weight v_g (Rademacher +/-1 or Webb's six-point distribution):
+
+    x* = Z pi + v * v_g,   y* = b0 x* + u * v_g,
+
+and the 2SLS t statistic (cluster-robust or heteroskedasticity-robust, the same small-sample factor as the
+analytic one) and the Anderson–Rubin Wald statistic of H0 are recomputed on (y*, x*). The p-value is the share
+of draws whose statistic is at least as large as the sample's (|t| for the symmetric t test). With G <= 12
+clusters and Rademacher weights all 2^G sign vectors are enumerated, so the p-value is exact and reproducible.
+
+Speed: every draw needs only per-cluster sums (instruments times residuals, the instruments' per-cluster
+cross-products and the instruments-by-controls products that re-partial the bootstrap errors), so a draw costs
+O(G L) after one pass over the data. When absorbed fixed effects are not nested in the clusters the bootstrap
+errors are partialled again draw by draw (exact, O(n) per draw).
+
+The Anderson–Rubin bootstrap is a restricted wild bootstrap of the OLS regression of y - b0 x on the
+instruments and controls (it needs no first stage). Confidence sets invert each test over b0 with the same
+draws: a grid around the 2SLS estimate, widened while its ends are accepted, and bisection at every change.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.fragility_data import FragilityData
+from ivdossier.estimation.robust_inference import Interval, classify_set
+from ivdossier.jsonsafe import json_safe
+
+Array = NDArray[np.float64]
+Progress = Callable[[int, int], None]
+WEIGHT_TYPES: tuple[str, ...] = ("rademacher", "webb")
+WEBB_VALUES = np.array([-math.sqrt(1.5), -1.0, -math.sqrt(0.5), math.sqrt(0.5), 1.0, math.sqrt(1.5)])
+SOURCE = "Davidson and MacKinnon (2010), Wild Bootstrap Tests for IV Regression, JBES 28:128-144"
+TIE_RTOL = 1e-9
+CHUNK_ELEMENTS = 4_000_000
+
+
+def bootstrap_weights(kind: str, n_groups: int, draws: int, rng: np.random.Generator) -> Array:
+    """A (G x draws) matrix of wild weights: Rademacher +/-1 or Webb's six points, each equally likely."""
+    if kind == "rademacher":
+        return np.asarray(rng.integers(0, 2, size=(n_groups, draws)) * 2 - 1, dtype=np.float64)
+    if kind == "webb":
+        return np.asarray(WEBB_VALUES[rng.integers(0, 6, size=(n_groups, draws))], dtype=np.float64)
+    raise InvalidInputError(f"Unknown wild weight type {kind!r}; choose one of {', '.join(WEIGHT_TYPES)}.")
+
+
+def all_sign_vectors(n_groups: int) -> Array:
+    """Every Rademacher sign vector for G clusters as a (G x 2^G) matrix; the last column is all +1."""
+    idx = np.arange(2**n_groups, dtype=np.int64)
+    bits = (idx[None, :] >> np.arange(n_groups, dtype=np.int64)[:, None]) & 1
+    return np.asarray(bits * 2 - 1, dtype=np.float64)
+
+
+def _group_sums(codes: np.ndarray, g: int, values: Array) -> Array:
+    v = values[:, None] if values.ndim == 1 else values
+    out = np.empty((g, v.shape[1]))
+    for j in range(v.shape[1]):
+        out[:, j] = np.bincount(codes, weights=v[:, j], minlength=g)
+    return out
+
+
+@dataclass(frozen=True, eq=False)
+class _Sums:
+    """Per-cluster sufficient statistics of the partialled data (one pass over the rows)."""
+
+    zz_g: Array  # G x L x L
+    zy_g: Array  # G x L
+    zx_g: Array  # G x L
+    aw_g: Array | None  # G x L x kw: Z_g'W_g (W'W)^-1
+    wy_g: Array | None  # G x kw
+    wx_g: Array | None  # G x kw
+    zz: Array
+    q: Array  # inverse of Z'Z
+    yy: float
+    xy: float
+    xx: float
+
+
+def _sums(fd: FragilityData) -> _Sums:
+    p = fd.prepared
+    z, y, x = p.Z, p.y, p.X[:, 0]
+    codes, g = fd.codes(), fd.n_groups
+    n_inst = z.shape[1]
+    cross = np.einsum("il,im->ilm", z, z).reshape(z.shape[0], n_inst * n_inst)
+    zz_g = _group_sums(codes, g, cross).reshape(g, n_inst, n_inst)
+    zy_g = _group_sums(codes, g, z * y[:, None])
+    zx_g = _group_sums(codes, g, z * x[:, None])
+    aw_g = wy_g = wx_g = None
+    if fd.w_basis is not None and fd.w_basis.shape[1]:
+        wb = fd.w_basis
+        kw = wb.shape[1]
+        zw = np.einsum("il,ik->ilk", z, wb).reshape(z.shape[0], n_inst * kw)
+        zw_g = _group_sums(codes, g, zw).reshape(g, n_inst, kw)
+        ww_inv = np.linalg.inv(wb.T @ wb)
+        aw_g = zw_g @ ww_inv
+        wy_g = _group_sums(codes, g, wb * y[:, None])
+        wx_g = _group_sums(codes, g, wb * x[:, None])
+    zz = zz_g.sum(axis=0)
+    return _Sums(
+        zz_g=zz_g,
+        zy_g=zy_g,
+        zx_g=zx_g,
+        aw_g=aw_g,
+        wy_g=wy_g,
+        wx_g=wx_g,
+        zz=zz,
+        q=np.linalg.inv(zz),
+        yy=float(y @ y),
+        xy=float(x @ y),
+        xx=float(x @ x),
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class _AtNull:
+    """Per-cluster sums of the restricted residuals u and efficient first-stage residuals v at one b0."""
+
+    b0: float
+    s_u: Array  # G x L, Z_g'u_g
+    s_v: Array  # G x L
+    w_u: Array | None  # G x kw
+    w_v: Array | None
+    zz_pi: Array  # G x L, Z_g'Z_g pi
+    pi: Array  # L
+    u: Array | None  # n-vectors, only for the re-partialling path
+    v: Array | None
+
+
+class _Engine:
+    """Bootstrap statistics for a block of draws, from per-cluster sums (fast) or by re-partialling (exact)."""
+
+    def __init__(self, fd: FragilityData) -> None:
+        p = fd.prepared
+        if p.X.shape[1] != 1:
+            raise InvalidInputError("the wild bootstrap here covers one endogenous regressor")
+        self.fd = fd
+        self.s = _sums(fd)
+        self.codes = fd.codes()
+        self.g = fd.n_groups
+        n, n_inst = p.Z.shape
+        self.n_inst = n_inst
+        self.fast = fd.base is not None
+        pc = p.n_partialled - p.n_partialled_nested if fd.clustered else p.n_partialled
+        g = self.g
+        if fd.clustered:
+            self.f_t = g / (g - 1) * (n - 1) / (n - 1 - pc)
+            self.f_ar = g / (g - 1) * (n - 1) / (n - n_inst - pc)
+        else:
+            self.f_t = n / (n - 1 - pc)
+            self.f_ar = n / (n - n_inst - pc)
+        s = self.s
+        self.pi_y = s.q @ s.zy_g.sum(axis=0)
+        self.pi_x = s.q @ s.zx_g.sum(axis=0)
+
+    def at_null(self, b0: float) -> _AtNull:
+        s = self.s
+        s_u = s.zy_g - b0 * s.zx_g
+        zu, zx = s_u.sum(axis=0), s.zx_g.sum(axis=0)
+        uu = s.yy - 2 * b0 * s.xy + b0 * b0 * s.xx
+        ux = s.xy - b0 * s.xx
+        pi_u = self.pi_y - b0 * self.pi_x
+        umu = uu - float(zu @ s.q @ zu)
+        umx = ux - float(zu @ s.q @ zx)
+        delta = umx / umu if umu > 1e-14 * max(uu, 1e-300) else 0.0
+        pi = self.pi_x - delta * pi_u
+        shift = (
+            -self.pi_x + delta * pi_u
+        )  # v = x + Z shift (after partialling): Z_g'v_g = Z_g'x_g + ZZ_g shift
+        s_v = s.zx_g + s.zz_g @ shift
+        w_u = w_v = None
+        if s.wy_g is not None and s.wx_g is not None and s.aw_g is not None:
+            w_u = s.wy_g - b0 * s.wx_g
+            w_v = s.wx_g + self._wz_times(shift)
+        u = v = None
+        if not self.fast:
+            p = self.fd.prepared
+            u = p.y - b0 * p.X[:, 0]
+            v = p.X[:, 0] + p.Z @ shift
+        return _AtNull(b0, s_u, s_v, w_u, w_v, s.zz_g @ pi, pi, u, v)
+
+    def _wz_times(self, vec: Array) -> Array:
+        """W_g'Z_g vec for every cluster (G x kw)."""
+        if not hasattr(self, "_wz_g"):
+            fd = self.fd
+            z, wb = fd.prepared.Z, fd.w_basis
+            assert wb is not None
+            kw = wb.shape[1]
+            wz = np.einsum("ik,il->ikl", wb, z).reshape(z.shape[0], kw * self.n_inst)
+            self._wz_g = _group_sums(self.codes, self.g, wz).reshape(self.g, kw, self.n_inst)
+        return np.asarray(self._wz_g @ vec, dtype=np.float64)
+
+    def corrected(self, s_r: Array, w_r: Array | None, r: Array | None, v: Array) -> Array:
+        """Z_g' [M_W (r * v)]_g for a block of draws v (G x b); returns G x L x b."""
+        if self.fast:
+            out = s_r[:, :, None] * v[:, None, :]
+            if w_r is not None and self.s.aw_g is not None:
+                out -= np.einsum("glk,kb->glb", self.s.aw_g, w_r.T @ v)
+            return np.asarray(out, dtype=np.float64)
+        assert r is not None
+        e = r[:, None] * v[self.codes, :]
+        me = self.fd.reproject(e)
+        z = self.fd.prepared.Z
+        out = np.empty((self.g, self.n_inst, v.shape[1]))
+        for j in range(self.n_inst):
+            out[:, j, :] = _group_sums(self.codes, self.g, z[:, j : j + 1] * me)
+        return out
+
+    def t_stats(self, a0: _AtNull, v: Array) -> Array:
+        """Bootstrap 2SLS t statistics of beta = b0 for draws v (G x b)."""
+        s = self.s
+        b0 = a0.b0
+        zx = (s.zz @ a0.pi)[:, None] + a0.s_v.T @ v
+        zy = b0 * zx + a0.s_u.T @ v
+        a = s.q @ zx
+        den = np.einsum("lb,lb->b", zx, a)
+        beta = np.einsum("lb,lb->b", a, zy) / den
+        cu = self.corrected(a0.s_u, a0.w_u, a0.u, v)
+        cv = self.corrected(a0.s_v, a0.w_v, a0.v, v)
+        m = (b0 - beta)[None, None, :] * (a0.zz_pi[:, :, None] + cv) + cu
+        score = np.einsum("lb,glb->gb", a, m)
+        var = self.f_t * np.einsum("gb,gb->b", score, score) / (den * den)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.asarray((beta - b0) / np.sqrt(var), dtype=np.float64)
+
+    def ar_stats(self, a0: _AtNull, v: Array) -> Array:
+        """Bootstrap Anderson–Rubin Wald statistics (chi-square form) of beta = b0 for draws v (G x b)."""
+        s = self.s
+        du = s.q @ (a0.s_u.T @ v)
+        su = self.corrected(a0.s_u, a0.w_u, a0.u, v) - np.einsum("glm,mb->glb", s.zz_g, du)
+        meat = self.f_ar * np.einsum("glb,gmb->blm", su, su)
+        cov = s.q[None, :, :] @ meat @ s.q[None, :, :]
+        sol = np.linalg.solve(cov, du.T[:, :, None])[:, :, 0]
+        return np.asarray(np.einsum("bl,bl->b", du.T, sol), dtype=np.float64)
+
+    def chunk(self) -> int:
+        """Draws per block, so that the largest temporary holds about CHUNK_ELEMENTS numbers."""
+        per_draw = self.g * self.n_inst if self.fast else self.fd.prepared.n * 2
+        return max(1, CHUNK_ELEMENTS // per_draw)
+
+
+@dataclass(frozen=True)
+class BootstrapTest:
+    """One bootstrap test of H0: beta = b0 with its confidence set (None when not requested)."""
+
+    name: str
+    null: float
+    statistic: float
+    p_value: float
+    alpha: float
+    intervals: list[Interval] | None
+    shape: str | None
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict; set ends as "inf"/"-inf" when unbounded."""
+        return {
+            "test": self.name,
+            "null": json_safe(self.null),
+            "statistic": json_safe(self.statistic),
+            "p_value": json_safe(self.p_value),
+            "confidence_level": 1 - self.alpha,
+            "confidence_set": None
+            if self.intervals is None
+            else [json_safe(list(i)) for i in self.intervals],
+            "shape": self.shape,
+        }
+
+
+def _fmt_set(intervals: list[Interval] | None) -> str:
+    if intervals is None:
+        return "not computed"
+    if not intervals:
+        return "empty"
+    return " U ".join(f"[{lo:.4g}, {hi:.4g}]" for lo, hi in intervals)
+
+
+@dataclass(frozen=True)
+class WildBootstrapResult:
+    """WRE bootstrap t test and Anderson–Rubin test of one null, with sets, or a not-applicable reason."""
+
+    applicable: bool
+    reason: str | None
+    treatment: str | None = None
+    weights: str | None = None
+    draws: int | None = None
+    enumerated: bool | None = None
+    n_clusters: int | None = None
+    clustered: bool | None = None
+    seed: int | None = None
+    estimate: float | None = None
+    t_test: BootstrapTest | None = None
+    anderson_rubin: BootstrapTest | None = None
+    partialling: str | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict."""
+        return {
+            "applicable": self.applicable,
+            "reason": self.reason,
+            "method": "wild restricted efficient bootstrap",
+            "treatment": self.treatment,
+            "weights": self.weights,
+            "draws": self.draws,
+            "enumerated": self.enumerated,
+            "n_clusters": self.n_clusters,
+            "weights_by": None if self.clustered is None else ("cluster" if self.clustered else "row"),
+            "seed": self.seed,
+            "estimate": json_safe(self.estimate),
+            "t_test": None if self.t_test is None else self.t_test.to_dict(),
+            "anderson_rubin": None if self.anderson_rubin is None else self.anderson_rubin.to_dict(),
+            "partialling": self.partialling,
+            "p_value_rule": "share of draws with a statistic at least as large as the sample's "
+            "(|t| for the t test); ties within a relative 1e-9 count as at least as large",
+            "source": SOURCE,
+        }
+
+    def __str__(self) -> str:
+        if not self.applicable:
+            return f"Wild bootstrap: not applicable ({self.reason})"
+        how = "all sign vectors enumerated (exact)" if self.enumerated else f"seed {self.seed}"
+        by = f"{self.n_clusters} clusters" if self.clustered else f"{self.n_clusters} rows (heteroskedastic)"
+        lines = [
+            f"Wild restricted efficient bootstrap for {self.treatment}: {self.draws} draws, "
+            f"{self.weights} weights by {by}, {how}",
+            f"  2SLS estimate {self.estimate:.4g}",
+        ]
+        for t in (self.t_test, self.anderson_rubin):
+            if t is not None:
+                lines.append(
+                    f"  {t.name}: H0 beta = {t.null:g}, statistic {t.statistic:.4g}, bootstrap p = {t.p_value:.4f};"
+                    f" {100 * (1 - t.alpha):g}% set {_fmt_set(t.intervals)}"
+                )
+        return "\n".join(lines)
+
+
+def _p_value(boot: Array, stat: float) -> float:
+    ok = np.isfinite(boot)
+    return float(np.mean(boot[ok] >= stat * (1 - TIE_RTOL))) if ok.any() else math.nan
+
+
+def wild_bootstrap(
+    fd: FragilityData,
+    *,
+    null: float = 0.0,
+    draws: int = 9999,
+    weights: str = "rademacher",
+    seed: int | np.random.Generator | None = None,
+    alpha: float = 0.05,
+    confidence_sets: bool = True,
+    enumerate_up_to: int = 12,
+    tests: tuple[str, ...] = ("t", "ar"),
+    progress: Progress | None = None,
+) -> WildBootstrapResult:
+    """WRE bootstrap t test and Anderson–Rubin test of H0: beta = ``null``, with sets by test inversion.
+
+    ``weights`` is "rademacher" or "webb"; with Rademacher weights and at most ``enumerate_up_to`` clusters all
+    2^G draws are used. ``seed`` is an int or a numpy Generator; ``progress(done, total)`` is called as draws
+    and set evaluations finish.
+    """
+    if weights not in WEIGHT_TYPES:
+        raise InvalidInputError(
+            f"Unknown wild weight type {weights!r}; choose one of {', '.join(WEIGHT_TYPES)}."
+        )
+    if not 0 < alpha < 1:
+        raise InvalidInputError(f"alpha must lie in (0, 1), got {alpha}; use e.g. 0.05.")
+    if draws < 1:
+        raise InvalidInputError(f"draws must be a positive number of bootstrap draws, got {draws}.")
+    bad = [t for t in tests if t not in ("t", "ar")]
+    if bad or not tests:
+        raise InvalidInputError(f"tests must name 't' and/or 'ar', got {tests!r}.")
+    p = fd.prepared
+    if p.X.shape[1] != 1:
+        return WildBootstrapResult(
+            False,
+            f"the wild restricted efficient bootstrap covers one endogenous regressor; this model has "
+            f"{p.X.shape[1]} ({', '.join(p.treatment)})",
+        )
+    g = fd.n_groups
+    if fd.clustered and g < 2:
+        return WildBootstrapResult(False, "a single cluster: there is nothing to resample")
+    enumerated = weights == "rademacher" and fd.clustered and g <= enumerate_up_to
+    seed_int = seed if isinstance(seed, int) else None
+    if enumerated:
+        v = all_sign_vectors(g)
+    else:
+        rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
+        v = bootstrap_weights(weights, g, draws, rng)
+    engine = _Engine(fd)
+    n_draws = v.shape[1]
+    step = engine.chunk()
+    n_blocks = -(-n_draws // step)
+    ticker = _Ticker(progress, n_blocks * len(tests) * (1 + (45 if confidence_sets else 0)))
+
+    def boot(kind: str, b0: float) -> tuple[float, Array]:
+        a0 = engine.at_null(b0)
+        ones = np.ones((g, 1))
+        if kind == "t":
+            stat = abs(float(engine.t_stats(a0, ones)[0]))
+        else:
+            stat = float(engine.ar_stats(a0, ones)[0])
+        out = np.empty(n_draws)
+        for start in range(0, n_draws, step):
+            block = v[:, start : start + step]
+            vals = engine.t_stats(a0, block) if kind == "t" else engine.ar_stats(a0, block)
+            out[start : start + step] = np.abs(vals) if kind == "t" else vals
+            ticker.tick()
+        return stat, out
+
+    beta_hat = float(p.X[:, 0] @ _proj(engine, p.y)) / float(p.X[:, 0] @ _proj(engine, p.X[:, 0]))
+    se_hat = _analytic_se(engine, beta_hat)
+    results: dict[str, BootstrapTest] = {}
+    for kind in tests:
+        stat, dist = boot(kind, null)
+        pval = _p_value(dist, stat)
+        intervals = None
+        if confidence_sets:
+
+            def accept(b0: float, kind: str = kind) -> bool:
+                st, ds = boot(kind, b0)
+                return _p_value(ds, st) > alpha
+
+            intervals = invert_test(accept, beta_hat, se_hat)
+        name = "t test (2SLS, symmetric)" if kind == "t" else "Anderson–Rubin"
+        shown = stat / engine.n_inst if kind == "ar" else stat  # AR in F form: Wald / L
+        results[kind] = BootstrapTest(
+            name=name,
+            null=null,
+            statistic=float(shown),
+            p_value=pval,
+            alpha=alpha,
+            intervals=intervals,
+            shape=None if intervals is None else classify_set(intervals),
+        )
+    ticker.finish()
+    return WildBootstrapResult(
+        applicable=True,
+        reason=None,
+        treatment=p.treatment[0],
+        weights=weights,
+        draws=n_draws,
+        enumerated=enumerated,
+        n_clusters=g,
+        clustered=fd.clustered,
+        seed=seed_int,
+        estimate=beta_hat,
+        t_test=results.get("t"),
+        anderson_rubin=results.get("ar"),
+        partialling=fd.partialling,
+    )
+
+
+class _Ticker:
+    def __init__(self, progress: Progress | None, total: int) -> None:
+        self.progress, self.total, self.done = progress, max(total, 1), 0
+
+    def tick(self) -> None:
+        self.done += 1
+        if self.progress is not None:
+            self.total = max(self.total, self.done)
+            self.progress(self.done, self.total)
+
+    def finish(self) -> None:
+        if self.progress is not None:
+            self.progress(self.total, self.total)
+
+
+def _proj(engine: _Engine, col: Array) -> Array:
+    z = engine.fd.prepared.Z
+    return np.asarray(z @ (engine.s.q @ (z.T @ col)), dtype=np.float64)
+
+
+def _analytic_se(engine: _Engine, beta: float) -> float:
+    """The 2SLS cluster- or heteroskedasticity-robust standard error (scale for the inversion grid)."""
+    ones = np.ones((engine.g, 1))
+    t_at = engine.t_stats(engine.at_null(beta + 1.0), ones)[0]
+    # t(beta + 1) = (beta - beta - 1) / se with the same unrestricted se, so se = -1 / t
+    se = -1.0 / float(t_at) if t_at != 0 and np.isfinite(t_at) else 1.0
+    return se if se > 0 else 1.0
+
+
+def invert_test(
+    accept: Callable[[float], bool],
+    center: float,
+    scale: float,
+    *,
+    n_grid: int = 25,
+    span: float = 8.0,
+    widen: tuple[float, ...] = (40.0, 400.0, 4000.0),
+    rtol: float = 1e-5,
+) -> list[Interval]:
+    """Set {b : accept(b)} from a grid center +/- span*scale (widened while an end is accepted) and bisection.
+
+    Each change between neighbouring grid points is bisected until the bracket is below rtol * scale. A set
+    still accepted at the widest end is reported unbounded on that side.
+    """
+    pts = list(center + scale * np.linspace(-span, span, n_grid))
+    flags = [accept(b) for b in pts]
+    for far in widen:
+        if not flags[0]:
+            break
+        b = center - far * scale
+        pts.insert(0, b)
+        flags.insert(0, accept(b))
+    for far in widen:
+        if not flags[-1]:
+            break
+        b = center + far * scale
+        pts.append(b)
+        flags.append(accept(b))
+    tol = rtol * scale
+
+    def edge(lo: float, hi: float, lo_ok: bool) -> float:
+        while hi - lo > tol:
+            mid = 0.5 * (lo + hi)
+            if accept(mid) == lo_ok:
+                lo = mid
+            else:
+                hi = mid
+        return 0.5 * (lo + hi)
+
+    intervals: list[Interval] = []
+    start = -math.inf if flags[0] else None
+    for i in range(1, len(pts)):
+        if flags[i] == flags[i - 1]:
+            continue
+        b = edge(pts[i - 1], pts[i], flags[i - 1])
+        if flags[i]:
+            start = b
+        else:
+            intervals.append((start if start is not None else -math.inf, b))
+            start = None
+    if start is not None:
+        intervals.append((start, math.inf))
+    return intervals
