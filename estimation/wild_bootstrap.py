@@ -404,10 +404,8 @@ def wild_bootstrap(
     def boot(kind: str, b0: float) -> tuple[float, Array]:
         a0 = engine.at_null(b0)
         ones = np.ones((g, 1))
-        if kind == "t":
-            stat = abs(float(engine.t_stats(a0, ones)[0]))
-        else:
-            stat = float(engine.ar_stats(a0, ones)[0])
+        first = engine.t_stats(a0, ones) if kind == "t" else engine.ar_stats(a0, ones)
+        stat = abs(float(first[0]))
         out = np.empty(n_draws)
         for start in range(0, n_draws, step):
             block = v[:, start : start + step]
