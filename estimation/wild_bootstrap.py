@@ -43,16 +43,29 @@ WEIGHT_TYPES: tuple[str, ...] = ("rademacher", "webb")
 WEBB_VALUES = np.array([-math.sqrt(1.5), -1.0, -math.sqrt(0.5), math.sqrt(0.5), 1.0, math.sqrt(1.5)])
 SOURCE = "Davidson and MacKinnon (2010), Wild Bootstrap Tests for IV Regression, JBES 28:128-144"
 TIE_RTOL = 1e-9
-CHUNK_ELEMENTS = 4_000_000
+CHUNK_ELEMENTS = 1 << 18  # about 2 MB per temporary, so blocks stay in cache
+
+
+def weight_codes(kind: str, n_groups: int, draws: int, rng: np.random.Generator) -> np.ndarray:
+    """Compact (G x draws) int8 codes of wild weights: 0/1 for Rademacher, 0..5 for Webb's six points."""
+    if kind not in WEIGHT_TYPES:
+        raise InvalidInputError(
+            f"Unknown wild weight type {kind!r}; choose one of {', '.join(WEIGHT_TYPES)}."
+        )
+    top = 2 if kind == "rademacher" else 6
+    return np.asarray(rng.integers(0, top, size=(n_groups, draws), dtype=np.int8))
+
+
+def weight_values(kind: str, codes: np.ndarray) -> Array:
+    """The wild weights that ``weight_codes`` stand for, as floats."""
+    if kind == "rademacher":
+        return np.asarray(codes, dtype=np.float64) * 2.0 - 1.0
+    return np.asarray(WEBB_VALUES[codes], dtype=np.float64)
 
 
 def bootstrap_weights(kind: str, n_groups: int, draws: int, rng: np.random.Generator) -> Array:
     """A (G x draws) matrix of wild weights: Rademacher +/-1 or Webb's six points, each equally likely."""
-    if kind == "rademacher":
-        return np.asarray(rng.integers(0, 2, size=(n_groups, draws)) * 2 - 1, dtype=np.float64)
-    if kind == "webb":
-        return np.asarray(WEBB_VALUES[rng.integers(0, 6, size=(n_groups, draws))], dtype=np.float64)
-    raise InvalidInputError(f"Unknown wild weight type {kind!r}; choose one of {', '.join(WEIGHT_TYPES)}.")
+    return weight_values(kind, weight_codes(kind, n_groups, draws, rng))
 
 
 def all_sign_vectors(n_groups: int) -> Array:
@@ -137,6 +150,13 @@ class _AtNull:
     v: Array | None
 
 
+def _only_u(a0: _AtNull) -> _AtNull:
+    """The same null with the first-stage parts zeroed, so _fast_scores returns c_g(u*v) alone."""
+    zeros = np.zeros_like(a0.s_v)
+    w_zero = None if a0.w_v is None else np.zeros_like(a0.w_v)
+    return _AtNull(a0.b0, a0.s_u, zeros, a0.w_u, w_zero, np.zeros_like(a0.zz_pi), a0.pi, None, None)
+
+
 class _Engine:
     """Bootstrap statistics for a block of draws, from per-cluster sums (fast) or by re-partialling (exact)."""
 
@@ -216,6 +236,22 @@ class _Engine:
             out[:, j, :] = _group_sums(self.codes, self.g, z[:, j : j + 1] * me)
         return out
 
+    def _fast_scores(self, a0: _AtNull, v: Array, coef_l: Array, c1: Array) -> Array:
+        """Per-cluster scores sum_l coef_l [c1 (ZZ_g pi + c_g(v*v)) + c_g(u*v)]_l for a block (G x b).
+
+        With c_g(r*v) = v_g S_g(r) - AW_g (W'(r*v)) this is three matrix products and elementwise work:
+        P (coef*c1) + v * (S_v (coef*c1) + S_u coef) - AW (coef x (c1 W_v'v + W_u'v)).
+        """
+        ac = coef_l * c1[None, :]
+        out = a0.zz_pi @ ac + v * (a0.s_v @ ac + a0.s_u @ coef_l)
+        aw = self.s.aw_g
+        if aw is not None and a0.w_u is not None and a0.w_v is not None:
+            y = c1[None, :] * (a0.w_v.T @ v) + a0.w_u.T @ v  # kw x b
+            g, n_inst, kw = aw.shape
+            stacked = (coef_l[:, None, :] * y[None, :, :]).reshape(n_inst * kw, -1)
+            out -= aw.reshape(g, n_inst * kw) @ stacked
+        return np.asarray(out, dtype=np.float64)
+
     def t_stats(self, a0: _AtNull, v: Array) -> Array:
         """Bootstrap 2SLS t statistics of beta = b0 for draws v (G x b)."""
         s = self.s
@@ -225,10 +261,13 @@ class _Engine:
         a = s.q @ zx
         den = np.einsum("lb,lb->b", zx, a)
         beta = np.einsum("lb,lb->b", a, zy) / den
-        cu = self.corrected(a0.s_u, a0.w_u, a0.u, v)
-        cv = self.corrected(a0.s_v, a0.w_v, a0.v, v)
-        m = (b0 - beta)[None, None, :] * (a0.zz_pi[:, :, None] + cv) + cu
-        score = np.einsum("lb,glb->gb", a, m)
+        if self.fast:
+            score = self._fast_scores(a0, v, a, b0 - beta)
+        else:
+            cu = self.corrected(a0.s_u, a0.w_u, a0.u, v)
+            cv = self.corrected(a0.s_v, a0.w_v, a0.v, v)
+            m = (b0 - beta)[None, None, :] * (a0.zz_pi[:, :, None] + cv) + cu
+            score = np.einsum("lb,glb->gb", a, m)
         var = self.f_t * np.einsum("gb,gb->b", score, score) / (den * den)
         with np.errstate(divide="ignore", invalid="ignore"):
             return np.asarray((beta - b0) / np.sqrt(var), dtype=np.float64)
@@ -237,16 +276,99 @@ class _Engine:
         """Bootstrap Anderson–Rubin Wald statistics (chi-square form) of beta = b0 for draws v (G x b)."""
         s = self.s
         du = s.q @ (a0.s_u.T @ v)
-        su = self.corrected(a0.s_u, a0.w_u, a0.u, v) - np.einsum("glm,mb->glb", s.zz_g, du)
-        meat = self.f_ar * np.einsum("glb,gmb->blm", su, su)
+        n_inst = self.n_inst
+        if self.fast:
+            # score of instrument l: c_g(u*v)_l - (ZZ_g du)_l, from the same three-product form per instrument
+            zero = np.zeros(v.shape[1])
+            cols = []
+            for j in range(n_inst):
+                e = np.zeros((n_inst, v.shape[1]))
+                e[j] = 1.0
+                cu = self._fast_scores(_only_u(a0), v, e, zero)
+                cols.append(cu - s.zz_g[:, j, :] @ du)
+            meat = np.empty((v.shape[1], n_inst, n_inst))
+            for j in range(n_inst):
+                for k in range(j + 1):
+                    meat[:, j, k] = meat[:, k, j] = np.einsum("gb,gb->b", cols[j], cols[k])
+        else:
+            su = self.corrected(a0.s_u, a0.w_u, a0.u, v) - np.einsum("glm,mb->glb", s.zz_g, du)
+            meat = np.einsum("glb,gmb->blm", su, su)
+        meat *= self.f_ar
+        if n_inst == 1:
+            q = float(s.q[0, 0])
+            return np.asarray(du[0] ** 2 / (q * q * meat[:, 0, 0]), dtype=np.float64)
         cov = s.q[None, :, :] @ meat @ s.q[None, :, :]
         sol = np.linalg.solve(cov, du.T[:, :, None])[:, :, 0]
         return np.asarray(np.einsum("bl,bl->b", du.T, sol), dtype=np.float64)
 
+    def ar_parts(self, v: Array) -> tuple[Array, Array, Array, Array, Array]:
+        """Per-draw pieces of the AR statistic, which is linear in b0 through u = y - b0 x.
+
+        Returns d_y, d_x (b x L: Z coefficients of the bootstrap y and x errors) and the meat pieces M_yy, M_yx,
+        M_xx (b x L x L), so that at b0: d = d_y - b0 d_x and meat = M_yy - b0 (M_yx + M_yx') + b0^2 M_xx.
+        """
+        s = self.s
+        p = self.fd.prepared
+        n_inst, nb = self.n_inst, v.shape[1]
+        pieces = []
+        for s_r, w_r, r in ((s.zy_g, s.wy_g, p.y), (s.zx_g, s.wx_g, p.X[:, 0])):
+            d = s.q @ (s_r.T @ v)
+            if self.fast:
+                a0 = _AtNull(
+                    0.0,
+                    s_r,
+                    np.zeros_like(s_r),
+                    w_r,
+                    None if w_r is None else np.zeros_like(w_r),
+                    np.zeros_like(s_r),
+                    np.zeros(n_inst),
+                    None,
+                    None,
+                )
+                cols = []
+                for j in range(n_inst):
+                    e = np.zeros((n_inst, nb))
+                    e[j] = 1.0
+                    cols.append(self._fast_scores(a0, v, e, np.zeros(nb)) - s.zz_g[:, j, :] @ d)
+                sc = np.stack(cols, axis=1)
+            else:
+                sc = self.corrected(s_r, w_r, r, v) - np.einsum("glm,mb->glb", s.zz_g, d)
+            pieces.append((d.T, sc))
+        (dy, sy), (dx, sx) = pieces
+        myy = np.einsum("glb,gmb->blm", sy, sy)
+        myx = np.einsum("glb,gmb->blm", sy, sx)
+        mxx = np.einsum("glb,gmb->blm", sx, sx)
+        return dy, dx, myy, myx, mxx
+
     def chunk(self) -> int:
         """Draws per block, so that the largest temporary holds about CHUNK_ELEMENTS numbers."""
-        per_draw = self.g * self.n_inst if self.fast else self.fd.prepared.n * 2
-        return max(1, CHUNK_ELEMENTS // per_draw)
+        if self.fast:
+            return max(1, CHUNK_ELEMENTS // (self.g * self.n_inst))
+        return max(1, 16 * CHUNK_ELEMENTS // self.fd.prepared.n)
+
+
+@dataclass(frozen=True, eq=False)
+class _ArTable:
+    """AR pieces for every draw (row 0 is the sample itself), so any b0 costs O(draws L^3)."""
+
+    dy: Array
+    dx: Array
+    myy: Array
+    myx: Array
+    mxx: Array
+    q: Array
+    factor: float
+
+    def stats(self, b0: float) -> Array:
+        d = self.dy - b0 * self.dx
+        meat = self.factor * (self.myy - b0 * (self.myx + np.swapaxes(self.myx, 1, 2)) + b0 * b0 * self.mxx)
+        if d.shape[1] == 1:
+            q = float(self.q[0, 0])
+            with np.errstate(divide="ignore", invalid="ignore"):
+                return np.asarray(d[:, 0] ** 2 / (q * q * meat[:, 0, 0]), dtype=np.float64)
+        cov = self.q[None, :, :] @ meat @ self.q[None, :, :]
+        sol = np.linalg.solve(cov, d[:, :, None])[:, :, 0]
+        return np.asarray(np.einsum("bl,bl->b", d, sol), dtype=np.float64)
 
 
 @dataclass(frozen=True)
@@ -391,26 +513,38 @@ def wild_bootstrap(
     enumerated = weights == "rademacher" and fd.clustered and g <= enumerate_up_to
     seed_int = seed if isinstance(seed, int) else None
     if enumerated:
-        v = all_sign_vectors(g)
+        v_codes = np.asarray((all_sign_vectors(g) + 1) / 2, dtype=np.int8)
     else:
         rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
-        v = bootstrap_weights(weights, g, draws, rng)
+        v_codes = weight_codes(weights, g, draws, rng)
     engine = _Engine(fd)
-    n_draws = v.shape[1]
+    n_draws = v_codes.shape[1]
     step = engine.chunk()
     n_blocks = -(-n_draws // step)
-    ticker = _Ticker(progress, n_blocks * len(tests) * (1 + (45 if confidence_sets else 0)))
+    ticker = _Ticker(
+        progress, n_blocks * len(tests) + (n_blocks * 30 if confidence_sets and "t" in tests else 0)
+    )
+
+    ar_table: _ArTable | None = None
+    if "ar" in tests:
+        parts = [engine.ar_parts(np.ones((g, 1)))]
+        for start in range(0, n_draws, step):
+            parts.append(engine.ar_parts(weight_values(weights, v_codes[:, start : start + step])))
+            ticker.tick()
+        dy, dx, myy, myx, mxx = (np.concatenate(pieces, axis=0) for pieces in zip(*parts, strict=True))
+        ar_table = _ArTable(dy, dx, myy, myx, mxx, engine.s.q, engine.f_ar)
 
     def boot(kind: str, b0: float) -> tuple[float, Array]:
+        if kind == "ar":
+            assert ar_table is not None
+            all_stats = ar_table.stats(b0)
+            return float(all_stats[0]), all_stats[1:]
         a0 = engine.at_null(b0)
-        ones = np.ones((g, 1))
-        first = engine.t_stats(a0, ones) if kind == "t" else engine.ar_stats(a0, ones)
-        stat = abs(float(first[0]))
+        stat = abs(float(engine.t_stats(a0, np.ones((g, 1)))[0]))
         out = np.empty(n_draws)
         for start in range(0, n_draws, step):
-            block = v[:, start : start + step]
-            vals = engine.t_stats(a0, block) if kind == "t" else engine.ar_stats(a0, block)
-            out[start : start + step] = np.abs(vals) if kind == "t" else vals
+            block = weight_values(weights, v_codes[:, start : start + step])
+            out[start : start + step] = np.abs(engine.t_stats(a0, block))
             ticker.tick()
         return stat, out
 
@@ -423,11 +557,15 @@ def wild_bootstrap(
         intervals = None
         if confidence_sets:
 
-            def accept(b0: float, kind: str = kind) -> bool:
+            def p_at(b0: float, kind: str = kind) -> float:
                 st, ds = boot(kind, b0)
-                return _p_value(ds, st) > alpha
+                return _p_value(ds, st)
 
-            intervals = invert_test(accept, beta_hat, se_hat)
+            # the AR table makes every b0 cheap, so its grid is dense; each t evaluation costs a pass over the draws
+            grid = 9 if kind == "t" else 41
+            intervals = invert_test(
+                p_at, alpha, beta_hat, se_hat, n_grid=grid, rtol=1e-4 if kind == "ar" else 1e-3
+            )
         name = "t test (2SLS, symmetric)" if kind == "t" else "Anderson–Rubin"
         shown = stat / engine.n_inst if kind == "ar" else stat  # AR in F form: Wald / L
         results[kind] = BootstrapTest(
@@ -487,52 +625,57 @@ def _analytic_se(engine: _Engine, beta: float) -> float:
 
 
 def invert_test(
-    accept: Callable[[float], bool],
+    p_value: Callable[[float], float],
+    alpha: float,
     center: float,
     scale: float,
     *,
-    n_grid: int = 25,
+    n_grid: int = 17,
     span: float = 8.0,
     widen: tuple[float, ...] = (40.0, 400.0, 4000.0),
-    rtol: float = 1e-5,
+    rtol: float = 1e-4,
 ) -> list[Interval]:
-    """Set {b : accept(b)} from a grid center +/- span*scale (widened while an end is accepted) and bisection.
+    """Set {b : p_value(b) > alpha} from a grid center +/- span*scale (widened while an end is accepted).
 
-    Each change between neighbouring grid points is bisected until the bracket is below rtol * scale. A set
-    still accepted at the widest end is reported unbounded on that side.
+    Each change between neighbouring grid points is refined by safeguarded regula falsi on p - alpha (the
+    interpolated point is kept at least a tenth of the bracket from either end) until the bracket is below
+    rtol * scale. A set still accepted at the widest end is reported unbounded on that side.
     """
     pts = list(center + scale * np.linspace(-span, span, n_grid))
-    flags = [accept(b) for b in pts]
+    pv = [p_value(b) for b in pts]
     for far in widen:
-        if not flags[0]:
+        if not pv[0] > alpha:
             break
-        b = center - far * scale
-        pts.insert(0, b)
-        flags.insert(0, accept(b))
+        pts.insert(0, center - far * scale)
+        pv.insert(0, p_value(pts[0]))
     for far in widen:
-        if not flags[-1]:
+        if not pv[-1] > alpha:
             break
-        b = center + far * scale
-        pts.append(b)
-        flags.append(accept(b))
+        pts.append(center + far * scale)
+        pv.append(p_value(pts[-1]))
     tol = rtol * scale
 
-    def edge(lo: float, hi: float, lo_ok: bool) -> float:
-        while hi - lo > tol:
-            mid = 0.5 * (lo + hi)
-            if accept(mid) == lo_ok:
-                lo = mid
+    def edge(a: float, pa: float, b: float, pb: float) -> float:
+        """Boundary between a and b, where exactly one of pa, pb exceeds alpha."""
+        while abs(b - a) > tol:
+            w = (pa - alpha) / (pa - pb) if pa != pb else 0.5
+            w = min(max(w, 0.1), 0.9)
+            m = a + w * (b - a)
+            pm = p_value(m)
+            if (pm > alpha) == (pa > alpha):
+                a, pa = m, pm
             else:
-                hi = mid
-        return 0.5 * (lo + hi)
+                b, pb = m, pm
+        return 0.5 * (a + b)
 
     intervals: list[Interval] = []
-    start = -math.inf if flags[0] else None
+    start = -math.inf if pv[0] > alpha else None
     for i in range(1, len(pts)):
-        if flags[i] == flags[i - 1]:
+        inside, before = pv[i] > alpha, pv[i - 1] > alpha
+        if inside == before:
             continue
-        b = edge(pts[i - 1], pts[i], flags[i - 1])
-        if flags[i]:
+        b = edge(pts[i - 1], pv[i - 1], pts[i], pv[i])
+        if inside:
             start = b
         else:
             intervals.append((start if start is not None else -math.inf, b))

@@ -228,9 +228,9 @@ def test_confidence_set_ends_have_p_values_on_either_side_of_alpha() -> None:
 
 def test_invert_test_finds_known_interval_and_rays() -> None:
     # definition: the accepted set of a known rule
-    got = invert_test(lambda b: -1.3 <= b <= 2.1, 0.0, 1.0)
+    got = invert_test(lambda b: 1.0 if -1.3 <= b <= 2.1 else 0.0, 0.05, 0.0, 1.0)
     assert got[0][0] == pytest.approx(-1.3, abs=1e-4) and got[0][1] == pytest.approx(2.1, abs=1e-4)
-    rays = invert_test(lambda b: abs(b) >= 2.0, 0.0, 1.0)
+    rays = invert_test(lambda b: min(abs(b) / 4, 1.0), 0.5, 0.0, 1.0)
     assert rays[0][0] == -math.inf and rays[1][1] == math.inf
     assert rays[0][1] == pytest.approx(-2.0, abs=1e-4) and rays[1][0] == pytest.approx(2.0, abs=1e-4)
 
