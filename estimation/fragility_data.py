@@ -44,6 +44,7 @@ class FragilityData:
     w_basis: Array | None
     reproject: Callable[[Array], Array]
     partialling: str
+    refit_rows: Callable[[np.ndarray, np.ndarray | None], tuple[Array, int, int]]
 
     @property
     def n_groups(self) -> int:
@@ -136,6 +137,17 @@ def fragility_data(
         out = partial_out(target, controls=cmat, fe_codes=fe_codes, weights=w).columns
         return np.asarray(out, dtype=np.float64)
 
+    def refit_rows(rows: np.ndarray, new_clusters: np.ndarray | None) -> tuple[Array, int, int]:
+        """Partial the raw [y, X, Z] of the given rows (repeats allowed) again: columns, p and nested p."""
+        absorbed = partial_out(
+            raw[rows],
+            controls=None if cmat is None else cmat[rows],
+            fe_codes=[f[rows] for f in fe_codes],
+            weights=None if w is None else w[rows],
+            cluster_codes=() if new_clusters is None else (new_clusters,),
+        )
+        return np.asarray(absorbed.columns), absorbed.n_partialled, absorbed.n_absorbed_nested
+
     base: Array | None
     w_basis: Array | None
     if not fe:
@@ -162,6 +174,7 @@ def fragility_data(
         w_basis=w_basis,
         reproject=reproject,
         partialling=how,
+        refit_rows=refit_rows,
     )
 
 
