@@ -157,6 +157,25 @@ def batch_stats(
     )
 
 
+def partialled_stats(
+    cols: Array, codes: np.ndarray | None, p: int, nested: int, n_inst: int, null: float
+) -> BatchStats:
+    """Statistics of already partialled [y, x, Z] columns (no explicit partialled-out columns left)."""
+    cl = codes if codes is not None else np.arange(cols.shape[0])
+    g = int(cl.max()) + 1
+    cp, rows = cluster_crossproducts(cols, cl, g)
+    return batch_stats(
+        cp,
+        rows,
+        np.ones((1, g)),
+        n_inst=n_inst,
+        kw=0,
+        p_c=p - nested if codes is not None else p,
+        clustered=codes is not None,
+        null=null,
+    )
+
+
 def t_p_values(t: Array, df: Array) -> Array:
     """Two-sided p-values of t statistics with t(df) reference distributions."""
     return np.asarray(2 * stats.t.sf(np.abs(t), df), dtype=np.float64)

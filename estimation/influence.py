@@ -29,6 +29,7 @@ from ivdossier.estimation.cluster_crossproducts import (
     batch_stats,
     cluster_crossproducts,
     f_p_values,
+    partialled_stats,
     t_p_values,
 )
 from ivdossier.estimation.fragility_data import FragilityData
@@ -156,25 +157,6 @@ def _deletions_from(stats_: BatchStats, labels: list[str], alpha: float, n_inst:
     ]
 
 
-def _partialled_stats(
-    cols: Array, codes: np.ndarray | None, p: int, nested: int, n_inst: int, null: float
-) -> BatchStats:
-    """Statistics of already partialled [y, x, Z] columns (no explicit partialled-out columns left)."""
-    cl = codes if codes is not None else np.arange(cols.shape[0])
-    g = int(cl.max()) + 1
-    cp, rows = cluster_crossproducts(cols, cl, g)
-    return batch_stats(
-        cp,
-        rows,
-        np.ones((1, g)),
-        n_inst=n_inst,
-        kw=0,
-        p_c=p - nested if codes is not None else p,
-        clustered=codes is not None,
-        null=null,
-    )
-
-
 def jackknife_influence(
     fd: FragilityData,
     *,
@@ -248,7 +230,7 @@ def jackknife_influence(
         method = "exact downdating of per-cluster cross-products"
     else:
         full_cols = np.column_stack([p.y, p.X, p.Z])
-        full = _partialled_stats(
+        full = partialled_stats(
             full_cols, fd.cluster_codes, p.n_partialled, p.n_partialled_nested, n_inst, null
         )
         parts = []
@@ -256,7 +238,7 @@ def jackknife_influence(
             keep = np.flatnonzero(codes != k)
             sub_codes = None if fd.cluster_codes is None else _recode(codes[keep])
             cols_k, p_k, nested_k = fd.refit_rows(keep, sub_codes)
-            parts.append(_partialled_stats(cols_k, sub_codes, p_k, nested_k, n_inst, null))
+            parts.append(partialled_stats(cols_k, sub_codes, p_k, nested_k, n_inst, null))
             tick(g)
         dels = BatchStats(
             *(np.concatenate([getattr(b, f) for b in parts]) for f in BatchStats.__dataclass_fields__)
