@@ -99,7 +99,7 @@ def batch_stats(
     zz = ta[:, 2:, 2:]
     zx = ta[:, 2:, 1]
     zy = ta[:, 2:, 0]
-    q = np.linalg.inv(zz)
+    q = np.asarray(np.linalg.inv(zz), dtype=np.float64)
     pi = np.einsum("blk,bk->bl", q, zx)
     den = np.einsum("bl,bl->b", zx, pi)
     beta = np.einsum("bl,bl->b", pi, zy) / den
