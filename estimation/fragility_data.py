@@ -78,6 +78,8 @@ def fragility_data(
 
     Rows with a missing value in a used column are dropped first (counted in ``prepared.n_dropped``).
     """
+    if not isinstance(data, pd.DataFrame):
+        raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     clus = as_names(cluster, "cluster")
     if len(clus) > 1:
         raise InvalidInputError(
@@ -91,7 +93,7 @@ def fragility_data(
     used = [outcome, *treat, *inst, *ctrl, *fe, *clus] + ([weights] if weights else [])
     missing = [c for c in used if c not in data.columns]
     if missing:
-        # prepare() names the column and suggests a spelling
+        # prepare() names the missing column and suggests a spelling
         prepare(
             data,
             outcome=outcome,
@@ -102,6 +104,7 @@ def fragility_data(
             cluster=clus,
             weights=weights,
         )
+        raise InvalidInputError(f"Column {missing[0]!r} is not in the data; check the spelling.")
     complete = data.loc[data[used].notna().all(axis=1)] if len(used) else data
     prepared = prepare(
         complete,
