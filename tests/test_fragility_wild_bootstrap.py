@@ -40,20 +40,30 @@ def few_clusters(seed: int = 3, g: int = 10, n: int = 240, fe: bool = False) -> 
 
 
 def brute_force_draws(
-    frame: pd.DataFrame, b0: float, v: np.ndarray, *, cluster: bool, absorb: tuple[str, ...] = ()
+    frame: pd.DataFrame,
+    b0: float,
+    v: np.ndarray,
+    *,
+    cluster: bool,
+    absorb: tuple[str, ...] = (),
+    weights: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Independent WRE: build each bootstrap sample explicitly and refit it (t via fit_arrays, AR via statsmodels)."""
+    """Independent WRE: build each bootstrap sample explicitly and refit it (t via fit_arrays, AR via statsmodels).
+
+    With weights the restricted and first-stage regressions are weighted least squares and the refits weighted.
+    """
     n = len(frame)
+    sw = np.ones(n) if weights is None else np.sqrt(weights)
     ones = np.ones(n)
     dummies = [pd.get_dummies(frame[a], drop_first=True).to_numpy(float) for a in absorb]
     w = np.column_stack([ones, frame.c.to_numpy(), *dummies])  # exogenous columns of the structural equation
     zfull = np.column_stack([w, frame.z.to_numpy()])
     y, x = frame.y.to_numpy(), frame.x.to_numpy()
     # restricted structural residuals: y - b0 x on the exogenous columns
-    gam = np.linalg.lstsq(w, y - b0 * x, rcond=None)[0]
+    gam = np.linalg.lstsq(w * sw[:, None], (y - b0 * x) * sw, rcond=None)[0]
     u = y - b0 * x - w @ gam
     # efficient first stage: x on all instruments and u; residuals keep the u part
-    coef = np.linalg.lstsq(np.column_stack([zfull, u]), x, rcond=None)[0]
+    coef = np.linalg.lstsq(np.column_stack([zfull, u]) * sw[:, None], x * sw, rcond=None)[0]
     pi = coef[:-1]
     vres = x - zfull @ pi
     # draw row k belongs to the k-th cluster in order of first appearance (as the module numbers them)
@@ -70,9 +80,10 @@ def brute_force_draws(
             controls=np.column_stack([frame.c.to_numpy(), *dummies]),
             clusters=(codes,) if cluster else (),
             vcov="cluster" if cluster else "robust",
+            weights=weights,
         )
         t_stats.append((beta[0] - b0) / math.sqrt(cov[0, 0]))
-        ols = sm.OLS(ys - b0 * xs, zfull).fit(
+        ols = sm.WLS(ys - b0 * xs, zfull, weights=np.ones(n) if weights is None else weights).fit(
             cov_type="cluster" if cluster else "HC1", cov_kwds={"groups": codes} if cluster else None
         )
         ar_stats.append(float(ols.params[-1] ** 2 / ols.cov_params()[-1, -1]))
@@ -157,6 +168,38 @@ def test_bootstrap_statistics_match_refits_draw_by_draw_with_nested_and_crossed_
         # exact identity: per-cluster algebra (or re-partialling) equals explicit refits, draw by draw
         np.testing.assert_allclose(engine.t_stats(a0, v) ** 2 * ratio_t, t_bf**2, rtol=1e-8)
         np.testing.assert_allclose(engine.ar_stats(a0, v) * ratio_ar, ar_bf, rtol=1e-8)
+
+
+def test_weighted_model_draws_match_weighted_refits() -> None:
+    from ivdossier.estimation.wild_bootstrap import _Engine
+
+    frame = few_clusters(seed=17)
+    frame["w"] = np.random.default_rng(1).uniform(0.3, 3.0, len(frame))
+    fd = fragility_data(
+        frame, outcome="y", treatment="x", instruments="z", controls="c", cluster="cl", weights="w"
+    )
+    engine = _Engine(fd)
+    v = all_sign_vectors(10)[:, ::41]
+    t_bf, ar_bf = brute_force_draws(frame, 0.9, v, cluster=True, weights=frame.w.to_numpy())
+    a0 = engine.at_null(0.9)
+    # exact identity: analytic weights, bootstrap errors built in the original units and refitted with weights
+    np.testing.assert_allclose(np.abs(engine.t_stats(a0, v)), t_bf, rtol=1e-8)
+    np.testing.assert_allclose(engine.ar_stats(a0, v), ar_bf, rtol=1e-8)
+
+
+def test_heteroskedastic_draws_with_crossed_fixed_effects_match_refits() -> None:
+    from ivdossier.estimation.wild_bootstrap import _Engine
+
+    frame = few_clusters(seed=19, n=60, fe=True)
+    fd = fragility_data(frame, outcome="y", treatment="x", instruments="z", controls="c", absorb="month")
+    assert fd.base is None  # rows are the resampling units, so the fixed effect is re-partialled per draw
+    engine = _Engine(fd)
+    v = bootstrap_weights("webb", 60, 12, np.random.default_rng(2))
+    t_bf, ar_bf = brute_force_draws(frame, 0.6, v, cluster=False, absorb=("month",))
+    a0 = engine.at_null(0.6)
+    # exact identity with refits (same HC1 degrees of freedom: dummies and absorbed levels count alike)
+    np.testing.assert_allclose(np.abs(engine.t_stats(a0, v)), t_bf, rtol=1e-8)
+    np.testing.assert_allclose(engine.ar_stats(a0, v), ar_bf, rtol=1e-8)
 
 
 def test_heteroskedastic_webb_draws_match_refits() -> None:
