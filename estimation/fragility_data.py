@@ -27,6 +27,10 @@ from ivdossier.estimation.absorb import is_nested, partial_out
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 
 Array = NDArray[np.float64]
+CAUTION = (
+    "These resampling and deletion checks measure how fragile the inference is; they cannot establish "
+    "exclusion or exogeneity, and conclusions for policy or clinical decisions need domain review."
+)
 
 
 @dataclass(frozen=True, eq=False)

@@ -32,7 +32,7 @@ from ivdossier.estimation.cluster_crossproducts import (
     partialled_stats,
     t_p_values,
 )
-from ivdossier.estimation.fragility_data import FragilityData
+from ivdossier.estimation.fragility_data import CAUTION, FragilityData
 from ivdossier.jsonsafe import json_safe
 
 Array = NDArray[np.float64]
@@ -111,6 +111,7 @@ class InfluenceResult:
             "jackknife_variance": json_safe(self.jackknife_variance),
             "jackknife_se": json_safe(self.jackknife_se),
             "most_influential": list(self.most_influential),
+            "caution": CAUTION,
             "method": self.method,
             "deletions": [d.to_dict() for d in self.deletions],
         }

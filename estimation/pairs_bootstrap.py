@@ -31,7 +31,7 @@ from ivdossier.estimation.cluster_crossproducts import (
     cluster_crossproducts,
     partialled_stats,
 )
-from ivdossier.estimation.fragility_data import FragilityData
+from ivdossier.estimation.fragility_data import CAUTION, FragilityData
 from ivdossier.jsonsafe import json_safe
 
 Array = NDArray[np.float64]
@@ -84,6 +84,7 @@ class PairsBootstrapResult:
             "draw_f_percentiles_5_50_95": None
             if self.f_percentiles is None
             else json_safe(list(self.f_percentiles)),
+            "caution": CAUTION,
             "computation": self.method,
             "source": "Lal, Lockhart, Xu and Zu (2024), How Much Should We Trust Instrumental Variable "
             "Estimates in Political Science?, Political Analysis",

@@ -33,6 +33,7 @@ from scipy import integrate, optimize, stats
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.covariance import CovSpec, sandwich
+from ivdossier.estimation.fragility_data import CAUTION
 from ivdossier.estimation.robust_inference import Interval, angle_grid, classify_set, invert_on_circle
 from ivdossier.estimation.strength import as_matrix, denominator_df, ols
 from ivdossier.jsonsafe import json_safe
@@ -117,6 +118,7 @@ class SubvectorAR:
             "conditional_p_value": json_safe(self.conditional_p_value),
             "conditional_confidence_set": sets(self.conditional_intervals),
             "conditional_reason": self.conditional_reason,
+            "caution": CAUTION,
             "sources": list(SOURCES),
         }
 

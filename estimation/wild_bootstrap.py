@@ -33,7 +33,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.fragility_data import FragilityData
+from ivdossier.estimation.fragility_data import CAUTION, FragilityData
 from ivdossier.estimation.robust_inference import Interval, classify_set
 from ivdossier.jsonsafe import json_safe
 
@@ -443,6 +443,7 @@ class WildBootstrapResult:
             "partialling": self.partialling,
             "p_value_rule": "share of draws with a statistic at least as large as the sample's "
             "(|t| for the t test); ties within a relative 1e-9 count as at least as large",
+            "caution": CAUTION,
             "source": SOURCE,
         }
 
