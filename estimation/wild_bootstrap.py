@@ -43,6 +43,7 @@ WEIGHT_TYPES: tuple[str, ...] = ("rademacher", "webb")
 WEBB_VALUES = np.array([-math.sqrt(1.5), -1.0, -math.sqrt(0.5), math.sqrt(0.5), 1.0, math.sqrt(1.5)])
 SOURCE = "Davidson and MacKinnon (2010), Wild Bootstrap Tests for IV Regression, JBES 28:128-144"
 TIE_RTOL = 1e-9
+T_TABLE_MAX_GROUPS = 100_000  # the b0-free sums hold about 30 numbers per cluster
 CHUNK_ELEMENTS = 1 << 18  # about 2 MB per temporary, so blocks stay in cache
 
 
@@ -551,7 +552,9 @@ class WildBootstrapResult:
 
 
 def _p_value(boot: Array, stat: float) -> float:
-    ok = np.isfinite(boot)
+    ok = ~np.isnan(
+        boot
+    )  # an infinite bootstrap statistic is as extreme as can be; an undefined one is dropped
     return float(np.mean(boot[ok] >= stat * (1 - TIE_RTOL))) if ok.any() else math.nan
 
 
@@ -620,7 +623,7 @@ def wild_bootstrap(
         ar_table = _ArTable(dy, dx, myy, myx, mxx, engine.s.q, engine.f_ar)
 
     t_table: _TTable | None = None
-    if confidence_sets and "t" in tests and engine.fast and engine.n_inst == 1:
+    if confidence_sets and "t" in tests and engine.fast and engine.n_inst == 1 and g <= T_TABLE_MAX_GROUPS:
         # inverting the t test evaluates many nulls: precompute b0-free sums once (one pass over the draws)
         engine.prepare_t_table()
         rows = [engine.t_parts(np.ones((g, 1)))]
