@@ -18,8 +18,12 @@ O(G L) after one pass over the data. When absorbed fixed effects are not nested 
 errors are partialled again draw by draw (exact, O(n) per draw).
 
 The Anderson–Rubin bootstrap is a restricted wild bootstrap of the OLS regression of y - b0 x on the
-instruments and controls (it needs no first stage). Confidence sets invert each test over b0 with the same
-draws: a grid around the 2SLS estimate, widened while its ends are accepted, and bisection at every change.
+instruments and controls (it needs no first stage); its statistic is, draw by draw, a ratio of quadratics in
+b0, so after one pass over the draws any b0 costs O(draws). With one instrument the t statistic likewise
+becomes a function of b0 and a few b0-free sums per draw. Confidence sets invert each test over b0 with the
+same draws: a grid around the 2SLS estimate, widened while its ends are accepted, and safeguarded regula falsi
+at every change of decision. Residuals are not rescaled; the statistics use the same small-sample factors as
+the analytic ones (covariance.py), which do not change bootstrap p-values.
 """
 
 from __future__ import annotations
