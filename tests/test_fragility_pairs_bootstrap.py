@@ -97,3 +97,19 @@ def test_summary_states_draws_and_seed_and_options_are_checked() -> None:
     assert res.to_dict()["resampled"] == "clusters"
     with pytest.raises(InvalidInputError, match="draws must be at least 2"):
         pairs_bootstrap(fd, draws=1)
+
+
+def test_fixed_effects_nested_in_the_clusters_use_cross_products_and_match_refits() -> None:
+    frame = districts(seed=12)
+    frame["ward"] = frame.d * 2 + (frame.index % 2)  # nested in the districts
+    fd = fragility_data(frame, outcome="y", treatment="x", instruments="z", absorb="ward", cluster="d")
+    res = pairs_bootstrap(fd, draws=8, seed=2)
+    assert res.method == "reweighted per-cluster cross-products" and res.estimates is not None
+    counts = _counts(np.random.default_rng(2), 8, 9)
+    labels = [int(v) for v in fd.cluster_labels]
+    est = [
+        refit_resample(frame, [labels[k] for k in range(9) for _ in range(int(row[k]))], absorb="ward")[0]
+        for row in counts
+    ]
+    # exact identity: duplicated clusters keep their within-ward demeaning, so reweighting equals refitting
+    np.testing.assert_allclose(res.estimates, est, rtol=1e-9)
