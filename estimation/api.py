@@ -16,10 +16,11 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
-from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
-from ivdossier.estimation.data import PreparedData, as_names, prepare
-from ivdossier.estimation.estimators import METHODS, KClassFit, fit_kclass
+from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
+from ivdossier.estimation.data import PreparedData, prepare
+from ivdossier.estimation.estimators import KClassFit, fit_kclass
 from ivdossier.estimation.result import EstimationResult
+from ivdossier.estimation.spec import ModelSpec, check_options
 
 Array = NDArray[np.float64]
 
@@ -60,25 +61,6 @@ def conventions(vcov: str, small_sample: bool) -> dict[str, str]:
     return out
 
 
-def _check_options(
-    method: str, vcov: str, cluster: tuple[str, ...], alpha: float, fuller_alpha: float
-) -> None:
-    if method not in METHODS:
-        raise InvalidInputError(f"Unknown method {method!r}; choose one of {', '.join(METHODS)}.")
-    if vcov not in COV_KINDS:
-        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
-    if vcov == "cluster" and not cluster:
-        raise InvalidInputError("vcov='cluster' needs cluster= (one or two column names); pass cluster=.")
-    if cluster and vcov != "cluster":
-        raise InvalidInputError(
-            f"cluster= was given with vcov={vcov!r}; use vcov='cluster' to cluster, or drop cluster=."
-        )
-    if not 0.0 < alpha < 1.0:
-        raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
-    if not fuller_alpha >= 0.0:
-        raise InvalidInputError(f"fuller_alpha must be non-negative, got {fuller_alpha!r}.")
-
-
 def estimate(
     data: pd.DataFrame,
     *,
@@ -99,29 +81,51 @@ def estimate(
 
     ``method`` is one of "ols", "2sls", "liml", "fuller"; ``vcov`` one of "unadjusted", "robust", "cluster"
     (the last needs ``cluster``, one or two column names). Conventions are listed in ``result.conventions``.
+    The keywords build one :class:`~ivdossier.estimation.spec.ModelSpec`, validated as on every other path.
     """
-    clus = as_names(cluster, "cluster")
-    _check_options(method, vcov, clus, alpha, fuller_alpha)
-    inst = as_names(instruments, "instruments")
-    if method == "ols" and inst:
-        raise InvalidInputError(
-            "method='ols' takes no instruments; drop instruments= or choose '2sls', 'liml' or 'fuller'."
-        )
-    if method != "ols" and not inst:
-        raise InvalidInputError(f"method={method!r} needs instruments=; name at least one instrument column.")
-    prepared = prepare(
-        data,
+    spec = ModelSpec.build(
         outcome=outcome,
         treatment=treatment,
-        instruments=inst,
+        instruments=instruments,
         controls=controls,
         absorb=absorb,
-        cluster=clus,
+        cluster=cluster,
         weights=weights,
-        require_instruments=method != "ols",
+        method=method,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+        fuller_alpha=fuller_alpha,
     )
+    return estimate_spec(data, spec)
+
+
+def prepare_spec(data: pd.DataFrame, spec: ModelSpec) -> PreparedData:
+    """Check the spec's columns in the data and partial out its controls and fixed effects."""
+    if spec.outcome is None:
+        raise InvalidInputError("an estimate needs outcome=; name the outcome column.")
+    return prepare(
+        data,
+        outcome=spec.outcome,
+        treatment=spec.treatment,
+        instruments=spec.instruments,
+        controls=spec.controls,
+        absorb=spec.absorb,
+        cluster=spec.cluster,
+        weights=spec.weights,
+        require_instruments=spec.method != "ols",
+    )
+
+
+def estimate_spec(data: pd.DataFrame, spec: ModelSpec) -> EstimationResult:
+    """Estimate a validated model spec on a data frame, with every diagnostic that applies."""
     return estimate_prepared(
-        prepared, method=method, vcov=vcov, small_sample=small_sample, alpha=alpha, fuller_alpha=fuller_alpha
+        prepare_spec(data, spec),
+        method=spec.method,
+        vcov=spec.vcov,
+        small_sample=spec.small_sample,
+        alpha=spec.alpha,
+        fuller_alpha=spec.fuller_alpha,
     )
 
 
@@ -145,7 +149,7 @@ def estimate_prepared(
     diagnostics: bool = True,
 ) -> EstimationResult:
     """Estimate from validated, partialled data; ``diagnostics=False`` skips the weak-instrument suite."""
-    _check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
+    check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
     spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
     fit = fit_kclass(
         prepared.y,

@@ -348,12 +348,12 @@ def _prior_studies(registry: Any) -> int:
 
 
 def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
+    from ivdossier.estimation.spec import ModelSpec
     from ivdossier.workflows.runs import estimate_file, store_run
 
     slugs = []
     for instrument, used, method in RUNS:
-        run = estimate_file(
-            csv_path,
+        spec = ModelSpec.build(
             outcome="ed_visits",
             treatment="telehealth",
             instruments=used,
@@ -362,6 +362,7 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
             method=method,
             vcov="cluster",
         )
+        run = estimate_file(csv_path, spec)
         with registry.writing() as s:
             slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
     return slugs

@@ -4,13 +4,16 @@ from __future__ import annotations
 
 import platform
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from ivdossier import __version__
+
+if TYPE_CHECKING:
+    from ivdossier.estimation.spec import ModelSpec
 
 VERSIONED_PACKAGES = ("numpy", "scipy", "pandas", "statsmodels", "sqlmodel", "networkx", "matplotlib")
 
@@ -64,40 +67,23 @@ def analyse_file(
     )
 
 
-def estimate_file(
-    path: Path | str,
-    *,
-    outcome: str,
-    treatment: str | Sequence[str],
-    instruments: Sequence[str] = (),
-    controls: Sequence[str] = (),
-    absorb: Sequence[str] = (),
-    cluster: str | Sequence[str] | None = None,
-    weights: str | None = None,
-    method: str = "2sls",
-    vcov: str = "robust",
-    alpha: float = 0.05,
-) -> FileRun:
-    """Estimate with every diagnostic and summarise what the dossier plots."""
-    from ivdossier.estimation.api import estimate_prepared
-    from ivdossier.estimation.data import as_names, prepare
+def estimate_file(path: Path | str, spec: ModelSpec) -> FileRun:
+    """Estimate a validated model spec on a data file with every diagnostic; summarise what the dossier plots."""
+    from ivdossier.estimation.api import estimate_prepared, prepare_spec
     from ivdossier.estimation.plot_data import ar_curve, first_stage_bins
 
     def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        prepared = prepare(
-            frame,
-            outcome=outcome,
-            treatment=treatment,
-            instruments=tuple(instruments),
-            controls=tuple(controls),
-            absorb=tuple(absorb),
-            cluster=as_names(cluster, "cluster"),
-            weights=weights,
-            require_instruments=method != "ols",
+        prepared = prepare_spec(frame, spec)
+        result = estimate_prepared(
+            prepared,
+            method=spec.method,
+            vcov=spec.vcov,
+            small_sample=spec.small_sample,
+            alpha=spec.alpha,
+            fuller_alpha=spec.fuller_alpha,
         )
-        result = estimate_prepared(prepared, method=method, vcov=vcov, alpha=alpha)
         plots: dict[str, Any] = {}
-        if method != "ols":
+        if spec.method != "ols":
             plots = {"first_stage_bins": first_stage_bins(prepared), "ar_curve": ar_curve(prepared, result)}
         return result, {"plot_data": plots}
 
