@@ -18,9 +18,11 @@ from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
 from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
 from ivdossier.estimation.data import PreparedData, prepare
+from ivdossier.estimation.diagnostics import DiagnosticSuite, weak_iv_suite
 from ivdossier.estimation.estimators import KClassFit, fit_kclass
 from ivdossier.estimation.result import EstimationResult
 from ivdossier.estimation.spec import ModelSpec, check_options
+from ivdossier.vocabulary import NotApplicable
 
 Array = NDArray[np.float64]
 
@@ -166,11 +168,8 @@ def estimate_prepared(
     n_clusters = spec.n_clusters()
     q, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, n_clusters, alpha)
     ci = np.column_stack([fit.beta - q * se, fit.beta + q * se])
-    suite = None
-    not_applicable = OLS_REASON if method == "ols" else None
+    suite: DiagnosticSuite | NotApplicable | None = NotApplicable(OLS_REASON) if method == "ols" else None
     if diagnostics and method != "ols":
-        from ivdossier.estimation.diagnostics import weak_iv_suite
-
         try:
             suite = weak_iv_suite(
                 prepared.y,
@@ -188,7 +187,7 @@ def estimate_prepared(
             )
         except EstimationError as exc:
             # e.g. no more clusters than instruments: the coefficients stand, the diagnostics cannot be had
-            not_applicable = f"instrument diagnostics not computed: {exc}"
+            suite = NotApplicable(f"instrument diagnostics not computed: {exc}")
     echo = {
         "outcome": prepared.outcome,
         "treatment": list(prepared.treatment),
@@ -229,7 +228,6 @@ def estimate_prepared(
         spec=echo,
         conventions=conventions(vcov, small_sample),
         diagnostics=suite,
-        not_applicable=not_applicable,
     )
 
 

@@ -69,25 +69,11 @@ def analyse_file(
 
 def estimate_file(path: Path | str, spec: ModelSpec) -> FileRun:
     """Estimate a validated model spec on a data file with every diagnostic; summarise what the dossier plots."""
-    from ivdossier.estimation.api import estimate_prepared, prepare_spec
-    from ivdossier.estimation.plot_data import ar_curve, first_stage_bins
+    from ivdossier.workflows.analyses import analysis
 
-    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        prepared = prepare_spec(frame, spec)
-        result = estimate_prepared(
-            prepared,
-            method=spec.method,
-            vcov=spec.vcov,
-            small_sample=spec.small_sample,
-            alpha=spec.alpha,
-            fuller_alpha=spec.fuller_alpha,
-        )
-        plots: dict[str, Any] = {}
-        if spec.method != "ols":
-            plots = {"first_stage_bins": first_stage_bins(prepared), "ar_curve": ar_curve(prepared, result)}
-        return result, {"plot_data": plots}
-
-    run = analyse_file("estimate", path, compute, {})
+    compute = analysis("estimate").compute
+    assert compute is not None
+    run = analyse_file("estimate", path, lambda frame: compute(frame, spec, {}), {})
     return FileRun(**{**run.__dict__, "spec": {"data": str(path), **run.result.spec}})
 
 
@@ -102,6 +88,7 @@ def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any
             session, actor=actor, path=run.path, sha256=run.sha256, rows=run.rows, columns=run.columns
         )
     results = json_safe({**run.result.to_dict(), **run.extra})
+    results[RECORD_KEY] = run.result.to_record()
     return record_run(
         session,
         actor=actor,
@@ -113,3 +100,40 @@ def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any
         seconds=run.seconds,
         dataset=dataset,
     )
+
+
+RECORD_KEY = "record"
+"""Key of a stored run's results under which the typed record sits (beside the JSON view that plan rules read)."""
+
+LEGACY_NOTE = (
+    "stored by ivdossier 0.1 before runs kept a typed record; its numbers are shown as stored, and rerunning "
+    "the analysis lets the dossier summarise it"
+)
+
+
+@dataclass(frozen=True)
+class LegacyResult:
+    """A run stored by the first release (no typed record): its results as stored, with a note that says so."""
+
+    run_kind: str
+    raw: Mapping[str, Any]
+    note: str = LEGACY_NOTE
+
+
+def load_result(run_kind: str, results: Mapping[str, Any]) -> Any:
+    """The typed result of a stored run, or a LegacyResult for runs stored before typed records existed."""
+    from ivdossier.errors import InvalidInputError
+    from ivdossier.jsonsafe import load_record
+    from ivdossier.workflows.analyses import ANALYSES
+
+    record = results.get(RECORD_KEY) if isinstance(results, Mapping) else None
+    if record is None:
+        return LegacyResult(run_kind, dict(results or {}))
+    expected = {a.result_class for a in ANALYSES.values() if not run_kind or a.run_kind == run_kind}
+    result = load_record(record)  # the classes above are imported, so every stored type is known
+    if expected and type(result) not in expected:
+        names = ", ".join(sorted(c.__name__ for c in expected))
+        raise InvalidInputError(
+            f"a {run_kind!r} run holds a {type(result).__name__}; expected one of {names}."
+        )
+    return result
