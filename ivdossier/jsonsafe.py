@@ -51,6 +51,9 @@ def json_safe(value: Any) -> Any:
 # several record classes (or Any) carries the class name under "@type". Unknown keys are ignored on reading
 # (so a stored form may carry extra, derived keys) and fields missing from old records take their defaults.
 
+RECORD_KEY = "record"
+"""Key of a stored run's results under which its typed record sits, beside the JSON view that plan rules read."""
+
 TYPE_TAG = "@type"
 ARRAY_TAG = "@ndarray"
 FLOAT_TAG = "@float"

@@ -77,6 +77,16 @@ def estimate_file(path: Path | str, spec: ModelSpec) -> FileRun:
     return FileRun(**{**run.__dict__, "spec": {"data": str(path), **run.result.spec}})
 
 
+def stored_results(result: Any, extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """What a run stores as its results: the JSON view (what plan rules and ``--json`` read), what is kept
+    beside it (plot summaries), and the typed record under ``record`` that reads back as the result object."""
+    from ivdossier.jsonsafe import RECORD_KEY, json_safe
+
+    out: dict[str, Any] = json_safe({**result.to_dict(), **(extra or {})})
+    out[RECORD_KEY] = result.to_record()
+    return out
+
+
 def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any:
     """Record the dataset (by SHA-256) and the run, attached to an instrument, in the caller's transaction."""
     from ivdossier.jsonsafe import json_safe
@@ -87,8 +97,7 @@ def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any
         dataset = register_dataset(
             session, actor=actor, path=run.path, sha256=run.sha256, rows=run.rows, columns=run.columns
         )
-    results = json_safe({**run.result.to_dict(), **run.extra})
-    results[RECORD_KEY] = run.result.to_record()
+    results = stored_results(run.result, run.extra)
     return record_run(
         session,
         actor=actor,
@@ -101,9 +110,6 @@ def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any
         dataset=dataset,
     )
 
-
-RECORD_KEY = "record"
-"""Key of a stored run's results under which the typed record sits (beside the JSON view that plan rules read)."""
 
 LEGACY_NOTE = (
     "stored by ivdossier 0.1 before runs kept a typed record; its numbers are shown as stored, and rerunning "
@@ -123,7 +129,7 @@ class LegacyResult:
 def load_result(run_kind: str, results: Mapping[str, Any]) -> Any:
     """The typed result of a stored run, or a LegacyResult for runs stored before typed records existed."""
     from ivdossier.errors import InvalidInputError
-    from ivdossier.jsonsafe import load_record
+    from ivdossier.jsonsafe import RECORD_KEY, load_record
     from ivdossier.workflows.analyses import ANALYSES
 
     record = results.get(RECORD_KEY) if isinstance(results, Mapping) else None
