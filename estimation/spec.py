@@ -7,8 +7,9 @@ in all of them with the same message.
 
 from __future__ import annotations
 
+import dataclasses
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -95,6 +96,13 @@ class ModelSpec:
             small_sample=small_sample,
             fuller_alpha=fuller_alpha,
         )
+
+    @classmethod
+    def from_echo(cls, stored: Mapping[str, Any]) -> ModelSpec:
+        """Rebuild (and so validate) a spec from its stored form (:meth:`echo`, a run's or a plan's spec);
+        keys other than the spec's fields (the data path, an analysis's own options) are ignored."""
+        names = {f.name for f in dataclasses.fields(cls)}
+        return cls.build(**{k: v for k, v in stored.items() if k in names and v is not None})
 
     def adjustment(self) -> dict[str, Any]:
         """Controls, fixed effects, clusters, weights, covariance and level as keyword arguments."""

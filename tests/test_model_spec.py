@@ -118,3 +118,15 @@ def test_control_accepts_a_comma_separated_list(cli, frame: pd.DataFrame, data_f
     # the same model as the Python call (exact identity of code paths; printed JSON keeps full float precision)
     assert listed["coef"]["x"] == pytest.approx(reference.coef_of("x"), rel=1e-12)
     assert listed["coef"] == repeated["coef"]
+
+
+def test_a_stored_spec_rebuilds_into_the_same_validated_spec(frame: pd.DataFrame) -> None:
+    from ivdossier.estimation.api import estimate_spec
+
+    spec = ModelSpec.build(
+        outcome="y", treatment="x", instruments=["z"], controls=["w1"], cluster="g", vcov="cluster"
+    )
+    result = estimate_spec(frame, spec)
+    assert ModelSpec.from_echo({"data": "d.csv", **result.spec}) == spec  # the run's stored spec is the spec
+    with pytest.raises(InvalidInputError, match="method='ols' takes no instruments"):
+        ModelSpec.from_echo({**result.spec, "method": "ols"})  # a plan naming OLS with instruments is refused
