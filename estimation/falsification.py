@@ -33,9 +33,10 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import estimate_prepared
-from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
+from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
+from ivdossier.estimation.spec import check_options
 from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
@@ -172,17 +173,9 @@ class _Stacked:
 
 
 def _check_common(vcov: str, alpha: float, cluster: str | Sequence[str] | None) -> tuple[str, ...]:
-    if vcov not in COV_KINDS:
-        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
+    """The shared option checks of every model spec (estimation/spec.py), for the falsification functions."""
     clus = as_names(cluster, "cluster")
-    if vcov == "cluster" and not clus:
-        raise InvalidInputError("vcov='cluster' needs cluster= (one or two column names); pass cluster=.")
-    if clus and vcov != "cluster":
-        raise InvalidInputError(
-            f"cluster= was given with vcov={vcov!r}; use vcov='cluster' or drop cluster=."
-        )
-    if not 0.0 < alpha < 1.0:
-        raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
+    check_options("2sls", vcov, clus, alpha, 1.0)
     return clus
 
 

@@ -130,3 +130,16 @@ def test_a_stored_spec_rebuilds_into_the_same_validated_spec(frame: pd.DataFrame
     assert ModelSpec.from_echo({"data": "d.csv", **result.spec}) == spec  # the run's stored spec is the spec
     with pytest.raises(InvalidInputError, match="method='ols' takes no instruments"):
         ModelSpec.from_echo({**result.spec, "method": "ols"})  # a plan naming OLS with instruments is refused
+
+
+def test_evidence_functions_and_commands_share_the_spec_checks(  # type: ignore[no-untyped-def]
+    cli, frame: pd.DataFrame, data_file: Path
+) -> None:
+    from ivdossier.estimation.falsification import balance
+
+    with pytest.raises(InvalidInputError, match="cluster= was given with vcov='robust'") as python_error:
+        balance(frame, instruments="z", covariates=["w1"], cluster="g")
+    code, _out, err = cli("falsify", "balance", "--data", str(data_file), "--instrument", "z",
+                          "--covariate", "w1", "--cluster", "g")  # fmt: skip
+    assert code != 0
+    assert str(python_error.value) in " ".join(err.split())  # one message for one mistake, on every path
