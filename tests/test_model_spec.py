@@ -143,3 +143,13 @@ def test_evidence_functions_and_commands_share_the_spec_checks(  # type: ignore[
                           "--covariate", "w1", "--cluster", "g")  # fmt: skip
     assert code != 0
     assert str(python_error.value) in " ".join(err.split())  # one message for one mistake, on every path
+
+
+def test_estimate_file_takes_a_spec_or_the_same_keywords(data_file: Path) -> None:
+    from ivdossier.workflows.runs import estimate_file
+
+    by_spec = estimate_file(data_file, ModelSpec.build(outcome="y", treatment="x", instruments="z"))
+    by_keywords = estimate_file(data_file, outcome="y", treatment="x", instruments="z")
+    assert np.array_equal(by_spec.result.coef, by_keywords.result.coef)  # exact identity: one code path
+    with pytest.raises(InvalidInputError, match="method='ols' takes no instruments"):
+        estimate_file(data_file, outcome="y", treatment="x", instruments="z", method="ols")

@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from ivdossier import __version__
+from ivdossier.errors import InvalidInputError
 
 if TYPE_CHECKING:
     from ivdossier.estimation.spec import ModelSpec
@@ -67,9 +68,18 @@ def analyse_file(
     )
 
 
-def estimate_file(path: Path | str, spec: ModelSpec) -> FileRun:
-    """Estimate a validated model spec on a data file with every diagnostic; summarise what the dossier plots."""
+def estimate_file(path: Path | str, spec: ModelSpec | None = None, **keywords: Any) -> FileRun:
+    """Estimate a validated model spec on a data file with every diagnostic; summarise what the dossier plots.
+
+    Without ``spec`` the keywords of :func:`~ivdossier.estimation.estimate` build one (the same checks).
+    """
+    from ivdossier.estimation.spec import ModelSpec
     from ivdossier.workflows.analyses import analysis
+
+    if spec is None:
+        spec = ModelSpec.build(**keywords)
+    elif keywords:
+        raise InvalidInputError(f"give a spec or keywords, not both (got {', '.join(sorted(keywords))}).")
 
     compute = analysis("estimate").compute
     assert compute is not None
@@ -128,7 +138,6 @@ class LegacyResult:
 
 def load_result(run_kind: str, results: Mapping[str, Any]) -> Any:
     """The typed result of a stored run, or a LegacyResult for runs stored before typed records existed."""
-    from ivdossier.errors import InvalidInputError
     from ivdossier.jsonsafe import RECORD_KEY, load_record
     from ivdossier.workflows.analyses import ANALYSES
 
