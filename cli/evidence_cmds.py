@@ -1,16 +1,33 @@
-"""Evidence beyond the first stage: `sensitivity`, `falsify`, `compliers` and `power`, each with --json/--attach."""
+"""Evidence beyond the first stage: `sensitivity`, `falsify`, `compliers` and `power`, each with --json/--attach.
+
+Each command builds the model spec from the shared options (cli/model_options.py), runs one entry of the table
+of analyses (workflows/analyses.py) and prints the findings that entry gives for its catalogue checks.
+"""
 
 from __future__ import annotations
 
-from pathlib import Path
 from typing import Annotated, Any
 
 import typer
 
 from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, writing
+from ivdossier.cli.model_options import (
+    Absorb,
+    Alpha,
+    Attach,
+    Cluster,
+    Controls,
+    Data,
+    Instruments,
+    Outcome,
+    PlotOut,
+    Treatment,
+    Vcov,
+    Weights,
+    model_spec,
+)
 from ivdossier.cli.output import print_json, print_record, print_table
-from ivdossier.errors import InvalidInputError
 
 sensitivity_app = typer.Typer(
     help="How large a direct effect of the instrument on the outcome would change the conclusion.",
@@ -26,37 +43,20 @@ def register(app: typer.Typer) -> None:
     app.command("power", rich_help_panel=panels.EVIDENCE)(power)
 
 
-Data = Annotated[Path, typer.Option("--data", help="CSV, Parquet or Stata .dta file.")]
-Outcome = Annotated[str, typer.Option(help="Outcome column Y.")]
-Treatment = Annotated[str, typer.Option(help="Treatment column X.")]
-Instruments = Annotated[list[str], typer.Option("--instrument", help="Instrument column(s) Z (repeatable).")]
-Controls = Annotated[list[str] | None, typer.Option("--control", help="Control column(s) (repeatable).")]
-Absorb = Annotated[list[str] | None, typer.Option("--absorb", help="Fixed effect(s) to absorb (repeatable).")]
-Cluster = Annotated[list[str] | None, typer.Option("--cluster", help="Cluster column(s), one or two.")]
-Weights = Annotated[str | None, typer.Option(help="Column of analytic weights.")]
-Vcov = Annotated[str, typer.Option(help="unadjusted, robust or cluster.")]
-Alpha = Annotated[float, typer.Option(help="1 - confidence level.")]
-Attach = Annotated[str | None, typer.Option(help="Store the result as a run of this instrument.")]
-PlotOut = Annotated[Path | None, typer.Option("--plot", help="Also write the plot to this .svg file.")]
+def _run(name: str, data: Any, spec: Any, **options: Any) -> Any:
+    from ivdossier.workflows.analyses import run_analysis
+
+    return run_analysis(name, data, spec, **options)
 
 
-def _spec(controls: Any, absorb: Any, cluster: Any, weights: Any, vcov: str, alpha: float) -> dict[str, Any]:
-    return {
-        "controls": list(controls or []),
-        "absorb": list(absorb or []),
-        "cluster": list(cluster or []) or None,
-        "weights": weights,
-        "vcov": vcov,
-        "alpha": alpha,
-    }
-
-
-def _finish(run: Any, *, attach: str | None, json_out: bool, checks: tuple[str, ...]) -> None:
-    """Store the run if asked, then print JSON or the one-line findings for the checks it speaks to."""
+def _finish(run: Any, name: str, *, attach: str | None, json_out: bool) -> None:
+    """Store the run if asked, then print JSON or the one-line findings of the analysis's catalogue checks."""
     from ivdossier.jsonsafe import json_safe
-    from ivdossier.workflows.findings import finding
+    from ivdossier.workflows.analyses import analysis
+    from ivdossier.workflows.findings import finding_of
     from ivdossier.workflows.runs import store_run
 
+    entry = analysis(name)
     slug = None
     if attach:
         with writing() as session:
@@ -65,9 +65,9 @@ def _finish(run: Any, *, attach: str | None, json_out: bool, checks: tuple[str, 
     if json_out:
         print_json({**data, "run": slug} if slug else data)
         return
-    for check in checks:
-        typer.echo(f"{check}: {finding(check, data)}")
-    caution = data.get("caution") or data.get("note")
+    for check in entry.checks:
+        typer.echo(f"{check}: {finding_of(check, run.result, entry.run_kind)}")
+    caution = getattr(run.result, "caution", None) or getattr(run.result, "note", None)
     if caution:
         typer.echo(f"note: {caution}")
     if slug:
@@ -100,30 +100,16 @@ def sensitivity_range(
     json_out: JsonFlag = False,
 ) -> None:
     """Union of 2SLS intervals over a range of direct effects (Conley, Hansen and Rossi 2012)."""
-    from ivdossier.estimation.sensitivity import plot_sensitivity_svg, union_of_intervals
-    from ivdossier.workflows.runs import analyse_file
+    from ivdossier.estimation.sensitivity import plot_sensitivity_svg
 
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "gamma_min": gamma_min,
-        "gamma_max": gamma_max,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-
-    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        kw = {k: v for k, v in spec.items() if k not in ("gamma_min", "gamma_max")}
-        return union_of_intervals(frame, gamma_min=_one(gamma_min), gamma_max=_one(gamma_max), **kw), {}
-
-    run = analyse_file("sensitivity", data, compute, spec)
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("sensitivity range", data, spec, gamma_min=gamma_min, gamma_max=gamma_max)
     if plot is not None:
         plot.write_text(plot_sensitivity_svg(run.result), encoding="utf-8")
-    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
-
-
-def _one(values: list[float]) -> float | list[float]:
-    return values[0] if len(values) == 1 else values
+    _finish(run, "sensitivity range", attach=attach, json_out=json_out)
 
 
 @sensitivity_app.command("prior")
@@ -146,29 +132,12 @@ def sensitivity_prior(
     json_out: JsonFlag = False,
 ) -> None:
     """Local-to-zero interval with a normal prior on the direct effect (independent across instruments)."""
-    from ivdossier.estimation.sensitivity import local_to_zero
-    from ivdossier.workflows.runs import analyse_file
-
-    if len(prior_mean) != len(instrument) or len(prior_sd) != len(instrument):
-        raise InvalidInputError(
-            "give one --prior-mean and one --prior-sd per --instrument, in the same order."
-        )
-    omega = [[(sd**2 if i == j else 0.0) for j, sd in enumerate(prior_sd)] for i in range(len(prior_sd))]
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "prior_mean": prior_mean,
-        "prior_sd": prior_sd,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-
-    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        kw = {k: v for k, v in spec.items() if k not in ("prior_mean", "prior_sd")}
-        return local_to_zero(frame, mu=prior_mean, omega=omega, **kw), {}
-
-    run = analyse_file("sensitivity", data, compute, spec)
-    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("sensitivity prior", data, spec, prior_mean=prior_mean, prior_sd=prior_sd)
+    _finish(run, "sensitivity prior", attach=attach, json_out=json_out)
 
 
 @sensitivity_app.command("breakdown")
@@ -190,18 +159,12 @@ def sensitivity_breakdown(
     json_out: JsonFlag = False,
 ) -> None:
     """The smallest direct effect at which the interval first reaches the target effect."""
-    from ivdossier.estimation.sensitivity import breakdown_value
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "target": target,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file("sensitivity", data, lambda frame: (breakdown_value(frame, **spec), {}), spec)
-    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("sensitivity breakdown", data, spec, target=target)
+    _finish(run, "sensitivity breakdown", attach=attach, json_out=json_out)
 
 
 # ---------------------------------------------------------------- falsification
@@ -222,17 +185,13 @@ def falsify_balance(
     json_out: JsonFlag = False,
 ) -> None:
     """Balance of the instrument on predetermined covariates: per covariate and jointly."""
-    from ivdossier.estimation.falsification import balance
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "instruments": list(instrument),
-        "covariates": list(covariate),
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file("falsify-balance", data, lambda frame: (balance(frame, **spec), {}), spec)
+    spec = model_spec(
+        instrument=instrument, control=control, absorb=absorb, cluster=cluster, weights=weights, vcov=vcov,
+        alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify balance", data, spec, covariates=list(covariate))
     _table_of_targets(run, json_out)
-    _finish(run, attach=attach, json_out=json_out, checks=("covariate-balance",))
+    _finish(run, "falsify balance", attach=attach, json_out=json_out)
 
 
 @falsify_app.command("placebo")
@@ -250,17 +209,13 @@ def falsify_placebo(
     json_out: JsonFlag = False,
 ) -> None:
     """Reduced form of placebo outcomes on the instrument(s); each should be null."""
-    from ivdossier.estimation.falsification import placebo_outcomes
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "instruments": list(instrument),
-        "outcomes": list(placebo_outcome),
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file("falsify-placebo", data, lambda frame: (placebo_outcomes(frame, **spec), {}), spec)
+    spec = model_spec(
+        instrument=instrument, control=control, absorb=absorb, cluster=cluster, weights=weights, vcov=vcov,
+        alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify placebo", data, spec, outcomes=list(placebo_outcome))
     _table_of_targets(run, json_out)
-    _finish(run, attach=attach, json_out=json_out, checks=("placebo-outcome",))
+    _finish(run, "falsify placebo", attach=attach, json_out=json_out)
 
 
 def _table_of_targets(run: Any, json_out: bool) -> None:
@@ -299,21 +254,12 @@ def falsify_zero_first_stage(
     json_out: JsonFlag = False,
 ) -> None:
     """Reduced form where the instrument cannot move the treatment; an effect there points to another path."""
-    from ivdossier.estimation.falsification import zero_first_stage
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "query": where,
-        "subsample": subsample,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file(
-        "falsify-zero-first-stage", data, lambda frame: (zero_first_stage(frame, **spec), {}), spec
-    )
-    _finish(run, attach=attach, json_out=json_out, checks=("zero-first-stage-reduced-form",))
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify zero-first-stage", data, spec, query=where, subsample=subsample)
+    _finish(run, "falsify zero-first-stage", attach=attach, json_out=json_out)
 
 
 @falsify_app.command("per-instrument")
@@ -332,19 +278,12 @@ def falsify_per_instrument(
     json_out: JsonFlag = False,
 ) -> None:
     """Each instrument's own just-identified estimate beside the estimate using all of them."""
-    from ivdossier.estimation.falsification import per_instrument
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file(
-        "falsify-per-instrument", data, lambda frame: (per_instrument(frame, **spec), {}), spec
-    )
-    _finish(run, attach=attach, json_out=json_out, checks=("per-instrument-estimates", "over-identification"))
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify per-instrument", data, spec)
+    _finish(run, "falsify per-instrument", attach=attach, json_out=json_out)
 
 
 @falsify_app.command("first-stage-signs")
@@ -364,19 +303,11 @@ def falsify_first_stage_signs(
     json_out: JsonFlag = False,
 ) -> None:
     """First stage within subgroups; a significantly reversed sign somewhere is evidence of defiers."""
-    from ivdossier.estimation.subgroups import subgroup_first_stages
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "by": by,
-        "bins": bins,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file(
-        "falsify-first-stage-signs", data, lambda frame: (subgroup_first_stages(frame, **spec), {}), spec
-    )
+    spec = model_spec(
+        treatment=treatment, instrument=instrument, control=control, absorb=absorb, cluster=cluster,
+        weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify first-stage-signs", data, spec, by=by, bins=bins)
     if not json_out:
         rows = [
             {
@@ -392,23 +323,10 @@ def falsify_first_stage_signs(
             for c in g.regression.coefficients
         ]
         print_table(rows, ["group", "n", "instrument", "coef", "se", "p", "reversed"])
-    _finish(run, attach=attach, json_out=json_out, checks=("subgroup-first-stage-signs",))
+    _finish(run, "falsify first-stage-signs", attach=attach, json_out=json_out)
 
 
 # ---------------------------------------------------------------- compliers and power
-
-
-class _ComplierReport:
-    """Shares, and where asked, complier means and the implied-density check, as one result."""
-
-    def __init__(self, shares: Any, means: Any, implications: Any) -> None:
-        self.shares, self.means, self.implications = shares, means, implications
-
-    def to_dict(self) -> dict[str, Any]:
-        out = dict(self.shares.to_dict())
-        out["means"] = self.means.to_dict() if self.means is not None else None
-        out["implications"] = self.implications.to_dict() if self.implications is not None else None
-        return out
 
 
 def compliers(
@@ -424,47 +342,11 @@ def compliers(
     json_out: JsonFlag = False,
 ) -> None:
     """Complier, always-taker and never-taker shares; complier profile; implied complier densities."""
-    from ivdossier.estimation.compliers import check_testable_implications, complier_means, complier_shares
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "treatment": treatment,
-        "instrument": instrument,
-        "covariates": list(covariate or []),
-        "outcome": outcome,
-        "bins": bins,
-        "cluster": cluster,
-        "seed": seed,
-    }
-
-    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        shares = complier_shares(
-            frame, treatment=treatment, instrument=instrument, cluster=cluster, seed=seed
-        )
-        means = (
-            complier_means(
-                frame,
-                treatment=treatment,
-                instrument=instrument,
-                covariates=covariate,
-                cluster=cluster,
-                seed=seed,
-            )
-            if covariate
-            else None
-        )
-        impl = (
-            check_testable_implications(
-                frame, outcome=outcome, treatment=treatment, instrument=instrument, bins=bins, seed=seed
-            )
-            if outcome
-            else None
-        )
-        return _ComplierReport(shares, means, impl), {}
-
-    run = analyse_file("compliers", data, compute, spec)
-    checks = ("complier-profile",) + (("complier-density-sign",) if outcome else ())
-    _finish(run, attach=attach, json_out=json_out, checks=checks)
+    run = _run(
+        "compliers", data, None, treatment=treatment, instrument=instrument, covariates=list(covariate or []),
+        outcome=outcome, bins=bins, cluster=cluster, seed=seed,
+    )  # fmt: skip
+    _finish(run, "compliers", attach=attach, json_out=json_out)
 
 
 def power(
@@ -528,4 +410,4 @@ def power(
                 ("expected first-stage F", f"{fs.get('expected_f', float('nan')):.3g}"),
             ]
         )
-    _finish(run, attach=attach, json_out=json_out, checks=())
+    _finish(run, "power", attach=attach, json_out=json_out)

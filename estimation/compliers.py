@@ -19,10 +19,11 @@ import pandas as pd
 from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "ComplierMeans",
+    "ComplierReport",
     "ComplierShares",
     "CovariateProfile",
     "ImplicationCheck",
@@ -122,7 +123,7 @@ def _bootstrap_counts(
 
 
 @dataclass(frozen=True)
-class ComplierShares:
+class ComplierShares(Record):
     """Shares of compliers, always-takers and never-takers with standard errors and (1 - alpha) intervals.
 
     ``se_method`` is "delta" (two independent binomial samples, Z=1 and Z=0; no clustering) or
@@ -285,7 +286,7 @@ def _check_n_boot(n_boot: int) -> None:
 
 
 @dataclass(frozen=True)
-class CovariateProfile:
+class CovariateProfile(Record):
     """Means of one covariate in the whole sample and by compliance type, with bootstrap SEs."""
 
     covariate: str
@@ -311,7 +312,7 @@ class CovariateProfile:
 
 
 @dataclass(frozen=True)
-class ComplierMeans:
+class ComplierMeans(Record):
     """Kappa-weighted complier means of covariates (Abadie 2003).
 
     kappa = 1 - D(1-Z)/(1-pi(X)) - (1-D)Z/pi(X), with pi(X) = P(Z=1 | X): the sample share of Z=1 when
@@ -473,7 +474,7 @@ def complier_means(
 
 
 @dataclass(frozen=True)
-class IntervalViolation:
+class IntervalViolation(Record):
     """Implied complier density of the outcome over an interval of bins, for treated or untreated
     compliers."""
 
@@ -496,7 +497,7 @@ class IntervalViolation:
 
 
 @dataclass(frozen=True)
-class ImplicationCheck:
+class ImplicationCheck(Record):
     """Check of the testable implications of independence and monotonicity on a discretised outcome.
 
     Under both assumptions, for every set B: P(Y in B, D=1 | Z=1) - P(Y in B, D=1 | Z=0) >= 0 and
@@ -654,3 +655,19 @@ def check_testable_implications(
             "bootstrap within Z groups recentred at the least favourable null (conservative)"
         ),
     )
+
+
+@dataclass(frozen=True)
+class ComplierReport(Record):
+    """Shares, and where asked, complier means and the implied-density check, as one stored result."""
+
+    shares: ComplierShares
+    means: ComplierMeans | None = None
+    implications: ImplicationCheck | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict: the shares' keys, plus "means" and "implications" (null when not asked for)."""
+        out = dict(self.shares.to_dict())
+        out["means"] = self.means.to_dict() if self.means is not None else None
+        out["implications"] = self.implications.to_dict() if self.implications is not None else None
+        return out

@@ -33,10 +33,11 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import estimate_prepared
-from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
+from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
-from ivdossier.jsonsafe import json_safe
+from ivdossier.estimation.spec import check_options
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "InstrumentCoefficient",
@@ -66,7 +67,7 @@ CAUTION = (
 
 
 @dataclass(frozen=True)
-class InstrumentCoefficient:
+class InstrumentCoefficient(Record):
     """Coefficient of one instrument in one target regression."""
 
     instrument: str
@@ -84,7 +85,7 @@ class InstrumentCoefficient:
 
 
 @dataclass(frozen=True)
-class TargetRegression:
+class TargetRegression(Record):
     """One target (covariate, placebo outcome, treatment or outcome) regressed on the instruments.
 
     ``wald``/``wald_df``/``wald_p_value`` test all instrument coefficients of this target jointly (chi-square,
@@ -106,7 +107,7 @@ class TargetRegression:
 
 
 @dataclass(frozen=True)
-class JointTest:
+class JointTest(Record):
     """Stacked (seemingly unrelated) Wald test that every instrument coefficient of every target is zero."""
 
     statistic: float
@@ -119,7 +120,7 @@ class JointTest:
 
 
 @dataclass(frozen=True)
-class InstrumentRegressions:
+class InstrumentRegressions(Record):
     """Balance table or placebo-outcome table: per-target regressions and the joint test."""
 
     kind: str  # "balance" or "placebo_outcomes"
@@ -172,17 +173,9 @@ class _Stacked:
 
 
 def _check_common(vcov: str, alpha: float, cluster: str | Sequence[str] | None) -> tuple[str, ...]:
-    if vcov not in COV_KINDS:
-        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
+    """The shared option checks of every model spec (estimation/spec.py), for the falsification functions."""
     clus = as_names(cluster, "cluster")
-    if vcov == "cluster" and not clus:
-        raise InvalidInputError("vcov='cluster' needs cluster= (one or two column names); pass cluster=.")
-    if clus and vcov != "cluster":
-        raise InvalidInputError(
-            f"cluster= was given with vcov={vcov!r}; use vcov='cluster' or drop cluster=."
-        )
-    if not 0.0 < alpha < 1.0:
-        raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
+    check_options("2sls", vcov, clus, alpha, 1.0)
     return clus
 
 
@@ -469,7 +462,7 @@ def placebo_outcomes(
 
 
 @dataclass(frozen=True)
-class ZeroFirstStageResult:
+class ZeroFirstStageResult(Record):
     """First stage and reduced form in a subsample where the instrument should not move the treatment.
 
     ``prior_mu`` and ``prior_omega`` are the reduced-form coefficients of Y on Z in the subsample and their
@@ -724,7 +717,7 @@ def _zero_first_stage_exact(
 
 
 @dataclass(frozen=True)
-class JustIdentifiedEstimate:
+class JustIdentifiedEstimate(Record):
     """2SLS with one instrument alone (the other instruments left out), on the common estimation rows."""
 
     instrument: str
@@ -740,7 +733,7 @@ class JustIdentifiedEstimate:
 
 
 @dataclass(frozen=True)
-class PerInstrumentResult:
+class PerInstrumentResult(Record):
     """Each instrument's just-identified estimate beside the over-identified 2SLS and its J/Sargan test.
 
     ``first_stage_f`` is the Wald F of the instrument in its own first stage with the chosen covariance. The

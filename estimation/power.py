@@ -31,7 +31,7 @@ import numpy as np
 from scipy import optimize, stats
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "FirstStageOutlook",
@@ -50,7 +50,7 @@ FORMULA = "Var(beta) = DEFF * sigma_u^2 / (N * R2_partial * Var(X)), DEFF = 1 + 
 
 
 @dataclass(frozen=True)
-class IVDesign:
+class IVDesign(Record):
     """A planned 2SLS design; build it with :func:`iv_design`, which validates and fills in R2 from an F."""
 
     n: int
@@ -226,7 +226,7 @@ def n_for_power(design: IVDesign, effect: float, *, power: float = 0.8) -> int:
 
 
 @dataclass(frozen=True)
-class FirstStageOutlook:
+class FirstStageOutlook(Record):
     """What first stage the plan should expect and how likely it is to clear the thresholds it will use.
 
     ``critical_values`` maps a label to (critical value, probability that the planned F exceeds it), where the
@@ -306,7 +306,7 @@ def expected_first_stage(design: IVDesign) -> FirstStageOutlook:
 
 
 @dataclass(frozen=True)
-class PowerAnalysis:
+class PowerAnalysis(Record):
     """Everything a plan reports about power: SE, power at the effect, MDE, N needed and the first stage."""
 
     design: IVDesign

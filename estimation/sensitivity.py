@@ -42,7 +42,7 @@ from ivdossier.estimation.api import estimate_prepared
 from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, is_psd, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "BreakdownResult",
@@ -190,7 +190,7 @@ def _as_vector(value: float | Sequence[float], n_inst: int, name: str) -> Array:
 
 
 @dataclass(frozen=True)
-class GammaInterval:
+class GammaInterval(Record):
     """The 2SLS estimate and interval when the direct effect is ``gamma`` (one value per instrument)."""
 
     position: float
@@ -204,7 +204,7 @@ class GammaInterval:
 
 
 @dataclass(frozen=True)
-class UnionIntervalResult:
+class UnionIntervalResult(Record):
     """UCI over the box [gamma_min, gamma_max] with the evaluation grid used for the plot.
 
     ``grid`` runs over gamma itself for one instrument, and along the box diagonal gamma_min + s (gamma_max -
@@ -344,7 +344,7 @@ def union_of_intervals(
 
 
 @dataclass(frozen=True)
-class LocalToZeroResult:
+class LocalToZeroResult(Record):
     """LTZ interval: centre beta_hat - A mu, variance V + A Omega A', same quantile as the 2SLS interval."""
 
     treatment: str
@@ -456,7 +456,7 @@ def local_to_zero(
 
 
 @dataclass(frozen=True)
-class BreakdownResult:
+class BreakdownResult(Record):
     """Smallest direct effect (along ``direction``) at which the interval first covers ``target``.
 
     ``magnitude`` is |t| for gamma = t * direction (direction has unit length), in outcome units per unit of

@@ -16,7 +16,7 @@ import pandas as pd
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.data import as_names
 from ivdossier.estimation.falsification import TargetRegression, placebo_outcomes
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 MAX_LEVELS = 20
 CAUTION = (
@@ -26,7 +26,7 @@ CAUTION = (
 
 
 @dataclass(frozen=True)
-class SubgroupFirstStage:
+class SubgroupFirstStage(Record):
     """The first stage in one subgroup, and whether it runs against the full-sample direction."""
 
     group: str
@@ -44,7 +44,7 @@ class SubgroupFirstStage:
 
 
 @dataclass(frozen=True)
-class SubgroupSigns:
+class SubgroupSigns(Record):
     """First stages overall and by subgroup of ``by``; ``flagged`` lists subgroups with a reversed, significant sign."""
 
     by: str

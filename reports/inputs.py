@@ -10,9 +10,12 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
+from functools import cached_property
 from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.result import EstimationResult
+from ivdossier.jsonsafe import RECORD_KEY, load_record
 from ivdossier.vocabulary import CONDITIONS, LINK_STATES, READING_ASPECTS, Verdict
 
 if TYPE_CHECKING:
@@ -172,7 +175,8 @@ class ArCurve:
 
 @dataclass(frozen=True)
 class RunInfo:
-    """One estimation run: exact spec, data fingerprint, the estimation result's to_dict(), versions, timing."""
+    """One estimation run: exact spec, data fingerprint, the stored results (the typed result is ``result``),
+    versions, timing."""
 
     slug: str
     created_at: datetime | str
@@ -186,6 +190,15 @@ class RunInfo:
     seconds: float | None = None
     first_stage_bins: FirstStageBins | None = None
     ar_curve: ArCurve | None = None
+
+    @cached_property
+    def result(self) -> EstimationResult | None:
+        """The typed estimation result stored with the run (None for runs stored before typed records)."""
+        record = self.results.get(RECORD_KEY) if isinstance(self.results, Mapping) else None
+        if not isinstance(record, Mapping):
+            return None
+        value = load_record(record)
+        return value if isinstance(value, EstimationResult) else None
 
     @property
     def created_text(self) -> str:

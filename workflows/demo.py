@@ -378,12 +378,12 @@ def _prior_studies(registry: Any) -> int:
 
 
 def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
+    from ivdossier.estimation.spec import ModelSpec
     from ivdossier.workflows.runs import estimate_file, store_run
 
     slugs = []
     for instrument, used, method in RUNS:
-        run = estimate_file(
-            csv_path,
+        spec = ModelSpec.build(
             outcome="ed_visits",
             treatment="telehealth",
             instruments=used,
@@ -392,6 +392,7 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
             method=method,
             vcov="cluster",
         )
+        run = estimate_file(csv_path, spec)
         with registry.writing() as s:
             slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
     return slugs
@@ -399,42 +400,34 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
 
 def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
     """Falsification and sensitivity runs: the zero-first-stage subgroup and the placebo outcome for each."""
-    from ivdossier.estimation import falsification, sensitivity, subgroups
-    from ivdossier.workflows.runs import analyse_file, store_run
+    from ivdossier.estimation.spec import ModelSpec
+    from ivdossier.workflows.analyses import run_analysis
+    from ivdossier.workflows.runs import store_run
 
-    common = {"controls": list(CONTROLS), "cluster": ["district"], "vcov": "cluster"}
+    def spec(instruments: list[str], **roles: Any) -> ModelSpec:
+        adjust: dict[str, Any] = {"controls": CONTROLS, **roles}
+        return ModelSpec.build(instruments=instruments, cluster="district", vcov="cluster", **adjust)
+
     model = {"outcome": "ed_visits", "treatment": "telehealth"}
-    jobs: list[tuple[str, str, Any, dict[str, Any]]] = []
+    jobs: list[tuple[str, str, ModelSpec, dict[str, Any]]] = []
     for slug, column in (
         ("fibre-wave", "fibre_months"),
         ("clerk-video-rate", "clerk_video_rate"),
         ("mast-distance", "mast_km"),
     ):
-        inst = {"instruments": [column], **common}
-        zero = {**model, **inst, "query": "has_device == 0"}
-        jobs.append((slug, "falsify-zero-first-stage", falsification.zero_first_stage, zero))
-        placebo = {**inst, "outcomes": ["prior_ed_visits"]}
-        jobs.append((slug, "falsify-placebo", falsification.placebo_outcomes, placebo))
-    both = {**model, "instruments": ["clerk_video_rate", "fibre_months"], **common}
-    jobs.append(("clerk-video-rate", "falsify-per-instrument", falsification.per_instrument, both))
-    balance = {
-        "instruments": ["fibre_months"],
-        "covariates": list(CONTROLS),
-        "cluster": ["district"],
-        "vcov": "cluster",
-    }
-    jobs.append(("fibre-wave", "falsify-balance", falsification.balance, balance))
-    signs = {"treatment": "telehealth", "instruments": ["clerk_video_rate"], "by": "age", **common}
-    jobs.append(("clerk-video-rate", "falsify-first-stage-signs", subgroups.subgroup_first_stages, signs))
-    breakdown = {**model, "instruments": ["fibre_months"], **common}
-    jobs.append(("fibre-wave", "sensitivity", sensitivity.breakdown_value, breakdown))
+        jobs.append((slug, "falsify zero-first-stage", spec([column], **model), {"query": "has_device == 0"}))
+        jobs.append((slug, "falsify placebo", spec([column]), {"outcomes": ["prior_ed_visits"]}))
+    both = spec(["clerk_video_rate", "fibre_months"], **model)
+    jobs.append(("clerk-video-rate", "falsify per-instrument", both, {}))
+    jobs.append(
+        ("fibre-wave", "falsify balance", spec(["fibre_months"], controls=()), {"covariates": CONTROLS})
+    )
+    signs = spec(["clerk_video_rate"], treatment="telehealth")
+    jobs.append(("clerk-video-rate", "falsify first-stage-signs", signs, {"by": "age"}))
+    jobs.append(("fibre-wave", "sensitivity breakdown", spec(["fibre_months"], **model), {}))
     slugs = []
-    for instrument, kind, func, spec in jobs:
-
-        def compute(frame: Any, f: Any = func, kw: dict[str, Any] = spec) -> tuple[Any, dict[str, Any]]:
-            return f(frame, **kw), {}
-
-        run = analyse_file(kind, csv_path, compute, spec)
+    for instrument, name, model_spec, options in jobs:
+        run = run_analysis(name, csv_path, model_spec, **options)
         with registry.writing() as s:
             slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
     return slugs
@@ -450,7 +443,7 @@ def _record_what_the_checks_found(registry: Any) -> str:
 
     with registry.writing() as s:
         run = records.get(s, Run, "clerk-video-rate-falsify-zero-first-stage-1")
-        found = finding("zero-first-stage-reduced-form", run.results or {})
+        found = finding("zero-first-stage-reduced-form", run.results or {}, run.run_kind)
         set_link(
             s,
             actor="priya",
