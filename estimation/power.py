@@ -467,7 +467,9 @@ def simulate_power(
 ) -> PowerSimulation:
     """Monte Carlo power of the 2SLS t-test and the Anderson–Rubin test of b = 0 when the truth is ``effect``.
 
-    The simulated design has no clusters; a design with clusters is refused (its analytic figure uses DEFF).
+    ``error_correlation`` is corr(u, v) of the structural and first-stage errors; its sign relative to the effect
+    matters (the 2SLS t-test loses power when OLS would be biased in the direction of the effect). The simulated
+    design has no clusters; a design with clusters is refused (its analytic figure uses DEFF).
     """
     if design.cluster_size > 1.0 and design.icc > 0.0:
         raise InvalidInputError(
@@ -638,13 +640,18 @@ def _reliability(design: IVDesign, outlook: FirstStageOutlook, sim: PowerSimulat
         )
     if ef >= STRONG_F:
         return (
-            f"the expected first-stage F of {_fmt(ef)} is large, so the normal approximation behind the "
-            "analytic figure is usually close; simulate (error_correlation=) to confirm."
+            f"the expected first-stage F of {_fmt(ef)} is large, so the normal approximation is close when the "
+            "structural and first-stage errors are weakly correlated; with strong endogeneity it is off even "
+            "here (by this module's simulation at an expected F of 100 and error correlation 0.8, a nominal "
+            "80 % is about 73 % when the correlation has the sign of the effect and about 90 % when it has the "
+            "opposite sign); simulate with the correlation you expect (error_correlation=)."
         )
     return (
-        f"the expected first-stage F of {_fmt(ef)} is moderate or small: the analytic figure is optimistic "
-        "here (at an expected F of 20 this module's simulation gives about 76 % for a nominal 80 % with uncorrelated errors, and less as the correlation grows), and more so with strong "
-        "endogeneity; run the simulation mode with an assumed error correlation before relying on it."
+        f"the expected first-stage F of {_fmt(ef)} is moderate or small, so the analytic figure is unreliable: "
+        "by this module's simulation at an expected F of 20, a nominal 80 % is about 76 % with uncorrelated "
+        "errors, about 67 % with error correlation 0.8 of the same sign as the effect, and above 90 % with the "
+        "opposite sign (a t-test that over-rejects); run the simulation mode with the correlation you expect "
+        "and prefer the Anderson–Rubin figure."
     )
 
 
