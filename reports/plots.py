@@ -15,11 +15,13 @@ from __future__ import annotations
 import io
 import math
 from collections.abc import Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.plot_data import FirstStagePlot
 from ivdossier.reports.inputs import ArCurve, FirstStageBins
+
+if TYPE_CHECKING:  # the estimation type is only named here, so importing this module stays light
+    from ivdossier.estimation.plot_data import FirstStagePlot
 from ivdossier.reports.mdtext import clean
 
 INK = "#22262b"
@@ -69,9 +71,15 @@ def _render(key: str, draw: Any, size: tuple[float, float] = (6.4, 3.3)) -> str:
     return buf.getvalue()
 
 
+def _is_full(bins: FirstStageBins | FirstStagePlot) -> bool:
+    """True for a :class:`FirstStagePlot` (it records n, the kind of x axis and the slope)."""
+    return hasattr(bins, "x_kind") and hasattr(bins, "slope")
+
+
 def first_stage_texts(bins: FirstStageBins | FirstStagePlot) -> dict[str, str]:
     """Title, axis labels and line label of the first-stage figure (never "slope 1", never fitted values as Z)."""
-    if isinstance(bins, FirstStagePlot):
+    if _is_full(bins):
+        assert not isinstance(bins, FirstStageBins)
         rows = f"n = {bins.n:,} rows" if bins.n else "rows not recorded"
         if bins.slope is not None:
             se = f", SE {bins.slope_se:.2g}" if bins.slope_se is not None else ""
@@ -107,7 +115,7 @@ def first_stage_svg(bins: FirstStageBins | FirstStagePlot, *, key: str = "first-
         raise InvalidInputError("first-stage x_bins are all equal; bin the instrument over its range.")
     texts = first_stage_texts(bins)
     line: tuple[float, float] | None
-    if isinstance(bins, FirstStagePlot):
+    if not isinstance(bins, FirstStageBins) and _is_full(bins):
         line = None if bins.slope is None else (bins.intercept or 0.0, bins.slope)
     else:
         slope, intercept = np.polyfit(x, y, 1)
