@@ -6,6 +6,7 @@ of analyses (workflows/analyses.py) and prints the findings that entry gives for
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Annotated, Any
 
 import typer
@@ -26,8 +27,9 @@ from ivdossier.cli.model_options import (
     Vcov,
     Weights,
     model_spec,
+    split_names,
 )
-from ivdossier.cli.output import print_json, print_record, print_table
+from ivdossier.cli.output import print_json
 
 sensitivity_app = typer.Typer(
     help="How large a direct effect of the instrument on the outcome would change the conclusion.",
@@ -65,10 +67,14 @@ def _finish(run: Any, name: str, *, attach: str | None, json_out: bool) -> None:
     if json_out:
         print_json({**data, "run": slug} if slug else data)
         return
+    summary = str(run.result)
+    typer.echo(summary)
+    typer.echo("")
+    typer.echo("Findings for the catalogue's checks:")
     for check in entry.checks:
-        typer.echo(f"{check}: {finding_of(check, run.result, entry.run_kind)}")
+        typer.echo(f"  {check}: {finding_of(check, run.result, entry.run_kind)}")
     caution = getattr(run.result, "caution", None) or getattr(run.result, "note", None)
-    if caution:
+    if caution and caution not in summary:
         typer.echo(f"note: {caution}")
     if slug:
         typer.echo(f"stored as run {slug} on instrument {attach}")
@@ -190,7 +196,6 @@ def falsify_balance(
         alpha=alpha,
     )  # fmt: skip
     run = _run("falsify balance", data, spec, covariates=list(covariate))
-    _table_of_targets(run, json_out)
     _finish(run, "falsify balance", attach=attach, json_out=json_out)
 
 
@@ -214,26 +219,7 @@ def falsify_placebo(
         alpha=alpha,
     )  # fmt: skip
     run = _run("falsify placebo", data, spec, outcomes=list(placebo_outcome))
-    _table_of_targets(run, json_out)
     _finish(run, "falsify placebo", attach=attach, json_out=json_out)
-
-
-def _table_of_targets(run: Any, json_out: bool) -> None:
-    if json_out:
-        return
-    rows = [
-        {
-            "target": r.target,
-            "instrument": c.instrument,
-            "coef": f"{c.coef:.4g}",
-            "se": f"{c.se:.4g}",
-            "p": f"{c.p_value:.3g}",
-            "std_diff": "" if c.std_diff != c.std_diff else f"{c.std_diff:.3f}",
-        }
-        for r in run.result.rows
-        for c in r.coefficients
-    ]
-    print_table(rows, ["target", "instrument", "coef", "se", "p", "std_diff"])
 
 
 @falsify_app.command("zero-first-stage")
@@ -308,21 +294,6 @@ def falsify_first_stage_signs(
         weights=weights, vcov=vcov, alpha=alpha,
     )  # fmt: skip
     run = _run("falsify first-stage-signs", data, spec, by=by, bins=bins)
-    if not json_out:
-        rows = [
-            {
-                "group": g.group,
-                "n": g.n,
-                "instrument": c.instrument,
-                "coef": f"{c.coef:.4g}",
-                "se": f"{c.se:.4g}",
-                "p": f"{c.p_value:.3g}",
-                "reversed": "yes" if c.instrument in g.opposite else "",
-            }
-            for g in run.result.groups
-            for c in g.regression.coefficients
-        ]
-        print_table(rows, ["group", "n", "instrument", "coef", "se", "p", "reversed"])
     _finish(run, "falsify first-stage-signs", attach=attach, json_out=json_out)
 
 
@@ -361,7 +332,25 @@ def power(
     residual_sd: Annotated[
         float | None, typer.Option(help="Standard deviation of the structural error.")
     ] = None,
-    treatment_sd: Annotated[float, typer.Option(help="Standard deviation of the treatment.")] = 1.0,
+    treatment_sd: Annotated[
+        float | None,
+        typer.Option(
+            help="Standard deviation of the treatment (or give --data and --treatment to derive it)."
+        ),
+    ] = None,
+    data: Annotated[
+        Path | None, typer.Option(help="Pilot or earlier data to derive the treatment's SD from.")
+    ] = None,
+    treatment: Annotated[str | None, typer.Option(help="Treatment column of --data.")] = None,
+    control: Controls = None,
+    error_correlation: Annotated[
+        float | None,
+        typer.Option(
+            help="Correlation of the structural and first-stage errors: also simulate 2SLS and Anderson–Rubin power."
+        ),
+    ] = None,
+    reps: Annotated[int, typer.Option(help="Replications of the simulation.")] = 2000,
+    seed: Annotated[int, typer.Option(help="Seed of the simulation.")] = 0,
     instruments: Annotated[int, typer.Option(help="Number of instruments.")] = 1,
     cluster_size: Annotated[float, typer.Option(help="Average cluster size (1 = no clustering).")] = 1.0,
     icc: Annotated[float, typer.Option(help="Intra-cluster correlation of the outcome.")] = 0.0,
@@ -375,7 +364,7 @@ def power(
     from ivdossier.estimation.power import iv_design, power_analysis
     from ivdossier.workflows.runs import FileRun
 
-    spec = {
+    spec: dict[str, Any] = {
         "n": n,
         "partial_r2": partial_r2,
         "first_stage_f": first_stage_f,
@@ -387,27 +376,43 @@ def power(
         "icc": icc,
         "alpha": alpha,
     }
-    analysis = power_analysis(iv_design(**spec), effect=effect, target_power=target_power)
+    frame = None
+    sha = ""
+    if data is not None:
+        from ivdossier.estimation.data import file_sha256, load_table
+
+        frame = load_table(data)
+        sha = file_sha256(data)
+        spec["data"] = {"path": str(data), "sha256": sha, "treatment": treatment}
+    controls = split_names(control)
+    design = iv_design(
+        **{k: v for k, v in spec.items() if k != "data"}, data=frame, treatment=treatment, controls=controls
+    )
+    analysis = power_analysis(
+        design,
+        effect=effect,
+        target_power=target_power,
+        error_correlation=error_correlation,
+        reps=reps,
+        seed=seed,
+    )
     run = FileRun(
         kind="power",
         result=analysis,
-        path="",
-        sha256="",
-        rows=0,
-        columns=(),
+        path=str(data or ""),
+        sha256=sha,
+        rows=0 if frame is None else len(frame),
+        columns=() if frame is None else tuple(str(c) for c in frame.columns),
         seconds=0.0,
-        spec={**spec, "effect": effect, "target_power": target_power},
+        spec={
+            **spec,
+            "treatment_sd": design.treatment_sd,
+            "controls": controls,
+            "effect": effect,
+            "target_power": target_power,
+            "error_correlation": error_correlation,
+            "reps": reps,
+            "seed": seed,
+        },
     )
-    if not json_out:
-        d = analysis.to_dict()
-        fs = d.get("first_stage") or {}
-        print_record(
-            [
-                ("standard error of 2SLS", f"{d['se']:.4g}"),
-                ("power at the effect", "—" if d.get("power") is None else f"{d['power']:.3f}"),
-                (f"minimum detectable effect ({target_power:.0%} power)", f"{d['mde']:.4g}"),
-                ("observations needed", d.get("n_required") or "—"),
-                ("expected first-stage F", f"{fs.get('expected_f', float('nan')):.3g}"),
-            ]
-        )
     _finish(run, "power", attach=attach, json_out=json_out)

@@ -195,7 +195,10 @@ def _subgroup_signs(result: Any) -> str:
 
 
 def _power(result: Any) -> str:
-    return f"power {_num(result.power)} for effect {_num(result.effect)}; MDE {_num(result.mde)}"
+    mde = f"minimum detectable effect {_num(result.mde)}"
+    if result.power is None:
+        return f"{mde} (no effect given, so no power at an effect)"
+    return f"power {_num(result.power)} for effect {_num(result.effect)}; {mde}"
 
 
 # ---------------------------------------------------------------- computations (spec -> result)
@@ -312,41 +315,19 @@ def _signs(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
 
 
 def _compliers(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
-    from ivdossier.estimation.compliers import (
-        ComplierReport,
-        check_testable_implications,
-        complier_means,
-        complier_shares,
-    )
+    from ivdossier.estimation.compliers import complier_report
 
-    treatment, instrument, seed = o["treatment"], o["instrument"], o.get("seed", 0)
-    cluster, covariates, outcome = o.get("cluster"), list(o.get("covariates") or []), o.get("outcome")
-    shares = complier_shares(frame, treatment=treatment, instrument=instrument, cluster=cluster, seed=seed)
-    means = (
-        complier_means(
-            frame,
-            treatment=treatment,
-            instrument=instrument,
-            covariates=covariates,
-            cluster=cluster,
-            seed=seed,
-        )
-        if covariates
-        else None
+    report = complier_report(
+        frame,
+        treatment=o["treatment"],
+        instrument=o["instrument"],
+        covariates=list(o.get("covariates") or []),
+        outcome=o.get("outcome"),
+        bins=o.get("bins", 5),
+        cluster=o.get("cluster"),
+        seed=o.get("seed", 0),
     )
-    implications = (
-        check_testable_implications(
-            frame,
-            outcome=outcome,
-            treatment=treatment,
-            instrument=instrument,
-            bins=o.get("bins", 5),
-            seed=seed,
-        )
-        if outcome
-        else None
-    )
-    return ComplierReport(shares, means, implications), {}
+    return report, {}
 
 
 _ESTIMATE_FINDINGS: dict[str, Callable[[Any], str]] = {
