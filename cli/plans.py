@@ -344,10 +344,24 @@ def receipt_cmd(
                 f"See `ivdossier plan verify {plan}`."
             )
         text = plans.receipt_text(plans.seal_receipt(s, records.get(s, Plan, plan)))
-    if write_new_file(target, text):
+    if _same_seal(target, text):
+        typer.echo(f"{target} already holds a receipt of this seal; left as it is")
+    elif write_new_file(target, text):
         typer.echo(f"seal receipt of plan {plan} written to {target}")
     else:
         typer.echo(f"{target} already holds this receipt")
+
+
+def _same_seal(path: Path, text: str) -> bool:
+    """Whether `path` is a regular file holding a receipt of the same seal (whenever it was written)."""
+    if path.is_symlink() or not path.is_file():
+        return False
+    try:
+        old, new = json.loads(path.read_text(encoding="utf-8")), json.loads(text)
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+        return False
+    keys = ("format", "plan_uuid", "sha256", "canonical")
+    return isinstance(old, dict) and all(old.get(k) == new.get(k) for k in keys)
 
 
 @plan_app.command("export")
@@ -372,6 +386,17 @@ def export(
     typer.echo(f"wrote {out}")
 
 
+def _rounded(value: Any) -> Any:
+    """Floats to six significant digits for reading, inside lists and objects too (--json keeps every digit)."""
+    if isinstance(value, float):
+        return float(f"{value:.6g}")
+    if isinstance(value, list):
+        return [_rounded(v) for v in value]
+    if isinstance(value, dict):
+        return {k: _rounded(v) for k, v in value.items()}
+    return value
+
+
 def show_value(value: Any) -> str:
     """A value for the terminal: yes/no for booleans, lists and objects in full as JSON, '–' for nothing."""
     if value is None:
@@ -379,7 +404,9 @@ def show_value(value: Any) -> str:
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, list | dict):
-        return json.dumps(value, ensure_ascii=False, sort_keys=True)
+        return json.dumps(_rounded(value), ensure_ascii=False, sort_keys=True)
+    if isinstance(value, float):
+        return f"{value:.6g}"
     return str(value)
 
 
