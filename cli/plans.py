@@ -162,6 +162,24 @@ def list_(json_out: JsonFlag = False) -> None:
     )
 
 
+@plan_app.command("quantities")
+def quantities_cmd(json_out: JsonFlag = False) -> None:
+    """List the quantities a decision rule may name (paths into an estimation run's results)."""
+    from ivdossier.workflows.plan_quantities import INSTRUMENT, TREATMENT, quantities
+
+    rows = [q.to_dict() for q in quantities()]
+    if json_out:
+        print_json(rows)
+        return
+    typer.echo(
+        f"Quantities of an estimation run a decision rule may name ({len(rows)}). Write {TREATMENT} and "
+        f"{INSTRUMENT} as the plan's column names, e.g. coef.video_share; add .0 or .1 to take an item of a list."
+    )
+    for row in rows:
+        row["may_be_empty"] = "yes" if row["may_be_empty"] else "no"
+    print_table(rows, ["path", "kind", "may_be_empty"])
+
+
 @plan_app.command("show")
 def show(plan: str, json_out: JsonFlag = False) -> None:
     """Print the plan document (Markdown) or, with --json, the stored plan."""
