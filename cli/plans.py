@@ -11,7 +11,6 @@ import typer
 from ivdossier.cli import panels
 from ivdossier.cli.common import IfVersion, JsonFlag, actor, read_text_option, reading, writing
 from ivdossier.cli.output import print_json, print_table
-from ivdossier.cli.studies import write_output
 
 plan_app = typer.Typer(
     help="Pre-analysis plans: draft from the registry, fix decision rules, freeze, verify and compare runs.",
@@ -123,7 +122,7 @@ def draft(
         view = plans.plan_dict(s, plan)
         sealed = plans.sealed_document(s, plan)
     if out is not None:
-        write_output(out, _render(out.suffix.lower(), sealed, "draft", ""))
+        write_replacing(out, _render(out.suffix.lower(), sealed, "draft", ""))
     print_json(view) if json_out else typer.echo(f"plan {view['slug']} drafted for {target}")
 
 
@@ -173,7 +172,8 @@ def quantities_cmd(json_out: JsonFlag = False) -> None:
         return
     typer.echo(
         f"Quantities of an estimation run a decision rule may name ({len(rows)}). Write {TREATMENT} and "
-        f"{INSTRUMENT} as the plan's column names, e.g. coef.video_share; add .0 or .1 to take an item of a list."
+        f"{INSTRUMENT} as the plan's column names (coef.video_share); an item of a list by its position from 0 "
+        "(weak_iv_robust.anderson_rubin.confidence_set.0.1 is the upper end of the first interval)."
     )
     for row in rows:
         row["may_be_empty"] = "yes" if row["may_be_empty"] else "no"
@@ -249,6 +249,38 @@ def _json_file(path: Path, what: str) -> Any:
         raise InvalidInputError(
             f"{what} file {str(path)!r} is not valid JSON (line {exc.lineno}: {exc.msg})."
         ) from None
+
+
+def write_replacing(path: Path, text: str) -> None:
+    """Write a document or export atomically ('-' is standard output): a temporary file in the same folder, flushed
+    and then renamed over `path`, so a reader never sees half a file. A link at `path` is replaced, not followed."""
+    import os
+    import tempfile
+
+    from ivdossier.errors import InvalidInputError
+
+    if str(path) == "-":
+        typer.echo(text, nl=False)
+        return
+    folder = path.parent if str(path.parent) else Path(".")
+    if path.is_dir():
+        raise InvalidInputError(f"{str(path)!r} is a folder; give a file name.")
+    tmp = None
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=folder)
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(text.encode("utf-8"))
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except OSError as exc:
+        raise InvalidInputError(
+            f"cannot write {str(path)!r}: {exc.strerror}; check that the folder exists."
+        ) from None
+    finally:
+        if tmp is not None and os.path.lexists(tmp):
+            os.unlink(tmp)
 
 
 def _receipt_path(plan: str, receipt: Path | None) -> Path:
@@ -400,7 +432,7 @@ def export(
             if row.state != "frozen":
                 plans.export_document(s, plan)  # raises the draft error
             text = _render(suffix, plans.sealed_document(s, row), row.state, row.sha256)
-    write_output(out, text)
+    write_replacing(out, text)
     typer.echo(f"wrote {out}")
 
 

@@ -139,3 +139,21 @@ def test_receipt_command_rewrites_a_lost_receipt_and_never_overwrites(
         code == 2 and "'other.json' already exists and holds something else; it is never overwritten" in err
     )
     assert (tmp_path / "other.json").read_text("utf-8") == "{}\n"
+
+
+def test_export_replaces_a_link_instead_of_writing_through_it(
+    cli, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:  # type: ignore[no-untyped-def]
+    monkeypatch.chdir(tmp_path)
+    _setup(cli)
+    assert cli("plan", "freeze", "fibre-plan")[0] == 0
+    (tmp_path / "victim.txt").write_text("keep\n", encoding="utf-8")
+    (tmp_path / "copy.json").symlink_to(tmp_path / "victim.txt")
+    code, out, err = cli("plan", "export", "fibre-plan", "--out", "copy.json")
+    assert (code, out.strip()) == (0, "wrote copy.json"), err
+    assert (tmp_path / "victim.txt").read_text("utf-8") == "keep\n"
+    assert not (tmp_path / "copy.json").is_symlink()
+    assert json.loads((tmp_path / "copy.json").read_text("utf-8"))["format"] == "ivdossier-frozen-plan/1"
+    assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
+    code, _, err = cli("plan", "export", "fibre-plan", "--out", "no-such-folder/copy.json")
+    assert code == 2 and "cannot write 'no-such-folder/copy.json'" in err
