@@ -6,6 +6,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 from typing import cast
 
@@ -17,7 +18,9 @@ from scipy import stats
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
 from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
+from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import PreparedData, as_names, prepare
+from ivdossier.estimation.diagnostics import unidentified_reason
 from ivdossier.estimation.estimators import METHODS, KClassFit, fit_kclass
 from ivdossier.estimation.result import EstimationResult
 
@@ -94,11 +97,14 @@ def estimate(
     small_sample: bool = True,
     alpha: float = 0.05,
     fuller_alpha: float = 1.0,
+    report_controls: bool = False,
 ) -> EstimationResult:
     """Estimate the effect of ``treatment`` on ``outcome`` and return coefficients with diagnostics.
 
     ``method`` is one of "ols", "2sls", "liml", "fuller"; ``vcov`` one of "unadjusted", "robust", "cluster"
     (the last needs ``cluster``, one or two column names). Conventions are listed in ``result.conventions``.
+    ``report_controls=True`` also reports the intercept and control coefficients and the R^2
+    (``result.controls_table``), from one extra fit of the full equation.
     """
     clus = as_names(cluster, "cluster")
     _check_options(method, vcov, clus, alpha, fuller_alpha)
@@ -120,9 +126,39 @@ def estimate(
         weights=weights,
         require_instruments=method != "ols",
     )
-    return estimate_prepared(
+    result = estimate_prepared(
         prepared, method=method, vcov=vcov, small_sample=small_sample, alpha=alpha, fuller_alpha=fuller_alpha
     )
+    if not report_controls or result.identification is not None:
+        return result
+    used = [outcome, *prepared.treatment, *inst, *prepared.controls, *prepared.absorb, *clus]
+    used += [weights] if weights else []
+    rows = data[list(dict.fromkeys(used))].notna().all(axis=1).to_numpy()
+    frame = data[rows]
+
+    def cols(names: Sequence[str]) -> Array:
+        if not names:
+            return np.zeros((len(frame), 0))
+        return np.column_stack([frame[c].to_numpy(dtype=np.float64) for c in names])
+
+    from ivdossier.estimation.controls import controls_fit
+
+    table = controls_fit(
+        frame[outcome].to_numpy(dtype=np.float64),
+        cols(prepared.treatment),
+        cols(inst) if inst else None,
+        cols(prepared.controls),
+        treatment_names=prepared.treatment,
+        control_names=prepared.controls,
+        method=method,
+        beta=result.coef,
+        spec=CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample),
+        fe_codes=[pd.factorize(frame[c])[0].astype(np.int64) for c in prepared.absorb],
+        weights=frame[weights].to_numpy(dtype=np.float64) if weights else None,
+        n_absorbed=prepared.n_absorbed,
+        n_absorbed_nested=prepared.n_partialled_nested,
+    )
+    return dataclasses.replace(result, controls_table=table)
 
 
 def _interval_quantile(
@@ -147,6 +183,21 @@ def estimate_prepared(
     """Estimate from validated, partialled data; ``diagnostics=False`` skips the weak-instrument suite."""
     _check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
     spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
+    cp = None
+    if method != "ols":
+        cp = build(
+            prepared.Z,
+            prepared.X,
+            prepared.y,
+            spec if diagnostics else CovSpec("unadjusted", (), small_sample),
+            n_partialled=prepared.n_partialled,
+            n_partialled_nested=prepared.n_partialled_nested,
+        )
+        unident = unidentified_reason(cp, list(prepared.treatment), list(prepared.instruments))
+        if unident is not None:
+            return _unidentified_result(
+                prepared, cp, spec, method, vcov, small_sample, alpha, fuller_alpha, unident
+            )
     fit = fit_kclass(
         prepared.y,
         prepared.X,
@@ -181,24 +232,11 @@ def estimate_prepared(
                 endog_names=list(prepared.treatment),
                 instrument_names=list(prepared.instruments),
                 alpha=alpha,
+                cross_products=cp,
             )
         except EstimationError as exc:
             # e.g. no more clusters than instruments: the coefficients stand, the diagnostics cannot be had
             not_applicable = f"instrument diagnostics not computed: {exc}"
-    echo = {
-        "outcome": prepared.outcome,
-        "treatment": list(prepared.treatment),
-        "instruments": list(prepared.instruments),
-        "controls": list(prepared.controls),
-        "absorb": list(prepared.absorb),
-        "cluster": list(prepared.cluster),
-        "weights": prepared.weights,
-        "method": method,
-        "vcov": vcov,
-        "small_sample": small_sample,
-        "alpha": alpha,
-        "fuller_alpha": fuller_alpha,
-    }
     return EstimationResult(
         method=method,
         vcov=vcov,
@@ -222,11 +260,87 @@ def estimate_prepared(
         n_absorbed=prepared.n_absorbed,
         n_absorbed_nested=prepared.n_partialled_nested,
         fe_levels=prepared.fe_levels,
-        spec=echo,
+        spec=_echo(prepared, method, vcov, small_sample, alpha, fuller_alpha),
         conventions=conventions(vcov, small_sample),
         diagnostics=suite,
         not_applicable=not_applicable,
     )
+
+
+def _unidentified_result(
+    prepared: PreparedData,
+    cp: CrossProducts,
+    spec: CovSpec,
+    method: str,
+    vcov: str,
+    small_sample: bool,
+    alpha: float,
+    fuller_alpha: float,
+    reason: str,
+) -> EstimationResult:
+    """No coefficients (NaN) when the effect is not identified; the AR test and set are still reported."""
+    from ivdossier.estimation.diagnostics import suite_from
+
+    n, k = prepared.X.shape
+    nan = np.full(k, np.nan)
+    suite = suite_from(
+        cp,
+        beta=nan,
+        method=method,
+        kappa=float("nan"),
+        endog_names=list(prepared.treatment),
+        instrument_names=list(prepared.instruments),
+        alpha=alpha,
+    )
+    df_resid = n - k - prepared.n_partialled
+    _, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, spec.n_clusters(), alpha)
+    return EstimationResult(
+        method=method,
+        vcov=vcov,
+        outcome=prepared.outcome,
+        names=prepared.treatment,
+        coef=nan,
+        se=nan.copy(),
+        cov=np.full((k, k), np.nan),
+        ci=np.full((k, 2), np.nan),
+        alpha=alpha,
+        n=n,
+        n_dropped=prepared.n_dropped,
+        n_clusters=spec.n_clusters(),
+        df_resid=df_resid,
+        ci_reference=ci_ref,
+        ref_df=ref_df,
+        kappa=float("nan"),
+        kappa_liml=None,
+        sigma=float("nan"),
+        n_partialled=prepared.n_partialled,
+        n_absorbed=prepared.n_absorbed,
+        n_absorbed_nested=prepared.n_partialled_nested,
+        fe_levels=prepared.fe_levels,
+        spec=_echo(prepared, method, vcov, small_sample, alpha, fuller_alpha),
+        conventions=conventions(vcov, small_sample),
+        diagnostics=suite,
+        identification=reason,
+    )
+
+
+def _echo(
+    prepared: PreparedData, method: str, vcov: str, small_sample: bool, alpha: float, fuller_alpha: float
+) -> dict[str, object]:
+    return {
+        "outcome": prepared.outcome,
+        "treatment": list(prepared.treatment),
+        "instruments": list(prepared.instruments),
+        "controls": list(prepared.controls),
+        "absorb": list(prepared.absorb),
+        "cluster": list(prepared.cluster),
+        "weights": prepared.weights,
+        "method": method,
+        "vcov": vcov,
+        "small_sample": small_sample,
+        "alpha": alpha,
+        "fuller_alpha": fuller_alpha,
+    }
 
 
 def covariance_of(fit: KClassFit, spec: CovSpec, *, n_partialled: int, n_nested: int = 0) -> Array:

@@ -90,8 +90,8 @@ def unidentified_reason(cp: CrossProducts, endog_names: list[str], instrument_na
         if float(np.linalg.norm(pi)) <= ZERO_RTOL:
             return (
                 f"the effect of {endog_names[0]!r} is not identified: its first stage on the instrument(s) "
-                f"{inst} is exactly zero (after partialling); only the Anderson–Rubin test, whose set is then "
-                "the whole line or empty, remains valid"
+                f"{inst} is exactly zero (after partialling); only the Anderson–Rubin test remains valid, and its "
+                "confidence set is then unbounded (the whole line or two rays)"
             )
         return None
     sv = np.linalg.svd(pi, compute_uv=False)

@@ -74,6 +74,8 @@ class EstimationResult:
     conventions: dict[str, str] = field(default_factory=dict)
     diagnostics: Any = None
     not_applicable: str | None = None
+    identification: str | None = None
+    controls_table: Any = None
 
     @property
     def tstat(self) -> Array:
@@ -135,6 +137,9 @@ class EstimationResult:
         }
         for name in DIAGNOSTIC_SECTIONS:
             out[name] = self._section(name)
+        out["identification"] = self.identification
+        if self.controls_table is not None:
+            out["controls"] = self.controls_table.to_dict()
         out["spec"] = json_safe(self.spec)
         out["conventions"] = dict(self.conventions)
         return out
@@ -162,6 +167,11 @@ class EstimationResult:
         for name, b, s, (lo, hi) in zip(self.names, self.coef, self.se, self.ci, strict=True):
             lines.append(f"  {name:<{width}}  {b:>12.6g}  {s:>12.6g}  [{lo:>11.6g}, {hi:>11.6g}]")
         lines.append(f"  intervals use {self.ci_reference}")
+        if self.identification is not None:
+            lines.append(f"  not identified: {self.identification}")
+        if self.controls_table is not None:
+            lines.append("")
+            lines.extend(f"  {line}" for line in str(self.controls_table).splitlines())
         lines.append("")
         if self.not_applicable is not None:
             lines.append(f"  Instrument diagnostics: not applicable ({self.not_applicable}).")
