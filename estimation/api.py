@@ -22,6 +22,7 @@ from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.diagnostics import unidentified_reason
 from ivdossier.estimation.estimators import METHODS, KClassFit, fit_kclass
+from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
 
 Array = NDArray[np.float64]
@@ -106,6 +107,42 @@ def estimate(
     ``report_controls=True`` also reports the intercept and control coefficients and the R^2
     (``result.controls_table``), from one extra fit of the full equation.
     """
+    with one_blas_thread():
+        return _estimate(
+            data,
+            outcome=outcome,
+            treatment=treatment,
+            instruments=instruments,
+            controls=controls,
+            absorb=absorb,
+            cluster=cluster,
+            weights=weights,
+            method=method,
+            vcov=vcov,
+            small_sample=small_sample,
+            alpha=alpha,
+            fuller_alpha=fuller_alpha,
+            report_controls=report_controls,
+        )
+
+
+def _estimate(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str | Sequence[str],
+    instruments: str | Sequence[str],
+    controls: str | Sequence[str],
+    absorb: str | Sequence[str],
+    cluster: str | Sequence[str] | None,
+    weights: str | None,
+    method: str,
+    vcov: str,
+    small_sample: bool,
+    alpha: float,
+    fuller_alpha: float,
+    report_controls: bool,
+) -> EstimationResult:
     clus = as_names(cluster, "cluster")
     _check_options(method, vcov, clus, alpha, fuller_alpha)
     inst = as_names(instruments, "instruments")
@@ -181,6 +218,28 @@ def estimate_prepared(
     diagnostics: bool = True,
 ) -> EstimationResult:
     """Estimate from validated, partialled data; ``diagnostics=False`` skips the weak-instrument suite."""
+    with one_blas_thread():
+        return _estimate_prepared(
+            prepared,
+            method=method,
+            vcov=vcov,
+            small_sample=small_sample,
+            alpha=alpha,
+            fuller_alpha=fuller_alpha,
+            diagnostics=diagnostics,
+        )
+
+
+def _estimate_prepared(
+    prepared: PreparedData,
+    *,
+    method: str,
+    vcov: str,
+    small_sample: bool,
+    alpha: float,
+    fuller_alpha: float,
+    diagnostics: bool,
+) -> EstimationResult:
     _check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
     spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
     cp = None

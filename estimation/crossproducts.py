@@ -34,6 +34,7 @@ from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.covariance import CovSpec, intersection_codes
+from ivdossier.estimation.linalg import one_blas_thread
 
 Array = NDArray[np.float64]
 BLOCK_ROWS = 65536
@@ -365,6 +366,18 @@ def build(
     n_partialled_nested: int = 0,
 ) -> CrossProducts:
     """One pass over partialled arrays: scale, orthonormal basis and the grouped moments of its rows."""
+    with one_blas_thread():
+        return _build(z, x, y, spec, n_partialled, n_partialled_nested)
+
+
+def _build(
+    z: np.ndarray,
+    x: np.ndarray,
+    y: np.ndarray | None,
+    spec: CovSpec,
+    n_partialled: int,
+    n_partialled_nested: int,
+) -> CrossProducts:
     parts = [np.asarray(z, dtype=np.float64), np.asarray(x, dtype=np.float64)]
     parts = [a[:, None] if a.ndim == 1 else a for a in parts]
     if y is not None:
