@@ -21,7 +21,7 @@ from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwic
 from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.diagnostics import unidentified_reason
-from ivdossier.estimation.estimators import METHODS, KClassFit, fit_kclass
+from ivdossier.estimation.estimators import METHODS, KClassFit, fit_from_cross_products, fit_kclass
 from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
 
@@ -248,7 +248,7 @@ def _estimate_prepared(
             prepared.Z,
             prepared.X,
             prepared.y,
-            spec if diagnostics else CovSpec("unadjusted", (), small_sample),
+            spec,
             n_partialled=prepared.n_partialled,
             n_partialled_nested=prepared.n_partialled_nested,
         )
@@ -257,21 +257,21 @@ def _estimate_prepared(
             return _unidentified_result(
                 prepared, cp, spec, method, vcov, small_sample, alpha, fuller_alpha, unident
             )
-    fit = fit_kclass(
-        prepared.y,
-        prepared.X,
-        prepared.Z if method != "ols" else None,
-        method=method,
-        n_partialled=prepared.n_partialled,
-        fuller_alpha=fuller_alpha,
-    )
-    cov = covariance_of(fit, spec, n_partialled=prepared.n_partialled, n_nested=prepared.n_partialled_nested)
-    se = np.sqrt(np.diag(cov))
     n, k = prepared.X.shape
     df_resid = n - k - prepared.n_partialled
+    if cp is not None:
+        mfit = fit_from_cross_products(cp, method=method, fuller_alpha=fuller_alpha)
+        beta, cov, kappa, kappa_liml, ssr = mfit.beta, mfit.cov, mfit.kappa, mfit.kappa_liml, mfit.ssr
+    else:
+        fit = fit_kclass(prepared.y, prepared.X, None, method=method, n_partialled=prepared.n_partialled)
+        cov = covariance_of(
+            fit, spec, n_partialled=prepared.n_partialled, n_nested=prepared.n_partialled_nested
+        )
+        beta, kappa, kappa_liml, ssr = fit.beta, fit.kappa, fit.kappa_liml, float(fit.resid @ fit.resid)
+    se = np.sqrt(np.diag(cov))
     n_clusters = spec.n_clusters()
     q, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, n_clusters, alpha)
-    ci = np.column_stack([fit.beta - q * se, fit.beta + q * se])
+    ci = np.column_stack([beta - q * se, beta + q * se])
     suite = None
     not_applicable = OLS_REASON if method == "ols" else None
     if diagnostics and method != "ols":
@@ -285,9 +285,9 @@ def _estimate_prepared(
                 spec=spec,
                 n_partialled=prepared.n_partialled,
                 n_partialled_nested=prepared.n_partialled_nested,
-                beta=fit.beta,
+                beta=beta,
                 method=method,
-                kappa=fit.kappa,
+                kappa=kappa,
                 endog_names=list(prepared.treatment),
                 instrument_names=list(prepared.instruments),
                 alpha=alpha,
@@ -301,7 +301,7 @@ def _estimate_prepared(
         vcov=vcov,
         outcome=prepared.outcome,
         names=prepared.treatment,
-        coef=fit.beta,
+        coef=beta,
         se=se,
         cov=cov,
         ci=ci,
@@ -312,9 +312,9 @@ def _estimate_prepared(
         df_resid=df_resid,
         ci_reference=ci_ref,
         ref_df=ref_df,
-        kappa=fit.kappa,
-        kappa_liml=fit.kappa_liml,
-        sigma=float(np.sqrt(fit.resid @ fit.resid / df_resid)),
+        kappa=kappa,
+        kappa_liml=kappa_liml,
+        sigma=float(np.sqrt(ssr / df_resid)),
         n_partialled=prepared.n_partialled,
         n_absorbed=prepared.n_absorbed,
         n_absorbed_nested=prepared.n_partialled_nested,
