@@ -30,7 +30,7 @@ from numpy.typing import NDArray
 from scipy.sparse.csgraph import connected_components
 
 from ivdossier.errors import EstimationError
-from ivdossier.estimation.linalg import Projector
+from ivdossier.estimation.linalg import GRAM_MIN_DIAG, Projector, tall_matmul
 
 Array = NDArray[np.float64]
 
@@ -202,6 +202,20 @@ def _project_out(t: Array, cc: Array, norms: Array) -> tuple[Array, list[int]]:
     return proj.residual(t), [i for i in range(cc.shape[1]) if not keep[i]]
 
 
+def _gram_coefficients(gcc: Array, gct: Array, norms: Array) -> Array | None:
+    """Least-squares coefficients from the normal equations when the unit-scaled Gram matrix of the controls is
+    well conditioned (Cholesky diagonal above GRAM_MIN_DIAG); None sends the caller to the exact QR path."""
+    inv = 1.0 / norms
+    try:
+        chol = np.linalg.cholesky(gcc * np.outer(inv, inv))
+    except np.linalg.LinAlgError:
+        return None
+    if float(np.diag(chol).min()) <= GRAM_MIN_DIAG:
+        return None
+    sol = scipy.linalg.cho_solve((chol, True), gct * inv[:, None], check_finite=False)
+    return np.asarray(sol * inv[:, None], dtype=np.float64)
+
+
 def partial_out(
     targets: np.ndarray | Sequence[np.ndarray],
     *,
@@ -239,25 +253,32 @@ def partial_out(
         wsum = float(n) if w is None else float(w.sum())
         means = (both.sum(axis=0) if w is None else w @ both) / wsum
         both -= means[None, :]
-        if w is None:
-            pre = np.sqrt(np.einsum("ij,ij->j", both, both))
-        else:
-            pre = np.sqrt(np.einsum("ij,ij,i->j", both, both, w))
+        pre = None
         n_absorbed, n_nested = 0, 0
         n_intercept = 1
     if w is not None:
         both *= np.sqrt(w)[:, None]
+    # one Gram pass gives every norm and the normal equations of the controls
+    gram = both.T @ both
+    norms_now = np.sqrt(np.clip(np.diag(gram), 0.0, None))
+    if pre is None:
+        pre = norms_now
     t = both[:, :p]
     dropped: list[int] = []
     if k_c:
         cc = both[:, p:]
-        after_fe = np.sqrt(np.einsum("ij,ij->j", cc, cc))
+        after_fe = norms_now[p:]
         alive = [j for j in range(k_c) if after_fe[j] > COLLINEAR_TOL * pre[p + j] and pre[p + j] > 0]
         dropped = [j for j in range(k_c) if j not in alive]
         if alive:
+            idx = np.asarray(alive)
             sub = cc if len(alive) == k_c else cc[:, alive]
-            t, bad = _project_out(t, sub, after_fe[np.asarray(alive)])
-            dropped += [alive[i] for i in bad]
+            coef = _gram_coefficients(gram[p:, p:][np.ix_(idx, idx)], gram[p:, :p][idx], after_fe[idx])
+            if coef is not None:
+                t = tall_matmul(sub, coef, subtract_from=t)
+            else:
+                t, bad = _project_out(t, sub, after_fe[idx])
+                dropped += [alive[i] for i in bad]
     fe_levels = tuple(count_levels(cd) for cd in fe_codes)
     n_used_controls = k_c - len(dropped)
     return Absorbed(

@@ -14,7 +14,7 @@ from contextlib import contextmanager
 import numpy as np
 import scipy.linalg
 from numpy.typing import NDArray
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 Array = NDArray[np.float64]
 BLOCK_ROWS = 8192
@@ -23,11 +23,17 @@ BLOCK_ROWS = 8192
 GRAM_MIN_DIAG = 1e-3
 
 
+_CONTROLLER: ThreadpoolController | None = None
+
+
 @contextmanager
 def one_blas_thread() -> Iterator[None]:
     """Run the block in one BLAS thread: on tall, narrow products (n x 4 times 4 x 4) multithreaded BLAS was
     measured 15x slower than one thread on the project's 2-core machines (benchmarks/bench_estimation.py)."""
-    with threadpool_limits(limits=1, user_api="blas"):
+    global _CONTROLLER
+    if _CONTROLLER is None:  # finding the BLAS libraries costs ~20 ms; do it once per process
+        _CONTROLLER = ThreadpoolController()
+    with _CONTROLLER.limit(limits=1, user_api="blas"):
         yield
 
 
