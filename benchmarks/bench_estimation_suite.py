@@ -28,10 +28,10 @@ from __future__ import annotations
 
 import argparse
 import gc
-import warnings
 import statistics
 import time
 import tracemalloc
+import warnings
 from collections.abc import Callable
 from typing import Any
 
@@ -95,7 +95,13 @@ def peak_bytes(fn: Callable[[], Any]) -> int:
 
 def ours(df: pd.DataFrame) -> Any:
     return estimate(
-        df, outcome="y", treatment="x", instruments=["z1", "z2"], controls=CONTROLS, cluster="cluster", vcov="cluster"
+        df,
+        outcome="y",
+        treatment="x",
+        instruments=["z1", "z2"],
+        controls=CONTROLS,
+        cluster="cluster",
+        vcov="cluster",
     )
 
 
@@ -118,7 +124,9 @@ def gram_floor(df: pd.DataFrame) -> Any:
         four = a[:, :4]
         ia, ib = np.triu_indices(4)
         codes = df["cluster"].to_numpy()
-        sums = np.stack([np.bincount(codes, weights=four[:, i] * four[:, j]) for i, j in zip(ia, ib, strict=True)])
+        sums = np.stack(
+            [np.bincount(codes, weights=four[:, i] * four[:, j]) for i, j in zip(ia, ib, strict=True)]
+        )
     return gram, sums
 
 
