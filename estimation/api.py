@@ -6,6 +6,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 from typing import cast
 
@@ -17,9 +18,11 @@ from scipy import stats
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
 from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
+from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import PreparedData, prepare
-from ivdossier.estimation.diagnostics import DiagnosticSuite, weak_iv_suite
-from ivdossier.estimation.estimators import KClassFit, fit_kclass
+from ivdossier.estimation.diagnostics import DiagnosticSuite, unidentified_reason
+from ivdossier.estimation.estimators import KClassFit, fit_from_cross_products, fit_kclass
+from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
 from ivdossier.estimation.spec import ModelSpec, check_options
 from ivdossier.vocabulary import NotApplicable
@@ -78,12 +81,15 @@ def estimate(
     small_sample: bool = True,
     alpha: float = 0.05,
     fuller_alpha: float = 1.0,
+    report_controls: bool = False,
 ) -> EstimationResult:
     """Estimate the effect of ``treatment`` on ``outcome`` and return coefficients with diagnostics.
 
     ``method`` is one of "ols", "2sls", "liml", "fuller"; ``vcov`` one of "unadjusted", "robust", "cluster"
     (the last needs ``cluster``, one or two column names). Conventions are listed in ``result.conventions``.
-    The keywords build one :class:`~ivdossier.estimation.spec.ModelSpec`, validated as on every other path.
+    ``report_controls=True`` also reports the intercept and control coefficients and the R^2
+    (``result.controls_table``), from one extra fit of the full equation. The keywords build one
+    :class:`~ivdossier.estimation.spec.ModelSpec`, validated as on every other path.
     """
     spec = ModelSpec.build(
         outcome=outcome,
@@ -99,7 +105,7 @@ def estimate(
         alpha=alpha,
         fuller_alpha=fuller_alpha,
     )
-    return estimate_spec(data, spec)
+    return estimate_spec(data, spec, report_controls=report_controls)
 
 
 def prepare_spec(data: pd.DataFrame, spec: ModelSpec) -> PreparedData:
@@ -119,16 +125,55 @@ def prepare_spec(data: pd.DataFrame, spec: ModelSpec) -> PreparedData:
     )
 
 
-def estimate_spec(data: pd.DataFrame, spec: ModelSpec) -> EstimationResult:
+def estimate_spec(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool = False) -> EstimationResult:
     """Estimate a validated model spec on a data frame, with every diagnostic that applies."""
-    return estimate_prepared(
-        prepare_spec(data, spec),
-        method=spec.method,
-        vcov=spec.vcov,
-        small_sample=spec.small_sample,
-        alpha=spec.alpha,
-        fuller_alpha=spec.fuller_alpha,
+    with one_blas_thread():
+        return _estimate(data, spec, report_controls=report_controls)
+
+
+def _estimate(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool) -> EstimationResult:
+    prepared = prepare_spec(data, spec)
+    method, vcov, small_sample, alpha, fuller_alpha = (
+        spec.method,
+        spec.vcov,
+        spec.small_sample,
+        spec.alpha,
+        spec.fuller_alpha,
     )
+    outcome, inst, clus, weights = prepared.outcome, prepared.instruments, prepared.cluster, prepared.weights
+    result = estimate_prepared(
+        prepared, method=method, vcov=vcov, small_sample=small_sample, alpha=alpha, fuller_alpha=fuller_alpha
+    )
+    if not report_controls or result.identification is not None:
+        return result
+    used = [outcome, *prepared.treatment, *inst, *prepared.controls, *prepared.absorb, *clus]
+    used += [weights] if weights else []
+    rows = data[list(dict.fromkeys(used))].notna().all(axis=1).to_numpy()
+    frame = data[rows]
+
+    def cols(names: Sequence[str]) -> Array:
+        if not names:
+            return np.zeros((len(frame), 0))
+        return np.column_stack([frame[c].to_numpy(dtype=np.float64) for c in names])
+
+    from ivdossier.estimation.controls import controls_fit
+
+    table = controls_fit(
+        frame[outcome].to_numpy(dtype=np.float64),
+        cols(prepared.treatment),
+        cols(inst) if inst else None,
+        cols(prepared.controls),
+        treatment_names=prepared.treatment,
+        control_names=prepared.controls,
+        method=method,
+        beta=result.coef,
+        spec=CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample),
+        fe_codes=[pd.factorize(frame[c])[0].astype(np.int64) for c in prepared.absorb],
+        weights=frame[weights].to_numpy(dtype=np.float64) if weights else None,
+        n_absorbed=prepared.n_absorbed,
+        n_absorbed_nested=prepared.n_partialled_nested,
+    )
+    return dataclasses.replace(result, controls_table=table)
 
 
 def _interval_quantile(
@@ -151,25 +196,64 @@ def estimate_prepared(
     diagnostics: bool = True,
 ) -> EstimationResult:
     """Estimate from validated, partialled data; ``diagnostics=False`` skips the weak-instrument suite."""
+    with one_blas_thread():
+        return _estimate_prepared(
+            prepared,
+            method=method,
+            vcov=vcov,
+            small_sample=small_sample,
+            alpha=alpha,
+            fuller_alpha=fuller_alpha,
+            diagnostics=diagnostics,
+        )
+
+
+def _estimate_prepared(
+    prepared: PreparedData,
+    *,
+    method: str,
+    vcov: str,
+    small_sample: bool,
+    alpha: float,
+    fuller_alpha: float,
+    diagnostics: bool,
+) -> EstimationResult:
     check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
     spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
-    fit = fit_kclass(
-        prepared.y,
-        prepared.X,
-        prepared.Z if method != "ols" else None,
-        method=method,
-        n_partialled=prepared.n_partialled,
-        fuller_alpha=fuller_alpha,
-    )
-    cov = covariance_of(fit, spec, n_partialled=prepared.n_partialled, n_nested=prepared.n_partialled_nested)
-    se = np.sqrt(np.diag(cov))
+    cp = None
+    if method != "ols":
+        cp = build(
+            prepared.Z,
+            prepared.X,
+            prepared.y,
+            spec,
+            n_partialled=prepared.n_partialled,
+            n_partialled_nested=prepared.n_partialled_nested,
+        )
+        unident = unidentified_reason(cp, list(prepared.treatment), list(prepared.instruments))
+        if unident is not None:
+            return _unidentified_result(
+                prepared, cp, spec, method, vcov, small_sample, alpha, fuller_alpha, unident
+            )
     n, k = prepared.X.shape
     df_resid = n - k - prepared.n_partialled
+    if cp is not None:
+        mfit = fit_from_cross_products(cp, method=method, fuller_alpha=fuller_alpha)
+        beta, cov, kappa, kappa_liml, ssr = mfit.beta, mfit.cov, mfit.kappa, mfit.kappa_liml, mfit.ssr
+    else:
+        fit = fit_kclass(prepared.y, prepared.X, None, method=method, n_partialled=prepared.n_partialled)
+        cov = covariance_of(
+            fit, spec, n_partialled=prepared.n_partialled, n_nested=prepared.n_partialled_nested
+        )
+        beta, kappa, kappa_liml, ssr = fit.beta, fit.kappa, fit.kappa_liml, float(fit.resid @ fit.resid)
+    se = np.sqrt(np.diag(cov))
     n_clusters = spec.n_clusters()
     q, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, n_clusters, alpha)
-    ci = np.column_stack([fit.beta - q * se, fit.beta + q * se])
+    ci = np.column_stack([beta - q * se, beta + q * se])
     suite: DiagnosticSuite | NotApplicable | None = NotApplicable(OLS_REASON) if method == "ols" else None
     if diagnostics and method != "ols":
+        from ivdossier.estimation.diagnostics import weak_iv_suite
+
         try:
             suite = weak_iv_suite(
                 prepared.y,
@@ -178,17 +262,107 @@ def estimate_prepared(
                 spec=spec,
                 n_partialled=prepared.n_partialled,
                 n_partialled_nested=prepared.n_partialled_nested,
-                beta=fit.beta,
+                beta=beta,
                 method=method,
-                kappa=fit.kappa,
+                kappa=kappa,
                 endog_names=list(prepared.treatment),
                 instrument_names=list(prepared.instruments),
                 alpha=alpha,
+                cross_products=cp,
             )
         except EstimationError as exc:
             # e.g. no more clusters than instruments: the coefficients stand, the diagnostics cannot be had
             suite = NotApplicable(f"instrument diagnostics not computed: {exc}")
-    echo = {
+    return EstimationResult(
+        method=method,
+        vcov=vcov,
+        outcome=prepared.outcome,
+        names=prepared.treatment,
+        coef=beta,
+        se=se,
+        cov=cov,
+        ci=ci,
+        alpha=alpha,
+        n=n,
+        n_dropped=prepared.n_dropped,
+        n_clusters=n_clusters,
+        df_resid=df_resid,
+        ci_reference=ci_ref,
+        ref_df=ref_df,
+        kappa=kappa,
+        kappa_liml=kappa_liml,
+        sigma=float(np.sqrt(ssr / df_resid)),
+        n_partialled=prepared.n_partialled,
+        n_absorbed=prepared.n_absorbed,
+        n_absorbed_nested=prepared.n_partialled_nested,
+        fe_levels=prepared.fe_levels,
+        spec=_echo(prepared, method, vcov, small_sample, alpha, fuller_alpha),
+        conventions=conventions(vcov, small_sample),
+        diagnostics=suite,
+    )
+
+
+def _unidentified_result(
+    prepared: PreparedData,
+    cp: CrossProducts,
+    spec: CovSpec,
+    method: str,
+    vcov: str,
+    small_sample: bool,
+    alpha: float,
+    fuller_alpha: float,
+    reason: str,
+) -> EstimationResult:
+    """No coefficients (NaN) when the effect is not identified; the AR test and set are still reported."""
+    from ivdossier.estimation.diagnostics import suite_from
+
+    n, k = prepared.X.shape
+    nan = np.full(k, np.nan)
+    suite = suite_from(
+        cp,
+        beta=nan,
+        method=method,
+        kappa=float("nan"),
+        endog_names=list(prepared.treatment),
+        instrument_names=list(prepared.instruments),
+        alpha=alpha,
+    )
+    df_resid = n - k - prepared.n_partialled
+    _, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, spec.n_clusters(), alpha)
+    return EstimationResult(
+        method=method,
+        vcov=vcov,
+        outcome=prepared.outcome,
+        names=prepared.treatment,
+        coef=nan,
+        se=nan.copy(),
+        cov=np.full((k, k), np.nan),
+        ci=np.full((k, 2), np.nan),
+        alpha=alpha,
+        n=n,
+        n_dropped=prepared.n_dropped,
+        n_clusters=spec.n_clusters(),
+        df_resid=df_resid,
+        ci_reference=ci_ref,
+        ref_df=ref_df,
+        kappa=float("nan"),
+        kappa_liml=None,
+        sigma=float("nan"),
+        n_partialled=prepared.n_partialled,
+        n_absorbed=prepared.n_absorbed,
+        n_absorbed_nested=prepared.n_partialled_nested,
+        fe_levels=prepared.fe_levels,
+        spec=_echo(prepared, method, vcov, small_sample, alpha, fuller_alpha),
+        conventions=conventions(vcov, small_sample),
+        diagnostics=suite,
+        identification=reason,
+    )
+
+
+def _echo(
+    prepared: PreparedData, method: str, vcov: str, small_sample: bool, alpha: float, fuller_alpha: float
+) -> dict[str, object]:
+    return {
         "outcome": prepared.outcome,
         "treatment": list(prepared.treatment),
         "instruments": list(prepared.instruments),
@@ -202,33 +376,6 @@ def estimate_prepared(
         "alpha": alpha,
         "fuller_alpha": fuller_alpha,
     }
-    return EstimationResult(
-        method=method,
-        vcov=vcov,
-        outcome=prepared.outcome,
-        names=prepared.treatment,
-        coef=fit.beta,
-        se=se,
-        cov=cov,
-        ci=ci,
-        alpha=alpha,
-        n=n,
-        n_dropped=prepared.n_dropped,
-        n_clusters=n_clusters,
-        df_resid=df_resid,
-        ci_reference=ci_ref,
-        ref_df=ref_df,
-        kappa=fit.kappa,
-        kappa_liml=fit.kappa_liml,
-        sigma=float(np.sqrt(fit.resid @ fit.resid / df_resid)),
-        n_partialled=prepared.n_partialled,
-        n_absorbed=prepared.n_absorbed,
-        n_absorbed_nested=prepared.n_partialled_nested,
-        fe_levels=prepared.fe_levels,
-        spec=echo,
-        conventions=conventions(vcov, small_sample),
-        diagnostics=suite,
-    )
 
 
 def covariance_of(fit: KClassFit, spec: CovSpec, *, n_partialled: int, n_nested: int = 0) -> Array:

@@ -205,6 +205,8 @@ def prepare(
     n_all = len(data)
     keep = np.ones(n_all, dtype=bool)
     for (name, _), col in zip(numeric_names, cols, strict=True):
+        if np.isfinite(col).all():  # the common case: one pass, nothing to drop
+            continue
         inf = np.isinf(col)
         if inf.any():
             row = data.index[int(np.argmax(inf))]
@@ -272,17 +274,8 @@ def prepare(
             f"The outcome {outcome!r} has no variation left after partialling out the controls and fixed "
             "effects; check the specification."
         )
-    _name_collinear(x, scale[1 : 1 + k], treat, "treatment", "controls or fixed effects")
-    _name_collinear(z, scale[1 + k :], inst, "instrument", "controls or fixed effects")
-    if n_inst:
-        both = np.column_stack([x, z])
-        bad_inst = [j - k for j in collinear_columns(both, scale=scale[1:]) if j >= k]
-        if bad_inst:
-            listed = ", ".join(repr(inst[j]) for j in bad_inst)
-            raise EstimationError(
-                f"Instrument(s) {listed} are collinear with the other instruments or treatments after "
-                "partialling; drop the redundant instrument."
-            )
+    if not _clearly_full_rank(cols_out[:, 1:], scale[1:]):
+        _check_collinear(x, z, scale, treat, inst, k)
     return PreparedData(
         y=y,
         X=x,
@@ -303,6 +296,40 @@ def prepare(
         fe_levels=absorbed.fe_levels,
         absorb_iterations=absorbed.iterations,
     )
+
+
+def _clearly_full_rank(mat: Array, scale: Array) -> bool:
+    """One Gram pass: True when no column lost more than 1 - 1e-6 of its length to partialling and the
+    unit-length columns are far from collinear (Cholesky diagonal above 1e-3), so no detailed check is needed."""
+    if mat.shape[1] == 0:
+        return True
+    gram = mat.T @ mat
+    norms = np.sqrt(np.clip(np.diag(gram), 0.0, None))
+    if np.any(scale <= 0) or np.any(norms <= 1e-6 * scale):
+        return False
+    try:
+        chol = np.linalg.cholesky(gram / np.outer(norms, norms))
+    except np.linalg.LinAlgError:
+        return False
+    return bool(np.diag(chol).min() > 1e-3)
+
+
+def _check_collinear(
+    x: Array, z: Array, scale: Array, treat: tuple[str, ...], inst: tuple[str, ...], k: int
+) -> None:
+    """Name the treatments and instruments that are constant, partialled away or collinear."""
+    n_inst = len(inst)
+    _name_collinear(x, scale[1 : 1 + k], treat, "treatment", "controls or fixed effects")
+    _name_collinear(z, scale[1 + k :], inst, "instrument", "controls or fixed effects")
+    if n_inst:
+        both = np.column_stack([x, z])
+        bad_inst = [j - k for j in collinear_columns(both, scale=scale[1:]) if j >= k]
+        if bad_inst:
+            listed = ", ".join(repr(inst[j]) for j in bad_inst)
+            raise EstimationError(
+                f"Instrument(s) {listed} are collinear with the other instruments or treatments after "
+                "partialling; drop the redundant instrument."
+            )
 
 
 def _name_collinear(mat: Array, scale: Array, names: Sequence[str], role: str, others: str) -> None:

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import scipy.linalg
@@ -196,3 +197,67 @@ def fit_kclass(
         beta, bread = _chol_solve_inv(a, b)
     resid = tall_matmul(x, beta, subtract_from=yv)
     return KClassFit(method, np.asarray(beta, dtype=np.float64), float(kappa), k_liml, resid, xhat, bread)
+
+
+@dataclass(frozen=True, eq=False)
+class MomentFit:
+    """A k-class fit computed from the sufficient statistics: coefficients and covariance in data units."""
+
+    method: str
+    beta: Array
+    cov: Array
+    kappa: float
+    kappa_liml: float | None
+    ssr: float
+
+
+def fit_from_cross_products(cp: Any, *, method: str, fuller_alpha: float = 1.0) -> MomentFit:
+    """2SLS, LIML or Fuller from :class:`~ivdossier.estimation.crossproducts.CrossProducts` (no pass over
+    the rows): the same conventions as :func:`fit_kclass`, computed in the orthonormal coordinates."""
+    if method not in ("2sls", "liml", "fuller"):
+        raise InvalidInputError(f"Method {method!r} is not an instrumental-variable method.")
+    k, p = cp.k, cp.p
+    rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
+    qx, qy = rx[:k], ry[:k]
+    k_liml: float | None = None
+    if method == "2sls":
+        kappa = 1.0
+    else:
+        k_liml = _liml_kappa_coords(np.column_stack([ry, rx]), k)
+        kappa = k_liml if method == "liml" else k_liml - fuller_alpha / (cp.n - (k + cp.n_partialled))
+    if kappa == 1.0:
+        qq, rr = np.linalg.qr(qx)
+        beta = scipy.linalg.solve_triangular(rr, qq.T @ qy, check_finite=False)
+        rinv = scipy.linalg.solve_triangular(rr, np.eye(p), check_finite=False)
+        bread = rinv @ rinv.T
+    else:
+        a = (1.0 - kappa) * (rx.T @ rx) + kappa * (qx.T @ qx)
+        b = (1.0 - kappa) * (rx.T @ ry) + kappa * (qx.T @ qy)
+        beta, bread = _chol_solve_inv(a, b)
+    u = ry - rx @ beta
+    xhat = np.zeros_like(rx)
+    xhat[:k] = qx
+    cov_std = cp.covariance(xhat, u, bread, p)
+    unit = cp.scale[cp.iy] / cp.scale[cp.ix]
+    return MomentFit(
+        method=method,
+        beta=np.asarray(beta * unit, dtype=np.float64),
+        cov=np.asarray(cov_std * np.outer(unit, unit), dtype=np.float64),
+        kappa=float(kappa),
+        kappa_liml=k_liml,
+        ssr=float(u @ u) * float(cp.scale[cp.iy]) ** 2,
+    )
+
+
+def _liml_kappa_coords(w: Array, k: int) -> float:
+    """Smallest eigenvalue of (W'M_Z W)^{-1} W'W from coordinates (the first k span the instruments)."""
+    ww = w.T @ w
+    wmw = w[k:].T @ w[k:]
+    try:
+        vals = scipy.linalg.eigh(ww, wmw, eigvals_only=True, check_finite=False)
+    except np.linalg.LinAlgError as exc:
+        raise EstimationError(
+            "LIML needs W'M_Z W to be positive definite, but the instruments fit [y, X] exactly; "
+            "check for an outcome or treatment that is a combination of the instruments."
+        ) from exc
+    return float(vals.min())

@@ -8,15 +8,33 @@ column-scaled Gram matrix when it is well conditioned, else a Householder QR (th
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
+
 import numpy as np
 import scipy.linalg
 from numpy.typing import NDArray
+from threadpoolctl import ThreadpoolController
 
 Array = NDArray[np.float64]
 BLOCK_ROWS = 8192
 # smallest diagonal element of the Cholesky factor of the unit-diagonal Gram matrix for the fast path:
 # above 1e-3 no column has R^2 above 1 - 1e-6 on the columns before it, so cond(Gram) stays near 1e6 at most
 GRAM_MIN_DIAG = 1e-3
+
+
+_CONTROLLER: ThreadpoolController | None = None
+
+
+@contextmanager
+def one_blas_thread() -> Iterator[None]:
+    """Run the block in one BLAS thread: on tall, narrow products (n x 4 times 4 x 4) multithreaded BLAS was
+    measured 15x slower than one thread on the project's 2-core machines (benchmarks/bench_estimation.py)."""
+    global _CONTROLLER
+    if _CONTROLLER is None:  # finding the BLAS libraries costs ~20 ms; do it once per process
+        _CONTROLLER = ThreadpoolController()
+    with _CONTROLLER.limit(limits=1, user_api="blas"):
+        yield
 
 
 def tall_matmul(a: np.ndarray, b: np.ndarray, *, subtract_from: np.ndarray | None = None) -> Array:

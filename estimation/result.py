@@ -9,6 +9,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import stats
 
+from ivdossier.estimation.controls import ControlsTable
 from ivdossier.estimation.diagnostics import DiagnosticSuite
 from ivdossier.jsonsafe import Record, json_safe
 from ivdossier.vocabulary import NotApplicable
@@ -64,6 +65,8 @@ class EstimationResult(Record):
     spec: dict[str, Any] = field(default_factory=dict)
     conventions: dict[str, str] = field(default_factory=dict)
     diagnostics: DiagnosticSuite | NotApplicable | None = None
+    identification: str | None = None
+    controls_table: ControlsTable | None = None
 
     @property
     def not_applicable(self) -> str | None:
@@ -130,6 +133,9 @@ class EstimationResult(Record):
         }
         for name in DIAGNOSTIC_SECTIONS:
             out[name] = self._section(name)
+        out["identification"] = self.identification
+        if self.controls_table is not None:
+            out["controls"] = self.controls_table.to_dict()
         out["spec"] = json_safe(self.spec)
         out["conventions"] = dict(self.conventions)
         return out
@@ -157,6 +163,11 @@ class EstimationResult(Record):
         for name, b, s, (lo, hi) in zip(self.names, self.coef, self.se, self.ci, strict=True):
             lines.append(f"  {name:<{width}}  {b:>12.6g}  {s:>12.6g}  [{lo:>11.6g}, {hi:>11.6g}]")
         lines.append(f"  intervals use {self.ci_reference}")
+        if self.identification is not None:
+            lines.append(f"  not identified: {self.identification}")
+        if self.controls_table is not None:
+            lines.append("")
+            lines.extend(f"  {line}" for line in str(self.controls_table).splitlines())
         lines.append("")
         if self.not_applicable is not None:
             lines.append(f"  Instrument diagnostics: not applicable ({self.not_applicable}).")

@@ -40,9 +40,24 @@ from numpy.typing import NDArray
 from scipy import integrate, optimize, special, stats
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.covariance import CovSpec, sandwich
+from ivdossier.estimation.covariance import CovSpec
 from ivdossier.estimation.critical_values import TF_SOURCE, tf_critical_value
-from ivdossier.estimation.strength import as_matrix, denominator_df, f_p_value, ols, wald
+from ivdossier.estimation.crossproducts import (
+    SINGULAR_RTOL,
+    ZERO_RTOL,
+    CrossProducts,
+    build,
+    quad_form_inv,
+)
+from ivdossier.estimation.strength import (
+    as_matrix,
+    denominator_df_cp,
+    f_p_value,
+    instrument_basis,
+    require_distinct_instruments,
+    to_instrument_units,
+    wald,
+)
 from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
@@ -181,6 +196,21 @@ class ReducedForm(Record):
         }
 
 
+def _cp(
+    y: np.ndarray | None,
+    x: np.ndarray,
+    z: np.ndarray,
+    spec: CovSpec,
+    n_partialled: int,
+    n_partialled_nested: int,
+) -> CrossProducts:
+    zm, xm = as_matrix(z, "Z"), as_matrix(x, "X")
+    ym = None if y is None else as_matrix(y, "y")
+    cp = build(zm, xm, ym, spec, n_partialled=n_partialled, n_partialled_nested=n_partialled_nested)
+    require_distinct_instruments(cp, [f"column {j}" for j in range(cp.k)])
+    return cp
+
+
 def reduced_form(
     y: np.ndarray,
     z: np.ndarray,
@@ -192,24 +222,37 @@ def reduced_form(
 ) -> ReducedForm:
     """Coefficients of y on each instrument with SEs under the chosen covariance and the F-form Wald test."""
     ym, zm = as_matrix(y, "y"), as_matrix(z, "Z")
-    n, k = zm.shape
-    coef, resid = ols(zm, ym)
-    cov = sandwich(zm, resid, spec, n_partialled=n_partialled, n_partialled_nested=n_partialled_nested)
-    f = wald(coef[:, 0], cov) / k
-    d = denominator_df(spec, n, k, n_partialled)
+    cp = _cp(None, ym, zm, spec, n_partialled, n_partialled_nested)  # y in the role of the one "treatment"
+    return reduced_form_from(cp, instrument_names=instrument_names, column=cp.k)
+
+
+def reduced_form_from(
+    cp: CrossProducts, *, instrument_names: list[str], column: int | None = None
+) -> ReducedForm:
+    """Reduced form of the outcome column (or ``column``) on the instruments, from the sufficient statistics."""
+    k = cp.k
+    col = cp.iy if column is None else column
+    coef = np.asarray(cp.r[:k, col], dtype=np.float64)
+    resid = np.array(cp.r[:, col], dtype=np.float64)
+    resid[:k] = 0.0
+    cov = cp.covariance(instrument_basis(cp), resid, np.eye(k), k)
+    f = quad_form_inv(cov, coef, "the reduced-form coefficients") / k
+    d = denominator_df_cp(cp, k)
+    coef_o, cov_o = to_instrument_units(cp, coef, cov, col)
     return ReducedForm(
-        coefficients={nm: float(coef[i, 0]) for i, nm in enumerate(instrument_names)},
-        std_errors={nm: float(math.sqrt(max(cov[i, i], 0.0))) for i, nm in enumerate(instrument_names)},
+        coefficients={nm: float(coef_o[i]) for i, nm in enumerate(instrument_names)},
+        std_errors={nm: float(math.sqrt(max(cov_o[i, i], 0.0))) for i, nm in enumerate(instrument_names)},
         wald_f=f,
         df=(k, d),
         p_value=f_p_value(f, k, d),
-        cov_kind=spec.kind,
+        cov_kind=cp.kind,
     )
 
 
 @dataclass(frozen=True)
 class _Moments:
-    """Reduced-form and first-stage coefficients on Z and their joint covariance (one endogenous)."""
+    """Reduced-form and first-stage coefficients on the orthonormal instrument basis (standardised units)
+    and their joint covariance (one endogenous); an effect b in data units is b_std * unit."""
 
     pi_y: Array
     pi_x: Array
@@ -219,29 +262,45 @@ class _Moments:
     zz: Array
     k: int
     d: int
+    unit: float = 1.0
+    joint_rank: int = 0
 
 
-def _moments(
-    y: Array, x: Array, z: Array, spec: CovSpec, n_partialled: int, n_partialled_nested: int
-) -> _Moments:
-    n, k = z.shape
-    coef, resid = ols(z, np.column_stack([y[:, 0], x[:, 0]]))
-    v = sandwich(z, resid, spec, n_partialled=n_partialled, n_partialled_nested=n_partialled_nested)
+def moments_from(cp: CrossProducts) -> _Moments:
+    """The AR/CLR/tF moments of the first endogenous regressor from the sufficient statistics."""
+    k = cp.k
+    cols = [cp.iy, cp.k]
+    coef = np.asarray(cp.r[:k, cols], dtype=np.float64)
+    resid = np.array(cp.r[:, cols], dtype=np.float64)
+    resid[:k] = 0.0
+    v = cp.covariance(instrument_basis(cp), resid, np.eye(k), k)
+    vals = np.linalg.eigvalsh((v + v.T) / 2)
+    top = float(np.abs(vals).max()) if vals.size else 0.0
+    rank = int(np.count_nonzero(np.abs(vals) > SINGULAR_RTOL * top)) if top > 0 else 0
     return _Moments(
         pi_y=coef[:, 0],
         pi_x=coef[:, 1],
         v_yy=v[:k, :k],
         v_yx=v[:k, k:],
         v_xx=v[k:, k:],
-        zz=z.T @ z,
+        zz=np.eye(k),
         k=k,
-        d=denominator_df(spec, n, k, n_partialled),
+        d=denominator_df_cp(cp, k),
+        unit=float(cp.scale[cp.iy] / cp.scale[cp.k]),
+        joint_rank=rank,
     )
 
 
+def _moments(
+    y: Array, x: Array, z: Array, spec: CovSpec, n_partialled: int, n_partialled_nested: int
+) -> _Moments:
+    return moments_from(_cp(y, x[:, :1], z, spec, n_partialled, n_partialled_nested))
+
+
 def _ar_wald(m: _Moments, b: float) -> float:
+    """AR Wald statistic at b in standardised units (b = +/-inf allowed through the angle form)."""
     w = m.v_yy - b * (m.v_yx + m.v_yx.T) + b * b * m.v_xx
-    return wald(m.pi_y - b * m.pi_x, w)
+    return quad_form_inv(w, m.pi_y - b * m.pi_x, "the Anderson–Rubin moments")
 
 
 def ar_statistics(
@@ -259,7 +318,7 @@ def ar_statistics(
     m = _moments(
         as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z"), spec, n_partialled, n_partialled_nested
     )
-    return np.array([_ar_wald(m, float(b)) / m.k for b in np.asarray(betas, dtype=np.float64)]), m.d
+    return np.array([_ar_wald(m, float(b) / m.unit) / m.k for b in np.asarray(betas, dtype=np.float64)]), m.d
 
 
 @dataclass(frozen=True)
@@ -309,21 +368,35 @@ def anderson_rubin(
 ) -> AndersonRubin:
     """AR test at ``null`` (default beta = 0) and, for one endogenous regressor, the (1 - alpha) set."""
     ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
+    return anderson_rubin_from(
+        _cp(ym, xm, zm, spec, n_partialled, n_partialled_nested), alpha=alpha, null=null
+    )
+
+
+def _scale_intervals(intervals: list[Interval], unit: float) -> list[Interval]:
+    return [(lo * unit, hi * unit) for lo, hi in intervals]
+
+
+def anderson_rubin_from(
+    cp: CrossProducts, *, alpha: float = 0.05, null: np.ndarray | None = None
+) -> AndersonRubin:
+    """AR test and set from the sufficient statistics (standardised units inside, data units out)."""
     if not 0 < alpha < 1:
         raise InvalidInputError(f"alpha must lie in (0, 1), got {alpha}; use e.g. 0.05.")
-    n, k = zm.shape
-    p = xm.shape[1]
+    k, p = cp.k, cp.p
     b0 = np.zeros(p) if null is None else np.asarray(null, dtype=np.float64).ravel()
     if b0.shape != (p,):
         raise InvalidInputError(
             f"The AR null must have one value per endogenous regressor ({p}), got {b0.size}."
         )
-    d = denominator_df(spec, n, k, n_partialled)
-    kw: dict[str, Any] = {"n_partialled": n_partialled, "n_partialled_nested": n_partialled_nested}
+    d = denominator_df_cp(cp, k)
     if p > 1:
-        coef, resid = ols(zm, ym - xm @ b0[:, None])
-        cov = sandwich(zm, resid, spec, **kw)
-        stat = wald(coef[:, 0], cov) / k
+        b_std = b0 * cp.scale[cp.ix] / cp.scale[cp.iy]
+        u = cp.coords(cp.iy) - cp.coords(cp.ix) @ b_std
+        resid = u.copy()
+        resid[:k] = 0.0
+        cov = cp.covariance(instrument_basis(cp), resid, np.eye(k), k)
+        stat = quad_form_inv(cov, u[:k], "the Anderson–Rubin moments") / k
         return AndersonRubin(
             null=tuple(float(v) for v in b0),
             statistic=stat,
@@ -335,12 +408,24 @@ def anderson_rubin(
             method=None,
             reason="joint test only: with several endogenous regressors the confidence set "
             "(or its projection) is not computed",
-            cov_kind=spec.kind,
+            cov_kind=cp.kind,
         )
-    m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
-    stat = _ar_wald(m, float(b0[0])) / k
+    m = moments_from(cp)
+    stat = _ar_wald(m, float(b0[0]) / m.unit) / k
     crit = k * float(stats.f.ppf(1 - alpha, k, d))
-    intervals, how = _ar_confidence_set(m, crit, spec.kind)
+    reason = None
+    intervals: list[Interval] | None
+    how: str | None
+    if k > 1 and cp.kind != "unadjusted" and m.joint_rank < 2 * k:
+        intervals, how = None, None
+        reason = (
+            f"the confidence set is not computed: the joint covariance of the reduced-form and first-stage "
+            f"coefficients has rank {m.joint_rank} of {2 * k}"
+            + (f" (with {min(cp.cluster_counts())} clusters)" if cp.kind == "cluster" else "")
+        )
+    else:
+        std_set, how = _ar_confidence_set(m, crit, cp.kind)
+        intervals = _scale_intervals(std_set, m.unit)
     return AndersonRubin(
         null=(float(b0[0]),),
         statistic=stat,
@@ -348,10 +433,10 @@ def anderson_rubin(
         p_value=f_p_value(stat, k, d),
         alpha=alpha,
         intervals=intervals,
-        shape=classify_set(intervals),
+        shape=None if intervals is None else classify_set(intervals),
         method=how,
-        reason=None,
-        cov_kind=spec.kind,
+        reason=reason,
+        cov_kind=cp.kind,
     )
 
 
@@ -450,16 +535,21 @@ def tf_inference(
 ) -> TFResult:
     """tF interval beta_IV +/- c(F) se at the 5 % level; F is the first-stage Wald F, chosen covariance."""
     ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
-    if xm.shape[1] != 1 or zm.shape[1] != 1:
+    return tf_from(_cp(ym, xm, zm, spec, n_partialled, n_partialled_nested))
+
+
+def tf_from(cp: CrossProducts) -> TFResult:
+    """tF from the sufficient statistics (standardised units inside, data units out)."""
+    if cp.p != 1 or cp.k != 1:
         return TFResult(
             applicable=False,
             reason="the published tF critical values cover one instrument and one endogenous regressor; "
-            f"this model has {zm.shape[1]} instrument(s) and {xm.shape[1]} endogenous regressor(s)",
+            f"this model has {cp.k} instrument(s) and {cp.p} endogenous regressor(s)",
         )
-    m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
+    m = moments_from(cp)
     px, py = float(m.pi_x[0]), float(m.pi_y[0])
     vxx, vyx, vyy = float(m.v_xx[0, 0]), float(m.v_yx[0, 0]), float(m.v_yy[0, 0])
-    if px == 0 or vxx <= 0:
+    if abs(px) <= ZERO_RTOL or vxx <= 0:
         return TFResult(
             False, "the first-stage coefficient or its variance is zero, so the IV estimate or F is undefined"
         )
@@ -468,18 +558,19 @@ def tf_inference(
     se = math.sqrt(max(vyy - 2 * beta * vyx + beta * beta * vxx, 0.0)) / abs(px)
     c = tf_critical_value(f)
     t = beta / se if se > 0 else math.inf
-    interval = (-math.inf, math.inf) if math.isinf(c) else (beta - c * se, beta + c * se)
+    u = m.unit
+    interval = (-math.inf, math.inf) if math.isinf(c) else ((beta - c * se) * u, (beta + c * se) * u)
     return TFResult(
         applicable=True,
         reason=None,
-        estimate=beta,
-        std_error=se,
+        estimate=beta * u,
+        std_error=se * u,
         first_stage_f=f,
         critical_value=c,
         interval=interval,
         significant_5pct=bool(abs(t) > c),
         t_ratio=t,
-        cov_kind=spec.kind,
+        cov_kind=cp.kind,
     )
 
 
@@ -602,6 +693,72 @@ def _clr_stats_robust(m: _Moments, theta: float) -> tuple[float, float]:
     return clr, r
 
 
+def _clr_stats_many(m: _Moments, omega: Array, thetas: Array) -> tuple[Array, Array]:
+    """Vectorised :func:`_clr_stats` over an array of angles."""
+    c, s = np.cos(thetas), np.sin(thetas)
+    b0 = np.column_stack([c, -s])
+    a0 = np.column_stack([s, c])
+    psi = _sqrt_psd(m.zz) @ np.column_stack([m.pi_y, m.pi_x])
+    oi_a = np.linalg.solve(omega, a0.T).T
+    s_vec = (b0 @ psi.T) / np.sqrt(np.einsum("ti,ij,tj->t", b0, omega, b0))[:, None]
+    t_vec = (oi_a @ psi.T) / np.sqrt(np.einsum("ti,ti->t", a0, oi_a))[:, None]
+    qs, qt = np.einsum("ti,ti->t", s_vec, s_vec), np.einsum("ti,ti->t", t_vec, t_vec)
+    qst = np.einsum("ti,ti->t", s_vec, t_vec)
+    lr = 0.5 * (qs - qt + np.sqrt((qs - qt) ** 2 + 4 * qst * qst))
+    return lr, qt
+
+
+def _clr_stats_robust_many(m: _Moments, thetas: Array) -> tuple[Array, Array]:
+    """Vectorised :func:`_clr_stats_robust` over an array of angles (batched k x k solves)."""
+    c, s = np.cos(thetas)[:, None, None], np.sin(thetas)[:, None, None]
+    cv, sv = c[:, :, 0], s[:, :, 0]
+    g = cv * m.pi_y[None, :] - sv * m.pi_x[None, :]
+    h = sv * m.pi_y[None, :] + cv * m.pi_x[None, :]
+    v_xy = m.v_yx.T
+    v_gg = c * c * m.v_yy - s * c * (m.v_yx + v_xy) + s * s * m.v_xx
+    v_hh = s * s * m.v_yy + s * c * (m.v_yx + v_xy) + c * c * m.v_xx
+    v_hg = s * c * m.v_yy - s * s * m.v_yx + c * c * v_xy - s * c * m.v_xx
+    w_g = np.linalg.solve(v_gg, g[:, :, None])[:, :, 0]
+    d = h - np.einsum("tij,tj->ti", v_hg, w_g)
+    v_dd_g = v_hh - v_hg @ np.linalg.solve(v_gg, np.swapaxes(v_hg, 1, 2))
+    ar = np.einsum("ti,ti->t", g, w_g)
+    w_d = np.linalg.solve(v_gg, d[:, :, None])[:, :, 0]
+    dd = np.einsum("ti,ti->t", d, w_d)
+    gd = np.einsum("ti,ti->t", g, w_d)
+    lm = np.where(dd > 0, gd * gd / np.where(dd > 0, dd, 1.0), 0.0)
+    r = np.maximum(np.einsum("ti,ti->t", d, np.linalg.solve(v_dd_g, d[:, :, None])[:, :, 0]), 0.0)
+    clr = 0.5 * (ar - r + np.sqrt(np.maximum((ar + r) ** 2 - 4 * (ar - lm) * r, 0.0)))
+    return clr, r
+
+
+_GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(96)
+
+
+def clr_p_values(lr: Array, qt: Array, k: int) -> Array:
+    """Vectorised P(LR > lr | Q_T = qt): the integral of :func:`clr_p_value` after v = u^2 (which makes the
+    integrand smooth for every k) by 96-point Gauss–Legendre; used to scan the set's grid, while reported
+    p-values and set ends use the adaptive scalar version."""
+    lr = np.maximum(np.asarray(lr, dtype=np.float64), 0.0)
+    qt = np.asarray(qt, dtype=np.float64)
+    if k == 1:
+        return np.asarray(special.chdtrc(1, lr), dtype=np.float64)
+    upper = lr + qt
+    tail = special.chdtrc(k - 1, upper)
+    v_max = np.minimum(upper, float(special.chdtri(k - 1, 1e-15)))
+    top = np.sqrt(v_max)
+    u = 0.5 * top[:, None] * (_GL_NODES[None, :] + 1.0)
+    half = (k - 1) / 2
+    log_norm = -half * math.log(2) - math.lgamma(half)
+    # chi2(k-1) density at v = u^2 times dv = 2u du: 2 exp(log_norm) u^(k-2) exp(-u^2 / 2)
+    dens = 2.0 * np.exp(log_norm - u * u / 2) * (u ** (k - 2) if k > 2 else 1.0)
+    safe_upper = np.where(upper > 0, upper, 1.0)[:, None]
+    arg = np.maximum(lr[:, None] - u * u * lr[:, None] / safe_upper, 0.0)
+    vals = dens * special.erfc(np.sqrt(arg / 2))
+    integral = 0.5 * top * (vals @ _GL_WEIGHTS)
+    out = np.clip(tail + integral, 0.0, 1.0)
+    return np.asarray(np.where(lr <= 0, 1.0, out), dtype=np.float64)
+
+
 def clr_inference(
     y: np.ndarray,
     x: np.ndarray,
@@ -621,17 +778,29 @@ def clr_inference(
     the same conditional null distribution given its rank statistic r (asymptotic under weak instruments).
     """
     ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
-    if xm.shape[1] != 1:
+    cp = _cp(ym, xm, zm, spec, n_partialled, n_partialled_nested)
+    return clr_from(cp, alpha=alpha, null=null, n_grid=n_grid)
+
+
+def clr_from(cp: CrossProducts, *, alpha: float = 0.05, null: float = 0.0, n_grid: int = 241) -> CLRResult:
+    """CLR test and set from the sufficient statistics (standardised units inside, data units out)."""
+    if cp.p != 1:
         return CLRResult(False, "the CLR test here covers one endogenous regressor")
-    m = _moments(ym, xm, zm, spec, n_partialled, n_partialled_nested)
+    m = moments_from(cp)
     k = m.k
-    q = m.zz
-    if spec.kind == "unadjusted":
+    if m.joint_rank < 2 * k and cp.kind != "unadjusted":
+        return CLRResult(
+            False,
+            f"not computed: the joint covariance of the reduced-form and first-stage coefficients has rank "
+            f"{m.joint_rank} of {2 * k}"
+            + (f" (with {min(cp.cluster_counts())} clusters)" if cp.kind == "cluster" else ""),
+        )
+    if cp.kind == "unadjusted":
         omega = (
             np.array(
                 [
-                    [np.trace(m.v_yy @ q), np.trace(m.v_yx @ q)],
-                    [np.trace(m.v_yx.T @ q), np.trace(m.v_xx @ q)],
+                    [np.trace(m.v_yy), np.trace(m.v_yx)],
+                    [np.trace(m.v_yx.T), np.trace(m.v_xx)],
                 ]
             )
             / k
@@ -640,25 +809,32 @@ def clr_inference(
         def stats_at(theta: float) -> tuple[float, float]:
             return _clr_stats(m, omega, theta)
 
+        def stats_many(thetas: Array) -> tuple[Array, Array]:
+            return _clr_stats_many(m, omega, thetas)
+
         version = "Moreira (2003), homoskedastic"
     else:
 
         def stats_at(theta: float) -> tuple[float, float]:
             return _clr_stats_robust(m, theta)
 
-        version = f"Kleibergen (2005) GMM form with the {spec.kind} covariance"
+        def stats_many(thetas: Array) -> tuple[Array, Array]:
+            return _clr_stats_robust_many(m, thetas)
+
+        version = f"Kleibergen (2005) GMM form with the {cp.kind} covariance"
 
     def margin(theta: float) -> float:
         lr, qt = stats_at(theta)
         return alpha - clr_p_value(lr, qt, k)
 
-    lr0, qt0 = stats_at(math.atan(null))
+    lr0, qt0 = stats_at(math.atan(null / m.unit))
     p0 = clr_p_value(lr0, qt0, k)
     center, scale = _iv_center(m)
     thetas = angle_grid(center, scale, n_uniform=n_grid, n_local=n_grid)
-    margins = np.array([margin(float(t)) for t in thetas])
+    lrs, qts = stats_many(thetas)
+    margins = alpha - clr_p_values(lrs, qts, k)
     thetas, margins = _refine_dip(margin, thetas, margins)
-    intervals = invert_on_circle(margin, thetas, margins, xtol=1e-10)
+    intervals = _scale_intervals(invert_on_circle(margin, thetas, margins, xtol=1e-10), m.unit)
     return CLRResult(
         applicable=True,
         reason=None,
@@ -670,7 +846,7 @@ def clr_inference(
         intervals=intervals,
         shape=classify_set(intervals),
         version=version,
-        cov_kind=spec.kind,
+        cov_kind=cp.kind,
     )
 
 

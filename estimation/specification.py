@@ -29,8 +29,21 @@ import numpy as np
 from scipy import stats
 
 from ivdossier.errors import EstimationError
-from ivdossier.estimation.covariance import CovSpec, sandwich
-from ivdossier.estimation.strength import Array, as_matrix, denominator_df, ols, wald
+from ivdossier.estimation.covariance import CovSpec
+from ivdossier.estimation.crossproducts import (
+    CrossProducts,
+    build,
+    lstsq_coords,
+    quad_form_inv,
+    solve_psd,
+)
+from ivdossier.estimation.strength import (
+    Array,
+    as_matrix,
+    denominator_df_cp,
+    instrument_basis,
+    require_distinct_instruments,
+)
 from ivdossier.jsonsafe import Record, json_safe
 
 
@@ -60,35 +73,55 @@ class OverId(Record):
         }
 
 
+def _cp(
+    y: np.ndarray, x: np.ndarray, z: np.ndarray, spec: CovSpec, n_partialled: int, nested: int = 0
+) -> CrossProducts:
+    ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
+    cp = build(zm, xm, ym, spec, n_partialled=n_partialled, n_partialled_nested=nested)
+    require_distinct_instruments(cp, [f"column {j}" for j in range(cp.k)])
+    return cp
+
+
+def _std_beta(cp: CrossProducts, beta: np.ndarray) -> Array:
+    """Coefficients in data units -> standardised units (b_std = b * scale_x / scale_y)."""
+    return np.asarray(beta, dtype=np.float64).ravel() * cp.scale[cp.ix] / cp.scale[cp.iy]
+
+
 def sargan(y: np.ndarray, x: np.ndarray, z: np.ndarray, beta: np.ndarray) -> float:
     """Sargan statistic n u'P_Z u / u'u at the residual u = y - X beta."""
-    ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
-    u = ym[:, 0] - xm @ np.asarray(beta, dtype=np.float64).ravel()
-    coef, _ = ols(zm, u[:, None])
-    fitted = zm @ coef[:, 0]
-    return float(zm.shape[0] * (fitted @ fitted) / (u @ u))
+    cp = _cp(y, x, z, CovSpec("unadjusted"), 0)
+    return sargan_from(cp, beta)
 
 
-def _meat(z: Array, u: Array, spec: CovSpec, n_partialled: int) -> Array:
-    raw = CovSpec(spec.kind, spec.clusters, small_sample=False)
-    return sandwich(z, u, raw, n_partialled=n_partialled, bread=np.eye(z.shape[1]))
+def sargan_from(cp: CrossProducts, beta: np.ndarray) -> float:
+    """Sargan from the sufficient statistics: n ||u_Z||^2 / ||u||^2 in orthonormal coordinates."""
+    u = cp.coords(cp.iy) - cp.coords(cp.ix) @ _std_beta(cp, beta)
+    return float(cp.n * (u[: cp.k] @ u[: cp.k]) / (u @ u))
 
 
 def hansen_j(
     y: np.ndarray, x: np.ndarray, z: np.ndarray, *, spec: CovSpec, n_partialled: int
 ) -> tuple[float, np.ndarray]:
     """Hansen J from two-step efficient GMM (step-1 2SLS weight); returns (J, two-step GMM coefficients)."""
-    ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
     if spec.kind == "unadjusted":
         raise EstimationError("Hansen J needs a robust or cluster covariance; use the Sargan test otherwise.")
-    zx, zy = zm.T @ xm, zm.T @ ym[:, 0]
-    zz_inv = np.linalg.inv(zm.T @ zm)
-    b1 = np.linalg.solve(zx.T @ zz_inv @ zx, zx.T @ zz_inv @ zy)
-    s = _meat(zm, ym[:, 0] - xm @ b1, spec, n_partialled)
-    w = np.linalg.pinv(s)
-    b2 = np.linalg.solve(zx.T @ w @ zx, zx.T @ w @ zy)
-    g = zm.T @ (ym[:, 0] - xm @ b2)
-    return float(g @ w @ g), b2
+    return hansen_j_from(_cp(y, x, z, spec, n_partialled))
+
+
+def hansen_j_from(cp: CrossProducts) -> tuple[float, np.ndarray]:
+    """Two-step GMM on the orthonormal basis (Z'Z = I): step 1 is 2SLS, S the large-sample meat of its
+    residual; J = g' S^{-1} g at the step-2 estimate. Basis-invariant, so no pseudo-inverse cut-off is needed;
+    a singular S is reported as not computable."""
+    k = cp.k
+    zx, zy = cp.r[:k, cp.ix], cp.r[:k, cp.iy]
+    rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
+    b1 = np.linalg.lstsq(zx, zy, rcond=None)[0]
+    s = cp.meat(instrument_basis(cp), ry - rx @ b1, k, small_sample=False)
+    w_zx = solve_psd(s, zx, "the moment conditions")
+    b2 = np.linalg.solve(zx.T @ w_zx, w_zx.T @ zy)
+    g = zy - zx @ b2
+    j = quad_form_inv(s, g, "the moment conditions")
+    return j, b2 * cp.scale[cp.iy] / cp.scale[cp.ix]
 
 
 def overid_test(
@@ -102,28 +135,39 @@ def overid_test(
 ) -> OverId:
     """Sargan under the unadjusted covariance, Hansen J otherwise; not applicable when just identified."""
     xm, zm = as_matrix(x, "X"), as_matrix(z, "Z")
-    k, p = zm.shape[1], xm.shape[1]
+    if zm.shape[1] <= xm.shape[1]:
+        return _just_identified(zm.shape[1], xm.shape[1], spec.kind)
+    return overid_from(_cp(y, xm, zm, spec, n_partialled), beta=beta)
+
+
+def _just_identified(k: int, p: int, kind: str) -> OverId:
+    return OverId(
+        None,
+        None,
+        None,
+        None,
+        f"just identified ({k} instrument(s) for {p} endogenous regressor(s)): there are no "
+        "over-identifying restrictions to test",
+        kind,
+    )
+
+
+def overid_from(cp: CrossProducts, *, beta: np.ndarray) -> OverId:
+    """Over-identification test from the sufficient statistics."""
+    k, p = cp.k, cp.p
     if k <= p:
-        return OverId(
-            None,
-            None,
-            None,
-            None,
-            f"just identified ({k} instrument(s) for {p} endogenous regressor(s)): there are no "
-            "over-identifying restrictions to test",
-            spec.kind,
-        )
+        return _just_identified(k, p, cp.kind)
     df = k - p
-    if spec.kind == "unadjusted":
-        stat, name = sargan(y, xm, zm, beta), "sargan"
+    if cp.kind == "unadjusted":
+        stat, name = sargan_from(cp, beta), "sargan"
     else:
-        stat, name = hansen_j(y, xm, zm, spec=spec, n_partialled=n_partialled)[0], "hansen_j"
-    return OverId(name, stat, df, float(stats.chi2.sf(stat, df)), None, spec.kind)
+        stat, name = hansen_j_from(cp)[0], "hansen_j"
+    return OverId(name, stat, df, float(stats.chi2.sf(stat, df)), None, cp.kind)
 
 
 @dataclass(frozen=True)
 class Endogeneity(Record):
-    """Durbin–Wu–Hausman test in control-function form with the chosen covariance."""
+    """Durbin–Wu–Hausman test in control-function form with the chosen covariance, and Durbin's form."""
 
     statistic: float
     df: int
@@ -132,6 +176,8 @@ class Endogeneity(Record):
     f_df: tuple[int, int]
     f_p_value: float
     cov_kind: str
+    durbin: float | None = None
+    durbin_p_value: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-safe dict."""
@@ -146,6 +192,14 @@ class Endogeneity(Record):
             "f_p_value": json_safe(self.f_p_value),
             "cov": self.cov_kind,
             "null": "the endogenous regressors are exogenous (given valid instruments)",
+            "durbin": {
+                "statistic": json_safe(self.durbin),
+                "df": self.df,
+                "distribution": f"chi2({self.df})",
+                "p_value": json_safe(self.durbin_p_value),
+                "form": "n (e0'P_[Z,X] e0 - e'P_Z e) / e0'e0 with e0 the OLS and e the 2SLS residuals "
+                "(Durbin 1954); assumes homoskedastic errors whatever the covariance chosen",
+            },
         }
 
 
@@ -159,15 +213,27 @@ def durbin_wu_hausman(
     n_partialled_nested: int = 0,
 ) -> Endogeneity:
     """Wald test that the first-stage residuals have zero coefficients in the outcome regression."""
-    ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
-    n, p = xm.shape
-    _, v = ols(zm, xm)
-    aug = np.column_stack([xm, v])
-    coef, resid = ols(aug, ym)
-    cov = sandwich(aug, resid, spec, n_partialled=n_partialled, n_partialled_nested=n_partialled_nested)
-    stat = wald(coef[p:, 0], cov[p:, p:])
-    d = denominator_df(spec, n, 2 * p, n_partialled)
+    return endogeneity_from(_cp(y, x, z, spec, n_partialled, n_partialled_nested))
+
+
+def endogeneity_from(cp: CrossProducts) -> Endogeneity:
+    """Control-function Wald test and Durbin's statistic from the sufficient statistics (coordinates)."""
+    k, p = cp.k, cp.p
+    rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
+    v = rx.copy()
+    v[:k] = 0.0
+    aug = np.column_stack([rx, v])
+    coef, resid = lstsq_coords(aug, ry[:, None])
+    cov = cp.covariance(aug, resid, np.linalg.inv(aug.T @ aug), 2 * p)
+    stat = quad_form_inv(cov[p:, p:], coef[p:, 0], "the control-function coefficients")
+    d = denominator_df_cp(cp, 2 * p)
     f = stat / p
+    # Durbin: OLS residual e0, 2SLS residual e (coordinates); projections are leading coordinates
+    e0 = lstsq_coords(rx, ry[:, None])[1][:, 0]
+    b_iv = np.linalg.lstsq(rx[:k], ry[:k], rcond=None)[0]
+    e = ry - rx @ b_iv
+    delta = float(e0[: k + p] @ e0[: k + p] - e[:k] @ e[:k])
+    durbin = cp.n * delta / float(e0 @ e0)
     return Endogeneity(
         statistic=stat,
         df=p,
@@ -175,5 +241,7 @@ def durbin_wu_hausman(
         f_statistic=f,
         f_df=(p, d),
         f_p_value=float(stats.f.sf(f, p, d)) if math.isfinite(f) else 0.0,
-        cov_kind=spec.kind,
+        cov_kind=cp.kind,
+        durbin=durbin,
+        durbin_p_value=float(stats.chi2.sf(durbin, p)),
     )

@@ -90,10 +90,22 @@ def suite_of(res: EstimationResult | None) -> DiagnosticSuite | None:
     return res.diagnostics if res is not None and isinstance(res.diagnostics, DiagnosticSuite) else None
 
 
+def section_of(suite: DiagnosticSuite | None, name: str) -> Any:
+    """One section of the suite, or None when the suite or that section was not computed."""
+    node = getattr(suite, name, None) if suite is not None else None
+    return None if isinstance(node, NotApplicable) else node
+
+
+def section_reason(suite: DiagnosticSuite | None, name: str) -> str | None:
+    """Why a section of a computed suite is absent (None when it is present or there is no suite)."""
+    node = getattr(suite, name, None) if suite is not None else None
+    return node.reason if isinstance(node, NotApplicable) else None
+
+
 def effective_f_of(res: EstimationResult | None) -> tuple[float | None, dict[int, float]]:
     """The effective F and its critical values keyed by whole-percent tau (None when not computed)."""
-    suite = suite_of(res)
-    eff = suite.strength.effective_f if suite is not None else None
+    strength = section_of(suite_of(res), "strength")
+    eff = strength.effective_f if strength is not None else None
     if eff is None or math.isnan(eff.statistic):
         return None, {}
     cvs = {round(t * 100): c for t, c in eff.critical_values.items() if not math.isnan(c)}
@@ -102,10 +114,10 @@ def effective_f_of(res: EstimationResult | None) -> tuple[float | None, dict[int
 
 def ar_set_of(res: EstimationResult | None) -> list[rv.Interval] | None:
     """The Anderson–Rubin confidence set (None when not computed or not available)."""
-    suite = suite_of(res)
-    if suite is None or suite.weak_iv_robust.anderson_rubin.intervals is None:
+    robust = section_of(suite_of(res), "weak_iv_robust")
+    if robust is None or robust.anderson_rubin.intervals is None:
         return None
-    return [(float(lo), float(hi)) for lo, hi in suite.weak_iv_robust.anderson_rubin.intervals]
+    return [(float(lo), float(hi)) for lo, hi in robust.anderson_rubin.intervals]
 
 
 def _runs_overview(inp: DossierInput) -> str:
@@ -169,7 +181,12 @@ def _coef_with_se(value: float, se: float | None) -> str:
 
 
 def _first_stage(suite: Any) -> str:
-    if not isinstance(suite, DiagnosticSuite) or not suite.first_stage.rows:
+    if not isinstance(suite, DiagnosticSuite):
+        return ""
+    reason = section_reason(suite, "first_stage")
+    if reason is not None:
+        return f"#### First stage (treatment on instruments)\n\nNot computed: {mt.inline(reason)}."
+    if not suite.first_stage.rows:
         return ""
     rows = []
     for entry in suite.first_stage.rows:
@@ -198,6 +215,9 @@ def _first_stage(suite: Any) -> str:
 def _reduced_form(suite: Any) -> str:
     if not isinstance(suite, DiagnosticSuite):
         return ""
+    reason = section_reason(suite, "reduced_form")
+    if reason is not None:
+        return f"#### Reduced form (outcome on instruments)\n\nNot computed: {mt.inline(reason)}."
     red = suite.reduced_form
     rows = [
         [mt.cell(inst), _coef_with_se(value, red.std_errors.get(inst))]
@@ -237,6 +257,9 @@ def _stock_yogo_rows(strength: StrengthSection) -> list[list[str]]:
 def _strength(suite: Any) -> str:
     if not isinstance(suite, DiagnosticSuite):
         return ""
+    reason = section_reason(suite, "strength")
+    if reason is not None:
+        return f"#### Instrument strength\n\nNot computed: {mt.inline(reason)}."
     strength = suite.strength
     rows = []
     sentences = []
@@ -261,10 +284,14 @@ def _strength(suite: Any) -> str:
             )
     elif strength.effective_f_reason:
         skipped.append(f"effective F — {mt.inline(strength.effective_f_reason)}")
-    if not math.isnan(strength.kp_rk.f_form):
+    if strength.kp_rk is not None and not math.isnan(strength.kp_rk.f_form):
         rows.append(["Kleibergen–Paap rk Wald F", rv.fmt(strength.kp_rk.f_form), "–"])
-    if not math.isnan(strength.cragg_donald_f):
+    elif strength.reasons.get("kp_rk"):
+        skipped.append(f"Kleibergen–Paap rk Wald F — {mt.inline(strength.reasons['kp_rk'])}")
+    if strength.cragg_donald_f is not None and not math.isnan(strength.cragg_donald_f):
         rows.append(["Cragg–Donald F", rv.fmt(strength.cragg_donald_f), "–"])
+    elif strength.reasons.get("cragg_donald_f"):
+        skipped.append(f"Cragg–Donald F — {mt.inline(strength.reasons['cragg_donald_f'])}")
     label = "Sanderson–Windmeijer F"
     if strength.sanderson_windmeijer_f is not None:
         for endog, value in strength.sanderson_windmeijer_f.items():
@@ -310,6 +337,13 @@ def _robust_inference(inp: DossierInput, run: RunInfo, res: EstimationResult) ->
     suite = suite_of(res)
     if suite is None:
         return ""
+    reason = section_reason(suite, "weak_iv_robust")
+    if reason is not None:
+        return (
+            "#### Intervals that stay honest when instruments are weak\n\n"
+            + mt.table(["Procedure", "Set for the effect", "Statistic", "p-value (no effect)"], rows, "llrr")
+            + f"\n\nNot computed: Anderson–Rubin, CLR and tF — {mt.inline(reason)}."
+        )
     skipped = []
     procedures: tuple[tuple[str, AndersonRubin | CLRResult | TFResult], ...] = (
         ("Anderson–Rubin", suite.weak_iv_robust.anderson_rubin),
@@ -368,6 +402,9 @@ def _tests(suite: Any, key: str, title: str, note: str) -> str:
         return f"#### {title}\n\nNot computed: {mt.inline(suite.reason)}."
     if not isinstance(suite, DiagnosticSuite):
         return ""
+    reason = section_reason(suite, key)
+    if reason is not None:
+        return f"#### {title}\n\nNot computed: {mt.inline(reason)}."
     node: OverId | Endogeneity = getattr(suite, key)
     if node.statistic is None or math.isnan(node.statistic):
         reason = getattr(node, "reason", None)

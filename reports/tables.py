@@ -16,7 +16,14 @@ from typing import Any
 from ivdossier.errors import InvalidInputError
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
-from ivdossier.reports.estimates import ar_set_of, effective_f_of, suite_of, treatment_of, wald_interval
+from ivdossier.reports.estimates import (
+    ar_set_of,
+    effective_f_of,
+    section_of,
+    suite_of,
+    treatment_of,
+    wald_interval,
+)
 from ivdossier.reports.inputs import RunInfo
 
 _LATEX_SPECIAL = {
@@ -116,9 +123,11 @@ def _rows(runs: Sequence[RunInfo], treatment: str | None) -> list[tuple[str, lis
         feff.append(_Cell("num", f_eff))
         cv10.append(_Cell("num", cvs.get(10)))
         suite = suite_of(res)
-        robust = [_finite(r.robust_f) for r in suite.first_stage.rows] if suite is not None else []
+        first, strength = section_of(suite, "first_stage"), section_of(suite, "strength")
+        robust = [_finite(r.robust_f) for r in first.rows] if first is not None else []
         fs.append(_Cell("num", min((f for f in robust if f is not None), default=None)))
-        kp.append(_Cell("num", _finite(suite.strength.kp_rk.f_form) if suite is not None else None))
+        kp_rk = strength.kp_rk if strength is not None else None
+        kp.append(_Cell("num", _finite(kp_rk.f_form) if kp_rk is not None else None))
         n.append(_Cell("int", res.n if res is not None else None))
         one_way = res is not None and len(res.n_clusters) == 1
         clusters.append(_Cell("int", res.n_clusters[0] if res is not None and one_way else None))

