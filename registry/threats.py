@@ -219,9 +219,26 @@ def add_team_threat(session: Session, *, actor: str, entry: Mapping[str, Any]) -
     return records.create(session, Threat(code=code, origin="team", **values), actor=actor)
 
 
+def threat_by_code(session: Session, code: str) -> Threat:
+    """The threat whose code is ``code`` in any letter case ("dg-e01" finds DG-E01); an exact match wins when two
+    team codes differ only in case."""
+    exact = records.find(session, Threat, code)
+    if exact is not None:
+        return exact
+    same = [t for t in session.exec(select(Threat)) if t.code.casefold() == code.casefold()]
+    if len(same) == 1:
+        return same[0]
+    if len(same) > 1:
+        raise InvalidInputError(
+            f"threat code {code!r} matches {', '.join(t.code for t in same)} in different letter cases; "
+            "type the code exactly."
+        )
+    return records.get(session, Threat, code)
+
+
 def current_threat(session: Session, code: str) -> Threat:
     """The threat with ``code``; a retired built-in code is refused with its successor named."""
-    threat = records.get(session, Threat, code)
+    threat = threat_by_code(session, code)
     if threat.retired_into:
         raise InvalidInputError(
             f"threat {code} was merged into or replaced by {threat.retired_into}; use {threat.retired_into}."
