@@ -154,7 +154,7 @@ def test_an_edge_that_no_longer_fits_is_left_out_with_a_note_instead_of_breaking
     finally:
         registry.dispose()
     assert check.check.notes and "regoin -> lwage left out" in check.check.notes[0]
-    code, out, err = cli("graph", "check", "nearc4")
+    code, out, _ = cli("graph", "check", "nearc4")
     assert code == 0 and "note: team edge regoin -> lwage left out" in out
     assert cli("graph", "edge", "remove", "card", "regoin", "lwage")[0] == 0
 
