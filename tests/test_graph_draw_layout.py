@@ -228,7 +228,7 @@ def test_an_unmeasured_team_covariate_is_drawn_unobserved_not_as_a_measurable_th
     root = ET.fromstring(render_svg(G, v))  # type: ignore[arg-type]
     [geo] = [g for g in root.iter(f"{SVG}g") if g.get("data-node") == "geography"]
     assert "role-unobserved" in (geo.get("class") or "")
-    assert [el.tag.removeprefix(SVG) for el in geo][0] == "ellipse"
+    assert geo[0].tag.removeprefix(SVG) == "ellipse"
     assert "NOT MEASURED" in ["".join(t.itertext()) for t in geo.iter(f"{SVG}text")]
     assert "MEASURABLE" not in ["".join(t.itertext()) for t in geo.iter(f"{SVG}text")]
 
