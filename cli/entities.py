@@ -472,7 +472,7 @@ def link_show(slug: str, json_out: JsonFlag = False) -> None:
     from ivdossier.registry.models import Link, Member, Rating, Threat
 
     with reading() as s:
-        link = records.get(s, Link, slug)
+        link = records.get(s, Link, slug.lower())
         threat = records.get_by_id(s, Threat, link.threat_id)
         data = _entity_dict(link)
         data["threat"] = {"code": threat.code, "title": threat.title, "condition": threat.condition}

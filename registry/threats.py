@@ -292,7 +292,7 @@ def set_link(
     expected_version: int | None = None,
 ) -> Link:
     """Change a link's state, argument or evidence (only the fields given)."""
-    obj = records.get(session, Link, link)
+    obj = records.get(session, Link, link.lower())  # link slugs hold the code in lower case
     changes: dict[str, Any] = {}
     if state is not None:
         changes["state"] = _check_state(state)
@@ -318,7 +318,7 @@ def rate_link(
     session: Session, *, actor: str, link: str, likelihood: int, severity: int, comment: str = ""
 ) -> Rating:
     """Record (or replace) the acting member's likelihood and severity for a link."""
-    obj = records.get(session, Link, link)
+    obj = records.get(session, Link, link.lower())  # any letter case
     member = records.find(session, Member, actor)
     if member is None:
         raise InvalidInputError(

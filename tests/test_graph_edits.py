@@ -56,6 +56,8 @@ def test_self_loop_and_cycle_are_refused_naming_the_cycle_and_the_fix(cli) -> No
     _program(cli)
     code, _, err = cli("graph", "edge", "add", "card", "region", "region")
     assert code == 2 and "self-loop" in err
+    code, _, err = cli("graph", "edge", "add", "card", "educ", "lwage")
+    assert code == 4 and "base design" in err
     assert cli("graph", "edge", "add", "card", "region", "lwage")[0] == 0
     code, _, err = cli("graph", "edge", "add", "card", "lwage", "region")
     assert code == 2
@@ -240,5 +242,9 @@ def test_threat_codes_are_accepted_in_any_letter_case(cli) -> None:  # type: ign
     assert code == 0 and json.loads(out)["code"] == "DG-E01"
     code, _, err = cli("link", "add", "z", "dg-e01")
     assert code == 0, err
+    code, _, err = cli("link", "edit", "z--DG-E01", "--state", "rebutted")
+    assert code == 0, err
+    code, out, _ = cli("link", "show", "Z--Dg-E01", "--json")
+    assert code == 0 and json.loads(out)["state"] == "rebutted"
     code, _, err = cli("link", "dismiss", "z", "Dg-I01", "--reason", "no sorting here")
     assert code == 0, err

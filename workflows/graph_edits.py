@@ -15,7 +15,7 @@ from typing import Any
 
 from sqlmodel import Session
 
-from ivdossier.errors import InvalidInputError, NotFoundError
+from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry import records
 from ivdossier.registry.instruments import (
     add_edge,
@@ -100,6 +100,11 @@ def _refuse_if_invalid(
     for inst, current in _graphs(session, program, instrument):
         G = base_graph(session, inst)
         add_team_edges(G, [e for e in current if e != without])
+        if G.has_edge(source, target) and G.edges[source, target].get("base"):
+            raise ConflictError(
+                f"edge {source} -> {target} is part of every instrument graph's base design already; "
+                "nothing to add."
+            )
         problem = edge_problem(G, source, target, where=f"in instrument {inst.slug}'s graph")
         if problem is not None:
             raise InvalidInputError(problem.removeprefix("cycle: ") + ". Nothing was written.")
