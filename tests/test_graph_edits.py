@@ -248,3 +248,35 @@ def test_threat_codes_are_accepted_in_any_letter_case(cli) -> None:  # type: ign
     assert code == 0 and json.loads(out)["state"] == "rebutted"
     code, _, err = cli("link", "dismiss", "z", "Dg-I01", "--reason", "no sorting here")
     assert code == 0, err
+
+
+def test_edge_scopes_survive_export_and_import(tmp_path: Path) -> None:
+    from ivdossier.registry import portability
+
+    first = open_registry(str(tmp_path / "a.sqlite"))
+    try:
+        with first.writing() as s:
+            reg.add_program(s, actor="a", slug="p", title="P", treatment="d", outcome="y")
+            reg.add_instrument(s, actor="a", program="p", slug="z1", name="z1", columns=["z1"])
+            reg.add_instrument(s, actor="a", program="p", slug="z2", name="z2", columns=["z2"])
+            reg.add_covariate(s, actor="a", program="p", name="c", measured=False)
+            ge.add_common_cause(s, actor="a", instrument="z1", covariate="c")
+            ge.add_team_edge(s, actor="a", program="p", source="c", target="d")
+        with first.reading() as s:
+            portability.export_registry(s, tmp_path / "out")
+            before = ge.graph_listing(s, "p").edges
+    finally:
+        first.dispose()
+    second = open_registry(str(tmp_path / "b.sqlite"))
+    try:
+        with second.writing() as s:
+            portability.import_registry(s, portability.read_export(tmp_path / "out"), actor="a")
+        with second.reading() as s:
+            assert ge.graph_listing(s, "p").edges == before
+            assert [(e["from"], e["to"], e["scope"]) for e in before] == [
+                ("c", "d", "program"),
+                ("c", "y", "z1"),
+                ("c", "z1", "z1"),
+            ]
+    finally:
+        second.dispose()
