@@ -93,6 +93,7 @@ COMMAND_MODULES = (
     "portability",
     "estimation_cmds",
     "threat_cmds",
+    "family_cmds",
     "report_cmds",
     "evidence_cmds",
     "studies",

@@ -176,6 +176,9 @@ def instrument_add(
 
     given = dict(relevance=relevance, exclusion=exclusion, exogeneity=exogeneity, monotonicity=monotonicity)
     claims = {k: read_text_option(v) or "" for k, v in given.items() if v is not None}
+    from ivdossier.workflows.families import check_family
+
+    family = check_family(family) if family else ""
     with writing() as s:
         inst = add_instrument(
             s,
@@ -286,7 +289,9 @@ def instrument_edit(
     if name is not None:
         changes["name"] = name
     if family is not None:
-        changes["family"] = records.check_slug(family, what="family") if family else ""
+        from ivdossier.workflows.families import check_family
+
+        changes["family"] = check_family(family) if family else ""
     if column is not None:
         changes["columns"] = list(column)
     if description is not None:
@@ -467,7 +472,7 @@ def link_show(slug: str, json_out: JsonFlag = False) -> None:
     from ivdossier.registry.models import Link, Member, Rating, Threat
 
     with reading() as s:
-        link = records.get(s, Link, slug)
+        link = records.get(s, Link, slug.lower())
         threat = records.get_by_id(s, Threat, link.threat_id)
         data = _entity_dict(link)
         data["threat"] = {"code": threat.code, "title": threat.title, "condition": threat.condition}

@@ -6,6 +6,7 @@ from pathlib import Path
 from typing import Annotated, Any
 
 import typer
+from typer.core import TyperGroup
 
 from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, reading, writing
@@ -64,6 +65,10 @@ def threat_list(
     json_out: JsonFlag = False,
 ) -> None:
     """Browse and search the catalogue."""
+    from ivdossier.workflows.families import check_family
+
+    if family is not None:
+        family = check_family(family, allow_generic=True)
     with reading() as s:
         found = _registry_catalog(s).search(
             condition=condition, family=family, text=search, include_generic=family is not None, kind=kind
@@ -122,9 +127,11 @@ def threat_new(
         raise InvalidInputError(f"cannot read {str(file)!r} as a TOML catalogue entry: {exc}") from exc
     entry = CatalogThreat.from_dict(data, source=str(file))
     with writing() as s:
-        if entry.code in _registry_catalog(s):
+        taken = [c for c in _registry_catalog(s).codes() if c.casefold() == entry.code.casefold()]
+        if taken:
             raise ConflictError(
-                f"threat code {entry.code!r} is already in the catalogue; choose another 'T-' code."
+                f"threat code {entry.code!r} is already in the catalogue as {taken[0]!r} (codes are read in "
+                "any letter case); choose another 'T-' code."
             )
         add_team_threat(s, actor=actor(), entry=entry.to_dict())
     print_json(entry.to_dict()) if json_out else typer.echo(f"team threat {entry.code} added")
@@ -144,6 +151,12 @@ def threat_suggest(instrument: str, json_out: JsonFlag = False) -> None:
             raise InvalidInputError(
                 f"instrument {instrument!r} has no family; set one with `instrument edit --family`."
             )
+        from ivdossier.workflows.families import check_family
+
+        try:
+            check_family(inst.family, option=f"instrument {instrument}'s family")
+        except InvalidInputError as exc:
+            raise InvalidInputError(f"{exc} Fix it with `instrument edit {instrument} --family F`.") from None
         linked = {t.code for _, t in links_of(s, inst)}
         found = [t for t in suggest_for_family(inst.family, _registry_catalog(s)) if t.code not in linked]
     if json_out:
@@ -198,6 +211,8 @@ def graph_check(instrument: str, json_out: JsonFlag = False) -> None:
         for p in data["open_paths"]:
             codes = ", ".join(p["threats"]) or "team-drawn edges"
             typer.echo(f"  {p['path']}   [{p['condition']}, {p['severity']}; from {codes}]")
+    for note in data.get("notes", []):
+        typer.echo(f"note: {note}")
     if not sets:
         typer.echo("no set of measured covariates restores the instrument criterion")
     else:
@@ -240,11 +255,142 @@ def graph_covariate(
     typer.echo(f"covariate {name} added to {program} ({'unmeasured' if unmeasured else 'measured'})")
 
 
-@graph_app.command("edge")
-def graph_edge(program: str, source: str, target: str, note: Annotated[str, typer.Option()] = "") -> None:
-    """Add an edge of the team's own to the program's causal graph."""
-    from ivdossier.registry.instruments import add_edge
+class _EdgeGroup(TyperGroup):
+    """`graph edge PROGRAM FROM TO` (the earlier form) still adds an edge: a first word that is no subcommand
+    is read as `graph edge add ...`."""
+
+    def resolve_command(self, ctx: Any, args: list[str]) -> Any:
+        if args and args[0] not in self.commands and not args[0].startswith("-"):
+            args = ["add", *args]
+        return super().resolve_command(ctx, args)
+
+
+edge_app = typer.Typer(
+    cls=_EdgeGroup,
+    help="Edges of the team's own: add, remove or reverse (each checked first and audited).",
+    no_args_is_help=True,
+)
+graph_app.add_typer(edge_app, name="edge")
+
+ScopeOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--instrument",
+        help="Draw the edge only in this instrument's graph (leave out for every instrument of the program).",
+    ),
+]
+
+
+def _scope_text(instrument: str | None, program: str) -> str:
+    return f"instrument {instrument} only" if instrument else f"every instrument of {program}"
+
+
+@edge_app.command("add")
+def graph_edge_add(
+    program: str,
+    source: str,
+    target: str,
+    instrument: ScopeOpt = None,
+    note: Annotated[str, typer.Option(help="Why the edge is there.")] = "",
+) -> None:
+    """Add an edge (refused with the fix, nothing written, for an unknown node, a self-loop or a cycle)."""
+    from ivdossier.workflows.graph_edits import add_team_edge
 
     with writing() as s:
-        add_edge(s, actor=actor(), program=program, source=source, target=target, note=note)
-    typer.echo(f"edge {source} -> {target} added to {program}")
+        add_team_edge(
+            s, actor=actor(), program=program, source=source, target=target, instrument=instrument, note=note
+        )
+    typer.echo(f"edge {source} -> {target} added ({_scope_text(instrument, program)})")
+
+
+@edge_app.command("remove")
+def graph_edge_remove(
+    program: str,
+    source: str,
+    target: str,
+    instrument: ScopeOpt = None,
+    reason: Annotated[str, typer.Option(help="Why, kept in the audit trail.")] = "",
+) -> None:
+    """Remove a team edge (audited)."""
+    from ivdossier.workflows.graph_edits import remove_team_edge
+
+    with writing() as s:
+        remove_team_edge(
+            s,
+            actor=actor(),
+            program=program,
+            source=source,
+            target=target,
+            instrument=instrument,
+            reason=reason,
+        )
+    typer.echo(f"edge {source} -> {target} removed ({_scope_text(instrument, program)})")
+
+
+@edge_app.command("reverse")
+def graph_edge_reverse(
+    program: str,
+    source: str,
+    target: str,
+    instrument: ScopeOpt = None,
+    reason: Annotated[str, typer.Option(help="Why, kept in the audit trail.")] = "",
+) -> None:
+    """Turn a team edge round (refused if the reversed edge would close a cycle; audited)."""
+    from ivdossier.workflows.graph_edits import reverse_team_edge
+
+    with writing() as s:
+        reverse_team_edge(
+            s,
+            actor=actor(),
+            program=program,
+            source=source,
+            target=target,
+            instrument=instrument,
+            reason=reason,
+        )
+    typer.echo(f"edge {source} -> {target} is now {target} -> {source} ({_scope_text(instrument, program)})")
+
+
+@graph_app.command("common-cause")
+def graph_common_cause(
+    instrument: str,
+    covariate: str,
+    note: Annotated[str, typer.Option(help="Why the team believes it.")] = "",
+) -> None:
+    """Say that a declared covariate causes both this instrument and the outcome (this instrument's graph only)."""
+    from ivdossier.workflows.graph_edits import add_common_cause
+
+    with writing() as s:
+        added = add_common_cause(s, actor=actor(), instrument=instrument, covariate=covariate, note=note)
+    drawn = ", ".join(f"{e.source} -> {e.target}" for e in added) or "nothing new (both edges were drawn)"
+    typer.echo(f"{covariate} is a common cause of {instrument} and the outcome: added {drawn}")
+
+
+@graph_app.command("show")
+def graph_show(program: str, json_out: JsonFlag = False) -> None:
+    """The program's graph as the team drew it: covariates, team edges with their scope, instrument nodes."""
+    from ivdossier.workflows.graph_edits import graph_listing
+
+    with reading() as s:
+        listing = graph_listing(s, program)
+    if json_out:
+        print_json(listing.to_dict())
+        return
+    typer.echo(f"program {listing.program}: nodes in every instrument's graph")
+    print_table(
+        [{"node": n, "what": w} for n, w in listing.nodes.items()], ["node", "what"], widths={"what": 60}
+    )
+    typer.echo("\ncovariates")
+    print_table(
+        [{**c, "measured": "yes" if c["measured"] else "no"} for c in listing.covariates],
+        ["name", "measured", "description"],
+        widths={"description": 60},
+    )
+    typer.echo("\nteam edges (scope: program = every instrument's graph, else that instrument's only)")
+    print_table(list(listing.edges), ["from", "to", "scope", "note"], widths={"note": 50})
+    typer.echo("\ninstruments")
+    print_table(
+        [{**i, "left_out": "; ".join(i["left_out"]) or "-"} for i in listing.instruments],
+        ["instrument", "node", "left_out"],
+        widths={"left_out": 80},
+    )

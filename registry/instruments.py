@@ -6,7 +6,7 @@ from collections.abc import Sequence
 
 from sqlmodel import Session, select
 
-from ivdossier.errors import InvalidInputError
+from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import records
 from ivdossier.registry.models import (
     CONDITIONS,
@@ -194,24 +194,97 @@ def covariates_of(session: Session, program: Program) -> list[Covariate]:
     )
 
 
+def _edge_slug(program: Program, source: str, target: str, instrument: Instrument | None) -> str:
+    scope = f"@{instrument.slug}" if instrument is not None else ""
+    return f"{program.slug}--{source}--{target}{scope}"[:240].lower()
+
+
 def add_edge(
-    session: Session, *, actor: str, program: str, source: str, target: str, note: str = ""
+    session: Session,
+    *,
+    actor: str,
+    program: str,
+    source: str,
+    target: str,
+    note: str = "",
+    instrument: str | None = None,
 ) -> GraphEdge:
-    """Add an edge of the team's own to the program's causal graph."""
+    """Store an edge of the team's own: in every instrument's graph of the program, or (``instrument``) only in
+    that instrument's. Storage only: ``ivdossier.workflows.graph_edits`` checks nodes and cycles first."""
     prog = records.get(session, Program, program)
     if source == target:
         raise InvalidInputError(f"an edge from {source!r} to itself would make the graph cyclic.")
+    inst = None
+    if instrument is not None:
+        inst = records.get(session, Instrument, instrument)
+        if inst.program_id != prog.id:
+            raise InvalidInputError(
+                f"instrument {inst.slug!r} is not in program {prog.slug!r}; scope the edge to one of its own "
+                "instruments or leave --instrument out."
+            )
+    if find_edge(session, prog, source, target, inst) is not None:
+        where = f"instrument {inst.slug!r}" if inst is not None else f"program {prog.slug!r}"
+        raise ConflictError(f"edge {source} -> {target} is already in the graph of {where}; nothing to add.")
     edge = GraphEdge(
-        slug=f"{prog.slug}--{source}--{target}"[:240].lower(),
+        slug=_edge_slug(prog, source, target, inst),
         program_id=prog.id or 0,
+        instrument_id=inst.id if inst is not None else None,
         source=source,
         target=target,
-        note=note,
+        note=records.check_text(note, field="note"),
     )
     return records.create(session, edge, actor=actor)
 
 
+def find_edge(
+    session: Session, program: Program, source: str, target: str, instrument: Instrument | None = None
+) -> GraphEdge | None:
+    """The team edge source -> target of this scope (program-wide when ``instrument`` is None), if stored."""
+    column = GraphEdge.instrument_id
+    scope = column.is_(None) if instrument is None else column == instrument.id  # type: ignore[union-attr]
+    return session.exec(
+        select(GraphEdge).where(
+            GraphEdge.program_id == program.id,
+            GraphEdge.source == source,
+            GraphEdge.target == target,
+            scope,
+        )
+    ).first()
+
+
+def remove_edge(session: Session, *, actor: str, edge: GraphEdge, reason: str = "") -> None:
+    """Delete a team edge (audited with its last content)."""
+    records.delete(session, edge, actor=actor, reason=reason)
+
+
+def reverse_edge(session: Session, *, actor: str, edge: GraphEdge, reason: str = "") -> GraphEdge:
+    """Turn a team edge round (audited as a 'reverse' edit of its ends)."""
+    prog = records.get_by_id(session, Program, edge.program_id)
+    inst = records.get_by_id(session, Instrument, edge.instrument_id) if edge.instrument_id else None
+    if find_edge(session, prog, edge.target, edge.source, inst) is not None:
+        raise ConflictError(
+            f"edge {edge.target} -> {edge.source} is already stored in the same scope; remove "
+            f"{edge.source} -> {edge.target} instead of reversing it."
+        )
+    changes = {
+        "source": edge.target,
+        "target": edge.source,
+        "slug": _edge_slug(prog, edge.target, edge.source, inst),
+    }
+    return records.edit(session, edge, changes, actor=actor, action="reverse", reason=reason)
+
+
 def edges_of(session: Session, program: Program) -> list[GraphEdge]:
+    """Every team edge of the program, program-wide and instrument-scoped."""
     return list(
         session.exec(select(GraphEdge).where(GraphEdge.program_id == program.id).order_by(GraphEdge.slug))
     )
+
+
+def edges_for(session: Session, instrument: Instrument) -> list[GraphEdge]:
+    """The team edges drawn in one instrument's graph: the program-wide ones and those scoped to it."""
+    return [
+        e
+        for e in edges_of(session, records.get_by_id(session, Program, instrument.program_id))
+        if e.instrument_id is None or e.instrument_id == instrument.id
+    ]

@@ -129,13 +129,20 @@ class Covariate(Entity, table=True):
 
 
 class GraphEdge(Entity, table=True):
-    """An edge a user adds to a program's causal graph by hand (beyond roles and threat fragments)."""
+    """An edge a user adds to a program's causal graph by hand (beyond roles and threat fragments).
+
+    ``instrument_id`` scopes it: None draws it in every instrument's graph of the program, an instrument's id
+    only in that instrument's graph (so an edge into one instrument's column leaves its siblings alone).
+    """
 
     kind: ClassVar[str] = "edge"
-    __table_args__ = (UniqueConstraint("program_id", "source", "target"),)
+    __table_args__ = (
+        UniqueConstraint("program_id", "instrument_id", "source", "target", name="uq_graphedge_scope_ends"),
+    )
 
     slug: str = Field(max_length=240, unique=True, index=True)
     program_id: int = Field(foreign_key="program.id", index=True)
+    instrument_id: int | None = Field(default=None, foreign_key="instrument.id", index=True)
     source: str = Field(max_length=100)
     target: str = Field(max_length=100)
     note: str = Field(default="")

@@ -382,7 +382,9 @@ def critique(
 ) -> Critique:
     """Record that catalogue threat ``threat`` was raised against study ``key`` (by study ``by`` if given)."""
     study = records.get(session, Study, key)
-    th = records.get(session, Threat, threat)
+    from ivdossier.registry.threats import threat_by_code
+
+    th = threat_by_code(session, threat)
     raiser = records.get(session, Study, by) if by else None
     if raiser is not None and raiser.id == study.id:
         raise InvalidInputError(f"study {key!r} cannot critique itself; pass another study with --by.")

@@ -219,9 +219,26 @@ def add_team_threat(session: Session, *, actor: str, entry: Mapping[str, Any]) -
     return records.create(session, Threat(code=code, origin="team", **values), actor=actor)
 
 
+def threat_by_code(session: Session, code: str) -> Threat:
+    """The threat whose code is ``code`` in any letter case ("dg-e01" finds DG-E01); an exact match wins when two
+    team codes differ only in case."""
+    exact = records.find(session, Threat, code)
+    if exact is not None:
+        return exact
+    same = [t for t in session.exec(select(Threat)) if t.code.casefold() == code.casefold()]
+    if len(same) == 1:
+        return same[0]
+    if len(same) > 1:
+        raise InvalidInputError(
+            f"threat code {code!r} matches {', '.join(t.code for t in same)} in different letter cases; "
+            "type the code exactly."
+        )
+    return records.get(session, Threat, code)
+
+
 def current_threat(session: Session, code: str) -> Threat:
     """The threat with ``code``; a retired built-in code is refused with its successor named."""
-    threat = records.get(session, Threat, code)
+    threat = threat_by_code(session, code)
     if threat.retired_into:
         raise InvalidInputError(
             f"threat {code} was merged into or replaced by {threat.retired_into}; use {threat.retired_into}."
@@ -275,7 +292,7 @@ def set_link(
     expected_version: int | None = None,
 ) -> Link:
     """Change a link's state, argument or evidence (only the fields given)."""
-    obj = records.get(session, Link, link)
+    obj = records.get(session, Link, link.lower())  # link slugs hold the code in lower case
     changes: dict[str, Any] = {}
     if state is not None:
         changes["state"] = _check_state(state)
@@ -301,7 +318,7 @@ def rate_link(
     session: Session, *, actor: str, link: str, likelihood: int, severity: int, comment: str = ""
 ) -> Rating:
     """Record (or replace) the acting member's likelihood and severity for a link."""
-    obj = records.get(session, Link, link)
+    obj = records.get(session, Link, link.lower())  # any letter case
     member = records.find(session, Member, actor)
     if member is None:
         raise InvalidInputError(

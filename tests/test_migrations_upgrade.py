@@ -1,7 +1,8 @@
 """Registries written by every released schema version open, upgrade and keep their content under the current
 code. tests/fixtures/registry-<rev>.sqlite holds one small registry per released revision; registry-0001 was
 built with tests/test_portability_roundtrip.py::build_rich_registry at schema 0001 (the first schema), then
-checkpointed, switched to journal_mode=DELETE and vacuumed with page_size=1024 so it is one small file."""
+checkpointed, switched to journal_mode=DELETE and vacuumed with page_size=1024 so it is one small file;
+registry-0002 was built the same way at schema 0002 (its team edge age -> Y predates edge scopes)."""
 
 from __future__ import annotations
 

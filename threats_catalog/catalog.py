@@ -304,10 +304,14 @@ class Catalog:
         return tuple(t.code for t in self.threats)
 
     def get(self, code: str) -> Threat:
-        """The threat with ``code``; a NotFoundError suggests close codes."""
+        """The threat with ``code`` (in any letter case when that is unambiguous); a NotFoundError suggests close
+        codes."""
         try:
             return self._index[code]
         except KeyError:
+            same = [c for c in self._index if c.casefold() == code.casefold()]
+            if len(same) == 1:  # codes are accepted in any letter case
+                return self._index[same[0]]
             near = difflib.get_close_matches(code, self._index, n=3)
             hint = f"; did you mean {', '.join(near)}?" if near else "; list codes with Catalog.codes()"
             raise NotFoundError(f"no threat with code {code!r} in catalogue {self.version}{hint}") from None

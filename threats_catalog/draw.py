@@ -3,15 +3,20 @@
 Visual language (meaning never rests on colour alone):
 
 * instrument: arrow-tag pentagon; treatment: plain box with a heavy border; outcome: box with a double border;
-  unobserved: dashed ellipse with italic text; measured covariate: rounded box; measurable threat node:
+  unobserved (a threat's hidden variable, or a covariate the team declared but did not measure, tagged
+  NOT MEASURED): dashed ellipse with italic text; measured covariate: rounded box; measurable threat node:
   rounded box with a dash-dot border. Every node carries a small upper-case role tag.
 * conditioned-on nodes get a hatched fill and a "W" badge; sample-selection nodes an "S" badge.
 * layout: left-to-right layers (longest path), the instrument-treatment-outcome spine on one row,
   unobserved nodes above it and measured ones below.
 * edges on an open bypass path: heavy dashed line if the path breaks a condition, heavy dotted line if it only
-  puts one at risk; threat codes are written beside the edges they drew.
-* a verdict strip on top (one shape per value: filled disc = holds, triangle = at risk, cross = broken,
-  dashed ring = not assessed), the open paths as text, and a legend at the bottom.
+  puts one at risk; a small tag beside an edge names the threat codes that drew it, or "team" for an edge the
+  team drew. Tags are placed so that none overlaps another tag, a node or a text line.
+* a verdict strip on top with the dossier's verdict shapes (:data:`VERDICT_SHAPES`: filled circle with a tick =
+  holds, triangle with an exclamation mark = at risk, square with a cross = broken, dashed ring with a bar = not
+  assessed), the open paths as text with each arrow's direction, and a legend at the bottom.
+* every text's width is estimated from DejaVu Sans advance widths (the first font named), so the drawing is
+  always wide enough for its title and its longest line.
 """
 
 from __future__ import annotations
@@ -22,6 +27,7 @@ import re
 import textwrap
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import networkx as nx
 
@@ -76,8 +82,38 @@ class _Box:
     covariate_unmeasured: bool = False
 
 
+# Advance widths of DejaVu Sans (Book and Bold) for ASCII 32-126, in thousandths of an em, read from the font files;
+# any other character counts a full em (wider than most), DejaVu Sans Mono is 0.602 em throughout.
+_SANS = (
+    318, 401, 460, 838, 636, 950, 780, 275, 390, 390, 500, 838, 318, 361, 318, 337, 636, 636, 636, 636, 636, 636,
+    636, 636, 636, 636, 337, 337, 838, 838, 838, 531, 1000, 684, 686, 698, 770, 632, 575, 775, 752, 295, 295, 656,
+    557, 863, 748, 787, 603, 787, 695, 635, 611, 732, 684, 989, 685, 611, 685, 390, 337, 390, 838, 500, 500, 613,
+    635, 550, 635, 615, 352, 635, 634, 278, 278, 579, 278, 974, 634, 612, 635, 635, 411, 521, 392, 634, 592, 818,
+    592, 592, 525, 636, 337, 636, 838,
+)  # fmt: skip
+_BOLD = (
+    348, 456, 521, 838, 696, 1002, 872, 306, 457, 457, 523, 838, 380, 415, 380, 365, 696, 696, 696, 696, 696, 696,
+    696, 696, 696, 696, 400, 400, 838, 838, 838, 580, 1000, 774, 762, 734, 830, 683, 683, 821, 837, 372, 372, 775,
+    637, 995, 837, 850, 733, 850, 770, 720, 682, 812, 774, 1103, 771, 724, 725, 457, 365, 457, 838, 500, 500, 675,
+    716, 593, 716, 678, 435, 716, 712, 343, 343, 665, 343, 1042, 712, 687, 716, 716, 493, 595, 478, 712, 652, 924,
+    645, 652, 582, 712, 365, 712, 838,
+)  # fmt: skip
+MONO_ADVANCE = 0.602
+
+
+def text_width(
+    text: str, size: float, *, bold: bool = False, mono: bool = False, spacing: float = 0.0
+) -> float:
+    """Estimated rendered width of ``text`` at font ``size`` (DejaVu Sans metrics; wider glyphs never shrink it)."""
+    if mono:
+        return len(text) * size * MONO_ADVANCE + spacing * len(text)
+    table = _BOLD if bold else _SANS
+    units = sum(table[ord(c) - 32] if 32 <= ord(c) < 127 else 1000 for c in text)
+    return units / 1000 * size + spacing * len(text)
+
+
 def _text_width(text: str, size: float) -> float:
-    return len(text) * size * 0.6
+    return text_width(text, size)
 
 
 def _wrap(label: str, width: int = 20) -> list[str]:
@@ -102,8 +138,8 @@ def _layers(G: nx.DiGraph) -> dict[str, int]:
     return {n: v - low for n, v in layer.items()}
 
 
-def _layout(G: nx.DiGraph, boxes: dict[str, _Box], top: float) -> tuple[float, float]:
-    """Place boxes; return the drawing's width and the y of its bottom edge."""
+def _layout(G: nx.DiGraph, boxes: dict[str, _Box], top: float, col_w: float) -> tuple[float, float]:
+    """Place boxes in columns ``col_w`` apart; return the drawing's width and the y of its bottom edge."""
     layer = _layers(G)
     spine_roles = ("instrument", "treatment", "outcome")
     columns: dict[int, dict[str, list[str]]] = {}
@@ -131,7 +167,7 @@ def _layout(G: nx.DiGraph, boxes: dict[str, _Box], top: float) -> tuple[float, f
     spine_y = top + ROW_H * n_above + 34.0
     max_w = max((b.w for b in boxes.values()), default=120.0)
     for lv, col in columns.items():
-        cx = MARGIN + max_w / 2 + lv * COL_W
+        cx = MARGIN + max_w / 2 + lv * col_w
         for i, n in enumerate(col["spine"]):
             boxes[n].x, boxes[n].y = cx, spine_y + i * ROW_H
         # above: nearest to the spine is the last in order so edges to the spine stay short
@@ -139,7 +175,7 @@ def _layout(G: nx.DiGraph, boxes: dict[str, _Box], top: float) -> tuple[float, f
             boxes[n].x, boxes[n].y = cx, spine_y - (i + 1) * ROW_H
         for i, n in enumerate(col["below"]):
             boxes[n].x, boxes[n].y = cx, spine_y + (spine_rows - 1 + i + 1) * ROW_H
-    width = MARGIN * 2 + max_w + max(layer.values(), default=0) * COL_W
+    width = MARGIN * 2 + max_w + max(layer.values(), default=0) * col_w
     bottom = spine_y + (spine_rows - 1 + n_below) * ROW_H + 40.0
     return width, bottom
 
@@ -228,11 +264,11 @@ def _node_svg(box: _Box, ids: str) -> list[str]:
 
 
 def _edge_geometry(
-    G: nx.DiGraph, boxes: Mapping[str, _Box], u: str, v: str, spine_y: float
+    G: nx.DiGraph, boxes: Mapping[str, _Box], u: str, v: str, spine_y: float, col_w: float = COL_W
 ) -> tuple[float, float, float, float, float, float, bool]:
     """Start, control and end points of the edge u -> v (a quadratic curve when ``bow``)."""
     a, b = boxes[u], boxes[v]
-    span = abs(b.x - a.x) / COL_W
+    span = abs(b.x - a.x) / col_w
     mx, my = (a.x + b.x) / 2, (a.y + b.y) / 2
     bow = span > 1.01 or span < 0.2
     cx, cy = mx, my
@@ -259,12 +295,14 @@ def _edge_geometry(
     return x1, y1, cx, cy, x2, y2, bow
 
 
-def _edge_extent(G: nx.DiGraph, boxes: Mapping[str, _Box], spine_y: float) -> tuple[float, float, float]:
+def _edge_extent(
+    G: nx.DiGraph, boxes: Mapping[str, _Box], spine_y: float, col_w: float
+) -> tuple[float, float, float]:
     """Lowest and highest y reached by any edge curve, and the right-most x (for sizing the drawing)."""
     ys: list[float] = []
     xs: list[float] = []
     for u, v in G.edges:
-        x1, y1, cx, cy, x2, y2, _ = _edge_geometry(G, boxes, u, v, spine_y)
+        x1, y1, cx, cy, x2, y2, _ = _edge_geometry(G, boxes, u, v, spine_y, col_w)
         for t in (0.0, 0.25, 0.5, 0.75, 1.0):
             ys.append((1 - t) ** 2 * y1 + 2 * (1 - t) * t * cy + t**2 * y2)
             xs.append((1 - t) ** 2 * x1 + 2 * (1 - t) * t * cx + t**2 * x2)
@@ -272,10 +310,17 @@ def _edge_extent(G: nx.DiGraph, boxes: Mapping[str, _Box], spine_y: float) -> tu
 
 
 def _edge_svg(
-    G: nx.DiGraph, boxes: Mapping[str, _Box], u: str, v: str, severity: str | None, spine_y: float, ids: str
-) -> tuple[list[str], list[str]]:
-    """The edge's path and, separately, its threat-code label (drawn last so nodes never hide it)."""
-    x1, y1, cx, cy, x2, y2, bow = _edge_geometry(G, boxes, u, v, spine_y)
+    G: nx.DiGraph,
+    boxes: Mapping[str, _Box],
+    u: str,
+    v: str,
+    severity: str | None,
+    spine_y: float,
+    ids: str,
+    col_w: float,
+) -> tuple[list[str], str, list[tuple[float, float]]]:
+    """The edge's path, its tag text ("" for none: threat codes, or "team") and points along its curve."""
+    x1, y1, cx, cy, x2, y2, bow = _edge_geometry(G, boxes, u, v, spine_y, col_w)
     data = G.edges[u, v]
     codes = list(data.get("threats", []))
     if severity == "broken":
@@ -301,40 +346,126 @@ def _edge_svg(
         f'stroke-width="{width}"{dash} marker-end="url(#{ids}-{marker})" data-from="{esc(u)}" data-to="{esc(v)}"/>'
     ]
     label = (
-        ", ".join(codes) + (" (team)" if data.get("team") else "")
+        ", ".join(codes) + (", team" if data.get("team") else "")
         if codes
         else ("team" if data.get("team") else "")
     )
-    tag: list[str] = []
-    if label:
-        lx = 0.25 * x1 + 0.5 * cx + 0.25 * x2 if bow else (x1 + x2) / 2
-        ly = (0.25 * y1 + 0.5 * cy + 0.25 * y2 if bow else (y1 + y2) / 2) - 6
-        tw = _text_width(label, 9.5) + 8
-        tag.append(
-            f'<rect x="{lx - tw / 2:.1f}" y="{ly - 10:.1f}" width="{tw:.1f}" height="14" rx="3" fill="{PAPER}" '
-            f'fill-opacity="0.92" stroke="{MUTED}" stroke-width="0.6"/>'
+    if not bow:
+        cx, cy = (x1 + x2) / 2, (y1 + y2) / 2
+    points = [
+        (
+            (1 - t) ** 2 * x1 + 2 * (1 - t) * t * cx + t**2 * x2,
+            (1 - t) ** 2 * y1 + 2 * (1 - t) * t * cy + t**2 * y2,
         )
-        tag.append(
-            f'<text x="{lx:.1f}" y="{ly + 1:.1f}" text-anchor="middle" font-size="9.5" '
-            f'font-family="DejaVu Sans Mono, monospace" fill="{INK}">{esc(label)}</text>'
+        for t in (i / 40 for i in range(41))
+    ]
+    return out, label, points
+
+
+Rect = tuple[float, float, float, float]  # left, top, right, bottom
+TAG_SIZE = 9.5
+TAG_H = 14.0
+
+
+def _overlaps(a: Rect, b: Rect, pad: float = 0.0) -> bool:
+    return a[0] < b[2] + pad and b[0] < a[2] + pad and a[1] < b[3] + pad and b[1] < a[3] + pad
+
+
+def _place_tags(
+    tags: Sequence[tuple[str, list[tuple[float, float]], int]],
+    obstacles: Sequence[Rect],
+    curves: Sequence[list[tuple[float, float]]],
+) -> list[tuple[str, Rect, tuple[float, float] | None]]:
+    """Place each edge tag on (or just beside) its own curve where it overlaps no other tag, node or text, and
+    covers as few points of other edges as possible. When its curve has no free spot, the tag goes to the nearest
+    free spot with a thin leader line to the curve (so a tag never sits on top of another)."""
+    placed: list[Rect] = []
+    out: list[tuple[str, Rect, tuple[float, float] | None]] = []
+    order = (20, 16, 24, 12, 28, 14, 26, 10, 30, 8, 32, 18, 22, 6, 34)
+    for text, points, own in tags:
+        w, h = text_width(text, TAG_SIZE, mono=True) + 8, TAG_H
+        others = [p for k, curve in enumerate(curves) if k != own for p in curve]
+        best: tuple[float, Rect] | None = None
+        for rank, i in enumerate(order):
+            px, py = points[i]
+            for k, dy in enumerate((0.0, -10.0, 10.0, -20.0, 20.0)):
+                r = (px - w / 2, py + dy - h / 2, px + w / 2, py + dy + h / 2)
+                if any(_overlaps(r, o, 2) for o in placed) or any(_overlaps(r, o, 2) for o in obstacles):
+                    continue
+                crossed = sum(
+                    1 for qx, qy in others if r[0] - 2 <= qx <= r[2] + 2 and r[1] - 2 <= qy <= r[3] + 2
+                )
+                score = crossed * 100 + rank + 3 * k
+                if best is None or score < best[0]:
+                    best = (score, r)
+            if best is not None and best[0] < 100:
+                break
+        leader: tuple[float, float] | None = None
+        if best is None:  # spiral outwards from the curve's middle to the nearest free spot
+            px, py = points[20]
+            for step in range(1, 400):
+                angle, radius = step * 0.7, 6.0 * math.sqrt(step) * 3
+                qx, qy = px + radius * math.cos(angle), py + radius * math.sin(angle)
+                r = (qx - w / 2, qy - h / 2, qx + w / 2, qy + h / 2)
+                if not any(_overlaps(r, o, 2) for o in [*placed, *obstacles]):
+                    best, leader = (0.0, r), (px, py)
+                    break
+            else:  # pragma: no cover - a free spot always exists far enough out
+                r = (px - w / 2, py - h / 2, px + w / 2, py + h / 2)
+                best = (0.0, r)
+        placed.append(best[1])
+        out.append((text, best[1], leader))
+    return out
+
+
+def _tag_svg(text: str, r: Rect, leader: tuple[float, float] | None) -> list[str]:
+    out = []
+    if leader is not None:
+        out.append(
+            f'<path class="tag-leader" d="M {(r[0] + r[2]) / 2:.1f} {(r[1] + r[3]) / 2:.1f} L {leader[0]:.1f} '
+            f'{leader[1]:.1f}" stroke="{MUTED}" stroke-width="0.8" fill="none"/>'
         )
-    return out, tag
+    out.append(
+        f'<rect class="edge-tag" x="{r[0]:.1f}" y="{r[1]:.1f}" width="{r[2] - r[0]:.1f}" height="{r[3] - r[1]:.1f}" '
+        f'rx="3" fill="{PAPER}" stroke="{MUTED}" stroke-width="0.6"/>'
+    )
+    out.append(
+        f'<text x="{(r[0] + r[2]) / 2:.1f}" y="{r[3] - 3.5:.1f}" text-anchor="middle" font-size="{TAG_SIZE}" '
+        f'font-family="DejaVu Sans Mono, monospace" fill="{INK}">{esc(text)}</text>'
+    )
+    return out
+
+
+#: The verdict shapes in a 16-unit box, the same as the dossier's verdict badges, so the diagram, its legend and the
+#: dossier show one glyph per verdict (drawn in ``currentColor``; the shape alone tells them apart).
+VERDICT_SHAPES: dict[str, str] = {
+    # filled circle with a tick
+    "holds": '<circle cx="8" cy="8" r="7" fill="currentColor"/>'
+    '<path d="M4.6 8.3l2.3 2.3 4.6-5" fill="none" stroke="#fff" stroke-width="1.8" stroke-linecap="round" '
+    'stroke-linejoin="round"/>',
+    # triangle with an exclamation mark
+    "at-risk": '<path d="M8 1.2L15.2 14.3H0.8Z" fill="currentColor"/>'
+    '<path d="M8 5.6v4.2" stroke="#fff" stroke-width="1.8" stroke-linecap="round"/>'
+    '<circle cx="8" cy="12.1" r="1" fill="#fff"/>',
+    # square with a cross
+    "broken": '<rect x="1.2" y="1.2" width="13.6" height="13.6" rx="1.5" fill="currentColor"/>'
+    '<path d="M5 5l6 6M11 5l-6 6" stroke="#fff" stroke-width="1.8" stroke-linecap="round"/>',
+    # dashed empty circle with a bar
+    "not-assessed": '<circle cx="8" cy="8" r="6.3" fill="none" stroke="currentColor" stroke-width="1.5" '
+    'stroke-dasharray="2.6 1.9"/><path d="M5.5 8h5" stroke="currentColor" stroke-width="1.6" '
+    'stroke-linecap="round"/>',
+}
+_GLYPH_COLOUR = {"holds": INK, "at-risk": AT_RISK, "broken": BROKEN, "not-assessed": MUTED}
 
 
 def _glyph(value: str, x: float, y: float) -> str:
-    if value == "holds":
-        return f'<circle cx="{x:.1f}" cy="{y:.1f}" r="6" fill="{INK}"/>'
-    if value == "at-risk":
-        return (
-            f'<polygon points="{x:.1f},{y - 7:.1f} {x + 7:.1f},{y + 6:.1f} {x - 7:.1f},{y + 6:.1f}" fill="{PAPER}" '
-            f'stroke="{AT_RISK}" stroke-width="2"/>'
-        )
-    if value == "broken":
-        return (
-            f'<path d="M {x - 6:.1f} {y - 6:.1f} L {x + 6:.1f} {y + 6:.1f} M {x + 6:.1f} {y - 6:.1f} L {x - 6:.1f} '
-            f'{y + 6:.1f}" stroke="{BROKEN}" stroke-width="3"/>'
-        )
-    return f'<circle cx="{x:.1f}" cy="{y:.1f}" r="6" fill="none" stroke="{MUTED}" stroke-width="1.5" stroke-dasharray="2 2"/>'
+    """The verdict's shape centred on (x, y)."""
+    colour = _GLYPH_COLOUR.get(value, MUTED)
+    shape = VERDICT_SHAPES.get(value, VERDICT_SHAPES["not-assessed"])
+    return (
+        f'<g class="glyph" data-value="{esc(value)}" transform="translate({x - 8:.1f} {y - 8:.1f})" '
+        f'color="{colour}">{shape}</g>'
+    )
 
 
 def _defs(ids: str) -> str:
@@ -362,8 +493,27 @@ def _defs(ids: str) -> str:
     return "<defs>" + "".join(big) + hatch + "</defs>"
 
 
-def _legend(x: float, y: float, ids: str) -> tuple[list[str], float]:
-    items: list[tuple[str, str]] = [
+class _Flow:
+    """Legend items laid out left to right, wrapping at ``right``; each item is (width, draw(x, y) -> svg)."""
+
+    def __init__(self, x: float, y: float, right: float, row_h: float) -> None:
+        self.x0, self.x, self.y, self.right, self.row_h = x, x, y, right, row_h
+        self.out: list[str] = []
+
+    def add(self, width: float, draw: Any) -> None:
+        if self.x > self.x0 and self.x + width > self.right:
+            self.x, self.y = self.x0, self.y + self.row_h
+        self.out.extend(draw(self.x, self.y))
+        self.x += width + 24
+
+    def newline(self, gap: float = 0.0) -> None:
+        if self.x > self.x0:
+            self.x, self.y = self.x0, self.y + self.row_h + gap
+
+
+def _legend(x: float, y: float, ids: str, right: float) -> tuple[list[str], float]:
+    out = [f'<text x="{x:.1f}" y="{y:.1f}" font-size="11" font-weight="bold" fill="{INK}">Legend</text>']
+    shapes = [
         ("instrument", "instrument (Z)"),
         ("treatment", "treatment (X)"),
         ("outcome", "outcome (Y)"),
@@ -371,19 +521,39 @@ def _legend(x: float, y: float, ids: str) -> tuple[list[str], float]:
         ("covariate", "measured variable"),
         ("intermediate", "measurable, from a threat"),
     ]
-    out = [f'<text x="{x:.1f}" y="{y:.1f}" font-size="11" font-weight="bold" fill="{INK}">Legend</text>']
-    y += 14
-    for i, (role, text) in enumerate(items):
-        col, row = i % 3, i // 3
-        bx, by = x + col * 230 + 30, y + row * 40 + 16
-        box = _Box(name=role, role=role, lines=[""], sub="", x=bx, y=by, w=48, h=26)
-        shape = _node_svg(box, ids)
-        out.extend(s for s in shape if not s.startswith("<text"))
-        out.append(f'<text x="{bx + 34:.1f}" y="{by + 4:.1f}" font-size="11" fill="{INK}">{esc(text)}</text>')
-    y += 2 * 40 + 6
+    flow = _Flow(x, y + 30, right, 38)
+
+    def shape_item(role: str, text: str) -> Any:
+        def draw(lx: float, ly: float) -> list[str]:
+            box = _Box(name=role, role=role, lines=[""], sub="", x=lx + 24, y=ly, w=48, h=26)
+            items = [s for s in _node_svg(box, ids) if not s.startswith("<text")]
+            items.append(
+                f'<text x="{lx + 58:.1f}" y="{ly + 4:.1f}" font-size="11" fill="{INK}">{esc(text)}</text>'
+            )
+            return items
+
+        return draw
+
+    for role, text in shapes:
+        flow.add(58 + text_width(text, 11), shape_item(role, text))
+    flow.add(
+        58 + text_width("unobserved, declared but not measured", 11),
+        lambda lx, ly: [
+            *[
+                s
+                for s in _node_svg(_Box("nm", "unobserved", [""], "", lx + 24, ly, 48, 26), ids)
+                if not s.startswith("<text")
+            ],
+            f'<text x="{lx + 24:.1f}" y="{ly + 3:.1f}" text-anchor="middle" font-size="6.5" fill="{MUTED}">NOT MEAS.</text>',
+            f'<text x="{lx + 58:.1f}" y="{ly + 4:.1f}" font-size="11" fill="{INK}">'
+            f"{esc('unobserved, declared but not measured')}</text>",
+        ],
+    )
+    flow.newline(4)
+    flow.row_h = 24
     lines = [
-        (f'stroke="{INK}" stroke-width="1.7"', "arrow", "edge of the base design"),
-        (f'stroke="{MUTED}" stroke-width="1.4"', "arrow-muted", "edge drawn by a threat (code beside it)"),
+        (f'stroke="{INK}" stroke-width="1.7"', "arrow", "edge of the base design or drawn by the team"),
+        (f'stroke="{MUTED}" stroke-width="1.4"', "arrow-muted", "edge drawn by a threat"),
         (
             f'stroke="{BROKEN}" stroke-width="4" stroke-dasharray="11 6"',
             "arrow-broken",
@@ -395,28 +565,60 @@ def _legend(x: float, y: float, ids: str) -> tuple[list[str], float]:
             "open path: condition at risk",
         ),
     ]
-    for i, (style, marker, text) in enumerate(lines):
-        col, row = i % 2, i // 2
-        lx, ly = x + col * 345, y + row * 22
-        out.append(
-            f'<path d="M {lx:.1f} {ly:.1f} L {lx + 52:.1f} {ly:.1f}" {style} marker-end="url(#{ids}-{marker})"/>'
-        )
-        out.append(f'<text x="{lx + 62:.1f}" y="{ly + 4:.1f}" font-size="11" fill="{INK}">{esc(text)}</text>')
-    y += 2 * 22 + 8
-    badges = "W = conditioned on (hatched)   S = sample selected on   "
-    glyphs = [
+
+    def line_item(style: str, marker: str, text: str) -> Any:
+        def draw(lx: float, ly: float) -> list[str]:
+            return [
+                f'<path d="M {lx:.1f} {ly:.1f} L {lx + 52:.1f} {ly:.1f}" {style} marker-end="url(#{ids}-{marker})"/>',
+                f'<text x="{lx + 62:.1f}" y="{ly + 4:.1f}" font-size="11" fill="{INK}">{esc(text)}</text>',
+            ]
+
+        return draw
+
+    for style, marker, text in lines:
+        flow.add(62 + text_width(text, 11), line_item(style, marker, text))
+    flow.newline(2)
+    for tag, text in (
+        ("team", "the team drew this edge (graph edge)"),
+        ("DG-E01", "the catalogue threat whose graph drew this edge"),
+    ):
+        tw = text_width(tag, TAG_SIZE, mono=True) + 8
+
+        def tag_item(lx: float, ly: float, tag: str = tag, text: str = text, tw: float = tw) -> list[str]:
+            return [
+                *_tag_svg(tag, (lx, ly - TAG_H / 2 - 1, lx + tw, ly + TAG_H / 2 - 1), None),
+                f'<text x="{lx + tw + 10:.1f}" y="{ly + 4:.1f}" font-size="11" fill="{INK}">{esc(text)}</text>',
+            ]
+
+        flow.add(tw + 10 + text_width(text, 11), tag_item)
+    flow.newline(2)
+    for letter, text in (("W", "conditioned on (hatched)"), ("S", "sample selected on")):
+
+        def badge(lx: float, ly: float, letter: str = letter, text: str = text) -> list[str]:
+            return [
+                f'<rect x="{lx:.1f}" y="{ly - 9:.1f}" width="16" height="16" fill="{INK}"/>',
+                f'<text x="{lx + 8:.1f}" y="{ly + 3:.1f}" text-anchor="middle" font-size="11" font-weight="bold" '
+                f'fill="{PAPER}">{letter}</text>',
+                f'<text x="{lx + 22:.1f}" y="{ly + 4:.1f}" font-size="11" fill="{INK}">{esc(text)}</text>',
+            ]
+
+        flow.add(22 + text_width(text, 11), badge)
+    for value, text in (
         ("holds", "holds"),
         ("at-risk", "at risk"),
         ("broken", "broken"),
         ("not-assessed", "not assessed"),
-    ]
-    out.append(f'<text x="{x:.1f}" y="{y:.1f}" font-size="11" fill="{INK}">{esc(badges)}</text>')
-    gx = x + _text_width(badges, 11) + 4
-    for value, text in glyphs:
-        out.append(_glyph(value, gx + 6, y - 4))
-        out.append(f'<text x="{gx + 17:.1f}" y="{y:.1f}" font-size="11" fill="{INK}">{esc(text)}</text>')
-        gx += 30 + _text_width(text, 11)
-    return out, y + 16
+    ):
+
+        def glyph(lx: float, ly: float, value: str = value, text: str = text) -> list[str]:
+            return [
+                _glyph(value, lx + 8, ly),
+                f'<text x="{lx + 22:.1f}" y="{ly + 4:.1f}" font-size="11" fill="{INK}">{esc(text)}</text>',
+            ]
+
+        flow.add(22 + text_width(text, 11), glyph)
+    out.extend(flow.out)
+    return out, flow.y + 22
 
 
 def render_svg(
@@ -456,6 +658,9 @@ def render_svg(
         )
         if role not in _TAGS:
             role = "intermediate"
+        unmeasured = role == "covariate" and not data.get("observed", True)
+        if unmeasured:  # a declared covariate missing from the data is drawn as what it is: unobserved
+            role = "unobserved"
         name = str(node)
         label = str(data.get("label") or name)
         lines = _wrap(label)
@@ -464,29 +669,76 @@ def render_svg(
         )
         if role in ("instrument", "treatment", "outcome") and label != name:
             lines, sub = _wrap(name), ""
-        w = max([_text_width(s, 12) for s in lines] + [_text_width(sub, 9), 80.0]) + 28
+        bold = role in ("instrument", "treatment", "outcome")
+        tag = "NOT MEASURED" if unmeasured else _TAGS.get(role, role.upper())
+        w = (
+            max(
+                [text_width(t, 12, bold=bold) for t in lines]
+                + [text_width(sub, 9, mono=True), text_width(tag, 8.5, spacing=0.8), 80.0]
+            )
+            + 28
+        )
         h = 22 + 14 * (len(lines) + (1 if sub else 0))
         if role == "unobserved":
-            w, h = w * 1.18, h + 8
+            w, h = w * 1.3, h + 8
         if role == "instrument":
-            w += 14
+            w += 18
         boxes[node] = _Box(
             name=name,
             role=role,
             lines=lines,
             sub=sub,
-            w=min(w, 190.0),
+            w=w,
             h=h,
             conditioned=node in conditioned,
             selection=node in selection,
-            covariate_unmeasured=role == "covariate" and not data.get("observed", True),
+            covariate_unmeasured=unmeasured,
         )
 
     ids = "ivd-" + hashlib.sha256(repr(sorted(map(str, G.edges))).encode()).hexdigest()[:8]
+    texts: list[Rect] = []  # every text line outside the nodes, for sizing and for keeping tags off them
+
+    def text_line(x: float, y: float, content: str, size: float, extra: str = "", **kw: Any) -> str:
+        width = text_width(content, size, **kw)
+        texts.append((x, y - size, x + width, y + size * 0.3))
+        return f'<text x="{x:.1f}" y="{y:.1f}" font-size="{size}"{extra}>{esc(content)}</text>'
+
+    body: list[str] = []
+    y_text = 28.0
+    if title:
+        body.append(text_line(MARGIN, y_text, title, 17, f' font-weight="bold" fill="{INK}"', bold=True))
+        y_text += 30
+    if verdict is not None:
+        x = MARGIN
+        strip = (
+            [(v.condition, verdict_key(v.status)) for v in verdicts]
+            if verdicts is not None
+            else [(c.condition, c.value) for c in verdict.conditions]
+        )
+        for condition, value in strip:
+            text = f"{condition}: {value.replace('-', ' ')}"
+            wbox = text_width(text, 12) + 40
+            dash = ' stroke-dasharray="4 3"' if value == "not-assessed" else ""
+            stroke_w = "2.4" if value == "broken" else "1.2"
+            texts.append((x, y_text - 16, x + wbox, y_text + 10))
+            body.append(
+                f'<g class="verdict" data-condition="{esc(condition)}" data-value="{esc(value)}">'
+                f'<rect x="{x:.1f}" y="{y_text - 16:.1f}" width="{wbox:.1f}" height="26" rx="4" fill="{PAPER}" '
+                f'stroke="{INK}" stroke-width="{stroke_w}"{dash}/>'
+                + _glyph(value, x + 14, y_text - 3)
+                + f'<text x="{x + 28:.1f}" y="{y_text + 1:.1f}" font-size="12" fill="{INK}">{esc(text)}</text></g>'
+            )
+            x += wbox + 10
+        given = ", ".join(verdict.conditioning) or "nothing"
+        sentence = f"{criterion_sentence(verdict)}, conditioning on {given}."
+        body.append(text_line(MARGIN, y_text + 28, sentence, 11, f' fill="{MUTED}"'))
+
     top = 28.0 + (30.0 if title else 0.0) + (40.0 if verdict else 0.0)
-    width, bottom = _layout(G, boxes, top + 24.0)
+    max_w = max((b.w for b in boxes.values()), default=120.0)
+    col_w = max(COL_W, max_w + 40.0)
+    width, bottom = _layout(G, boxes, top + 24.0, col_w)
     spine_y = next((b.y for b in boxes.values() if b.role == "instrument"), bottom / 2)
-    low, high, right = _edge_extent(G, boxes, spine_y)
+    low, high, right = _edge_extent(G, boxes, spine_y, col_w)
     node_top = min(b.y - b.h / 2 for b in boxes.values())
     shift = max(0.0, (top + 24.0) - min(low - 12.0, node_top - 12.0))
     for box in boxes.values():
@@ -503,55 +755,29 @@ def render_svg(
                 if severity.get(edge) != "broken":
                     severity[edge] = path.severity
 
-    body: list[str] = []
-    y_text = 28.0
-    if title:
-        body.append(
-            f'<text x="{MARGIN:.1f}" y="{y_text:.1f}" font-size="17" font-weight="bold" fill="{INK}">{esc(title)}</text>'
-        )
-        y_text += 30
-    if verdict is not None:
-        x = MARGIN
-        strip = (
-            [(v.condition, verdict_key(v.status)) for v in verdicts]
-            if verdicts is not None
-            else [(c.condition, c.value) for c in verdict.conditions]
-        )
-        for condition, value in strip:
-            text = f"{condition}: {value.replace('-', ' ')}"
-            wbox = _text_width(text, 12) + 40
-            dash = ' stroke-dasharray="4 3"' if value == "not-assessed" else ""
-            stroke_w = "2.4" if value == "broken" else "1.2"
-            body.append(
-                f'<g class="verdict" data-condition="{esc(condition)}" data-value="{esc(value)}">'
-                f'<rect x="{x:.1f}" y="{y_text - 16:.1f}" width="{wbox:.1f}" height="26" rx="4" fill="{PAPER}" '
-                f'stroke="{INK}" stroke-width="{stroke_w}"{dash}/>'
-                + _glyph(value, x + 14, y_text - 3)
-                + f'<text x="{x + 26:.1f}" y="{y_text + 1:.1f}" font-size="12" fill="{INK}">{esc(text)}</text></g>'
-            )
-            x += wbox + 10
-        width = max(width, x + MARGIN)
-        given = ", ".join(verdict.conditioning) or "nothing"
-        body.append(
-            f'<text x="{MARGIN:.1f}" y="{y_text + 28:.1f}" font-size="11" fill="{MUTED}">'
-            f"{esc(f'{criterion_sentence(verdict)}, conditioning on {given}.')}</text>"
-        )
-
-    tags: list[str] = []
+    pending: list[tuple[str, list[tuple[float, float]], int]] = []
+    curves: list[list[tuple[float, float]]] = []
     for u, v in sorted(G.edges, key=lambda e: (severity.get(e) is not None, e)):
-        line, tag = _edge_svg(G, boxes, u, v, severity.get((u, v)), spine_y, ids)
+        line, label, points = _edge_svg(G, boxes, u, v, severity.get((u, v)), spine_y, ids, col_w)
         body.extend(line)
-        tags.extend(tag)
+        if label:
+            pending.append((label, points, len(curves)))
+        curves.append(points)
     for node in sorted(boxes):
         body.extend(_node_svg(boxes[node], ids))
-    body.extend(tags)
+    nodes = [
+        (b.x - b.w / 2 - 8, b.y - b.h / 2 - 9, b.x + b.w / 2 + 2, b.y + b.h / 2 + 2) for b in boxes.values()
+    ]
+    placed = _place_tags(pending, [*nodes, *texts], curves)
+    for text, r, leader in placed:
+        body.extend(_tag_svg(text, r, leader))
+        bottom = max(bottom, r[3] + 12)
+        width = max(width, r[2] + MARGIN)
 
     y = bottom + 8
     if verdict is not None:
         heading = "Open paths from instrument to outcome that avoid the treatment"
-        body.append(
-            f'<text x="{MARGIN:.1f}" y="{y:.1f}" font-size="12" font-weight="bold" fill="{INK}">{esc(heading)}</text>'
-        )
+        body.append(text_line(MARGIN, y, heading, 12, f' font-weight="bold" fill="{INK}"', bold=True))
         y += 18
         rows = [
             f"{i}. {p.text}  [{', '.join(p.threats) or 'team-drawn'}]  {p.severity}, {p.condition}"
@@ -559,21 +785,24 @@ def render_svg(
         ] or ["none, given the conditioning set"]
         for row in rows:
             body.append(
-                f'<text x="{MARGIN + 8:.1f}" y="{y:.1f}" font-size="11" font-family="DejaVu Sans Mono, monospace" '
-                f'fill="{INK}">{esc(row)}</text>'
+                text_line(
+                    MARGIN + 8,
+                    y,
+                    row,
+                    11,
+                    f' font-family="DejaVu Sans Mono, monospace" fill="{INK}"',
+                    mono=True,
+                )
             )
-            width = max(width, MARGIN * 2 + 8 + _text_width(row, 11))
             y += 16
         y += 12
-    legend, y = _legend(MARGIN, y + 6, ids)
+    caution = "A graph records assumptions; it cannot establish exclusion or exogeneity. Review with domain experts."
+    width = max([width, MARGIN * 2 + text_width(caution, 10)] + [r[2] + MARGIN for r in texts])
+    legend, y = _legend(MARGIN, y + 6, ids, width - MARGIN)
     body.extend(legend)
     height = y + 14
-    caution = "A graph records assumptions; it cannot establish exclusion or exogeneity. Review with domain experts."
-    body.append(
-        f'<text x="{MARGIN:.1f}" y="{height - 4:.1f}" font-size="10" fill="{MUTED}">{esc(caution)}</text>'
-    )
+    body.append(text_line(MARGIN, height - 4, caution, 10, f' fill="{MUTED}"'))
     height += 12
-    width = max(width, MARGIN * 2 + _text_width(caution, 10))
     head = (
         f'<svg xmlns="http://www.w3.org/2000/svg" width="{width:.0f}" height="{height:.0f}" '
         f'viewBox="0 0 {width:.0f} {height:.0f}" font-family="{FONT}" role="img" aria-label="{esc(title or "instrument graph")}">'

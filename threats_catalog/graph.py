@@ -46,6 +46,7 @@ team-drawn, or a hand-made ``nx.DiGraph`` without our attributes) count as asser
 
 from __future__ import annotations
 
+import difflib
 import itertools
 import math
 from collections.abc import Iterable, Mapping, Sequence
@@ -199,10 +200,7 @@ def build_graph(
                 )
         if u == v:
             raise InvalidInputError(f"extra edge ({u!r}, {v!r}) is a self-loop; remove it")
-        if G.has_edge(u, v):
-            G.edges[u, v]["team"] = True
-        else:
-            G.add_edge(u, v, threats=[], base=False, team=True)
+        _add_team_edge(G, u, v)
 
     if not nx.is_directed_acyclic_graph(G):
         cycle = nx.find_cycle(G)
@@ -214,6 +212,53 @@ def build_graph(
             f"the graph has a cycle {chain} (edges from {who}); rebut one of those threats or reverse an edge"
         )
     return G
+
+
+def _add_team_edge(G: nx.DiGraph, u: str, v: str) -> None:
+    if G.has_edge(u, v):
+        G.edges[u, v]["team"] = True
+    else:
+        G.add_edge(u, v, threats=[], base=False, team=True)
+
+
+def edge_problem(G: nx.DiGraph, source: str, target: str, *, where: str = "") -> str | None:
+    """Why the team edge ``source -> target`` cannot join ``G`` (unknown node, self-loop, cycle), with the fix;
+    None when it can. ``where`` names the graph in the message ("in instrument x's graph"). A cycle message
+    starts with ``"cycle:"`` so callers can tell it apart."""
+    at = f" {where}" if where else ""
+    for end in (source, target):
+        if end not in G:
+            close = difflib.get_close_matches(end, [str(n) for n in G], n=1, cutoff=0.5)
+            hint = f"did you mean {close[0]!r}? " if close else ""
+            known = ", ".join(sorted(str(n) for n in G))
+            return (
+                f"edge {source} -> {target} names unknown node {end!r}{at}; {hint}known nodes: {known} "
+                "(declare a new variable with `graph covariate` first)"
+            )
+    if source == target:
+        return f"edge {source} -> {target} is a self-loop; an edge must join two different nodes"
+    if G.has_edge(source, target) or not nx.has_path(G, target, source):
+        return None
+    back = nx.shortest_path(G, target, source)
+    chain = " -> ".join([source, *back])
+    return (
+        f"cycle: edge {source} -> {target} would close the cycle {chain}{at}; a causal graph has no cycles. "
+        f"Reverse or remove one edge of it (`graph edge reverse`/`graph edge remove` for team edges, "
+        "rebut the threat for a threat's edge), or draw the edge the other way"
+    )
+
+
+def add_team_edges(G: nx.DiGraph, edges: Iterable[tuple[str, str]]) -> tuple[tuple[str, str, str], ...]:
+    """Add team-drawn edges to ``G`` in order; an edge that names a node not in ``G`` or would close a cycle is
+    left out and returned as ``(source, target, reason)`` (so one stale edge never stops a whole graph)."""
+    skipped: list[tuple[str, str, str]] = []
+    for u, v in edges:
+        problem = edge_problem(G, u, v)
+        if problem is None:
+            _add_team_edge(G, u, v)
+        else:
+            skipped.append((u, v, problem.removeprefix("cycle: ")))
+    return tuple(skipped)
 
 
 # ----------------------------------------------------------------------------------------------- d-separation
@@ -368,6 +413,7 @@ class GraphVerdict:
     blocked_paths: tuple[BypassPath, ...]
     threats: tuple[ThreatEffect, ...]
     paths_truncated: bool
+    notes: tuple[str, ...] = ()  # team edges left out of this graph, each with why and the fix
 
     def condition(self, name: str) -> ConditionVerdict:
         """The verdict for one condition (relevance, exclusion, exogeneity, monotonicity)."""
@@ -396,6 +442,7 @@ class GraphVerdict:
             "blocked_paths": [p.to_dict() for p in self.blocked_paths],
             "threats": [t.to_dict() for t in self.threats],
             "paths_truncated": self.paths_truncated,
+            "notes": list(self.notes),
         }
 
 
@@ -477,6 +524,10 @@ def check_instrument(
         blocked_paths=tuple(blocked_paths),
         threats=tuple(effects),
         paths_truncated=truncated,
+        notes=tuple(
+            f"team edge {u} -> {v} left out of this graph: {why}"
+            for u, v, why in G.graph.get("skipped_edges", ())
+        ),
     )
 
 

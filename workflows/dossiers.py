@@ -18,7 +18,7 @@ from sqlmodel import Session, select
 from ivdossier import __version__
 from ivdossier.registry import records
 from ivdossier.registry.history import history
-from ivdossier.registry.instruments import covariates_of, edges_of
+from ivdossier.registry.instruments import covariates_of, edges_for
 from ivdossier.registry.models import (
     CONDITIONS,
     Dataset,
@@ -57,28 +57,44 @@ def conditioning_of(session: Session, instrument: Instrument, program: Program) 
     return used & measured
 
 
-def instrument_graph(session: Session, instrument: Instrument) -> tuple[Any, GraphVerdict]:
-    """Build the instrument's causal graph from its program and linked threats, and check it."""
-    from ivdossier.threats_catalog.graph import build_graph, check_instrument
+def instrument_graph(
+    session: Session, instrument: Instrument, *, team_edges: Sequence[tuple[str, str]] | None = None
+) -> tuple[Any, GraphVerdict]:
+    """Build the instrument's causal graph from its program, linked threats and team edges, and check it.
+
+    The team edges are the program-wide ones and those scoped to this instrument (``team_edges`` replaces them,
+    to try an edit before it is written). An edge that no longer fits (its node left with a rebutted threat, or
+    it would close a cycle with a newly linked threat) is left out and named in ``G.graph["skipped_edges"]``."""
+    from ivdossier.threats_catalog.graph import add_team_edges, check_instrument
+
+    G = base_graph(session, instrument)
+    if team_edges is None:
+        team_edges = [(e.source, e.target) for e in edges_for(session, instrument)]
+    G.graph["skipped_edges"] = add_team_edges(G, team_edges)
+    roles = graph_roles(records.get_by_id(session, Program, instrument.program_id), instrument)
+    program = records.get_by_id(session, Program, instrument.program_id)
+    verdict = check_instrument(G, conditioning=conditioning_of(session, instrument, program), **roles)
+    return G, verdict
+
+
+def base_graph(session: Session, instrument: Instrument) -> Any:
+    """The instrument's graph without team edges: roles, declared covariates and linked threats' fragments."""
+    from ivdossier.threats_catalog.graph import build_graph
 
     program = records.get_by_id(session, Program, instrument.program_id)
-    roles = graph_roles(program, instrument)
     fragments = []
     states: dict[str, str] = {}
     for link, threat in links_of(session, instrument):
         states[threat.code] = link.state
         fragments.append(catalog_entry(threat).fragment)
     covariates = {c.name: c.measured for c in covariates_of(session, program)}
-    G = build_graph(
-        **roles,
+    return build_graph(
+        **graph_roles(program, instrument),
         covariates=covariates,
         fragments=fragments,
-        extra_edges=[(e.source, e.target) for e in edges_of(session, program)],
         link_states=states,
         confounder=CONFOUNDER,
     )
-    verdict = check_instrument(G, conditioning=conditioning_of(session, instrument, program), **roles)
-    return G, verdict
 
 
 def catalog_entry(row: Threat) -> Any:
