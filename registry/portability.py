@@ -2,7 +2,7 @@
 
 Layout written under the chosen folder:
 
-    manifest.json               format name and version, schema revision, entity counts
+    manifest.json               format name and version, schema revision, entity counts, SHA-256 of every file
     <kind>/<label>.json         one entity: every column but the integer id, references as UUIDs
     <kind>/_<uuid>.json         the same when the label is not a safe, unique lower-case file name
     audit.jsonl                 the audit trail, one event per line, oldest first
@@ -14,6 +14,7 @@ writes in one transaction: it adds what is new, leaves identical entities alone 
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 import os
@@ -29,6 +30,7 @@ from sqlalchemy import select as sa_select
 from sqlalchemy.types import JSON
 from sqlmodel import Session, select
 
+from ivdossier import safefiles
 from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import records
 from ivdossier.registry.db import SCHEMA_HEAD
@@ -42,13 +44,14 @@ from ivdossier.registry.models import (
 )
 
 FORMAT_NAME = "ivdossier-export"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: the manifest lists every file with its SHA-256
 MANIFEST = "manifest.json"
 AUDIT_FILE = "audit.jsonl"
 MAX_FILE_BYTES = 50_000_000
 MAX_TEXT = 1_000_000  # longest unbounded text field accepted on import
 MAX_REPORTED = 20
 ON_CONFLICT = ("stop", "keep-registry", "take-import")
+SHA256_RE = re.compile(r"^[0-9a-f]{64}$")
 UUID_RE = re.compile(r"^[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}$")
 SAFE_NAME_RE = re.compile(r"^[a-z0-9][a-z0-9._-]{0,199}$")
 AUDIT_KEYS = (
@@ -233,49 +236,59 @@ def render_export(session: Session) -> dict[str, str]:
         "schema": SCHEMA_HEAD,
         "counts": {kind: len(rows) for kind, rows in loaded.items()},
         "audit_events": len(lines),
+        "files": {rel: sha256_hex(text.encode("utf-8")) for rel, text in sorted(files.items())},
     }
     files[MANIFEST] = dumps_document(manifest, where="manifest")
     return files
 
 
-def _inside(root: Path, rel: str) -> Path:
-    """root/rel, refusing any path that resolves outside root (through '..' or a symbolic link)."""
-    target = (root / rel).resolve()
-    if not target.is_relative_to(root):
-        raise InvalidInputError(f"refusing to write {rel!r}: it resolves outside {str(root)!r}.")
-    return target
+def _is_old_temporary(rel: str) -> bool:
+    """A temporary an earlier version of export left inside the folder (`.name.tmp`): ours, dropped on swap."""
+    name = rel.rsplit("/", 1)[-1]
+    return name.startswith(".") and name.endswith(".tmp")
 
 
 def _existing_export_files(root: Path) -> set[str]:
-    """Files of an earlier export in root; anything else there (besides dot-entries such as .git) is refused."""
-    if not root.exists():
+    """Files of an earlier export in root. Every entry is checked (dot-entries too) without following links:
+    anything that is not export content, version control or an old temporary is refused, naming it."""
+    if not os.path.lexists(root):
         return set()
-    if not root.is_dir():
+    if root.is_symlink() or not root.is_dir():
         raise InvalidInputError(
             f"{str(root)!r} is not a folder; choose a new or empty folder for the export."
         )
-    entries = [p for p in root.iterdir() if not p.name.startswith(".")]
+    entries = [
+        e
+        for e in safefiles.scan_tree(root)
+        if e.rel.split("/")[0] not in safefiles.PRESERVED
+        and e.rel.rsplit("/", 1)[-1] not in safefiles.CLUTTER
+    ]
     if not entries:
         return set()
-    if not (root / MANIFEST).is_file() or _read_manifest_format(root / MANIFEST) != FORMAT_NAME:
-        shown = ", ".join(sorted(p.name for p in entries)[:5])
+    kinds = {e.rel: e.kind for e in entries}
+    manifest = safefiles.read_regular(root / MANIFEST) if kinds.get(MANIFEST) == "file" else None
+    if manifest is None or _manifest_format(manifest) != FORMAT_NAME:
+        shown = ", ".join(sorted(e.rel for e in entries if "/" not in e.rel)[:5])
         raise InvalidInputError(
             f"{str(root)!r} already holds files that are not an ivdossier export ({shown}); "
             "choose a new or empty folder."
         )
     found: set[str] = set()
     strays: list[str] = []
-    for entry in entries:
-        if entry.name in (MANIFEST, AUDIT_FILE) and entry.is_file() and not entry.is_symlink():
-            found.add(entry.name)
-        elif entry.name in CLASSES and entry.is_dir() and not entry.is_symlink():
-            for item in entry.iterdir():
-                if item.suffix == ".json" and item.is_file() and not item.is_symlink():
-                    found.add(f"{entry.name}/{item.name}")
-                else:
-                    strays.append(f"{entry.name}/{item.name}")
+    for e in entries:
+        top, _, rest = e.rel.partition("/")
+        if e.kind == "file" and _is_old_temporary(e.rel):
+            continue
+        if e.kind == "link":
+            strays.append(f"{e.rel} (a symbolic link)")
+        elif e.rel in (MANIFEST, AUDIT_FILE) and e.kind == "file":
+            found.add(e.rel)
+        elif top in CLASSES and not rest and e.kind == "dir":
+            continue
+        elif top in CLASSES and rest and "/" not in rest and e.kind == "file" and rest.endswith(".json"):
+            found.add(e.rel)
         else:
-            strays.append(entry.name)
+            strays.append(e.rel)
     if strays:
         raise InvalidInputError(
             f"{str(root)!r} holds an earlier export plus other content ({', '.join(sorted(strays)[:5])}); "
@@ -284,43 +297,27 @@ def _existing_export_files(root: Path) -> set[str]:
     return found
 
 
-def _read_manifest_format(path: Path) -> str | None:
+def _manifest_format(data: bytes) -> str | None:
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+        parsed = json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError, RecursionError):
         return None
-    return data.get("format") if isinstance(data, dict) else None
-
-
-def _write_atomically(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_bytes(text.encode("utf-8"))
-    os.replace(tmp, path)
+    return parsed.get("format") if isinstance(parsed, dict) else None
 
 
 def write_export(files: Mapping[str, str], directory: str | Path) -> tuple[int, int, int]:
-    """Write rendered files under `directory`, touching only files that changed; returns (written, same, removed)."""
+    """Replace `directory` with the rendered files in one swap; returns (written, unchanged, removed).
+
+    The new tree is staged in a sibling folder and swapped in with one rename: an interrupted export leaves
+    the old export or the new one, and version-control entries (.git) are carried over.
+    """
     root = Path(directory).expanduser().resolve()
+    safefiles.clean_stale(root)
     old = _existing_export_files(root)
-    root.mkdir(parents=True, exist_ok=True)
-    written = same = removed = 0
-    for rel, text in sorted(files.items()):
-        target = _inside(root, rel)
-        target.parent.mkdir(exist_ok=True)
-        data = text.encode("utf-8")
-        if target.is_file() and target.read_bytes() == data:
-            same += 1
-            continue
-        _write_atomically(target, text)
-        written += 1
-    for rel in sorted(old - set(files)):
-        _inside(root, rel).unlink()
-        removed += 1
-    for kind in CLASSES:
-        folder = root / kind
-        if folder.is_dir() and not any(folder.iterdir()):
-            folder.rmdir()
-    return written, same, removed
+    change = safefiles.replace_tree(
+        root, {rel: text.encode("utf-8") for rel, text in files.items()}, allowed_old=sorted(old)
+    )
+    return change.written, change.unchanged, change.removed
 
 
 def export_registry(session: Session, directory: str | Path) -> ExportSummary:
@@ -389,21 +386,16 @@ def load_json_text(text: str) -> Any:
     )
 
 
-def _read_text(path: Path, rel: str, problems: Problems) -> str | None:
+def _decode(data: bytes, rel: str, problems: Problems) -> str | None:
     try:
-        if path.stat().st_size > MAX_FILE_BYTES:
-            problems.add(f"{rel} is larger than {MAX_FILE_BYTES:,} bytes")
-            return None
-        return path.read_bytes().decode("utf-8")
+        return data.decode("utf-8")
     except UnicodeDecodeError as exc:
         problems.add(f"{rel} is not UTF-8 text ({exc.reason} at byte {exc.start})")
-    except OSError as exc:
-        problems.add(f"{rel} cannot be read ({exc.strerror})")
     return None
 
 
-def _parse_json_file(path: Path, rel: str, problems: Problems) -> Any:
-    text = _read_text(path, rel, problems)
+def _parse_json_bytes(data: bytes, rel: str, problems: Problems) -> Any:
+    text = _decode(data, rel, problems)
     if text is None:
         return None
     try:
@@ -411,6 +403,10 @@ def _parse_json_file(path: Path, rel: str, problems: Problems) -> Any:
     except (ValueError, RecursionError) as exc:
         problems.add(f"{rel} is not valid JSON ({str(exc)[:120]})")
         return None
+
+
+def sha256_hex(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
 
 
 def _json_unstorable(value: Any, depth: int = 0) -> bool:
@@ -577,13 +573,73 @@ class ExportContent:
     events: tuple[tuple[str, dict[str, Any]], ...]
 
 
+def _read_folder(root: Path, problems: Problems) -> dict[str, bytes]:
+    """Every regular file of the export folder (relative path -> bytes), read without following links; links,
+    folders in the wrong place and unexpected entries are problems."""
+    found: dict[str, bytes] = {}
+    for e in safefiles.scan_tree(root):
+        top, _, rest = e.rel.partition("/")
+        if top in safefiles.PRESERVED or e.rel.rsplit("/", 1)[-1] in safefiles.CLUTTER:
+            continue
+        if e.kind == "link":
+            problems.add(f"{e.rel[:80]} is a symbolic link; an export holds plain files only")
+        elif e.kind == "dir" and top in CLASSES and not rest:
+            continue
+        elif e.kind != "file":
+            problems.add(
+                f"{e.rel[:80]!r} is not part of an export (expected {MANIFEST}, {AUDIT_FILE} or kind folders)"
+            )
+        elif e.rel in (MANIFEST, AUDIT_FILE) or (
+            top in CLASSES and "/" not in rest and rest.endswith(".json")
+        ):
+            data = safefiles.read_regular(root / e.rel, MAX_FILE_BYTES + 1)
+            if data is None:
+                problems.add(f"{e.rel[:80]} cannot be read as a plain file")
+            elif len(data) > MAX_FILE_BYTES:
+                problems.add(f"{e.rel[:80]} is larger than {MAX_FILE_BYTES:,} bytes")
+            else:
+                found[e.rel] = data
+        elif top in CLASSES:
+            problems.add(f"{e.rel[:80]} is not an entity file (plain <name>.json expected)")
+        else:
+            problems.add(
+                f"{e.rel[:80]!r} is not part of an export (expected {MANIFEST}, {AUDIT_FILE} or kind folders)"
+            )
+    return found
+
+
+def _check_hashes(manifest: Mapping[str, Any], files: Mapping[str, bytes], problems: Problems) -> None:
+    """Every file must be listed in the manifest with its SHA-256, and every listed file present and equal:
+    a folder mixing two exports, or edited after the export, is refused with the files named."""
+    listed = manifest.get("files")
+    if not isinstance(listed, dict) or not all(
+        isinstance(k, str) and isinstance(v, str) and SHA256_RE.match(v) for k, v in listed.items()
+    ):
+        problems.add(f"{MANIFEST} has no valid per-file SHA-256 list (files); export the registry again")
+        return
+    present = set(files) - {MANIFEST}
+    changed = sorted(rel for rel in present & set(listed) if sha256_hex(files[rel]) != listed[rel])
+    unlisted = sorted(present - set(listed))
+    missing = sorted(set(listed) - present)
+    for label, names in (
+        ("differ from the SHA-256 the manifest records (edited, or mixed from another export)", changed),
+        ("are not listed in the manifest", unlisted),
+        ("are listed in the manifest but missing", missing),
+    ):
+        if names:
+            shown = ", ".join(n[:80] for n in names[:10])
+            more = f" and {len(names) - 10} more" if len(names) > 10 else ""
+            problems.add(f"{len(names)} file{'s' if len(names) != 1 else ''} {label}: {shown}{more}")
+
+
 def read_export(directory: str | Path) -> ExportContent:
     """Read and validate an export folder completely (no database access); InvalidInputError lists problems."""
     root = Path(directory).expanduser()
     if not root.is_dir():
         raise InvalidInputError(f"{str(root)!r} is not a folder; pass the folder `ivdossier export` wrote.")
     problems = Problems()
-    manifest = _parse_json_file(root / MANIFEST, MANIFEST, problems) if (root / MANIFEST).is_file() else None
+    raw = safefiles.read_regular(root / MANIFEST, MAX_FILE_BYTES + 1)
+    manifest = _parse_json_bytes(raw, MANIFEST, problems) if raw is not None else None
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT_NAME:
         raise InvalidInputError(
             f"{str(root)!r} has no ivdossier export manifest ({MANIFEST}); pass the folder `ivdossier export` wrote."
@@ -598,44 +654,28 @@ def read_export(directory: str | Path) -> ExportContent:
             f"the export was written at schema {manifest.get('schema')!r}, this registry is at {SCHEMA_HEAD}; "
             "open the source registry with this version of ivdossier and export it again."
         )
+    files = _read_folder(root, problems)
+    _check_hashes(manifest, files, problems)
     raw_counts = manifest.get("counts")
     counts: dict[str, Any] = raw_counts if isinstance(raw_counts, dict) else {}
     entities: list[Incoming] = []
-    for entry in sorted(root.iterdir()):
-        if entry.name.startswith(".") or entry.name in (MANIFEST, AUDIT_FILE):
-            continue
-        if entry.name not in CLASSES or not entry.is_dir() or entry.is_symlink():
-            problems.add(
-                f"{entry.name[:60]!r} is not part of an export (expected {MANIFEST}, {AUDIT_FILE} or kind folders)"
-            )
     for kind in CLASSES:
-        folder = root / kind
-        files: list[Path] = []
-        if folder.is_dir() and not folder.is_symlink():
-            for item in sorted(folder.iterdir()):
-                if item.suffix != ".json" or not item.is_file() or item.is_symlink():
-                    problems.add(
-                        f"{kind}/{item.name[:60]} is not an entity file (plain <name>.json expected)"
-                    )
-                else:
-                    files.append(item)
-        if len(files) != counts.get(kind, 0):
+        mine = sorted(rel for rel in files if rel.startswith(kind + "/"))
+        if len(mine) != counts.get(kind, 0):
             problems.add(
-                f"the manifest counts {counts.get(kind, 0)} {kind} files but the folder has {len(files)}"
+                f"the manifest counts {counts.get(kind, 0)} {kind} files but the folder has {len(mine)}"
             )
-        for item in files:
-            rel = f"{kind}/{item.name}"
-            data = _parse_json_file(item, rel, problems)
+        for rel in mine:
+            data = _parse_json_bytes(files[rel], rel, problems)
             if data is not None:
                 parsed = parse_entity(kind, rel, data, problems)
                 if parsed is not None:
                     entities.append(parsed)
     events: list[tuple[str, dict[str, Any]]] = []
-    audit_path = root / AUDIT_FILE
-    if audit_path.is_symlink() or not audit_path.is_file():
+    if AUDIT_FILE not in files:
         problems.add(f"{AUDIT_FILE} is missing")
     else:
-        text = _read_text(audit_path, AUDIT_FILE, problems) or ""
+        text = _decode(files[AUDIT_FILE], AUDIT_FILE, problems) or ""
         lines = text.split("\n")
         if lines and lines[-1] == "":
             lines.pop()

@@ -9,6 +9,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import pytest
+from export_tools import reseal
 from sqlmodel import func, select
 
 from ivdossier.errors import ConflictError, InvalidInputError
@@ -329,6 +330,7 @@ def test_import_checks_everything_before_writing_anything(tmp_path: Path) -> Non
     bad = json.loads((folder / "link" / "fibre--t-route.json").read_text())
     bad["state"] = "maybe"
     (folder / "link" / "fibre--t-route.json").write_text(json.dumps(bad))
+    reseal(folder)
     target = open_registry(str(tmp_path / "target.sqlite"))
     try:
         with pytest.raises(
@@ -337,6 +339,7 @@ def test_import_checks_everything_before_writing_anything(tmp_path: Path) -> Non
             read_export(folder)
         bad["state"] = "open"
         (folder / "link" / "fibre--t-route.json").write_text(json.dumps(bad))
+        reseal(folder)
         with pytest.raises(
             InvalidInputError, match=r"instrument/clerk.json field program_uuid names no program"
         ):
