@@ -56,11 +56,12 @@ def import_(
     json_out: JsonFlag = False,
 ) -> None:
     """Merge an exported folder into this registry by UUID; everything is checked first, then written at once."""
-    from ivdossier.registry.portability import import_registry, read_export
+    from ivdossier.registry.portability import read_export
+    from ivdossier.workflows.import_checks import import_checked
 
     content = read_export(directory)
     with writing() as s:
-        report = import_registry(s, content, actor=actor(), on_conflict=on_conflict, dry_run=dry_run)
+        report = import_checked(s, content, actor=actor(), on_conflict=on_conflict, dry_run=dry_run)
     if json_out:
         print_json(report)
         return

@@ -19,7 +19,7 @@ import json
 import math
 import os
 import re
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -50,6 +50,7 @@ AUDIT_FILE = "audit.jsonl"
 MAX_FILE_BYTES = 50_000_000
 MAX_TEXT = 1_000_000  # longest unbounded text field accepted on import
 MAX_REPORTED = 20
+MAX_ACTION = 32  # width of audit_event.action
 ON_CONFLICT = ("stop", "keep-registry", "take-import")
 SHA256_RE = re.compile(r"^[0-9a-f]{64}$")
 UUID_RE = re.compile(r"^[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}$")
@@ -559,6 +560,11 @@ def parse_event(line_no: int, data: Any, problems: Problems) -> dict[str, Any] |
             problems.add(f"{where} field {key} must be an object or null")
     if data["entity_kind"] not in CLASSES:
         problems.add(f"{where} field entity_kind {str(data['entity_kind'])[:40]!r} is not a kind of entity")
+    action = data["action"]
+    if isinstance(action, str) and len(imported_action(action)) > MAX_ACTION:
+        problems.add(
+            f"{where} field action {action[:40]!r} is longer than {MAX_ACTION - len(IMPORTED_PREFIX)} characters"
+        )
     if len(problems.items) > before:
         return None
     return values
@@ -754,6 +760,51 @@ class ImportReport:
         }
 
 
+DomainCheck = Callable[[Sequence["Incoming"]], list[str]]
+IMPORTED_PREFIX = "imported:"
+
+
+def imported_action(action: str) -> str:
+    """The action under which another registry's audit event is kept here: history, never this registry's
+    own act (so an imported `sealed` event can never pass for this registry's seal)."""
+    return action if action.startswith(IMPORTED_PREFIX) else IMPORTED_PREFIX + action
+
+
+def _event_identity(doc: Mapping[str, Any]) -> str:
+    """An audit event's canonical line with the import mark removed: the same event, wherever it was recorded."""
+    action = str(doc["action"])
+    plain = action[len(IMPORTED_PREFIX) :] if action.startswith(IMPORTED_PREFIX) else action
+    return dumps_event({**doc, "action": plain})
+
+
+def _frozen_plan_refs(entities: Iterable[Entity]) -> dict[str, list[str]]:
+    """UUID of each frozen plan and of each program or instrument whose name a frozen plan's seal covers ->
+    the slugs of those plans."""
+    plans = [e for e in entities if e.kind == "plan" and getattr(e, "state", "") == "frozen"]
+    by_id = {(e.kind, e.id): e.uuid for e in entities if e.kind in ("program", "instrument")}
+    out: dict[str, list[str]] = {}
+    for p in plans:
+        out.setdefault(p.uuid, []).append(p.label)
+        for kind, column in (("program", "program_id"), ("instrument", "instrument_id")):
+            ref = by_id.get((kind, getattr(p, column, None)))
+            if ref is not None:
+                out.setdefault(ref, []).append(p.label)
+    return out
+
+
+def _sealed_by(mine: Entity, incoming: Incoming, frozen_refs: Mapping[str, list[str]]) -> str | None:
+    """Why replacing `mine` with the incoming copy would alter a frozen plan, or None."""
+    plans = frozen_refs.get(mine.uuid)
+    if not plans:
+        return None
+    names = ", ".join(repr(p) for p in sorted(set(plans)))
+    if mine.kind == "plan":
+        return f"plan {names} is frozen; an import cannot change or unfreeze it"
+    if mine.label != incoming.label:
+        return f"renaming it would change the sealed document of frozen plan {names}"
+    return None
+
+
 def _bump(counter: dict[str, int], kind: str) -> None:
     counter[kind] = counter.get(kind, 0) + 1
 
@@ -765,13 +816,17 @@ def import_registry(
     actor: str,
     on_conflict: str = "stop",
     dry_run: bool = False,
+    check_domain: DomainCheck | None = None,
 ) -> ImportReport:
     """Merge a validated export into the registry by UUID, inside the caller's write transaction.
 
-    New entities are added with their exported history. An entity whose UUID exists with other content is a
-    conflict: `stop` refuses the whole import, `keep-registry` leaves the registry's copy, `take-import`
-    replaces it (at a new version, audited as an import by `actor`). A new UUID whose name is taken by another
-    entity is always refused. With `dry_run` the report is computed and nothing is written.
+    New entities are added with their exported history (marked as imported). An entity whose UUID exists with
+    other content is a conflict: `stop` refuses the whole import, `keep-registry` leaves the registry's copy,
+    `take-import` replaces it (at a new version, audited as an import by `actor`). A new UUID whose name is taken
+    by another entity is always refused, and so is any change to a frozen plan (or to the names its seal
+    covers), whatever the flag. `check_domain` applies the rules of the commands that create entities (the
+    catalogue's rules for threats live outside this layer; `ivdossier.workflows.import_checks` passes them).
+    With `dry_run` the report is computed and nothing is written.
     """
     if on_conflict not in ON_CONFLICT:
         raise InvalidInputError(
@@ -788,6 +843,8 @@ def import_registry(
             local[obj.uuid] = obj
             local_labels[(cls.kind, obj.label)] = obj.uuid
     incoming_kind = {e.uuid: e.kind for e in content.entities}
+    frozen_refs = _frozen_plan_refs(local.values())
+    frozen_hits: list[str] = []
     conflicts: list[ImportConflict] = []
     problems = Problems()
     plan: list[tuple[str, Incoming]] = []  # ("add" | "replace", entity)
@@ -837,6 +894,11 @@ def import_registry(
         if entity_document(mine, uuid_of) == e.doc:
             _bump(unchanged, e.kind)
             continue
+        sealed = _sealed_by(mine, e, frozen_refs)
+        if sealed is not None and on_conflict != "keep-registry":
+            conflicts.append(ImportConflict(e.kind, e.label, e.uuid, sealed))
+            frozen_hits.append(e.label)
+            continue
         if on_conflict == "stop":
             conflicts.append(
                 ImportConflict(
@@ -851,7 +913,16 @@ def import_registry(
         else:
             plan.append(("replace", e))
             _bump(replaced, e.kind)
+    if check_domain is not None:
+        for message in check_domain([e for _, e in plan]):
+            problems.add(message)
     problems.raise_if_any(content.directory)
+    if frozen_hits and not dry_run:
+        shown = "; ".join(c.describe() for c in conflicts if c.label in frozen_hits)
+        raise ConflictError(
+            f"import refused, nothing was written: it would change what a frozen plan sealed: {shown[:2000]}; "
+            "a frozen plan cannot be changed or unfrozen, draft a new plan or import without those entities."
+        )
     if conflicts and not dry_run:
         shown = "; ".join(c.describe() for c in conflicts[:MAX_REPORTED])
         more = f" (and {len(conflicts) - MAX_REPORTED} more)" if len(conflicts) > MAX_REPORTED else ""
@@ -864,8 +935,13 @@ def import_registry(
             f"import refused, nothing was written: {len(conflicts)} conflicting "
             f"{'entity' if len(conflicts) == 1 else 'entities'}: {shown}{more}; {hint}."
         )
-    known_events = {dumps_event(event_document(ev)) for ev in session.exec(select(AuditEvent))}
-    new_events = [values for line, values in content.events if line not in known_events]
+    known_events = {_event_identity(event_document(ev)) for ev in session.exec(select(AuditEvent))}
+    new_events: list[dict[str, Any]] = []
+    for _, values in content.events:
+        identity = _event_identity({**values, "at": format_datetime(values["at"])})
+        if identity not in known_events:
+            known_events.add(identity)
+            new_events.append({**values, "action": imported_action(values["action"])})
     report = ImportReport(
         added=added,
         replaced=replaced,
