@@ -9,6 +9,7 @@ import re
 import unicodedata
 from collections.abc import Mapping
 from datetime import datetime
+from pathlib import Path
 from typing import Any, TypeVar
 
 from sqlalchemy.orm.exc import StaleDataError
@@ -16,9 +17,11 @@ from sqlmodel import Session, select
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry.models import AuditEvent, Entity, utcnow
+from ivdossier.safefiles import read_bounded_text
 
 E = TypeVar("E", bound=Entity)
 
+TEXT_LIMIT = 100_000  # characters of one free-text field (claims, arguments, notes, comments)
 SLUG_RE = re.compile(r"^[a-z0-9][a-z0-9-]{0,63}$")
 ENV_USER = "IVDOSSIER_USER"
 # Columns that are bookkeeping, not content: left out of audit before/after diffs.
@@ -60,13 +63,22 @@ def check_slug(slug: str, *, what: str) -> str:
     return slug
 
 
-def check_text(value: str, *, field: str, max_length: int = 100_000) -> str:
+def check_text(value: str, *, field: str, max_length: int = TEXT_LIMIT) -> str:
     """Reject text the registry cannot store faithfully (NUL bytes, absurd sizes)."""
     if "\x00" in value:
         raise InvalidInputError(f"{field} contains a NUL character; remove it and try again.")
     if len(value) > max_length:
         raise InvalidInputError(f"{field} is {len(value):,} characters long; the limit is {max_length:,}.")
     return value
+
+
+def read_text_file(path: str | Path, *, field: str, max_length: int = TEXT_LIMIT) -> str:
+    """The text of a file given for a text option (`@FILE`), read with a bound: a file longer than the field
+    allows, or an endless one such as /dev/zero, is refused before it is read whole."""
+    text = read_bounded_text(
+        path, 4 * max_length, what=f"the {field} text"
+    )  # UTF-8: at most 4 bytes a character
+    return check_text(text, field=field, max_length=max_length)
 
 
 def _label_column(cls: type[Entity]) -> Any:
