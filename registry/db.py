@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
 import time
 from collections.abc import Callable, Iterator
@@ -210,6 +211,19 @@ def open_registry(db: str | None = None, *, migrate: bool = True) -> Registry:
             )
         _upgrade_once(engine)
     return Registry(url=url, engine=engine)
+
+
+def serialize_writes(session: Session, topic: str) -> None:
+    """Make write transactions about `topic` run one after another, from their start (reads included).
+
+    SQLite writers already do (BEGIN IMMEDIATE). On PostgreSQL, READ COMMITTED lets two transactions both see
+    that, say, the built-in catalogue is missing and both insert it, so the second fails on a duplicate key;
+    a transaction-scoped advisory lock taken first makes the second wait, then see the first one's rows.
+    """
+    if session.get_bind().dialect.name != "postgresql":
+        return
+    key = int.from_bytes(hashlib.sha256(f"ivdossier:{topic}".encode()).digest()[:8], "big", signed=True)
+    session.connection().execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": key})
 
 
 def _upgrade_once(engine: Engine, attempts: int = 5) -> None:
