@@ -160,8 +160,16 @@ def is_utf8(value: str) -> bool:
     return True
 
 
+# Text fields that must not be blank, with the fix; the same rule for adding and for editing.
+REQUIRED_TEXT: dict[tuple[str, str], str] = {
+    ("instrument", "name"): "an instrument needs a name; pass --name 'Fibre roll-out wave'.",
+    ("program", "title"): "a program needs a title; pass --title 'Does X reduce Y?'.",
+}
+
+
 def check_columns(obj: Entity, values: Mapping[str, Any] | None = None) -> None:
-    """Refuse text a column cannot hold on every backend (NUL characters, values over the column length).
+    """Refuse text a column cannot hold on every backend (NUL characters, values over the column length) and
+    blanks in fields that need text (an instrument's name, a program's title).
 
     Checks `values` (column name -> new value) when given, else every column of `obj`.
     """
@@ -170,6 +178,9 @@ def check_columns(obj: Entity, values: Mapping[str, Any] | None = None) -> None:
     for name, value in items:
         if not isinstance(value, str) or name not in columns:
             continue
+        required = REQUIRED_TEXT.get((obj.kind, name))
+        if required is not None and not value.strip():
+            raise InvalidInputError(required)
         if "\x00" in value:
             raise InvalidInputError(f"{obj.kind} {name} contains a NUL character; remove it and try again.")
         if not is_utf8(value):
