@@ -20,7 +20,7 @@ import math
 import os
 import re
 from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -792,6 +792,37 @@ def _frozen_plan_refs(entities: Iterable[Entity]) -> dict[str, list[str]]:
     return out
 
 
+def _builtin_aliases(
+    entities: Sequence[Incoming], local: Mapping[str, Entity], local_labels: Mapping[tuple[str, str], str]
+) -> dict[str, str]:
+    """Incoming built-in threats that this registry holds under another UUID (each registry loads the shipped
+    catalogue itself): incoming UUID -> this registry's UUID, matched by code."""
+    out: dict[str, str] = {}
+    for e in entities:
+        if e.kind != "threat" or e.values.get("origin") != "builtin" or e.uuid in local:
+            continue
+        holder = local_labels.get(("threat", e.label))
+        if holder is not None and getattr(local[holder], "origin", None) == "builtin":
+            out[e.uuid] = holder
+    return out
+
+
+def _aliased(e: Incoming, alias: Mapping[str, str]) -> Incoming:
+    """The entity with references to aliased built-in threats pointing at this registry's copies."""
+    refs = {c: alias.get(r, r) if r is not None else None for c, r in e.refs.items()}
+    doc = {k: alias.get(v, v) if k.endswith("_uuid") and isinstance(v, str) else v for k, v in e.doc.items()}
+    values = dict(e.values)
+    if e.kind == "comment" and values.get("entity_uuid") in alias:
+        values["entity_uuid"] = alias[values["entity_uuid"]]
+    if refs == e.refs and doc == e.doc and values == e.values:
+        return e
+    return replace(e, refs=refs, doc=doc, values=values)
+
+
+def _without_bookkeeping(doc: Mapping[str, Any]) -> dict[str, Any]:
+    return {k: v for k, v in doc.items() if k not in ("uuid", "created_at", "updated_at", "version")}
+
+
 def _sealed_by(mine: Entity, incoming: Incoming, frozen_refs: Mapping[str, list[str]]) -> str | None:
     """Why replacing `mine` with the incoming copy would alter a frozen plan, or None."""
     plans = frozen_refs.get(mine.uuid)
@@ -852,7 +883,17 @@ def import_registry(
     replaced: dict[str, int] = {}
     kept: dict[str, int] = {}
     unchanged: dict[str, int] = {}
-    for e in content.entities:
+    alias = _builtin_aliases(content.entities, local, local_labels)
+    for original in content.entities:
+        e = _aliased(original, alias) if alias else original
+        if e.uuid in alias:
+            # The same built-in catalogue entry under this registry's own UUID: never a conflict; the registry's
+            # copy stays (`init` refreshes built-ins from the shipped catalogue).
+            same = _without_bookkeeping(
+                entity_document(local[alias[e.uuid]], uuid_of)
+            ) == _without_bookkeeping(e.doc)
+            _bump(unchanged if same else kept, e.kind)
+            continue
         table: Table = CLASSES[e.kind].__table__  # type: ignore[attr-defined]
         fks = _fk_columns(table)
         for column, ref in e.refs.items():
