@@ -226,20 +226,32 @@ def serialize_writes(session: Session, topic: str) -> None:
     session.connection().execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": key})
 
 
-def _upgrade_once(engine: Engine, attempts: int = 5) -> None:
+def _upgrade_once(engine: Engine, patience_s: float = SQLITE_BUSY_TIMEOUT_MS / 1000) -> None:
     """Upgrade, tolerating other processes that open the same new registry at the same moment.
 
-    Migrations run in one transaction, so a process that loses the race fails on "table already exists"
-    after the winner committed; it then finds the schema at the head and carries on.
+    Migrations run in one transaction, so a process that loses the race fails on "table already exists" (or, on
+    SQLite, "database is locked" while the winner still migrates); it waits and retries for up to the busy
+    timeout, and carries on as soon as it finds the schema at the head.
     """
-    for attempt in range(1, attempts + 1):
+    deadline = time.monotonic() + patience_s
+    attempt = 0
+    while True:
+        attempt += 1
         try:
             upgrade(engine)
             return
-        except DBAPIError:
+        except DBAPIError as exc:
             engine.dispose()
             if current_revision(engine) == SCHEMA_HEAD:
                 return
-            if attempt == attempts:
+            if not _lost_race(exc) or time.monotonic() >= deadline:
                 raise
-            time.sleep(0.05 * attempt)
+            time.sleep(min(0.05 * attempt, 1.0))
+
+
+def _lost_race(exc: DBAPIError) -> bool:
+    """An error another process's simultaneous migration explains (lock held, object already created)."""
+    detail = str(exc.orig if exc.orig is not None else exc).lower()
+    return _is_transient(exc) or any(
+        word in detail for word in ("locked", "already exists", "duplicate key", "unique constraint")
+    )
