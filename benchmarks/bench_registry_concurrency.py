@@ -3,7 +3,11 @@ workload of tests/test_concurrency_stress.py (create, link, rate, edit a shared 
 on SQLite and on a throw-away PostgreSQL server.
 
 Run: .venv/bin/python benchmarks/bench_registry_concurrency.py [--backend sqlite|postgresql|both]
-     [--workers N] [--rounds N] [--sequential N]
+     [--workers N [N ...]] [--rounds N] [--sequential N]
+
+By default 8 and then 32 writer processes run on each backend. Every run reports lost updates (increments of the
+shared counter that are missing from it), audit events minus successful writes, and unhandled errors (anything
+other than a refused stale edit, which the workload retries); all three should be zero.
 
 Writes per second count successful audited transactions (refused optimistic-lock attempts are reported apart).
 The multi-process figure includes starting the processes, so it understates the steady-state rate.
@@ -43,8 +47,12 @@ def concurrent(db: str, workers: int, rounds: int) -> None:
     from test_concurrency_stress import run_stress
 
     outcome = run_stress(db, workers=workers, rounds=rounds)
-    lost = outcome.increments - outcome.counter
+    lost = (
+        outcome.increments - outcome.counter
+    )  # increments reported as committed but missing from the counter
     audit_gap = outcome.audit_events - outcome.setup_events - outcome.successful_writes
+    for error in outcome.errors[:3]:
+        print(f"    unhandled: {error.strip().splitlines()[0][:300]}")
     print(
         f"  {workers} processes x {rounds} rounds: {outcome.successful_writes} writes in {outcome.seconds:.1f} s "
         f"= {outcome.successful_writes / outcome.seconds:.0f} writes/s including process start, "
@@ -59,7 +67,8 @@ def run(name: str, make_db: object, args: argparse.Namespace) -> None:
     print(f"\n[{name}]")
     rate = sequential(make_db(), args.sequential)  # type: ignore[operator]
     print(f"  1 process, {args.sequential} audited creates: {rate:.0f} writes/s")
-    concurrent(make_db(), args.workers, args.rounds)  # type: ignore[operator]
+    for workers in args.workers:
+        concurrent(make_db(), workers, args.rounds)  # type: ignore[operator]
 
 
 def main() -> None:
@@ -67,8 +76,8 @@ def main() -> None:
         description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
     )
     parser.add_argument("--backend", choices=("sqlite", "postgresql", "both"), default="both")
-    parser.add_argument("--workers", type=int, default=8)
-    parser.add_argument("--rounds", type=int, default=25)
+    parser.add_argument("--workers", type=int, nargs="+", default=[8, 32])
+    parser.add_argument("--rounds", type=int, default=10)
     parser.add_argument("--sequential", type=int, default=500)
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="ivd-conc-") as tmp:

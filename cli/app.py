@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 from typing import Annotated, Any
 
 import typer
@@ -32,18 +33,56 @@ class ErrorReportingGroup(TyperGroup):
     def invoke(self, ctx: Any) -> Any:
         try:
             return super().invoke(ctx)
+        except BrokenPipeError:
+            quiet_closed_pipe()
         except IvdossierError as exc:
             if settings.debug:
                 raise
-            typer.echo(f"error: {exc}", err=True)
-            raise typer.Exit(code=exit_code(exc)) from None
+            _fail(str(exc), exit_code(exc))
         except Exception as exc:
             if settings.debug or type(exc).__module__.startswith("typer"):  # exits, aborts and usage errors
                 raise
-            typer.echo(
-                f"error: unexpected {type(exc).__name__}: {exc} (rerun with --debug for details)", err=True
-            )
-            raise typer.Exit(code=1) from None
+            known = describe_system_error(exc)
+            if known is not None:
+                _fail(known, 1)
+            _fail(f"unexpected {type(exc).__name__}: {exc} (rerun with --debug for details)", 1)
+
+
+def _fail(message: str, code: int) -> None:
+    from ivdossier.cli.output import safe_text
+
+    lines = message.strip().splitlines() or [""]
+    typer.echo(f"error: {safe_text(lines[0])}", err=True)
+    raise typer.Exit(code=code) from None
+
+
+def describe_system_error(exc: BaseException) -> str | None:
+    """One sentence for failures of the file system or the database driver, or None when not one of them."""
+    if type(exc).__module__.split(".")[0] == "sqlalchemy":
+        orig = getattr(exc, "orig", None)
+        detail = str(orig if orig is not None else exc).strip().splitlines()[0] if str(exc).strip() else ""
+        where = settings.db or "the registry"
+        if "file is not a database" in detail or "not a database" in detail:
+            return f"{where!s} is not an ivdossier registry (SQLite says: {detail}); check --db."
+        return f"the registry at {where!s} could not be used ({detail}); check --db and that the database is reachable."
+    if isinstance(exc, OSError) and exc.strerror:
+        target = f" {exc.filename!s}" if exc.filename else ""
+        return f"cannot use{target}: {exc.strerror}; check the path and its permissions."
+    return None
+
+
+def quiet_closed_pipe() -> None:
+    """The reader of our output went away (e.g. `| head`): stop quietly, without a traceback at exit."""
+    import os
+    import sys
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError):
+        pass
+    raise typer.Exit(code=0)
 
 
 app = typer.Typer(
@@ -112,4 +151,8 @@ _register()
 
 
 def main() -> None:
-    app()
+    try:
+        app()
+    except BrokenPipeError:  # raised while flushing after the command finished
+        with contextlib.suppress(typer.Exit):
+            quiet_closed_pipe()

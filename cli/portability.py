@@ -56,11 +56,12 @@ def import_(
     json_out: JsonFlag = False,
 ) -> None:
     """Merge an exported folder into this registry by UUID; everything is checked first, then written at once."""
-    from ivdossier.registry.portability import import_registry, read_export
+    from ivdossier.registry.portability import read_export
+    from ivdossier.workflows.import_checks import import_checked
 
     content = read_export(directory)
     with writing() as s:
-        report = import_registry(s, content, actor=actor(), on_conflict=on_conflict, dry_run=dry_run)
+        report = import_checked(s, content, actor=actor(), on_conflict=on_conflict, dry_run=dry_run)
     if json_out:
         print_json(report)
         return
@@ -95,12 +96,21 @@ def restore(
     replace: Annotated[
         bool, typer.Option("--replace", help="Overwrite a registry that already holds changes.")
     ] = False,
+    allow_unfreeze: Annotated[
+        bool,
+        typer.Option(
+            "--allow-unfreeze",
+            help="Restore even if the backup would unfreeze, change or remove a frozen plan (named on stderr).",
+        ),
+    ] = False,
     json_out: JsonFlag = False,
 ) -> None:
     """Replace the SQLite registry with a backup file (checked first), upgrading its schema if it is older."""
     from ivdossier.registry.backup import restore_registry
 
-    summary = restore_registry(file, settings.db, replace=replace)
+    summary = restore_registry(file, settings.db, replace=replace, allow_unfreeze=allow_unfreeze)
+    for note in summary.unfrozen:
+        typer.echo(f"warning: {note}; its earlier seal is no longer in this registry", err=True)
     print_json(summary) if json_out else typer.echo(
         f"restored {summary.source} into {summary.destination} (schema {summary.schema}, "
         f"{summary.audit_events} audit events)"

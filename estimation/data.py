@@ -40,15 +40,29 @@ def load_table(path: str | Path) -> pd.DataFrame:
         raise InvalidInputError(f"Cannot read {str(p)!r}: no such file; check the path.")
     try:
         if suffix == ".csv":
-            return pd.read_csv(p)
-        if suffix == ".parquet":
-            return pd.read_parquet(p)
-        return pd.read_stata(p)
+            # pandas renames a repeated header ("z" -> "z.1"), so read the header row as plain data first.
+            header = pd.read_csv(p, header=None, nrows=1, dtype=str, keep_default_na=False)
+            names = [str(v) for v in header.iloc[0]] if len(header) else []
+            frame = pd.read_csv(p)
+        elif suffix == ".parquet":
+            frame = pd.read_parquet(p)
+            names = [str(c) for c in frame.columns]
+        else:
+            frame = pd.read_stata(p)
+            names = [str(c) for c in frame.columns]
     except Exception as exc:  # the readers raise many unrelated types
         raise InvalidInputError(
             f"Cannot read {str(p)!r} as {READERS[suffix]}: {exc}; check that the file is a valid "
             f"{READERS[suffix]} file."
         ) from exc
+    repeated = sorted({n for n in names if names.count(n) > 1})
+    if repeated:
+        shown = ", ".join(f"{n!r} ({names.count(n)} times)" for n in repeated[:10])
+        raise InvalidInputError(
+            f"Cannot read {str(p)!r}: column names must be unique, but {shown} repeat; rename the columns so "
+            "each name says which variable it holds."
+        )
+    return frame
 
 
 def file_sha256(path: str | Path) -> str:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
 import time
 from collections.abc import Callable, Iterator
@@ -212,20 +213,45 @@ def open_registry(db: str | None = None, *, migrate: bool = True) -> Registry:
     return Registry(url=url, engine=engine)
 
 
-def _upgrade_once(engine: Engine, attempts: int = 5) -> None:
+def serialize_writes(session: Session, topic: str) -> None:
+    """Make write transactions about `topic` run one after another, from their start (reads included).
+
+    SQLite writers already do (BEGIN IMMEDIATE). On PostgreSQL, READ COMMITTED lets two transactions both see
+    that, say, the built-in catalogue is missing and both insert it, so the second fails on a duplicate key;
+    a transaction-scoped advisory lock taken first makes the second wait, then see the first one's rows.
+    """
+    if session.get_bind().dialect.name != "postgresql":
+        return
+    key = int.from_bytes(hashlib.sha256(f"ivdossier:{topic}".encode()).digest()[:8], "big", signed=True)
+    session.connection().execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": key})
+
+
+def _upgrade_once(engine: Engine, patience_s: float = SQLITE_BUSY_TIMEOUT_MS / 1000) -> None:
     """Upgrade, tolerating other processes that open the same new registry at the same moment.
 
-    Migrations run in one transaction, so a process that loses the race fails on "table already exists"
-    after the winner committed; it then finds the schema at the head and carries on.
+    Migrations run in one transaction, so a process that loses the race fails on "table already exists" (or, on
+    SQLite, "database is locked" while the winner still migrates); it waits and retries for up to the busy
+    timeout, and carries on as soon as it finds the schema at the head.
     """
-    for attempt in range(1, attempts + 1):
+    deadline = time.monotonic() + patience_s
+    attempt = 0
+    while True:
+        attempt += 1
         try:
             upgrade(engine)
             return
-        except DBAPIError:
+        except DBAPIError as exc:
             engine.dispose()
             if current_revision(engine) == SCHEMA_HEAD:
                 return
-            if attempt == attempts:
+            if not _lost_race(exc) or time.monotonic() >= deadline:
                 raise
-            time.sleep(0.05 * attempt)
+            time.sleep(min(0.05 * attempt, 1.0))
+
+
+def _lost_race(exc: DBAPIError) -> bool:
+    """An error another process's simultaneous migration explains (lock held, object already created)."""
+    detail = str(exc.orig if exc.orig is not None else exc).lower()
+    return _is_transient(exc) or any(
+        word in detail for word in ("locked", "already exists", "duplicate key", "unique constraint")
+    )

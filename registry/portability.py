@@ -2,7 +2,7 @@
 
 Layout written under the chosen folder:
 
-    manifest.json               format name and version, schema revision, entity counts
+    manifest.json               format name and version, schema revision, entity counts, SHA-256 of every file
     <kind>/<label>.json         one entity: every column but the integer id, references as UUIDs
     <kind>/_<uuid>.json         the same when the label is not a safe, unique lower-case file name
     audit.jsonl                 the audit trail, one event per line, oldest first
@@ -14,12 +14,13 @@ writes in one transaction: it adds what is new, leaves identical entities alone 
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 import os
 import re
-from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -29,6 +30,7 @@ from sqlalchemy import select as sa_select
 from sqlalchemy.types import JSON
 from sqlmodel import Session, select
 
+from ivdossier import safefiles
 from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import records
 from ivdossier.registry.db import SCHEMA_HEAD
@@ -44,13 +46,15 @@ from ivdossier.registry.models import (
 )
 
 FORMAT_NAME = "ivdossier-export"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: the manifest lists every file with its SHA-256
 MANIFEST = "manifest.json"
 AUDIT_FILE = "audit.jsonl"
 MAX_FILE_BYTES = 50_000_000
 MAX_TEXT = 1_000_000  # longest unbounded text field accepted on import
 MAX_REPORTED = 20
+MAX_ACTION = 32  # width of audit_event.action
 ON_CONFLICT = ("stop", "keep-registry", "take-import")
+SHA256_RE = re.compile(r"^[0-9a-f]{64}$")
 UUID_RE = re.compile(r"^[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}$")
 SAFE_NAME_RE = re.compile(r"^[a-z0-9][a-z0-9._-]{0,199}$")
 AUDIT_KEYS = (
@@ -235,49 +239,59 @@ def render_export(session: Session) -> dict[str, str]:
         "schema": SCHEMA_HEAD,
         "counts": {kind: len(rows) for kind, rows in loaded.items()},
         "audit_events": len(lines),
+        "files": {rel: sha256_hex(text.encode("utf-8")) for rel, text in sorted(files.items())},
     }
     files[MANIFEST] = dumps_document(manifest, where="manifest")
     return files
 
 
-def _inside(root: Path, rel: str) -> Path:
-    """root/rel, refusing any path that resolves outside root (through '..' or a symbolic link)."""
-    target = (root / rel).resolve()
-    if not target.is_relative_to(root):
-        raise InvalidInputError(f"refusing to write {rel!r}: it resolves outside {str(root)!r}.")
-    return target
+def _is_old_temporary(rel: str) -> bool:
+    """A temporary an earlier version of export left inside the folder (`.name.tmp`): ours, dropped on swap."""
+    name = rel.rsplit("/", 1)[-1]
+    return name.startswith(".") and name.endswith(".tmp")
 
 
 def _existing_export_files(root: Path) -> set[str]:
-    """Files of an earlier export in root; anything else there (besides dot-entries such as .git) is refused."""
-    if not root.exists():
+    """Files of an earlier export in root. Every entry is checked (dot-entries too) without following links:
+    anything that is not export content, version control or an old temporary is refused, naming it."""
+    if not os.path.lexists(root):
         return set()
-    if not root.is_dir():
+    if root.is_symlink() or not root.is_dir():
         raise InvalidInputError(
             f"{str(root)!r} is not a folder; choose a new or empty folder for the export."
         )
-    entries = [p for p in root.iterdir() if not p.name.startswith(".")]
+    entries = [
+        e
+        for e in safefiles.scan_tree(root)
+        if e.rel.split("/")[0] not in safefiles.PRESERVED
+        and e.rel.rsplit("/", 1)[-1] not in safefiles.CLUTTER
+    ]
     if not entries:
         return set()
-    if not (root / MANIFEST).is_file() or _read_manifest_format(root / MANIFEST) != FORMAT_NAME:
-        shown = ", ".join(sorted(p.name for p in entries)[:5])
+    kinds = {e.rel: e.kind for e in entries}
+    manifest = safefiles.read_regular(root / MANIFEST) if kinds.get(MANIFEST) == "file" else None
+    if manifest is None or _manifest_format(manifest) != FORMAT_NAME:
+        shown = ", ".join(sorted(e.rel for e in entries if "/" not in e.rel)[:5])
         raise InvalidInputError(
             f"{str(root)!r} already holds files that are not an ivdossier export ({shown}); "
             "choose a new or empty folder."
         )
     found: set[str] = set()
     strays: list[str] = []
-    for entry in entries:
-        if entry.name in (MANIFEST, AUDIT_FILE) and entry.is_file() and not entry.is_symlink():
-            found.add(entry.name)
-        elif entry.name in CLASSES and entry.is_dir() and not entry.is_symlink():
-            for item in entry.iterdir():
-                if item.suffix == ".json" and item.is_file() and not item.is_symlink():
-                    found.add(f"{entry.name}/{item.name}")
-                else:
-                    strays.append(f"{entry.name}/{item.name}")
+    for e in entries:
+        top, _, rest = e.rel.partition("/")
+        if e.kind == "file" and _is_old_temporary(e.rel):
+            continue
+        if e.kind == "link":
+            strays.append(f"{e.rel} (a symbolic link)")
+        elif e.rel in (MANIFEST, AUDIT_FILE) and e.kind == "file":
+            found.add(e.rel)
+        elif top in CLASSES and not rest and e.kind == "dir":
+            continue
+        elif top in CLASSES and rest and "/" not in rest and e.kind == "file" and rest.endswith(".json"):
+            found.add(e.rel)
         else:
-            strays.append(entry.name)
+            strays.append(e.rel)
     if strays:
         raise InvalidInputError(
             f"{str(root)!r} holds an earlier export plus other content ({', '.join(sorted(strays)[:5])}); "
@@ -286,43 +300,27 @@ def _existing_export_files(root: Path) -> set[str]:
     return found
 
 
-def _read_manifest_format(path: Path) -> str | None:
+def _manifest_format(data: bytes) -> str | None:
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+        parsed = json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError, RecursionError):
         return None
-    return data.get("format") if isinstance(data, dict) else None
-
-
-def _write_atomically(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_bytes(text.encode("utf-8"))
-    os.replace(tmp, path)
+    return parsed.get("format") if isinstance(parsed, dict) else None
 
 
 def write_export(files: Mapping[str, str], directory: str | Path) -> tuple[int, int, int]:
-    """Write rendered files under `directory`, touching only files that changed; returns (written, same, removed)."""
+    """Replace `directory` with the rendered files in one swap; returns (written, unchanged, removed).
+
+    The new tree is staged in a sibling folder and swapped in with one rename: an interrupted export leaves
+    the old export or the new one, and version-control entries (.git) are carried over.
+    """
     root = Path(directory).expanduser().resolve()
+    safefiles.clean_stale(root)
     old = _existing_export_files(root)
-    root.mkdir(parents=True, exist_ok=True)
-    written = same = removed = 0
-    for rel, text in sorted(files.items()):
-        target = _inside(root, rel)
-        target.parent.mkdir(exist_ok=True)
-        data = text.encode("utf-8")
-        if target.is_file() and target.read_bytes() == data:
-            same += 1
-            continue
-        _write_atomically(target, text)
-        written += 1
-    for rel in sorted(old - set(files)):
-        _inside(root, rel).unlink()
-        removed += 1
-    for kind in CLASSES:
-        folder = root / kind
-        if folder.is_dir() and not any(folder.iterdir()):
-            folder.rmdir()
-    return written, same, removed
+    change = safefiles.replace_tree(
+        root, {rel: text.encode("utf-8") for rel, text in files.items()}, allowed_old=sorted(old)
+    )
+    return change.written, change.unchanged, change.removed
 
 
 def export_registry(session: Session, directory: str | Path) -> ExportSummary:
@@ -391,21 +389,16 @@ def load_json_text(text: str) -> Any:
     )
 
 
-def _read_text(path: Path, rel: str, problems: Problems) -> str | None:
+def _decode(data: bytes, rel: str, problems: Problems) -> str | None:
     try:
-        if path.stat().st_size > MAX_FILE_BYTES:
-            problems.add(f"{rel} is larger than {MAX_FILE_BYTES:,} bytes")
-            return None
-        return path.read_bytes().decode("utf-8")
+        return data.decode("utf-8")
     except UnicodeDecodeError as exc:
         problems.add(f"{rel} is not UTF-8 text ({exc.reason} at byte {exc.start})")
-    except OSError as exc:
-        problems.add(f"{rel} cannot be read ({exc.strerror})")
     return None
 
 
-def _parse_json_file(path: Path, rel: str, problems: Problems) -> Any:
-    text = _read_text(path, rel, problems)
+def _parse_json_bytes(data: bytes, rel: str, problems: Problems) -> Any:
+    text = _decode(data, rel, problems)
     if text is None:
         return None
     try:
@@ -413,6 +406,10 @@ def _parse_json_file(path: Path, rel: str, problems: Problems) -> Any:
     except (ValueError, RecursionError) as exc:
         problems.add(f"{rel} is not valid JSON ({str(exc)[:120]})")
         return None
+
+
+def sha256_hex(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
 
 
 def _json_unstorable(value: Any, depth: int = 0) -> bool:
@@ -565,6 +562,11 @@ def parse_event(line_no: int, data: Any, problems: Problems) -> dict[str, Any] |
             problems.add(f"{where} field {key} must be an object or null")
     if data["entity_kind"] not in CLASSES:
         problems.add(f"{where} field entity_kind {str(data['entity_kind'])[:40]!r} is not a kind of entity")
+    action = data["action"]
+    if isinstance(action, str) and len(imported_action(action)) > MAX_ACTION:
+        problems.add(
+            f"{where} field action {action[:40]!r} is longer than {MAX_ACTION - len(IMPORTED_PREFIX)} characters"
+        )
     if len(problems.items) > before:
         return None
     return values
@@ -579,13 +581,73 @@ class ExportContent:
     events: tuple[tuple[str, dict[str, Any]], ...]
 
 
+def _read_folder(root: Path, problems: Problems) -> dict[str, bytes]:
+    """Every regular file of the export folder (relative path -> bytes), read without following links; links,
+    folders in the wrong place and unexpected entries are problems."""
+    found: dict[str, bytes] = {}
+    for e in safefiles.scan_tree(root):
+        top, _, rest = e.rel.partition("/")
+        if top in safefiles.PRESERVED or e.rel.rsplit("/", 1)[-1] in safefiles.CLUTTER:
+            continue
+        if e.kind == "link":
+            problems.add(f"{e.rel[:80]} is a symbolic link; an export holds plain files only")
+        elif e.kind == "dir" and top in CLASSES and not rest:
+            continue
+        elif e.kind != "file":
+            problems.add(
+                f"{e.rel[:80]!r} is not part of an export (expected {MANIFEST}, {AUDIT_FILE} or kind folders)"
+            )
+        elif e.rel in (MANIFEST, AUDIT_FILE) or (
+            top in CLASSES and "/" not in rest and rest.endswith(".json")
+        ):
+            data = safefiles.read_regular(root / e.rel, MAX_FILE_BYTES + 1)
+            if data is None:
+                problems.add(f"{e.rel[:80]} cannot be read as a plain file")
+            elif len(data) > MAX_FILE_BYTES:
+                problems.add(f"{e.rel[:80]} is larger than {MAX_FILE_BYTES:,} bytes")
+            else:
+                found[e.rel] = data
+        elif top in CLASSES:
+            problems.add(f"{e.rel[:80]} is not an entity file (plain <name>.json expected)")
+        else:
+            problems.add(
+                f"{e.rel[:80]!r} is not part of an export (expected {MANIFEST}, {AUDIT_FILE} or kind folders)"
+            )
+    return found
+
+
+def _check_hashes(manifest: Mapping[str, Any], files: Mapping[str, bytes], problems: Problems) -> None:
+    """Every file must be listed in the manifest with its SHA-256, and every listed file present and equal:
+    a folder mixing two exports, or edited after the export, is refused with the files named."""
+    listed = manifest.get("files")
+    if not isinstance(listed, dict) or not all(
+        isinstance(k, str) and isinstance(v, str) and SHA256_RE.match(v) for k, v in listed.items()
+    ):
+        problems.add(f"{MANIFEST} has no valid per-file SHA-256 list (files); export the registry again")
+        return
+    present = set(files) - {MANIFEST}
+    changed = sorted(rel for rel in present & set(listed) if sha256_hex(files[rel]) != listed[rel])
+    unlisted = sorted(present - set(listed))
+    missing = sorted(set(listed) - present)
+    for label, names in (
+        ("differ from the SHA-256 the manifest records (edited, or mixed from another export)", changed),
+        ("are not listed in the manifest", unlisted),
+        ("are listed in the manifest but missing", missing),
+    ):
+        if names:
+            shown = ", ".join(n[:80] for n in names[:10])
+            more = f" and {len(names) - 10} more" if len(names) > 10 else ""
+            problems.add(f"{len(names)} file{'s' if len(names) != 1 else ''} {label}: {shown}{more}")
+
+
 def read_export(directory: str | Path) -> ExportContent:
     """Read and validate an export folder completely (no database access); InvalidInputError lists problems."""
     root = Path(directory).expanduser()
     if not root.is_dir():
         raise InvalidInputError(f"{str(root)!r} is not a folder; pass the folder `ivdossier export` wrote.")
     problems = Problems()
-    manifest = _parse_json_file(root / MANIFEST, MANIFEST, problems) if (root / MANIFEST).is_file() else None
+    raw = safefiles.read_regular(root / MANIFEST, MAX_FILE_BYTES + 1)
+    manifest = _parse_json_bytes(raw, MANIFEST, problems) if raw is not None else None
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT_NAME:
         raise InvalidInputError(
             f"{str(root)!r} has no ivdossier export manifest ({MANIFEST}); pass the folder `ivdossier export` wrote."
@@ -600,44 +662,28 @@ def read_export(directory: str | Path) -> ExportContent:
             f"the export was written at schema {manifest.get('schema')!r}, this registry is at {SCHEMA_HEAD}; "
             "open the source registry with this version of ivdossier and export it again."
         )
+    files = _read_folder(root, problems)
+    _check_hashes(manifest, files, problems)
     raw_counts = manifest.get("counts")
     counts: dict[str, Any] = raw_counts if isinstance(raw_counts, dict) else {}
     entities: list[Incoming] = []
-    for entry in sorted(root.iterdir()):
-        if entry.name.startswith(".") or entry.name in (MANIFEST, AUDIT_FILE):
-            continue
-        if entry.name not in CLASSES or not entry.is_dir() or entry.is_symlink():
-            problems.add(
-                f"{entry.name[:60]!r} is not part of an export (expected {MANIFEST}, {AUDIT_FILE} or kind folders)"
-            )
     for kind in CLASSES:
-        folder = root / kind
-        files: list[Path] = []
-        if folder.is_dir() and not folder.is_symlink():
-            for item in sorted(folder.iterdir()):
-                if item.suffix != ".json" or not item.is_file() or item.is_symlink():
-                    problems.add(
-                        f"{kind}/{item.name[:60]} is not an entity file (plain <name>.json expected)"
-                    )
-                else:
-                    files.append(item)
-        if len(files) != counts.get(kind, 0):
+        mine = sorted(rel for rel in files if rel.startswith(kind + "/"))
+        if len(mine) != counts.get(kind, 0):
             problems.add(
-                f"the manifest counts {counts.get(kind, 0)} {kind} files but the folder has {len(files)}"
+                f"the manifest counts {counts.get(kind, 0)} {kind} files but the folder has {len(mine)}"
             )
-        for item in files:
-            rel = f"{kind}/{item.name}"
-            data = _parse_json_file(item, rel, problems)
+        for rel in mine:
+            data = _parse_json_bytes(files[rel], rel, problems)
             if data is not None:
                 parsed = parse_entity(kind, rel, data, problems)
                 if parsed is not None:
                     entities.append(parsed)
     events: list[tuple[str, dict[str, Any]]] = []
-    audit_path = root / AUDIT_FILE
-    if audit_path.is_symlink() or not audit_path.is_file():
+    if AUDIT_FILE not in files:
         problems.add(f"{AUDIT_FILE} is missing")
     else:
-        text = _read_text(audit_path, AUDIT_FILE, problems) or ""
+        text = _decode(files[AUDIT_FILE], AUDIT_FILE, problems) or ""
         lines = text.split("\n")
         if lines and lines[-1] == "":
             lines.pop()
@@ -716,6 +762,82 @@ class ImportReport:
         }
 
 
+DomainCheck = Callable[[Sequence["Incoming"]], list[str]]
+IMPORTED_PREFIX = "imported:"
+
+
+def imported_action(action: str) -> str:
+    """The action under which another registry's audit event is kept here: history, never this registry's
+    own act (so an imported `sealed` event can never pass for this registry's seal)."""
+    return action if action.startswith(IMPORTED_PREFIX) else IMPORTED_PREFIX + action
+
+
+def _event_identity(doc: Mapping[str, Any]) -> str:
+    """An audit event's canonical line with the import mark removed: the same event, wherever it was recorded."""
+    action = str(doc["action"])
+    plain = action[len(IMPORTED_PREFIX) :] if action.startswith(IMPORTED_PREFIX) else action
+    return dumps_event({**doc, "action": plain})
+
+
+def _frozen_plan_refs(entities: Iterable[Entity]) -> dict[str, list[str]]:
+    """UUID of each frozen plan and of each program or instrument whose name a frozen plan's seal covers ->
+    the slugs of those plans."""
+    plans = [e for e in entities if e.kind == "plan" and getattr(e, "state", "") == "frozen"]
+    by_id = {(e.kind, e.id): e.uuid for e in entities if e.kind in ("program", "instrument")}
+    out: dict[str, list[str]] = {}
+    for p in plans:
+        out.setdefault(p.uuid, []).append(p.label)
+        for kind, column in (("program", "program_id"), ("instrument", "instrument_id")):
+            ref = by_id.get((kind, getattr(p, column, None)))
+            if ref is not None:
+                out.setdefault(ref, []).append(p.label)
+    return out
+
+
+def _builtin_aliases(
+    entities: Sequence[Incoming], local: Mapping[str, Entity], local_labels: Mapping[tuple[str, str], str]
+) -> dict[str, str]:
+    """Incoming built-in threats that this registry holds under another UUID (each registry loads the shipped
+    catalogue itself): incoming UUID -> this registry's UUID, matched by code."""
+    out: dict[str, str] = {}
+    for e in entities:
+        if e.kind != "threat" or e.values.get("origin") != "builtin" or e.uuid in local:
+            continue
+        holder = local_labels.get(("threat", e.label))
+        if holder is not None and getattr(local[holder], "origin", None) == "builtin":
+            out[e.uuid] = holder
+    return out
+
+
+def _aliased(e: Incoming, alias: Mapping[str, str]) -> Incoming:
+    """The entity with references to aliased built-in threats pointing at this registry's copies."""
+    refs = {c: alias.get(r, r) if r is not None else None for c, r in e.refs.items()}
+    doc = {k: alias.get(v, v) if k.endswith("_uuid") and isinstance(v, str) else v for k, v in e.doc.items()}
+    values = dict(e.values)
+    if e.kind == "comment" and values.get("entity_uuid") in alias:
+        values["entity_uuid"] = alias[values["entity_uuid"]]
+    if refs == e.refs and doc == e.doc and values == e.values:
+        return e
+    return replace(e, refs=refs, doc=doc, values=values)
+
+
+def _without_bookkeeping(doc: Mapping[str, Any]) -> dict[str, Any]:
+    return {k: v for k, v in doc.items() if k not in ("uuid", "created_at", "updated_at", "version")}
+
+
+def _sealed_by(mine: Entity, incoming: Incoming, frozen_refs: Mapping[str, list[str]]) -> str | None:
+    """Why replacing `mine` with the incoming copy would alter a frozen plan, or None."""
+    plans = frozen_refs.get(mine.uuid)
+    if not plans:
+        return None
+    names = ", ".join(repr(p) for p in sorted(set(plans)))
+    if mine.kind == "plan":
+        return f"plan {names} is frozen; an import cannot change or unfreeze it"
+    if mine.label != incoming.label:
+        return f"renaming it would change the sealed document of frozen plan {names}"
+    return None
+
+
 def _bump(counter: dict[str, int], kind: str) -> None:
     counter[kind] = counter.get(kind, 0) + 1
 
@@ -727,13 +849,17 @@ def import_registry(
     actor: str,
     on_conflict: str = "stop",
     dry_run: bool = False,
+    check_domain: DomainCheck | None = None,
 ) -> ImportReport:
     """Merge a validated export into the registry by UUID, inside the caller's write transaction.
 
-    New entities are added with their exported history. An entity whose UUID exists with other content is a
-    conflict: `stop` refuses the whole import, `keep-registry` leaves the registry's copy, `take-import`
-    replaces it (at a new version, audited as an import by `actor`). A new UUID whose name is taken by another
-    entity is always refused. With `dry_run` the report is computed and nothing is written.
+    New entities are added with their exported history (marked as imported). An entity whose UUID exists with
+    other content is a conflict: `stop` refuses the whole import, `keep-registry` leaves the registry's copy,
+    `take-import` replaces it (at a new version, audited as an import by `actor`). A new UUID whose name is taken
+    by another entity is always refused, and so is any change to a frozen plan (or to the names its seal
+    covers), whatever the flag. `check_domain` applies the rules of the commands that create entities (the
+    catalogue's rules for threats live outside this layer; `ivdossier.workflows.import_checks` passes them).
+    With `dry_run` the report is computed and nothing is written.
     """
     if on_conflict not in ON_CONFLICT:
         raise InvalidInputError(
@@ -750,6 +876,8 @@ def import_registry(
             local[obj.uuid] = obj
             local_labels[(cls.kind, obj.label)] = obj.uuid
     incoming_kind = {e.uuid: e.kind for e in content.entities}
+    frozen_refs = _frozen_plan_refs(local.values())
+    frozen_hits: list[str] = []
     conflicts: list[ImportConflict] = []
     problems = Problems()
     plan: list[tuple[str, Incoming]] = []  # ("add" | "replace", entity)
@@ -757,7 +885,17 @@ def import_registry(
     replaced: dict[str, int] = {}
     kept: dict[str, int] = {}
     unchanged: dict[str, int] = {}
-    for e in content.entities:
+    alias = _builtin_aliases(content.entities, local, local_labels)
+    for original in content.entities:
+        e = _aliased(original, alias) if alias else original
+        if e.uuid in alias:
+            # The same built-in catalogue entry under this registry's own UUID: never a conflict; the registry's
+            # copy stays (`init` refreshes built-ins from the shipped catalogue).
+            same = _without_bookkeeping(
+                entity_document(local[alias[e.uuid]], uuid_of)
+            ) == _without_bookkeeping(e.doc)
+            _bump(unchanged if same else kept, e.kind)
+            continue
         table: Table = CLASSES[e.kind].__table__  # type: ignore[attr-defined]
         fks = _fk_columns(table)
         for column, ref in e.refs.items():
@@ -799,6 +937,11 @@ def import_registry(
         if entity_document(mine, uuid_of) == e.doc:
             _bump(unchanged, e.kind)
             continue
+        sealed = _sealed_by(mine, e, frozen_refs)
+        if sealed is not None and on_conflict != "keep-registry":
+            conflicts.append(ImportConflict(e.kind, e.label, e.uuid, sealed))
+            frozen_hits.append(e.label)
+            continue
         if on_conflict == "stop":
             conflicts.append(
                 ImportConflict(
@@ -813,7 +956,16 @@ def import_registry(
         else:
             plan.append(("replace", e))
             _bump(replaced, e.kind)
+    if check_domain is not None:
+        for message in check_domain([e for _, e in plan]):
+            problems.add(message)
     problems.raise_if_any(content.directory)
+    if frozen_hits and not dry_run:
+        shown = "; ".join(c.describe() for c in conflicts if c.label in frozen_hits)
+        raise ConflictError(
+            f"import refused, nothing was written: it would change what a frozen plan sealed: {shown[:2000]}; "
+            "a frozen plan cannot be changed or unfrozen, draft a new plan or import without those entities."
+        )
     if conflicts and not dry_run:
         shown = "; ".join(c.describe() for c in conflicts[:MAX_REPORTED])
         more = f" (and {len(conflicts) - MAX_REPORTED} more)" if len(conflicts) > MAX_REPORTED else ""
@@ -826,8 +978,13 @@ def import_registry(
             f"import refused, nothing was written: {len(conflicts)} conflicting "
             f"{'entity' if len(conflicts) == 1 else 'entities'}: {shown}{more}; {hint}."
         )
-    known_events = {dumps_event(event_document(ev)) for ev in session.exec(select(AuditEvent))}
-    new_events = [values for line, values in content.events if line not in known_events]
+    known_events = {_event_identity(event_document(ev)) for ev in session.exec(select(AuditEvent))}
+    new_events: list[dict[str, Any]] = []
+    for _, values in content.events:
+        identity = _event_identity({**values, "at": format_datetime(values["at"])})
+        if identity not in known_events:
+            known_events.add(identity)
+            new_events.append({**values, "action": imported_action(values["action"])})
     report = ImportReport(
         added=added,
         replaced=replaced,

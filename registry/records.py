@@ -9,6 +9,7 @@ import re
 import unicodedata
 from collections.abc import Mapping
 from datetime import datetime
+from pathlib import Path
 from typing import Any, TypeVar
 
 from sqlalchemy.orm.exc import StaleDataError
@@ -16,9 +17,11 @@ from sqlmodel import Session, select
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry.models import AuditEvent, Entity, utcnow
+from ivdossier.safefiles import read_bounded_text
 
 E = TypeVar("E", bound=Entity)
 
+TEXT_LIMIT = 100_000  # characters of one free-text field (claims, arguments, notes, comments)
 SLUG_RE = re.compile(r"^[a-z0-9][a-z0-9-]{0,63}$")
 ENV_USER = "IVDOSSIER_USER"
 # Columns that are bookkeeping, not content: left out of audit before/after diffs.
@@ -60,13 +63,22 @@ def check_slug(slug: str, *, what: str) -> str:
     return slug
 
 
-def check_text(value: str, *, field: str, max_length: int = 100_000) -> str:
+def check_text(value: str, *, field: str, max_length: int = TEXT_LIMIT) -> str:
     """Reject text the registry cannot store faithfully (NUL bytes, absurd sizes)."""
     if "\x00" in value:
         raise InvalidInputError(f"{field} contains a NUL character; remove it and try again.")
     if len(value) > max_length:
         raise InvalidInputError(f"{field} is {len(value):,} characters long; the limit is {max_length:,}.")
     return value
+
+
+def read_text_file(path: str | Path, *, field: str, max_length: int = TEXT_LIMIT) -> str:
+    """The text of a file given for a text option (`@FILE`), read with a bound: a file longer than the field
+    allows, or an endless one such as /dev/zero, is refused before it is read whole."""
+    text = read_bounded_text(
+        path, 4 * max_length, what=f"the {field} text"
+    )  # UTF-8: at most 4 bytes a character
+    return check_text(text, field=field, max_length=max_length)
 
 
 def _label_column(cls: type[Entity]) -> Any:
@@ -148,8 +160,16 @@ def is_utf8(value: str) -> bool:
     return True
 
 
+# Text fields that must not be blank, with the fix; the same rule for adding and for editing.
+REQUIRED_TEXT: dict[tuple[str, str], str] = {
+    ("instrument", "name"): "an instrument needs a name; pass --name 'Fibre roll-out wave'.",
+    ("program", "title"): "a program needs a title; pass --title 'Does X reduce Y?'.",
+}
+
+
 def check_columns(obj: Entity, values: Mapping[str, Any] | None = None) -> None:
-    """Refuse text a column cannot hold on every backend (NUL characters, values over the column length).
+    """Refuse text a column cannot hold on every backend (NUL characters, values over the column length) and
+    blanks in fields that need text (an instrument's name, a program's title).
 
     Checks `values` (column name -> new value) when given, else every column of `obj`.
     """
@@ -158,6 +178,9 @@ def check_columns(obj: Entity, values: Mapping[str, Any] | None = None) -> None:
     for name, value in items:
         if not isinstance(value, str) or name not in columns:
             continue
+        required = REQUIRED_TEXT.get((obj.kind, name))
+        if required is not None and not value.strip():
+            raise InvalidInputError(required)
         if "\x00" in value:
             raise InvalidInputError(f"{obj.kind} {name} contains a NUL character; remove it and try again.")
         if not is_utf8(value):

@@ -12,6 +12,7 @@ import re
 import unicodedata
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 from sqlmodel import Session, select
@@ -19,6 +20,7 @@ from sqlmodel import Session, select
 from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import records
 from ivdossier.registry.models import Critique, Instrument, Study, Threat
+from ivdossier.safefiles import read_bounded_text
 
 KEY_RE = re.compile(r"^[A-Za-z0-9_:.+/\-]{1,120}$")
 TYPE_RE = re.compile(r"[A-Za-z]+")
@@ -27,6 +29,10 @@ CORE_FIELDS = ("author", "title", "year", "doi", *VENUE_FIELDS)
 SKIPPED_TYPES = {"comment"}
 MACRO_TYPES = {"string", "preamble"}
 DISPLAY_TO_BIBTEX = {"authors": "author", "title": "title", "doi": "doi"}
+# Largest files read, checked while reading (before any parsing): a bibliography of some 50,000 entries, and a
+# table of reported statistics of some 100,000 rows.
+MAX_BIBTEX_BYTES = 20_000_000
+MAX_STATS_CSV_BYTES = 20_000_000
 
 
 @dataclass(frozen=True)
@@ -105,6 +111,16 @@ def _parser() -> Any:
     from bibtexparser.bparser import BibTexParser
 
     return BibTexParser(common_strings=True, ignore_nonstandard_types=False, interpolate_strings=True)
+
+
+def read_bibtex_file(path: str | Path) -> str:
+    """The text of a BibTeX file, refusing files over MAX_BIBTEX_BYTES before reading them whole."""
+    return read_bounded_text(path, MAX_BIBTEX_BYTES, what="a BibTeX file")
+
+
+def read_stats_csv_file(path: str | Path) -> str:
+    """The text of a reported-statistics CSV, refusing files over MAX_STATS_CSV_BYTES before reading them whole."""
+    return read_bounded_text(path, MAX_STATS_CSV_BYTES, what="a statistics CSV file")
 
 
 def parse_bibtex(text: str) -> list[BibEntry]:

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import html
 import re
+import xml.etree.ElementTree as ET  # DOCTYPE and entity declarations are refused before parsing
 from collections.abc import Mapping, Sequence
 from functools import lru_cache
 from pathlib import Path
@@ -27,14 +28,34 @@ from ivdossier.reports.mdtext import BADGE_PREFIX, CHIP_PREFIX, FIGURE_INFO
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:; base-uri 'none'; form-action 'none'"
 _SAFE_SCHEMES = ("http:", "https:", "mailto:")
 _SCHEME = re.compile(r"^([a-z][a-z0-9+.\-]*):")
-_SVG_FORBIDDEN = re.compile(
-    r"<\s*(script|foreignObject|iframe|object|embed|use\b[^>]*href\s*=\s*[\"'](?!#))"
-    r"|\son[a-z]+\s*="
-    r"|javascript:"
-    r"|(?:xlink:)?href\s*=\s*[\"'](?!#)"
-    r"|url\(\s*[\"']?(?!#)"
-    r"|@import",
-    re.IGNORECASE,
+SVG_NS = "http://www.w3.org/2000/svg"
+XLINK_NS = "http://www.w3.org/1999/xlink"
+# Elements an inlined figure may use (what matplotlib and the diagram drawer write): shapes, text, grouping,
+# reusable definitions and styling. No script, foreignObject, image, animation, link or embedding elements.
+SVG_ELEMENTS = frozenset(
+    {
+        "svg", "g", "defs", "symbol", "use", "title", "desc", "metadata", "style",
+        "path", "rect", "circle", "ellipse", "line", "polyline", "polygon",
+        "text", "tspan", "textPath", "marker", "clipPath", "mask", "pattern",
+        "linearGradient", "radialGradient", "stop", "filter", "feGaussianBlur", "feOffset", "feBlend",
+        "feFlood", "feComposite", "feMerge", "feMergeNode",
+    }
+)  # fmt: skip
+# Namespaces whose elements may appear inside <metadata> only (RDF description matplotlib writes).
+METADATA_NS = frozenset(
+    {
+        "http://www.w3.org/1999/02/22-rdf-syntax-ns#",
+        "http://creativecommons.org/ns#",
+        "http://purl.org/dc/elements/1.1/",
+    }
+)
+# Attributes that can carry a URL or CSS (others, such as aria-label, hold plain text and are not judged).
+_URL_ATTRIBUTES = frozenset(
+    {"style", "src", "fill", "stroke", "clip-path", "mask", "filter", "cursor", "marker-start", "marker-mid",
+     "marker-end", "marker", "values", "from", "to", "by"}
+)  # fmt: skip
+_CSS_FORBIDDEN = re.compile(
+    r"url\(\s*[\"']?(?!#)|@import|expression\s*\(|javascript:|behavior\s*:", re.IGNORECASE
 )
 _SVG_PROLOGUE = re.compile(r"<\?xml[^>]*\?>|<!DOCTYPE[^>]*>|<!--.*?-->", re.DOTALL | re.IGNORECASE)
 
@@ -46,15 +67,77 @@ def validate_link(url: str) -> bool:
     return match is None or f"{match.group(1)}:" in _SAFE_SCHEMES
 
 
+def _split(tag: str) -> tuple[str, str]:
+    """('namespace', 'local') of an ElementTree tag or attribute name."""
+    if tag.startswith("{"):
+        ns, _, local = tag[1:].partition("}")
+        return ns, local
+    return "", tag
+
+
+def _svg_problem(root: ET.Element) -> str | None:
+    """The first element or attribute that could run code or fetch something, described; None when clean."""
+
+    def walk(el: ET.Element, in_metadata: bool) -> str | None:
+        ns, local = _split(el.tag)
+        if ns in METADATA_NS and in_metadata:
+            pass
+        elif ns not in ("", SVG_NS) or local not in SVG_ELEMENTS:
+            return f"element <{local}>"
+        for name, value in el.attrib.items():
+            a_ns, a_local = _split(name)
+            lowered = a_local.lower()
+            if lowered.startswith("on"):
+                return f"event-handler attribute {a_local!r}"
+            if lowered == "href" and not value.strip().startswith("#"):
+                return f"external reference {value[:60]!r}"
+            if a_ns not in ("", XLINK_NS, *METADATA_NS, "http://www.w3.org/XML/1998/namespace"):
+                return f"attribute {a_local!r} in namespace {a_ns!r}"
+            if lowered in _URL_ATTRIBUTES and (
+                _CSS_FORBIDDEN.search(value) or "javascript:" in re.sub(r"[\x00-\x20]", "", value).lower()
+            ):
+                return f"attribute {a_local}={value[:60]!r}"
+        if local == "style" and _CSS_FORBIDDEN.search(el.text or ""):
+            return "a style sheet with external references"
+        inside = in_metadata or local == "metadata"
+        for child in el:
+            found = walk(child, inside)
+            if found:
+                return found
+        return None
+
+    return walk(root, False)
+
+
 def clean_svg(svg: str, *, key: str) -> str:
-    """Strip the XML prologue and refuse SVG that could run code or fetch anything."""
+    """Strip the XML prologue and refuse SVG that could run code or fetch anything.
+
+    The figure is parsed as XML and checked structurally: only drawing elements, no event-handler attributes,
+    no references outside the document. Text inside the figure (labels people typed) is never judged by its
+    wording, so a label like "wave onset=2019" is fine.
+    """
     body = _SVG_PROLOGUE.sub("", svg).strip()
     if not body.lower().startswith("<svg"):
         raise InvalidInputError(f"figure {key!r} is not an SVG document; pass the <svg>...</svg> text.")
-    bad = _SVG_FORBIDDEN.search(body)
+    if "<!" in body or "<?" in body:  # DOCTYPE, ENTITY, CDATA or processing instructions: none are needed
+        raise InvalidInputError(
+            f"figure {key!r} contains declarations, CDATA or processing instructions; pass plain SVG elements."
+        )
+    # Declare the usual prefixes around the figure, so a fragment using xlink:href without declaring it parses.
+    wrapper = f'<wrapper xmlns:xlink="{XLINK_NS}">{body}</wrapper>'
+    try:
+        parsed = ET.fromstring(wrapper)
+        if len(parsed) != 1 or (parsed.text or "").strip() or (parsed[0].tail or "").strip():
+            raise ET.ParseError("expected exactly one <svg> element")
+        root = parsed[0]
+    except ET.ParseError as exc:
+        raise InvalidInputError(
+            f"figure {key!r} is not well-formed SVG ({exc}); it cannot be inlined."
+        ) from exc
+    bad = _svg_problem(root)
     if bad is not None:
         raise InvalidInputError(
-            f"figure {key!r} contains {bad.group(0)!r}; only self-contained SVG without scripts, event handlers "
+            f"figure {key!r} contains {bad}; only self-contained SVG without scripts, event handlers "
             "or external references can be inlined."
         )
     return body

@@ -1,6 +1,7 @@
 """A static site of dossiers: an index of programs, one comparison page per program, one page per instrument and
 a catalogue page. Every page is a self-contained HTML file; links are relative; file names come from sanitised
-slugs and are checked to stay inside the output folder.
+slugs and are checked to stay inside the output folder. The site is rendered completely, staged beside the folder
+and swapped in at once, so a failed or interrupted build leaves the previous site (or none), never a partial one.
 
 Layout::
 
@@ -12,11 +13,13 @@ Layout::
 
 from __future__ import annotations
 
+import os
 import re
 import unicodedata
 from collections.abc import Sequence
 from pathlib import Path
 
+from ivdossier import safefiles
 from ivdossier.errors import InvalidInputError
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
@@ -51,18 +54,47 @@ def _unique(slug: str, used: set[str]) -> str:
     return candidate
 
 
-def _inside(root: Path, path: Path) -> Path:
-    resolved = path.resolve()
-    if not resolved.is_relative_to(root):
-        raise InvalidInputError(f"refusing to write {path}: it lies outside the site folder {root}.")
-    return resolved
+def _write(root: Path, relative: str, text: str, pages: dict[str, bytes]) -> None:
+    """Add one page to the site being staged; its path must stay inside the site folder."""
+    if (root / relative).resolve(strict=False) != root.joinpath(
+        *relative.split("/")
+    ) or ".." in relative.split("/"):
+        raise InvalidInputError(f"refusing to write {relative}: it lies outside the site folder {root}.")
+    pages[relative] = text.encode("utf-8")
 
 
-def _write(root: Path, relative: str, text: str, written: list[Path]) -> None:
-    path = _inside(root, root / relative)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(text, encoding="utf-8")
-    written.append(path)
+def _is_site_file(rel: str, kind: str) -> bool:
+    """Entries an earlier site build writes: the two top pages, and folders and pages under programs/."""
+    if rel in ("index.html", "catalogue.html"):
+        return kind == "file"
+    if rel == "programs" or rel.startswith("programs/"):
+        return kind == "dir" or (kind == "file" and rel.endswith(".html"))
+    return False
+
+
+def _check_old_site(root: Path) -> list[str]:
+    """Files of an earlier site in root; a folder holding anything else (links included) is refused."""
+    if not os.path.lexists(root):
+        return []
+    if root.is_symlink() or not root.is_dir():
+        raise InvalidInputError(f"{str(root)!r} is not a folder; choose a new or empty folder for the site.")
+    entries = [
+        e
+        for e in safefiles.scan_tree(root)
+        if e.rel.split("/")[0] not in safefiles.PRESERVED
+        and e.rel.rsplit("/", 1)[-1] not in safefiles.CLUTTER
+    ]
+    strays = [
+        e.rel + (" (a symbolic link)" if e.kind == "link" else "")
+        for e in entries
+        if not _is_site_file(e.rel, e.kind)
+    ]
+    if strays:
+        raise InvalidInputError(
+            f"{str(root)!r} holds files that are not part of an ivdossier site ({', '.join(sorted(strays)[:5])}); "
+            "choose a new or empty folder, or move them away."
+        )
+    return [e.rel for e in entries if e.kind == "file"]
 
 
 def build_site(
@@ -77,8 +109,9 @@ def build_site(
 
     Dossiers are grouped by their program's slug; a dossier whose program is not in `programs` brings its own.
     """
-    root = Path(out_dir).resolve()
-    root.mkdir(parents=True, exist_ok=True)
+    root = Path(out_dir).expanduser().resolve()
+    safefiles.clean_stale(root)
+    old = _check_old_site(root)
     ordered: list[ProgramInfo] = list(programs)
     known = {p.slug for p in ordered}
     for d in dossiers:
@@ -91,7 +124,7 @@ def build_site(
     for d in dossiers:
         by_program[d.program.slug].append(d)
     stamp = _stamp(dossiers)
-    written: list[Path] = []
+    written: dict[str, bytes] = {}
     _write(root, "index.html", _index_page(ordered, by_program, program_dirs, title, stamp), written)
     _write(root, "catalogue.html", _catalogue_page(catalog_entries, stamp), written)
     for program in ordered:
@@ -111,7 +144,9 @@ def build_site(
                 dossier_html(d, preamble=nav),
                 written,
             )
-    return written
+    # Every page is rendered before anything is written; then the whole site replaces the old one in one swap.
+    safefiles.replace_tree(root, written, allowed_old=old)
+    return [root.joinpath(*rel.split("/")) for rel in written]
 
 
 def _stamp(dossiers: Sequence[DossierInput]) -> str:

@@ -113,7 +113,7 @@ def start_server() -> PgServer:
         check=True,
         capture_output=True,
     )
-    options = f"-p {port} -k {root / 'sock'} -c listen_addresses='' -c fsync=off -c max_connections=60"
+    options = f"-p {port} -k {root / 'sock'} -c listen_addresses='' -c fsync=off -c max_connections=150"
     subprocess.run(
         [
             *as_user,

@@ -98,7 +98,9 @@ def _check_fields(registry: Registry, field: str, text: str) -> None:
     if stored:
         assert value == text  # exactly what was typed, markup and control characters included
     else:
-        assert "\x00" in text or len(text) > 64
+        # Refused only for a NUL, a value over the column length, or a blank where a name or title is required.
+        required = field in ("instrument.name", "program.title")
+        assert "\x00" in text or len(text) > 64 or (required and not text.strip())
 
 
 @HOSTILE_SETTINGS

@@ -14,7 +14,7 @@ import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
 LAYERS = ("cli", "workflows", "reports", "registry", "threats_catalog", "estimation")
-ROOT_MODULES = {"errors", "jsonsafe", "vocabulary"}
+ROOT_MODULES = {"errors", "jsonsafe", "safefiles", "vocabulary"}
 FORBIDDEN: dict[str, set[str]] = {
     "workflows": {"cli"},
     "reports": {"cli", "workflows", "registry"},
