@@ -70,16 +70,10 @@ def reading() -> Iterator[Any]:
         reg.dispose()
 
 
-def read_text_option(value: str | None) -> str | None:
-    """Options that take long text accept @FILE to read it from a file."""
+def read_text_option(value: str | None, field: str = "text option") -> str | None:
+    """Options that take long text accept @FILE to read it from a file, read with a bound (no endless files)."""
     if value is None or not value.startswith("@"):
         return value
-    from pathlib import Path
+    from ivdossier.registry.records import read_text_file
 
-    from ivdossier.errors import InvalidInputError
-
-    path = Path(value[1:])
-    try:
-        return path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InvalidInputError(f"cannot read {str(path)!r} for a text option: {exc}") from exc
+    return read_text_file(value[1:], field=field)

@@ -24,17 +24,6 @@ def register(app: typer.Typer) -> None:
     app.command("audit", rich_help_panel=panels.LITERATURE)(audit)
 
 
-def _read_file(path: Path, what: str) -> str:
-    from ivdossier.errors import InvalidInputError
-
-    try:
-        return path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InvalidInputError(
-            f"cannot read the {what} {str(path)!r}: {exc}; check the path and that it is UTF-8."
-        ) from exc
-
-
 def write_output(path: Path, text: str) -> None:
     """Write a document or export; '-' means standard output."""
     from ivdossier.errors import InvalidInputError
@@ -55,8 +44,9 @@ def import_bibtex(
 ) -> None:
     """Import every entry of a BibTeX file; a malformed entry stops the import (nothing is kept) and names its line."""
     from ivdossier.registry.studies import import_bibtex as do_import
+    from ivdossier.registry.studies import read_bibtex_file
 
-    text = _read_file(file, "BibTeX file")
+    text = read_bibtex_file(file)
     with writing() as s:
         keys = [st.key for st in do_import(s, actor=actor(), text=text, source=file.name)]
     if json_out:
@@ -213,9 +203,10 @@ def import_stats(
     """Reported statistics for many studies from a CSV (columns: key, estimate, std_error, first_stage_f, f_kind,
     n, n_clusters, n_instruments, first_stage_coef, first_stage_se, reduced_form_coef, reduced_form_se, fs_rf_cov,
     method, label, and optionally instrument and family); all rows or none."""
+    from ivdossier.registry.studies import read_stats_csv_file
     from ivdossier.workflows.studies import import_stats_csv
 
-    text = _read_file(file, "CSV file")
+    text = read_stats_csv_file(file)
     with writing() as s:
         done = import_stats_csv(s, actor=actor(), text=text)
     typer.echo(f"recorded statistics for {len(done)} stud{'y' if len(done) == 1 else 'ies'}")

@@ -79,6 +79,14 @@ def test_an_endless_file_for_a_text_option_is_refused_quickly() -> None:
     assert time.perf_counter() - start < 30  # a guard against reading forever, not a speed target
 
 
+def test_a_text_option_given_as_an_endless_file_is_refused_on_the_command_line(cli) -> None:  # type: ignore[no-untyped-def]
+    # the case: `@/dev/zero` used to be read whole until memory ran out
+    code, _, err = cli("program", "add", "p", "--title", "P", "--question", "@/dev/zero")
+    assert code == 2 and "'/dev/zero' is larger than" in err
+    code, out, _ = cli("program", "list", "--json")
+    assert code == 0 and '"p"' not in out  # nothing was written
+
+
 def test_text_files_are_read_up_to_the_field_limit(tmp_path: Path) -> None:
     path = tmp_path / "claim.txt"
     path.write_text("é" * 10)

@@ -30,9 +30,11 @@ def catalog_is_current(session: Session) -> bool:
 
 def ensure_builtin(session: Session, *, actor: str) -> int:
     """Add, refresh or retire built-in entries when the registry's copy is older than the shipped catalogue."""
+    from ivdossier.registry.db import serialize_writes
     from ivdossier.threats_catalog import load_builtin
     from ivdossier.threats_catalog.catalog import RETIRED
 
+    serialize_writes(session, "catalogue")  # simultaneous first opens on PostgreSQL: one loads, the rest wait
     if catalog_is_current(session):
         return 0
     catalog = load_builtin()
