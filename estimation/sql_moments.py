@@ -1,0 +1,429 @@
+"""One generator of the aggregation SQL that the DuckDB and Spark engines run to build the sufficient statistics.
+
+A model over a table becomes three grouped scans, each a single SQL query (the same text for both engines,
+up to identifier quoting):
+
+1. ``counts``: rows, complete rows, infinite values, weight sums and (weighted) column sums; with one absorbed
+   factor also a per-level table of means (materialised by the engine) and the nesting of that factor in each
+   cluster variable;
+2. ``gram``: the weighted cross-products of the demeaned columns (outcome, treatments, instruments, controls),
+   from which the control coefficients are solved (normal equations, as the in-memory path does when the controls
+   are well conditioned) together with a first triangular factor R1 of the partialled columns;
+3. ``moments``: the partialled, sqrt(w)-scaled columns, already multiplied by R1^{-1} (the first step of
+   CholeskyQR2, so the sums are of nearly orthonormal rows), summed as cross-products and, for the robust
+   covariance, as products of cross-products (u x u row moments), or grouped by cluster (GROUPING SETS for two
+   cluster variables and their intersection) with the per-cluster sums multiplied in a second aggregation level.
+
+:func:`cross_products_from_sums` turns the sums into a :class:`~ivdossier.estimation.crossproducts.CrossProducts`
+(via the accumulator's basis change), so every statistic comes from the same code as the in-memory path.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+from numpy.typing import NDArray
+
+from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.estimation.absorb import COLLINEAR_TOL
+from ivdossier.estimation.crossproducts import CrossProducts, MomentAccumulator, pack_index
+
+Array = NDArray[np.float64]
+# the robust covariance needs u(u+1)/2 row moments (u = m(m+1)/2); beyond this many output columns a query
+# is refused (the pandas engine has no such limit)
+MAX_SUM_COLUMNS = 5000
+# the partialled Gram from the normal equations resolves lengths down to about sqrt(machine epsilon); a column
+# that keeps less than this share of its length is refused here (the pandas engine resolves 1e-9)
+SQL_MIN_LENGTH = 1e-7
+
+
+@dataclass(frozen=True)
+class Dialect:
+    """What differs between the SQL of the two engines (only the quoting of identifiers)."""
+
+    name: str
+    quote_char: str
+
+    def quote(self, name: str) -> str:
+        """Quote a column name, doubling the quote character inside it."""
+        q = self.quote_char
+        return q + name.replace(q, q + q) + q
+
+
+DUCKDB = Dialect("duckdb", '"')
+SPARK = Dialect("spark", "`")
+
+
+def lit(x: float) -> str:
+    """A double literal that both engines read as DOUBLE with every digit (scientific notation)."""
+    v = float(x)
+    if not np.isfinite(v):
+        raise EstimationError(f"A non-finite coefficient ({v!r}) reached the SQL generator; check the data.")
+    return format(v, ".17e")
+
+
+@dataclass(frozen=True)
+class MomentPlan:
+    """What the queries need: the relation, the roles of the columns and the covariance layout.
+
+    ``targets`` are in the order of :class:`CrossProducts` (instruments, treatments, outcome); ``numeric``
+    lists every column cast to DOUBLE (targets, controls, weights); ``categorical`` the absorbed factor and the
+    cluster variables (used as group keys, never cast).
+    """
+
+    relation: str
+    instruments: tuple[str, ...]
+    treatments: tuple[str, ...]
+    outcome: str
+    controls: tuple[str, ...]
+    absorb: str | None
+    clusters: tuple[str, ...]
+    weights: str | None
+    kind: str
+    dialect: Dialect
+
+    @property
+    def targets(self) -> tuple[str, ...]:
+        """Instruments, treatments and the outcome: the columns of the sufficient statistics."""
+        return (*self.instruments, *self.treatments, self.outcome)
+
+    @property
+    def demeaned(self) -> tuple[str, ...]:
+        """Targets then controls: the columns of the Gram pass."""
+        return (*self.targets, *self.controls)
+
+    @property
+    def numeric(self) -> tuple[str, ...]:
+        """Every column read as a number."""
+        return (*self.demeaned, *((self.weights,) if self.weights else ()))
+
+    def q(self, name: str) -> str:
+        """Quoted identifier."""
+        return self.dialect.quote(name)
+
+    def num(self, name: str) -> str:
+        """A column as DOUBLE."""
+        return f"CAST({self.q(name)} AS DOUBLE)"
+
+    def complete(self) -> str:
+        """The listwise-deletion predicate: every used column present (NaN counts as missing)."""
+        parts = [f"({self.num(c)} IS NOT NULL AND NOT isnan({self.num(c)}))" for c in self.numeric]
+        parts += [
+            f"{self.q(c)} IS NOT NULL" for c in (*((self.absorb,) if self.absorb else ()), *self.clusters)
+        ]
+        return " AND ".join(parts)
+
+    def weight(self) -> str:
+        """The weight expression (1 when unweighted)."""
+        return self.num(self.weights) if self.weights else "1.0e+00"
+
+
+def _alias(prefix: str, j: int) -> str:
+    return f"ivd_{prefix}{j}"
+
+
+def counts_query(plan: MomentPlan) -> str:
+    """Scan 1: row counts, infinite values, bad weights, instrument ranges, cluster counts and weighted sums."""
+    q, num, w = plan.q, plan.num, plan.weight()
+    ok = plan.complete()
+    inf = "CAST('Infinity' AS DOUBLE)"
+    sel = ["count(*) AS ivd_rows", f"sum(CASE WHEN {ok} THEN 1 ELSE 0 END) AS ivd_complete"]
+    for j, c in enumerate(plan.numeric):
+        sel.append(f"sum(CASE WHEN abs({num(c)}) = {inf} THEN 1 ELSE 0 END) AS {_alias('inf', j)}")
+    sel.append(f"sum(CASE WHEN {ok} THEN {w} ELSE 0.0e+00 END) AS ivd_wsum")
+    if plan.weights:
+        sel.append(f"sum(CASE WHEN {ok} AND {w} <= 0.0e+00 THEN 1 ELSE 0 END) AS ivd_badw")
+    for j, c in enumerate(plan.demeaned):
+        sel.append(f"sum(CASE WHEN {ok} THEN {w} * {num(c)} ELSE 0.0e+00 END) AS {_alias('s', j)}")
+    for j, c in enumerate(plan.instruments):
+        sel.append(f"min(CASE WHEN {ok} THEN {num(c)} END) AS {_alias('lo', j)}")
+        sel.append(f"max(CASE WHEN {ok} THEN {num(c)} END) AS {_alias('hi', j)}")
+    for j, c in enumerate(plan.clusters):
+        sel.append(f"count(DISTINCT CASE WHEN {ok} THEN {q(c)} END) AS {_alias('g', j)}")
+    return f"SELECT {', '.join(sel)} FROM {plan.relation}"
+
+
+def level_means_query(plan: MomentPlan) -> str:
+    """Per level of the absorbed factor: weight sum, weighted means and whether the level sits in one cluster."""
+    if plan.absorb is None:
+        raise InvalidInputError("level_means_query needs an absorbed factor.")
+    q, num, w = plan.q, plan.num, plan.weight()
+    sel = [f"{q(plan.absorb)} AS ivd_level", f"sum({w}) AS ivd_lw"]
+    for j, c in enumerate(plan.demeaned):
+        sel.append(f"sum({w} * {num(c)}) / sum({w}) AS {_alias('m', j)}")
+    for j, c in enumerate(plan.clusters):
+        sel.append(f"CASE WHEN min({q(c)}) = max({q(c)}) THEN 1 ELSE 0 END AS {_alias('nest', j)}")
+    return f"SELECT {', '.join(sel)} FROM {plan.relation} WHERE {plan.complete()} GROUP BY {q(plan.absorb)}"
+
+
+def levels_summary_query(plan: MomentPlan, means_table: str) -> str:
+    """Number of levels of the absorbed factor and, per cluster variable, the levels not nested in it."""
+    sel = ["count(*) AS ivd_levels"] + [
+        f"sum(1 - {_alias('nest', j)}) AS {_alias('notnested', j)}" for j in range(len(plan.clusters))
+    ]
+    return f"SELECT {', '.join(sel)} FROM {means_table}"
+
+
+def _from_demeaned(
+    plan: MomentPlan, means: Sequence[float] | None, means_table: str | None
+) -> tuple[str, list[str]]:
+    """FROM clause and the demeaned expressions (global means as literals, or level means by a join)."""
+    if plan.absorb is None:
+        if means is None:
+            raise InvalidInputError("Global means are needed when no factor is absorbed.")
+        exprs = [f"({plan.num(c)} - {lit(mu)})" for c, mu in zip(plan.demeaned, means, strict=True)]
+        return f"{plan.relation} WHERE {plan.complete()}", exprs
+    if means_table is None:
+        raise InvalidInputError("A level-means table is needed when a factor is absorbed.")
+    exprs = [f"({plan.num(c)} - ivd_lm.{_alias('m', j)})" for j, c in enumerate(plan.demeaned)]
+    src = (
+        f"{plan.relation} JOIN {means_table} ivd_lm ON {plan.q(plan.absorb)} = ivd_lm.ivd_level "
+        f"WHERE {plan.complete()}"
+    )
+    return src, exprs
+
+
+def gram_query(
+    plan: MomentPlan, *, means: Sequence[float] | None = None, means_table: str | None = None
+) -> str:
+    """Scan 2: weighted cross-products of the demeaned targets and controls (and, with an absorbed factor, the
+    weighted squares around the global means, which give each column's length before absorbing)."""
+    src, d = _from_demeaned(plan, means, means_table)
+    w = plan.weight()
+    sel = [
+        f"sum({w} * {d[a]} * {d[b]}) AS {_alias('g', i)}"
+        for i, (a, b) in enumerate(zip(*pack_index(len(d)), strict=True))
+    ]
+    if plan.absorb is not None and means is not None:
+        for j, (c, mu) in enumerate(zip(plan.demeaned, means, strict=True)):
+            sel.append(
+                f"sum({w} * ({plan.num(c)} - {lit(mu)}) * ({plan.num(c)} - {lit(mu)})) AS {_alias('pre', j)}"
+            )
+    return f"SELECT {', '.join(sel)} FROM {src}"
+
+
+def _linear_columns(plan: MomentPlan, coef: Array, d: list[str]) -> list[str]:
+    """sqrt(w) * (d @ coef[:, j]) for each output column j, with the coefficients as literals."""
+    sw = f"sqrt({plan.weight()})" if plan.weights else None
+    out = []
+    for j in range(coef.shape[1]):
+        terms = [f"{lit(coef[a, j])} * {d[a]}" for a in range(coef.shape[0]) if coef[a, j] != 0.0]
+        body = " + ".join(terms) if terms else "0.0e+00"
+        out.append(f"{sw} * ({body})" if sw else f"({body})")
+    return out
+
+
+def moments_query(
+    plan: MomentPlan, coef: Array, *, means: Sequence[float] | None = None, means_table: str | None = None
+) -> str:
+    """Scan 3: sums over rows (or clusters) of the products of the columns sqrt(w) * d @ coef.
+
+    Output columns: ``ivd_n`` (rows), ``ivd_t{i}`` (the packed Gram), and for robust ``ivd_k{i}`` (packed
+    u x u row moments); for clusters one row per dimension (``ivd_dim``: 0, 1, then 2 for the intersection)
+    with ``ivd_groups`` and the packed sums of t_g t_g'.
+    """
+    m = coef.shape[1]
+    u = m * (m + 1) // 2
+    n_k = u * (u + 1) // 2 if plan.kind != "unadjusted" else 0
+    if u + n_k > MAX_SUM_COLUMNS:
+        raise EstimationError(
+            f"The {plan.kind} covariance of {m} columns needs {u + n_k} sums per scan, more than the SQL engines "
+            f"build ({MAX_SUM_COLUMNS}); use engine='pandas' (in memory) or fewer instruments."
+        )
+    src, d = _from_demeaned(plan, means, means_table)
+    cols = _linear_columns(plan, coef, d)
+    ia, ib = pack_index(m)
+    ka, kb = pack_index(u)
+    keys = [plan.q(c) for c in plan.clusters]
+    inner_sel = [f"{cols[j]} AS {_alias('b', j)}" for j in range(m)] + [
+        f"{k} AS {_alias('c', j)}" for j, k in enumerate(keys)
+    ]
+    base = f"SELECT {', '.join(inner_sel)} FROM {src}"
+    prods = [f"{_alias('b', a)} * {_alias('b', b)}" for a, b in zip(ia, ib, strict=True)]
+    if plan.kind == "unadjusted":
+        sel = ["count(*) AS ivd_n"] + [f"sum({p}) AS {_alias('t', i)}" for i, p in enumerate(prods)]
+        return f"SELECT {', '.join(sel)} FROM ({base}) ivd_b"
+    if plan.kind == "robust":
+        tsel = [f"{p} AS {_alias('p', i)}" for i, p in enumerate(prods)]
+        sel = ["count(*) AS ivd_n"] + [f"sum({_alias('p', i)}) AS {_alias('t', i)}" for i in range(u)]
+        sel += [
+            f"sum({_alias('p', a)} * {_alias('p', b)}) AS {_alias('k', i)}"
+            for i, (a, b) in enumerate(zip(ka, kb, strict=True))
+        ]
+        return f"SELECT {', '.join(sel)} FROM (SELECT {', '.join(tsel)} FROM ({base}) ivd_b) ivd_p"
+    if plan.kind != "cluster" or not plan.clusters:
+        raise InvalidInputError(f"Unknown covariance layout {plan.kind!r} for the moments query.")
+    ckeys = [_alias("c", j) for j in range(len(keys))]
+    gsel = ["count(*) AS ivd_rows"] + [f"sum({p}) AS {_alias('t', i)}" for i, p in enumerate(prods)]
+    if len(ckeys) == 1:
+        gsel.insert(0, "0 AS ivd_dim")
+        group = f"GROUP BY {ckeys[0]}"
+    else:
+        a, b = ckeys
+        # grouping(col) is 1 when col is aggregated away: (a): 0,1 -> dim 0; (b): 1,0 -> dim 1; (a, b): dim 2
+        gsel.insert(
+            0,
+            f"CASE WHEN grouping({a}) = 0 AND grouping({b}) = 1 THEN 0 "
+            f"WHEN grouping({a}) = 1 THEN 1 ELSE 2 END AS ivd_dim",
+        )
+        group = f"GROUP BY GROUPING SETS (({a}), ({b}), ({a}, {b}))"
+    grouped = f"SELECT {', '.join(gsel)} FROM ({base}) ivd_b {group}"
+    sel = ["ivd_dim", "count(*) AS ivd_groups", "sum(ivd_rows) AS ivd_n"]
+    sel += [f"sum({_alias('t', i)}) AS {_alias('t', i)}" for i in range(u)]
+    sel += [
+        f"sum({_alias('t', a)} * {_alias('t', b)}) AS {_alias('k', i)}"
+        for i, (a, b) in enumerate(zip(ka, kb, strict=True))
+    ]
+    return f"SELECT {', '.join(sel)} FROM ({grouped}) ivd_g GROUP BY ivd_dim ORDER BY ivd_dim"
+
+
+def unpack(values: Sequence[float], size: int) -> Array:
+    """A symmetric size x size matrix from its upper triangle packed row by row (pack_index order)."""
+    out = np.zeros((size, size))
+    ia, ib = pack_index(size)
+    out[ia, ib] = np.asarray(values, dtype=np.float64)
+    out[ib, ia] = out[ia, ib]
+    return out
+
+
+def packed(row: Mapping[str, object], prefix: str, count: int) -> list[float]:
+    """Values ``ivd_{prefix}0..count-1`` of a result row as floats (NULL sums of no rows become 0)."""
+    out = []
+    for i in range(count):
+        v = row[_alias(prefix, i)]
+        out.append(0.0 if v is None else float(v))  # type: ignore[arg-type]
+    return out
+
+
+def ordered_rank_screen(gram: Array, tol: float) -> list[int]:
+    """Columns (in order) whose part orthogonal to the earlier kept columns is at most ``tol`` of their length.
+
+    The Gram-matrix form of a QR factorisation in the given column order: the same columns are flagged as by
+    the in-memory path's QR (the later of two redundant columns).
+    """
+    size = gram.shape[0]
+    norms = np.sqrt(np.clip(np.diag(gram), 0.0, None))
+    bad: list[int] = []
+    kept: list[int] = []
+    for j in range(size):
+        if norms[j] == 0.0:
+            bad.append(j)
+            continue
+        if kept:
+            sub = gram[np.ix_(kept, kept)]
+            v = gram[kept, j]
+            resid2 = gram[j, j] - v @ np.linalg.solve(sub, v)
+        else:
+            resid2 = gram[j, j]
+        if resid2 <= (tol * norms[j]) ** 2:
+            bad.append(j)
+        else:
+            kept.append(j)
+    return bad
+
+
+@dataclass(frozen=True)
+class Partialling:
+    """The control coefficients and the first triangular factor, solved from the Gram scan."""
+
+    coef: Array  # (targets + controls) x targets: demeaned columns @ coef = partialled targets
+    schur: Array  # the partialled targets' Gram matrix from the normal equations
+    approx_len: Array  # each target's length after partialling, from the normal equations
+    dropped_controls: tuple[int, ...]
+
+
+def solve_partialling(gram: Array, pre: Array, n_targets: int) -> Partialling:
+    """Control coefficients from the Gram of [targets, controls] and a first R factor of the partialled targets."""
+    p = n_targets
+    k_c = gram.shape[0] - p
+    dropped: list[int] = []
+    coef_c = np.zeros((k_c, p))
+    if k_c:
+        gcc = gram[p:, p:]
+        after = np.sqrt(np.clip(np.diag(gcc), 0.0, None))
+        alive = [j for j in range(k_c) if after[j] > COLLINEAR_TOL * pre[p + j] and pre[p + j] > 0]
+        dropped = [j for j in range(k_c) if j not in alive]
+        if alive:
+            sub = gcc[np.ix_(alive, alive)]
+            bad = ordered_rank_screen(sub, COLLINEAR_TOL)
+            dropped += [alive[i] for i in bad]
+            alive = [a for i, a in enumerate(alive) if i not in bad]
+        if alive:
+            idx = np.asarray(alive)
+            inv = 1.0 / after[idx]
+            scaled = gcc[np.ix_(idx, idx)] * np.outer(inv, inv)
+            sol = scipy.linalg.solve(scaled, gram[p:, :p][idx] * inv[:, None], assume_a="pos")
+            coef_c[idx] = sol * inv[:, None]
+    schur = gram[:p, :p] - gram[:p, p:] @ coef_c
+    schur = (schur + schur.T) / 2
+    approx = np.sqrt(np.clip(np.diag(schur), 0.0, None))
+    coef = np.vstack([np.eye(p), -coef_c])
+    return Partialling(coef, schur, approx, tuple(sorted(dropped)))
+
+
+def first_factor(schur_len: Array, schur: Array) -> Array:
+    """R1 D1 (upper triangular) with R1 the Cholesky factor of the unit-diagonal partialled Gram matrix."""
+    d1 = np.where(schur_len > 0, schur_len, 1.0)
+    unit = schur / np.outer(d1, d1)
+    r1 = np.linalg.cholesky((unit + unit.T) / 2).T
+    return np.asarray(r1 * d1[None, :], dtype=np.float64)
+
+
+def cross_products_from_sums(
+    *,
+    k: int,
+    p: int,
+    has_y: bool,
+    r1_scaled: Array,
+    n: int,
+    gram_sums: Sequence[float],
+    moment_sums: Sequence[Sequence[float]],
+    n_groups: Sequence[int],
+    kind: str,
+    small_sample: bool,
+    n_partialled: int,
+    n_partialled_nested: int,
+) -> CrossProducts:
+    """The sufficient statistics from scan 3's sums of rows b = partialled @ (R1 D1)^{-1} (nearly orthonormal).
+
+    The Gram G2 of those rows gives R2 (second CholeskyQR2 step); the partialled columns are then Q R2 R1 D1,
+    so ``scale`` and the unit-length R follow, and the row or cluster moments are mapped to the orthonormal basis
+    by :meth:`MomentAccumulator.finish` with R2^{-1}.
+    """
+    m = k + p + int(has_y)
+    g2 = unpack(gram_sums, m)
+    try:
+        r2 = np.linalg.cholesky(g2).T
+    except np.linalg.LinAlgError as exc:
+        raise EstimationError(
+            "The partialled instruments, treatments and outcome are collinear (their cross-product matrix is "
+            "not positive definite); drop the redundant column or use engine='pandas' to have it named."
+        ) from exc
+    full = r2 @ r1_scaled
+    scale = np.sqrt(np.einsum("ij,ij->j", full, full))
+    r = full / np.where(scale > 0, scale, 1.0)[None, :]
+    r2inv = scipy.linalg.solve_triangular(r2, np.eye(m), check_finite=False)
+    moments: list[Array] = []
+    u = m * (m + 1) // 2
+    for sums in moment_sums:
+        acc = MomentAccumulator(m, 0, n, g2.copy(), unpack(sums, u))
+        (mom,), _ = acc.finish(basis_inv=r2inv)
+        moments.append(mom)
+    return CrossProducts(
+        n=n,
+        k=k,
+        p=p,
+        has_y=has_y,
+        r=np.asarray(r, dtype=np.float64),
+        scale=np.asarray(scale, dtype=np.float64),
+        kind=kind,
+        small_sample=small_sample,
+        moments=tuple(moments),
+        n_groups=tuple(int(g) for g in n_groups) if kind == "cluster" else (),
+        n_partialled=n_partialled,
+        n_partialled_nested=n_partialled_nested,
+        exact_basis=False,
+    )
