@@ -305,7 +305,11 @@ class SparkRunner(Runner):
         self._pyspark = pyspark
         self.owns = session is None
         if session is None:
-            builder = SparkSession.builder.appName("ivdossier-estimate").master(master or "local[*]")
+            builder = (
+                SparkSession.builder.appName("ivdossier-estimate")
+                .master(master or "local[*]")
+                .config("spark.ui.showConsoleProgress", "false")  # progress goes to the callback instead
+            )
             session = builder.getOrCreate()
         self.spark = session
         reader = session.read
