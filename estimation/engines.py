@@ -284,14 +284,18 @@ def refuse_unsupported(model: Model, engine: str) -> None:
 
 def _scan_counts(runner: Runner, plan: MomentPlan, model: Model, timings: list[ScanTiming]) -> dict[str, Any]:
     t0 = time.monotonic()
-    row = runner.one(counts_query(plan), "counts and means", 1)
+    groups = runner.rows(counts_query(plan), "counts and means", 1)
     timings.append(ScanTiming("counts and means", time.monotonic() - t0))
     for j, name in enumerate(plan.numeric):
-        bad = int(row[f"ivd_inf{j}"] or 0)
+        bad = sum(int(g[f"ivd_inf{j}"] or 0) for g in groups)
         if bad:
             raise InvalidInputError(
                 f"Column {name!r} holds {bad} infinite value(s); replace them or mark them missing."
             )
+    complete = [g for g in groups if g["ivd_ok"]]
+    row = dict(complete[0]) if complete else {}
+    row["ivd_complete"] = int(row.get("ivd_rows", 0))
+    row["ivd_rows"] = sum(int(g["ivd_rows"]) for g in groups)
     n = int(row["ivd_complete"] or 0)
     if n == 0:
         raise InvalidInputError("No row is complete over the used columns; check for missing values.")

@@ -109,54 +109,63 @@ class MomentPlan:
         return f"CAST({self.q(name)} AS DOUBLE)"
 
     def complete(self) -> str:
-        """The listwise-deletion predicate: every used column present (NaN counts as missing)."""
-        parts = [f"({self.num(c)} IS NOT NULL AND NOT isnan({self.num(c)}))" for c in self.numeric]
-        parts += [
-            f"{self.q(c)} IS NOT NULL" for c in (*((self.absorb,) if self.absorb else ()), *self.clusters)
-        ]
+        """The listwise-deletion predicate over the cast columns of :func:`rows_query` (NaN counts as missing)."""
+        names = [_alias("v", j) for j in range(len(self.demeaned))] + (["ivd_w"] if self.weights else [])
+        parts = [f"({v} IS NOT NULL AND NOT isnan({v}))" for v in names]
+        parts += ["ivd_f IS NOT NULL"] if self.absorb else []
+        parts += [f"{_alias('c', j)} IS NOT NULL" for j in range(len(self.clusters))]
         return " AND ".join(parts)
-
-    def weight(self) -> str:
-        """The weight expression (1 when unweighted)."""
-        return self.num(self.weights) if self.weights else "1.0e+00"
 
 
 def _alias(prefix: str, j: int) -> str:
     return f"ivd_{prefix}{j}"
 
 
+def rows_query(plan: MomentPlan) -> str:
+    """Every used column once: numbers cast to DOUBLE (``ivd_v{j}``, weight ``ivd_w``), the absorbed factor
+    (``ivd_f``), the cluster keys (``ivd_c{j}``) and the completeness flag ``ivd_ok``."""
+    sel = [f"{plan.num(c)} AS {_alias('v', j)}" for j, c in enumerate(plan.demeaned)]
+    sel.append(f"{plan.num(plan.weights) if plan.weights else '1.0e+00'} AS ivd_w")
+    if plan.absorb:
+        sel.append(f"{plan.q(plan.absorb)} AS ivd_f")
+    sel += [f"{plan.q(c)} AS {_alias('c', j)}" for j, c in enumerate(plan.clusters)]
+    cast = f"SELECT {', '.join(sel)} FROM {plan.relation}"
+    return f"SELECT ivd_cast.*, ({plan.complete()}) AS ivd_ok FROM ({cast}) ivd_cast"
+
+
 def counts_query(plan: MomentPlan) -> str:
-    """Scan 1: row counts, infinite values, bad weights, instrument ranges, cluster counts and weighted sums."""
-    q, num, w = plan.q, plan.num, plan.weight()
-    ok = plan.complete()
+    """Scan 1, one row per value of the completeness flag (grouping is cheaper than filtered aggregates): rows,
+    infinite values, bad weights, instrument ranges, cluster counts and weighted sums."""
     inf = "CAST('Infinity' AS DOUBLE)"
-    sel = ["count(*) AS ivd_rows", f"sum(CASE WHEN {ok} THEN 1 ELSE 0 END) AS ivd_complete"]
-    for j, c in enumerate(plan.numeric):
-        sel.append(f"sum(CASE WHEN abs({num(c)}) = {inf} THEN 1 ELSE 0 END) AS {_alias('inf', j)}")
-    sel.append(f"sum(CASE WHEN {ok} THEN {w} ELSE 0.0e+00 END) AS ivd_wsum")
+    n_d = len(plan.demeaned)
+    sel = ["ivd_ok", "count(*) AS ivd_rows"]
+    values = [_alias("v", j) for j in range(n_d)] + (["ivd_w"] if plan.weights else [])
+    for j, v in enumerate(values):
+        sel.append(f"sum(CASE WHEN abs({v}) = {inf} THEN 1 ELSE 0 END) AS {_alias('inf', j)}")
+    sel.append("sum(ivd_w) AS ivd_wsum")
     if plan.weights:
-        sel.append(f"sum(CASE WHEN {ok} AND {w} <= 0.0e+00 THEN 1 ELSE 0 END) AS ivd_badw")
-    for j, c in enumerate(plan.demeaned):
-        sel.append(f"sum(CASE WHEN {ok} THEN {w} * {num(c)} ELSE 0.0e+00 END) AS {_alias('s', j)}")
-    for j, c in enumerate(plan.instruments):
-        sel.append(f"min(CASE WHEN {ok} THEN {num(c)} END) AS {_alias('lo', j)}")
-        sel.append(f"max(CASE WHEN {ok} THEN {num(c)} END) AS {_alias('hi', j)}")
-    for j, c in enumerate(plan.clusters):
-        sel.append(f"count(DISTINCT CASE WHEN {ok} THEN {q(c)} END) AS {_alias('g', j)}")
-    return f"SELECT {', '.join(sel)} FROM {plan.relation}"
+        sel.append("sum(CASE WHEN ivd_w <= 0.0e+00 THEN 1 ELSE 0 END) AS ivd_badw")
+    sel += [f"sum(ivd_w * {_alias('v', j)}) AS {_alias('s', j)}" for j in range(n_d)]
+    for j in range(len(plan.instruments)):
+        sel.append(f"min({_alias('v', j)}) AS {_alias('lo', j)}")
+        sel.append(f"max({_alias('v', j)}) AS {_alias('hi', j)}")
+    for j in range(len(plan.clusters)):
+        sel.append(f"count(DISTINCT {_alias('c', j)}) AS {_alias('g', j)}")
+    return f"SELECT {', '.join(sel)} FROM ({rows_query(plan)}) ivd_r GROUP BY ivd_ok"
 
 
 def level_means_query(plan: MomentPlan) -> str:
     """Per level of the absorbed factor: weight sum, weighted means and whether the level sits in one cluster."""
     if plan.absorb is None:
         raise InvalidInputError("level_means_query needs an absorbed factor.")
-    q, num, w = plan.q, plan.num, plan.weight()
-    sel = [f"{q(plan.absorb)} AS ivd_level", f"sum({w}) AS ivd_lw"]
-    for j, c in enumerate(plan.demeaned):
-        sel.append(f"sum({w} * {num(c)}) / sum({w}) AS {_alias('m', j)}")
-    for j, c in enumerate(plan.clusters):
-        sel.append(f"CASE WHEN min({q(c)}) = max({q(c)}) THEN 1 ELSE 0 END AS {_alias('nest', j)}")
-    return f"SELECT {', '.join(sel)} FROM {plan.relation} WHERE {plan.complete()} GROUP BY {q(plan.absorb)}"
+    sel = ["ivd_f AS ivd_level", "sum(ivd_w) AS ivd_lw"]
+    sel += [
+        f"sum(ivd_w * {_alias('v', j)}) / sum(ivd_w) AS {_alias('m', j)}" for j in range(len(plan.demeaned))
+    ]
+    for j in range(len(plan.clusters)):
+        c = _alias("c", j)
+        sel.append(f"CASE WHEN min({c}) = max({c}) THEN 1 ELSE 0 END AS {_alias('nest', j)}")
+    return f"SELECT {', '.join(sel)} FROM ({rows_query(plan)}) ivd_r WHERE ivd_ok GROUP BY ivd_f"
 
 
 def levels_summary_query(plan: MomentPlan, means_table: str) -> str:
@@ -167,59 +176,52 @@ def levels_summary_query(plan: MomentPlan, means_table: str) -> str:
     return f"SELECT {', '.join(sel)} FROM {means_table}"
 
 
-def _from_demeaned(
-    plan: MomentPlan, means: Sequence[float] | None, means_table: str | None
-) -> tuple[str, list[str]]:
-    """FROM clause and the demeaned expressions (global means as literals, or level means by a join)."""
+def _demeaned_query(plan: MomentPlan, means: Sequence[float] | None, means_table: str | None) -> str:
+    """Complete rows as sqrt(w) * (value - mean): ``ivd_d{j}`` around the global means (no absorbed factor) or
+    the level means (by a join), ``ivd_e{j}`` around the global means when a factor is absorbed; cluster keys."""
+    n_d = len(plan.demeaned)
+    keys = [f"ivd_r.{_alias('c', j)}" for j in range(len(plan.clusters))]
+    if means is None:
+        raise InvalidInputError("The global means (scan 1) are needed by the later scans.")
+    centred = [f"ivd_sw * (ivd_r.{_alias('v', j)} - {lit(means[j])})" for j in range(n_d)]
     if plan.absorb is None:
-        if means is None:
-            raise InvalidInputError("Global means are needed when no factor is absorbed.")
-        exprs = [f"({plan.num(c)} - {lit(mu)})" for c, mu in zip(plan.demeaned, means, strict=True)]
-        return f"{plan.relation} WHERE {plan.complete()}", exprs
-    if means_table is None:
-        raise InvalidInputError("A level-means table is needed when a factor is absorbed.")
-    exprs = [f"({plan.num(c)} - ivd_lm.{_alias('m', j)})" for j, c in enumerate(plan.demeaned)]
-    src = (
-        f"{plan.relation} JOIN {means_table} ivd_lm ON {plan.q(plan.absorb)} = ivd_lm.ivd_level "
-        f"WHERE {plan.complete()}"
-    )
-    return src, exprs
+        sel = [f"{e} AS {_alias('d', j)}" for j, e in enumerate(centred)]
+        src = f"({rows_query(plan)}) ivd_r"
+    else:
+        if means_table is None:
+            raise InvalidInputError("A level-means table is needed when a factor is absorbed.")
+        sel = [
+            f"ivd_sw * (ivd_r.{_alias('v', j)} - ivd_lm.{_alias('m', j)}) AS {_alias('d', j)}"
+            for j in range(n_d)
+        ]
+        sel += [f"{e} AS {_alias('e', j)}" for j, e in enumerate(centred)]
+        src = f"({rows_query(plan)}) ivd_r JOIN {means_table} ivd_lm ON ivd_r.ivd_f = ivd_lm.ivd_level"
+    sw = "sqrt(ivd_r.ivd_w)" if plan.weights else "1.0e+00"
+    sel = [s.replace("ivd_sw * ", f"{sw} * " if plan.weights else "") for s in sel]
+    sel += keys
+    return f"SELECT {', '.join(sel)} FROM {src} WHERE ivd_r.ivd_ok"
 
 
 def gram_query(
     plan: MomentPlan, *, means: Sequence[float] | None = None, means_table: str | None = None
 ) -> str:
-    """Scan 2: weighted cross-products of the demeaned targets and controls (and, with an absorbed factor, the
-    weighted squares around the global means, which give each column's length before absorbing)."""
-    src, d = _from_demeaned(plan, means, means_table)
-    w = plan.weight()
+    """Scan 2: cross-products of the sqrt(w)-scaled demeaned targets and controls (and, with an absorbed factor,
+    the squares around the global means, which give each column's length before absorbing)."""
+    n_d = len(plan.demeaned)
+    d = [_alias("d", j) for j in range(n_d)]
     sel = [
-        f"sum({w} * {d[a]} * {d[b]}) AS {_alias('g', i)}"
-        for i, (a, b) in enumerate(zip(*pack_index(len(d)), strict=True))
+        f"sum({d[a]} * {d[b]}) AS {_alias('g', i)}"
+        for i, (a, b) in enumerate(zip(*pack_index(n_d), strict=True))
     ]
-    if plan.absorb is not None and means is not None:
-        for j, (c, mu) in enumerate(zip(plan.demeaned, means, strict=True)):
-            sel.append(
-                f"sum({w} * ({plan.num(c)} - {lit(mu)}) * ({plan.num(c)} - {lit(mu)})) AS {_alias('pre', j)}"
-            )
-    return f"SELECT {', '.join(sel)} FROM {src}"
-
-
-def _linear_columns(plan: MomentPlan, coef: Array, d: list[str]) -> list[str]:
-    """sqrt(w) * (d @ coef[:, j]) for each output column j, with the coefficients as literals."""
-    sw = f"sqrt({plan.weight()})" if plan.weights else None
-    out = []
-    for j in range(coef.shape[1]):
-        terms = [f"{lit(coef[a, j])} * {d[a]}" for a in range(coef.shape[0]) if coef[a, j] != 0.0]
-        body = " + ".join(terms) if terms else "0.0e+00"
-        out.append(f"{sw} * ({body})" if sw else f"({body})")
-    return out
+    if plan.absorb is not None:
+        sel += [f"sum({_alias('e', j)} * {_alias('e', j)}) AS {_alias('pre', j)}" for j in range(n_d)]
+    return f"SELECT {', '.join(sel)} FROM ({_demeaned_query(plan, means, means_table)}) ivd_d"
 
 
 def moments_query(
     plan: MomentPlan, coef: Array, *, means: Sequence[float] | None = None, means_table: str | None = None
 ) -> str:
-    """Scan 3: sums over rows (or clusters) of the products of the columns sqrt(w) * d @ coef.
+    """Scan 3: sums over rows (or clusters) of the products of the columns d @ coef (d already sqrt(w)-scaled).
 
     Output columns: ``ivd_n`` (rows), ``ivd_t{i}`` (the packed Gram), and for robust ``ivd_k{i}`` (packed
     u x u row moments); for clusters one row per dimension (``ivd_dim``: 0, 1, then 2 for the intersection)
@@ -233,15 +235,16 @@ def moments_query(
             f"The {plan.kind} covariance of {m} columns needs {u + n_k} sums per scan, more than the SQL engines "
             f"build ({MAX_SUM_COLUMNS}); use engine='pandas' (in memory) or fewer instruments."
         )
-    src, d = _from_demeaned(plan, means, means_table)
-    cols = _linear_columns(plan, coef, d)
+    d = [_alias("d", j) for j in range(coef.shape[0])]
+    cols = []
+    for j in range(m):
+        terms = [f"{lit(coef[a, j])} * {d[a]}" for a in range(coef.shape[0]) if coef[a, j] != 0.0]
+        cols.append(" + ".join(terms) if terms else "0.0e+00")
     ia, ib = pack_index(m)
     ka, kb = pack_index(u)
-    keys = [plan.q(c) for c in plan.clusters]
-    inner_sel = [f"{cols[j]} AS {_alias('b', j)}" for j in range(m)] + [
-        f"{k} AS {_alias('c', j)}" for j, k in enumerate(keys)
-    ]
-    base = f"SELECT {', '.join(inner_sel)} FROM {src}"
+    ckeys = [_alias("c", j) for j in range(len(plan.clusters))]
+    inner_sel = [f"{cols[j]} AS {_alias('b', j)}" for j in range(m)] + ckeys
+    base = f"SELECT {', '.join(inner_sel)} FROM ({_demeaned_query(plan, means, means_table)}) ivd_d"
     prods = [f"{_alias('b', a)} * {_alias('b', b)}" for a, b in zip(ia, ib, strict=True)]
     if plan.kind == "unadjusted":
         sel = ["count(*) AS ivd_n"] + [f"sum({p}) AS {_alias('t', i)}" for i, p in enumerate(prods)]
@@ -256,7 +259,6 @@ def moments_query(
         return f"SELECT {', '.join(sel)} FROM (SELECT {', '.join(tsel)} FROM ({base}) ivd_b) ivd_p"
     if plan.kind != "cluster" or not plan.clusters:
         raise InvalidInputError(f"Unknown covariance layout {plan.kind!r} for the moments query.")
-    ckeys = [_alias("c", j) for j in range(len(keys))]
     gsel = ["count(*) AS ivd_rows"] + [f"sum({p}) AS {_alias('t', i)}" for i, p in enumerate(prods)]
     if len(ckeys) == 1:
         gsel.insert(0, "0 AS ivd_dim")

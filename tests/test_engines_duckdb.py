@@ -236,9 +236,12 @@ def test_too_many_sums_for_sql_is_refused_naming_pandas() -> None:
 def test_one_generator_differs_between_engines_only_in_quoting() -> None:
     plan = MomentPlan("src", ("z 1",), ("x",), "y", ("c",), "f", ("g", "h"), "w", "cluster", DUCKDB)
     coef = np.eye(4, 3)
-    duck = moments_query(plan, coef, means_table="lm")
+    duck = moments_query(plan, coef, means=[0.0] * 4, means_table="lm")
     spark = moments_query(
-        MomentPlan(*[getattr(plan, f) for f in plan.__dataclass_fields__][:-1], SPARK), coef, means_table="lm"
+        MomentPlan(*[getattr(plan, f) for f in plan.__dataclass_fields__][:-1], SPARK),
+        coef,
+        means=[0.0] * 4,
+        means_table="lm",
     )
     assert '"z 1"' in duck and "`z 1`" in spark
     assert duck.replace('"', "`") == spark
