@@ -1,11 +1,11 @@
 """One generator of the aggregation SQL that the DuckDB and Spark engines run to build the sufficient statistics.
 
-A model over a table becomes three grouped scans, each a single SQL query (the same text for both engines,
-up to identifier quoting):
+A model over a table becomes three scans (four with an absorbed factor), each a single SQL query (the same
+text for both engines, up to identifier quoting):
 
-1. ``counts``: rows, complete rows, infinite values, weight sums and (weighted) column sums; with one absorbed
-   factor also a per-level table of means (materialised by the engine) and the nesting of that factor in each
-   cluster variable;
+1. ``counts``: rows, complete rows, infinite values, weight sums and (weighted) column sums, grouped by the
+   completeness flag; with one absorbed factor a second scan builds a per-level table of weighted means
+   (materialised by the engine) and the nesting of that factor in each cluster variable;
 2. ``gram``: the weighted cross-products of the demeaned columns (outcome, treatments, instruments, controls),
    from which the control coefficients are solved (normal equations, as the in-memory path does when the controls
    are well conditioned) together with a first triangular factor R1 of the partialled columns;
@@ -13,6 +13,15 @@ up to identifier quoting):
    CholeskyQR2, so the sums are of nearly orthonormal rows), summed as cross-products and, for the robust
    covariance, as products of cross-products (u x u row moments), or grouped by cluster (GROUPING SETS for two
    cluster variables and their intersection) with the per-cluster sums multiplied in a second aggregation level.
+
+The robust covariance needs no further scan after the coefficients: every robust meat of the suite is a linear
+function of the row moments sum_i t_i t_i' (t_i the packed products of row i's partialled columns), which scan 3
+collects before any coefficient is known; the cluster meats likewise need only the per-cluster sums.
+
+Precision: the control coefficients come from the normal equations of demeaned columns (relative error about
+cond(controls)^2 x 1e-16) and the basis is CholeskyQR2 spread over scans 2 and 3, accurate while the partialled
+columns' condition number stays below about 1e7; a column that keeps less than SQL_MIN_LENGTH of its length
+after partialling is refused (the pandas engine resolves such designs with Householder QR).
 
 :func:`cross_products_from_sums` turns the sums into a :class:`~ivdossier.estimation.crossproducts.CrossProducts`
 (via the accumulator's basis change), so every statistic comes from the same code as the in-memory path.

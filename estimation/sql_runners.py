@@ -7,6 +7,7 @@ knows about models: the queries come from :mod:`ivdossier.estimation.sql_moments
 
 from __future__ import annotations
 
+import tempfile
 import threading
 import time
 import uuid
@@ -309,6 +310,7 @@ class SparkRunner(Runner):
                 SparkSession.builder.appName("ivdossier-estimate")
                 .master(master or "local[*]")
                 .config("spark.ui.showConsoleProgress", "false")  # progress goes to the callback instead
+                .config("spark.sql.warehouse.dir", tempfile.mkdtemp(prefix="ivdossier-spark-"))
             )
             session = builder.getOrCreate()
         self.spark = session

@@ -165,6 +165,11 @@ def test_two_absorbed_factors_are_refused_naming_the_pandas_engine(parquet: Path
         )
 
 
+def test_auto_sends_remote_storage_to_spark() -> None:
+    engine, why = choose_engine("auto", None, remote=True)
+    assert engine == "spark" and "not a local file" in why
+
+
 def test_remote_path_needs_spark() -> None:
     with pytest.raises(InvalidInputError, match="only engine='spark' reads remote storage"):
         estimate_source("s3a://bucket/claims/", engine="duckdb", **model_options("2sls-robust"))

@@ -24,7 +24,7 @@ IN_CI = bool(os.environ.get("CI"))
 
 
 @pytest.fixture(scope="module")
-def spark() -> Iterator[Any]:
+def spark(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Any]:
     missing = None
     try:
         from pyspark.sql import SparkSession
@@ -43,6 +43,7 @@ def spark() -> Iterator[Any]:
         .config("spark.ui.showConsoleProgress", "false")
         .config("spark.driver.host", "127.0.0.1")
         .config("spark.sql.shuffle.partitions", "2")
+        .config("spark.sql.warehouse.dir", str(tmp_path_factory.mktemp("warehouse")))
         .getOrCreate()
     )
     yield session
