@@ -102,6 +102,7 @@ out = {}
 if job["kind"] == "read":
     import duckdb
     con = duckdb.connect()
+    con.execute("SET enable_progress_bar = false")
     if job.get("memory_limit"):
         con.execute(f"SET memory_limit = '{job['memory_limit']}'")
     cols = job["columns"]
@@ -130,7 +131,7 @@ else:
         out["jvm_peak_bytes"] = sum(hwm(p) for p in children(os.getpid()))
         session.stop()
 out["python_peak_bytes"] = hwm(os.getpid())
-print(json.dumps(out))
+print("\nIVD-JSON " + json.dumps(out))
 """
 
 
@@ -141,7 +142,8 @@ def run_child(job: dict[str, object]) -> dict[str, object]:
     )
     if proc.returncode != 0:
         raise SystemExit(f"child failed: {proc.stderr[-3000:]}")
-    return dict(json.loads(proc.stdout.strip().splitlines()[-1]))
+    line = [x for x in proc.stdout.splitlines() if x.startswith("IVD-JSON ")][-1]
+    return dict(json.loads(line[len("IVD-JSON ") :]))
 
 
 def main() -> None:
@@ -163,8 +165,10 @@ def main() -> None:
     if not path.exists():
         t = time.perf_counter()
         write_parquet(path, rows, args.row_group)
-        print(f"wrote {rows:,} rows in row groups of {args.row_group:,}: {path.stat().st_size / 1e9:.2f} GB "
-              f"in {time.perf_counter() - t:.0f} s")
+        print(
+            f"wrote {rows:,} rows in row groups of {args.row_group:,}: {path.stat().st_size / 1e9:.2f} GB "
+            f"in {time.perf_counter() - t:.0f} s"
+        )
     size = path.stat().st_size
     cols = ["y", "x", "z1", "z2", *CONTROLS, "cluster"]
     print(f"file: {path} ({size / 1e9:.2f} GB, {rows:,} rows); machine: {os.cpu_count()} cores")
@@ -175,34 +179,57 @@ def main() -> None:
     est = pandas_memory(resolve_source(path), cols)
     try:
         check_pandas_fits(est)
-        print(f"pandas engine: would accept (estimate {gib(est.bytes_needed)} of {gib(est.bytes_available)} "
-              "available)")
+        print(
+            f"pandas engine: would accept (estimate {gib(est.bytes_needed)} of {gib(est.bytes_available)} "
+            "available)"
+        )
     except InvalidInputError as exc:
         print(f"pandas engine: refused: {exc}")
 
     reads: list[float] = []
     duck: list[dict[str, object]] = []
     for _ in range(args.rounds):
-        reads.append(float(run_child({"kind": "read", "path": str(path), "columns": cols,
-                                      "memory_limit": args.memory_limit})["seconds"]))
-        duck.append(run_child({"kind": "duckdb", "path": str(path), "model": MODEL,
-                               "memory_limit": args.memory_limit}))
+        reads.append(
+            float(
+                run_child(
+                    {"kind": "read", "path": str(path), "columns": cols, "memory_limit": args.memory_limit}
+                )["seconds"]
+            )
+        )
+        duck.append(
+            run_child(
+                {"kind": "duckdb", "path": str(path), "model": MODEL, "memory_limit": args.memory_limit}
+            )
+        )
     read_s = statistics.median(reads)
     duck_s = statistics.median(float(d["seconds"]) for d in duck)  # type: ignore[arg-type]
     duck_peak = max(int(d["python_peak_bytes"]) for d in duck)  # type: ignore[call-overload]
-    print(f"one sequential read (DuckDB sum of every column): median {read_s:.2f} s over {args.rounds} rounds")
-    print(f"duckdb {duck[0]['version']} full suite, memory_limit={args.memory_limit}: median {duck_s:.2f} s "
-          f"= {duck_s / read_s:.2f} x the read; peak resident memory {duck_peak / 2**30:.2f} GiB "
-          f"(whole process incl. Python and numpy)")
+    print(
+        f"one sequential read (DuckDB sum of every column): median {read_s:.2f} s over {args.rounds} rounds"
+    )
+    print(
+        f"duckdb {duck[0]['version']} full suite, memory_limit={args.memory_limit}: median {duck_s:.2f} s "
+        f"= {duck_s / read_s:.2f} x the read; peak resident memory {duck_peak / 2**30:.2f} GiB "
+        f"(whole process incl. Python and numpy)"
+    )
     print("  scans (last round): " + ", ".join(f"{s} {t:.1f} s" for s, t in duck[-1]["scans"]))  # type: ignore[union-attr]
     print(f"  coefficient {duck[-1]['coef']:.6f} (true 0.5), cluster se {duck[-1]['se']:.6f}")
     if args.spark:
-        sp = run_child({"kind": "spark", "path": str(path), "model": MODEL, "master": args.spark_master,
-                        "spark_memory": args.spark_memory})
-        print(f"spark {sp['version']} {args.spark_master}: {float(sp['seconds']):.1f} s "  # type: ignore[arg-type]
-              f"= {float(sp['seconds']) / read_s:.2f} x the read (session start {float(sp['startup_seconds']):.1f} s "  # type: ignore[arg-type]
-              f"not included); peak resident memory: JVM {int(sp['jvm_peak_bytes']) / 2**30:.2f} GiB, "  # type: ignore[call-overload]
-              f"Python {int(sp['python_peak_bytes']) / 2**30:.2f} GiB")  # type: ignore[call-overload]
+        sp = run_child(
+            {
+                "kind": "spark",
+                "path": str(path),
+                "model": MODEL,
+                "master": args.spark_master,
+                "spark_memory": args.spark_memory,
+            }
+        )
+        print(
+            f"spark {sp['version']} {args.spark_master}: {float(sp['seconds']):.1f} s "  # type: ignore[arg-type]
+            f"= {float(sp['seconds']) / read_s:.2f} x the read (session start {float(sp['startup_seconds']):.1f} s "  # type: ignore[arg-type]
+            f"not included); peak resident memory: JVM {int(sp['jvm_peak_bytes']) / 2**30:.2f} GiB, "  # type: ignore[call-overload]
+            f"Python {int(sp['python_peak_bytes']) / 2**30:.2f} GiB"
+        )  # type: ignore[call-overload]
         print("  scans: " + ", ".join(f"{s} {t:.1f} s" for s, t in sp["scans"]))  # type: ignore[union-attr]
         print(f"  coefficient {sp['coef']:.6f}, cluster se {sp['se']:.6f}")
     if not args.keep:
