@@ -56,6 +56,7 @@ from ivdossier.estimation.sql_moments import (
     levels_summary_query,
     moments_query,
     packed,
+    sample_means_query,
     solve_partialling,
     unpack,
 )
@@ -282,10 +283,13 @@ def refuse_unsupported(model: Model, engine: str) -> None:
         )
 
 
-def _scan_counts(runner: Runner, plan: MomentPlan, model: Model, timings: list[ScanTiming]) -> dict[str, Any]:
+def _scan_counts(
+    runner: Runner, plan: MomentPlan, timings: list[ScanTiming], shift: list[float] | None
+) -> dict[str, Any]:
     t0 = time.monotonic()
-    groups = runner.rows(counts_query(plan), "counts and means", 1)
-    timings.append(ScanTiming("counts and means", time.monotonic() - t0))
+    label = "counts and means" if shift is None else "counts, means and Gram matrix"
+    groups = runner.rows(counts_query(plan, shift), label, 1)
+    timings.append(ScanTiming(label, time.monotonic() - t0))
     for j, name in enumerate(plan.numeric):
         bad = sum(int(g[f"ivd_inf{j}"] or 0) for g in groups)
         if bad:
@@ -305,7 +309,7 @@ def _scan_counts(runner: Runner, plan: MomentPlan, model: Model, timings: list[S
             "be positive, drop those rows first."
         )
     for j, name in enumerate(plan.clusters):
-        if int(row[f"ivd_g{j}"]) < 2:
+        if int(row[f"ivd_ng{j}"]) < 2:
             raise InvalidInputError(
                 f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
                 "at least two levels or use vcov='robust'."
@@ -370,18 +374,28 @@ def sql_cross_products(runner: Runner, model: Model) -> tuple[CrossProducts, _Co
         kind=model.vcov,
         dialect=runner.dialect,
     )
-    runner.scans_total = 4 if absorb else 3
+    runner.scans_total = 3 if absorb else 2
     timings: list[ScanTiming] = []
-    row = _scan_counts(runner, plan, model, timings)
+    n_cols = len(plan.demeaned)
+    shift: list[float] | None = None
+    if absorb is None:
+        sample = runner.one(sample_means_query(plan), "centring sample", 1)
+        # an infinite value in the sample is reported by the counts scan; any finite shift will do until then
+        shift = [v if np.isfinite(v) else 0.0 for v in packed(sample, "a", n_cols)]
+    row = _scan_counts(runner, plan, timings, shift)
     n = int(row["ivd_complete"])
     wsum = float(row["ivd_wsum"])
-    n_cols = len(plan.demeaned)
     means = [float(row[f"ivd_s{j}"]) / wsum for j in range(n_cols)]
     n_targets = len(plan.targets)
     index = 2
     means_table = None
     levels, nested = 0, 0
-    if absorb is not None:
+    if shift is not None:
+        h = np.asarray(packed(row, "h", n_cols))
+        gram = unpack(packed(row, "g", n_cols * (n_cols + 1) // 2), n_cols) - np.outer(h, h) / wsum
+        means = [mu + hj / wsum for mu, hj in zip(shift, h, strict=True)]
+        pre = np.sqrt(np.clip(np.diag(gram), 0.0, None))
+    else:
         t0 = time.monotonic()
         means_table = runner.materialise(level_means_query(plan), "level means", index)
         timings.append(ScanTiming("level means", time.monotonic() - t0))
@@ -390,13 +404,11 @@ def sql_cross_products(runner: Runner, model: Model) -> tuple[CrossProducts, _Co
         levels = int(summary["ivd_levels"])
         if any(int(summary[f"ivd_notnested{j}"]) == 0 for j in range(len(plan.clusters))):
             nested = levels
-    t0 = time.monotonic()
-    grow = runner.one(gram_query(plan, means=means, means_table=means_table), "Gram matrix", index)
-    timings.append(ScanTiming("Gram matrix", time.monotonic() - t0))
-    index += 1
-    gram = unpack(packed(grow, "g", n_cols * (n_cols + 1) // 2), n_cols)
-    pre = np.sqrt(np.clip(np.diag(gram), 0.0, None))
-    if absorb is not None:
+        t0 = time.monotonic()
+        grow = runner.one(gram_query(plan, means=means, means_table=means_table), "Gram matrix", index)
+        timings.append(ScanTiming("Gram matrix", time.monotonic() - t0))
+        index += 1
+        gram = unpack(packed(grow, "g", n_cols * (n_cols + 1) // 2), n_cols)
         pre = np.sqrt(np.clip(np.asarray(packed(grow, "pre", n_cols)), 0.0, None))
     part = solve_partialling(gram, pre, n_targets)
     if part.dropped_controls:
@@ -454,7 +466,7 @@ def sql_cross_products(runner: Runner, model: Model) -> tuple[CrossProducts, _Co
         n_nested=nested,
         n_absorbed=levels,
         fe_levels=(levels,) if absorb else (),
-        n_clusters=tuple(int(row[f"ivd_g{j}"]) for j in range(len(plan.clusters)))
+        n_clusters=tuple(int(row[f"ivd_ng{j}"]) for j in range(len(plan.clusters)))
         if model.vcov == "cluster"
         else (),
     )

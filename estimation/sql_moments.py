@@ -142,9 +142,18 @@ def rows_query(plan: MomentPlan) -> str:
     return f"SELECT ivd_cast.*, ({plan.complete()}) AS ivd_ok FROM ({cast}) ivd_cast"
 
 
-def counts_query(plan: MomentPlan) -> str:
+def sample_means_query(plan: MomentPlan, rows: int = 10000) -> str:
+    """Means of the first complete rows (a few row groups, not a scan): the shift that keeps the one-scan Gram
+    matrix free of cancellation when no factor is absorbed."""
+    sel = [f"avg({_alias('v', j)}) AS {_alias('a', j)}" for j in range(len(plan.demeaned))]
+    return f"SELECT {', '.join(sel)} FROM (SELECT * FROM ({rows_query(plan)}) ivd_r WHERE ivd_ok LIMIT {int(rows)}) ivd_s"
+
+
+def counts_query(plan: MomentPlan, shift: Sequence[float] | None = None) -> str:
     """Scan 1, one row per value of the completeness flag (grouping is cheaper than filtered aggregates): rows,
-    infinite values, bad weights, instrument ranges, cluster counts and weighted sums."""
+    infinite values, bad weights, instrument ranges, cluster counts and weighted sums. With ``shift`` (no
+    absorbed factor) also the weighted sums ``ivd_h{j}`` and cross-products ``ivd_g{i}`` of v - shift, from
+    which the centred Gram matrix follows exactly (G - h h' / W), so no separate Gram scan is needed."""
     inf = "CAST('Infinity' AS DOUBLE)"
     n_d = len(plan.demeaned)
     sel = ["ivd_ok", "count(*) AS ivd_rows"]
@@ -159,8 +168,22 @@ def counts_query(plan: MomentPlan) -> str:
         sel.append(f"min({_alias('v', j)}) AS {_alias('lo', j)}")
         sel.append(f"max({_alias('v', j)}) AS {_alias('hi', j)}")
     for j in range(len(plan.clusters)):
-        sel.append(f"count(DISTINCT {_alias('c', j)}) AS {_alias('g', j)}")
-    return f"SELECT {', '.join(sel)} FROM ({rows_query(plan)}) ivd_r GROUP BY ivd_ok"
+        sel.append(f"count(DISTINCT {_alias('c', j)}) AS {_alias('ng', j)}")
+    src = f"({rows_query(plan)}) ivd_r"
+    if shift is not None:
+        if plan.absorb is not None:
+            raise InvalidInputError("The one-scan Gram matrix applies without an absorbed factor only.")
+        sw = "sqrt(ivd_w) * " if plan.weights else ""
+        hs = [f"{sw}({_alias('v', j)} - {lit(mu)}) AS {_alias('x', j)}" for j, mu in enumerate(shift)]
+        src = f"(SELECT ivd_r.*, {', '.join(hs)} FROM {src}) ivd_r"
+        x = [_alias("x", j) for j in range(n_d)]
+        hw = "sqrt(ivd_w) * " if plan.weights else ""
+        sel += [f"sum({hw}{x[j]}) AS {_alias('h', j)}" for j in range(n_d)]
+        sel += [
+            f"sum({x[a]} * {x[b]}) AS {_alias('g', i)}"
+            for i, (a, b) in enumerate(zip(*pack_index(n_d), strict=True))
+        ]
+    return f"SELECT {', '.join(sel)} FROM {src} GROUP BY ivd_ok"
 
 
 def level_means_query(plan: MomentPlan) -> str:
