@@ -71,3 +71,4 @@ def test_spark_equals_pandas_path_in_every_number(
     assert got.provenance.settings["master"] == "local[2]"
     # the runner dropped its views and kept the caller's session running
     assert not [t for t in spark.catalog.listTables() if t.name.startswith("ivd_")]
+    assert spark.conf.get("spark.sql.codegen.maxFields") == "100"  # the session's setting is restored
