@@ -28,10 +28,10 @@ from __future__ import annotations
 
 import argparse
 import gc
-import warnings
 import statistics
 import time
 import tracemalloc
+import warnings
 from collections.abc import Callable
 from typing import Any
 
@@ -95,7 +95,13 @@ def peak_bytes(fn: Callable[[], Any]) -> int:
 
 def ours(df: pd.DataFrame) -> Any:
     return estimate(
-        df, outcome="y", treatment="x", instruments=["z1", "z2"], controls=CONTROLS, cluster="cluster", vcov="cluster"
+        df,
+        outcome="y",
+        treatment="x",
+        instruments=["z1", "z2"],
+        controls=CONTROLS,
+        cluster="cluster",
+        vcov="cluster",
     )
 
 
@@ -118,7 +124,9 @@ def gram_floor(df: pd.DataFrame) -> Any:
         four = a[:, :4]
         ia, ib = np.triu_indices(4)
         codes = df["cluster"].to_numpy()
-        sums = np.stack([np.bincount(codes, weights=four[:, i] * four[:, j]) for i, j in zip(ia, ib, strict=True)])
+        sums = np.stack(
+            [np.bincount(codes, weights=four[:, i] * four[:, j]) for i, j in zip(ia, ib, strict=True)]
+        )
     return gram, sums
 
 
@@ -179,6 +187,10 @@ def run_fe(n: int, n_clusters: int, levels: int, rounds: int) -> None:
     print(f"  pyfixest  coefficient {b_ref:.10f} se {se_ref:.10f}")
     print(f"  relative differences: coefficient {abs(res.coef[0] - b_ref) / abs(b_ref):.2e}, se "
           f"{abs(res.se[0] - se_ref) / se_ref:.2e}")  # fmt: skip
+    df_c = res.n - len(res.names) - (res.n_partialled - res.n_absorbed_nested)
+    print(f"  one more counted parameter in the CRV1 factor would change our se by "
+          f"{np.sqrt(df_c / (df_c - 1)) - 1:.2e} (df {df_c:,} = n - treatments - controls - absorbed levels not "
+          "nested in the cluster)")  # fmt: skip
     t = interleaved({"ours": mine, "pyfixest": theirs}, rounds)
     print(f"  median of {rounds} interleaved rounds: ivdossier {t['ours']:.3f} s (with every diagnostic), "
           f"pyfixest {t['pyfixest']:.3f} s (coefficients and CRV1 only)")  # fmt: skip

@@ -61,9 +61,13 @@ def pack_index(m: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def packed_products(q: np.ndarray) -> Array:
-    """Rows q_a q_b for a <= b of each row of q (n x m) -> (n x m(m+1)/2)."""
+    """Rows q_a q_b for a <= b of each row of q (n x m) -> (n x m(m+1)/2), column-major."""
     ia, ib = pack_index(q.shape[1])
-    return np.asarray(q[:, ia] * q[:, ib], dtype=np.float64)
+    qf = np.asfortranarray(q, dtype=np.float64)
+    out = np.empty((qf.shape[0], ia.size), dtype=np.float64, order="F")
+    for j, (a, b) in enumerate(zip(ia, ib, strict=True)):
+        np.multiply(qf[:, a], qf[:, b], out=out[:, j])
+    return out
 
 
 def pack_weights(mats: Array) -> Array:
@@ -148,8 +152,9 @@ class MomentAccumulator:
         )
 
     def finish(self, basis_inv: np.ndarray | None = None) -> tuple[tuple[Array, ...], tuple[int, ...]]:
-        """Moment matrices K_d and group counts; ``basis_inv`` maps the rows given to orthonormal rows
-        (q_i = b_i basis_inv), used when the chunks held standardised columns rather than Q."""
+        """Moment matrices K_d and the number of groups with a nonzero sum per dimension (the row count for
+        the robust case); ``basis_inv`` maps the rows given to orthonormal rows (q_i = b_i basis_inv), used
+        when the chunks held standardised columns rather than Q."""
         u = self.m * (self.m + 1) // 2
         lin = np.eye(u)
         if basis_inv is not None:
@@ -172,6 +177,16 @@ class MomentAccumulator:
             moments.append(t.T @ t)
             counts.append(int(np.count_nonzero(np.any(s != 0, axis=1))))
         return tuple(moments), tuple(counts)
+
+
+def _cholesky_upper(gram: Array) -> Array | None:
+    """Upper Cholesky factor of a unit-diagonal Gram matrix, or None when it is too ill-conditioned for
+    CholeskyQR2 (smallest diagonal below CHOLQR_MIN_DIAG) and Householder QR must be used."""
+    try:
+        r1 = np.linalg.cholesky((gram + gram.T) / 2).T
+    except np.linalg.LinAlgError:
+        return None
+    return np.asarray(r1, dtype=np.float64) if float(np.diag(r1).min()) > CHOLQR_MIN_DIAG else None
 
 
 def orthonormal_rows(a: Array) -> tuple[Array | None, Array, bool]:
@@ -389,22 +404,44 @@ def _build(
     scale = np.sqrt(np.einsum("ij,ij->j", a, a))
     unit = np.where(scale > 0, scale, 1.0)
     a /= unit
-    q, r, exact = orthonormal_rows(a)
-    moments: tuple[Array, ...] = ()
-    counts: tuple[int, ...] = ()
-    if spec.kind != "unadjusted":
-        codes: list[np.ndarray] = list(spec.clusters)
-        if len(codes) == 2:
-            codes.append(intersection_codes(codes[0], codes[1]))
-        acc = MomentAccumulator(m, len(codes))
-        rinv = np.asarray(scipy.linalg.solve_triangular(r, np.eye(m), check_finite=False), dtype=np.float64)
+    codes: list[np.ndarray] = list(spec.clusters) if spec.kind == "cluster" else []
+    if len(codes) == 2:
+        codes.append(intersection_codes(codes[0], codes[1]))
+    need_moments = spec.kind != "unadjusted"
+    acc = MomentAccumulator(m, len(codes))
+    gram = a.T @ a
+    r1 = _cholesky_upper(gram)
+    exact = r1 is None
+    if r1 is not None:
+        # CholeskyQR2 fused with the moment pass: rows q1 = a R1^{-1} are orthonormal up to round-off; their
+        # Gram matrix gives R2 (R = R2 R1) and their moments are mapped by R2^{-1} at the end (``finish``)
+        r1inv = scipy.linalg.solve_triangular(r1, np.eye(m), check_finite=False)
         for start in range(0, n, BLOCK_ROWS):
             stop = min(start + BLOCK_ROWS, n)
-            rows = q[start:stop] if q is not None else a[start:stop] @ rinv
-            acc.add(rows, [c[start:stop] for c in codes])
-        moments, counts = acc.finish()
-        if spec.kind == "robust":
-            counts = ()
+            q1 = a[start:stop] @ r1inv
+            if need_moments:
+                acc.add(q1, [c[start:stop] for c in codes])
+            else:
+                acc.n += q1.shape[0]
+                acc.gram += q1.T @ q1
+        r2 = np.linalg.cholesky((acc.gram + acc.gram.T) / 2).T
+        r = np.asarray(r2 @ r1, dtype=np.float64)
+        basis_inv = scipy.linalg.solve_triangular(r2, np.eye(m), check_finite=False)
+    else:
+        q, r = np.linalg.qr(a)
+        signs = np.where(np.diag(r) < 0, -1.0, 1.0)
+        q, r = q * signs, signs[:, None] * r
+        if need_moments:
+            for start in range(0, n, BLOCK_ROWS):
+                stop = min(start + BLOCK_ROWS, n)
+                acc.add(q[start:stop], [c[start:stop] for c in codes])
+        basis_inv = None
+    moments: tuple[Array, ...] = ()
+    counts: tuple[int, ...] = ()
+    if need_moments:
+        moments, _ = acc.finish(basis_inv)
+        # clusters are counted from their codes (a cluster whose partialled rows are all zero still counts)
+        counts = tuple(int(np.count_nonzero(np.bincount(c))) for c in codes)
     return CrossProducts(
         n=n,
         k=k,

@@ -205,6 +205,8 @@ def prepare(
     n_all = len(data)
     keep = np.ones(n_all, dtype=bool)
     for (name, _), col in zip(numeric_names, cols, strict=True):
+        if np.isfinite(col).all():  # the common case: one pass, nothing to drop
+            continue
         inf = np.isinf(col)
         if inf.any():
             row = data.index[int(np.argmax(inf))]
