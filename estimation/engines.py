@@ -26,10 +26,10 @@ import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.api import OLS_REASON, _check_options, _interval_quantile, conventions, estimate
+from ivdossier.estimation.api import OLS_REASON, _interval_quantile, conventions, estimate
 from ivdossier.estimation.crossproducts import CrossProducts
 from ivdossier.estimation.data import _check_collinear, _check_roles, as_names
-from ivdossier.estimation.diagnostics import suite_from, unidentified_reason
+from ivdossier.estimation.diagnostics import DiagnosticSuite, suite_from, unidentified_reason
 from ivdossier.estimation.estimators import fit_from_cross_products
 from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
@@ -45,6 +45,7 @@ from ivdossier.estimation.sources import (
     parquet_rows_and_types,
     resolve_source,
 )
+from ivdossier.estimation.spec import check_options
 from ivdossier.estimation.sql_moments import (
     SQL_MIN_LENGTH,
     MomentPlan,
@@ -62,6 +63,7 @@ from ivdossier.estimation.sql_moments import (
 )
 from ivdossier.estimation.sql_runners import DuckDBRunner, ProgressCallback, Runner, SparkRunner, closing
 from ivdossier.estimation.strength import require_distinct_instruments
+from ivdossier.vocabulary import NotApplicable
 
 Array = NDArray[np.float64]
 ENGINES: tuple[str, ...] = ("auto", "pandas", "duckdb", "spark")
@@ -227,7 +229,7 @@ def _normalise(
     if not isinstance(outcome, str) or not outcome:
         raise InvalidInputError("Option outcome= must name one column.")
     clus = as_names(cluster, "cluster")
-    _check_options(method, vcov, clus, alpha, fuller_alpha)
+    check_options(method, vcov, clus, alpha, fuller_alpha)
     inst = as_names(instruments, "instruments")
     treat = as_names(treatment, "treatment")
     if not treat:
@@ -518,7 +520,7 @@ def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: Model)
         unident = unidentified_reason(cp, names, inst)
         if unident is not None:
             nan = np.full(k, np.nan)
-            suite = suite_from(
+            unidentified_suite = suite_from(
                 cp,
                 beta=nan,
                 method=model.method,
@@ -537,7 +539,7 @@ def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: Model)
                 kappa=float("nan"),
                 kappa_liml=None,
                 sigma=float("nan"),
-                diagnostics=suite,
+                diagnostics=unidentified_suite,
                 identification=unident,
                 **common,
             )
@@ -545,8 +547,9 @@ def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: Model)
         beta, cov, kappa, kappa_liml, ssr = mfit.beta, mfit.cov, mfit.kappa, mfit.kappa_liml, mfit.ssr
     se = np.sqrt(np.diag(cov))
     ci = np.column_stack([beta - q * se, beta + q * se])
-    suite = None
-    not_applicable = OLS_REASON if model.method == "ols" else None
+    suite: DiagnosticSuite | NotApplicable | None = (
+        NotApplicable(OLS_REASON) if model.method == "ols" else None
+    )
     if model.method != "ols":
         try:
             require_distinct_instruments(cp, inst)
@@ -560,7 +563,7 @@ def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: Model)
                 alpha=model.alpha,
             )
         except EstimationError as exc:
-            not_applicable = f"instrument diagnostics not computed: {exc}"
+            suite = NotApplicable(f"instrument diagnostics not computed: {exc}")
     return EstimationResult(
         coef=beta,
         se=se,
@@ -572,7 +575,6 @@ def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: Model)
         kappa_liml=kappa_liml,
         sigma=float(np.sqrt(ssr / df_resid)),
         diagnostics=suite,
-        not_applicable=not_applicable,
         **common,
     )
 
