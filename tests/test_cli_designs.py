@@ -355,3 +355,46 @@ def test_confounder_strength_mistakes(registry, confounded: Path) -> None:  # ty
         "error: confounder-strength does not apply: the Cinelli–Hazlett robustness values here take exactly one "
         "instrument, got 2; analyse each instrument on its own."
     )
+
+
+# ---------------------------------------------------------------- the dossier
+
+
+def test_dossier_shows_each_kind_and_the_findings_under_the_threats(  # type: ignore[no-untyped-def]
+    registry, cases: Path, exposure: dict[str, Path], variants: Path, confounded: Path, tmp_path: Path
+) -> None:
+    dm = ("--outcome", "y", "--treatment", "x", "--decision-maker", "clerk")
+    assert registry("design", "decision-makers", "--data", str(cases), *dm, "--attach", "clerks")[0] == 0
+    assert registry(*_exposure_args(exposure), "--attach", "clerks")[0] == 0
+    assert registry("variants", "--data", str(variants), "--attach", "clerks")[0] == 0
+    ov = ("--outcome", "y", "--treatment", "x", "--instrument", "z", "--control", "c", "--benchmark", "c")
+    assert registry("confounder-strength", "--data", str(confounded), *ov, "--attach", "clerks")[0] == 0
+    assert registry("link", "add", "clerks", "DM-R01")[0] == 0
+    code, out, err = registry("design", "decision-makers", "--data", str(cases), *dm, "--json")
+    assert code == 0, err
+    ujive = next(e for e in json.loads(out)["estimates"]["estimates"] if e["method"] == "ujive")
+
+    md_file = tmp_path / "dossier.md"
+    code, _, err = registry("dossier", "clerks", "--out", str(md_file))
+    assert code == 0, err
+    md = md_file.read_text(encoding="utf-8")
+    for heading in (
+        "## Decision-maker design",
+        "## Exposure-share design",
+        "## Evidence from per-variant summary statistics",
+        "## How strong would an omitted confounder of the instrument have to be?",
+    ):
+        assert heading in md, heading
+    assert f"| UJIVE | {ujive['estimate']:.4g} |" in md  # the stored run's number, rendered
+    # under the threat DM-R01, one finding per check, each naming the run it comes from
+    threat = md[md.index("DM-R01") :]
+    assert "many-instrument-estimates: 2SLS " in threat and "(run clerks-design-decision-makers-1)" in threat
+    assert "jackknife-anderson-rubin: jackknife Anderson–Rubin 95% set" in threat
+    assert "Statistics cannot establish exclusion or exogeneity." in md
+
+    html_file = tmp_path / "dossier.html"
+    code, _, err = registry("dossier", "clerks", "--out", str(html_file))
+    assert code == 0, err
+    html = html_file.read_text(encoding="utf-8")
+    for key in ("rotemberg-weights", "variant-scatter", "variant-funnel", "robustness-contour"):
+        assert f'id="figure-{key}"><svg' in html.replace("\n", ""), key
