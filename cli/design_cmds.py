@@ -52,6 +52,15 @@ def _one_absorb(absorb: list[str] | None) -> str | None:
     return cells[0] if cells else None
 
 
+def _instrument_exists(slug: str) -> None:
+    from ivdossier.cli.common import reading
+    from ivdossier.registry import records
+    from ivdossier.registry.models import Instrument
+
+    with reading() as session:
+        records.get(session, Instrument, slug)
+
+
 @design_app.command("decision-makers")
 def design_decision_makers(
     data: Data,
@@ -82,6 +91,8 @@ def design_decision_makers(
     json_out: JsonFlag = False,
 ) -> None:
     """Leave-out decision-maker measure, JIVE1 and UJIVE beside 2SLS, and the jackknife Anderson–Rubin test."""
+    if attach and derived_out:
+        _instrument_exists(attach)  # refuse before the derived file is written
     run = _run(
         "design decision-makers", data, None, outcome=outcome, treatment=treatment, decision_maker=decision_maker,
         controls=list(split_names(control)), absorb=_one_absorb(absorb),

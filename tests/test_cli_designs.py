@@ -398,3 +398,15 @@ def test_dossier_shows_each_kind_and_the_findings_under_the_threats(  # type: ig
     html = html_file.read_text(encoding="utf-8")
     for key in ("rotemberg-weights", "variant-scatter", "variant-funnel", "robustness-contour"):
         assert f'id="figure-{key}"><svg' in html.replace("\n", ""), key
+
+
+def test_decision_makers_refuse_an_unknown_instrument_before_writing_the_derived_file(  # type: ignore[no-untyped-def]
+    registry, cases: Path, tmp_path: Path
+) -> None:
+    out_file = tmp_path / "never.csv"
+    code, _, err = registry(
+        "design", "decision-makers", "--data", str(cases), "--outcome", "y", "--treatment", "x",
+        "--decision-maker", "clerk", "--derived-out", str(out_file), "--attach", "nobody",
+    )  # fmt: skip
+    assert code != 0 and "nobody" in err and len(err.strip().splitlines()) == 1
+    assert not out_file.exists()
