@@ -137,6 +137,7 @@ COMMAND_MODULES = (
     "evidence_cmds",
     "studies",
     "plans",
+    "design_cmds",
 )
 
 

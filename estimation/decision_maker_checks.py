@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 FLL_REASON = (
     "the test of Frandsen, Lefgren and Leslie (2023, AER) is not implemented: its exact statistic (a "
@@ -34,7 +34,7 @@ CAUTION = (
 
 
 @dataclass(frozen=True)
-class OutcomeProfile:
+class OutcomeProfile(Record):
     """Per decision-maker: treatment rate, mean outcome and number of cases (the points of the profile plot)."""
 
     decision_makers: tuple[str, ...]
@@ -75,7 +75,7 @@ class OutcomeProfile:
 
 
 @dataclass(frozen=True)
-class FLLTest:
+class FLLTest(Record):
     """Result slot for the Frandsen-Lefgren-Leslie test; currently always not applicable, with the reason."""
 
     applicable: bool = False

@@ -34,7 +34,7 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.jackknife_iv import orthonormal_basis
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 SHARE_TOL = 1e-9
@@ -58,7 +58,7 @@ def _names(values: Sequence[Any]) -> str:
 
 
 @dataclass(frozen=True)
-class ShiftShareRecipe:
+class ShiftShareRecipe(Record):
     """How the exposure-share instrument was built, for a run's provenance."""
 
     name: str
@@ -368,7 +368,7 @@ def _iv(p: _Partialled) -> tuple[float, float]:
 
 
 @dataclass(frozen=True)
-class RotembergWeights:
+class RotembergWeights(Record):
     """Per-sector Rotemberg weights and just-identified estimates whose weighted sum is the 2SLS estimate."""
 
     sectors: tuple[str, ...]
@@ -462,7 +462,7 @@ def rotemberg_weights(
 
 
 @dataclass(frozen=True)
-class ExposureRobustIV:
+class ExposureRobustIV(Record):
     """2SLS with the exposure-share instrument: conventional, AKM and AKM0 intervals (NaN when not applicable)."""
 
     estimate: float
@@ -620,7 +620,7 @@ def exposure_robust_iv(
 
 
 @dataclass(frozen=True)
-class ShockLevelIV:
+class ShockLevelIV(Record):
     """The exposure-weighted shock-level IV regression and its shock-level robust standard error."""
 
     estimate: float

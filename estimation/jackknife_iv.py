@@ -33,7 +33,7 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import is_nested
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 RANK_TOL = 1e-9
@@ -52,7 +52,7 @@ METHOD_LABELS = {"2sls": "2SLS (all instruments)", "jive1": "JIVE1", "ujive": "U
 
 
 @dataclass(frozen=True)
-class JackknifeEstimate:
+class JackknifeEstimate(Record):
     """One estimator's coefficient on the treatment, with its standard error and confidence interval."""
 
     method: str
@@ -75,7 +75,7 @@ class JackknifeEstimate:
 
 
 @dataclass(frozen=True)
-class JackknifeIVResult:
+class JackknifeIVResult(Record):
     """2SLS, JIVE1 and UJIVE on the same instruments and controls."""
 
     estimates: tuple[JackknifeEstimate, ...]

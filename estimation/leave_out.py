@@ -22,7 +22,7 @@ from numpy.typing import NDArray
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.absorb import partial_out
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 LEAVE_OUT_KINDS = ("case", "cluster")
@@ -75,7 +75,7 @@ def leave_out_means(values: np.ndarray, groups: np.ndarray, *, clusters: np.ndar
 
 
 @dataclass(frozen=True)
-class PropensityRecipe:
+class PropensityRecipe(Record):
     """How a decision-maker propensity was built, for a run's provenance."""
 
     name: str

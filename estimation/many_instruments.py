@@ -35,7 +35,7 @@ from scipy import stats
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import is_nested
 from ivdossier.estimation.jackknife_iv import orthonormal_basis
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 # Mikusheva and Sun (2022): F~ above 4.14 keeps the JIVE-based Wald test's size at most 10% at nominal 5%
@@ -51,7 +51,7 @@ CAUTION = (
 
 
 @dataclass(frozen=True)
-class JackknifeAR:
+class JackknifeAR(Record):
     """Jackknife AR test of ``beta0``, its confidence set (list of intervals) and the strength measure F~.
 
     When the test does not apply, ``applicable`` is False, ``reason`` says why and the numbers are NaN.

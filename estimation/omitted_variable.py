@@ -39,7 +39,7 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.data import as_names, prepare
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "CAUTION",
@@ -202,7 +202,7 @@ def _as_dict(obj: Any) -> dict[str, Any]:
 
 
 @dataclass(frozen=True)
-class NotApplicable:
+class SensitivityNotApplicable(Record):
     """The omitted-variable analysis does not apply to this model; ``reason`` says why."""
 
     reason: str
@@ -215,8 +215,13 @@ class NotApplicable:
         return f"Omitted-variable sensitivity: not applicable ({self.reason})."
 
 
+NotApplicable = (
+    SensitivityNotApplicable  # the module's name for it; the record type is SensitivityNotApplicable
+)
+
+
 @dataclass(frozen=True)
-class RobustnessValues:
+class RobustnessValues(Record):
     """Robustness values of one coefficient: ``target`` is the value the change would reach ((1 - q) × estimate,
     or tau0 for the IV estimate); ``rv_alpha``/``xrv_alpha`` are the forms that also account for sampling error."""
 
@@ -277,7 +282,7 @@ def robustness_values(
 
 
 @dataclass(frozen=True)
-class BenchmarkBound:
+class BenchmarkBound(Record):
     """A confounder k times as strong as control ``covariate``: its partial R² bounds and the adjusted result.
 
     ``estimate_range`` is the estimate moved by the bias bound in either direction; ``interval`` the widest
@@ -308,7 +313,7 @@ class BenchmarkBound:
 
 
 @dataclass(frozen=True)
-class IvBenchmark:
+class IvBenchmark(Record):
     """The IV estimate under a confounder k times as strong as ``covariate``: the values tau0 that the
     worst-case adjusted Anderson–Rubin regression can no longer tell apart from the data.
 
@@ -341,7 +346,7 @@ class IvBenchmark:
 
 
 @dataclass(frozen=True)
-class ContourGrid:
+class ContourGrid(Record):
     """Adjusted estimate and t-value of one regression over a grid of confounder strengths (for a contour plot).
 
     Rows follow ``r2_outcome``, columns ``r2_regressor``; the adjustment moves the estimate towards ``target``.
@@ -370,7 +375,7 @@ class ContourGrid:
 
 
 @dataclass(frozen=True)
-class IvRobustness:
+class IvRobustness(Record):
     """Omitted-variable sensitivity of one IV estimate (one instrument, one treatment).
 
     ``iv`` holds the robustness values of the Anderson–Rubin regression of Y - tau0 D on Z at tau0 = ``null``:

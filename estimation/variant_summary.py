@@ -41,7 +41,7 @@ from numpy.typing import NDArray
 from scipy import stats
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "CAUTION",
@@ -102,7 +102,7 @@ def _list(names: Sequence[str], limit: int = 5) -> str:
 
 
 @dataclass(frozen=True)
-class Harmonisation:
+class Harmonisation(Record):
     """What harmonising the outcome study to the exposure study's effect alleles did."""
 
     n_variants: int
@@ -137,7 +137,7 @@ class Harmonisation:
 
 
 @dataclass(frozen=True, eq=False)
-class VariantTable:
+class VariantTable(Record):
     """Harmonised per-variant associations (arrays in table order) with the harmonisation report."""
 
     variants: tuple[str, ...]
@@ -404,7 +404,7 @@ def _harmonise(df: pd.DataFrame, variants: list[str], by: Array) -> tuple[Array,
 
 
 @dataclass(frozen=True)
-class NotApplicable:
+class VariantNotApplicable(Record):
     """A summary-data statistic that does not apply to this table; ``reason`` says why."""
 
     statistic: str
@@ -418,8 +418,11 @@ class NotApplicable:
         return f"{self.statistic}: not applicable ({self.reason})."
 
 
+NotApplicable = VariantNotApplicable  # the module's name for it; the record type is VariantNotApplicable
+
+
 @dataclass(frozen=True)
-class WaldRatios:
+class WaldRatios(Record):
     """Per-variant ratio estimates by_j / bx_j with first- and second-order standard errors and F statistics."""
 
     variants: tuple[str, ...]
@@ -461,7 +464,7 @@ def _normal_interval(est: float, se: float, alpha: float) -> tuple[float, float,
 
 
 @dataclass(frozen=True)
-class IvwFit:
+class IvwFit(Record):
     """Inverse-variance weighted estimate with fixed-effect and multiplicative random-effects inference."""
 
     estimate: float
@@ -503,7 +506,7 @@ def ivw(table: VariantTable, *, alpha: float = 0.05) -> IvwFit | NotApplicable:
 
 
 @dataclass(frozen=True)
-class Heterogeneity:
+class Heterogeneity(Record):
     """Cochran's Q around the IVW line and Rücker's Q' around the Egger line, with their difference."""
 
     q: float
@@ -564,7 +567,7 @@ def _egger_coefficients(table: VariantTable) -> tuple[float, float]:
 
 
 @dataclass(frozen=True)
-class EggerFit:
+class EggerFit(Record):
     """MR-Egger slope (causal estimate under InSIDE) and intercept (average directional pleiotropy)."""
 
     estimate: float
@@ -652,7 +655,7 @@ def weighted_median_point(ratio: Array, weight: Array) -> float:
 
 
 @dataclass(frozen=True)
-class WeightedMedian:
+class WeightedMedian(Record):
     """Weighted median estimate with a parametric-bootstrap standard error (normal interval)."""
 
     estimate: float
@@ -697,7 +700,7 @@ def weighted_median(
 
 
 @dataclass(frozen=True)
-class LeaveOneOut:
+class LeaveOneOut(Record):
     """IVW estimate (random-effects interval) with each variant left out in turn."""
 
     variants: tuple[str, ...]
@@ -751,7 +754,7 @@ def leave_one_out(table: VariantTable, *, alpha: float = 0.05) -> LeaveOneOut | 
 
 
 @dataclass(frozen=True)
-class Directionality:
+class Directionality(Record):
     """Steiger directionality: do the variants explain more of the exposure than of the outcome?"""
 
     r2_exposure: float
@@ -812,7 +815,7 @@ def directionality(table: VariantTable) -> Directionality | NotApplicable:
 
 
 @dataclass(frozen=True)
-class SummaryEvidence:
+class SummaryEvidence(Record):
     """All summary-data estimates and diagnostics for one per-variant table."""
 
     table: VariantTable

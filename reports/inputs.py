@@ -268,6 +268,7 @@ class DossierInput:
     # Whole "##" sections built by other report builders that escape their own user text (e.g. the literature
     # audit); placed after the estimates. Never put raw user text here.
     extra_sections: tuple[str, ...] = ()
+    evidence_runs: tuple[RunInfo, ...] = ()  # design and summary-data runs (reports/design_sections.py)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "links", _as_tuple(self.links))

@@ -22,10 +22,18 @@ from hypothesis.extra import numpy as hnp
 
 import ivdossier.estimation.api
 import ivdossier.estimation.compliers
+import ivdossier.estimation.decision_maker_checks
+import ivdossier.estimation.design_results
+import ivdossier.estimation.exposure_share
 import ivdossier.estimation.falsification
+import ivdossier.estimation.jackknife_iv
+import ivdossier.estimation.leave_out
+import ivdossier.estimation.many_instruments
+import ivdossier.estimation.omitted_variable
 import ivdossier.estimation.power
 import ivdossier.estimation.sensitivity
-import ivdossier.estimation.subgroups  # noqa: F401
+import ivdossier.estimation.subgroups
+import ivdossier.estimation.variant_summary  # noqa: F401
 from ivdossier.errors import InvalidInputError
 from ivdossier.jsonsafe import Record, load_record, record_types
 from ivdossier.vocabulary import NotApplicable
@@ -35,6 +43,7 @@ STORED = sorted(record_types().items())
 TOP_LEVEL = (
     "EstimationResult", "InstrumentRegressions", "ZeroFirstStageResult", "PerInstrumentResult", "SubgroupSigns",
     "UnionIntervalResult", "LocalToZeroResult", "BreakdownResult", "ComplierReport", "PowerAnalysis",
+    "DecisionMakerDesign", "ExposureShareDesign", "SummaryEvidence", "IvRobustness", "SensitivityNotApplicable",
 )  # fmt: skip
 
 FLOATS = st.floats(allow_nan=True, allow_infinity=True, width=64)

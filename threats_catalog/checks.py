@@ -26,6 +26,10 @@ COMMANDS: tuple[str, ...] = (
     "ivdossier sensitivity",
     "ivdossier compliers",
     "ivdossier power",
+    "ivdossier design decision-makers",
+    "ivdossier design exposure-share",
+    "ivdossier variants",
+    "ivdossier confounder-strength",
     "ivdossier plan compare",
 )
 
@@ -162,6 +166,69 @@ _CHECK_LIST: tuple[Check, ...] = (
         "Whether the design can detect a plausible effect given first-stage strength and sample size.",
         "ivdossier power",
         _to("relevance", "uncertainty"),
+    ),
+    Check(
+        "leave-out-construction",
+        "The decision-maker measure built from each decision-maker's other cases (or other clusters), so a "
+        "case's own decision never enters its instrument; cases per decision-maker, small ones flagged.",
+        "ivdossier design decision-makers",
+        _to("exogeneity", "relevance"),
+    ),
+    Check(
+        "many-instrument-estimates",
+        "JIVE1 and UJIVE beside 2SLS with one dummy per decision-maker; 2SLS drifting towards OLS while the "
+        "jackknife estimates do not is the bias of many weak instruments.",
+        "ivdossier design decision-makers",
+        _to("relevance", "uncertainty"),
+    ),
+    Check(
+        "jackknife-anderson-rubin",
+        "Test and confidence set that stay valid with many weak instruments (jackknife Anderson-Rubin), with "
+        "its own strength measure.",
+        "ivdossier design decision-makers",
+        _to("relevance", "uncertainty"),
+    ),
+    Check(
+        "rotemberg-weights",
+        "Which sectors' shares the exposure-share estimate rests on (Rotemberg weights), their own estimates "
+        "and the share of negative weight; the shares of the top sectors are the ones to defend.",
+        "ivdossier design exposure-share",
+        _to("exogeneity", "relevance"),
+    ),
+    Check(
+        "exposure-robust-inference",
+        "Intervals that allow units with similar shares to share unobserved shocks (AKM, AKM0) and the "
+        "equivalent shock-level regression with its effective number of sectors.",
+        "ivdossier design exposure-share",
+        _to("relevance", "uncertainty"),
+    ),
+    Check(
+        "variant-pleiotropy",
+        "From per-variant summary statistics: MR-Egger intercept, weighted median and heterogeneity of the "
+        "per-variant ratios; a non-zero intercept or spread beyond chance points to other pathways.",
+        "ivdossier variants",
+        _to("exclusion"),
+    ),
+    Check(
+        "variant-strength",
+        "Per-variant F statistics of the exposure associations, their mean and I-squared GX (strength for "
+        "MR-Egger).",
+        "ivdossier variants",
+        _to("relevance"),
+    ),
+    Check(
+        "variant-directionality",
+        "Whether the variants explain more of the exposure than of the outcome (Steiger); the reverse suggests "
+        "they act on the outcome by another route.",
+        "ivdossier variants",
+        _to("exclusion"),
+    ),
+    Check(
+        "confounder-robustness-value",
+        "How much residual variance of both the instrument and the outcome a confounder would have to explain "
+        "to move the IV estimate to the null (robustness value), compared with named observed covariates.",
+        "ivdossier confounder-strength",
+        _to("exogeneity", "exclusion"),
     ),
     Check(
         "differential-attrition",

@@ -344,6 +344,213 @@ def _compliers(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Compu
     return report, {}
 
 
+# ---------------------------------------------------------------- designs, summary data, confounder strength
+
+
+def _na_text(part: Any) -> str | None:
+    """The reason when a part of a result does not apply (either module's not-applicable record)."""
+    if getattr(part, "applicable", True) is False:
+        return f"not applicable: {getattr(part, 'reason', '')}"
+    return None
+
+
+def _leave_out(result: Any) -> str:
+    cases = result.cases
+    small = (
+        f"; {len(result.small)} flagged with fewer than {result.recipe.min_cases} cases"
+        if result.small
+        else ""
+    )
+    return (
+        f"leave-{result.recipe.leave_out}-out measure over {result.recipe.n_decision_makers} decision-makers "
+        f"(cases each {min(cases, default=0)}–{max(cases, default=0)}){small}"
+    )
+
+
+def _jackknife_estimates(result: Any) -> str:
+    est = result.estimates
+    parts = [f"{e.method.upper()} {_num(e.estimate, 4)} (se {_num(e.std_error)})" for e in est.estimates]
+    return "; ".join(parts) + f" with {est.n_instruments} decision-maker dummies"
+
+
+def _jackknife_ar(result: Any) -> str:
+    ar = result.anderson_rubin
+    if not ar.applicable:
+        return f"jackknife Anderson–Rubin not applicable: {ar.reason}"
+    strong = "above" if ar.strength > ar.strength_cutoff else "not above"
+    return (
+        f"jackknife Anderson–Rubin {1 - ar.alpha:.0%} set {_set_text(ar.confidence_set)}; "
+        f"strength {_num(ar.strength)} ({strong} {_num(ar.strength_cutoff)})"
+    )
+
+
+def _rotemberg(result: Any) -> str:
+    rw = result.rotemberg
+    index = {s: i for i, s in enumerate(rw.sectors)}
+    top = ", ".join(f"{s} ({_num(rw.weights[index[s]])})" for s in rw.top[:3])
+    return f"largest Rotemberg weights: {top}; negative weights {rw.negative_weight_share:.0%} of the total"
+
+
+def _exposure_robust(result: Any) -> str:
+    r, s = result.robust, result.shock_level
+    akm = (
+        f"AKM [{_num(r.ci_akm[0], 4)}, {_num(r.ci_akm[1], 4)}], AKM0 {_set_text(r.akm0_set)}"
+        if r.applicable
+        else f"AKM not applicable ({r.reason})"
+    )
+    return (
+        f"conventional [{_num(r.ci_conventional[0], 4)}, {_num(r.ci_conventional[1], 4)}], {akm}; "
+        f"shock level {_num(s.effective_sectors)} effective sectors"
+    )
+
+
+def _variant_pleiotropy(result: Any) -> str:
+    parts = []
+    egger, median, het = result.egger, result.weighted_median, result.heterogeneity
+    parts.append(_na_text(egger) or f"Egger intercept {_num(egger.intercept)} (p {_num(egger.intercept_p)})")
+    parts.append(_na_text(median) or f"weighted median {_num(median.estimate, 4)}")
+    parts.append(_na_text(het) or f"Cochran's Q p {_num(het.q_p)}")
+    return "; ".join(parts)
+
+
+def _variant_strength(result: Any) -> str:
+    r = result.ratios
+    gx = result.egger
+    i2 = "" if _na_text(gx) else f"; I²_GX {_num(gx.i2_gx)}"
+    return f"mean F {_num(r.mean_f)} (smallest {_num(r.min_f)}) over {len(r.variants)} variants{i2}"
+
+
+def _variant_direction(result: Any) -> str:
+    d = result.directionality
+    return _na_text(d) or f"Steiger: {d.direction} (p {_num(d.p)})"
+
+
+def _robustness_value(result: Any) -> str:
+    if not getattr(result, "applicable", True):
+        return f"not applicable: {result.reason}"
+    iv = result.iv
+    bench = "; ".join(
+        f"{b.k:g}× {b.covariate}: {'excludes' if b.excludes_null else 'includes'} {result.null:g}"
+        for b in result.iv_benchmarks
+    )
+    return (
+        f"robustness value {_num(iv.rv)} (at alpha {_num(iv.rv_alpha)}) for the IV estimate "
+        f"{_num(result.iv_estimate, 4)}" + (f"; {bench}" if bench else "")
+    )
+
+
+def _write_derived(frame: pd.DataFrame, column: pd.Series, out: Path) -> str:
+    """Write the data with the derived column to a new file atomically; returns its SHA-256."""
+    import os
+    import tempfile
+
+    from ivdossier.estimation import file_sha256
+
+    if column.name in frame.columns:
+        raise InvalidInputError(
+            f"the data already has a column {column.name!r}; pass another --name for the derived column."
+        )
+    if out.suffix.lower() != ".csv":
+        raise InvalidInputError(f"the derived data file {str(out)!r} must end in .csv.")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=out.parent, suffix=".csv.part")
+    os.close(fd)
+    try:
+        frame.assign(**{str(column.name): column}).to_csv(tmp, index=False)
+        os.replace(tmp, out)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    return file_sha256(out)
+
+
+def _decision_makers(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.design_results import decision_maker_design
+
+    result, column = decision_maker_design(
+        frame,
+        outcome=o["outcome"],
+        treatment=o["treatment"],
+        decision_maker=o["decision_maker"],
+        absorb=o.get("absorb"),
+        controls=tuple(o.get("controls") or ()),
+        leave_out=o.get("leave_out", "case"),
+        cluster=o.get("leave_out_cluster"),
+        min_cases=o.get("min_cases", 20),
+        beta0=o.get("beta0", 0.0),
+        alpha=o.get("alpha", 0.05),
+        name=o.get("column_name"),
+    )
+    out = o.get("derived_out")
+    if not out:
+        return result, {}
+    path = Path(out)
+    if o.get("input_data") is not None and path.resolve() == Path(o["input_data"]).resolve():
+        raise InvalidInputError(
+            "--derived-out names the input data file; write the derived data to a new file."
+        )
+    digest = _write_derived(frame, column, path)
+    result = type(result)(**{**result.__dict__, "derived_file": str(path)})
+    derived = {"file": str(path), "sha256": digest, "column": column.name, "recipe": result.recipe.to_dict()}
+    return result, {"derived_data": derived}
+
+
+def _exposure_share(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation import load_table
+    from ivdossier.estimation.design_results import exposure_share_design
+
+    result = exposure_share_design(
+        frame,
+        load_table(o["shares"]),
+        load_table(o["shocks"]),
+        outcome=o["outcome"],
+        treatment=o["treatment"],
+        unit=o.get("unit", "unit"),
+        sector=o.get("sector", "sector"),
+        share=o.get("share", "share"),
+        shock=o.get("shock", "shock"),
+        controls=tuple(o.get("controls") or ()),
+        alpha=o.get("alpha", 0.05),
+        top=o.get("top", 5),
+    )
+    return result, {}
+
+
+def _variants(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.variant_summary import summary_evidence, variant_table
+
+    table = variant_table(frame, source=str(o.get("source", "")))
+    evidence = summary_evidence(
+        table, alpha=o.get("alpha", 0.05), draws=o.get("draws", 1000), seed=o.get("seed", 20260101)
+    )
+    return evidence, {}
+
+
+def _confounder(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.omitted_variable import IvRobustness, iv_robustness
+
+    s = _need(spec, "confounder-strength")
+    if s.outcome is None:
+        raise InvalidInputError("confounder-strength needs an outcome column; pass --outcome.")
+    result = iv_robustness(
+        frame,
+        outcome=s.outcome,
+        treatment=s.single_treatment(),
+        instrument=s.instruments,
+        controls=s.controls,
+        absorb=s.absorb,
+        weights=s.weights,
+        benchmarks=tuple(o.get("benchmarks") or ()),
+        k=tuple(o.get("k") or (1.0,)),
+        null=o.get("null", 0.0),
+        q=o.get("q", 1.0),
+        alpha=s.alpha,
+    )
+    if not isinstance(result, IvRobustness):
+        raise InvalidInputError(f"confounder-strength does not apply: {result.reason}.")
+    return result, {}
+
+
 _ESTIMATE_FINDINGS: dict[str, Callable[[Any], str]] = {
     "first-stage-strength": _strength,
     "weak-iv-robust-inference": _robust,
@@ -432,6 +639,46 @@ ANALYSES: dict[str, Analysis] = {
             {"complier-profile": _complier_share, "complier-density-sign": _complier_density},
         ),
         Analysis("power", "power", "power:PowerAnalysis", (), None, {"power-analysis": _power}),
+        Analysis(
+            "design decision-makers",
+            "design-decision-makers",
+            "design_results:DecisionMakerDesign",
+            (),
+            _decision_makers,
+            {
+                "leave-out-construction": _leave_out,
+                "many-instrument-estimates": _jackknife_estimates,
+                "jackknife-anderson-rubin": _jackknife_ar,
+            },
+        ),
+        Analysis(
+            "design exposure-share",
+            "design-exposure-share",
+            "design_results:ExposureShareDesign",
+            (),
+            _exposure_share,
+            {"rotemberg-weights": _rotemberg, "exposure-robust-inference": _exposure_robust},
+        ),
+        Analysis(
+            "variants",
+            "variants",
+            "variant_summary:SummaryEvidence",
+            (),
+            _variants,
+            {
+                "variant-pleiotropy": _variant_pleiotropy,
+                "variant-strength": _variant_strength,
+                "variant-directionality": _variant_direction,
+            },
+        ),
+        Analysis(
+            "confounder-strength",
+            "confounder-strength",
+            "omitted_variable:IvRobustness",
+            _SENSITIVITY,
+            _confounder,
+            {"confounder-robustness-value": _robustness_value},
+        ),
     )
 }
 

@@ -290,6 +290,7 @@ def _assemble(
     prior: bool,
 ) -> tuple[Any, ri.DossierInput]:
     """The graph and the dossier input (without the drawing) with its verdicts derived once."""
+    from ivdossier.reports.design_sections import KINDS as DESIGN_KINDS
     from ivdossier.workflows.verdicts import with_verdicts
 
     program = records.get_by_id(session, Program, inst.program_id)
@@ -322,6 +323,11 @@ def _assemble(
         runs=runs,
         graph=ri.GraphInfo(verdict=check),
         audit=audit,
+        evidence_runs=tuple(
+            _portable(run_info(session, r), relative_to, reproducible)
+            for r in all_runs
+            if r.run_kind in DESIGN_KINDS
+        ),
     )
     return G, with_verdicts(inp)
 
