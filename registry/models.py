@@ -9,7 +9,7 @@ from contextvars import ContextVar
 from datetime import UTC, datetime
 from typing import Any, ClassVar
 
-from sqlalchemy import JSON, Column, Index, UniqueConstraint
+from sqlalchemy import JSON, Column, Index, UniqueConstraint, false
 from sqlalchemy.orm import declared_attr
 from sqlmodel import Field, SQLModel
 
@@ -267,6 +267,9 @@ class Run(Entity, table=True):
     results: dict[str, Any] | None = _json()
     versions: dict[str, Any] | None = _json()
     seconds: float = Field(default=0.0)
+    # The run the team marked as the one its dossier headline and relevance verdict rest on (at most one per
+    # instrument; registry.runs.mark_primary keeps it so).
+    is_primary: bool = Field(default=False, sa_column_kwargs={"server_default": false()})
 
 
 class Plan(Entity, table=True):
