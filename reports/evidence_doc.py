@@ -101,7 +101,8 @@ def _sensitivity(runs: tuple[SensitivityInfo, ...]) -> str:
             rows = [
                 [
                     "Smallest direct effect at which the interval reaches " + fmt(s.target),
-                    f"{fmt(s.breakdown)} (outcome units per unit of {instruments})",
+                    f"size {fmt(s.breakdown)} (outcome units per unit of {instruments}), "
+                    f"reached at a direct effect of {_vec(s.breakdown_direct_effect)}",
                 ],
                 ["As a share of the reduced form", fmt(s.breakdown_share_of_reduced_form, 3)],
                 [

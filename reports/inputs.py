@@ -228,6 +228,7 @@ class SensitivityInfo:
     prior_sd: tuple[float, ...] = ()
     target: float | None = None
     breakdown: float | None = None
+    breakdown_direct_effect: tuple[float, ...] = ()
     breakdown_share_of_reduced_form: float | None = None
     covered_without_direct_effect: bool | None = None
     svg: str = ""
@@ -237,7 +238,14 @@ class SensitivityInfo:
             raise InvalidInputError(
                 f"sensitivity run {self.slug!r} has method {self.method!r}; use union, local-to-zero or breakdown."
             )
-        for name in ("instruments", "direct_effect_min", "direct_effect_max", "prior_mean", "prior_sd"):
+        for name in (
+            "instruments",
+            "direct_effect_min",
+            "direct_effect_max",
+            "prior_mean",
+            "prior_sd",
+            "breakdown_direct_effect",
+        ):
             object.__setattr__(self, name, _as_tuple(getattr(self, name)))
 
     @property

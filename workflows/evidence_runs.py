@@ -101,6 +101,7 @@ def sensitivity_info(run: Run) -> ri.SensitivityInfo:
         ci=_pair(res.get("ci")),
         target=_num(res.get("target")),
         breakdown=_num(res.get("magnitude")),
+        breakdown_direct_effect=_nums(res.get("gamma")),
         breakdown_share_of_reduced_form=_num(res.get("relative_to_reduced_form")),
         covered_without_direct_effect=bool(res.get("covered_without_direct_effect")),
         **common,
