@@ -218,3 +218,37 @@ def test_a_schema_0002_registry_gets_the_primary_flag_unset_and_can_mark_a_run(t
             assert records.get(s, Run, "fibre-estimate-1").is_primary is True
     finally:
         registry.dispose()
+
+
+def test_the_registry_itself_refuses_a_second_primary_run_for_one_instrument(tmp_path: Path) -> None:
+    """Two writers that each mark a different run leave at most one primary: the partial unique index."""
+    from sqlmodel import select, update
+
+    from ivdossier.errors import ConflictError
+    from ivdossier.registry import instruments as reg
+    from ivdossier.registry.db import open_registry
+    from ivdossier.registry.models import Run
+    from ivdossier.registry.runs import mark_primary, record_run
+
+    registry = open_registry(str(tmp_path / "r.sqlite"))
+    try:
+        with registry.writing() as s:
+            reg.add_program(s, actor="ana", slug="p", title="P")
+            reg.add_instrument(s, actor="ana", program="p", slug="zz", name="Z")
+            for _ in range(2):
+                record_run(s, actor="ana", instrument="zz", run_kind="estimate", spec={}, results={}, versions={},
+                           seconds=0.0)  # fmt: skip
+            mark_primary(s, actor="ana", run="zz-estimate-1")
+        bypass = update(Run).where(Run.slug == "zz-estimate-2").values(is_primary=True)  # type: ignore[arg-type]
+        # a write that bypasses mark_primary, as a racing writer would; nothing of it is kept
+        with (
+            pytest.raises(ConflictError, match=r"UNIQUE constraint failed: run\.instrument_id"),
+            registry.writing() as s,
+        ):
+            s.exec(bypass)  # type: ignore[call-overload]
+        with registry.writing() as s:  # through mark_primary the switch works (unmark first, then mark)
+            mark_primary(s, actor="ana", run="zz-estimate-2")
+        with registry.reading() as s:
+            assert [r.slug for r in s.exec(select(Run).where(Run.is_primary == True))] == ["zz-estimate-2"]  # noqa: E712
+    finally:
+        registry.dispose()
