@@ -2,13 +2,25 @@
 
 from __future__ import annotations
 
-from pathlib import Path
-from typing import Annotated
-
 import typer
 
 from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, writing
+from ivdossier.cli.model_options import (
+    Absorb,
+    Alpha,
+    Attach,
+    Cluster,
+    Controls,
+    Data,
+    Method,
+    OptionalInstruments,
+    Outcome,
+    Treatments,
+    Vcov,
+    Weights,
+    model_spec,
+)
 from ivdossier.cli.output import print_json
 
 
@@ -16,48 +28,37 @@ def register(app: typer.Typer) -> None:
     app.command("estimate", rich_help_panel=panels.EVIDENCE)(estimate)
 
 
-DataOpt = Annotated[Path, typer.Option("--data", help="CSV, Parquet or Stata .dta file.")]
-
-
 def estimate(
-    data: DataOpt,
-    outcome: Annotated[str, typer.Option(help="Outcome column Y.")],
-    treatment: Annotated[list[str], typer.Option(help="Endogenous treatment column(s) X.")],
-    instrument: Annotated[
-        list[str] | None, typer.Option(help="Excluded instrument column(s) Z (repeat for several).")
-    ] = None,
-    control: Annotated[
-        list[str] | None, typer.Option(help="Exogenous control column(s) (repeatable).")
-    ] = None,
-    absorb: Annotated[list[str] | None, typer.Option(help="Fixed effect(s) to absorb (repeatable).")] = None,
-    cluster: Annotated[
-        list[str] | None, typer.Option(help="Cluster column (one, or two for two-way).")
-    ] = None,
-    weights: Annotated[str | None, typer.Option(help="Column of non-negative analytic weights.")] = None,
-    method: Annotated[str, typer.Option(help="ols, 2sls, liml or fuller.")] = "2sls",
-    vcov: Annotated[str, typer.Option(help="unadjusted, robust or cluster.")] = "robust",
-    alpha: Annotated[float, typer.Option(help="1 - confidence level of every interval.")] = 0.05,
-    attach: Annotated[
-        str | None, typer.Option(help="Store the run in the registry, attached to this instrument.")
-    ] = None,
+    data: Data,
+    outcome: Outcome,
+    treatment: Treatments,
+    instrument: OptionalInstruments = None,
+    control: Controls = None,
+    absorb: Absorb = None,
+    cluster: Cluster = None,
+    weights: Weights = None,
+    method: Method = "2sls",
+    vcov: Vcov = "robust",
+    alpha: Alpha = 0.05,
+    attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
     """Estimate the effect with the full weak-instrument diagnostic suite."""
     from ivdossier.workflows.runs import estimate_file
 
-    outcome_run = estimate_file(
-        data,
+    spec = model_spec(
         outcome=outcome,
         treatment=treatment,
-        instruments=instrument or [],
-        controls=control or [],
-        absorb=absorb or [],
-        cluster=cluster or None,
+        instrument=instrument,
+        control=control,
+        absorb=absorb,
+        cluster=cluster,
         weights=weights,
         method=method,
         vcov=vcov,
         alpha=alpha,
     )
+    outcome_run = estimate_file(data, spec)
     slug = None
     if attach:
         from ivdossier.workflows.runs import store_run

@@ -1,4 +1,8 @@
-"""Evidence beyond the first stage: `sensitivity`, `falsify`, `compliers` and `power`, each with --json/--attach."""
+"""Evidence beyond the first stage: `sensitivity`, `falsify`, `compliers` and `power`, each with --json/--attach.
+
+Each command builds the model spec from the shared options (cli/model_options.py), runs one entry of the table
+of analyses (workflows/analyses.py) and prints the findings that entry gives for its catalogue checks.
+"""
 
 from __future__ import annotations
 
@@ -9,8 +13,23 @@ import typer
 
 from ivdossier.cli import panels
 from ivdossier.cli.common import JsonFlag, actor, writing
-from ivdossier.cli.output import print_json, print_record, print_table
-from ivdossier.errors import InvalidInputError
+from ivdossier.cli.model_options import (
+    Absorb,
+    Alpha,
+    Attach,
+    Cluster,
+    Controls,
+    Data,
+    Instruments,
+    Outcome,
+    PlotOut,
+    Treatment,
+    Vcov,
+    Weights,
+    model_spec,
+    split_names,
+)
+from ivdossier.cli.output import print_json
 
 sensitivity_app = typer.Typer(
     help="How large a direct effect of the instrument on the outcome would change the conclusion.",
@@ -26,37 +45,20 @@ def register(app: typer.Typer) -> None:
     app.command("power", rich_help_panel=panels.EVIDENCE)(power)
 
 
-Data = Annotated[Path, typer.Option("--data", help="CSV, Parquet or Stata .dta file.")]
-Outcome = Annotated[str, typer.Option(help="Outcome column Y.")]
-Treatment = Annotated[str, typer.Option(help="Treatment column X.")]
-Instruments = Annotated[list[str], typer.Option("--instrument", help="Instrument column(s) Z (repeatable).")]
-Controls = Annotated[list[str] | None, typer.Option("--control", help="Control column(s) (repeatable).")]
-Absorb = Annotated[list[str] | None, typer.Option("--absorb", help="Fixed effect(s) to absorb (repeatable).")]
-Cluster = Annotated[list[str] | None, typer.Option("--cluster", help="Cluster column(s), one or two.")]
-Weights = Annotated[str | None, typer.Option(help="Column of analytic weights.")]
-Vcov = Annotated[str, typer.Option(help="unadjusted, robust or cluster.")]
-Alpha = Annotated[float, typer.Option(help="1 - confidence level.")]
-Attach = Annotated[str | None, typer.Option(help="Store the result as a run of this instrument.")]
-PlotOut = Annotated[Path | None, typer.Option("--plot", help="Also write the plot to this .svg file.")]
+def _run(name: str, data: Any, spec: Any, **options: Any) -> Any:
+    from ivdossier.workflows.analyses import run_analysis
+
+    return run_analysis(name, data, spec, **options)
 
 
-def _spec(controls: Any, absorb: Any, cluster: Any, weights: Any, vcov: str, alpha: float) -> dict[str, Any]:
-    return {
-        "controls": list(controls or []),
-        "absorb": list(absorb or []),
-        "cluster": list(cluster or []) or None,
-        "weights": weights,
-        "vcov": vcov,
-        "alpha": alpha,
-    }
-
-
-def _finish(run: Any, *, attach: str | None, json_out: bool, checks: tuple[str, ...]) -> None:
-    """Store the run if asked, then print JSON or the one-line findings for the checks it speaks to."""
+def _finish(run: Any, name: str, *, attach: str | None, json_out: bool) -> None:
+    """Store the run if asked, then print JSON or the one-line findings of the analysis's catalogue checks."""
     from ivdossier.jsonsafe import json_safe
-    from ivdossier.workflows.findings import finding
+    from ivdossier.workflows.analyses import analysis
+    from ivdossier.workflows.findings import finding_of
     from ivdossier.workflows.runs import store_run
 
+    entry = analysis(name)
     slug = None
     if attach:
         with writing() as session:
@@ -65,10 +67,14 @@ def _finish(run: Any, *, attach: str | None, json_out: bool, checks: tuple[str, 
     if json_out:
         print_json({**data, "run": slug} if slug else data)
         return
-    for check in checks:
-        typer.echo(f"{check}: {finding(check, data)}")
-    caution = data.get("caution") or data.get("note")
-    if caution:
+    summary = str(run.result)
+    typer.echo(summary)
+    typer.echo("")
+    typer.echo("Findings for the catalogue's checks:")
+    for check in entry.checks:
+        typer.echo(f"  {check}: {finding_of(check, run.result, entry.run_kind)}")
+    caution = getattr(run.result, "caution", None) or getattr(run.result, "note", None)
+    if caution and caution not in summary:
         typer.echo(f"note: {caution}")
     if slug:
         typer.echo(f"stored as run {slug} on instrument {attach}")
@@ -100,30 +106,16 @@ def sensitivity_range(
     json_out: JsonFlag = False,
 ) -> None:
     """Union of 2SLS intervals over a range of direct effects (Conley, Hansen and Rossi 2012)."""
-    from ivdossier.estimation.sensitivity import plot_sensitivity_svg, union_of_intervals
-    from ivdossier.workflows.runs import analyse_file
+    from ivdossier.estimation.sensitivity import plot_sensitivity_svg
 
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "gamma_min": gamma_min,
-        "gamma_max": gamma_max,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-
-    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        kw = {k: v for k, v in spec.items() if k not in ("gamma_min", "gamma_max")}
-        return union_of_intervals(frame, gamma_min=_one(gamma_min), gamma_max=_one(gamma_max), **kw), {}
-
-    run = analyse_file("sensitivity", data, compute, spec)
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("sensitivity range", data, spec, gamma_min=gamma_min, gamma_max=gamma_max)
     if plot is not None:
         plot.write_text(plot_sensitivity_svg(run.result), encoding="utf-8")
-    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
-
-
-def _one(values: list[float]) -> float | list[float]:
-    return values[0] if len(values) == 1 else values
+    _finish(run, "sensitivity range", attach=attach, json_out=json_out)
 
 
 @sensitivity_app.command("prior")
@@ -146,29 +138,12 @@ def sensitivity_prior(
     json_out: JsonFlag = False,
 ) -> None:
     """Local-to-zero interval with a normal prior on the direct effect (independent across instruments)."""
-    from ivdossier.estimation.sensitivity import local_to_zero
-    from ivdossier.workflows.runs import analyse_file
-
-    if len(prior_mean) != len(instrument) or len(prior_sd) != len(instrument):
-        raise InvalidInputError(
-            "give one --prior-mean and one --prior-sd per --instrument, in the same order."
-        )
-    omega = [[(sd**2 if i == j else 0.0) for j, sd in enumerate(prior_sd)] for i in range(len(prior_sd))]
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "prior_mean": prior_mean,
-        "prior_sd": prior_sd,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-
-    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        kw = {k: v for k, v in spec.items() if k not in ("prior_mean", "prior_sd")}
-        return local_to_zero(frame, mu=prior_mean, omega=omega, **kw), {}
-
-    run = analyse_file("sensitivity", data, compute, spec)
-    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("sensitivity prior", data, spec, prior_mean=prior_mean, prior_sd=prior_sd)
+    _finish(run, "sensitivity prior", attach=attach, json_out=json_out)
 
 
 @sensitivity_app.command("breakdown")
@@ -190,18 +165,12 @@ def sensitivity_breakdown(
     json_out: JsonFlag = False,
 ) -> None:
     """The smallest direct effect at which the interval first reaches the target effect."""
-    from ivdossier.estimation.sensitivity import breakdown_value
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "target": target,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file("sensitivity", data, lambda frame: (breakdown_value(frame, **spec), {}), spec)
-    _finish(run, attach=attach, json_out=json_out, checks=("exclusion-sensitivity",))
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("sensitivity breakdown", data, spec, target=target)
+    _finish(run, "sensitivity breakdown", attach=attach, json_out=json_out)
 
 
 # ---------------------------------------------------------------- falsification
@@ -222,17 +191,12 @@ def falsify_balance(
     json_out: JsonFlag = False,
 ) -> None:
     """Balance of the instrument on predetermined covariates: per covariate and jointly."""
-    from ivdossier.estimation.falsification import balance
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "instruments": list(instrument),
-        "covariates": list(covariate),
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file("falsify-balance", data, lambda frame: (balance(frame, **spec), {}), spec)
-    _table_of_targets(run, json_out)
-    _finish(run, attach=attach, json_out=json_out, checks=("covariate-balance",))
+    spec = model_spec(
+        instrument=instrument, control=control, absorb=absorb, cluster=cluster, weights=weights, vcov=vcov,
+        alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify balance", data, spec, covariates=list(covariate))
+    _finish(run, "falsify balance", attach=attach, json_out=json_out)
 
 
 @falsify_app.command("placebo")
@@ -250,35 +214,12 @@ def falsify_placebo(
     json_out: JsonFlag = False,
 ) -> None:
     """Reduced form of placebo outcomes on the instrument(s); each should be null."""
-    from ivdossier.estimation.falsification import placebo_outcomes
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "instruments": list(instrument),
-        "outcomes": list(placebo_outcome),
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file("falsify-placebo", data, lambda frame: (placebo_outcomes(frame, **spec), {}), spec)
-    _table_of_targets(run, json_out)
-    _finish(run, attach=attach, json_out=json_out, checks=("placebo-outcome",))
-
-
-def _table_of_targets(run: Any, json_out: bool) -> None:
-    if json_out:
-        return
-    rows = [
-        {
-            "target": r.target,
-            "instrument": c.instrument,
-            "coef": f"{c.coef:.4g}",
-            "se": f"{c.se:.4g}",
-            "p": f"{c.p_value:.3g}",
-            "std_diff": "" if c.std_diff != c.std_diff else f"{c.std_diff:.3f}",
-        }
-        for r in run.result.rows
-        for c in r.coefficients
-    ]
-    print_table(rows, ["target", "instrument", "coef", "se", "p", "std_diff"])
+    spec = model_spec(
+        instrument=instrument, control=control, absorb=absorb, cluster=cluster, weights=weights, vcov=vcov,
+        alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify placebo", data, spec, outcomes=list(placebo_outcome))
+    _finish(run, "falsify placebo", attach=attach, json_out=json_out)
 
 
 @falsify_app.command("zero-first-stage")
@@ -299,21 +240,12 @@ def falsify_zero_first_stage(
     json_out: JsonFlag = False,
 ) -> None:
     """Reduced form where the instrument cannot move the treatment; an effect there points to another path."""
-    from ivdossier.estimation.falsification import zero_first_stage
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "query": where,
-        "subsample": subsample,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file(
-        "falsify-zero-first-stage", data, lambda frame: (zero_first_stage(frame, **spec), {}), spec
-    )
-    _finish(run, attach=attach, json_out=json_out, checks=("zero-first-stage-reduced-form",))
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify zero-first-stage", data, spec, query=where, subsample=subsample)
+    _finish(run, "falsify zero-first-stage", attach=attach, json_out=json_out)
 
 
 @falsify_app.command("per-instrument")
@@ -332,19 +264,12 @@ def falsify_per_instrument(
     json_out: JsonFlag = False,
 ) -> None:
     """Each instrument's own just-identified estimate beside the estimate using all of them."""
-    from ivdossier.estimation.falsification import per_instrument
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "outcome": outcome,
-        "treatment": treatment,
-        "instruments": list(instrument),
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file(
-        "falsify-per-instrument", data, lambda frame: (per_instrument(frame, **spec), {}), spec
-    )
-    _finish(run, attach=attach, json_out=json_out, checks=("per-instrument-estimates", "over-identification"))
+    spec = model_spec(
+        outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
+        cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify per-instrument", data, spec)
+    _finish(run, "falsify per-instrument", attach=attach, json_out=json_out)
 
 
 @falsify_app.command("first-stage-signs")
@@ -364,51 +289,15 @@ def falsify_first_stage_signs(
     json_out: JsonFlag = False,
 ) -> None:
     """First stage within subgroups; a significantly reversed sign somewhere is evidence of defiers."""
-    from ivdossier.estimation.subgroups import subgroup_first_stages
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "treatment": treatment,
-        "instruments": list(instrument),
-        "by": by,
-        "bins": bins,
-        **_spec(control, absorb, cluster, weights, vcov, alpha),
-    }
-    run = analyse_file(
-        "falsify-first-stage-signs", data, lambda frame: (subgroup_first_stages(frame, **spec), {}), spec
-    )
-    if not json_out:
-        rows = [
-            {
-                "group": g.group,
-                "n": g.n,
-                "instrument": c.instrument,
-                "coef": f"{c.coef:.4g}",
-                "se": f"{c.se:.4g}",
-                "p": f"{c.p_value:.3g}",
-                "reversed": "yes" if c.instrument in g.opposite else "",
-            }
-            for g in run.result.groups
-            for c in g.regression.coefficients
-        ]
-        print_table(rows, ["group", "n", "instrument", "coef", "se", "p", "reversed"])
-    _finish(run, attach=attach, json_out=json_out, checks=("subgroup-first-stage-signs",))
+    spec = model_spec(
+        treatment=treatment, instrument=instrument, control=control, absorb=absorb, cluster=cluster,
+        weights=weights, vcov=vcov, alpha=alpha,
+    )  # fmt: skip
+    run = _run("falsify first-stage-signs", data, spec, by=by, bins=bins)
+    _finish(run, "falsify first-stage-signs", attach=attach, json_out=json_out)
 
 
 # ---------------------------------------------------------------- compliers and power
-
-
-class _ComplierReport:
-    """Shares, and where asked, complier means and the implied-density check, as one result."""
-
-    def __init__(self, shares: Any, means: Any, implications: Any) -> None:
-        self.shares, self.means, self.implications = shares, means, implications
-
-    def to_dict(self) -> dict[str, Any]:
-        out = dict(self.shares.to_dict())
-        out["means"] = self.means.to_dict() if self.means is not None else None
-        out["implications"] = self.implications.to_dict() if self.implications is not None else None
-        return out
 
 
 def compliers(
@@ -424,47 +313,11 @@ def compliers(
     json_out: JsonFlag = False,
 ) -> None:
     """Complier, always-taker and never-taker shares; complier profile; implied complier densities."""
-    from ivdossier.estimation.compliers import check_testable_implications, complier_means, complier_shares
-    from ivdossier.workflows.runs import analyse_file
-
-    spec = {
-        "treatment": treatment,
-        "instrument": instrument,
-        "covariates": list(covariate or []),
-        "outcome": outcome,
-        "bins": bins,
-        "cluster": cluster,
-        "seed": seed,
-    }
-
-    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        shares = complier_shares(
-            frame, treatment=treatment, instrument=instrument, cluster=cluster, seed=seed
-        )
-        means = (
-            complier_means(
-                frame,
-                treatment=treatment,
-                instrument=instrument,
-                covariates=covariate,
-                cluster=cluster,
-                seed=seed,
-            )
-            if covariate
-            else None
-        )
-        impl = (
-            check_testable_implications(
-                frame, outcome=outcome, treatment=treatment, instrument=instrument, bins=bins, seed=seed
-            )
-            if outcome
-            else None
-        )
-        return _ComplierReport(shares, means, impl), {}
-
-    run = analyse_file("compliers", data, compute, spec)
-    checks = ("complier-profile",) + (("complier-density-sign",) if outcome else ())
-    _finish(run, attach=attach, json_out=json_out, checks=checks)
+    run = _run(
+        "compliers", data, None, treatment=treatment, instrument=instrument, covariates=list(covariate or []),
+        outcome=outcome, bins=bins, cluster=cluster, seed=seed,
+    )  # fmt: skip
+    _finish(run, "compliers", attach=attach, json_out=json_out)
 
 
 def power(
@@ -479,7 +332,25 @@ def power(
     residual_sd: Annotated[
         float | None, typer.Option(help="Standard deviation of the structural error.")
     ] = None,
-    treatment_sd: Annotated[float, typer.Option(help="Standard deviation of the treatment.")] = 1.0,
+    treatment_sd: Annotated[
+        float | None,
+        typer.Option(
+            help="Standard deviation of the treatment (or give --data and --treatment to derive it)."
+        ),
+    ] = None,
+    data: Annotated[
+        Path | None, typer.Option(help="Pilot or earlier data to derive the treatment's SD from.")
+    ] = None,
+    treatment: Annotated[str | None, typer.Option(help="Treatment column of --data.")] = None,
+    control: Controls = None,
+    error_correlation: Annotated[
+        float | None,
+        typer.Option(
+            help="Correlation of the structural and first-stage errors: also simulate 2SLS and Anderson–Rubin power."
+        ),
+    ] = None,
+    reps: Annotated[int, typer.Option(help="Replications of the simulation.")] = 2000,
+    seed: Annotated[int, typer.Option(help="Seed of the simulation.")] = 0,
     instruments: Annotated[int, typer.Option(help="Number of instruments.")] = 1,
     cluster_size: Annotated[float, typer.Option(help="Average cluster size (1 = no clustering).")] = 1.0,
     icc: Annotated[float, typer.Option(help="Intra-cluster correlation of the outcome.")] = 0.0,
@@ -493,7 +364,7 @@ def power(
     from ivdossier.estimation.power import iv_design, power_analysis
     from ivdossier.workflows.runs import FileRun
 
-    spec = {
+    spec: dict[str, Any] = {
         "n": n,
         "partial_r2": partial_r2,
         "first_stage_f": first_stage_f,
@@ -505,27 +376,43 @@ def power(
         "icc": icc,
         "alpha": alpha,
     }
-    analysis = power_analysis(iv_design(**spec), effect=effect, target_power=target_power)
+    frame = None
+    sha = ""
+    if data is not None:
+        from ivdossier.estimation.data import file_sha256, load_table
+
+        frame = load_table(data)
+        sha = file_sha256(data)
+        spec["data"] = {"path": str(data), "sha256": sha, "treatment": treatment}
+    controls = split_names(control)
+    design = iv_design(
+        **{k: v for k, v in spec.items() if k != "data"}, data=frame, treatment=treatment, controls=controls
+    )
+    analysis = power_analysis(
+        design,
+        effect=effect,
+        target_power=target_power,
+        error_correlation=error_correlation,
+        reps=reps,
+        seed=seed,
+    )
     run = FileRun(
         kind="power",
         result=analysis,
-        path="",
-        sha256="",
-        rows=0,
-        columns=(),
+        path=str(data or ""),
+        sha256=sha,
+        rows=0 if frame is None else len(frame),
+        columns=() if frame is None else tuple(str(c) for c in frame.columns),
         seconds=0.0,
-        spec={**spec, "effect": effect, "target_power": target_power},
+        spec={
+            **spec,
+            "treatment_sd": design.treatment_sd,
+            "controls": controls,
+            "effect": effect,
+            "target_power": target_power,
+            "error_correlation": error_correlation,
+            "reps": reps,
+            "seed": seed,
+        },
     )
-    if not json_out:
-        d = analysis.to_dict()
-        fs = d.get("first_stage") or {}
-        print_record(
-            [
-                ("standard error of 2SLS", f"{d['se']:.4g}"),
-                ("power at the effect", "—" if d.get("power") is None else f"{d['power']:.3f}"),
-                (f"minimum detectable effect ({target_power:.0%} power)", f"{d['mde']:.4g}"),
-                ("observations needed", d.get("n_required") or "—"),
-                ("expected first-stage F", f"{fs.get('expected_f', float('nan')):.3g}"),
-            ]
-        )
-    _finish(run, attach=attach, json_out=json_out, checks=())
+    _finish(run, "power", attach=attach, json_out=json_out)

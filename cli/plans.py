@@ -11,7 +11,6 @@ import typer
 from ivdossier.cli import panels
 from ivdossier.cli.common import IfVersion, JsonFlag, actor, read_text_option, reading, writing
 from ivdossier.cli.output import print_json, print_table
-from ivdossier.cli.studies import write_output
 
 plan_app = typer.Typer(
     help="Pre-analysis plans: draft from the registry, fix decision rules, freeze, verify and compare runs.",
@@ -123,7 +122,7 @@ def draft(
         view = plans.plan_dict(s, plan)
         sealed = plans.sealed_document(s, plan)
     if out is not None:
-        write_output(out, _render(out.suffix.lower(), sealed, "draft", ""))
+        write_replacing(out, _render(out.suffix.lower(), sealed, "draft", ""))
     print_json(view) if json_out else typer.echo(f"plan {view['slug']} drafted for {target}")
 
 
@@ -160,6 +159,25 @@ def list_(json_out: JsonFlag = False) -> None:
     print_table(
         rows, ["slug", "program", "instrument", "state", "frozen_at", "sha256", "title"], widths={"title": 40}
     )
+
+
+@plan_app.command("quantities")
+def quantities_cmd(json_out: JsonFlag = False) -> None:
+    """List the quantities a decision rule may name (paths into an estimation run's results)."""
+    from ivdossier.workflows.plan_quantities import INSTRUMENT, TREATMENT, quantities
+
+    rows = [q.to_dict() for q in quantities()]
+    if json_out:
+        print_json(rows)
+        return
+    typer.echo(
+        f"Quantities of an estimation run a decision rule may name ({len(rows)}). Write {TREATMENT} and "
+        f"{INSTRUMENT} as the plan's column names (coef.video_share); an item of a list by its position from 0 "
+        "(weak_iv_robust.anderson_rubin.confidence_set.0.1 is the upper end of the first interval)."
+    )
+    for row in rows:
+        row["may_be_empty"] = "yes" if row["may_be_empty"] else "no"
+    print_table(rows, ["path", "kind", "may_be_empty"])
 
 
 @plan_app.command("show")
@@ -233,16 +251,167 @@ def _json_file(path: Path, what: str) -> Any:
         ) from None
 
 
+def write_replacing(path: Path, text: str) -> None:
+    """Write a document or export atomically ('-' is standard output): a temporary file in the same folder, flushed
+    and then renamed over `path`, so a reader never sees half a file. A link at `path` is replaced, not followed."""
+    import os
+    import tempfile
+
+    from ivdossier.errors import InvalidInputError
+
+    if str(path) == "-":
+        typer.echo(text, nl=False)
+        return
+    folder = path.parent if str(path.parent) else Path(".")
+    if path.is_dir():
+        raise InvalidInputError(f"{str(path)!r} is a folder; give a file name.")
+    tmp = None
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=folder)
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(text.encode("utf-8"))
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except OSError as exc:
+        raise InvalidInputError(
+            f"cannot write {str(path)!r}: {exc.strerror}; check that the folder exists."
+        ) from None
+    finally:
+        if tmp is not None and os.path.lexists(tmp):
+            os.unlink(tmp)
+
+
+def _receipt_path(plan: str, receipt: Path | None) -> Path:
+    return receipt if receipt is not None else Path(f"{plan}.seal.json")
+
+
+def write_new_file(path: Path, text: str) -> bool:
+    """Create `path` holding `text`, atomically and never over another file or through a link.
+
+    The text goes to a fresh temporary file in the same folder, is flushed to disk and then hard-linked into place
+    (which fails if the name exists). Returns False when the file already holds exactly `text`."""
+    import os
+    import tempfile
+
+    from ivdossier.errors import InvalidInputError
+
+    data = text.encode("utf-8")
+    folder = path.parent if str(path.parent) else Path(".")
+    if path.is_symlink() or (path.exists() and not path.is_file()):
+        raise InvalidInputError(f"{str(path)!r} is a link or not a regular file; choose another file name.")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=folder)
+    except OSError as exc:
+        raise InvalidInputError(
+            f"cannot write in {str(folder)!r}: {exc.strerror}; check that it exists."
+        ) from None
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(data)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.chmod(tmp, 0o644)
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            if not path.is_symlink() and path.is_file() and path.read_bytes() == data:
+                return False
+            raise InvalidInputError(
+                f"{str(path)!r} already exists and holds something else; it is never overwritten. "
+                "Choose another file name."
+            ) from None
+        except OSError:  # a file system without hard links: replace, after the same existence check
+            if os.path.lexists(path):
+                raise InvalidInputError(f"{str(path)!r} already exists; choose another file name.") from None
+            os.replace(tmp, path)
+    except OSError as exc:
+        raise InvalidInputError(f"cannot write {str(path)!r}: {exc.strerror}; check the folder.") from None
+    finally:
+        if os.path.lexists(tmp):
+            os.unlink(tmp)
+    return True
+
+
 @plan_app.command("freeze")
-def freeze(plan: str) -> None:
-    """Seal a plan: canonical form, SHA-256, time and author are stored and the plan becomes read-only."""
+def freeze(
+    plan: str,
+    receipt: Annotated[
+        Path | None,
+        typer.Option(
+            help="Where to write the seal receipt (default PLAN.seal.json here); never overwritten."
+        ),
+    ] = None,
+) -> None:
+    """Seal a plan: canonical form, SHA-256, time and author are stored, the plan becomes read-only, and a seal
+    receipt is written for the team to keep outside the registry (commit it or deposit it elsewhere)."""
+    import os
+
+    from ivdossier.errors import InvalidInputError
     from ivdossier.registry import plans
     from ivdossier.workflows.plans import freeze_plan
 
-    with writing() as s:
-        row = freeze_plan(s, actor=actor(), slug=plan)
-        stamp, who, sha = plans.iso(row.frozen_at), row.frozen_by, row.sha256  # type: ignore[arg-type]
-    typer.echo(f"plan {plan} frozen at {stamp} by {who}\nsha256 {sha}")
+    target = _receipt_path(plan, receipt)
+    if os.path.lexists(target):
+        raise InvalidInputError(
+            f"the receipt file {str(target)!r} already exists and is never overwritten; nothing was frozen. "
+            "Pass --receipt with a new file name."
+        )
+    written = False
+    try:
+        with writing() as s:
+            row = freeze_plan(s, actor=actor(), slug=plan)
+            stamp, who, sha = plans.iso(row.frozen_at), row.frozen_by, row.sha256  # type: ignore[arg-type]
+            written = write_new_file(target, plans.receipt_text(plans.seal_receipt(s, row)))
+    except BaseException:
+        if written:  # the seal was not committed: its receipt must not survive
+            os.unlink(target)
+        raise
+    typer.echo(f"plan {plan} frozen at {stamp} by {who}\nsha256 {sha}\nseal receipt written to {target}")
+
+
+@plan_app.command("receipt")
+def receipt_cmd(
+    plan: str,
+    receipt: Annotated[
+        Path | None, typer.Option(help="Where to write it (default PLAN.seal.json here); never overwritten.")
+    ] = None,
+) -> None:
+    """Write the seal receipt of a plan frozen earlier (it says when it was written); refused unless the plan
+    verifies."""
+    from ivdossier.errors import ConflictError
+    from ivdossier.registry import plans, records
+    from ivdossier.registry.models import Plan
+    from ivdossier.workflows.plan_check import verify_plan
+
+    target = _receipt_path(plan, receipt)
+    with reading() as s:
+        report = verify_plan(s, plan)
+        if not report.intact:
+            raise ConflictError(
+                f"plan {plan!r} failed verification ({report.headline}); no receipt is written for it. "
+                f"See `ivdossier plan verify {plan}`."
+            )
+        text = plans.receipt_text(plans.seal_receipt(s, records.get(s, Plan, plan)))
+    if _same_seal(target, text):
+        typer.echo(f"{target} already holds a receipt of this seal; left as it is")
+    elif write_new_file(target, text):
+        typer.echo(f"seal receipt of plan {plan} written to {target}")
+    else:
+        typer.echo(f"{target} already holds this receipt")
+
+
+def _same_seal(path: Path, text: str) -> bool:
+    """Whether `path` is a regular file holding a receipt of the same seal (whenever it was written)."""
+    if path.is_symlink() or not path.is_file():
+        return False
+    try:
+        old, new = json.loads(path.read_text(encoding="utf-8")), json.loads(text)
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+        return False
+    keys = ("format", "plan_uuid", "sha256", "canonical")
+    return isinstance(old, dict) and all(old.get(k) == new.get(k) for k in keys)
 
 
 @plan_app.command("export")
@@ -263,8 +432,32 @@ def export(
             if row.state != "frozen":
                 plans.export_document(s, plan)  # raises the draft error
             text = _render(suffix, plans.sealed_document(s, row), row.state, row.sha256)
-    write_output(out, text)
+    write_replacing(out, text)
     typer.echo(f"wrote {out}")
+
+
+def _rounded(value: Any) -> Any:
+    """Floats to six significant digits for reading, inside lists and objects too (--json keeps every digit)."""
+    if isinstance(value, float):
+        return float(f"{value:.6g}")
+    if isinstance(value, list):
+        return [_rounded(v) for v in value]
+    if isinstance(value, dict):
+        return {k: _rounded(v) for k, v in value.items()}
+    return value
+
+
+def show_value(value: Any) -> str:
+    """A value for the terminal: yes/no for booleans, lists and objects in full as JSON, '–' for nothing."""
+    if value is None:
+        return "–"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, list | dict):
+        return json.dumps(_rounded(value), ensure_ascii=False, sort_keys=True)
+    if isinstance(value, float):
+        return f"{value:.6g}"
+    return str(value)
 
 
 @plan_app.command("verify")
@@ -273,36 +466,50 @@ def verify(
     file: Annotated[
         Path | None, typer.Option(help="Also check an exported copy (.json, .md or .html).")
     ] = None,
+    receipt: Annotated[
+        Path | None, typer.Option(help="Also check the seal receipt written by `plan freeze`.")
+    ] = None,
     json_out: JsonFlag = False,
 ) -> None:
-    """Check a frozen plan (and an exported copy) against its seal; exit 1 and list each difference if changed."""
+    """Check a frozen plan against its seal event (and a copy or receipt); exit 1 with the reason if it fails."""
+    from ivdossier.cli.studies import _read_file
     from ivdossier.registry import plans, records
     from ivdossier.registry.models import Plan
     from ivdossier.reports.plan_doc import verify_document
-    from ivdossier.workflows.plan_check import VerifyReport, verify_plan
+    from ivdossier.workflows.plan_check import RECEIPT_STATES, VerifyReport, verify_plan
 
     text = suffix = None
     if file is not None:
-        from ivdossier.cli.studies import _read_file
-
         suffix = _suffix(file, DOC_SUFFIXES, "--file")
         text = _read_file(file, "exported plan")
+    receipt_text = _read_file(receipt, "seal receipt") if receipt is not None else None
     with reading() as s:
-        report = verify_plan(s, plan, exported=text if suffix == ".json" else None)
+        report = verify_plan(s, plan, exported=text if suffix == ".json" else None, receipt=receipt_text)
         if text is not None and suffix in (".md", ".html"):
             row = records.get(s, Plan, plan)
             seal = plans.recorded_seal(s, row) or plans.sealed_document(s, row)
             extra = verify_document(text, seal, sha256=row.sha256, fmt=suffix[1:])
             report = VerifyReport(report.plan, report.sha256, report.intact and not extra,
-                                        report.differences + tuple(extra), report.notes)  # fmt: skip
+                                  report.differences + tuple(extra), report.notes, report.problems,
+                                  report.receipt)  # fmt: skip
     if json_out:
         print_json(report.to_dict())
     elif report.intact:
-        typer.echo(f"plan {plan} is intact (sha256 {report.sha256})" + (f"; {file} matches" if file else ""))
+        typer.echo(
+            f"plan {plan} is intact (sha256 {report.sha256})"
+            + (f"; {file} matches" if file else "")
+            + (f"; {RECEIPT_STATES['agree']} ({receipt})" if receipt else "")
+        )
     else:
-        typer.echo(f"plan {plan} has CHANGED since it was frozen ({len(report.differences)} difference(s)):")
-        print_table([d.to_dict() for d in report.differences], ["where", "path", "frozen", "found"],
-                    widths={"frozen": 50, "found": 50})  # fmt: skip
+        typer.echo(f"plan {plan} FAILED verification: {report.headline}")
+        if report.differences:
+            rows = [{**d.to_dict(), "frozen": show_value(d.frozen), "found": show_value(d.found)}
+                    for d in report.differences]  # fmt: skip
+            print_table(rows, ["where", "path", "frozen", "found"])
+        for problem in report.problems[1:]:
+            typer.echo(f"also: {problem}")
+        if report.receipt is not None and report.problems:
+            typer.echo(f"receipt: {RECEIPT_STATES[report.receipt]}")
         for note in report.notes:
             typer.echo(f"note: {note}")
     if not report.intact:
@@ -328,13 +535,34 @@ def compare(
     typer.echo(
         f"plan {plan} ({result.state}): {result.n_deviations} deviation(s) in {len(result.runs)} run(s)"
     )
-    devs = [d.to_dict() for r in result.runs for d in r.deviations]
+    devs = [
+        {**d.to_dict(), "planned": show_value(d.planned), "actual": show_value(d.actual)}
+        for r in result.runs
+        for d in r.deviations
+    ]
     if devs:
-        print_table(devs, ["run", "kind", "field", "planned", "actual"], widths={"planned": 40, "actual": 40})
-    rules = [{"run": r.run, **o.to_dict()} for r in result.runs for o in r.rules]
+        print_table(devs, ["run", "kind", "field", "planned", "actual"])
+    rules = [
+        {"run": r.run, "rule": o.rule_id, "holds": _holds(o.holds), "basis": _basis(o), "action": o.action}
+        for r in result.runs
+        for o in r.rules
+    ]
     if rules:
         typer.echo("")
-        print_table(rules, ["run", "rule", "holds", "action"], widths={"action": 70})
+        print_table(rules, ["run", "rule", "holds", "basis", "action"])
     for r in result.runs:
         for note in r.notes:
             typer.echo(f"note: {note}")
+
+
+def _holds(holds: bool | None) -> str:
+    return "not evaluable" if holds is None else show_value(holds)
+
+
+def _basis(outcome: Any) -> str:
+    """The compared values of a rule, e.g. 'strength.effective_f.statistic = 45.1 >= 23.109'."""
+    parts = []
+    for c in outcome.comparisons:
+        right = show_value(c.threshold) + (f" ({c.threshold_from})" if c.threshold_from else "")
+        parts.append(f"{c.statistic} = {show_value(c.value)} {c.op} {right}")
+    return "; ".join(parts)

@@ -9,5 +9,6 @@ from ivdossier.estimation.api import estimate
 from ivdossier.estimation.covariance import CovSpec
 from ivdossier.estimation.data import file_sha256, load_table
 from ivdossier.estimation.result import EstimationResult
+from ivdossier.estimation.spec import ModelSpec
 
-__all__ = ["CovSpec", "EstimationResult", "estimate", "file_sha256", "load_table"]
+__all__ = ["CovSpec", "EstimationResult", "ModelSpec", "estimate", "file_sha256", "load_table"]

@@ -16,10 +16,13 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
-from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
-from ivdossier.estimation.data import PreparedData, as_names, prepare
-from ivdossier.estimation.estimators import METHODS, KClassFit, fit_kclass
+from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
+from ivdossier.estimation.data import PreparedData, prepare
+from ivdossier.estimation.diagnostics import DiagnosticSuite, weak_iv_suite
+from ivdossier.estimation.estimators import KClassFit, fit_kclass
 from ivdossier.estimation.result import EstimationResult
+from ivdossier.estimation.spec import ModelSpec, check_options
+from ivdossier.vocabulary import NotApplicable
 
 Array = NDArray[np.float64]
 
@@ -60,25 +63,6 @@ def conventions(vcov: str, small_sample: bool) -> dict[str, str]:
     return out
 
 
-def _check_options(
-    method: str, vcov: str, cluster: tuple[str, ...], alpha: float, fuller_alpha: float
-) -> None:
-    if method not in METHODS:
-        raise InvalidInputError(f"Unknown method {method!r}; choose one of {', '.join(METHODS)}.")
-    if vcov not in COV_KINDS:
-        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
-    if vcov == "cluster" and not cluster:
-        raise InvalidInputError("vcov='cluster' needs cluster= (one or two column names); pass cluster=.")
-    if cluster and vcov != "cluster":
-        raise InvalidInputError(
-            f"cluster= was given with vcov={vcov!r}; use vcov='cluster' to cluster, or drop cluster=."
-        )
-    if not 0.0 < alpha < 1.0:
-        raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
-    if not fuller_alpha >= 0.0:
-        raise InvalidInputError(f"fuller_alpha must be non-negative, got {fuller_alpha!r}.")
-
-
 def estimate(
     data: pd.DataFrame,
     *,
@@ -99,29 +83,51 @@ def estimate(
 
     ``method`` is one of "ols", "2sls", "liml", "fuller"; ``vcov`` one of "unadjusted", "robust", "cluster"
     (the last needs ``cluster``, one or two column names). Conventions are listed in ``result.conventions``.
+    The keywords build one :class:`~ivdossier.estimation.spec.ModelSpec`, validated as on every other path.
     """
-    clus = as_names(cluster, "cluster")
-    _check_options(method, vcov, clus, alpha, fuller_alpha)
-    inst = as_names(instruments, "instruments")
-    if method == "ols" and inst:
-        raise InvalidInputError(
-            "method='ols' takes no instruments; drop instruments= or choose '2sls', 'liml' or 'fuller'."
-        )
-    if method != "ols" and not inst:
-        raise InvalidInputError(f"method={method!r} needs instruments=; name at least one instrument column.")
-    prepared = prepare(
-        data,
+    spec = ModelSpec.build(
         outcome=outcome,
         treatment=treatment,
-        instruments=inst,
+        instruments=instruments,
         controls=controls,
         absorb=absorb,
-        cluster=clus,
+        cluster=cluster,
         weights=weights,
-        require_instruments=method != "ols",
+        method=method,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+        fuller_alpha=fuller_alpha,
     )
+    return estimate_spec(data, spec)
+
+
+def prepare_spec(data: pd.DataFrame, spec: ModelSpec) -> PreparedData:
+    """Check the spec's columns in the data and partial out its controls and fixed effects."""
+    if spec.outcome is None:
+        raise InvalidInputError("an estimate needs outcome=; name the outcome column.")
+    return prepare(
+        data,
+        outcome=spec.outcome,
+        treatment=spec.treatment,
+        instruments=spec.instruments,
+        controls=spec.controls,
+        absorb=spec.absorb,
+        cluster=spec.cluster,
+        weights=spec.weights,
+        require_instruments=spec.method != "ols",
+    )
+
+
+def estimate_spec(data: pd.DataFrame, spec: ModelSpec) -> EstimationResult:
+    """Estimate a validated model spec on a data frame, with every diagnostic that applies."""
     return estimate_prepared(
-        prepared, method=method, vcov=vcov, small_sample=small_sample, alpha=alpha, fuller_alpha=fuller_alpha
+        prepare_spec(data, spec),
+        method=spec.method,
+        vcov=spec.vcov,
+        small_sample=spec.small_sample,
+        alpha=spec.alpha,
+        fuller_alpha=spec.fuller_alpha,
     )
 
 
@@ -145,7 +151,7 @@ def estimate_prepared(
     diagnostics: bool = True,
 ) -> EstimationResult:
     """Estimate from validated, partialled data; ``diagnostics=False`` skips the weak-instrument suite."""
-    _check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
+    check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
     spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
     fit = fit_kclass(
         prepared.y,
@@ -162,11 +168,8 @@ def estimate_prepared(
     n_clusters = spec.n_clusters()
     q, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, n_clusters, alpha)
     ci = np.column_stack([fit.beta - q * se, fit.beta + q * se])
-    suite = None
-    not_applicable = OLS_REASON if method == "ols" else None
+    suite: DiagnosticSuite | NotApplicable | None = NotApplicable(OLS_REASON) if method == "ols" else None
     if diagnostics and method != "ols":
-        from ivdossier.estimation.diagnostics import weak_iv_suite
-
         try:
             suite = weak_iv_suite(
                 prepared.y,
@@ -184,7 +187,7 @@ def estimate_prepared(
             )
         except EstimationError as exc:
             # e.g. no more clusters than instruments: the coefficients stand, the diagnostics cannot be had
-            not_applicable = f"instrument diagnostics not computed: {exc}"
+            suite = NotApplicable(f"instrument diagnostics not computed: {exc}")
     echo = {
         "outcome": prepared.outcome,
         "treatment": list(prepared.treatment),
@@ -225,7 +228,6 @@ def estimate_prepared(
         spec=echo,
         conventions=conventions(vcov, small_sample),
         diagnostics=suite,
-        not_applicable=not_applicable,
     )
 
 

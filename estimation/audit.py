@@ -480,8 +480,76 @@ def strength_check(rep: ReportedStats) -> StrengthCheck:
 
 
 @dataclass(frozen=True)
+class ProcedureVerdict:
+    """One procedure's answer at one level: significant, not significant, or not applicable (with why)."""
+
+    procedure: str  # "1.96 (as reported)", "tF", "Anderson–Rubin"
+    level: float
+    significant: bool | None
+    basis: str
+
+    @property
+    def text(self) -> str:
+        """Plain words, e.g. "not significant under tF"."""
+        if self.significant is None:
+            return f"{self.procedure} not applicable ({self.basis})"
+        word = "significant" if self.significant else "not significant"
+        joiner = "with" if self.procedure.startswith("1.96") else "under"
+        return f"{word} {joiner} {self.procedure}"
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict."""
+        return {
+            "procedure": self.procedure,
+            "level": self.level,
+            "significant": self.significant,
+            "basis": self.basis,
+            "text": self.text,
+        }
+
+
+def _procedures(rep: ReportedStats, tf: TFCheck, ar: ARCheck) -> tuple[ProcedureVerdict, ...]:
+    """Every procedure's own verdict at 5 % and 1 %, in a fixed order (conventional, tF, Anderson–Rubin)."""
+    out: list[ProcedureVerdict] = []
+    if rep.estimate is None or rep.std_error is None:
+        return ()
+    t = abs(rep.estimate / rep.std_error)
+    z_01 = float(stats.norm.ppf(0.995))
+    out.append(ProcedureVerdict("1.96 (as reported)", 0.05, t > Z_05, f"|t| = {t:.3g} against 1.96"))
+    if tf.applicable:
+        out.append(
+            ProcedureVerdict(
+                "tF", 0.05, tf.significant_5pct, f"|t| = {t:.3g} against c(F) = {tf.critical_value:.4g}"
+            )
+        )
+    else:
+        out.append(ProcedureVerdict("tF", 0.05, None, tf.reason or "not applicable"))
+    if ar.applicable:
+        out.append(ProcedureVerdict("Anderson–Rubin", 0.05, ar.excludes_zero_95, "95 % set against zero"))
+    else:
+        out.append(ProcedureVerdict("Anderson–Rubin", 0.05, None, ar.reason or "not applicable"))
+    out.append(ProcedureVerdict("2.58 (as reported)", 0.01, t > z_01, f"|t| = {t:.3g} against 2.58"))
+    if tf.applicable and tf.significant_5pct is False:
+        out.append(
+            ProcedureVerdict("tF", 0.01, False, "not significant at 5 % under tF, so not at 1 % either")
+        )
+    else:
+        out.append(ProcedureVerdict("tF", 0.01, None, "1 % tF critical values are not carried"))
+    if ar.applicable:
+        out.append(ProcedureVerdict("Anderson–Rubin", 0.01, ar.excludes_zero_99, "99 % set against zero"))
+    else:
+        out.append(ProcedureVerdict("Anderson–Rubin", 0.01, None, ar.reason or "not applicable"))
+    return tuple(out)
+
+
+@dataclass(frozen=True)
 class StudyAudit:
-    """Everything the audit concludes about one study from what it reported."""
+    """Everything the audit concludes about one study from what it reported.
+
+    ``verdict_5pct``/``verdict_1pct`` combine the weak-instrument-robust procedures: "survives" or "lost" when
+    every applicable one agrees, "procedures disagree" when they do not (each procedure's own verdict is in
+    ``procedures``).
+    """
 
     key: str
     citation: str
@@ -492,6 +560,7 @@ class StudyAudit:
     verdict_5pct: str
     verdict_1pct: str
     flags: tuple[str, ...]
+    procedures: tuple[ProcedureVerdict, ...] = ()
 
     @property
     def survives_5pct(self) -> bool:
@@ -501,6 +570,12 @@ class StudyAudit:
     def survives_1pct(self) -> bool:
         return self.verdict_1pct == "survives"
 
+    def procedure_text(self, level: float) -> str:
+        """Each procedure's verdict at ``level`` in words, applicable ones only, e.g.
+        "significant with 1.96 (as reported); not significant under tF; significant under Anderson–Rubin"."""
+        parts = [p.text for p in self.procedures if p.level == level and p.significant is not None]
+        return "; ".join(parts) if parts else "no procedure applies"
+
     def to_dict(self) -> dict[str, Any]:
         """JSON-safe dict."""
         return {
@@ -509,14 +584,59 @@ class StudyAudit:
             "reported": self.reported.to_dict(),
             "verdict_5pct": self.verdict_5pct,
             "verdict_1pct": self.verdict_1pct,
+            "procedures_5pct": self.procedure_text(0.05),
+            "procedures_1pct": self.procedure_text(0.01),
+            "procedures": [p.to_dict() for p in self.procedures],
             "tf": self.tf.to_dict(),
             "anderson_rubin": self.ar.to_dict(),
             "strength": self.strength.to_dict(),
             "flags": list(self.flags),
         }
 
+    def __str__(self) -> str:
+        rep = self.reported
+        head = f"{self.citation or self.key} ({self.key})"
+        lines = [head]
+        if rep.estimate is not None and rep.std_error is not None:
+            lines.append(f"  reported estimate {rep.estimate:.4g} (SE {rep.std_error:.4g})")
+        if rep.first_stage_f is not None:
+            lines.append(f"  first-stage F {rep.first_stage_f:.4g} ({rep.f_kind})")
+        if self.tf.applicable and self.tf.interval is not None:
+            lo, hi = self.tf.interval
+            lines.append(f"  tF 95 % interval [{lo:.4g}, {hi:.4g}] (c = {self.tf.critical_value:.4g})")
+        if self.ar.applicable:
+            lines.append(
+                f"  Anderson–Rubin 95 % set {_set_words(self.ar.set_95)}; 99 % set {_set_words(self.ar.set_99)} "
+                f"({self.ar.cov_source} covariance)"
+            )
+        lines.append(f"  5 %: {self.verdict_5pct} — {self.procedure_text(0.05)}")
+        lines.append(f"  1 %: {self.verdict_1pct} — {self.procedure_text(0.01)}")
+        lines += [f"  note: {f}" for f in self.flags]
+        lines.append("  Statistics cannot establish exclusion or exogeneity; a result that survives may still rest on "
+                     "an invalid instrument.")  # fmt: skip
+        return "\n".join(lines)
 
-VERDICTS = ("survives", "lost", "not significant as reported", "cannot be re-examined")
+
+def _set_words(intervals: Sequence[Interval] | None) -> str:
+    if intervals is None:
+        return "—"
+    if not intervals:
+        return "empty"
+    return " ∪ ".join(f"[{lo:.4g}, {hi:.4g}]" for lo, hi in intervals)
+
+
+VERDICTS = ("survives", "lost", "procedures disagree", "not significant as reported", "cannot be re-examined")
+
+
+def _combine(answers: Sequence[bool | None]) -> str:
+    known = [a for a in answers if a is not None]
+    if not known:
+        return "cannot be re-examined"
+    if all(known):
+        return "survives"
+    if not any(known):
+        return "lost"
+    return "procedures disagree"
 
 
 def _verdicts(rep: ReportedStats, tf: TFCheck, ar: ARCheck) -> tuple[str, str]:
@@ -524,22 +644,14 @@ def _verdicts(rep: ReportedStats, tf: TFCheck, ar: ARCheck) -> tuple[str, str]:
         return "cannot be re-examined", "cannot be re-examined"
     t = abs(rep.estimate / rep.std_error)
     conv_5, conv_1 = t > Z_05, t > float(stats.norm.ppf(0.995))
-    if not conv_5:
-        v5 = "not significant as reported"
-    elif tf.applicable:
-        v5 = "survives" if tf.significant_5pct else "lost"
-    elif ar.applicable:
-        v5 = "survives" if ar.excludes_zero_95 else "lost"
-    else:
-        v5 = "cannot be re-examined"
-    if not conv_1:
-        v1 = "not significant as reported"
-    elif ar.applicable:
-        v1 = "survives" if ar.excludes_zero_99 else "lost"
-    elif tf.applicable and tf.first_stage_f is not None and not tf.significant_5pct:
-        v1 = "lost"  # not significant at 5 % under tF, so not at 1 % either
-    else:
-        v1 = "cannot be re-examined"
+    robust_5 = [
+        tf.significant_5pct if tf.applicable else None,
+        ar.excludes_zero_95 if ar.applicable else None,
+    ]
+    v5 = _combine(robust_5) if conv_5 else "not significant as reported"
+    tf_1 = False if tf.applicable and tf.significant_5pct is False else None
+    robust_1 = [tf_1, ar.excludes_zero_99 if ar.applicable else None]
+    v1 = _combine(robust_1) if conv_1 else "not significant as reported"
     return v5, v1
 
 
@@ -567,7 +679,13 @@ def audit_study(key: str, reported: ReportedStats | Mapping[str, Any], *, citati
             "1 % level not re-examined: the 1 % tF critical values are not carried and no reduced form and first "
             "stage were reported for an Anderson–Rubin set"
         )
-    return StudyAudit(key, citation, rep, tf, ar, strength, v5, v1, tuple(flags))
+    if "procedures disagree" in (v5, v1):
+        flags.append(
+            "the weak-instrument-robust procedures disagree: tF and Anderson–Rubin answer different questions "
+            "(tF corrects the t-test; Anderson–Rubin inverts a test valid however weak the instrument), so "
+            "report both"
+        )
+    return StudyAudit(key, citation, rep, tf, ar, strength, v5, v1, tuple(flags), _procedures(rep, tf, ar))
 
 
 @dataclass(frozen=True)

@@ -19,18 +19,36 @@ import pandas as pd
 from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.jsonsafe import json_safe
+from ivdossier.estimation.rows import RowAccount
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "ComplierMeans",
+    "ComplierReport",
     "ComplierShares",
     "CovariateProfile",
     "ImplicationCheck",
     "IntervalViolation",
     "check_testable_implications",
     "complier_means",
+    "complier_report",
     "complier_shares",
 ]
+
+CAUTION = (
+    "Complier shares and profiles are identified only under independence and monotonicity; statistics cannot "
+    "establish exclusion or exogeneity, and conclusions for policy or clinical decisions need domain review."
+)
+
+
+def _all_rows(n: int) -> RowAccount:
+    """Complier analyses refuse missing values (naming the column), so every row of the data is used."""
+    return RowAccount(n_data=n, n_used=n)
+
+
+def _pct(value: float) -> str:
+    return "—" if value != value else f"{100 * value:.1f} %"
+
 
 FloatArray = np.ndarray[Any, np.dtype[np.float64]]
 
@@ -122,7 +140,7 @@ def _bootstrap_counts(
 
 
 @dataclass(frozen=True)
-class ComplierShares:
+class ComplierShares(Record):
     """Shares of compliers, always-takers and never-takers with standard errors and (1 - alpha) intervals.
 
     ``se_method`` is "delta" (two independent binomial samples, Z=1 and Z=0; no clustering) or
@@ -144,6 +162,7 @@ class ComplierShares:
     n_boot: int | None
     seed: int | None
     monotonicity_note: str
+    row_account: RowAccount | None = None
 
     def interval(self, name: str) -> tuple[float, float]:
         """Normal (1 - alpha) interval for one share: "complier", "always_taker" or "never_taker"."""
@@ -177,8 +196,33 @@ class ComplierShares:
                 "n_boot": self.n_boot,
                 "seed": self.seed,
                 "monotonicity_note": self.monotonicity_note,
+                "row_account": self.row_account,
             }
         )
+
+    def __str__(self) -> str:
+        level = f"{100 * (1 - self.alpha):g} %"
+        lines = [
+            f"Compliance types (binary instrument and treatment); SEs: {self.se_method}"
+            + (f" ({self.n_boot} draws, seed {self.seed})" if self.n_boot else ""),
+            str(self.row_account)
+            if self.row_account is not None
+            else f"rows: used {self.n_z1 + self.n_z0:,}",
+            f"treated share with the instrument on: {_pct(self.p_treated_given_z1)} of {self.n_z1:,}; "
+            f"off: {_pct(self.p_treated_given_z0)} of {self.n_z0:,}",
+        ]
+        for name, label in (
+            ("complier", "compliers"),
+            ("always_taker", "always-takers"),
+            ("never_taker", "never-takers"),
+        ):
+            lo, hi = self.interval(name)
+            lines.append(
+                f"  {label}: {_pct(getattr(self, name))} (SE {100 * getattr(self, f'{name}_se'):.1f} points; "
+                f"{level} interval {_pct(lo)} to {_pct(hi)})"
+            )
+        lines.append(self.monotonicity_note)
+        return "\n".join(lines)
 
 
 def _shares(d: FloatArray, z: FloatArray) -> tuple[float, float, float, float, int, int]:
@@ -237,6 +281,7 @@ def complier_shares(
             n_boot=None,
             seed=None,
             monotonicity_note=note,
+            row_account=_all_rows(len(frame)),
         )
     _check_n_boot(n_boot)
     rng = np.random.default_rng(seed)
@@ -266,6 +311,7 @@ def complier_shares(
         n_boot=n_boot,
         seed=seed,
         monotonicity_note=note,
+        row_account=_all_rows(len(frame)),
     )
 
 
@@ -285,7 +331,7 @@ def _check_n_boot(n_boot: int) -> None:
 
 
 @dataclass(frozen=True)
-class CovariateProfile:
+class CovariateProfile(Record):
     """Means of one covariate in the whole sample and by compliance type, with bootstrap SEs."""
 
     covariate: str
@@ -311,7 +357,7 @@ class CovariateProfile:
 
 
 @dataclass(frozen=True)
-class ComplierMeans:
+class ComplierMeans(Record):
     """Kappa-weighted complier means of covariates (Abadie 2003).
 
     kappa = 1 - D(1-Z)/(1-pi(X)) - (1-D)Z/pi(X), with pi(X) = P(Z=1 | X): the sample share of Z=1 when
@@ -329,10 +375,40 @@ class ComplierMeans:
     se_method: str
     n_boot: int
     seed: int
+    row_account: RowAccount | None = None
+
+    def __str__(self) -> str:
+        head = ["covariate", "all", "compliers (SE)", "always-takers", "never-takers", "compliers / all"]
+        body = [
+            [
+                p.covariate,
+                f"{p.overall_mean:.4g}",
+                f"{p.complier_mean:.4g} ({p.complier_mean_se:.3g})",
+                f"{p.always_taker_mean:.4g}",
+                f"{p.never_taker_mean:.4g}",
+                f"{p.complier_to_overall_ratio:.3g}",
+            ]
+            for p in self.profiles
+        ]
+        widths = [max(len(r[j]) for r in [head, *body]) for j in range(len(head))]
+        table = [
+            "  " + "  ".join(v.ljust(w) for v, w in zip(r, widths, strict=True)).rstrip()
+            for r in [head, *body]
+        ]
+        return "\n".join(
+            [
+                f"Complier profile: kappa-weighted means (propensity: {self.propensity}; SEs: {self.se_method}, "
+                f"seed {self.seed})",
+                str(self.row_account) if self.row_account is not None else f"rows: used {self.n:,}",
+                f"complier share implied by the kappa weights: {_pct(self.complier_share_kappa)}",
+                *table,
+            ]
+        )
 
     def to_dict(self) -> dict[str, Any]:
         return json_safe(
             {
+                "row_account": self.row_account,
                 "profiles": [p.to_dict() for p in self.profiles],
                 "complier_share_kappa": self.complier_share_kappa,
                 "propensity": self.propensity,
@@ -464,6 +540,7 @@ def complier_means(
         se_method=f"{method} ({int(ok.sum())} usable of {n_boot} draws)",
         n_boot=n_boot,
         seed=seed,
+        row_account=_all_rows(len(frame)),
     )
 
 
@@ -473,7 +550,7 @@ def complier_means(
 
 
 @dataclass(frozen=True)
-class IntervalViolation:
+class IntervalViolation(Record):
     """Implied complier density of the outcome over an interval of bins, for treated or untreated
     compliers."""
 
@@ -496,7 +573,7 @@ class IntervalViolation:
 
 
 @dataclass(frozen=True)
-class ImplicationCheck:
+class ImplicationCheck(Record):
     """Check of the testable implications of independence and monotonicity on a discretised outcome.
 
     Under both assumptions, for every set B: P(Y in B, D=1 | Z=1) - P(Y in B, D=1 | Z=0) >= 0 and
@@ -517,6 +594,23 @@ class ImplicationCheck:
     n_boot: int
     seed: int
     procedure: str
+    row_account: RowAccount | None = None
+
+    def __str__(self) -> str:
+        w = self.most_negative
+        where = f"outcome in [{w.lower:.4g}, {w.upper:.4g})"
+        return "\n".join(
+            [
+                "Implied complier densities of the outcome (negative mass would contradict independence or "
+                "monotonicity)",
+                str(self.row_account) if self.row_account is not None else "rows: all",
+                f"most negative: {w.density:.4g} (SE {w.se:.3g}) for {w.arm} compliers, {where}; "
+                f"{self.n_intervals} intervals checked",
+                f"largest standardised violation {self.statistic:.3g}, p = {self.p_value:.3g} "
+                f"({self.n_boot} bootstrap draws, seed {self.seed}; conservative)",
+                self.procedure,
+            ]
+        )
 
     @property
     def violated(self) -> bool:
@@ -534,6 +628,7 @@ class ImplicationCheck:
                 "n_boot": self.n_boot,
                 "seed": self.seed,
                 "procedure": self.procedure,
+                "row_account": self.row_account,
             }
         )
 
@@ -653,4 +748,78 @@ def check_testable_implications(
             "statistic = largest standardised negative implied complier density, p-value from a "
             "bootstrap within Z groups recentred at the least favourable null (conservative)"
         ),
+        row_account=_all_rows(len(frame)),
     )
+
+
+# ----------------------------------------------------------------------------------------------------
+# everything at once, for one command
+# ----------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ComplierReport(Record):
+    """Shares, and where asked, the complier profile and the implied-density check, as one result."""
+
+    shares: ComplierShares
+    means: ComplierMeans | None = None
+    implications: ImplicationCheck | None = None
+    caution: str = CAUTION
+
+    def to_dict(self) -> dict[str, Any]:
+        out = dict(self.shares.to_dict())
+        out["means"] = None if self.means is None else self.means.to_dict()
+        out["implications"] = None if self.implications is None else self.implications.to_dict()
+        out["caution"] = self.caution
+        return out
+
+    def __str__(self) -> str:
+        parts = [str(self.shares)]
+        parts.append(
+            str(self.means) if self.means is not None else "Complier profile: not asked (no covariates)"
+        )
+        parts.append(
+            str(self.implications)
+            if self.implications is not None
+            else "Implied complier densities: not asked (no outcome)"
+        )
+        parts.append(self.caution)
+        return "\n\n".join(parts)
+
+
+def complier_report(
+    data: pd.DataFrame | Mapping[str, Any],
+    *,
+    treatment: str,
+    instrument: str,
+    covariates: Sequence[str] = (),
+    outcome: str | None = None,
+    bins: int | Sequence[float] = 5,
+    cluster: str | None = None,
+    alpha: float = 0.05,
+    seed: int = 0,
+) -> ComplierReport:
+    """Shares always; the kappa-weighted profile when ``covariates`` are named; the density check with ``outcome``."""
+    shares = complier_shares(
+        data, treatment=treatment, instrument=instrument, cluster=cluster, alpha=alpha, seed=seed
+    )
+    means = (
+        complier_means(
+            data,
+            treatment=treatment,
+            instrument=instrument,
+            covariates=covariates,
+            cluster=cluster,
+            seed=seed,
+        )
+        if covariates
+        else None
+    )
+    check = (
+        check_testable_implications(
+            data, outcome=outcome, treatment=treatment, instrument=instrument, bins=bins, seed=seed
+        )
+        if outcome
+        else None
+    )
+    return ComplierReport(shares=shares, means=means, implications=check)

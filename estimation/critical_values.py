@@ -23,6 +23,7 @@ import numpy as np
 from scipy import stats
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.jsonsafe import Record
 
 DATA_DIR = Path(__file__).resolve().parent / "data"
 STOCK_YOGO_SOURCE = "Stock and Yogo (2005), Testing for Weak Instruments in Linear IV Regression"
@@ -79,7 +80,7 @@ def tf_grid() -> tuple[tuple[float, float], ...]:
 
 
 @dataclass(frozen=True)
-class StockYogoValue:
+class StockYogoValue(Record):
     """One Stock–Yogo cell; ``critical_value`` is None, with ``reason``, when the cell is not carried."""
 
     table: str

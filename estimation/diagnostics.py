@@ -32,6 +32,7 @@ from ivdossier.estimation.strength import (
     first_stage,
     strength_section,
 )
+from ivdossier.jsonsafe import Record
 
 CAUTION = (
     "These statistics assess instrument strength and internal coherence only; they cannot establish "
@@ -40,7 +41,7 @@ CAUTION = (
 
 
 @dataclass(frozen=True)
-class DiagnosticSuite:
+class DiagnosticSuite(Record):
     """Every weak-instrument diagnostic for one fitted model, section by section."""
 
     first_stage: FirstStageSection

@@ -33,10 +33,12 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import estimate_prepared
-from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, sandwich
+from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
-from ivdossier.jsonsafe import json_safe
+from ivdossier.estimation.rows import RowAccount, count_rows
+from ivdossier.estimation.spec import check_options
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "InstrumentCoefficient",
@@ -66,7 +68,7 @@ CAUTION = (
 
 
 @dataclass(frozen=True)
-class InstrumentCoefficient:
+class InstrumentCoefficient(Record):
     """Coefficient of one instrument in one target regression."""
 
     instrument: str
@@ -84,7 +86,7 @@ class InstrumentCoefficient:
 
 
 @dataclass(frozen=True)
-class TargetRegression:
+class TargetRegression(Record):
     """One target (covariate, placebo outcome, treatment or outcome) regressed on the instruments.
 
     ``wald``/``wald_df``/``wald_p_value`` test all instrument coefficients of this target jointly (chi-square,
@@ -106,7 +108,7 @@ class TargetRegression:
 
 
 @dataclass(frozen=True)
-class JointTest:
+class JointTest(Record):
     """Stacked (seemingly unrelated) Wald test that every instrument coefficient of every target is zero."""
 
     statistic: float
@@ -119,7 +121,7 @@ class JointTest:
 
 
 @dataclass(frozen=True)
-class InstrumentRegressions:
+class InstrumentRegressions(Record):
     """Balance table or placebo-outcome table: per-target regressions and the joint test."""
 
     kind: str  # "balance" or "placebo_outcomes"
@@ -134,9 +136,11 @@ class InstrumentRegressions:
     alpha: float
     reference: str
     caution: str
+    row_account: RowAccount | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {
+            "row_account": None if self.row_account is None else self.row_account.to_dict(),
             "kind": self.kind,
             "instruments": list(self.instruments),
             "rows": [r.to_dict() for r in self.rows],
@@ -150,6 +154,70 @@ class InstrumentRegressions:
             "reference": self.reference,
             "caution": self.caution,
         }
+
+    def __str__(self) -> str:
+        title = (
+            "Balance of the instrument(s) on predetermined covariates"
+            if self.kind == "balance"
+            else ("Placebo outcomes regressed on the instrument(s) (each should be null)")
+        )
+        lines = [title, _rows_line(self.row_account, self.n, self.n_dropped)]
+        lines.append(_adjustment(self.controls, self.absorb, self.vcov, self.reference))
+        lines += _coefficient_table(self.rows, self.alpha, std_diff=self.kind == "balance")
+        lines.append(
+            f"joint test: chi-square {self.joint.statistic:.4g} on {self.joint.df} df, p = {self.joint.p_value:.3g} "
+            f"({self.joint.description})"
+        )
+        lines.append(self.caution)
+        return "\n".join(lines)
+
+
+def _rows_line(account: RowAccount | None, n: int, n_dropped: int) -> str:
+    if account is not None:
+        return str(account)
+    return f"rows: used {n:,}" + (f"; {n_dropped:,} incomplete rows left out" if n_dropped else "")
+
+
+def _adjustment(controls: Sequence[str], absorb: Sequence[str], vcov: str, reference: str) -> str:
+    parts = [f"controls: {', '.join(controls) or 'none'}"]
+    if absorb:
+        parts.append(f"absorbed: {', '.join(absorb)}")
+    parts.append(f"covariance: {vcov}; {reference}")
+    return "; ".join(parts)
+
+
+def _fmt(value: float) -> str:
+    if value != value:
+        return "—"
+    if math.isinf(value):
+        return "inf" if value > 0 else "-inf"
+    return f"{value:.4g}"
+
+
+def _coefficient_table(rows: Sequence[TargetRegression], alpha: float, *, std_diff: bool) -> list[str]:
+    level = f"{100 * (1 - alpha):g} % interval"
+    head = ["target", "instrument", "coef", "SE", level, "p"] + (["std. diff."] if std_diff else [])
+    body = []
+    for r in rows:
+        for c in r.coefficients:
+            cells = [
+                r.target,
+                c.instrument,
+                _fmt(c.coef),
+                _fmt(c.se),
+                f"[{_fmt(c.ci_lower)}, {_fmt(c.ci_upper)}]",
+                f"{c.p_value:.3g}",
+            ]
+            if std_diff:
+                cells.append(_fmt(c.std_diff))
+            body.append(cells)
+    return _aligned(head, body)
+
+
+def _aligned(head: Sequence[str], body: Sequence[Sequence[str]]) -> list[str]:
+    widths = [max(len(str(row[j])) for row in [head, *body]) for j in range(len(head))]
+    fmt = lambda row: "  ".join(str(v).ljust(w) for v, w in zip(row, widths, strict=True)).rstrip()  # noqa: E731
+    return ["  " + fmt(head), *("  " + fmt(row) for row in body)]
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -169,20 +237,13 @@ class _Stacked:
     n_dropped: int
     frame: pd.DataFrame  # the estimation rows (raw values)
     prepared: PreparedData  # of the first target (instruments, n_partialled, clusters)
+    columns: tuple[str, ...] = ()  # every column the regressions use
 
 
 def _check_common(vcov: str, alpha: float, cluster: str | Sequence[str] | None) -> tuple[str, ...]:
-    if vcov not in COV_KINDS:
-        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
+    """The shared option checks of every model spec (estimation/spec.py), for the falsification functions."""
     clus = as_names(cluster, "cluster")
-    if vcov == "cluster" and not clus:
-        raise InvalidInputError("vcov='cluster' needs cluster= (one or two column names); pass cluster=.")
-    if clus and vcov != "cluster":
-        raise InvalidInputError(
-            f"cluster= was given with vcov={vcov!r}; use vcov='cluster' or drop cluster=."
-        )
-    if not 0.0 < alpha < 1.0:
-        raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
+    check_options("2sls", vcov, clus, alpha, 1.0)
     return clus
 
 
@@ -281,6 +342,7 @@ def _stacked(
         n_dropped=n_dropped,
         frame=frame,
         prepared=first,
+        columns=tuple(dict.fromkeys(used)),
     )
 
 
@@ -374,7 +436,9 @@ def _reference_text(st: _Stacked) -> str:
     )
 
 
-def _regressions(kind: str, st: _Stacked, *, vcov: str, alpha: float) -> InstrumentRegressions:
+def _regressions(
+    kind: str, st: _Stacked, *, vcov: str, alpha: float, data: pd.DataFrame
+) -> InstrumentRegressions:
     return InstrumentRegressions(
         kind=kind,
         instruments=st.instruments,
@@ -388,6 +452,7 @@ def _regressions(kind: str, st: _Stacked, *, vcov: str, alpha: float) -> Instrum
         alpha=alpha,
         reference=_reference_text(st),
         caution=CAUTION,
+        row_account=count_rows(data, st.columns, n_used=st.n),
     )
 
 
@@ -428,7 +493,7 @@ def balance(
         small_sample=small_sample,
         alpha=alpha,
     )
-    return _regressions("balance", st, vcov=vcov, alpha=alpha)
+    return _regressions("balance", st, vcov=vcov, alpha=alpha, data=data)
 
 
 def placebo_outcomes(
@@ -460,7 +525,7 @@ def placebo_outcomes(
         small_sample=small_sample,
         alpha=alpha,
     )
-    return _regressions("placebo_outcomes", st, vcov=vcov, alpha=alpha)
+    return _regressions("placebo_outcomes", st, vcov=vcov, alpha=alpha, data=data)
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -469,7 +534,7 @@ def placebo_outcomes(
 
 
 @dataclass(frozen=True)
-class ZeroFirstStageResult:
+class ZeroFirstStageResult(Record):
     """First stage and reduced form in a subsample where the instrument should not move the treatment.
 
     ``prior_mu`` and ``prior_omega`` are the reduced-form coefficients of Y on Z in the subsample and their
@@ -494,21 +559,40 @@ class ZeroFirstStageResult:
     vcov: str
     alpha: float
     caution: str
+    row_account: RowAccount | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        out = cast(
-            dict[str, Any],
-            json_safe({k: v for k, v in self.__dict__.items() if k not in ("first_stage", "reduced_form")}),
-        )
+        skip = ("first_stage", "reduced_form", "row_account")
+        out = cast(dict[str, Any], json_safe({k: v for k, v in self.__dict__.items() if k not in skip}))
         out["first_stage"] = self.first_stage.to_dict()
         out["reduced_form"] = self.reduced_form.to_dict()
+        out["row_account"] = None if self.row_account is None else self.row_account.to_dict()
         out["kind"] = "zero_first_stage"
         return out
+
+    def __str__(self) -> str:
+        fs = self.first_stage
+        lines = [
+            f"Zero-first-stage check in {self.subsample}",
+            _rows_line(self.row_account, self.n, self.n_dropped) + f" (subsample n = {self.n:,})",
+            f"first stage of {fs.target} in the subsample (should be near zero): F = {_fmt(fs.f)}, "
+            f"p = {self.first_stage_p_value:.3g}",
+            *_coefficient_table((fs,), self.alpha, std_diff=False),
+            f"reduced form of {self.reduced_form.target} in the subsample (an effect here points to a path other "
+            "than the treatment):",
+            *_coefficient_table((self.reduced_form,), self.alpha, std_diff=False)[1:],
+            f"covariance: {self.vcov}",
+        ]
+        if self.warning:
+            lines.append(f"warning: {self.warning}")
+        lines.append(f"as a prior for the direct effect: {self.assumption}")
+        lines.append(self.caution)
+        return "\n".join(lines)
 
 
 def _select_subsample(
     data: pd.DataFrame, subsample: str | None, query: str | None
-) -> tuple[pd.DataFrame, str]:
+) -> tuple[pd.DataFrame, str, Any]:
     if (subsample is None) == (query is None):
         raise InvalidInputError(
             "give exactly one of subsample= (a boolean column marking the rows) or query= (a condition on "
@@ -546,7 +630,7 @@ def _select_subsample(
     sub = data.loc[mask]
     if len(sub) == 0:
         raise InvalidInputError(f"The subsample ({label}) selects no rows; check the condition.")
-    return sub, label
+    return sub, label, mask
 
 
 def zero_first_stage(
@@ -572,13 +656,13 @@ def zero_first_stage(
     """
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
-    sub, label = _select_subsample(data, subsample, query)
+    sub, label, mask = _select_subsample(data, subsample, query)
     inst = as_names(instruments, "instruments")
     treated = pd.to_numeric(sub[treatment], errors="coerce") if treatment in sub.columns else None
     if treated is not None and treated.nunique(dropna=True) == 1:
         # The treatment cannot respond at all in the subsample (e.g. nobody there can take it up): the first
         # stage is exactly zero, the cleanest case of the design, and only the reduced form is estimated.
-        return _zero_first_stage_exact(
+        exact = _zero_first_stage_exact(
             sub,
             label=label,
             n_full=len(data),
@@ -593,6 +677,10 @@ def zero_first_stage(
             small_sample=small_sample,
             alpha=alpha,
         )
+        used = [outcome, *inst, *as_names(controls, "controls"), *as_names(absorb, "absorb")]
+        used += [*as_names(cluster, "cluster"), *((weights,) if weights else ())]
+        account = count_rows(data, used, in_scope=mask, scope=label, n_used=exact.n)
+        return replace(exact, row_account=account)
     st = _stacked(
         sub,
         targets=(treatment, outcome),
@@ -635,6 +723,7 @@ def zero_first_stage(
         vcov=vcov,
         alpha=alpha,
         caution=CAUTION,
+        row_account=count_rows(data, st.columns, in_scope=mask, scope=label, n_used=st.n),
     )
 
 
@@ -724,7 +813,7 @@ def _zero_first_stage_exact(
 
 
 @dataclass(frozen=True)
-class JustIdentifiedEstimate:
+class JustIdentifiedEstimate(Record):
     """2SLS with one instrument alone (the other instruments left out), on the common estimation rows."""
 
     instrument: str
@@ -740,7 +829,7 @@ class JustIdentifiedEstimate:
 
 
 @dataclass(frozen=True)
-class PerInstrumentResult:
+class PerInstrumentResult(Record):
     """Each instrument's just-identified estimate beside the over-identified 2SLS and its J/Sargan test.
 
     ``first_stage_f`` is the Wald F of the instrument in its own first stage with the chosen covariance. The
@@ -761,12 +850,55 @@ class PerInstrumentResult:
     alpha: float
     ci_reference: str
     caution: str
+    row_account: RowAccount | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        out = cast(dict[str, Any], json_safe({k: v for k, v in self.__dict__.items() if k != "rows"}))
+        skip = ("rows", "row_account")
+        out = cast(dict[str, Any], json_safe({k: v for k, v in self.__dict__.items() if k not in skip}))
         out["rows"] = [r.to_dict() for r in self.rows]
+        out["row_account"] = None if self.row_account is None else self.row_account.to_dict()
         out["kind"] = "per_instrument"
         return out
+
+    def __str__(self) -> str:
+        level = f"{100 * (1 - self.alpha):g} % interval"
+        head = ["instrument(s)", "2SLS", "SE", level, "first-stage F", "minus all"]
+        body = [
+            [
+                r.instrument,
+                _fmt(r.estimate),
+                _fmt(r.se),
+                f"[{_fmt(r.ci_lower)}, {_fmt(r.ci_upper)}]",
+                _fmt(r.first_stage_f),
+                _fmt(r.difference_from_all),
+            ]
+            for r in self.rows
+        ]
+        body.append(
+            [
+                "all together",
+                _fmt(self.estimate_all),
+                _fmt(self.se_all),
+                f"[{_fmt(self.ci_all[0])}, {_fmt(self.ci_all[1])}]",
+                "",
+                "",
+            ]
+        )
+        lines = [
+            f"Each instrument alone: just-identified 2SLS of the effect of {self.treatment}",
+            _rows_line(self.row_account, self.n, self.n_dropped),
+            f"covariance: {self.vcov}; {self.ci_reference}",
+            *_aligned(head, body),
+        ]
+        overid = self.overid or {}
+        if overid.get("statistic") is not None:
+            lines.append(
+                f"over-identification ({overid.get('name') or overid.get('test') or 'J'}): "
+                f"{_fmt(float(overid['statistic']))}, p = {_fmt(float(overid.get('p_value', float('nan'))))}"
+                " (agreement among instruments cannot show that any of them is valid)"
+            )
+        lines.append(self.caution)
+        return "\n".join(lines)
 
 
 def per_instrument(
@@ -844,4 +976,5 @@ def per_instrument(
         alpha=alpha,
         ci_reference=res_all.ci_reference,
         caution=CAUTION,
+        row_account=count_rows(data, used, n_used=full.n),
     )

@@ -19,24 +19,31 @@ variance equal to its population value). Its mean is E[F] = df2 / (df2 - 2) * (k
 F = (R2 / k) / ((1 - R2) / df2). With clusters, lambda and the plug-in F are divided by DEFF (approximation
 for the cluster-robust F). These numbers
 plan a study; they do not say whether the instrument is valid, which no power calculation can establish.
+
+The treatment SD has no default: it is given, or derived from a data frame (the SD of the treatment after the
+controls). The analytic figure rests on the normal approximation to the 2SLS t-ratio, which is optimistic when
+the first stage is only moderately strong; :func:`simulate_power` measures 2SLS and Anderson–Rubin power by
+Monte Carlo for a stated correlation of the structural and first-stage errors.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from collections.abc import Sequence
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 from scipy import optimize, stats
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "FirstStageOutlook",
     "IVDesign",
     "PowerAnalysis",
+    "PowerSimulation",
     "expected_first_stage",
     "iv_design",
     "mde_2sls",
@@ -44,13 +51,15 @@ __all__ = [
     "power_2sls",
     "power_analysis",
     "se_2sls",
+    "simulate_power",
+    "treatment_sd_from_data",
 ]
 
 FORMULA = "Var(beta) = DEFF * sigma_u^2 / (N * R2_partial * Var(X)), DEFF = 1 + (m - 1) * ICC"
 
 
 @dataclass(frozen=True)
-class IVDesign:
+class IVDesign(Record):
     """A planned 2SLS design; build it with :func:`iv_design`, which validates and fills in R2 from an F."""
 
     n: int
@@ -64,6 +73,7 @@ class IVDesign:
     alpha: float
     residual_sd_source: str
     partial_r2_source: str
+    treatment_sd_source: str = "given"
 
     @property
     def design_effect(self) -> float:
@@ -90,8 +100,67 @@ class IVDesign:
                 "alpha": self.alpha,
                 "residual_sd_source": self.residual_sd_source,
                 "partial_r2_source": self.partial_r2_source,
+                "treatment_sd_source": self.treatment_sd_source,
             }
         )
+
+    def __str__(self) -> str:
+        lines = [
+            f"planned observations N: {self.n:,}",
+            f"first-stage partial R^2: {self.partial_r2:.4g} ({self.partial_r2_source})",
+            f"SD of the structural error (sigma_u): {self.residual_sd:.4g} ({self.residual_sd_source})",
+            f"SD of the treatment after the controls: {self.treatment_sd:.4g} ({self.treatment_sd_source})",
+            f"instruments: {self.n_instruments}; controls: {self.n_controls}",
+            f"test level alpha: {self.alpha:g} (two-sided)",
+        ]
+        if self.cluster_size > 1:
+            lines.append(
+                f"clusters: average size {self.cluster_size:g}, ICC {self.icc:g}, "
+                f"design effect {self.design_effect:.3g}"
+            )
+        return "\n".join(lines)
+
+
+def treatment_sd_from_data(data: Any, *, treatment: str, controls: Sequence[str] = ()) -> tuple[float, str]:
+    """SD of ``treatment`` after least-squares partialling of an intercept and ``controls`` (complete rows).
+
+    Returns the SD (degrees of freedom n - 1 - number of controls) and a sentence saying how it was derived.
+    """
+    import pandas as pd
+
+    if not isinstance(data, pd.DataFrame):
+        raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
+    names = [treatment, *controls]
+    absent = [c for c in names if c not in data.columns]
+    if absent:
+        raise InvalidInputError(
+            f"Column {absent[0]!r} is not in the data; name the treatment and controls as they appear there."
+        )
+    frame = data[names].apply(pd.to_numeric, errors="coerce")
+    keep = frame.notna().all(axis=1).to_numpy()
+    n = int(keep.sum())
+    if n < len(controls) + 3:
+        raise InvalidInputError(
+            f"only {n} row(s) are complete over {', '.join(map(repr, names))}; too few to derive the "
+            "treatment SD, give treatment_sd= instead."
+        )
+    values = frame.to_numpy(dtype=np.float64)[keep]
+    x = values[:, 0]
+    design = np.column_stack([np.ones(n), values[:, 1:]])
+    coef, *_ = np.linalg.lstsq(design, x, rcond=None)
+    resid = x - design @ coef
+    rank = int(np.linalg.matrix_rank(design))
+    sd = float(math.sqrt(resid @ resid / (n - rank)))
+    if not sd > 0:
+        raise InvalidInputError(
+            f"the treatment {treatment!r} has no variation left after the controls; check the columns."
+        )
+    left = len(data) - n
+    after = f" after {len(controls)} control(s)" if controls else ""
+    source = f"from the data: SD of {treatment!r}{after}, {n:,} complete rows" + (
+        f" ({left:,} incomplete rows left out)" if left else ""
+    )
+    return sd, source
 
 
 def _mean_ncf(k: int, df2: int, lam: float) -> float:
@@ -106,12 +175,15 @@ def iv_design(
     first_stage_f: float | None = None,
     residual_sd: float | None = None,
     outcome_sd: float | None = None,
-    treatment_sd: float = 1.0,
+    treatment_sd: float | None = None,
     n_instruments: int = 1,
     n_controls: int = 0,
     cluster_size: float = 1.0,
     icc: float = 0.0,
     alpha: float = 0.05,
+    data: Any = None,
+    treatment: str | None = None,
+    controls: Sequence[str] = (),
 ) -> IVDesign:
     """Validate a planned design, converting an expected first-stage F to a partial R^2 when needed.
 
@@ -119,7 +191,8 @@ def iv_design(
     converted to R2 by inverting the mean of the noncentral F; with clusters it is the F of the
     cluster-robust test, noncentrality lambda / DEFF), and one of ``residual_sd`` (sigma_u) or
     ``outcome_sd`` (used as sigma_u: an approximation, conservative when the treatment and controls explain
-    part of Y and confounding is modest).
+    part of Y and confounding is modest). ``treatment_sd`` is required unless ``data`` and ``treatment`` are
+    given, in which case it is the SD of the treatment after ``controls`` (:func:`treatment_sd_from_data`).
     """
     if n_instruments < 1:
         raise InvalidInputError(f"n_instruments must be at least 1, got {n_instruments}.")
@@ -132,7 +205,7 @@ def iv_design(
         )
     if not 0.0 < alpha < 1.0:
         raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha}; use e.g. 0.05.")
-    if not treatment_sd > 0:
+    if treatment_sd is not None and not treatment_sd > 0:
         raise InvalidInputError(f"treatment_sd must be positive, got {treatment_sd}.")
     if cluster_size < 1.0:
         raise InvalidInputError(f"cluster_size must be at least 1 (1 = no clustering), got {cluster_size}.")
@@ -169,6 +242,20 @@ def iv_design(
     if not sd > 0:
         raise InvalidInputError(f"the error/outcome SD must be positive, got {sd}.")
     source = "residual_sd (structural error)" if residual_sd is not None else "outcome_sd used as sigma_u"
+    if treatment_sd is not None and data is not None:
+        raise InvalidInputError(
+            "give treatment_sd= or data= (with treatment=) to derive it, not both; drop one of them."
+        )
+    if treatment_sd is None:
+        if data is None or treatment is None:
+            raise InvalidInputError(
+                "treatment_sd is required: give the SD of the treatment after the controls (in its own units), "
+                "or pass data= with treatment= (and controls=) to derive it; power scales with it, so no "
+                "default is assumed."
+            )
+        treatment_sd, sd_source = treatment_sd_from_data(data, treatment=treatment, controls=controls)
+    else:
+        sd_source = "given"
     return IVDesign(
         n=int(n),
         partial_r2=r2,
@@ -181,6 +268,7 @@ def iv_design(
         alpha=float(alpha),
         residual_sd_source=source,
         partial_r2_source=r2_source,
+        treatment_sd_source=sd_source,
     )
 
 
@@ -226,7 +314,7 @@ def n_for_power(design: IVDesign, effect: float, *, power: float = 0.8) -> int:
 
 
 @dataclass(frozen=True)
-class FirstStageOutlook:
+class FirstStageOutlook(Record):
     """What first stage the plan should expect and how likely it is to clear the thresholds it will use.
 
     ``critical_values`` maps a label to (critical value, probability that the planned F exceeds it), where the
@@ -259,6 +347,35 @@ class FirstStageOutlook:
                 "tf_critical_value_at_expected_f": json_safe(self.tf_critical_value_at_expected_f),
             }
         )
+
+    def __str__(self) -> str:
+        lines = [
+            f"expected first-stage F: {_fmt(self.expected_f)} (plug-in F {_fmt(self.plug_in_f)}, "
+            f"noncentrality {_fmt(self.noncentrality)})"
+        ]
+        for label, value, prob, _source in self.critical_values:
+            if value is None:
+                lines.append(f"  {label}: not carried")
+            else:
+                lines.append(f"  {label}: critical value {value:.4g}, chance the F exceeds it {_pct(prob)}")
+        if math.isfinite(self.tf_critical_value_at_expected_f):
+            lines.append(
+                f"  tF critical value at the expected F: {self.tf_critical_value_at_expected_f:.3g} "
+                "(instead of 1.96)"
+            )
+        return "\n".join(lines)
+
+
+def _fmt(value: float | None) -> str:
+    if value is None:
+        return "—"
+    if math.isinf(value):
+        return "infinite"
+    return f"{value:.4g}"
+
+
+def _pct(value: float | None) -> str:
+    return "—" if value is None else f"{100 * value:.1f} %"
 
 
 def expected_first_stage(design: IVDesign) -> FirstStageOutlook:
@@ -306,7 +423,128 @@ def expected_first_stage(design: IVDesign) -> FirstStageOutlook:
 
 
 @dataclass(frozen=True)
-class PowerAnalysis:
+class PowerSimulation(Record):
+    """2SLS t-test and Anderson–Rubin power at one effect, by Monte Carlo, beside the analytic figure.
+
+    Data: N rows, k independent standard-normal instruments sharing the first-stage partial R^2 equally,
+    X = Z pi + v and Y = X b + u with SD(X) = treatment_sd, SD(u) = residual_sd and corr(u, v) =
+    ``error_correlation`` (the endogeneity), normal errors, no clusters. Each replication tests b = 0 at level
+    alpha: the 2SLS t-ratio (homoskedastic SE, normal critical value, as the analytic formula) and the
+    Anderson–Rubin F test (F(k, N - k - 1) critical value). Monte Carlo SE = sqrt(p (1 - p) / reps).
+    """
+
+    effect: float
+    error_correlation: float
+    reps: int
+    seed: int
+    power_2sls: float
+    power_2sls_mc_se: float
+    power_ar: float
+    power_ar_mc_se: float
+    analytic_power: float
+    expected_f: float
+    description: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return json_safe(dict(self.__dict__))
+
+    def __str__(self) -> str:
+        return (
+            f"simulated power at effect {self.effect:.4g} (error correlation {self.error_correlation:g}, "
+            f"{self.reps:,} replications, seed {self.seed}): 2SLS t-test {_pct(self.power_2sls)} "
+            f"(MC SE {100 * self.power_2sls_mc_se:.1f} points), Anderson–Rubin {_pct(self.power_ar)} "
+            f"(MC SE {100 * self.power_ar_mc_se:.1f} points); analytic {_pct(self.analytic_power)}"
+        )
+
+
+def simulate_power(
+    design: IVDesign,
+    effect: float,
+    *,
+    error_correlation: float,
+    reps: int = 2000,
+    seed: int = 0,
+) -> PowerSimulation:
+    """Monte Carlo power of the 2SLS t-test and the Anderson–Rubin test of b = 0 when the truth is ``effect``.
+
+    ``error_correlation`` is corr(u, v) of the structural and first-stage errors; its sign relative to the effect
+    matters (the 2SLS t-test loses power when OLS would be biased in the direction of the effect). The simulated
+    design has no clusters; a design with clusters is refused (its analytic figure uses DEFF).
+    """
+    if design.cluster_size > 1.0 and design.icc > 0.0:
+        raise InvalidInputError(
+            "the simulation mode covers designs without clustering; set cluster_size=1 (or icc=0) to simulate, "
+            "or rely on the analytic figure with its design effect."
+        )
+    if not -1.0 < error_correlation < 1.0:
+        raise InvalidInputError(
+            f"error_correlation must lie strictly between -1 and 1, got {error_correlation}; e.g. 0.5."
+        )
+    if reps < 100:
+        raise InvalidInputError(f"reps must be at least 100 for a usable Monte Carlo error, got {reps}.")
+    if not design.partial_r2 < 1.0:
+        raise InvalidInputError("partial_r2 = 1 leaves no first-stage noise to simulate; use the formula.")
+    n, k = design.n, design.n_instruments
+    sx, su, r2, rho = design.treatment_sd, design.residual_sd, design.partial_r2, float(error_correlation)
+    pi = math.sqrt(r2 / k) * sx
+    sv = math.sqrt(1.0 - r2) * sx
+    z_crit = float(stats.norm.ppf(1.0 - design.alpha / 2.0))
+    ar_crit = float(stats.f.ppf(1.0 - design.alpha, k, n - k - 1))
+    rng = np.random.default_rng(seed)
+    batch = max(1, min(reps, int(4_000_000 // (n * (k + 2)))))
+    rej_t = rej_ar = 0
+    done = 0
+    while done < reps:
+        b = min(batch, reps - done)
+        z = rng.standard_normal((b, n, k))
+        e1 = rng.standard_normal((b, n))
+        e2 = rng.standard_normal((b, n))
+        v = sv * e1
+        u = su * (rho * e1 + math.sqrt(1.0 - rho * rho) * e2)
+        x = pi * z.sum(axis=2) + v
+        y = effect * x + u
+        z = z - z.mean(axis=1, keepdims=True)  # intercept partialled out
+        x = x - x.mean(axis=1, keepdims=True)
+        y = y - y.mean(axis=1, keepdims=True)
+        q = np.einsum("bni,bnj->bij", z, z)
+        zx = np.einsum("bni,bn->bi", z, x)
+        zy = np.einsum("bni,bn->bi", z, y)
+        qinv_zx = np.linalg.solve(q, zx[..., None])[..., 0]
+        qinv_zy = np.linalg.solve(q, zy[..., None])[..., 0]
+        xpx = np.einsum("bi,bi->b", zx, qinv_zx)
+        xpy = np.einsum("bi,bi->b", zx, qinv_zy)
+        ypy = np.einsum("bi,bi->b", zy, qinv_zy)
+        beta = xpy / xpx
+        resid = y - beta[:, None] * x
+        sigma2 = np.einsum("bn,bn->b", resid, resid) / (n - 2)
+        t = beta / np.sqrt(sigma2 / xpx)
+        rej_t += int(np.sum(np.abs(t) > z_crit))
+        ymy = np.einsum("bn,bn->b", y, y) - ypy
+        ar = (ypy / k) / (ymy / (n - k - 1))
+        rej_ar += int(np.sum(ar > ar_crit))
+        done += b
+    p_t, p_ar = rej_t / reps, rej_ar / reps
+    return PowerSimulation(
+        effect=float(effect),
+        error_correlation=rho,
+        reps=int(reps),
+        seed=int(seed),
+        power_2sls=p_t,
+        power_2sls_mc_se=math.sqrt(p_t * (1.0 - p_t) / reps),
+        power_ar=p_ar,
+        power_ar_mc_se=math.sqrt(p_ar * (1.0 - p_ar) / reps),
+        analytic_power=power_2sls(design, effect),
+        expected_f=expected_first_stage(design).expected_f,
+        description=(
+            f"{k} standard-normal instrument(s), normal errors with correlation {rho:g}, no clusters; "
+            f"2SLS t-test with the normal critical value {z_crit:.3f}; Anderson–Rubin F test with the "
+            f"F({k}, {n - k - 1}) critical value {ar_crit:.3f}"
+        ),
+    )
+
+
+@dataclass(frozen=True)
+class PowerAnalysis(Record):
     """Everything a plan reports about power: SE, power at the effect, MDE, N needed and the first stage."""
 
     design: IVDesign
@@ -320,6 +558,9 @@ class PowerAnalysis:
     first_stage: FirstStageOutlook
     formula: str
     assumptions: tuple[str, ...]
+    reliability: str = ""
+    simulation: PowerSimulation | None = field(default=None)
+    caution: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         return json_safe(
@@ -335,8 +576,34 @@ class PowerAnalysis:
                 "first_stage": self.first_stage.to_dict(),
                 "formula": self.formula,
                 "assumptions": list(self.assumptions),
+                "reliability": self.reliability,
+                "simulation": None if self.simulation is None else self.simulation.to_dict(),
+                "caution": self.caution,
             }
         )
+
+    def __str__(self) -> str:
+        lines = ["Planned design", *("  " + x for x in str(self.design).splitlines())]
+        lines += [
+            "Analytic power (normal approximation)",
+            f"  standard error of the 2SLS estimate: {self.se:.4g}",
+            f"  minimum detectable effect at {_pct(self.target_power)} power: {self.mde:.4g}",
+        ]
+        if self.effect is not None:
+            lines.append(f"  power at effect {self.effect:.4g}: {_pct(self.power)}")
+            needed = f"  observations needed for {_pct(self.target_power)} power: {self.n_required:,}"
+            if self.clusters_required is not None and self.design.cluster_size > 1:
+                needed += f" ({self.clusters_required:,} clusters of {self.design.cluster_size:g})"
+            lines.append(needed)
+        lines += ["First stage", *("  " + x for x in str(self.first_stage).splitlines())]
+        if self.simulation is not None:
+            lines += ["Simulation", "  " + str(self.simulation)]
+        if self.reliability:
+            lines += ["How far to trust the analytic figure", "  " + self.reliability]
+        lines += [f"Formula: {self.formula}", "Assumptions", *(f"  - {a}" for a in self.assumptions)]
+        if self.caution:
+            lines.append(self.caution)
+        return "\n".join(lines)
 
 
 ASSUMPTIONS: tuple[str, ...] = (
@@ -348,24 +615,82 @@ ASSUMPTIONS: tuple[str, ...] = (
     "the instruments are valid (relevance, exclusion, independence): statistics and power "
     "calculations cannot establish exclusion or exogeneity",
 )
+CAUTION = (
+    "Power calculations cannot establish exclusion or exogeneity; conclusions for policy or clinical "
+    "decisions need domain review."
+)
+STRONG_F = 50.0  # common practice: above this expected F the normal approximation is close for 2SLS power
+
+
+def _reliability(design: IVDesign, outlook: FirstStageOutlook, sim: PowerSimulation | None) -> str:
+    """A sentence on how far the analytic power can be trusted at this design's expected first stage."""
+    ef = outlook.expected_f
+    if sim is not None:
+        gap = sim.power_2sls - sim.analytic_power
+        band = 2.0 * sim.power_2sls_mc_se
+        if abs(gap) <= band:
+            verdict = "agrees with the simulation within Monte Carlo error"
+        else:
+            verdict = f"is {'optimistic' if gap < 0 else 'pessimistic'} by {100 * abs(gap):.1f} points"
+        return (
+            f"at the expected first-stage F of {_fmt(ef)}, the analytic power {_pct(sim.analytic_power)} "
+            f"{verdict} (simulated 2SLS {_pct(sim.power_2sls)} +/- {100 * band:.1f} points, error correlation "
+            f"{sim.error_correlation:g}); the Anderson–Rubin test, valid however weak the instrument, has "
+            f"{_pct(sim.power_ar)}."
+        )
+    if ef >= STRONG_F:
+        return (
+            f"the expected first-stage F of {_fmt(ef)} is large, so the normal approximation is close when the "
+            "structural and first-stage errors are weakly correlated; with strong endogeneity it is off even "
+            "here (by this module's simulation at an expected F of 100 and error correlation 0.8, a nominal "
+            "80 % is about 73 % when the correlation has the sign of the effect and about 90 % when it has the "
+            "opposite sign); simulate with the correlation you expect (error_correlation=)."
+        )
+    return (
+        f"the expected first-stage F of {_fmt(ef)} is moderate or small, so the analytic figure is unreliable: "
+        "by this module's simulation at an expected F of 20, a nominal 80 % is about 76 % with uncorrelated "
+        "errors, about 67 % with error correlation 0.8 of the same sign as the effect, and above 90 % with the "
+        "opposite sign (a t-test that over-rejects); run the simulation mode with the correlation you expect "
+        "and prefer the Anderson–Rubin figure."
+    )
 
 
 def power_analysis(
-    design: IVDesign, *, effect: float | None = None, target_power: float = 0.8
+    design: IVDesign,
+    *,
+    effect: float | None = None,
+    target_power: float = 0.8,
+    error_correlation: float | None = None,
+    reps: int = 2000,
+    seed: int = 0,
 ) -> PowerAnalysis:
-    """Power at ``effect`` (if given), MDE and required N at ``target_power``, and the first-stage outlook."""
+    """Power at ``effect`` (if given), MDE and required N at ``target_power``, and the first-stage outlook.
+
+    With ``error_correlation`` the 2SLS and Anderson–Rubin power are also simulated (:func:`simulate_power`)
+    at ``effect``, or at the analytic MDE when no effect is given (so the simulated power there shows how
+    far the nominal target power holds).
+    """
     se = se_2sls(design)
     n_req = None if effect is None else n_for_power(design, effect, power=target_power)
+    mde = mde_2sls(design, power=target_power)
+    outlook = expected_first_stage(design)
+    sim = None
+    if error_correlation is not None:
+        at = effect if effect is not None else mde
+        sim = simulate_power(design, at, error_correlation=error_correlation, reps=reps, seed=seed)
     return PowerAnalysis(
         design=design,
         se=se,
         effect=effect,
         power=None if effect is None else power_2sls(design, effect),
         target_power=target_power,
-        mde=mde_2sls(design, power=target_power),
+        mde=mde,
         n_required=n_req,
         clusters_required=None if n_req is None else math.ceil(n_req / design.cluster_size - 1e-9),
-        first_stage=expected_first_stage(design),
+        first_stage=outlook,
         formula=FORMULA,
         assumptions=ASSUMPTIONS,
+        reliability=_reliability(design, outlook, sim),
+        simulation=sim,
+        caution=CAUTION,
     )

@@ -9,7 +9,9 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import stats
 
-from ivdossier.jsonsafe import json_safe
+from ivdossier.estimation.diagnostics import DiagnosticSuite
+from ivdossier.jsonsafe import Record, json_safe
+from ivdossier.vocabulary import NotApplicable
 
 Array = NDArray[np.float64]
 DIAGNOSTIC_SECTIONS: tuple[str, ...] = (
@@ -28,24 +30,13 @@ METHOD_LABELS = {
 }
 
 
-@dataclass(frozen=True)
-class NotApplicable:
-    """A diagnostic section that does not apply to this model, with the reason."""
-
-    reason: str
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-safe form: status and reason."""
-        return {"status": "not applicable", "reason": self.reason}
-
-
 @dataclass(frozen=True, eq=False)
-class EstimationResult:
+class EstimationResult(Record):
     """Coefficients, standard errors and intervals of the treatment regressors, with the model description.
 
     ``cov`` is the covariance of ``coef`` (k x k, in the order of ``names``); ``ci`` holds the (1 - alpha)
-    intervals (k x 2). ``diagnostics`` is the weak-instrument suite (or None when it was not computed) and
-    ``not_applicable`` gives the reason when the diagnostics do not apply (OLS).
+    intervals (k x 2). ``diagnostics`` is the weak-instrument suite, NotApplicable with the reason when the
+    diagnostics do not apply (OLS), or None when they were not asked for.
     """
 
     method: str
@@ -72,8 +63,12 @@ class EstimationResult:
     fe_levels: tuple[int, ...]
     spec: dict[str, Any] = field(default_factory=dict)
     conventions: dict[str, str] = field(default_factory=dict)
-    diagnostics: Any = None
-    not_applicable: str | None = None
+    diagnostics: DiagnosticSuite | NotApplicable | None = None
+
+    @property
+    def not_applicable(self) -> str | None:
+        """The reason the instrument diagnostics do not apply (OLS, too few clusters), else None."""
+        return self.diagnostics.reason if isinstance(self.diagnostics, NotApplicable) else None
 
     @property
     def tstat(self) -> Array:
@@ -98,7 +93,7 @@ class EstimationResult:
     def _section(self, name: str) -> Any:
         if self.not_applicable is not None:
             return NotApplicable(self.not_applicable).to_dict()
-        if self.diagnostics is None:
+        if not isinstance(self.diagnostics, DiagnosticSuite):
             return None
         part = getattr(self.diagnostics, name, None)
         if part is None:
@@ -165,7 +160,7 @@ class EstimationResult:
         lines.append("")
         if self.not_applicable is not None:
             lines.append(f"  Instrument diagnostics: not applicable ({self.not_applicable}).")
-        elif self.diagnostics is None:
+        elif not isinstance(self.diagnostics, DiagnosticSuite):
             lines.append("  Instrument diagnostics: not computed.")
         else:
             lines.append("  Instrument diagnostics")

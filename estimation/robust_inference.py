@@ -43,7 +43,7 @@ from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.covariance import CovSpec, sandwich
 from ivdossier.estimation.critical_values import TF_SOURCE, tf_critical_value
 from ivdossier.estimation.strength import as_matrix, denominator_df, f_p_value, ols, wald
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 Interval = tuple[float, float]
@@ -159,7 +159,7 @@ def _refine_dip(margin: Callable[[float], float], thetas: Array, margins: Array)
 
 
 @dataclass(frozen=True)
-class ReducedForm:
+class ReducedForm(Record):
     """Reduced-form regression of the outcome on the excluded instruments, with the joint Wald test."""
 
     coefficients: dict[str, float]
@@ -263,7 +263,7 @@ def ar_statistics(
 
 
 @dataclass(frozen=True)
-class AndersonRubin:
+class AndersonRubin(Record):
     """Anderson–Rubin test at a stated null and, with one endogenous regressor, the confidence set."""
 
     null: tuple[float, ...]
@@ -407,7 +407,7 @@ def _iv_center(m: _Moments) -> tuple[float, float]:
 
 
 @dataclass(frozen=True)
-class TFResult:
+class TFResult(Record):
     """tF inference (Lee, McCrary, Moreira and Porter 2022): one instrument, one endogenous regressor."""
 
     applicable: bool
@@ -516,7 +516,7 @@ def clr_p_value(lr: float, qt: float, k: int) -> float:
 
 
 @dataclass(frozen=True)
-class CLRResult:
+class CLRResult(Record):
     """Conditional likelihood-ratio test at a null and its confidence set (one endogenous regressor)."""
 
     applicable: bool
@@ -675,7 +675,7 @@ def clr_inference(
 
 
 @dataclass(frozen=True)
-class WeakIVRobustSection:
+class WeakIVRobustSection(Record):
     """Weak-instrument-robust inference: Anderson–Rubin, tF and CLR."""
 
     anderson_rubin: AndersonRubin

@@ -42,7 +42,8 @@ from ivdossier.estimation.api import estimate_prepared
 from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, is_psd, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
-from ivdossier.jsonsafe import json_safe
+from ivdossier.estimation.rows import RowAccount, count_rows
+from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
     "BreakdownResult",
@@ -184,13 +185,42 @@ def _as_vector(value: float | Sequence[float], n_inst: int, name: str) -> Array:
     return arr
 
 
+def _account(data: pd.DataFrame, prepared: PreparedData) -> RowAccount:
+    """Rows used and left out (by reason) for the prepared model."""
+    columns = [prepared.outcome, *prepared.treatment, *prepared.instruments, *prepared.controls]
+    columns += [*prepared.absorb, *prepared.cluster, *((prepared.weights,) if prepared.weights else ())]
+    return count_rows(data, columns, n_used=prepared.n)
+
+
+def _rows_text(account: RowAccount | None, n: int) -> str:
+    return str(account) if account is not None else f"rows: used {n:,}"
+
+
+def _v(value: float) -> str:
+    if value != value:
+        return "—"
+    if math.isinf(value):
+        return "unbounded" if value > 0 else "-unbounded"
+    return f"{value:.4g}"
+
+
+def _vec(values: Sequence[float]) -> str:
+    return ", ".join(_v(v) for v in values)
+
+
+CAUTION = (
+    "Statistics cannot establish exclusion or exogeneity; conclusions for policy or clinical decisions need "
+    "domain review."
+)
+
+
 # ----------------------------------------------------------------------------------------------------------
 # union of confidence intervals
 # ----------------------------------------------------------------------------------------------------------
 
 
 @dataclass(frozen=True)
-class GammaInterval:
+class GammaInterval(Record):
     """The 2SLS estimate and interval when the direct effect is ``gamma`` (one value per instrument)."""
 
     position: float
@@ -204,7 +234,7 @@ class GammaInterval:
 
 
 @dataclass(frozen=True)
-class UnionIntervalResult:
+class UnionIntervalResult(Record):
     """UCI over the box [gamma_min, gamma_max] with the evaluation grid used for the plot.
 
     ``grid`` runs over gamma itself for one instrument, and along the box diagonal gamma_min + s (gamma_max -
@@ -235,6 +265,7 @@ class UnionIntervalResult:
     vcov: str
     n: int
     note: str
+    row_account: RowAccount | None = None
 
     def to_dict(self) -> dict[str, Any]:
         out = {k: v for k, v in self.__dict__.items() if k != "grid"}
@@ -242,6 +273,25 @@ class UnionIntervalResult:
         out["grid"] = [g.to_dict() for g in self.grid]
         out["kind"] = "union_of_confidence_intervals"
         return out
+
+    def __str__(self) -> str:
+        level = f"{100 * (1 - self.alpha):g} %"
+        verdict = "covers zero" if self.covers_zero else "excludes zero"
+        return "\n".join(
+            [
+                f"Union of {level} intervals for the effect of {self.treatment} over an assumed direct effect",
+                _rows_text(self.row_account, self.n),
+                f"instrument(s): {', '.join(self.instruments)}; covariance {self.vcov}; {self.ci_reference}",
+                f"direct effect assumed between [{_vec(self.gamma_min)}] and [{_vec(self.gamma_max)}]",
+                f"2SLS without a direct effect: {_v(self.estimate)} (SE {_v(self.se)}), "
+                f"interval [{_v(self.ci[0])}, {_v(self.ci[1])}]",
+                f"union of intervals: [{_v(self.lower)}, {_v(self.upper)}], which {verdict} "
+                f"({'exact, from the range corners' if self.exact else 'from the range corners and a grid'})",
+                f"lower end reached at direct effect [{_vec(self.lower_at)}], upper end at [{_vec(self.upper_at)}]",
+                self.note,
+                CAUTION,
+            ]
+        )
 
 
 NOTE = (
@@ -335,6 +385,7 @@ def union_of_intervals(
         vcov=vcov,
         n=core.n,
         note=NOTE,
+        row_account=_account(data, prepared),
     )
 
 
@@ -344,7 +395,7 @@ def union_of_intervals(
 
 
 @dataclass(frozen=True)
-class LocalToZeroResult:
+class LocalToZeroResult(Record):
     """LTZ interval: centre beta_hat - A mu, variance V + A Omega A', same quantile as the 2SLS interval."""
 
     treatment: str
@@ -366,11 +417,32 @@ class LocalToZeroResult:
     vcov: str
     n: int
     note: str
+    row_account: RowAccount | None = None
 
     def to_dict(self) -> dict[str, Any]:
         out = cast(dict[str, Any], json_safe(dict(self.__dict__)))
         out["kind"] = "local_to_zero"
         return out
+
+    def __str__(self) -> str:
+        level = f"{100 * (1 - self.alpha):g} %"
+        sds = ", ".join(_v(math.sqrt(max(self.omega[i][i], 0.0))) for i in range(len(self.omega)))
+        verdict = "covers zero" if self.covers_zero else "excludes zero"
+        return "\n".join(
+            [
+                f"Local-to-zero {level} interval for the effect of {self.treatment} with a normal prior on the "
+                "direct effect",
+                _rows_text(self.row_account, self.n),
+                f"instrument(s): {', '.join(self.instruments)}; covariance {self.vcov}; {self.ci_reference}",
+                f"prior on the direct effect: mean [{_vec(self.mu)}], SD [{sds}]",
+                f"2SLS without a direct effect: {_v(self.estimate_2sls)} (SE {_v(self.se_2sls)}), "
+                f"interval [{_v(self.ci_2sls[0])}, {_v(self.ci_2sls[1])}]",
+                f"with the prior: {_v(self.estimate)} (SE {_v(self.se)}), interval [{_v(self.lower)}, "
+                f"{_v(self.upper)}], which {verdict}",
+                self.note,
+                CAUTION,
+            ]
+        )
 
 
 def local_to_zero(
@@ -447,6 +519,7 @@ def local_to_zero(
         vcov=vcov,
         n=core.n,
         note=NOTE,
+        row_account=_account(data, prepared),
     )
 
 
@@ -456,7 +529,7 @@ def local_to_zero(
 
 
 @dataclass(frozen=True)
-class BreakdownResult:
+class BreakdownResult(Record):
     """Smallest direct effect (along ``direction``) at which the interval first covers ``target``.
 
     ``magnitude`` is |t| for gamma = t * direction (direction has unit length), in outcome units per unit of
@@ -481,11 +554,36 @@ class BreakdownResult:
     vcov: str
     n: int
     note: str
+    row_account: RowAccount | None = None
 
     def to_dict(self) -> dict[str, Any]:
         out = cast(dict[str, Any], json_safe(dict(self.__dict__)))
         out["kind"] = "breakdown_value"
         return out
+
+    def __str__(self) -> str:
+        level = f"{100 * (1 - self.alpha):g} %"
+        if self.covered_without_direct_effect:
+            finding = f"the {level} interval already covers {_v(self.target)} with no direct effect at all"
+        else:
+            finding = (
+                f"a direct effect of {_v(self.magnitude)} per unit of the instrument"
+                + ("" if len(self.instruments) == 1 else f" combination (direction [{_vec(self.direction)}])")
+                + f" makes the {level} interval reach {_v(self.target)}; that is "
+                f"{_v(abs(self.relative_to_reduced_form))} times the reduced form ({_v(self.reduced_form)})"
+            )
+        return "\n".join(
+            [
+                f"Breakdown value: how large a direct effect of the instrument overturns the conclusion about "
+                f"{self.treatment}",
+                _rows_text(self.row_account, self.n),
+                f"instrument(s): {', '.join(self.instruments)}; covariance {self.vcov}",
+                f"2SLS without a direct effect: {_v(self.estimate)}, interval [{_v(self.ci[0])}, {_v(self.ci[1])}]",
+                finding,
+                self.note,
+                CAUTION,
+            ]
+        )
 
 
 def _breakdown_t(core: _Core, direction: Array, target: float) -> float:
@@ -587,6 +685,7 @@ def breakdown_value(
         vcov=vcov,
         n=core.n,
         note=NOTE,
+        row_account=_account(data, prepared),
     )
 
 

@@ -31,11 +31,11 @@ from scipy import stats
 from ivdossier.errors import EstimationError
 from ivdossier.estimation.covariance import CovSpec, sandwich
 from ivdossier.estimation.strength import Array, as_matrix, denominator_df, ols, wald
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 
 @dataclass(frozen=True)
-class OverId:
+class OverId(Record):
     """Over-identification test result, or not applicable with a reason when just identified."""
 
     test: str | None
@@ -122,7 +122,7 @@ def overid_test(
 
 
 @dataclass(frozen=True)
-class Endogeneity:
+class Endogeneity(Record):
     """Durbin–Wu–Hausman test in control-function form with the chosen covariance."""
 
     statistic: float

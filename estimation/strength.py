@@ -47,7 +47,7 @@ from ivdossier.estimation.critical_values import (
     mop_k_eff,
     stock_yogo_applicable,
 )
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 
@@ -117,7 +117,7 @@ def _check_shapes(x: Array, z: Array) -> None:
 
 
 @dataclass(frozen=True)
-class FirstStageRow:
+class FirstStageRow(Record):
     """First-stage regression of one endogenous regressor on the excluded instruments."""
 
     endog: str
@@ -151,7 +151,7 @@ class FirstStageRow:
 
 
 @dataclass(frozen=True)
-class FirstStageSection:
+class FirstStageSection(Record):
     """First-stage results, one row per endogenous regressor."""
 
     rows: tuple[FirstStageRow, ...]
@@ -215,7 +215,7 @@ def first_stage(
 
 
 @dataclass(frozen=True)
-class EffectiveF:
+class EffectiveF(Record):
     """Montiel Olea–Pflueger effective F with its simplified-procedure critical values."""
 
     statistic: float
@@ -277,7 +277,7 @@ def cragg_donald_f(x: np.ndarray, z: np.ndarray, *, n_partialled: int) -> float:
 
 
 @dataclass(frozen=True)
-class RankTest:
+class RankTest(Record):
     """Kleibergen–Paap rk Wald test that the first-stage matrix has rank p - 1, and its F form."""
 
     statistic: float
@@ -358,7 +358,7 @@ def sanderson_windmeijer_f(
 
 
 @dataclass(frozen=True)
-class StrengthSection:
+class StrengthSection(Record):
     """Strength summary: effective F, Cragg–Donald, Kleibergen–Paap, Sanderson–Windmeijer, Stock–Yogo."""
 
     effective_f: EffectiveF | None

@@ -16,7 +16,8 @@ import pandas as pd
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.data import as_names
 from ivdossier.estimation.falsification import TargetRegression, placebo_outcomes
-from ivdossier.jsonsafe import json_safe
+from ivdossier.estimation.rows import RowAccount
+from ivdossier.jsonsafe import Record, json_safe
 
 MAX_LEVELS = 20
 CAUTION = (
@@ -26,7 +27,7 @@ CAUTION = (
 
 
 @dataclass(frozen=True)
-class SubgroupFirstStage:
+class SubgroupFirstStage(Record):
     """The first stage in one subgroup, and whether it runs against the full-sample direction."""
 
     group: str
@@ -44,7 +45,7 @@ class SubgroupFirstStage:
 
 
 @dataclass(frozen=True)
-class SubgroupSigns:
+class SubgroupSigns(Record):
     """First stages overall and by subgroup of ``by``; ``flagged`` lists subgroups with a reversed, significant sign."""
 
     by: str
@@ -57,6 +58,8 @@ class SubgroupSigns:
     alpha: float
     vcov: str
     caution: str = CAUTION
+    row_account: RowAccount | None = None
+    rows_without_group: int = 0  # rows used overall whose ``by`` value is missing, so in no subgroup
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = json_safe(
@@ -74,7 +77,52 @@ class SubgroupSigns:
         )
         out["overall"] = self.overall.to_dict()
         out["groups"] = [g.to_dict() for g in self.groups]
+        out["row_account"] = None if self.row_account is None else self.row_account.to_dict()
+        out["rows_without_group"] = self.rows_without_group
         return out
+
+    def __str__(self) -> str:
+        level = f"{100 * (1 - self.alpha):g} % interval"
+        head = ["subgroup", "n", "instrument", "coef", "SE", level, "p", "reversed"]
+        body = []
+        for label, n, reg, opposite in [("all", self.overall.n, self.overall, ())] + [
+            (g.group, g.n, g.regression, g.opposite) for g in self.groups
+        ]:
+            for c in reg.coefficients:
+                body.append(
+                    [
+                        f"{self.by} = {label}" if label != "all" else "all rows",
+                        f"{n:,}",
+                        c.instrument,
+                        f"{c.coef:.4g}",
+                        f"{c.se:.4g}",
+                        f"[{c.ci_lower:.4g}, {c.ci_upper:.4g}]",
+                        f"{c.p_value:.3g}",
+                        "yes" if c.instrument in opposite else "",
+                    ]
+                )
+        widths = [max(len(row[j]) for row in [head, *body]) for j in range(len(head))]
+        table = [
+            "  " + "  ".join(v.ljust(w) for v, w in zip(row, widths, strict=True)).rstrip()
+            for row in [head, *body]
+        ]
+        rows = str(self.row_account) if self.row_account is not None else f"rows: used {self.overall.n:,}"
+        if self.rows_without_group:
+            rows += f"; {self.rows_without_group:,} of them have no value of {self.by} and sit in no subgroup"
+        verdict = (
+            f"reversed and significant at {self.alpha:g} in: {', '.join(self.flagged)} (evidence of defiers)"
+            if self.flagged
+            else "no subgroup shows a significantly reversed first stage"
+        )
+        return "\n".join(
+            [
+                f"First stage of {self.treatment} by subgroup of {self.by} ({self.grouping}); covariance {self.vcov}",
+                rows,
+                *table,
+                verdict,
+                self.caution,
+            ]
+        )
 
 
 def _groups(column: pd.Series, bins: int) -> tuple[pd.Series, list[str], str]:
@@ -125,9 +173,14 @@ def subgroup_first_stages(
         "small_sample": small_sample,
         "alpha": alpha,
     }
-    overall = placebo_outcomes(data, **spec).rows[0]
+    overall_result = placebo_outcomes(data, **spec)
+    overall = overall_result.rows[0]
     signs = {c.instrument: np.sign(c.coef) for c in overall.coefficients}
     labels, order, grouping = _groups(data[by], bins)
+    used_columns = [treatment, *inst, *as_names(controls, "controls"), *as_names(absorb, "absorb")]
+    used_columns += [*as_names(cluster, "cluster"), *((weights,) if weights else ())]
+    complete = data[[c for c in dict.fromkeys(used_columns) if c in data.columns]].notna().all(axis=1)
+    without_group = int((complete & labels.isna()).sum())
     groups = []
     for label in order:
         sub = data.loc[labels == label]
@@ -153,4 +206,6 @@ def subgroup_first_stages(
         flagged=tuple(g.group for g in groups if g.opposite),
         alpha=alpha,
         vcov=vcov,
+        row_account=overall_result.row_account,
+        rows_without_group=without_group,
     )

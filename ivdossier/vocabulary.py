@@ -1,5 +1,5 @@
-"""The project's words, defined once: identifying conditions, link states, lifecycle states, verdict values and
-the verdict object every document renders.
+"""The project's words, defined once: identifying conditions, link states, lifecycle states, verdict values,
+the verdict object every document renders, and "not applicable".
 
 Every layer imports these names from here; a test fails if another module defines its own copy.
 """
@@ -11,6 +11,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.jsonsafe import Record
 
 CONDITIONS: tuple[str, ...] = ("relevance", "exclusion", "exogeneity", "monotonicity")
 """The four identifying conditions, in the order every document presents them."""
@@ -94,3 +95,21 @@ class Verdict:
 def verdict_key(status: str) -> str:
     """``at risk`` -> ``at-risk``: a verdict value as one token."""
     return status.replace(" ", "-")
+
+
+NOT_APPLICABLE = "not applicable"
+"""The status word of an analysis or statistic that does not apply to a design."""
+
+
+@dataclass(frozen=True)
+class NotApplicable(Record):
+    """A diagnostic or analysis that does not apply to this model, with the reason (said one way everywhere)."""
+
+    reason: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe form: status and reason."""
+        return {"status": NOT_APPLICABLE, "reason": self.reason}
+
+    def __str__(self) -> str:
+        return f"{NOT_APPLICABLE} ({self.reason})"

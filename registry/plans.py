@@ -3,8 +3,12 @@
 A plan's content is plain JSON (drafted by ``ivdossier.workflows.plans``). Freezing seals a document made of the plan's identity, its
 content, the time and the author: canonical JSON (sorted keys, no insignificant whitespace, UTF-8, integral floats
 written as integers, infinities as "inf"/"-inf") hashed with SHA-256. The sealed document is also written to the
-audit trail, so verification (``ivdossier.workflows.plan_check``) can say which field changed, not only that something did. Frozen plans are
-read-only: any ORM update or delete of a frozen row raises ConflictError (a mapper event registered here).
+audit trail as the plan's one seal event (same actor, time and hash as the row), so verification
+(``ivdossier.workflows.plan_check``) can say which field changed, not only that something did; an audit event imported
+from another registry is that registry's history and never counts as this registry's seal (``is_own_seal``). Freezing
+also yields a seal receipt (``seal_receipt``): the canonical bytes, their SHA-256, time, author, plan identity and tool
+version, for a team to keep outside the database. Frozen plans are read-only: any ORM update or delete of a frozen row
+raises ConflictError (a mapper event registered here).
 """
 
 from __future__ import annotations
@@ -13,18 +17,26 @@ import hashlib
 import json
 import math
 from collections.abc import Mapping
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from sqlalchemy import event, inspect
 from sqlmodel import Session, select
 
+from ivdossier import __version__
 from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import records
 from ivdossier.registry.models import AuditEvent, Instrument, Plan, Program, utcnow
 
 PLAN_SCHEMA = "ivdossier-plan/1"
 EXPORT_FORMAT = "ivdossier-frozen-plan/1"
+RECEIPT_FORMAT = "ivdossier-seal-receipt/1"
+SEAL_ACTION = "sealed"
+# Marks of another registry's seal events kept here as history: an action prefix, or a key in the event's `after`.
+IMPORTED_ACTION_PREFIX = "imported:"
+FOREIGN_MARKERS = ("imported", "origin")
+# Seals recorded before the event's time was set to the freeze time carry the clock a moment later.
+LEGACY_SEAL_SLACK = timedelta(seconds=2)
 
 
 # ---------------------------------------------------------------- canonical form
@@ -225,14 +237,15 @@ def freeze_plan(session: Session, *, actor: str, slug: str, at: datetime | None 
         actor=actor,
         action="freeze",
     )
-    records.audit(
+    event_row = records.audit(
         session,
         actor=actor,
-        action="sealed",
+        action=SEAL_ACTION,
         obj=plan,
         before=None,
         after={"sha256": digest, "sealed": sealed},
     )
+    event_row.at = moment  # the seal event carries exactly the row's freeze time and author
     return plan
 
 
@@ -245,17 +258,91 @@ def export_document(session: Session, slug: str) -> str:
     return json.dumps(data, indent=2, sort_keys=True, ensure_ascii=False) + "\n"
 
 
+def _utc(moment: datetime) -> datetime:
+    return moment.replace(tzinfo=UTC) if moment.tzinfo is None else moment.astimezone(UTC)
+
+
+def is_imported_seal(event_row: AuditEvent) -> bool:
+    """True for a seal event kept as another registry's history: the import's action prefix, or an `imported`/
+    `origin` marker in the seal's own `after` (a seal written here has only `sha256` and `sealed`)."""
+    if event_row.action.startswith(IMPORTED_ACTION_PREFIX):
+        return True
+    after = event_row.after if isinstance(event_row.after, dict) else {}
+    return any(after.get(marker) not in (None, False, "", "local") for marker in FOREIGN_MARKERS)
+
+
+def seal_time_agrees(event_row: AuditEvent, plan: Plan) -> bool:
+    """The event's time is the row's freeze time (to the second; older seals may trail it by a moment)."""
+    if plan.frozen_at is None:
+        return False
+    lag = _utc(event_row.at) - _utc(plan.frozen_at)
+    return iso(event_row.at) == iso(plan.frozen_at) or timedelta(0) <= lag <= LEGACY_SEAL_SLACK
+
+
+def is_own_seal(event_row: AuditEvent, plan: Plan | None = None) -> bool:
+    """Whether an audit event is this registry's seal of a plan: a `sealed` event recorded here (not imported).
+
+    With `plan`, the event must also name the plan and agree with its row on actor, time and hash."""
+    if event_row.action != SEAL_ACTION or is_imported_seal(event_row):
+        return False
+    if plan is None:
+        return True
+    after = event_row.after if isinstance(event_row.after, dict) else {}
+    return (
+        event_row.entity_uuid == plan.uuid
+        and event_row.actor == plan.frozen_by
+        and seal_time_agrees(event_row, plan)
+        and after.get("sha256") == plan.sha256
+    )
+
+
+def seal_events(session: Session, plan: Plan) -> list[AuditEvent]:
+    """Every audit event of the plan that records a seal, this registry's or imported, oldest first."""
+    rows = session.exec(
+        select(AuditEvent).where(AuditEvent.entity_uuid == plan.uuid).order_by(AuditEvent.id)  # type: ignore[arg-type]
+    )
+    return [e for e in rows if e.action == SEAL_ACTION or e.action.endswith(":" + SEAL_ACTION)]
+
+
 def recorded_seal(session: Session, plan: Plan) -> dict[str, Any] | None:
-    """The sealed document written to the audit trail when the plan was frozen (latest), or None."""
-    event_row = session.exec(
-        select(AuditEvent)
-        .where(AuditEvent.entity_uuid == plan.uuid, AuditEvent.action == "sealed")
-        .order_by(AuditEvent.id.desc())  # type: ignore[union-attr]
-    ).first()
-    if event_row is None or not isinstance(event_row.after, dict):
+    """The sealed document of the plan's seal event (the latest recorded by this registry), or None."""
+    own = [e for e in seal_events(session, plan) if is_own_seal(e)]
+    if not own or not isinstance(own[-1].after, dict):
         return None
-    sealed = event_row.after.get("sealed")
+    sealed = own[-1].after.get("sealed")
     return sealed if isinstance(sealed, dict) else None
+
+
+# ---------------------------------------------------------------- the seal receipt
+
+
+def seal_receipt(session: Session, plan: Plan, *, written_at: datetime | None = None) -> dict[str, Any]:
+    """The receipt of a frozen plan's seal: the exact canonical bytes hashed (as text), their SHA-256, time, author,
+    plan identity and tool version. Anyone can check it without this tool: the SHA-256 of the UTF-8 bytes of
+    `canonical` is `sha256`."""
+    if plan.state != "frozen":
+        raise InvalidInputError(f"plan {plan.slug!r} is a draft; freeze it before writing a seal receipt.")
+    sealed = sealed_document(session, plan)
+    return {
+        "format": RECEIPT_FORMAT,
+        "plan": plan.slug,
+        "plan_uuid": plan.uuid,
+        "program": sealed.get("program"),
+        "instrument": sealed.get("instrument"),
+        "sealed_at": sealed.get("frozen_at"),
+        "sealed_by": sealed.get("frozen_by"),
+        "sha256": plan.sha256,
+        "canonical": canonical_json(sealed).decode("utf-8"),
+        "written_at": iso(written_at or utcnow()),
+        "tool": f"ivdossier {__version__}",
+        "check": "SHA-256 of the UTF-8 bytes of 'canonical' equals 'sha256'; "
+        "`ivdossier plan verify PLAN --receipt FILE` compares the receipt with a registry.",
+    }
+
+
+def receipt_text(receipt: Mapping[str, Any]) -> str:
+    """The receipt as a file: indented JSON with sorted keys and a final newline."""
+    return json.dumps(dict(receipt), indent=2, sort_keys=True, ensure_ascii=False) + "\n"
 
 
 def plan_dict(session: Session, plan: Plan) -> dict[str, Any]:

@@ -34,7 +34,12 @@ METHOD_NOTES = (
     "The reference distribution is F(1, G − 1) with G reported clusters, F(1, n − 2) with n reported, else "
     "chi-square(1).",
     "**The 1 % level.** The project does not carry the 1 % tF critical values, so significance at 1 % is judged by "
-    "the Anderson–Rubin 99 % set; a result that loses 5 % significance under tF is counted as lost at 1 % too.",
+    "the Anderson–Rubin 99 % set; a result that loses 5 % significance under tF is counted as not significant "
+    "under tF at 1 % too.",
+    "**Each procedure keeps its own verdict.** tF and Anderson–Rubin answer different questions, so the audit "
+    "reports both (for example “not significant under tF; significant under Anderson–Rubin”). A result "
+    "“survives” or is “lost” only when every procedure that applies agrees; otherwise the verdict is "
+    "“procedures disagree”.",
     "**Strength.** The reported first-stage F is set against Stock–Yogo (2005) critical values (derived for "
     "homoskedastic errors, so indicative only for robust or cluster F) and against Montiel Olea–Pflueger "
     "effective-F critical values (exact with one instrument).",
@@ -61,6 +66,17 @@ def _set_text(intervals: Sequence[tuple[float, float]] | None) -> str:
     return " ∪ ".join(_interval(lo, hi) for lo, hi in intervals)
 
 
+def _short(a: StudyAudit, level: float) -> str:
+    """Compact per-procedure answers for a table cell, e.g. "tF no; AR yes"."""
+    names = {"tF": "tF", "Anderson–Rubin": "AR"}
+    parts = [
+        f"{names[p.procedure]} {'yes' if p.significant else 'no'}"
+        for p in a.procedures
+        if p.level == level and p.procedure in names and p.significant is not None
+    ]
+    return "; ".join(parts) or "–"
+
+
 def _study_row(a: StudyAudit) -> list[str]:
     rep = a.reported
     est = f"{_num(rep.estimate)} ({_num(rep.std_error)})" if rep.estimate is not None else "–"
@@ -78,21 +94,25 @@ def _study_row(a: StudyAudit) -> list[str]:
         _num(tf.t_ratio, 3) if tf.t_ratio is not None else "–",
         tf_text,
         ar_text,
-        a.verdict_5pct,
-        a.verdict_1pct,
+        f"{a.verdict_5pct} ({_short(a, 0.05)})" if a.procedures else a.verdict_5pct,
+        f"{a.verdict_1pct} ({_short(a, 0.01)})" if a.procedures else a.verdict_1pct,
     ]
 
 
 def _summary_lines(summary: AuditSummary) -> list[str]:
     v5, v1 = summary.verdicts_5pct, summary.verdicts_1pct
-    sig5 = v5["survives"] + v5["lost"] + v5["cannot be re-examined"]
+    mixed5, mixed1 = v5.get("procedures disagree", 0), v1.get("procedures disagree", 0)
+    sig5 = v5["survives"] + v5["lost"] + mixed5 + v5["cannot be re-examined"]
     lines = [
         f"- **Studies in scope:** {summary.n_studies}; with reported statistics: {summary.n_with_statistics}.",
         f"- **5 % level:** {v5['survives']} of {sig5} results reported as significant survive re-examination, "
-        f"{v5['lost']} lose significance and {v5['cannot be re-examined']} cannot be re-examined; "
+        f"{v5['lost']} lose significance"
+        + (f", for {mixed5} tF and Anderson–Rubin disagree" if mixed5 else "")
+        + f" and {v5['cannot be re-examined']} cannot be re-examined; "
         f"{v5['not significant as reported']} were not significant as reported.",
         f"- **1 % level:** {v1['survives']} survive, {v1['lost']} lose significance, "
-        f"{v1['cannot be re-examined']} cannot be re-examined; {v1['not significant as reported']} were not "
+        + (f"for {mixed1} the procedures disagree, " if mixed1 else "")
+        + f"{v1['cannot be re-examined']} cannot be re-examined; {v1['not significant as reported']} were not "
         "significant at 1 % as reported.",
     ]
     sp = summary.estimates
@@ -126,8 +146,8 @@ def _body(summary: AuditSummary, inputs: AuditInputs, h: str) -> list[str]:
             "t",
             "tF 95 %",
             "AR 95 % (covariance)",
-            "5 %",
-            "1 %",
+            "5 % (each procedure)",
+            "1 % (each procedure)",
         ]
         rows = [_study_row(a) for a in summary.studies]
         parts.append(f"{h}# Study by study\n\n" + mt.table(headers, rows, "lrrrllll"))
@@ -135,6 +155,10 @@ def _body(summary: AuditSummary, inputs: AuditInputs, h: str) -> list[str]:
     details = []
     for a in summary.studies:
         lines = [f"{h}## {mt.inline(a.citation or a.key)}"]
+        if a.procedures:
+            lines.append(
+                f"At 5 %: {mt.inline(a.procedure_text(0.05))}. At 1 %: {mt.inline(a.procedure_text(0.01))}."
+            )
         if a.flags:
             lines.append("\n".join(f"- {mt.inline(f)}" for f in a.flags))
         if a.strength.applicable:

@@ -13,12 +13,10 @@ from typing import TYPE_CHECKING, Any
 
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
-from ivdossier.reports.estimates import estimates_markdown
+from ivdossier.reports.estimates import ar_set_of, effective_f_of, estimates_markdown, treatment_of
 from ivdossier.reports.evidence_doc import evidence_markdown, sensitivity_figures
 from ivdossier.reports.inputs import CONDITIONS, READING_ASPECTS, DossierInput, LinkInfo, RunInfo
 from ivdossier.reports.provenance import provenance_markdown
-from ivdossier.reports.resultview import get as _get
-from ivdossier.reports.resultview import treatment_name
 from ivdossier.vocabulary import Verdict
 
 if TYPE_CHECKING:
@@ -77,8 +75,7 @@ def dossier_figures(inp: DossierInput) -> dict[str, str]:
         elif kind == "first-stage" and run is not None and run.first_stage_bins is not None:
             out[key] = plots.first_stage_svg(run.first_stage_bins, key=key)
         elif kind == "ar-curve" and run is not None and run.ar_curve is not None:
-            ar = rv.intervals(rv.section(run.results, "weak_iv_robust", "anderson_rubin"))
-            out[key] = plots.ar_curve_svg(run.ar_curve, ar_set=ar, key=key)
+            out[key] = plots.ar_curve_svg(run.ar_curve, ar_set=ar_set_of(run.result), key=key)
     return out
 
 
@@ -210,23 +207,17 @@ def _glance_row(v: Verdict) -> list[str]:
 
 
 def _run_key_numbers(inp: DossierInput, run: RunInfo) -> str:
-    name = treatment_name(run, inp.program.treatment)
-    pieces = []
-    if name is not None:
-        est = rv.num(_get(run.results, "coef", name))
-        se = rv.num(_get(run.results, "se", name))
-        if est is not None:
-            pieces.append(
-                f"estimate {rv.fmt(est)}" + (f" (standard error {rv.fmt(se)})" if se is not None else "")
-            )
-    feff, _ = rv.effective_f(run.results)
+    res = run.result
+    if res is None:
+        return ""
+    name = treatment_of(res, inp.program.treatment)
+    pieces = [f"estimate {rv.fmt(res.coef_of(name))} (standard error {rv.fmt(res.se_of(name))})"]
+    feff, _ = effective_f_of(res)
     if feff is not None:
         pieces.append(f"effective F {rv.fmt(feff)}")
-    ar = rv.intervals(rv.section(run.results, "weak_iv_robust", "anderson_rubin"))
+    ar = ar_set_of(res)
     if ar is not None:
         pieces.append(f"Anderson–Rubin set {rv.fmt_set(ar)}")
-    if not pieces:
-        return ""
     label = mt.inline(rv.method_label(run.method)) + (f", {mt.inline(run.vcov)}" if run.vcov else "")
     if run.primary:
         which = f"Primary run **{mt.inline(run.slug)}**"

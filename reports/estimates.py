@@ -6,14 +6,23 @@ A section the run does not report is left out; a section the estimation marked n
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+import math
 from typing import Any
 
+from ivdossier.estimation.diagnostics import DiagnosticSuite
+from ivdossier.estimation.result import EstimationResult
+from ivdossier.estimation.robust_inference import AndersonRubin, CLRResult, TFResult
+from ivdossier.estimation.specification import Endogeneity, OverId
+from ivdossier.estimation.strength import StrengthSection
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.inputs import DossierInput, RunInfo
-from ivdossier.reports.resultview import get as _get
-from ivdossier.reports.resultview import treatment_name
+from ivdossier.vocabulary import NotApplicable
+
+LEGACY_RUN = (
+    "stored by ivdossier 0.1 before runs kept a typed result; its numbers are left out here (rerun it to show "
+    "them, or read them with `ivdossier run show`)"
+)
 
 
 def estimates_markdown(inp: DossierInput, run: RunInfo | None) -> str:
@@ -21,14 +30,19 @@ def estimates_markdown(inp: DossierInput, run: RunInfo | None) -> str:
     if not inp.runs or run is None:
         return ""
     out = ["## Estimates and diagnostics", _runs_overview(inp)]
-    res = run.results
+    res = run.result
+    if res is None:
+        note = f"### Run {mt.inline(run.slug)} in detail\n\nRun {mt.inline(run.slug)} was {LEGACY_RUN}."
+        out.extend(d for d in (note, _plots(inp, run)) if d)
+        return "\n\n".join(out)
+    suite = res.diagnostics
     detail = [
-        _first_stage(res),
-        _reduced_form(res),
-        _strength(res),
-        _robust_inference(inp, run),
-        _tests(res, "overid", "Over-identification", _OVERID_NOTE),
-        _tests(res, "endogeneity", "Endogeneity of the treatment", _ENDOG_NOTE),
+        _first_stage(suite),
+        _reduced_form(suite),
+        _strength(suite),
+        _robust_inference(inp, run, res),
+        _tests(suite, "overid", "Over-identification", _OVERID_NOTE),
+        _tests(suite, "endogeneity", "Endogeneity of the treatment", _ENDOG_NOTE),
         _plots(inp, run),
     ]
     detail = [d for d in detail if d]
@@ -36,57 +50,95 @@ def estimates_markdown(inp: DossierInput, run: RunInfo | None) -> str:
         meta = [f"method {mt.inline(rv.method_label(run.method))}"]
         if run.vcov:
             meta.append(f"covariance {mt.inline(run.vcov)}")
-        for key, label in (("n", "observations"), ("n_dropped", "incomplete rows left out")):
-            if rv.num(res.get(key)):
-                meta.append(f"{label} {rv.fmt(res.get(key), 12)}")
-        clusters = _clusters(res)
-        if clusters:
-            meta.append(f"clusters {clusters}")
+        for value, label in ((res.n, "observations"), (res.n_dropped, "incomplete rows left out")):
+            if value:
+                meta.append(f"{label} {rv.fmt(value, 12)}")
+        if res.n_clusters:
+            meta.append("clusters " + " × ".join(rv.fmt(v, 12) for v in res.n_clusters))
         out.append(f"### Run {mt.inline(run.slug)} in detail\n\n" + "; ".join(meta) + ".")
         out.extend(detail)
     return "\n\n".join(out)
 
 
-def _clusters(res: Mapping[str, Any]) -> str:
-    raw = res.get("n_clusters")
-    values = raw if isinstance(raw, Sequence) and not isinstance(raw, str) else [raw]
-    nums = [rv.num(v) for v in values]
-    return " × ".join(rv.fmt(v, 12) for v in nums if v is not None)
+def _stat(value: float | None, digits: int = 4) -> str:
+    """A statistic, or a dash when the run has none (absent or not a number)."""
+    return "–" if value is None or math.isnan(value) else rv.fmt(value, digits)
 
 
-def _level_text(res: Mapping[str, Any]) -> str:
-    alpha = rv.num(res.get("alpha"))
-    return f"{rv.fmt(100 * (1 - alpha), 3)} %" if alpha is not None and 0 < alpha < 1 else ""
+def _level_text(res: EstimationResult) -> str:
+    return f"{rv.fmt(100 * (1 - res.alpha), 3)} %" if 0 < res.alpha < 1 else ""
+
+
+def treatment_of(res: EstimationResult, fallback: str = "") -> str:
+    """The coefficient name of the treatment: the spec's treatment, the program's, or the first regressor."""
+    stated = res.spec.get("treatment")
+    first = stated[0] if isinstance(stated, list | tuple) and stated else stated
+    for name in (first, fallback):
+        if isinstance(name, str) and name in res.names:
+            return name
+    return res.names[0]
+
+
+def wald_interval(res: EstimationResult, name: str) -> list[rv.Interval]:
+    """The conventional (1 - alpha) interval of one coefficient, as a one-piece set."""
+    low, high = res.ci[res.names.index(name)]
+    return [(float(low), float(high))]
+
+
+def suite_of(res: EstimationResult | None) -> DiagnosticSuite | None:
+    """The run's diagnostics when they were computed (None for OLS, failures and old runs)."""
+    return res.diagnostics if res is not None and isinstance(res.diagnostics, DiagnosticSuite) else None
+
+
+def effective_f_of(res: EstimationResult | None) -> tuple[float | None, dict[int, float]]:
+    """The effective F and its critical values keyed by whole-percent tau (None when not computed)."""
+    suite = suite_of(res)
+    eff = suite.strength.effective_f if suite is not None else None
+    if eff is None or math.isnan(eff.statistic):
+        return None, {}
+    cvs = {round(t * 100): c for t, c in eff.critical_values.items() if not math.isnan(c)}
+    return eff.statistic, dict(sorted(cvs.items()))
+
+
+def ar_set_of(res: EstimationResult | None) -> list[rv.Interval] | None:
+    """The Anderson–Rubin confidence set (None when not computed or not available)."""
+    suite = suite_of(res)
+    if suite is None or suite.weak_iv_robust.anderson_rubin.intervals is None:
+        return None
+    return [(float(lo), float(hi)) for lo, hi in suite.weak_iv_robust.anderson_rubin.intervals]
 
 
 def _runs_overview(inp: DossierInput) -> str:
     rows = []
     levels = set()
+    legacy = []
     for run in sorted(inp.runs, key=lambda r: (r.created_text, r.slug)):
-        name = treatment_name(run, inp.program.treatment)
-        res = run.results
+        res = run.result
+        label = mt.cell(rv.method_label(run.method) + (f" · {run.vcov}" if run.vcov else ""))
+        if res is None:
+            legacy.append(mt.inline(run.slug))
+            rows.append([mt.cell(run.slug), label, "–", "–", "–", "–", "–", "–"])
+            continue
+        name = treatment_of(res, inp.program.treatment)
         levels.add(_level_text(res))
-        est = rv.num(_get(res, "coef", name)) if name else None
-        se = rv.num(_get(res, "se", name)) if name else None
-        ci = rv.intervals(_get(res, "ci", name)) if name else None
-        ar = rv.intervals(rv.section(res, "weak_iv_robust", "anderson_rubin"))
-        feff, _ = rv.effective_f(res)
+        feff, _ = effective_f_of(res)
+        ar = ar_set_of(res)
         rows.append(
             [
                 mt.cell(run.slug),
-                mt.cell(rv.method_label(run.method) + (f" · {run.vcov}" if run.vcov else "")),
-                rv.fmt(est),
-                rv.fmt(se),
-                rv.fmt_set(ci) if ci else "–",
+                label,
+                rv.fmt(res.coef_of(name)),
+                rv.fmt(res.se_of(name)),
+                rv.fmt_set(wald_interval(res, name)),
                 rv.fmt(feff) if feff is not None else "–",
                 rv.fmt_set(ar) if ar is not None else "–",
-                rv.fmt(res.get("n"), 12) if rv.num(res.get("n")) is not None else "–",
+                rv.fmt(res.n, 12),
             ]
         )
     title = mt.inline(inp.program.treatment) if inp.program.treatment else "the treatment"
     level = next(iter(levels)) if len(levels) == 1 and "" not in levels else ""
     sets = f" Intervals and Anderson–Rubin (AR) sets are at the {level} level." if level else ""
-    return (
+    text = (
         f"### Effect of {title} across runs\n\n"
         "Ordinary least squares rows sit beside the instrumental-variable rows, so the gap between them shows."
         + sets
@@ -106,37 +158,32 @@ def _runs_overview(inp: DossierInput) -> str:
             "llrrrrrr",
         )
     )
+    if legacy:
+        text += f"\n\nRun(s) {', '.join(legacy)} were {LEGACY_RUN}."
+    return text
 
 
-def _coef_with_se(value: Any, se: Any) -> str:
+def _coef_with_se(value: float, se: float | None) -> str:
     text = rv.fmt(value)
-    se_num = rv.num(value.get("se")) if isinstance(value, Mapping) else rv.num(se)
-    return f"{text} ({rv.fmt(se_num)})" if se_num is not None else text
+    return f"{text} ({rv.fmt(se)})" if se is not None and not math.isnan(se) else text
 
 
-def _ses(entry: Mapping[str, Any]) -> Mapping[str, Any]:
-    for key in ("std_errors", "se"):
-        if isinstance(entry.get(key), Mapping):
-            return entry[key]  # type: ignore[no-any-return]
-    return {}
-
-
-def _first_stage(res: Mapping[str, Any]) -> str:
-    entries = rv.first_stage_rows(res)
-    if not entries:
+def _first_stage(suite: Any) -> str:
+    if not isinstance(suite, DiagnosticSuite) or not suite.first_stage.rows:
         return ""
     rows = []
-    for endog, entry in entries.items():
-        coefs = entry.get("coefficients", entry.get("coef"))
-        ses = _ses(entry)
-        stats = [rv.fmt(entry.get(k)) if entry.get(k) is not None else "–" for k in ("partial_f", "robust_f")]
-        stats.append(rv.fmt(entry.get("partial_r2"), 3) if entry.get("partial_r2") is not None else "–")
-        if isinstance(coefs, Mapping) and coefs:
-            for i, (inst, value) in enumerate(coefs.items()):
-                lead = [mt.cell(endog) if i == 0 else "", mt.cell(inst), _coef_with_se(value, ses.get(inst))]
+    for entry in suite.first_stage.rows:
+        stats = [_stat(entry.partial_f), _stat(entry.robust_f), _stat(entry.partial_r2, 3)]
+        if entry.coefficients:
+            for i, (inst, value) in enumerate(entry.coefficients.items()):
+                lead = [
+                    mt.cell(entry.endog) if i == 0 else "",
+                    mt.cell(inst),
+                    _coef_with_se(value, entry.std_errors.get(inst)),
+                ]
                 rows.append(lead + (stats if i == 0 else ["", "", ""]))
         else:
-            rows.append([mt.cell(endog), "–", "–", *stats])
+            rows.append([mt.cell(entry.endog), "–", "–", *stats])
     return (
         "#### First stage (treatment on instruments)\n\n"
         + mt.table(
@@ -148,67 +195,56 @@ def _first_stage(res: Mapping[str, Any]) -> str:
     )
 
 
-def _reduced_form(res: Mapping[str, Any]) -> str:
-    red = rv.section(res, "reduced_form")
-    if red is None:
+def _reduced_form(suite: Any) -> str:
+    if not isinstance(suite, DiagnosticSuite):
         return ""
-    coefs = red.get("coefficients", red.get("coef"))
-    ses = _ses(red)
-    rows = []
-    if isinstance(coefs, Mapping):
-        rows = [[mt.cell(inst), _coef_with_se(value, ses.get(inst))] for inst, value in coefs.items()]
+    red = suite.reduced_form
+    rows = [
+        [mt.cell(inst), _coef_with_se(value, red.std_errors.get(inst))]
+        for inst, value in red.coefficients.items()
+    ]
     if not rows:
         return ""
     text = "#### Reduced form (outcome on instruments)\n\n" + mt.table(
         ["Instrument", "Coefficient (s.e.)"], rows, "lr"
     )
-    wald, p = rv.num(red.get("wald_f")), rv.pvalue(red)
-    if wald is not None:
+    if not math.isnan(red.wald_f):
         text += (
-            f"\n\nJoint test that every reduced-form coefficient is zero: F = {rv.fmt(wald)}, {rv.p_clause(p)}. "
+            f"\n\nJoint test that every reduced-form coefficient is zero: F = {rv.fmt(red.wald_f)}, "
+            f"{rv.p_clause(None if math.isnan(red.p_value) else red.p_value)}. "
             "With valid instruments this is also a weak-instrument-robust test of no effect."
         )
     return text
 
 
-_STRENGTH_ROWS = (
-    ("kp_rk_wald_f", "Kleibergen–Paap rk Wald F", "kp_rk_wald_reason"),
-    ("cragg_donald_f", "Cragg–Donald F", "cragg_donald_reason"),
-    ("sanderson_windmeijer_f", "Sanderson–Windmeijer F", "sanderson_windmeijer_reason"),
-)
-
-
-def _stock_yogo_rows(strength: Mapping[str, Any]) -> list[list[str]]:
-    raw = strength.get("stock_yogo")
-    if isinstance(raw, Mapping):
-        raw = raw.get("values")
+def _stock_yogo_rows(strength: StrengthSection) -> list[list[str]]:
     rows = []
-    if isinstance(raw, Sequence) and not isinstance(raw, str):
-        for entry in raw:
-            if not isinstance(entry, Mapping) or rv.num(entry.get("critical_value")) is None:
-                continue
-            level = rv.num(entry.get("level"))
-            level_text = f"{rv.fmt(level * 100 if level is not None and level < 1 else level, 3)} %"
-            criterion = str(entry.get("criterion", "")).replace("_", " ")
-            rows.append(
-                [
-                    mt.cell(rv.method_label(str(entry.get("estimator", "")))),
-                    mt.cell(f"{criterion} at most {level_text}"),
-                    rv.fmt(entry.get("critical_value")),
-                ]
-            )
+    for entry in strength.stock_yogo:
+        if entry.critical_value is None or math.isnan(entry.critical_value):
+            continue
+        level = entry.level * 100 if entry.level < 1 else entry.level
+        criterion = entry.criterion.replace("_", " ")
+        rows.append(
+            [
+                mt.cell(rv.method_label(entry.estimator)),
+                mt.cell(f"{criterion} at most {rv.fmt(level, 3)} %"),
+                rv.fmt(entry.critical_value),
+            ]
+        )
     return rows
 
 
-def _strength(res: Mapping[str, Any]) -> str:
-    strength = rv.section(res, "strength")
-    if strength is None:
+def _strength(suite: Any) -> str:
+    if not isinstance(suite, DiagnosticSuite):
         return ""
+    strength = suite.strength
     rows = []
     sentences = []
     skipped = []
-    feff, cvs = rv.effective_f(res)
-    if feff is not None:
+    eff = strength.effective_f
+    if eff is not None and not math.isnan(eff.statistic):
+        feff = eff.statistic
+        cvs = dict(sorted((round(t * 100), c) for t, c in eff.critical_values.items() if not math.isnan(c)))
         cv_text = "; ".join(f"τ = {tau} %: {rv.fmt(v)}" for tau, v in cvs.items()) or "–"
         rows.append(["Effective F (Montiel Olea–Pflueger)", rv.fmt(feff), cv_text])
         passed = [tau for tau, v in cvs.items() if feff >= v]
@@ -223,18 +259,19 @@ def _strength(res: Mapping[str, Any]) -> str:
                 f"The effective F of {rv.fmt(feff)} is below every listed critical value: the instruments may be "
                 "weak, so the conventional interval can mislead — lean on the weak-instrument-robust sets."
             )
-    elif strength.get("effective_f_reason"):
-        skipped.append(f"effective F — {mt.inline(strength['effective_f_reason'])}")
-    for key, label, reason_key in _STRENGTH_ROWS:
-        value = strength.get(key)
-        if isinstance(value, Mapping) and rv.num(value) is None:
-            for endog, inner in value.items():
-                if rv.num(inner) is not None:
-                    rows.append([f"{label}, {mt.inline(endog)}", rv.fmt(inner), "–"])
-        elif rv.num(value) is not None:
-            rows.append([label, rv.fmt(value), "–"])
-        elif strength.get(reason_key):
-            skipped.append(f"{label} — {mt.inline(strength[reason_key])}")
+    elif strength.effective_f_reason:
+        skipped.append(f"effective F — {mt.inline(strength.effective_f_reason)}")
+    if not math.isnan(strength.kp_rk.f_form):
+        rows.append(["Kleibergen–Paap rk Wald F", rv.fmt(strength.kp_rk.f_form), "–"])
+    if not math.isnan(strength.cragg_donald_f):
+        rows.append(["Cragg–Donald F", rv.fmt(strength.cragg_donald_f), "–"])
+    label = "Sanderson–Windmeijer F"
+    if strength.sanderson_windmeijer_f is not None:
+        for endog, value in strength.sanderson_windmeijer_f.items():
+            if not math.isnan(value):
+                rows.append([f"{label}, {mt.inline(endog)}", rv.fmt(value), "–"])
+    elif strength.sanderson_windmeijer_reason:
+        skipped.append(f"{label} — {mt.inline(strength.sanderson_windmeijer_reason)}")
     sy_rows = _stock_yogo_rows(strength)
     if not rows and not sy_rows:
         return ""
@@ -257,35 +294,41 @@ def _strength(res: Mapping[str, Any]) -> str:
     return text
 
 
-def _robust_inference(inp: DossierInput, run: RunInfo) -> str:
-    res = run.results
-    rows = []
-    name = treatment_name(run, inp.program.treatment)
-    ci = rv.intervals(_get(res, "ci", name)) if name else None
-    if ci:
-        rows.append(["Conventional Wald interval", rv.fmt_set(ci), "–", "–"])
-    labels = (
-        ("anderson_rubin", "Anderson–Rubin"),
-        ("clr", "Conditional likelihood ratio (CLR)"),
-        ("tf", "tF"),
-    )
+def _p(value: float | None) -> str:
+    return rv.fmt_p(None if value is None or math.isnan(value) else value)
+
+
+def _robust_inference(inp: DossierInput, run: RunInfo, res: EstimationResult) -> str:
+    rows = [
+        [
+            "Conventional Wald interval",
+            rv.fmt_set(wald_interval(res, treatment_of(res, inp.program.treatment))),
+            "–",
+            "–",
+        ]
+    ]
+    suite = suite_of(res)
+    if suite is None:
+        return ""
     skipped = []
-    for key, label in labels:
-        node = rv.section(res, "weak_iv_robust", key)
-        if node is None:
-            reason = rv.not_applicable_reason(_get(res, "weak_iv_robust", key))
-            if reason:
-                skipped.append(f"{label} — {mt.inline(reason)}")
+    procedures: tuple[tuple[str, AndersonRubin | CLRResult | TFResult], ...] = (
+        ("Anderson–Rubin", suite.weak_iv_robust.anderson_rubin),
+        ("Conditional likelihood ratio (CLR)", suite.weak_iv_robust.clr),
+        ("tF", suite.weak_iv_robust.tf),
+    )
+    for label, node in procedures:
+        if isinstance(node, TFResult | CLRResult) and not node.applicable:
+            if node.reason:
+                skipped.append(f"{label} — {mt.inline(node.reason)}")
             continue
-        sets = rv.intervals(node)
-        if key == "tf":
-            cv = rv.num(node.get("critical_value"))
-            stat = f"critical value {rv.fmt(cv)}" if cv is not None else "–"
+        if isinstance(node, TFResult):
+            sets = None if node.interval is None else [(float(node.interval[0]), float(node.interval[1]))]
+            cv = node.critical_value
+            stat = f"critical value {rv.fmt(cv)}" if cv is not None and not math.isnan(cv) else "–"
             rows.append([label, rv.fmt_set(sets), stat, "–"])
         else:
-            stat_num = rv.num(node.get("statistic", node.get("stat")))
-            stat = rv.fmt(stat_num) if stat_num is not None else "–"
-            rows.append([label, rv.fmt_set(sets), stat, rv.fmt_p(rv.pvalue(node))])
+            sets = None if node.intervals is None else [(float(lo), float(hi)) for lo, hi in node.intervals]
+            rows.append([label, rv.fmt_set(sets), _stat(node.statistic), _p(node.p_value)])
     if len(rows) < 2:
         return ""
     level = _level_text(res)
@@ -320,34 +363,24 @@ _ENDOG_NOTE = (
 )
 
 
-def _tests(res: Mapping[str, Any], key: str, title: str, note: str) -> str:
-    node = rv.section(res, key)
-    if node is None:
-        reason = rv.section_reason(res, key)
-        return f"#### {title}\n\nNot computed: {mt.inline(reason)}." if reason else ""
-    items: list[tuple[str, Mapping[str, Any]]] = []
-    if "statistic" in node:
-        if rv.num(node.get("statistic")) is None:
-            reason = node.get("reason")
-            return f"#### {title}\n\nNot computed: {mt.inline(reason)}." if reason else ""
-        items.append((str(node.get("test", node.get("name", key))), node))
-    else:
-        for sub, inner in node.items():
-            if isinstance(inner, Mapping) and rv.num(inner.get("statistic")) is not None:
-                items.append((str(inner.get("test", inner.get("name", sub))), inner))
-    if not items:
+def _tests(suite: Any, key: str, title: str, note: str) -> str:
+    if isinstance(suite, NotApplicable):
+        return f"#### {title}\n\nNot computed: {mt.inline(suite.reason)}."
+    if not isinstance(suite, DiagnosticSuite):
         return ""
-    rows = [
-        [
-            mt.cell(_pretty(label)),
-            rv.fmt(inner.get("statistic")),
-            rv.fmt(inner.get("df")) if rv.num(inner.get("df")) is not None else "–",
-            rv.fmt_p(rv.pvalue(inner)),
-        ]
-        for label, inner in items
+    node: OverId | Endogeneity = getattr(suite, key)
+    if node.statistic is None or math.isnan(node.statistic):
+        reason = getattr(node, "reason", None)
+        return f"#### {title}\n\nNot computed: {mt.inline(reason)}." if reason else ""
+    label = node.test if isinstance(node, OverId) else "durbin_wu_hausman_control_function"
+    row = [
+        mt.cell(_pretty(str(label or key))),
+        rv.fmt(node.statistic),
+        rv.fmt(node.df) if node.df is not None else "–",
+        _p(node.p_value),
     ]
     return (
-        f"#### {title}\n\n" + mt.table(["Test", "Statistic", "df", "p-value"], rows, "lrrr") + "\n\n" + note
+        f"#### {title}\n\n" + mt.table(["Test", "Statistic", "df", "p-value"], [row], "lrrr") + "\n\n" + note
     )
 
 

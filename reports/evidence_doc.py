@@ -111,6 +111,9 @@ def _sensitivity(runs: tuple[SensitivityInfo, ...]) -> str:
                 ],
             ]
         block = [_run_head(s.slug, s.created_text, what)]
+        if s.note:
+            out.append("\n\n".join([*block, mt.inline(s.note) + "."]))
+            continue
         if base:
             block.append(base)
         block.append(mt.table(["Quantity", "Value"], rows, "ll"))
@@ -194,6 +197,9 @@ def _compliers(runs: tuple[CompliersInfo, ...]) -> str:
     for c in runs:
         what = f"compliance types for {mt.inline(c.instrument)} → {mt.inline(c.treatment)}"
         block = [_run_head(c.slug, c.created_text, what)]
+        if c.note:
+            out.append("\n\n".join([*block, mt.inline(c.note) + "."]))
+            continue
         level = f"{100 * (1 - c.alpha):g} %"
         rows = [
             [mt.cell(s.group), fmt(s.estimate, 3), fmt(s.se, 3), _interval(*s.ci) if s.ci else "–"]
@@ -234,6 +240,9 @@ def _power(runs: tuple[PowerInfo, ...]) -> str:
     out = ["## Power and minimum detectable effect"]
     for p in runs:
         block = [_run_head(p.slug, p.created_text, "planned 2SLS design")]
+        if p.note:
+            out.append("\n\n".join([*block, mt.inline(p.note) + "."]))
+            continue
         rows = [
             ["Observations", str(p.n) if p.n is not None else "–"],
             ["Standard error of 2SLS", fmt(p.se)],
@@ -246,6 +255,8 @@ def _power(runs: tuple[PowerInfo, ...]) -> str:
                 [f"Observations for {_pct(p.target_power)} power", str(p.n_required) if p.n_required else "–"]
             )
         block.append(mt.table(["Quantity", "Value"], rows, "lr"))
+        if p.reliability:
+            block.append("**How far to trust the analytic figure.** " + mt.inline(p.reliability))
         if p.assumptions:
             block.append("Assumptions:\n\n" + "\n".join(f"- {mt.inline(a)}" for a in p.assumptions))
         out.append("\n\n".join(block))

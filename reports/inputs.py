@@ -10,9 +10,12 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
+from functools import cached_property
 from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.result import EstimationResult
+from ivdossier.jsonsafe import RECORD_KEY, load_record
 from ivdossier.vocabulary import CONDITIONS, LINK_STATES, READING_ASPECTS, Verdict
 
 if TYPE_CHECKING:
@@ -172,7 +175,8 @@ class ArCurve:
 
 @dataclass(frozen=True)
 class RunInfo:
-    """One estimation run: exact spec, data fingerprint, the estimation result's to_dict(), versions, timing."""
+    """One estimation run: exact spec, data fingerprint, the stored results (the typed result is ``result``),
+    versions, timing."""
 
     slug: str
     created_at: datetime | str
@@ -194,6 +198,15 @@ class RunInfo:
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "warnings", _as_tuple(self.warnings))
+
+    @cached_property
+    def result(self) -> EstimationResult | None:
+        """The typed estimation result stored with the run (None for runs stored before typed records)."""
+        record = self.results.get(RECORD_KEY) if isinstance(self.results, Mapping) else None
+        if not isinstance(record, Mapping):
+            return None
+        value = load_record(record)
+        return value if isinstance(value, EstimationResult) else None
 
     @property
     def created_text(self) -> str:
@@ -232,6 +245,7 @@ class SensitivityInfo:
     breakdown_share_of_reduced_form: float | None = None
     covered_without_direct_effect: bool | None = None
     svg: str = ""
+    note: str = ""  # e.g. a run stored before typed records, shown without its numbers
 
     def __post_init__(self) -> None:
         if self.method not in ("union", "local-to-zero", "breakdown"):
@@ -318,6 +332,7 @@ class CompliersInfo:
     profile: tuple[ComplierProfileRow, ...] = ()
     alpha: float = 0.05
     se_method: str = ""
+    note: str = ""
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "shares", _as_tuple(self.shares))
@@ -345,6 +360,8 @@ class PowerInfo:
     n_required: int | None = None
     expected_f: float | None = None
     assumptions: tuple[str, ...] = ()
+    reliability: str = ""  # how far the analytic figure can be trusted
+    note: str = ""
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "assumptions", _as_tuple(self.assumptions))

@@ -1,5 +1,10 @@
 """SVG figures for documents: first-stage binned scatter, Anderson-Rubin curve, and verdict badges.
 
+The first-stage figure plots the treatment against the instrument (both with the controls partialled out) with
+the first-stage slope estimated on every row and the number of rows; the Anderson–Rubin figure's range holds
+every finite end of the confidence set. The words on each figure come from small pure functions
+(:func:`first_stage_texts`, :func:`ar_plot_range`) so that tests can read them.
+
 matplotlib is imported lazily and used through its object API (no pyplot, no global backend switch). Output is
 deterministic: a fixed `svg.hashsalt` per figure key, no date in the metadata, and text drawn as paths, so the
 SVG carries no user text as markup.
@@ -10,10 +15,13 @@ from __future__ import annotations
 import io
 import math
 from collections.abc import Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.reports.inputs import ArCurve, FirstStageBins
+
+if TYPE_CHECKING:  # the estimation type is only named here, so importing this module stays light
+    from ivdossier.estimation.plot_data import FirstStagePlot
 from ivdossier.reports.mdtext import clean
 
 INK = "#22262b"
@@ -63,30 +71,66 @@ def _render(key: str, draw: Any, size: tuple[float, float] = (6.4, 3.3)) -> str:
     return buf.getvalue()
 
 
-def first_stage_svg(bins: FirstStageBins, *, key: str = "first-stage") -> str:
-    """Binned means of treatment against instrument, with the least-squares line through the bin means."""
+def _is_full(bins: FirstStageBins | FirstStagePlot) -> bool:
+    """True for a :class:`FirstStagePlot` (it records n, the kind of x axis and the slope)."""
+    return hasattr(bins, "x_kind") and hasattr(bins, "slope")
+
+
+def first_stage_texts(bins: FirstStageBins | FirstStagePlot) -> dict[str, str]:
+    """Title, axis labels and line label of the first-stage figure (never "slope 1", never fitted values as Z)."""
+    if _is_full(bins):
+        assert not isinstance(bins, FirstStageBins)
+        rows = f"n = {bins.n:,} rows" if bins.n else "rows not recorded"
+        if bins.slope is not None:
+            se = f", SE {bins.slope_se:.2g}" if bins.slope_se is not None else ""
+            line = f"first-stage slope {bins.slope:.3g}{se} (all rows)"
+        else:
+            line = ""
+        what = "instrument" if bins.x_kind == "instrument" else "first-stage prediction"
+        title = f"First stage: {rows}; points are means of {bins.n_bins} equal-count bins of the {what}"
+        return {"title": title, "x": bins.x_label, "y": bins.y_label, "line": line}
+    return {
+        "title": "First stage: points are bin means",
+        "x": bins.x_label,
+        "y": bins.y_label,
+        "line": "least-squares line through the bin means",
+    }
+
+
+def first_stage_svg(bins: FirstStageBins | FirstStagePlot, *, key: str = "first-stage") -> str:
+    """Binned means of the treatment against the instrument, with the first-stage slope when it is known.
+
+    A :class:`FirstStagePlot` (from ``estimation.plot_data``) carries n and the slope from every row; an older
+    :class:`FirstStageBins` only bins, so its line is fitted through the bin means and labelled so.
+    """
     import numpy as np
 
-    x = np.asarray(bins.x_bins)
-    y = np.asarray(bins.y_bins)
+    x = np.asarray(bins.x_bins, dtype=float)
+    y = np.asarray(bins.y_bins, dtype=float)
+    if x.size != y.size or x.size < 2:
+        raise InvalidInputError(
+            "first-stage bins need equally long x_bins and y_bins with at least 2 points."
+        )
     if np.ptp(x) == 0:
         raise InvalidInputError("first-stage x_bins are all equal; bin the instrument over its range.")
-    slope, intercept = np.polyfit(x, y, 1)
+    texts = first_stage_texts(bins)
+    line: tuple[float, float] | None
+    if not isinstance(bins, FirstStageBins) and _is_full(bins):
+        line = None if bins.slope is None else (bins.intercept or 0.0, bins.slope)
+    else:
+        slope, intercept = np.polyfit(x, y, 1)
+        line = (float(intercept), float(slope))
 
     def draw(ax: Any) -> None:
         grid = np.linspace(x.min(), x.max(), 50)
         ax.grid(True, color=GRID, linewidth=0.6)
         ax.set_axisbelow(True)
-        ax.plot(
-            grid,
-            intercept + slope * grid,
-            color=ACCENT,
-            linewidth=1.6,
-            label=f"fitted line (slope {slope:.3g})",
-        )
+        if line is not None and texts["line"]:
+            ax.plot(grid, line[0] + line[1] * grid, color=ACCENT, linewidth=1.6, label=_label(texts["line"]))
         ax.scatter(x, y, s=30, color="white", edgecolor=INK, linewidth=1.2, zorder=3, label="bin means")
-        ax.set_xlabel(_label(bins.x_label))
-        ax.set_ylabel(_label(bins.y_label))
+        ax.set_xlabel(_label(texts["x"]))
+        ax.set_ylabel(_label(texts["y"]))
+        ax.set_title(clean(texts["title"]).replace("$", r"\$")[:110], fontsize=8, color=MUTED, loc="left")
         ax.legend(loc="best", fontsize=8)
 
     return _render(key, draw)
@@ -110,19 +154,33 @@ def ar_intervals_from_curve(curve: ArCurve) -> list[tuple[float, float]]:
     return out
 
 
+def ar_plot_range(
+    curve: ArCurve, pieces: Sequence[tuple[float, float]], *, margin: float = 0.06
+) -> tuple[float, float]:
+    """x range of the AR figure: the curve's grid, widened to hold every finite end of the set (with a margin)."""
+    lo, hi = float(min(curve.betas)), float(max(curve.betas))
+    ends = [e for piece in pieces for e in piece if math.isfinite(e)]
+    if ends and (min(ends) < lo or max(ends) > hi):
+        lo, hi = min(lo, min(ends)), max(hi, max(ends))
+        pad = margin * (hi - lo)
+        lo, hi = lo - pad, hi + pad
+    return lo, hi
+
+
 def ar_curve_svg(
     curve: ArCurve, *, ar_set: Sequence[tuple[float, float]] | None = None, key: str = "ar-curve"
 ) -> str:
     """AR statistic against the hypothesised effect, the critical value (dashed) and the confidence set (shaded).
 
-    `ar_set` is the set the estimation reported; without it the set is read off the grid.
+    `ar_set` is the set the estimation reported; without it the set is read off the grid. The x range always
+    holds every finite end of the set (:func:`ar_plot_range`).
     """
     import numpy as np
 
     betas = np.asarray(curve.betas)
     stats = np.asarray(curve.stats)
     pieces = list(ar_set) if ar_set is not None else ar_intervals_from_curve(curve)
-    lo_grid, hi_grid = float(betas.min()), float(betas.max())
+    lo_grid, hi_grid = ar_plot_range(curve, pieces)
     finite = stats[np.isfinite(stats)]
     top = max(
         curve.critical_value * 3.0, min(float(finite.max()) if finite.size else 1.0, curve.critical_value * 6)

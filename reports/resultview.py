@@ -1,6 +1,8 @@
-"""Defensive readers over an estimation result's `to_dict()` and number formatting shared by all documents.
+"""Number formatting shared by every document, and strict readers of the stored JSON view.
 
-A section that is missing, null, or marked not applicable reads as None here, so documents omit it.
+Documents read typed results (``RunInfo.result``); the JSON-view readers below serve only
+``reports/verdicts.py`` until it reads its typed run evidence, and read the exact keys our own ``to_dict()``
+writes, never synonyms.
 """
 
 from __future__ import annotations
@@ -10,172 +12,84 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from ivdossier.reports.inputs import RunInfo
+from ivdossier.vocabulary import NOT_APPLICABLE
 
 Interval = tuple[float, float]
 
-_VALUE_KEYS = ("statistic", "value", "stat", "f", "estimate", "effective_f", "f_eff")
-_P_KEYS = ("p_value", "pvalue", "p", "pval")
-
 
 def num(value: Any) -> float | None:
-    """A float from a number, an "inf"/"-inf" string or a dict holding one under a usual key; else None."""
+    """A float from a number or an "inf"/"-inf"/"nan" text (how the JSON view writes them); else None."""
     if isinstance(value, bool) or value is None:
         return None
     if isinstance(value, int | float):
         return float(value)
     if isinstance(value, str):
-        text = value.strip().lower()
-        if text in ("inf", "+inf", "infinity"):
-            return math.inf
-        if text in ("-inf", "-infinity"):
-            return -math.inf
         try:
-            return float(text)
+            return float(value.strip())
         except ValueError:
             return None
-    if isinstance(value, Mapping):
-        for key in _VALUE_KEYS:
-            if key in value:
-                return num(value[key])
     return None
 
 
+# ---------------------------------------------------------------- the JSON view (for reports/verdicts.py only)
+
+
 def section(results: Mapping[str, Any] | None, *keys: str) -> Mapping[str, Any] | None:
-    """The nested mapping at `keys`, or None when it is absent, null or marked not applicable."""
+    """The nested mapping at `keys` of a run's JSON view, or None when absent or marked not applicable."""
     node: Any = results
     for key in keys:
         if not isinstance(node, Mapping) or node.get(key) is None:
             return None
         node = node[key]
-    if not isinstance(node, Mapping) or not_applicable_reason(node) is not None:
+    if (
+        not isinstance(node, Mapping)
+        or node.get("status") == NOT_APPLICABLE
+        or node.get("applicable") is False
+    ):
         return None
     return node
 
 
-def not_applicable_reason(node: Any) -> str | None:
-    """The reason text when a section says it does not apply (applicable false, or only a reason), else None."""
-    if not isinstance(node, Mapping):
-        return None
-    reason = node.get("reason")
-    flagged = node.get("applicable") is False or node.get("status") in ("not applicable", "not_applicable")
-    only_reason = set(node) <= {"reason", "status", "applicable", "name"} and reason is not None
-    if flagged or only_reason:
-        return str(reason) if reason is not None else "not applicable"
-    return None
-
-
-def section_reason(results: Mapping[str, Any] | None, key: str) -> str | None:
-    """The stated reason a top-level section is null or not applicable, when the result gives one."""
-    if not isinstance(results, Mapping):
-        return None
-    node = results.get(key)
-    if node is None:
-        reasons = results.get("reasons")
-        if isinstance(reasons, Mapping) and reasons.get(key):
-            return str(reasons[key])
-        alt = results.get(f"{key}_reason")
-        return str(alt) if alt else None
-    return not_applicable_reason(node)
-
-
 def pvalue(node: Mapping[str, Any] | None) -> float | None:
-    """The p-value of a test section under any usual key."""
-    if not isinstance(node, Mapping):
-        return None
-    for key in _P_KEYS:
-        if key in node:
-            return num(node[key])
-    return None
-
-
-def percent_key(key: Any) -> int | None:
-    """Read a critical-value key such as "10", "tau_10", "0.10", "10%" or 0.1 as a whole percentage."""
-    match = re.search(r"\d+(?:\.\d+)?", str(key))
-    if match is None:
-        return None
-    value = float(match.group())
-    if value < 1:
-        value *= 100
-    return round(value)
-
-
-def critical_values(node: Any) -> dict[int, float]:
-    """Critical values keyed by whole percent (tau or size), from a mapping or list of {tau, value} rows."""
-    out: dict[int, float] = {}
-    if isinstance(node, Mapping):
-        for key, value in node.items():
-            if isinstance(value, Mapping):
-                inner = num(value.get("critical_value", value.get("value")))
-                pct = percent_key(value.get("tau", key))
-            else:
-                inner, pct = num(value), percent_key(key)
-            if pct is not None and inner is not None:
-                out[pct] = inner
-    elif isinstance(node, Sequence) and not isinstance(node, str):
-        for row in node:
-            if isinstance(row, Mapping):
-                pct = percent_key(row.get("tau", row.get("level", row.get("bias"))))
-                value = num(row.get("critical_value", row.get("value")))
-                if pct is not None and value is not None:
-                    out[pct] = value
-    return dict(sorted(out.items()))
+    """The p-value of a test section of the JSON view."""
+    return num(node.get("p_value")) if isinstance(node, Mapping) else None
 
 
 def effective_f(results: Mapping[str, Any] | None) -> tuple[float | None, dict[int, float]]:
-    """The Montiel Olea-Pflueger effective F and its critical values by tau percent."""
-    strength = section(results, "strength")
-    if strength is None:
+    """The effective F of the JSON view and its critical values keyed by whole-percent tau."""
+    eff = section(results, "strength", "effective_f")
+    if eff is None:
         return None, {}
-    raw = strength.get("effective_f")
-    value = num(raw)
     cvs: dict[int, float] = {}
-    if isinstance(raw, Mapping):
-        for key, inner in raw.items():
-            if "critical" in str(key):
-                cvs = critical_values(inner)
-    if not cvs:
-        for key in ("effective_f_critical_values", "critical_values"):
-            if key in strength:
-                cvs = critical_values(strength[key])
-                break
-    return value, cvs
+    for key, value in (eff.get("critical_values") or {}).items():
+        match = re.fullmatch(r"tau_(\d+)pct", str(key))
+        if match and num(value) is not None:
+            cvs[int(match.group(1))] = num(value)  # type: ignore[assignment]
+    return num(eff.get("statistic")), dict(sorted(cvs.items()))
 
 
-def intervals(value: Any) -> list[Interval] | None:
-    """A confidence set as a list of (low, high): accepts [[lo, hi], ...], [lo, hi] or {"set": ...}."""
-    if isinstance(value, Mapping):
-        for key in ("confidence_set", "set", "intervals", "interval", "ci"):
-            if key in value:
-                return intervals(value[key])
+def intervals(node: Mapping[str, Any] | None) -> list[Interval] | None:
+    """The confidence set of a test section of the JSON view, as (low, high) pairs."""
+    raw = node.get("confidence_set") if isinstance(node, Mapping) else None
+    if not isinstance(raw, Sequence) or isinstance(raw, str):
         return None
-    if not isinstance(value, Sequence) or isinstance(value, str):
-        return None
-    if len(value) == 2 and all(num(v) is not None and not isinstance(v, Sequence | Mapping) for v in value):
-        low, high = num(value[0]), num(value[1])
-        assert low is not None and high is not None
-        return [(low, high)]
     out: list[Interval] = []
-    for item in value:
-        if isinstance(item, Sequence) and not isinstance(item, str) and len(item) == 2:
-            low, high = num(item[0]), num(item[1])
-            if low is None or high is None:
-                return None
-            out.append((low, high))
-        else:
+    for pair in raw:
+        low, high = (num(v) for v in pair)
+        if low is None or high is None:
             return None
+        out.append((low, high))
     return out
 
 
 def first_stage_rows(results: Mapping[str, Any] | None) -> dict[str, Mapping[str, Any]]:
-    """First-stage entries keyed by treatment: accepts {"by_endog": {...}}, {name: {...}} or one flat entry."""
+    """First-stage entries of the JSON view keyed by treatment."""
     first = section(results, "first_stage")
-    if first is None:
-        return {}
-    inner = first.get("by_endog", first)
-    if isinstance(inner, Mapping) and inner and all(isinstance(v, Mapping) for v in inner.values()):
-        return {str(k): v for k, v in inner.items()}
-    return {"treatment": first}
+    rows = first.get("by_endog") if first is not None else None
+    return {str(k): v for k, v in rows.items()} if isinstance(rows, Mapping) else {}
+
+
+# ---------------------------------------------------------------- formatting
 
 
 def method_label(method: str) -> str:
@@ -248,33 +162,3 @@ def parse_fmt(text: str) -> float:
     """Inverse of `fmt` for tests and tooling: reads the true minus and infinity back."""
     cleaned = text.replace("−", "-").replace("∞", "inf")
     return float(cleaned)
-
-
-def get(mapping: Mapping[str, Any] | None, *keys: str | None) -> Any:
-    """The nested value at `keys`, or None when any level is missing."""
-    node: Any = mapping
-    for key in keys:
-        if not isinstance(node, Mapping) or key is None:
-            return None
-        node = node.get(key)
-    return node
-
-
-def treatment_name(run: RunInfo, fallback: str = "") -> str | None:
-    """The coefficient name of the treatment in a run: spec treatment/endogenous, the program's, or the first."""
-    coef = run.results.get("coef")
-    names = list(coef) if isinstance(coef, Mapping) else []
-    candidates: list[str] = []
-    specs = [run.spec, run.results.get("spec") if isinstance(run.results.get("spec"), Mapping) else {}]
-    for key, spec in ((k, sp) for sp in specs for k in ("treatment", "endogenous", "endog")):
-        value = spec.get(key)
-        if isinstance(value, str):
-            candidates.append(value)
-        elif isinstance(value, Sequence) and value and isinstance(value[0], str):
-            candidates.append(value[0])
-    if fallback:
-        candidates.append(fallback)
-    for name in candidates:
-        if name in names:
-            return name
-    return names[0] if names else None

@@ -21,6 +21,7 @@ from ivdossier.errors import InvalidInputError
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.dossier import CAUTIONS, dossier_html, latest_run
+from ivdossier.reports.estimates import ar_set_of, effective_f_of
 from ivdossier.reports.html import render_html
 from ivdossier.reports.inputs import CONDITIONS, CatalogEntry, DossierInput, LinkInfo, ProgramInfo
 from ivdossier.vocabulary import BROKEN, READING_ASPECTS
@@ -203,8 +204,8 @@ def _program_page(
         rows = []
         for d in sorted(dossiers, key=lambda x: (x.instrument.name or x.instrument.slug).lower()):
             run = latest_run(d.runs)
-            feff = rv.effective_f(run.results)[0] if run is not None else None
-            ar = rv.intervals(rv.section(run.results, "weak_iv_robust", "anderson_rubin")) if run else None
+            feff = effective_f_of(run.result)[0] if run is not None else None
+            ar = ar_set_of(run.result) if run is not None else None
             described = ", ".join(mt.inline(x) for x in (d.instrument.family, d.instrument.state) if x)
             rows.append(
                 [

@@ -16,6 +16,7 @@ from typing import Any
 from ivdossier.errors import InvalidInputError
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
+from ivdossier.reports.estimates import ar_set_of, effective_f_of, suite_of, treatment_of, wald_interval
 from ivdossier.reports.inputs import RunInfo
 
 _LATEX_SPECIAL = {
@@ -98,39 +99,32 @@ def _render(cell: _Cell, fmt: str) -> str:
     raise AssertionError(cell.kind)
 
 
-def _treatment(run: RunInfo, treatment: str | None) -> str | None:
-    return rv.treatment_name(run, treatment or "")
+def _finite(value: float | None) -> float | None:
+    return None if value is None or math.isnan(value) else float(value)
 
 
 def _rows(runs: Sequence[RunInfo], treatment: str | None) -> list[tuple[str, list[_Cell]]]:
     est, se, ci, ar, feff, cv10, fs, kp, n, clusters, vcov = ([] for _ in range(11))
     for run in runs:
-        res = run.results
-        name = _treatment(run, treatment)
-        coef = res.get("coef") if isinstance(res.get("coef"), dict) else {}
-        est.append(_Cell("num", rv.num(coef.get(name)) if name else None))
-        ses = res.get("se") if isinstance(res.get("se"), dict) else {}
-        se.append(_Cell("se", rv.num(ses.get(name)) if name else None))
-        cis = res.get("ci") if isinstance(res.get("ci"), dict) else {}
-        ci.append(_Cell("set", rv.intervals(cis.get(name)) if name else None))
-        ar.append(_Cell("set", rv.intervals(rv.section(res, "weak_iv_robust", "anderson_rubin"))))
-        f_eff, cvs = rv.effective_f(res)
+        res = run.result  # None for runs stored before typed records: their cells stay empty
+        name = treatment_of(res, treatment or "") if res is not None else None
+        est.append(_Cell("num", res.coef_of(name) if res is not None and name else None))
+        se.append(_Cell("se", res.se_of(name) if res is not None and name else None))
+        ci.append(_Cell("set", wald_interval(res, name) if res is not None and name else None))
+        ar.append(_Cell("set", ar_set_of(res)))
+        f_eff, cvs = effective_f_of(res)
         feff.append(_Cell("num", f_eff))
         cv10.append(_Cell("num", cvs.get(10)))
-        rows = rv.first_stage_rows(res)
-        robust = [rv.num(r.get("robust_f")) for r in rows.values()]
+        suite = suite_of(res)
+        robust = [_finite(r.robust_f) for r in suite.first_stage.rows] if suite is not None else []
         fs.append(_Cell("num", min((f for f in robust if f is not None), default=None)))
-        kp.append(_Cell("num", rv.num((rv.section(res, "strength") or {}).get("kp_rk_wald_f"))))
-        n.append(_Cell("int", rv.num(res.get("n"))))
-        raw = res.get("n_clusters")
-        count = (
-            raw[0]
-            if isinstance(raw, list) and len(raw) == 1
-            else (raw if not isinstance(raw, list) else None)
-        )
-        clusters.append(_Cell("int", rv.num(count)))
-        vcov.append(_Cell("text", run.vcov or res.get("vcov") or None))
-    label = treatment or next((t for r in runs if (t := _treatment(r, None))), None) or "treatment"
+        kp.append(_Cell("num", _finite(suite.strength.kp_rk.f_form) if suite is not None else None))
+        n.append(_Cell("int", res.n if res is not None else None))
+        one_way = res is not None and len(res.n_clusters) == 1
+        clusters.append(_Cell("int", res.n_clusters[0] if res is not None and one_way else None))
+        vcov.append(_Cell("text", run.vcov or (res.vcov if res is not None else None) or None))
+    named = (treatment_of(r.result) for r in runs if r.result is not None)
+    label = treatment or next(named, None) or "treatment"
     return [
         (f"Effect of {label}", est),
         ("", se),

@@ -43,7 +43,10 @@ def test_markdown_has_summary_table_details_method_and_cautions_in_order() -> No
     assert "- **Studies in scope:** 3; with reported statistics: 2." in md
     assert "1 of 2 results reported as significant survive re-examination, 1 lose significance" in md
     assert "| DG-E01 | Roads \\| built with fibre | exclusion | 2 |" in md
-    assert "| 3.4 (1) | 10 (unknown) | 3.4 | c = 3.435; [-0.03527, 6.835] | – | lost | lost |" in md
+    assert (
+        "| 3.4 (1) | 10 (unknown) | 3.4 | c = 3.435; [-0.03527, 6.835] | – | lost (tF no) | lost (tF no) |"
+        in md
+    )
     assert "Statistics cannot establish exclusion or exogeneity." in md
     assert "Conclusions for policy or clinical use need domain review." in md
     assert md == audit_markdown(summary, inputs, generated_at="2026-02-01T10:00:00Z", tool_version="9.9")

@@ -46,7 +46,10 @@ def test_zero_first_stage_attaches_a_run_the_history_shows(cli, data_file: Path)
         "zz",
     )
     assert code == 0, err
-    assert out.startswith("zero-first-stage-reduced-form: reduced form in rows where able == 0")
+    # the complete summary first (with the rows it used), then one finding per catalogue check
+    summary, findings = out.split("Findings for the catalogue's checks:\n")
+    assert "rows: used" in summary
+    assert findings.startswith("  zero-first-stage-reduced-form: reduced form in rows where able == 0")
     assert "stored as run zz-falsify-zero-first-stage-1" in out
     code, out, _ = cli("history", "zz-falsify-zero-first-stage-1", "--json")
     assert json.loads(out)[0]["action"] == "create"
@@ -121,8 +124,22 @@ def test_compliers_and_power(cli, data_file: Path) -> None:  # type: ignore[no-u
     code, out, err = cli(
         "power", "--n", "5000", "--partial-r2", "0.05", "--outcome-sd", "1.0", "--effect", "0.2"
     )
+    # the treatment's SD is never assumed: power scales with it
+    assert code == 2 and "treatment_sd is required" in err
+    code, out, err = cli(
+        "power", "--n", "5000", "--partial-r2", "0.05", "--outcome-sd", "1.0", "--effect", "0.2",
+        "--treatment-sd", "1.0",
+    )  # fmt: skip
     assert code == 0, err
-    assert "minimum detectable effect (80% power)" in out
+    assert "minimum detectable effect at 80.0 % power" in out
+    # derived from data: the SD of the treatment column (no controls), as pandas computes it (ddof = 1)
+    code, out, err = cli(
+        "power", "--n", "5000", "--partial-r2", "0.05", "--outcome-sd", "1.0", "--data", str(data_file),
+        "--treatment", "d", "--json",
+    )  # fmt: skip
+    assert code == 0, err
+    sd = pd.read_csv(data_file)["d"].std()
+    assert json.loads(out)["design"]["treatment_sd"] == pytest.approx(sd, rel=1e-9)
 
 
 def test_likely_mistakes_get_one_line_errors(cli, data_file: Path) -> None:  # type: ignore[no-untyped-def]

@@ -36,7 +36,8 @@ def _run(cli, data: Path, *extra: str) -> str:  # type: ignore[no-untyped-def]
     return str(json.loads(out)["run"])
 
 
-def test_plan_life_cycle(cli, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+def test_plan_life_cycle(cli, tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    monkeypatch.chdir(tmp_path)  # the seal receipt goes to the current folder by default
     data = _setup(cli, tmp_path)
     draft_md = tmp_path / "draft.md"
     code, out, err = cli("plan", "draft", "fibre", "--control", "w", "--n", "600", "--expected-f", "40",
@@ -56,10 +57,12 @@ def test_plan_life_cycle(cli, tmp_path: Path) -> None:  # type: ignore[no-untype
     assert code == 0, err
     code, out, err = cli("plan", "freeze", "fibre-plan")
     assert code == 0, err
-    first, second = out.splitlines()
+    first, second, third = out.splitlines()
     assert first.startswith("plan fibre-plan frozen at ") and first.endswith(" by tester")
     sha = second.removeprefix("sha256 ")
     assert len(sha) == 64
+    assert third == "seal receipt written to fibre-plan.seal.json"
+    assert json.loads((tmp_path / "fibre-plan.seal.json").read_text("utf-8"))["sha256"] == sha
 
     code, _, err = cli("plan", "edit", "fibre-plan", "--title", "Changed")
     assert code == 4 and "plan 'fibre-plan' is frozen" in err and "cannot be changed" in err

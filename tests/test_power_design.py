@@ -72,12 +72,13 @@ def test_plug_in_f_matches_statsmodels_first_stage_f() -> None:
     short = sm.OLS(x, sm.add_constant(w)).fit()
     r2_partial = (short.ssr - full.ssr) / short.ssr
     f_ref = full.f_test(np.eye(6)[1:4]).fvalue
-    design = iv_design(n=n, partial_r2=r2_partial, residual_sd=1.0, n_instruments=3, n_controls=2)
+    design = iv_design(n=n, partial_r2=r2_partial, residual_sd=1.0,
+                        treatment_sd=1.0, n_instruments=3, n_controls=2)  # fmt: skip
     assert expected_first_stage(design).plug_in_f == pytest.approx(float(np.squeeze(f_ref)), rel=1e-10)
 
 
 def test_first_stage_f_input_round_trips_to_expected_f() -> None:
-    design = iv_design(n=500, first_stage_f=20.0, residual_sd=1.0, n_instruments=2)
+    design = iv_design(n=500, first_stage_f=20.0, residual_sd=1.0, treatment_sd=1.0, n_instruments=2)
     # mean of the noncentral F (Johnson, Kotz and Balakrishnan; checked with scipy.stats.ncf.mean)
     from scipy import stats
 
@@ -88,7 +89,7 @@ def test_first_stage_f_input_round_trips_to_expected_f() -> None:
 
 def test_first_stage_f_input_round_trips_with_clusters() -> None:
     # the given F is read as the expected F of the (cluster-robust) test the plan will use (module docstring)
-    design = iv_design(n=1200, first_stage_f=15.0, residual_sd=1.0, cluster_size=8, icc=0.1)
+    design = iv_design(n=1200, first_stage_f=15.0, residual_sd=1.0, treatment_sd=1.0, cluster_size=8, icc=0.1)
     assert expected_first_stage(design).expected_f == pytest.approx(15.0, rel=1e-10)
     analysis = power_analysis(design, effect=0.2)
     assert analysis.n_required is not None and analysis.clusters_required is not None
@@ -96,7 +97,7 @@ def test_first_stage_f_input_round_trips_with_clusters() -> None:
 
 
 def test_outlook_uses_published_critical_values() -> None:
-    design = iv_design(n=400, partial_r2=0.05, residual_sd=1.0)
+    design = iv_design(n=400, partial_r2=0.05, residual_sd=1.0, treatment_sd=1.0)
     outlook = expected_first_stage(design)
     values = {label: c for label, c, _p, _s in outlook.critical_values}
     # Stock and Yogo (2005) Table 5.2, K2 = 1, 10 % maximal size: 16.38
@@ -155,7 +156,7 @@ def test_monte_carlo_power_matches_formula_with_clusters() -> None:
     beta = 0.3
     expected = power_2sls(design, beta)
     assert 0.35 < expected < 0.8
-    no_deff = power_2sls(iv_design(n=900, partial_r2=0.15, residual_sd=1.0), beta)
+    no_deff = power_2sls(iv_design(n=900, partial_r2=0.15, residual_sd=1.0, treatment_sd=1.0), beta)
     empirical = _simulate_power(n_clusters=150, m=6, r2=0.15, icc=0.3, beta=beta, reps=1500, seed=2)
     assert empirical == pytest.approx(expected, abs=0.045)
     assert abs(empirical - no_deff) > 0.15  # ignoring the clustering would be clearly wrong
@@ -181,7 +182,7 @@ def test_bad_design_inputs_are_named(kwargs: dict[str, float], message: str) -> 
 
 
 def test_bad_power_targets_are_named() -> None:
-    design = iv_design(n=100, partial_r2=0.1, residual_sd=1.0)
+    design = iv_design(n=100, partial_r2=0.1, residual_sd=1.0, treatment_sd=1.0)
     with pytest.raises(InvalidInputError, match="target power must lie in"):
         mde_2sls(design, power=0.01)
     with pytest.raises(InvalidInputError, match="effect must be non-zero"):

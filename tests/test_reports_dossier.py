@@ -10,10 +10,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from ivdossier.estimation.diagnostics import DiagnosticSuite
+from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.dossier import dossier_html, dossier_markdown
+from ivdossier.reports.estimates import estimates_markdown
 from ivdossier.reports.inputs import DossierInput, InstrumentInfo, RunInfo
 from ivdossier.reports.sample import PROGRAM, iv_results, make_run, sample_input
+from ivdossier.vocabulary import NotApplicable
+from ivdossier.workflows.sample import sample_result, sample_run
 from ivdossier.workflows.verdicts import with_verdicts
 
 SECTION_ORDER = [
@@ -60,30 +65,43 @@ def test_claims_sit_beside_the_threats_that_attack_them() -> None:
 
 
 def test_every_number_of_the_latest_run_is_reported_as_given() -> None:
-    res = iv_results(coef=-0.1734, se=0.0412, feff=27.35)
-    inp = dataclasses.replace(sample_input(), runs=(make_run(0, method="ols"), make_run(7, results=res)))
+    # a real estimate (workflows.sample); each number in the document must be the typed result's own value
+    res = sample_result("2sls", seed=11)
+    suite = res.diagnostics
+    assert isinstance(suite, DiagnosticSuite)
+    inp = dataclasses.replace(
+        sample_input(), runs=(sample_run(0, sample_result("ols"), plots=False), sample_run(7, res))
+    )
     md = dossier_markdown(inp)
     detail = md.split("### Run run-007 in detail")[1]
     feff = re.search(r"\| Effective F \(Montiel Olea–Pflueger\) \| (\S+) \| (.+) \|", detail)
-    assert feff is not None
-    assert rv.parse_fmt(feff.group(1)) == pytest.approx(27.35)
+    assert feff is not None and suite.strength.effective_f is not None
+    assert rv.parse_fmt(feff.group(1)) == pytest.approx(suite.strength.effective_f.statistic, rel=5e-4)
     cvs = dict(re.findall(r"τ = (\d+) %: ([\d.]+)", feff.group(2)))
-    tau = res["strength"]["effective_f"]["critical_values"]
-    assert {k: float(v) for k, v in cvs.items()} == {
-        "5": tau["tau_5pct"],
-        "10": tau["tau_10pct"],
-        "20": tau["tau_20pct"],
-        "30": tau["tau_30pct"],
-    }
+    tau = suite.strength.effective_f.critical_values
+    assert {int(k): float(v) for k, v in cvs.items()} == pytest.approx(
+        {round(t * 100): c for t, c in tau.items()}, rel=5e-4
+    )
     row = re.search(r"\| run-007 \| 2SLS · \S+ \| (\S+) \| (\S+) \| \[(\S+), (\S+)\] \|", md)
     assert row is not None
-    low, high = res["ci"]["telehealth"]
+    low, high = res.ci[0]
     got = [rv.parse_fmt(g) for g in row.groups()]
-    assert got == pytest.approx([-0.1734, 0.0412, low, high], rel=5e-4)
-    assert "| Kleibergen–Paap rk Wald F | 40.2 |" in detail
-    assert "| Anderson–Rubin | [−0.35, −0.07] | 6.8 | 0.001 |" in detail
-    assert "| Hansen J | 0.68 | 1 | 0.410 |" in detail
-    assert "| fibre\\_wave | −0.083 (0.011) | 44.1 | 39.7 | 0.031 |" in detail.replace("| telehealth ", "|")
+    assert got == pytest.approx([res.coef[0], res.se[0], low, high], rel=5e-4)
+    assert f"| Kleibergen–Paap rk Wald F | {rv.fmt(suite.strength.kp_rk.f_form)} |" in detail
+    ar = suite.weak_iv_robust.anderson_rubin
+    assert (
+        f"| Anderson–Rubin | {rv.fmt_set(ar.intervals)} | {rv.fmt(ar.statistic)} | {rv.fmt_p(ar.p_value)} |"
+        in detail
+    )
+    over = suite.overid
+    assert f"| Hansen J | {rv.fmt(over.statistic)} | 1 | {rv.fmt_p(over.p_value)} |" in detail
+    fs = suite.first_stage.rows[0]
+    coef, se = fs.coefficients["fibre_wave"], fs.std_errors["fibre_wave"]
+    expected = (
+        f"| fibre\\_wave | {rv.fmt(coef)} ({rv.fmt(se)}) | {rv.fmt(fs.partial_f)} | {rv.fmt(fs.robust_f)} | "
+        f"{rv.fmt(fs.partial_r2, 3)} |"
+    )
+    assert expected in detail.replace("| telehealth ", "|")
 
 
 def test_ols_run_is_listed_beside_the_iv_runs() -> None:
@@ -111,16 +129,22 @@ def test_absent_inputs_leave_their_sections_out_entirely() -> None:
 
 
 def test_not_applicable_diagnostics_are_left_out_or_give_their_reason() -> None:
-    res = iv_results(overid_p=None)  # just identified: over-identification test not computed
-    res["reduced_form"] = None
-    inp = dataclasses.replace(sample_input(), runs=(make_run(1, results=res),))
-    md = dossier_markdown(inp)
-    assert "Reduced form" not in md
-    assert "#### Over-identification\n\nNot computed: just identified." in md
-    assert (
-        "Not computed: Conditional likelihood ratio (CLR) — computed for the unadjusted covariance only."
-        in md
-    )
+    res = sample_result("2sls", instruments=("fibre_wave", "clerk_propensity"))  # two instruments: no tF
+    suite = res.diagnostics
+    assert isinstance(suite, DiagnosticSuite) and not suite.weak_iv_robust.tf.applicable
+    md = dossier_markdown(dataclasses.replace(sample_input(), runs=(sample_run(1, res),)))
+    assert f"Not computed: tF — {mt.inline(suite.weak_iv_robust.tf.reason)}." in md
+    just = sample_result("2sls", instruments=("fibre_wave",))  # just identified: no over-identification test
+    assert isinstance(just.diagnostics, DiagnosticSuite) and just.diagnostics.overid.reason
+    md = dossier_markdown(dataclasses.replace(sample_input(), runs=(sample_run(1, just),)))
+    assert f"#### Over-identification\n\nNot computed: {mt.inline(just.diagnostics.overid.reason)}." in md
+    # diagnostics that could not be computed at all: every section is left out, the tests give the reason
+    few = sample_result("2sls", vcov="cluster", districts=2)  # 2 clusters for 2 instruments
+    assert isinstance(few.diagnostics, NotApplicable)
+    inp = dataclasses.replace(sample_input(), runs=(sample_run(1, few),))
+    part = estimates_markdown(inp, inp.runs[0])
+    assert "#### Reduced form" not in part and "#### First stage" not in part
+    assert f"#### Over-identification\n\nNot computed: {mt.inline(few.diagnostics.reason)}." in part
 
 
 def test_plots_and_diagram_are_referenced_only_when_their_data_exist() -> None:
@@ -163,8 +187,9 @@ def test_output_is_deterministic_and_reads_no_clock() -> None:
 
 
 def test_a_real_estimation_result_renders_with_its_own_numbers() -> None:
-    # the estimation layer's to_dict() is the contract; simulate data with a known design and feed it through
+    # the run's stored form (the JSON view plus the typed record) is the contract; simulate a known design
     from ivdossier.estimation import estimate
+    from ivdossier.workflows.runs import stored_results
 
     rng = np.random.default_rng(7)
     n = 400
@@ -173,7 +198,7 @@ def test_a_real_estimation_result_renders_with_its_own_numbers() -> None:
     y = -0.3 * x + u + rng.normal(size=n)
     frame = pd.DataFrame({"ed_visits": y, "telehealth": x, "fibre_wave": z1, "clerk": z2})
     result = estimate(frame, outcome="ed_visits", treatment="telehealth", instruments=["fibre_wave", "clerk"])
-    res = result.to_dict()
+    res = stored_results(result)
     run = RunInfo(
         slug="real",
         created_at="2026-11-30T12:00:00+00:00",

@@ -8,9 +8,12 @@ from pathlib import Path
 
 import pytest
 
+from ivdossier.estimation.diagnostics import DiagnosticSuite
+from ivdossier.reports import resultview as rv
 from ivdossier.reports.inputs import CatalogEntry, InstrumentInfo, ProgramInfo
 from ivdossier.reports.sample import PROGRAM, make_run, sample_input
 from ivdossier.reports.site import build_site, safe_slug
+from ivdossier.workflows.sample import sample_dossier_input
 from ivdossier.workflows.verdicts import with_verdicts
 
 HOSTILE_SLUGS = [
@@ -99,12 +102,17 @@ def test_site_layout_and_relative_links(tmp_path: Path) -> None:
 
 
 def test_program_page_compares_candidates(tmp_path: Path) -> None:
-    dossiers = [sample_input(), dossier_for(PROGRAM, "mast", "Mast distance")]
+    real = sample_dossier_input()  # runs from the real producers (workflows.sample)
+    dossiers = [real, dossier_for(PROGRAM, "mast", "Mast distance")]
     build_site(tmp_path, [PROGRAM], [with_verdicts(d) for d in dossiers], [])  # type: ignore[arg-type]
     page = (tmp_path / "programs/telehealth-ed/index.html").read_text(encoding="utf-8")
     table = page[page.index("<table>") : page.index("</table>")]
     assert table.count("<tr>") == 3  # header and two instruments
     assert "Fibre rollout wave" in table and "Mast distance" in table
     assert "TH-017 Broadband also brings online pharmacy (open, severity 4.5)" in table
-    assert "38.4" in table and "[−0.35, −0.07]" in table
+    latest = real.runs[-1].result
+    assert latest is not None and isinstance(latest.diagnostics, DiagnosticSuite)
+    eff = latest.diagnostics.strength.effective_f
+    assert eff is not None and f">{rv.fmt(eff.statistic)}<" in table  # the latest run's own numbers
+    assert rv.fmt_set(latest.diagnostics.weak_iv_robust.anderson_rubin.intervals) in table
     assert table.count('class="badge ') == 8

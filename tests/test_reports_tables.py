@@ -8,17 +8,21 @@ import re
 import pytest
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.diagnostics import DiagnosticSuite
 from ivdossier.reports import resultview as rv
-from ivdossier.reports.sample import iv_results, make_run, ols_results
 from ivdossier.reports.tables import latex_escape, runs_table
+from ivdossier.workflows.sample import sample_result, sample_run
+
+# real estimates of the invented scenario (workflows.sample); expected cells are read from the typed results
+RESULTS = (sample_result("ols"), sample_result("2sls"), sample_result("liml"))
 
 
 def runs() -> list:
-    return [
-        make_run(0, method="ols", results=ols_results(), plots=False),
-        make_run(1, results=iv_results(coef=-0.21, se=0.06, feff=38.4)),
-        make_run(2, method="liml", results=iv_results(coef=-0.2345, se=0.0712, feff=31.0)),
-    ]
+    return [sample_run(i, res, plots=False) for i, res in enumerate(RESULTS)]
+
+
+def _tex(x: float) -> str:
+    return "$" + rv.fmt(x).replace("−", "-") + "$"
 
 
 @pytest.mark.parametrize(
@@ -52,14 +56,21 @@ def test_latex_table_reports_each_runs_numbers() -> None:
     est = re.search(r"^Effect of telehealth & (.+) \\\\$", tex, re.M)
     assert est is not None
     values = [float(v.strip("$ ")) for v in est.group(1).split("&")]
-    assert values == [-0.05, -0.21, -0.2345]
+    assert values == pytest.approx(
+        [r.coef_of("telehealth") for r in RESULTS], rel=5e-4
+    )  # 4 significant digits
     se_line = tex.splitlines()[tex.splitlines().index(est.group(0)) + 1]
-    assert se_line == r" & ($0.01$) & ($0.06$) & ($0.0712$) \\"
+    assert se_line == " & " + " & ".join(f"({_tex(r.se_of('telehealth'))})" for r in RESULTS) + r" \\"
     feff = re.search(r"^Effective F & (.*) \\\\$", tex, re.M)
     assert feff is not None
-    assert [c.strip() for c in feff.group(1).split("&")] == ["", "$38.4$", "$31$"]
+    suites = [r.diagnostics for r in RESULTS[1:]]
+    assert all(isinstance(d, DiagnosticSuite) and d.strength.effective_f is not None for d in suites)
+    expected = [_tex(d.strength.effective_f.statistic) for d in suites]  # type: ignore[union-attr]
+    assert [c.strip() for c in feff.group(1).split("&")] == ["", *expected]
     assert r"\multicolumn{4}{l}{\textit{First stage}} \\" in tex
-    assert r"$[-0.35, -0.07]$" in tex
+    ar = suites[0].weak_iv_robust.anderson_rubin.intervals  # type: ignore[union-attr]
+    low, high = (rv.fmt(v).replace("−", "-") for v in ar[0])
+    assert f"$[{low}, {high}]$" in tex
 
 
 def test_hostile_names_are_escaped_in_latex() -> None:
@@ -73,11 +84,16 @@ def test_hostile_names_are_escaped_in_latex() -> None:
 
 
 def test_unbounded_sets_print_as_infinity() -> None:
-    run = make_run(1, results=iv_results(ar=[["-inf", -0.4], [0.2, "inf"]]))
+    weak = sample_result("2sls", instruments=("fibre_wave",), strength=0.05, seed=1)  # a nearly irrelevant Z
+    ar = weak.diagnostics.weak_iv_robust.anderson_rubin  # type: ignore[union-attr]
+    assert ar.shape == "two_rays"
+    low, high = ar.intervals[0][1], ar.intervals[1][0]
+    run = sample_run(1, weak)
     tex = runs_table([run])
-    assert r"$(-\infty, -0.4] \cup [0.2, \infty)$" in tex
+    t_low, t_high = (rv.fmt(v).replace("−", "-") for v in (low, high))
+    assert f"$(-\\infty, {t_low}] \\cup [{t_high}, \\infty)$" in tex
     md = runs_table([run], "markdown")
-    assert "(−∞, −0.4] ∪ [0.2, ∞)" in md
+    assert f"(−∞, {rv.fmt(low)}] ∪ [{rv.fmt(high)}, ∞)" in md
 
 
 def test_markdown_table_has_the_same_layout() -> None:
@@ -87,7 +103,8 @@ def test_markdown_table_has_the_same_layout() -> None:
     assert rows[0] == "|  | (1) | (2) | (3) |"
     assert rows[2] == "|  | OLS | 2SLS | LIML |"
     est = next(r for r in rows if r.startswith("| Effect of telehealth"))
-    assert [rv.parse_fmt(c.strip()) for c in est.strip("|").split("|")[1:]] == [-0.05, -0.21, -0.2345]
+    shown = [rv.parse_fmt(c.strip()) for c in est.strip("|").split("|")[1:]]
+    assert shown == pytest.approx([r.coef_of("telehealth") for r in RESULTS], rel=5e-4)
 
 
 def test_rows_empty_in_every_run_are_left_out() -> None:

@@ -5,7 +5,6 @@ from __future__ import annotations
 import contextlib
 import shutil
 from collections.abc import Callable
-from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
@@ -381,12 +380,12 @@ def _prior_studies(registry: Any) -> int:
 
 
 def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
+    from ivdossier.estimation.spec import ModelSpec
     from ivdossier.workflows.runs import estimate_file, store_run
 
     slugs = []
     for instrument, used, method in RUNS:
-        run = estimate_file(
-            csv_path,
+        spec = ModelSpec.build(
             outcome="ed_visits",
             treatment="telehealth",
             instruments=used,
@@ -395,6 +394,7 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
             method=method,
             vcov="cluster",
         )
+        run = estimate_file(csv_path, spec)
         with registry.writing() as s:
             slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
     return slugs
@@ -402,51 +402,42 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
 
 def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
     """Falsification and sensitivity runs: the zero-first-stage subgroup and the placebo outcome for each."""
-    from ivdossier.estimation import falsification, sensitivity, subgroups
-    from ivdossier.workflows.runs import analyse_file, store_run
+    from ivdossier.estimation.spec import ModelSpec
+    from ivdossier.workflows.analyses import run_analysis
+    from ivdossier.workflows.runs import store_run
 
-    common = {"controls": list(CONTROLS), "cluster": ["district"], "vcov": "cluster"}
+    def spec(instruments: list[str], **roles: Any) -> ModelSpec:
+        adjust: dict[str, Any] = {"controls": CONTROLS, **roles}
+        return ModelSpec.build(instruments=instruments, cluster="district", vcov="cluster", **adjust)
+
     model = {"outcome": "ed_visits", "treatment": "telehealth"}
-    jobs: list[tuple[str, str, Any, dict[str, Any]]] = []
+    jobs: list[tuple[str, str, ModelSpec, dict[str, Any]]] = []
     for slug, column in (
         ("fibre-wave", "fibre_months"),
         ("clerk-video-rate", "clerk_video_rate"),
         ("mast-distance", "mast_km"),
     ):
-        inst = {"instruments": [column], **common}
-        zero = {**model, **inst, "query": "has_device == 0"}
-        jobs.append((slug, "falsify-zero-first-stage", falsification.zero_first_stage, zero))
-        placebo = {**inst, "outcomes": ["prior_ed_visits"]}
-        jobs.append((slug, "falsify-placebo", falsification.placebo_outcomes, placebo))
-    both = {**model, "instruments": ["clerk_video_rate", "fibre_months"], **common}
-    jobs.append(("clerk-video-rate", "falsify-per-instrument", falsification.per_instrument, both))
-    balance = {
-        "instruments": ["fibre_months"],
-        "covariates": list(CONTROLS),
-        "cluster": ["district"],
-        "vcov": "cluster",
-    }
-    jobs.append(("fibre-wave", "falsify-balance", falsification.balance, balance))
-    signs = {"treatment": "telehealth", "instruments": ["clerk_video_rate"], "by": "age", **common}
-    jobs.append(("clerk-video-rate", "falsify-first-stage-signs", subgroups.subgroup_first_stages, signs))
-    breakdown = {**model, "instruments": ["fibre_months"], **common}
-    jobs.append(("fibre-wave", "sensitivity", sensitivity.breakdown_value, breakdown))
+        jobs.append((slug, "falsify zero-first-stage", spec([column], **model), {"query": "has_device == 0"}))
+        jobs.append((slug, "falsify placebo", spec([column]), {"outcomes": ["prior_ed_visits"]}))
+    both = spec(["clerk_video_rate", "fibre_months"], **model)
+    jobs.append(("clerk-video-rate", "falsify per-instrument", both, {}))
+    jobs.append(
+        ("fibre-wave", "falsify balance", spec(["fibre_months"], controls=()), {"covariates": CONTROLS})
+    )
+    signs = spec(["clerk_video_rate"], treatment="telehealth")
+    jobs.append(("clerk-video-rate", "falsify first-stage-signs", signs, {"by": "age"}))
+    jobs.append(("fibre-wave", "sensitivity breakdown", spec(["fibre_months"], **model), {}))
     # The team allows the fibre schedule a direct effect of up to 0.003 visits per month either way.
-    direct = {**breakdown, "gamma_min": -0.003, "gamma_max": 0.003}
-    jobs.append(("fibre-wave", "sensitivity", sensitivity.union_of_intervals, direct))
-    early = {"treatment": "telehealth", "instrument": EARLY_FIBRE, "months": 12, "covariates": list(CONTROLS)}
-    jobs.append(("fibre-wave", "compliers", _demo_compliers, {**early, "cluster": "district", "seed": 7}))
-    planned = {"outcome": "ed_visits", "treatment": "telehealth", "instrument": "fibre_months"}
-    jobs.append(("fibre-wave", "power", _demo_power, {**planned, "n": 12000, "effect": -0.5}))
+    direct = {"gamma_min": [-0.003], "gamma_max": [0.003]}
+    jobs.append(("fibre-wave", "sensitivity range", spec(["fibre_months"], **model), direct))
     slugs = []
-    for instrument, kind, func, spec in jobs:
-
-        def compute(frame: Any, f: Any = func, kw: dict[str, Any] = spec) -> tuple[Any, dict[str, Any]]:
-            return f(frame, **kw), {}
-
-        run = analyse_file(kind, csv_path, compute, spec)
+    for instrument, name, model_spec, options in jobs:
+        run = run_analysis(name, csv_path, model_spec, **options)
         with registry.writing() as s:
             slugs.append(store_run(s, run, instrument=instrument, actor=actor).slug)
+    for run in (_compliers_run(csv_path), _power_run(csv_path)):
+        with registry.writing() as s:
+            slugs.append(store_run(s, run, instrument="fibre-wave", actor=actor).slug)
     return slugs
 
 
@@ -454,53 +445,45 @@ EARLY_FIBRE = "fibre_year"
 """A binary instrument for the compliers run: fibre reached the district at least 12 months before (derived)."""
 
 
-@dataclass(frozen=True)
-class _ComplierRun:
-    """Complier shares and the complier profile, stored as one result."""
+def _compliers_run(csv_path: Path) -> Any:
+    """Compliers of the early-fibre indicator (fibre_months >= 12, derived), profiled on the controls."""
+    from ivdossier.estimation.compliers import complier_report
+    from ivdossier.workflows.runs import analyse_file
 
-    shares: Any
-    means: Any
+    spec = {"treatment": "telehealth", "instrument": EARLY_FIBRE, "months": 12, "covariates": list(CONTROLS)}
+    spec.update(cluster="district", seed=7)
 
-    def to_dict(self) -> dict[str, Any]:
-        return {**self.shares.to_dict(), "means": self.means.to_dict(), "implications": None}
+    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
+        frame = frame.assign(**{EARLY_FIBRE: (frame["fibre_months"] >= 12).astype(int)})
+        kw = {k: v for k, v in spec.items() if k != "months"}
+        return complier_report(frame, **kw), {}
 
-
-def _demo_compliers(
-    frame: Any,
-    *,
-    treatment: str,
-    instrument: str,
-    months: int,
-    covariates: list[str],
-    cluster: str,
-    seed: int,
-) -> _ComplierRun:
-    """Compliers of the early-fibre indicator (fibre_months >= months), profiled on the controls."""
-    from ivdossier.estimation.compliers import complier_means, complier_shares
-
-    frame = frame.assign(**{instrument: (frame["fibre_months"] >= months).astype(int)})
-    kw = {"treatment": treatment, "instrument": instrument, "cluster": cluster, "seed": seed}
-    return _ComplierRun(
-        complier_shares(frame, **kw), complier_means(frame, covariates=covariates, n_boot=199, **kw)
-    )
+    return analyse_file("compliers", csv_path, compute, spec)
 
 
-def _demo_power(frame: Any, *, outcome: str, treatment: str, instrument: str, n: int, effect: float) -> Any:
-    """Power of a replication of the fibre design with the same size, first stage and spreads as the demo data."""
+def _power_run(csv_path: Path) -> Any:
+    """Power of a replication of the fibre design with the demo's size, first stage and spreads (from the data)."""
     import numpy as np
 
     from ivdossier.estimation.power import iv_design, power_analysis
+    from ivdossier.workflows.runs import analyse_file
 
-    r2 = float(np.corrcoef(frame[instrument], frame[treatment])[0, 1] ** 2)
-    design = iv_design(
-        n=n,
-        partial_r2=r2,
-        outcome_sd=float(frame[outcome].std()),
-        treatment_sd=float(frame[treatment].std()),
-        cluster_size=n / frame["district"].nunique(),
-        icc=0.01,
-    )
-    return power_analysis(design, effect=effect)
+    spec = {"n": 12000, "instrument": "fibre_months", "treatment": "telehealth", "outcome": "ed_visits"}
+    spec.update(effect=-0.5, icc=0.01)
+
+    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
+        r2 = float(np.corrcoef(frame["fibre_months"], frame["telehealth"])[0, 1] ** 2)
+        design = iv_design(
+            n=12000,
+            partial_r2=r2,
+            outcome_sd=float(frame["ed_visits"].std()),
+            treatment_sd=float(frame["telehealth"].std()),
+            cluster_size=12000 / frame["district"].nunique(),
+            icc=0.01,
+        )
+        return power_analysis(design, effect=-0.5), {}
+
+    return analyse_file("power", csv_path, compute, spec)
 
 
 def _mark_primary(registry: Any, actor: str) -> str:
@@ -526,7 +509,7 @@ def _record_what_the_checks_found(registry: Any) -> str:
 
     with registry.writing() as s:
         run = records.get(s, Run, "clerk-video-rate-falsify-zero-first-stage-1")
-        found = finding("zero-first-stage-reduced-form", run.results or {})
+        found = finding("zero-first-stage-reduced-form", run.results or {}, run.run_kind)
         set_link(
             s,
             actor="priya",

@@ -13,19 +13,34 @@ purpose so that the tool can be seen catching them:
 - patients without a capable device (``has_device == 0``) cannot adopt telehealth at all: a subgroup where every
   instrument should have no reduced-form effect if exclusion holds;
 - ``prior_ed_visits`` (the year before) is a placebo outcome no instrument can have caused.
+
+The outcome is a count (non-negative whole numbers), built as the sum of two independent counts:
+
+- avoidable visits, Poisson with mean ``AVOIDABLE_RATE`` = 0.6 for every patient who does not use telehealth and
+  none for one who does (a video visit handles the minor problem instead);
+- other visits, negative binomial (a gamma-mixed Poisson with shape ``DISPERSION``) with a log-linear mean in
+  frailty, chronic conditions, age and the clerk's follow-up habit.
+
+So adopting telehealth lowers every patient's expected number of emergency visits by exactly 0.6, whatever the
+patient's other traits: the true effect on the mean count is the linear ``TRUE_EFFECT`` = -0.6 visits for
+everyone, hence also the local average effect for the compliers of any instrument. The planted violation acts
+on the log mean of other visits: one unit of follow-up habit multiplies it by exp(``FOLLOWUP_EFFECT``).
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 
-TRUE_EFFECT = -0.6
-FOLLOWUP_EFFECT = (
-    -0.1
-)  # direct effect of a clerk's follow-up habit on emergency visits (the planted violation)
+from ivdossier.errors import InvalidInputError
+
+AVOIDABLE_RATE = 0.6  # expected avoidable emergency visits a year without telehealth (none with it)
+TRUE_EFFECT = -AVOIDABLE_RATE  # effect of adopting telehealth on the expected number of visits, every patient
+FOLLOWUP_EFFECT = -0.12  # log-mean effect of one unit of a clerk's follow-up habit (the planted violation)
+DISPERSION = 5.0  # gamma shape of the negative-binomial mixing: variance = mean + mean^2 / DISPERSION
 
 
 @dataclass(frozen=True)
@@ -40,9 +55,18 @@ class DemoTruth:
 
 
 def simulate_telehealth(
-    n: int = 12_000, *, seed: int = 20261202, districts: int = 300, clerks: int = 80
+    n: int = 12_000,
+    *,
+    seed: int = 20261202,
+    districts: int = 300,
+    clerks: int = 80,
+    set_telehealth: int | None = None,
 ) -> pd.DataFrame:
-    """One row per rural patient; columns named for the invented scenario."""
+    """One row per rural patient; columns named for the invented scenario.
+
+    ``set_telehealth`` (0 or 1) overrides everyone's adoption after all other draws, giving the potential
+    outcomes of the same patients (for checking the planted effect); leave it None for the demo data.
+    """
     rng = np.random.default_rng(seed)
     district = rng.integers(0, districts, size=n)
     wave_of_district = rng.integers(1, 6, size=districts)  # engineering schedule, unrelated to health
@@ -71,18 +95,27 @@ def simulate_telehealth(
         + rng.logistic(0.0, 1.0, size=n)
     )
     telehealth = has_device * (latent > 0).astype(int)
+    if set_telehealth is not None:
+        if set_telehealth not in (0, 1):
+            raise InvalidInputError(f"set_telehealth must be 0, 1 or None, got {set_telehealth!r}.")
+        telehealth = np.full(n, int(set_telehealth))
 
-    noise = rng.normal(0.0, 1.0, size=n)
-    ed_visits = (
-        2.0
-        + TRUE_EFFECT * telehealth
-        + 0.55 * frailty
-        + 0.15 * chronic
-        + 0.01 * (age - 50)
+    # other (non-avoidable) visits: log-linear mean, gamma-mixed Poisson (negative binomial)
+    log_mean = (
+        math.log(1.25)
+        + 0.35 * frailty
+        + 0.08 * chronic
+        + 0.006 * (age - 50)
         + FOLLOWUP_EFFECT * followup_habit[clerk]
-        + noise
     )
-    prior_ed_visits = 1.8 + 0.55 * frailty + 0.15 * chronic + 0.01 * (age - 50) + rng.normal(0.0, 1.0, size=n)
+    other = rng.poisson(np.exp(log_mean) * rng.gamma(DISPERSION, 1.0 / DISPERSION, size=n))
+    avoidable = rng.poisson(AVOIDABLE_RATE, size=n) * (1 - telehealth)
+    ed_visits = other + avoidable
+    # the year before: no telehealth yet and no clerk assignment, the same health drivers
+    prior_mean = np.exp(math.log(1.15) + 0.35 * frailty + 0.08 * chronic + 0.006 * (age - 50))
+    prior_ed_visits = rng.poisson(prior_mean * rng.gamma(DISPERSION, 1.0 / DISPERSION, size=n)) + rng.poisson(
+        AVOIDABLE_RATE, size=n
+    )
     return pd.DataFrame(
         {
             "patient_id": np.arange(1, n + 1),
@@ -95,7 +128,7 @@ def simulate_telehealth(
             "clerk_video_rate": np.round(clerk_video_rate[clerk], 4),
             "mast_km": mast_km,
             "telehealth": telehealth,
-            "ed_visits": np.round(ed_visits, 4),
-            "prior_ed_visits": np.round(prior_ed_visits, 4),
+            "ed_visits": ed_visits.astype(np.int64),
+            "prior_ed_visits": prior_ed_visits.astype(np.int64),
         }
     )

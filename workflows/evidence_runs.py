@@ -1,10 +1,10 @@
 """Stored evidence runs read back as report inputs: one reader per kind (sensitivity, falsification, compliers,
-power), the only place that reads those runs' stored results."""
+power), each reading the run's typed result through ``workflows.runs.load_result``."""
 
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from typing import Any
 
 from ivdossier.registry.models import Run
@@ -20,6 +20,20 @@ FALSIFICATION_KINDS = (
 EVIDENCE_KINDS = ("sensitivity", *FALSIFICATION_KINDS, "compliers", "power")
 
 
+def typed_result(run: Run) -> Any:
+    """The run's typed result (a LegacyResult for runs stored before typed records)."""
+    from ivdossier.workflows.runs import load_result
+
+    return load_result(run.run_kind, run.results or {})
+
+
+def _legacy(result: Any) -> str:
+    """The note of a run stored before typed records, else empty text."""
+    from ivdossier.workflows.runs import LegacyResult
+
+    return result.note if isinstance(result, LegacyResult) else ""
+
+
 def _num(value: Any) -> float | None:
     if isinstance(value, bool) or value is None:
         return None
@@ -27,12 +41,7 @@ def _num(value: Any) -> float | None:
         x = float(value)
     except (TypeError, ValueError):
         return None
-    return x if not math.isnan(x) else None
-
-
-def _or(value: Any, default: float) -> float:
-    x = _num(value)
-    return default if x is None else x
+    return None if math.isnan(x) else x
 
 
 def _nums(values: Any) -> tuple[float, ...]:
@@ -51,9 +60,9 @@ def _pair(values: Any) -> tuple[float, float] | None:
     return None
 
 
-def _int(value: Any) -> int | None:
+def _fmt(value: Any) -> str:
     x = _num(value)
-    return int(x) if x is not None else None
+    return "–" if x is None else f"{x:.3g}"
 
 
 # ---------------------------------------------------------------------------------------------- sensitivity
@@ -61,79 +70,60 @@ def _int(value: Any) -> int | None:
 
 def sensitivity_info(run: Run) -> ri.SensitivityInfo:
     """A sensitivity run (union of intervals, local to zero or breakdown value) with the union's plot."""
-    res: Mapping[str, Any] = run.results or {}
-    spec: Mapping[str, Any] = run.spec or {}
-    kind = res.get("kind")
-    common: dict[str, Any] = {
-        "slug": run.slug,
-        "created_at": run.created_at,
-        "treatment": str(res.get("treatment", "")),
-        "instruments": tuple(str(i) for i in res.get("instruments") or ()),
-        "alpha": _or(res.get("alpha"), 0.05),
-    }
-    if kind == "union_of_confidence_intervals":
+    from ivdossier.estimation.sensitivity import (
+        BreakdownResult,
+        LocalToZeroResult,
+        UnionIntervalResult,
+        plot_sensitivity_svg,
+    )
+
+    res = typed_result(run)
+    common: dict[str, Any] = {"slug": run.slug, "created_at": run.created_at}
+    if isinstance(res, UnionIntervalResult):
         return ri.SensitivityInfo(
             method="union",
-            estimate=_num(res.get("estimate")),
-            ci=_pair(res.get("ci")),
-            lower=_num(res.get("lower")),
-            upper=_num(res.get("upper")),
-            direct_effect_min=_nums(res.get("gamma_min")),
-            direct_effect_max=_nums(res.get("gamma_max")),
-            covered_without_direct_effect=None,
-            svg=_union_svg(res),
+            treatment=res.treatment,
+            instruments=res.instruments,
+            alpha=res.alpha,
+            estimate=_num(res.estimate),
+            ci=_pair(res.ci),
+            lower=_num(res.lower),
+            upper=_num(res.upper),
+            direct_effect_min=_nums(res.gamma_min),
+            direct_effect_max=_nums(res.gamma_max),
+            svg=plot_sensitivity_svg(res) if len(res.grid) >= 2 else "",
             **common,
         )
-    if kind == "local_to_zero":
+    if isinstance(res, LocalToZeroResult):
         return ri.SensitivityInfo(
             method="local-to-zero",
-            estimate=_num(res.get("estimate_2sls")),
-            ci=_pair(res.get("ci_2sls")),
-            lower=_num(res.get("lower")),
-            upper=_num(res.get("upper")),
-            prior_mean=_nums(res.get("mu")),
-            prior_sd=_nums(spec.get("prior_sd")),
+            treatment=res.treatment,
+            instruments=res.instruments,
+            alpha=res.alpha,
+            estimate=_num(res.estimate_2sls),
+            ci=_pair(res.ci_2sls),
+            lower=_num(res.lower),
+            upper=_num(res.upper),
+            prior_mean=_nums(res.mu),
+            prior_sd=tuple(math.sqrt(max(row[i], 0.0)) for i, row in enumerate(res.omega)),
             **common,
         )
-    return ri.SensitivityInfo(
-        method="breakdown",
-        estimate=_num(res.get("estimate")),
-        ci=_pair(res.get("ci")),
-        target=_num(res.get("target")),
-        breakdown=_num(res.get("magnitude")),
-        breakdown_direct_effect=_nums(res.get("gamma")),
-        breakdown_share_of_reduced_form=_num(res.get("relative_to_reduced_form")),
-        covered_without_direct_effect=bool(res.get("covered_without_direct_effect")),
-        **common,
-    )
-
-
-def _union_svg(res: Mapping[str, Any]) -> str:
-    """The existing plot of the interval against the assumed direct effect, drawn from the stored union result."""
-    from dataclasses import fields
-
-    from ivdossier.estimation.sensitivity import GammaInterval, UnionIntervalResult, plot_sensitivity_svg
-
-    grid = res.get("grid") or []
-    if len(grid) < 2:
-        return ""
-    nan = float("nan")
-    points = tuple(
-        GammaInterval(
-            position=_or(g.get("position"), 0.0),
-            gamma=_nums(g.get("gamma")),
-            estimate=_or(g.get("estimate"), nan),
-            lower=_or(g.get("lower"), nan),
-            upper=_or(g.get("upper"), nan),
+    if isinstance(res, BreakdownResult):
+        return ri.SensitivityInfo(
+            method="breakdown",
+            treatment=res.treatment,
+            instruments=res.instruments,
+            alpha=res.alpha,
+            estimate=_num(res.estimate),
+            ci=_pair(res.ci),
+            target=_num(res.target),
+            breakdown=_num(res.magnitude),
+            breakdown_direct_effect=_nums(res.gamma),
+            breakdown_share_of_reduced_form=_num(res.relative_to_reduced_form),
+            covered_without_direct_effect=bool(res.covered_without_direct_effect),
+            **common,
         )
-        for g in grid
-    )
-    names = {f.name for f in fields(UnionIntervalResult)} - {"grid"}
-    values = {k: (tuple(v) if isinstance(v, list) else v) for k, v in res.items() if k in names}
-    if names - set(values):
-        return ""
-    result = UnionIntervalResult(grid=points, **values)
-    return plot_sensitivity_svg(result)
+    return ri.SensitivityInfo(method="breakdown", note=_legacy(res) or "not a sensitivity result", **common)
 
 
 # -------------------------------------------------------------------------------------------- falsification
@@ -141,81 +131,78 @@ def _union_svg(res: Mapping[str, Any]) -> str:
 
 def falsification_info(run: Run) -> ri.FalsificationInfo:
     """A falsification run as a table of its coefficients and one line on its joint test or assumption."""
-    res: Mapping[str, Any] = run.results or {}
+    from ivdossier.estimation.falsification import (
+        InstrumentRegressions,
+        PerInstrumentResult,
+        ZeroFirstStageResult,
+    )
+    from ivdossier.estimation.subgroups import SubgroupSigns
+
+    res = typed_result(run)
     rows: list[ri.FalsificationRow] = []
     summary = ""
-    if run.run_kind == "falsify-per-instrument":
-        for r in res.get("rows") or []:
+    if isinstance(res, PerInstrumentResult):
+        for r in res.rows:
             rows.append(
                 ri.FalsificationRow(
-                    target=f"own estimate (first-stage F {_fmt(r.get('first_stage_f'))})",
-                    instrument=str(r.get("instrument", "")),
-                    estimate=_num(r.get("estimate")),
-                    se=_num(r.get("se")),
+                    target=f"own estimate (first-stage F {_fmt(r.first_stage_f)})",
+                    instrument=r.instrument,
+                    estimate=_num(r.estimate),
+                    se=_num(r.se),
                     p_value=None,
-                    n=_int(res.get("n")),
+                    n=res.n,
                 )
             )
         rows.append(
             ri.FalsificationRow(
                 target="estimate with all instruments",
-                instrument=", ".join(str(i) for i in res.get("instruments") or ()),
-                estimate=_num(res.get("estimate_all")),
-                se=_num(res.get("se_all")),
+                instrument=", ".join(res.instruments),
+                estimate=_num(res.estimate_all),
+                se=_num(res.se_all),
                 p_value=None,
-                n=_int(res.get("n")),
+                n=res.n,
             )
         )
-        overid = res.get("overid") or {}
-        if _num(overid.get("p_value")) is not None:
-            summary = f"Over-identification test: p = {_fmt(overid.get('p_value'))}."
-    elif run.run_kind == "falsify-zero-first-stage":
-        where = str(res.get("subsample", "the subsample"))
-        rows.extend(_coefficient_rows(res.get("reduced_form"), suffix=f" in {where}"))
+        if _num((res.overid or {}).get("p_value")) is not None:
+            summary = f"Over-identification test: p = {_fmt(res.overid['p_value'])}."
+    elif isinstance(res, ZeroFirstStageResult):
+        rows.extend(_coefficient_rows(res.reduced_form, suffix=f" in {res.subsample}"))
         summary = (
-            f"First stage in {where}: p = {_fmt((res.get('first_stage') or {}).get('wald_p_value'))} "
-            f"({_int(res.get('n'))} of {_int(res.get('n_full'))} rows). Assumption: "
-            f"{res.get('assumption', 'the treatment does not respond to the instrument there')}."
+            f"First stage in {res.subsample}: p = {_fmt(res.first_stage_p_value)} "
+            f"({res.n} of {res.n_full} rows). Assumption: {res.assumption}."
         )
-    elif run.run_kind == "falsify-first-stage-signs":
-        for g in res.get("groups") or []:
-            rows.extend(_coefficient_rows(g, suffix=f" where {res.get('by', '')} in {g.get('group', '')}"))
-        flagged = res.get("flagged") or []
+    elif isinstance(res, SubgroupSigns):
+        for g in res.groups:
+            rows.extend(_coefficient_rows(g.regression, suffix=f" where {res.by} in {g.group}"))
         summary = (
-            f"Subgroups with a significantly reversed first stage: {', '.join(map(str, flagged))}."
-            if flagged
+            f"Subgroups with a significantly reversed first stage: {', '.join(res.flagged)}."
+            if res.flagged
             else "No subgroup has a significantly reversed first stage."
         )
-    else:  # balance and placebo outcomes: one regression per target
-        for r in res.get("rows") or []:
+    elif isinstance(res, InstrumentRegressions):  # balance and placebo outcomes: one regression per target
+        for r in res.rows:
             rows.extend(_coefficient_rows(r))
-        joint = res.get("joint") or {}
-        if _num(joint.get("p_value")) is not None:
-            summary = f"Joint test of all coefficients: p = {_fmt(joint.get('p_value'))}."
+        if _num(res.joint.p_value) is not None:
+            summary = f"Joint test of all coefficients: p = {_fmt(res.joint.p_value)}."
+    else:
+        summary = _legacy(res)
     return ri.FalsificationInfo(
         slug=run.slug, created_at=run.created_at, check=run.run_kind, rows=tuple(rows), summary=summary
     )
 
 
 def _coefficient_rows(regression: Any, suffix: str = "") -> list[ri.FalsificationRow]:
-    if not isinstance(regression, Mapping):
-        return []
     return [
         ri.FalsificationRow(
-            target=f"{regression.get('target', '')}{suffix}",
-            instrument=str(c.get("instrument", "")),
-            estimate=_num(c.get("coef")),
-            se=_num(c.get("se")),
-            p_value=_num(c.get("p_value")),
-            n=_int(regression.get("n")),
+            target=f"{regression.target}{suffix}",
+            instrument=c.instrument,
+            estimate=_num(c.coef),
+            se=_num(c.se),
+            p_value=_num(c.p_value),
+            n=regression.n,
         )
-        for c in regression.get("coefficients") or []
+        for c in regression.coefficients
     ]
-
-
-def _fmt(value: Any) -> str:
-    x = _num(value)
-    return "–" if x is None else f"{x:.3g}"
 
 
 # -------------------------------------------------------------------------------------------------- compliers
@@ -223,40 +210,40 @@ def _fmt(value: Any) -> str:
 
 def compliers_info(run: Run) -> ri.CompliersInfo:
     """A compliers run: the three compliance types' shares and the complier profile when it was asked for."""
-    res: Mapping[str, Any] = run.results or {}
-    spec: Mapping[str, Any] = run.spec or {}
+    from ivdossier.estimation.compliers import ComplierReport
+
+    res = typed_result(run)
+    spec = run.spec or {}
+    common: dict[str, Any] = {
+        "slug": run.slug,
+        "created_at": run.created_at,
+        "treatment": str(spec.get("treatment", "")),
+        "instrument": str(spec.get("instrument", "")),
+    }
+    if not isinstance(res, ComplierReport):
+        return ri.CompliersInfo(note=_legacy(res), **common)
+    sh = res.shares
     shares = tuple(
         ri.ComplierShare(
             group=name.replace("_", "-"),
-            estimate=_or(entry.get("estimate"), 0.0),
-            se=_num(entry.get("se")),
-            ci=_pair(entry.get("ci")),
+            estimate=float(getattr(sh, name)),
+            se=_num(getattr(sh, f"{name}_se")),
+            ci=_pair(sh.interval(name)),
         )
-        for name, entry in (res.get("shares") or {}).items()
-        if isinstance(entry, Mapping)
+        for name in ("complier", "always_taker", "never_taker")
     )
-    means = res.get("means") or {}
     profile = tuple(
         ri.ComplierProfileRow(
-            covariate=str(p.get("covariate", "")),
-            overall=_num(p.get("overall_mean")),
-            complier=_num(p.get("complier_mean")),
-            complier_se=_num(p.get("complier_mean_se")),
-            always_taker=_num(p.get("always_taker_mean")),
-            never_taker=_num(p.get("never_taker_mean")),
+            covariate=p.covariate,
+            overall=_num(p.overall_mean),
+            complier=_num(p.complier_mean),
+            complier_se=_num(p.complier_mean_se),
+            always_taker=_num(p.always_taker_mean),
+            never_taker=_num(p.never_taker_mean),
         )
-        for p in means.get("profiles") or []
+        for p in (res.means.profiles if res.means is not None else ())
     )
-    return ri.CompliersInfo(
-        slug=run.slug,
-        created_at=run.created_at,
-        treatment=str(spec.get("treatment", "")),
-        instrument=str(spec.get("instrument", "")),
-        shares=shares,
-        profile=profile,
-        alpha=_or(res.get("alpha"), 0.05),
-        se_method=str(res.get("se_method", "")),
-    )
+    return ri.CompliersInfo(shares=shares, profile=profile, alpha=sh.alpha, se_method=sh.se_method, **common)
 
 
 # ------------------------------------------------------------------------------------------------------ power
@@ -264,21 +251,28 @@ def compliers_info(run: Run) -> ri.CompliersInfo:
 
 def power_info(run: Run) -> ri.PowerInfo:
     """A power run: standard error, power at the effect, minimum detectable effect and observations needed."""
-    res: Mapping[str, Any] = run.results or {}
-    design = res.get("design") or {}
+    from ivdossier.estimation.power import PowerAnalysis
+
+    res = typed_result(run)
+    if not isinstance(res, PowerAnalysis):
+        return ri.PowerInfo(
+            slug=run.slug, created_at=run.created_at, n=None, se=None, mde=None, target_power=0.8,
+            note=_legacy(res),
+        )  # fmt: skip
     return ri.PowerInfo(
         slug=run.slug,
         created_at=run.created_at,
-        n=_int(design.get("n")),
-        se=_num(res.get("se")),
-        mde=_num(res.get("mde")),
-        target_power=_or(res.get("target_power"), 0.8),
-        alpha=_or(design.get("alpha"), 0.05),
-        effect=_num(res.get("effect")),
-        power=_num(res.get("power")),
-        n_required=_int(res.get("n_required")),
-        expected_f=_num((res.get("first_stage") or {}).get("expected_f")),
-        assumptions=tuple(str(a) for a in res.get("assumptions") or ()),
+        n=res.design.n,
+        se=_num(res.se),
+        mde=_num(res.mde),
+        target_power=res.target_power,
+        alpha=res.design.alpha,
+        effect=_num(res.effect),
+        power=_num(res.power),
+        n_required=res.n_required,
+        expected_f=_num(res.first_stage.expected_f),
+        assumptions=res.assumptions,
+        reliability=res.reliability,
     )
 
 

@@ -21,6 +21,7 @@ from ivdossier.registry.threats import links_of
 from ivdossier.threats_catalog.checks import get_check
 from ivdossier.vocabulary import INACTIVE_STATES
 from ivdossier.workflows.dossiers import instrument_check
+from ivdossier.workflows.plan_quantities import check_rule_paths
 from ivdossier.workflows.plan_rules import check_rules, default_rules
 
 PLAN_SCHEMA = store.PLAN_SCHEMA
@@ -214,20 +215,24 @@ def edit_plan(
     sections: Mapping[str, Any] | None = None,
     expected_version: int | None = None,
 ) -> Plan:
-    """Replace whole sections of a draft plan's content, validating decision rules; frozen plans refuse."""
+    """Replace whole sections of a draft plan's content, validating decision rules (their form, and that each
+    quantity they name is one a run reports); frozen plans refuse."""
     store.refuse_if_frozen(records.get(session, Plan, slug))
     checked = dict(sections or {})
     store.check_sections(checked)
     if "decision_rules" in checked:
         checked["decision_rules"] = check_rules(checked["decision_rules"])
+        check_rule_paths(checked["decision_rules"])
     return store.edit_plan(
         session, actor=actor, slug=slug, title=title, sections=checked, expected_version=expected_version
     )
 
 
 def freeze_plan(session: Session, *, actor: str, slug: str, at: datetime | None = None) -> Plan:
-    """Validate the draft's decision rules, then seal it (see ``ivdossier.registry.plans.freeze_plan``)."""
+    """Validate the draft's decision rules (form, quantities, and the column names against its specs), then seal it
+    (see ``ivdossier.registry.plans.freeze_plan``)."""
     plan = records.get(session, Plan, slug)
     store.refuse_if_frozen(plan)
-    check_rules((plan.content or {}).get("decision_rules", []))
+    content = plan.content or {}
+    check_rule_paths(check_rules(content.get("decision_rules", [])), list(content.get("specs") or []))
     return store.freeze_plan(session, actor=actor, slug=slug, at=at)

@@ -4,13 +4,17 @@ from __future__ import annotations
 
 import platform
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from ivdossier import __version__
+from ivdossier.errors import InvalidInputError
+
+if TYPE_CHECKING:
+    from ivdossier.estimation.spec import ModelSpec
 
 VERSIONED_PACKAGES = ("numpy", "scipy", "pandas", "statsmodels", "sqlmodel", "networkx", "matplotlib")
 
@@ -64,45 +68,33 @@ def analyse_file(
     )
 
 
-def estimate_file(
-    path: Path | str,
-    *,
-    outcome: str,
-    treatment: str | Sequence[str],
-    instruments: Sequence[str] = (),
-    controls: Sequence[str] = (),
-    absorb: Sequence[str] = (),
-    cluster: str | Sequence[str] | None = None,
-    weights: str | None = None,
-    method: str = "2sls",
-    vcov: str = "robust",
-    alpha: float = 0.05,
-) -> FileRun:
-    """Estimate with every diagnostic and summarise what the dossier plots."""
-    from ivdossier.estimation.api import estimate_prepared
-    from ivdossier.estimation.data import as_names, prepare
-    from ivdossier.estimation.plot_data import ar_curve, first_stage_bins
+def estimate_file(path: Path | str, spec: ModelSpec | None = None, **keywords: Any) -> FileRun:
+    """Estimate a validated model spec on a data file with every diagnostic; summarise what the dossier plots.
 
-    def compute(frame: Any) -> tuple[Any, dict[str, Any]]:
-        prepared = prepare(
-            frame,
-            outcome=outcome,
-            treatment=treatment,
-            instruments=tuple(instruments),
-            controls=tuple(controls),
-            absorb=tuple(absorb),
-            cluster=as_names(cluster, "cluster"),
-            weights=weights,
-            require_instruments=method != "ols",
-        )
-        result = estimate_prepared(prepared, method=method, vcov=vcov, alpha=alpha)
-        plots: dict[str, Any] = {}
-        if method != "ols":
-            plots = {"first_stage_bins": first_stage_bins(prepared), "ar_curve": ar_curve(prepared, result)}
-        return result, {"plot_data": plots}
+    Without ``spec`` the keywords of :func:`~ivdossier.estimation.estimate` build one (the same checks).
+    """
+    from ivdossier.estimation.spec import ModelSpec
+    from ivdossier.workflows.analyses import analysis
 
-    run = analyse_file("estimate", path, compute, {})
+    if spec is None:
+        spec = ModelSpec.build(**keywords)
+    elif keywords:
+        raise InvalidInputError(f"give a spec or keywords, not both (got {', '.join(sorted(keywords))}).")
+
+    compute = analysis("estimate").compute
+    assert compute is not None
+    run = analyse_file("estimate", path, lambda frame: compute(frame, spec, {}), {})
     return FileRun(**{**run.__dict__, "spec": {"data": str(path), **run.result.spec}})
+
+
+def stored_results(result: Any, extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """What a run stores as its results: the JSON view (what plan rules and ``--json`` read), what is kept
+    beside it (plot summaries), and the typed record under ``record`` that reads back as the result object."""
+    from ivdossier.jsonsafe import RECORD_KEY, json_safe
+
+    out: dict[str, Any] = json_safe({**result.to_dict(), **(extra or {})})
+    out[RECORD_KEY] = result.to_record()
+    return out
 
 
 def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any:
@@ -115,7 +107,7 @@ def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any
         dataset = register_dataset(
             session, actor=actor, path=run.path, sha256=run.sha256, rows=run.rows, columns=run.columns
         )
-    results = json_safe({**run.result.to_dict(), **run.extra})
+    results = stored_results(run.result, run.extra)
     return record_run(
         session,
         actor=actor,
@@ -127,3 +119,36 @@ def store_run(session: Any, run: FileRun, *, instrument: str, actor: str) -> Any
         seconds=run.seconds,
         dataset=dataset,
     )
+
+
+LEGACY_NOTE = (
+    "stored by ivdossier 0.1 before runs kept a typed record; its numbers are shown as stored, and rerunning "
+    "the analysis lets the dossier summarise it"
+)
+
+
+@dataclass(frozen=True)
+class LegacyResult:
+    """A run stored by the first release (no typed record): its results as stored, with a note that says so."""
+
+    run_kind: str
+    raw: Mapping[str, Any]
+    note: str = LEGACY_NOTE
+
+
+def load_result(run_kind: str, results: Mapping[str, Any]) -> Any:
+    """The typed result of a stored run, or a LegacyResult for runs stored before typed records existed."""
+    from ivdossier.jsonsafe import RECORD_KEY, load_record
+    from ivdossier.workflows.analyses import ANALYSES
+
+    record = results.get(RECORD_KEY) if isinstance(results, Mapping) else None
+    if record is None:
+        return LegacyResult(run_kind, dict(results or {}))
+    expected = {a.result_class for a in ANALYSES.values() if not run_kind or a.run_kind == run_kind}
+    result = load_record(record)  # the classes above are imported, so every stored type is known
+    if expected and type(result) not in expected:
+        names = ", ".join(sorted(c.__name__ for c in expected))
+        raise InvalidInputError(
+            f"a {run_kind!r} run holds a {type(result).__name__}; expected one of {names}."
+        )
+    return result

@@ -1,0 +1,451 @@
+"""The table of analyses: for each kind, how it is computed from a model spec, what it stores, which catalogue
+checks it answers, the command that runs it, and its one-line finding per check.
+
+The command line, stored runs, findings in dossiers and the demo all read this table, so a check is tied to its
+command and its finding in one place (a test ties the table to the catalogue's checks and to the CLI's commands).
+Adding an analysis: a numerics function returning a Record, one entry here, a command, a test.
+"""
+
+from __future__ import annotations
+
+import importlib
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, cast
+
+from ivdossier.errors import InvalidInputError, NotFoundError
+from ivdossier.jsonsafe import Record
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+    from ivdossier.estimation.spec import ModelSpec
+    from ivdossier.workflows.runs import FileRun
+
+Options = Mapping[str, Any]
+Computed = tuple[Any, dict[str, Any]]  # the typed result and what is stored beside it (e.g. plot summaries)
+
+
+@dataclass(frozen=True)
+class Analysis:
+    """One kind of analysis.
+
+    ``name`` is the command path after ``ivdossier`` ("falsify balance"); ``run_kind`` the kind its stored runs
+    carry; ``result_type`` the Record class it returns, as "module:Class" under ``ivdossier.estimation``; ``roles`` the model-spec roles it reads (the
+    rest of the spec is the shared adjustment: controls, fixed effects, clusters, weights, covariance, level);
+    ``compute(frame, spec, options) -> (result, extra)``; ``findings`` one line per catalogue check it answers,
+    read from the typed result's attributes.
+    """
+
+    name: str
+    run_kind: str
+    result_type: str
+    roles: tuple[str, ...]
+    compute: Callable[[pd.DataFrame, ModelSpec | None, Options], Computed] | None
+    findings: Mapping[str, Callable[[Any], str]] = field(default_factory=dict)
+
+    @property
+    def command(self) -> str:
+        """The command line that runs it, as the catalogue names commands."""
+        return f"ivdossier {self.name}"
+
+    @property
+    def result_class(self) -> type[Record]:
+        """The Record class of its results (importing the module that defines it)."""
+        module, name = self.result_type.split(":")
+        return cast(type[Record], getattr(importlib.import_module(f"ivdossier.estimation.{module}"), name))
+
+    @property
+    def checks(self) -> tuple[str, ...]:
+        """The catalogue checks this analysis answers."""
+        return tuple(self.findings)
+
+    def stored_spec(self, spec: ModelSpec | None, options: Options) -> dict[str, Any]:
+        """The spec stored with a run: the roles it reads, the shared adjustment, and its own options."""
+        out: dict[str, Any] = {}
+        if spec is not None:
+            echo = spec.echo()
+            for role in self.roles:
+                value = echo[role]
+                out[role] = value[0] if role == "treatment" and len(value) == 1 else value
+            out.update({k: echo[k] for k in ("controls", "absorb", "weights", "vcov", "alpha")})
+            out["cluster"] = echo["cluster"] or None
+        out.update(options)
+        return out
+
+
+# ---------------------------------------------------------------- one-line findings (typed results)
+
+
+def _num(value: Any, digits: int = 3) -> str:
+    if isinstance(value, int | float) and not isinstance(value, bool):
+        return f"{value:.{digits}g}"
+    return str(value)
+
+
+def _set_text(intervals: Any) -> str:
+    if not intervals:
+        return "empty"
+    return " ∪ ".join(f"[{_num(lo, 4)}, {_num(hi, 4)}]" for lo, hi in intervals)
+
+
+def _suite(result: Any) -> Any:
+    from ivdossier.estimation.diagnostics import DiagnosticSuite
+
+    return result.diagnostics if isinstance(result.diagnostics, DiagnosticSuite) else None
+
+
+def _strength(result: Any) -> str:
+    suite = _suite(result)
+    eff = suite.strength.effective_f if suite is not None else None
+    if eff is None:
+        return "no effective F in this run"
+    crit = next((c for t, c in eff.critical_values.items() if round(t * 100) == 10), None)
+    verdict = "above" if crit is not None and eff.statistic >= crit else "below"
+    return f"effective F {_num(eff.statistic, 4)}, {verdict} the τ = 10 % critical value {_num(crit, 4)}"
+
+
+def _robust(result: Any) -> str:
+    suite = _suite(result)
+    if suite is None:
+        return "no Anderson–Rubin result"
+    ar = suite.weak_iv_robust.anderson_rubin
+    if ar.intervals is None:
+        return f"Anderson–Rubin test p = {_num(ar.p_value)}"
+    return f"Anderson–Rubin {1 - ar.alpha:.0%} set {_set_text(ar.intervals)}"
+
+
+def _overid(result: Any) -> str:
+    suite = _suite(result)
+    over = suite.overid if suite is not None else None
+    if over is None or over.p_value is None:
+        return "just identified: no over-identification test"
+    return f"{over.test or 'J'} = {_num(over.statistic)}, p = {_num(over.p_value)}"
+
+
+def _endogeneity(result: Any) -> str:
+    suite = _suite(result)
+    if suite is None:
+        return "no endogeneity test"
+    return f"Durbin–Wu–Hausman p = {_num(suite.endogeneity.p_value)}"
+
+
+def _per_instrument(result: Any) -> str:
+    parts = [f"{r.instrument}: {_num(r.estimate, 4)}" for r in result.rows]
+    over = result.overid or {}
+    test = (
+        f"; {over.get('test') or 'J'} p = {_num(over.get('p_value'))}"
+        if over.get("p_value") is not None
+        else ""
+    )
+    return "just-identified estimates " + "; ".join(parts) + test
+
+
+def _joint(result: Any) -> str:
+    joint = result.joint
+    targets = ", ".join(r.target for r in result.rows)
+    return f"joint test on {targets}: χ²({joint.df}) = {_num(joint.statistic)}, p = {_num(joint.p_value)}"
+
+
+def _zero_first_stage(result: Any) -> str:
+    parts = [
+        f"{c.instrument} {_num(c.coef)} (se {_num(c.se)}, p = {_num(c.p_value)})"
+        for c in result.reduced_form.coefficients
+    ]
+    return f"reduced form in {result.subsample}: " + "; ".join(parts)
+
+
+def _interval_sensitivity(label: str) -> Callable[[Any], str]:
+    def finding(result: Any) -> str:
+        covers = "covers" if result.covers_zero else "excludes"
+        return f"{label} [{_num(result.lower, 4)}, {_num(result.upper, 4)}] {covers} zero"
+
+    return finding
+
+
+def _breakdown(result: Any) -> str:
+    return (
+        f"a direct effect of {_num(result.magnitude)} per unit of the instrument "
+        f"({_num(result.relative_to_reduced_form)} of the reduced form) brings the interval to "
+        f"{_num(result.target)}"
+    )
+
+
+def _complier_share(result: Any) -> str:
+    return "complier share " + _num(result.shares.complier)
+
+
+def _complier_density(result: Any) -> str:
+    if result.implications is None:
+        return "implied complier densities not checked in this run (give --outcome)"
+    return f"implied complier densities: p = {_num(result.implications.p_value)} for a negative density"
+
+
+def _subgroup_signs(result: Any) -> str:
+    if not result.flagged:
+        return (
+            f"first stage of the same sign (or not significantly reversed) in all {len(result.groups)} "
+            f"subgroups of {result.by}"
+        )
+    return (
+        f"first stage significantly reversed where {result.by} is in {', '.join(result.flagged)}: "
+        "possible defiers"
+    )
+
+
+def _power(result: Any) -> str:
+    mde = f"minimum detectable effect {_num(result.mde)}"
+    if result.power is None:
+        return f"{mde} (no effect given, so no power at an effect)"
+    return f"power {_num(result.power)} for effect {_num(result.effect)}; {mde}"
+
+
+# ---------------------------------------------------------------- computations (spec -> result)
+
+
+def _need(spec: ModelSpec | None, name: str) -> ModelSpec:
+    if spec is None:
+        raise InvalidInputError(
+            f"the analysis {name!r} needs a model spec; build one with ModelSpec.build()."
+        )
+    return spec
+
+
+def _estimate(frame: pd.DataFrame, spec: ModelSpec | None, options: Options) -> Computed:
+    from ivdossier.estimation.api import estimate_prepared, prepare_spec
+    from ivdossier.estimation.plot_data import ar_curve, first_stage_bins
+
+    s = _need(spec, "estimate")
+    prepared = prepare_spec(frame, s)
+    result = estimate_prepared(
+        prepared,
+        method=s.method,
+        vcov=s.vcov,
+        small_sample=s.small_sample,
+        alpha=s.alpha,
+        fuller_alpha=s.fuller_alpha,
+    )
+    plots: dict[str, Any] = {}
+    if s.method != "ols":
+        plots = {"first_stage_bins": first_stage_bins(prepared), "ar_curve": ar_curve(prepared, result)}
+    return result, {"plot_data": plots}
+
+
+def _model(spec: ModelSpec | None, name: str, *roles: str) -> dict[str, Any]:
+    s = _need(spec, name)
+    out = s.adjustment()
+    for role in roles:
+        if role == "outcome":
+            if s.outcome is None:
+                raise InvalidInputError(f"{name} needs an outcome column; pass outcome=.")
+            out["outcome"] = s.outcome
+        elif role == "treatment":
+            out["treatment"] = s.single_treatment()
+        else:
+            out[role] = getattr(s, role)
+    return out
+
+
+def _one(values: Any) -> Any:
+    values = list(values) if isinstance(values, list | tuple) else values
+    return values[0] if isinstance(values, list) and len(values) == 1 else values
+
+
+def _sensitivity_range(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.sensitivity import union_of_intervals
+
+    kw = _model(spec, "sensitivity range", "outcome", "treatment", "instruments")
+    return union_of_intervals(frame, gamma_min=_one(o["gamma_min"]), gamma_max=_one(o["gamma_max"]), **kw), {}
+
+
+def _sensitivity_prior(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.sensitivity import local_to_zero
+
+    kw = _model(spec, "sensitivity prior", "outcome", "treatment", "instruments")
+    mean, sd = list(o["prior_mean"]), list(o["prior_sd"])
+    if len(mean) != len(kw["instruments"]) or len(sd) != len(kw["instruments"]):
+        raise InvalidInputError(
+            "give one --prior-mean and one --prior-sd per --instrument, in the same order."
+        )
+    omega = [[(s**2 if i == j else 0.0) for j, s in enumerate(sd)] for i in range(len(sd))]
+    return local_to_zero(frame, mu=mean, omega=omega, **kw), {}
+
+
+def _sensitivity_breakdown(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.sensitivity import breakdown_value
+
+    kw = _model(spec, "sensitivity breakdown", "outcome", "treatment", "instruments")
+    return breakdown_value(frame, target=o.get("target", 0.0), **kw), {}
+
+
+def _balance(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.falsification import balance
+
+    kw = _model(spec, "falsify balance", "instruments")
+    return balance(frame, covariates=list(o["covariates"]), **kw), {}
+
+
+def _placebo(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.falsification import placebo_outcomes
+
+    kw = _model(spec, "falsify placebo", "instruments")
+    return placebo_outcomes(frame, outcomes=list(o["outcomes"]), **kw), {}
+
+
+def _zero(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.falsification import zero_first_stage
+
+    kw = _model(spec, "falsify zero-first-stage", "outcome", "treatment", "instruments")
+    return zero_first_stage(frame, query=o.get("query"), subsample=o.get("subsample"), **kw), {}
+
+
+def _per_instrument_compute(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.falsification import per_instrument
+
+    kw = _model(spec, "falsify per-instrument", "outcome", "treatment", "instruments")
+    return per_instrument(frame, **kw), {}
+
+
+def _signs(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.subgroups import subgroup_first_stages
+
+    kw = _model(spec, "falsify first-stage-signs", "treatment", "instruments")
+    return subgroup_first_stages(frame, by=o["by"], bins=o.get("bins", 4), **kw), {}
+
+
+def _compliers(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+    from ivdossier.estimation.compliers import complier_report
+
+    report = complier_report(
+        frame,
+        treatment=o["treatment"],
+        instrument=o["instrument"],
+        covariates=list(o.get("covariates") or []),
+        outcome=o.get("outcome"),
+        bins=o.get("bins", 5),
+        cluster=o.get("cluster"),
+        seed=o.get("seed", 0),
+    )
+    return report, {}
+
+
+_ESTIMATE_FINDINGS: dict[str, Callable[[Any], str]] = {
+    "first-stage-strength": _strength,
+    "weak-iv-robust-inference": _robust,
+    "over-identification": _overid,
+    "endogeneity-test": _endogeneity,
+}
+_SENSITIVITY = ("outcome", "treatment", "instruments")
+
+#: Every analysis, by command name.
+ANALYSES: dict[str, Analysis] = {
+    a.name: a
+    for a in (
+        Analysis(
+            "estimate", "estimate", "result:EstimationResult", _SENSITIVITY, _estimate, _ESTIMATE_FINDINGS
+        ),
+        Analysis(
+            "falsify balance",
+            "falsify-balance",
+            "falsification:InstrumentRegressions",
+            ("instruments",),
+            _balance,
+            {"covariate-balance": _joint},
+        ),
+        Analysis(
+            "falsify placebo",
+            "falsify-placebo",
+            "falsification:InstrumentRegressions",
+            ("instruments",),
+            _placebo,
+            {"placebo-outcome": _joint},
+        ),
+        Analysis(
+            "falsify zero-first-stage",
+            "falsify-zero-first-stage",
+            "falsification:ZeroFirstStageResult",
+            _SENSITIVITY,
+            _zero,
+            {"zero-first-stage-reduced-form": _zero_first_stage},
+        ),
+        Analysis(
+            "falsify per-instrument",
+            "falsify-per-instrument",
+            "falsification:PerInstrumentResult",
+            _SENSITIVITY,
+            _per_instrument_compute,
+            {"per-instrument-estimates": _per_instrument, "over-identification": _per_instrument},
+        ),
+        Analysis(
+            "falsify first-stage-signs",
+            "falsify-first-stage-signs",
+            "subgroups:SubgroupSigns",
+            ("treatment", "instruments"),
+            _signs,
+            {"subgroup-first-stage-signs": _subgroup_signs},
+        ),
+        Analysis(
+            "sensitivity range",
+            "sensitivity",
+            "sensitivity:UnionIntervalResult",
+            _SENSITIVITY,
+            _sensitivity_range,
+            {"exclusion-sensitivity": _interval_sensitivity("union of intervals")},
+        ),
+        Analysis(
+            "sensitivity prior",
+            "sensitivity",
+            "sensitivity:LocalToZeroResult",
+            _SENSITIVITY,
+            _sensitivity_prior,
+            {"exclusion-sensitivity": _interval_sensitivity("local-to-zero interval")},
+        ),
+        Analysis(
+            "sensitivity breakdown",
+            "sensitivity",
+            "sensitivity:BreakdownResult",
+            _SENSITIVITY,
+            _sensitivity_breakdown,
+            {"exclusion-sensitivity": _breakdown},
+        ),
+        Analysis(
+            "compliers",
+            "compliers",
+            "compliers:ComplierReport",
+            (),
+            _compliers,
+            {"complier-profile": _complier_share, "complier-density-sign": _complier_density},
+        ),
+        Analysis("power", "power", "power:PowerAnalysis", (), None, {"power-analysis": _power}),
+    )
+}
+
+
+def analysis(name: str) -> Analysis:
+    """The analysis run by ``ivdossier NAME``; the error lists the known names."""
+    try:
+        return ANALYSES[name]
+    except KeyError:
+        raise NotFoundError(f"no analysis {name!r}; known analyses: {', '.join(ANALYSES)}.") from None
+
+
+def analysis_of_result(run_kind: str, result: Any) -> Analysis | None:
+    """The table entry that produced a typed result of this run kind (None for unknown kinds)."""
+    for entry in ANALYSES.values():
+        if entry.run_kind == run_kind and type(result) is entry.result_class:
+            return entry
+    return None
+
+
+def run_analysis(name: str, path: Path | str, spec: ModelSpec | None, **options: Any) -> FileRun:
+    """Load a data file, compute one analysis from a validated spec and record fingerprint, spec and timing."""
+    from ivdossier.workflows.runs import analyse_file
+
+    entry = analysis(name)
+    compute = entry.compute
+    if compute is None:
+        raise InvalidInputError(f"the analysis {name!r} reads no data file; call its function directly.")
+    return analyse_file(
+        entry.run_kind, path, lambda frame: compute(frame, spec, options), entry.stored_spec(spec, options)
+    )
