@@ -157,7 +157,7 @@ def _ratings(session: Session, link_id: int | None) -> tuple[ri.Rating, ...]:
 
 def run_info(session: Session, run: Run) -> ri.RunInfo:
     """A stored run as the reports layer reads it, with its plot summaries, primary mark and inference warnings."""
-    from ivdossier.workflows.run_records import run_warnings
+    from ivdossier.workflows.run_records import warnings_of
 
     results: Mapping[str, Any] = run.results or {}
     plots: Mapping[str, Any] = results.get("plot_data") or {}
@@ -190,7 +190,7 @@ def run_info(session: Session, run: Run) -> ri.RunInfo:
         else None,
         kind=run.run_kind,
         primary=bool(run.is_primary),
-        warnings=run_warnings(results),
+        warnings=warnings_of(run),
     )
 
 

@@ -4,7 +4,7 @@ that rests on few clusters or on a t reference with few degrees of freedom."""
 from __future__ import annotations
 
 import re
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -25,27 +25,44 @@ distribution (common practice)."""
 _T_DF = re.compile(r"t quantiles with (\d+) degrees of freedom")
 
 
-def run_warnings(results: Mapping[str, Any] | None) -> tuple[str, ...]:
+def inference_warnings(n_clusters: Sequence[int], ref_df: float | None) -> tuple[str, ...]:
     """Warnings about a run's inference: few clusters (G < 42) or a t reference with few degrees of freedom."""
-    res = results or {}
     out = []
-    clusters = [int(g) for g in res.get("n_clusters") or () if isinstance(g, int | float)]
-    if clusters and min(clusters) < FEW_CLUSTERS:
+    if n_clusters and min(n_clusters) < FEW_CLUSTERS:
         out.append(
-            f"few clusters: {min(clusters)} (fewer than {FEW_CLUSTERS}); cluster-robust standard errors can be "
+            f"few clusters: {min(n_clusters)} (fewer than {FEW_CLUSTERS}); cluster-robust standard errors can be "
             "too small with few clusters, so confirm the inference with a wild cluster bootstrap or "
             "randomization inference"
         )
+    if ref_df is not None and ref_df < FEW_T_DF:
+        out.append(
+            f"the t reference has only {int(ref_df)} degrees of freedom (fewer than {FEW_T_DF}); intervals and "
+            "p-values lean on that small-sample reference"
+        )
+    return tuple(out)
+
+
+def run_warnings(results: Mapping[str, Any] | None) -> tuple[str, ...]:
+    """`inference_warnings` read from a run's stored JSON view (any kind that reports clusters or its reference)."""
+    res = results or {}
+    clusters = [int(g) for g in res.get("n_clusters") or () if isinstance(g, int | float)]
     df = res.get("ref_df")
     if df is None:
         match = _T_DF.search(str(res.get("ci_reference") or res.get("reference") or ""))
         df = int(match.group(1)) if match else None
-    if isinstance(df, int | float) and df < FEW_T_DF:
-        out.append(
-            f"the t reference has only {int(df)} degrees of freedom (fewer than {FEW_T_DF}); intervals and "
-            "p-values lean on that small-sample reference"
-        )
-    return tuple(out)
+    return inference_warnings(clusters, df if isinstance(df, int | float) else None)
+
+
+def warnings_of(run: Run) -> tuple[str, ...]:
+    """A stored run's inference warnings, from its typed estimation result when it has one."""
+    from ivdossier.estimation.result import EstimationResult
+    from ivdossier.workflows.evidence_runs import typed_result
+
+    if run.run_kind == "estimate":
+        res = typed_result(run)
+        if isinstance(res, EstimationResult):
+            return inference_warnings(tuple(res.n_clusters), res.ref_df)
+    return run_warnings(run.results)
 
 
 @dataclass(frozen=True)
@@ -112,7 +129,7 @@ def summarise(session: Session, run: Run) -> RunSummary:
         versions=run.versions or {},
         seconds=run.seconds,
         summary=result_summary(run),
-        warnings=run_warnings(run.results),
+        warnings=warnings_of(run),
     )
 
 
@@ -133,22 +150,22 @@ def mark_primary(session: Session, *, actor: str, run: str, reason: str = "") ->
 
 def result_summary(run: Run) -> tuple[tuple[str, str], ...]:
     """A few labelled key results of a stored run, whatever its kind (the full results stay in --json)."""
+    from ivdossier.estimation.result import EstimationResult
     from ivdossier.workflows import evidence_runs as ev
 
-    res: Mapping[str, Any] = run.results or {}
     if run.run_kind == "estimate":
-        names = res.get("names") or list((res.get("coef") or {}).keys())
-        out = []
-        for name in names[:3]:
-            coef = (res.get("coef") or {}).get(name)
-            se = (res.get("se") or {}).get(name)
-            out.append((f"estimate of {name}", f"{_g(coef)} (standard error {_g(se)})"))
-        out.append(("method", f"{res.get('method', '')}, {res.get('vcov', '')}"))
-        out.append(("rows used", f"{res.get('n', '–')} ({res.get('n_dropped', 0)} left out)"))
-        if res.get("n_clusters"):
-            out.append(("clusters", ", ".join(str(g) for g in res["n_clusters"])))
-        if res.get("ci_reference"):
-            out.append(("interval reference", str(res["ci_reference"])))
+        res = ev.typed_result(run)
+        if not isinstance(res, EstimationResult):
+            return (("results", "stored before typed records; see --json"),)
+        out = [
+            (f"estimate of {name}", f"{_g(res.coef_of(name))} (standard error {_g(res.se_of(name))})")
+            for name in res.names[:3]
+        ]
+        out.append(("method", f"{res.method}, {res.vcov}"))
+        out.append(("rows used", f"{res.n} ({res.n_dropped} left out)"))
+        if res.n_clusters:
+            out.append(("clusters", ", ".join(str(g) for g in res.n_clusters)))
+        out.append(("interval reference", res.ci_reference))
         return tuple(out)
     if run.run_kind == "sensitivity":
         s = ev.sensitivity_info(run)
