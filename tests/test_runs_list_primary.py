@@ -180,7 +180,9 @@ def test_few_clusters_are_warned_about_in_the_terminal_and_the_dossier(  # type:
     # with small-sample conventions the cluster t reference has G - 1 degrees of freedom (common practice)
     assert f"the t reference has only {groups - 1} degrees of freedom" in err
     out_md = tmp_path / "d.md"
-    assert cli("dossier", "zz", "--out", str(out_md))[0] == 0
+    code, _, err = cli("dossier", "zz", "--out", str(out_md))
+    assert code == 0
+    assert f"warning: the headline run {slug}: few clusters: {groups}" in err
     assert f"**Warning (run {slug}):** few clusters: {groups}" in out_md.read_text(encoding="utf-8")
 
 

@@ -193,3 +193,15 @@ def _g(value: Any) -> str:
     if isinstance(value, int | float) and not isinstance(value, bool):
         return f"{value:.4g}"
     return "–" if value is None else str(value)
+
+
+def headline_warnings(session: Session, instrument: str) -> tuple[str, tuple[str, ...]]:
+    """The run an instrument's dossier headline rests on (primary, else the latest estimate with diagnostics)
+    and its inference warnings; ("", ()) without estimate runs."""
+    from ivdossier.registry.runs import runs_of
+    from ivdossier.reports.dossier import headline_run
+    from ivdossier.workflows.dossiers import run_info
+
+    inst = records.get(session, Instrument, instrument)
+    run = headline_run([run_info(session, r) for r in runs_of(session, inst, "estimate")])
+    return (run.slug, run.warnings) if run is not None else ("", ())
