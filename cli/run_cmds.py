@@ -99,6 +99,8 @@ def _warn(runs: list[object]) -> None:
 
 
 def _text(value: object) -> str:
+    if isinstance(value, bool):
+        return "yes" if value else "no"
     if isinstance(value, list | tuple):
         return ", ".join(str(v) for v in value) or "–"
     return "–" if value is None else str(value)
