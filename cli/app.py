@@ -138,6 +138,7 @@ COMMAND_MODULES = (
     "studies",
     "plans",
     "design_cmds",
+    "run_cmds",
 )
 
 

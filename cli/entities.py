@@ -233,6 +233,7 @@ def instrument_show(slug: str, json_out: JsonFlag = False) -> None:
     from ivdossier.registry import records
     from ivdossier.registry.models import Instrument, Program
     from ivdossier.registry.threats import links_of, raised_elsewhere
+    from ivdossier.workflows.run_records import list_runs
 
     with reading() as s:
         inst = records.get(s, Instrument, slug)
@@ -243,6 +244,7 @@ def instrument_show(slug: str, json_out: JsonFlag = False) -> None:
             for lk, t in links_of(s, inst)
         ]
         data["raised_elsewhere"] = [r.to_dict() for r in raised_elsewhere(s, inst)]
+        data["runs"] = [r.to_dict() for r in list_runs(s, inst.slug)]
     if json_out:
         print_json(data)
         return
@@ -266,6 +268,12 @@ def instrument_show(slug: str, json_out: JsonFlag = False) -> None:
             for r in data["raised_elsewhere"]
         ]
         print_table(rows, ["code", "condition", "title", "raised_on"])
+    typer.echo("")
+    if data["runs"]:
+        runs = [{**r, "primary": "primary" if r["primary"] else ""} for r in data["runs"]]
+        print_table(runs, ["run", "kind", "created", "dataset", "primary"])
+    else:
+        typer.echo("no runs attached yet (attach one with --attach)")
 
 
 @instrument_app.command("edit")

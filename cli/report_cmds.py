@@ -36,9 +36,14 @@ def dossier(
     suffix = out.suffix.lower()
     if suffix not in (".md", ".html"):
         raise InvalidInputError(f"--out {str(out)!r} must end in .md or .html.")
+    from ivdossier.workflows.run_records import headline_warnings
+
     with reading() as s:
         write_dossier(s, instrument, out, generated_at=_now())
+        headline, warnings = headline_warnings(s, instrument)
     typer.echo(f"dossier for {instrument} written to {out}")
+    for warning in warnings:
+        typer.echo(f"warning: the headline run {headline}: {warning}", err=True)
 
 
 def site(

@@ -9,7 +9,7 @@ from contextvars import ContextVar
 from datetime import UTC, datetime
 from typing import Any, ClassVar
 
-from sqlalchemy import JSON, Column, Index, UniqueConstraint
+from sqlalchemy import JSON, Column, Index, UniqueConstraint, false, text
 from sqlalchemy.orm import declared_attr
 from sqlmodel import Field, SQLModel
 
@@ -265,6 +265,16 @@ class Run(Entity, table=True):
     """One estimation or evidence run: exact spec, data fingerprint, results, versions and timing."""
 
     kind: ClassVar[str] = "run"
+    # At most one primary run per instrument, also under concurrent writers (a partial unique index).
+    __table_args__ = (
+        Index(
+            "ux_run_one_primary_per_instrument",
+            "instrument_id",
+            unique=True,
+            sqlite_where=text("is_primary"),
+            postgresql_where=text("is_primary"),
+        ),
+    )
 
     slug: str = Field(max_length=80, unique=True, index=True)
     instrument_id: int | None = Field(default=None, foreign_key="instrument.id", index=True)
@@ -274,6 +284,9 @@ class Run(Entity, table=True):
     results: dict[str, Any] | None = _json()
     versions: dict[str, Any] | None = _json()
     seconds: float = Field(default=0.0)
+    # The run the team marked as the one its dossier headline and relevance verdict rest on (at most one per
+    # instrument; registry.runs.mark_primary keeps it so).
+    is_primary: bool = Field(default=False, sa_column_kwargs={"server_default": false()})
 
 
 class Plan(Entity, table=True):

@@ -63,3 +63,48 @@ def runs_of(session: Session, instrument: Instrument, run_kind: str | None = Non
     if run_kind:
         query = query.where(Run.run_kind == run_kind)
     return list(session.exec(query.order_by(Run.created_at, Run.id)))  # type: ignore[arg-type]
+
+
+def all_runs(session: Session, instrument: Instrument | None = None) -> list[Run]:
+    """Every run, oldest first; only those attached to `instrument` when one is given."""
+    query = select(Run)
+    if instrument is not None:
+        query = query.where(Run.instrument_id == instrument.id)
+    return list(session.exec(query.order_by(Run.created_at, Run.id)))  # type: ignore[arg-type]
+
+
+def primary_run_of(session: Session, instrument: Instrument) -> Run | None:
+    """The run the team marked primary for `instrument`, or None when none is marked."""
+    query = select(Run).where(Run.instrument_id == instrument.id, Run.is_primary == True)  # noqa: E712
+    return session.exec(query).first()
+
+
+def mark_primary(session: Session, *, actor: str, run: str, reason: str = "") -> Run:
+    """Mark `run` as its instrument's primary run, unmarking the previous one; both changes are audited."""
+    from ivdossier.errors import InvalidInputError
+
+    row = records.get(session, Run, run)
+    if row.instrument_id is None:
+        raise InvalidInputError(
+            f"run {row.slug!r} is attached to no instrument, so it cannot be an instrument's primary run; "
+            "rerun it with --attach INSTRUMENT."
+        )
+    if row.run_kind != "estimate":
+        raise InvalidInputError(
+            f"run {row.slug!r} is a {row.run_kind} run; only an estimate run can be an instrument's primary run "
+            "(see `run list INSTRUMENT`)."
+        )
+    if row.is_primary:
+        return row
+    inst = records.get_by_id(session, Instrument, row.instrument_id)
+    previous = primary_run_of(session, inst)
+    if previous is not None:
+        records.edit(
+            session,
+            previous,
+            {"is_primary": False},
+            actor=actor,
+            action="unmark-primary",
+            reason=f"run {row.slug} became the primary run of {inst.slug}",
+        )
+    return records.edit(session, row, {"is_primary": True}, actor=actor, action="mark-primary", reason=reason)

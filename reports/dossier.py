@@ -15,6 +15,7 @@ from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.design_sections import design_figures, design_sections
 from ivdossier.reports.estimates import ar_set_of, effective_f_of, estimates_markdown, treatment_of
+from ivdossier.reports.evidence_doc import evidence_markdown, sensitivity_figures
 from ivdossier.reports.inputs import CONDITIONS, READING_ASPECTS, DossierInput, LinkInfo, RunInfo
 from ivdossier.reports.provenance import provenance_markdown
 from ivdossier.vocabulary import Verdict
@@ -46,13 +47,14 @@ CAUTIONS = (
 
 def dossier_markdown(inp: DossierInput) -> str:
     """Render the dossier for one instrument as Markdown (deterministic for equal inputs)."""
-    run = latest_run(inp.runs)
+    run = headline_run(inp.runs)
     parts = [
         _header(inp),
         _summary(inp, run),
         _argument(inp),
         _diagram(inp),
         estimates_markdown(inp, run),
+        evidence_markdown(inp),
         *inp.extra_sections,
         *design_sections(inp),
         provenance_markdown(inp),
@@ -65,11 +67,13 @@ def dossier_figures(inp: DossierInput) -> dict[str, str]:
     """The SVG for every figure the Markdown refers to (plots rendered here, the diagram as given)."""
     from ivdossier.reports import plots
 
-    run = latest_run(inp.runs)
+    run = headline_run(inp.runs)
     out: dict[str, str] = {}
     for key, kind in figure_keys(inp).items():
         if kind == "diagram" and inp.graph is not None:
             out[key] = inp.graph.svg
+        elif kind == "sensitivity":
+            out[key] = sensitivity_figures(inp)[key]
         elif kind == "first-stage" and run is not None and run.first_stage_bins is not None:
             out[key] = plots.first_stage_svg(run.first_stage_bins, key=key)
         elif kind == "ar-curve" and run is not None and run.ar_curve is not None:
@@ -89,20 +93,29 @@ def dossier_html(inp: DossierInput, *, preamble: str = "") -> str:
 
 
 def figure_keys(inp: DossierInput) -> dict[str, str]:
-    """Which figures the Markdown refers to: key -> kind ("diagram", "first-stage", "ar-curve")."""
+    """Which figures the Markdown refers to: key -> kind ("diagram", "first-stage", "ar-curve", "sensitivity")."""
     keys: dict[str, str] = {}
     if inp.graph is not None and inp.graph.svg.strip():
         keys["causal-diagram"] = "diagram"
-    run = latest_run(inp.runs)
+    run = headline_run(inp.runs)
     if run is not None and run.first_stage_bins is not None:
         keys["first-stage"] = "first-stage"
     if run is not None and run.ar_curve is not None:
         keys["ar-curve"] = "ar-curve"
+    keys.update(dict.fromkeys(sensitivity_figures(inp), "sensitivity"))
     return keys
 
 
+def headline_run(runs: Sequence[RunInfo]) -> RunInfo | None:
+    """The run the headline and the relevance verdict rest on: the one the team marked primary, else the latest
+    run with diagnostics (`latest_run`)."""
+    primary = [r for r in runs if r.primary]
+    return primary[-1] if primary else latest_run(runs)
+
+
 def latest_run(runs: Sequence[RunInfo]) -> RunInfo | None:
-    """The most recent run that reports diagnostics (strength or first stage), else the most recent run."""
+    """The most recent run that reports diagnostics (strength or first stage), else the most recent run; the
+    headline falls back to it when no run is marked primary."""
     if not runs:
         return None
     ordered = sorted(runs, key=lambda r: (r.created_text, r.slug))
@@ -179,6 +192,7 @@ def _summary(inp: DossierInput, run: RunInfo | None) -> str:
         key = _run_key_numbers(inp, run)
         if key:
             out.append(key)
+        out.extend(_warning_lines(run))
     counts = Counter(link.state for link in inp.links)
     if counts:
         text = ", ".join(f"{counts[s]} {s}" for s in STATE_ORDER if counts[s])
@@ -207,7 +221,20 @@ def _run_key_numbers(inp: DossierInput, run: RunInfo) -> str:
     if ar is not None:
         pieces.append(f"Anderson–Rubin set {rv.fmt_set(ar)}")
     label = mt.inline(rv.method_label(run.method)) + (f", {mt.inline(run.vcov)}" if run.vcov else "")
-    return f"Latest run **{mt.inline(run.slug)}** ({label}): " + "; ".join(pieces) + "."
+    if run.primary:
+        which = f"Primary run **{mt.inline(run.slug)}**"
+        why = "The team marked it primary; the headline and the relevance verdict use it."
+    else:
+        which = f"Latest run **{mt.inline(run.slug)}**"
+        why = (
+            "No run is marked primary, so the headline and the relevance verdict use the latest estimate "
+            "(mark one with `ivdossier run primary RUN`)."
+        )
+    return f"{which} ({label}): " + "; ".join(pieces) + ". " + why
+
+
+def _warning_lines(run: RunInfo) -> list[str]:
+    return [f"**Warning (run {mt.inline(run.slug)}):** {mt.inline(w)}." for w in run.warnings]
 
 
 # --------------------------------------------------------------------------------------------- argument

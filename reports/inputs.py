@@ -190,6 +190,14 @@ class RunInfo:
     seconds: float | None = None
     first_stage_bins: FirstStageBins | None = None
     ar_curve: ArCurve | None = None
+    kind: str = "estimate"
+    # Marked by the team as the run the headline and the relevance verdict rest on.
+    primary: bool = False
+    # Plain-text warnings about the run's inference (few clusters, few degrees of freedom).
+    warnings: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "warnings", _as_tuple(self.warnings))
 
     @cached_property
     def result(self) -> EstimationResult | None:
@@ -203,9 +211,164 @@ class RunInfo:
     @property
     def created_text(self) -> str:
         """The creation time as ISO text (seconds precision, as given)."""
-        if isinstance(self.created_at, datetime):
-            return self.created_at.isoformat(timespec="seconds")
-        return str(self.created_at)
+        return _time_text(self.created_at)
+
+
+def _time_text(value: datetime | str) -> str:
+    return value.isoformat(timespec="seconds") if isinstance(value, datetime) else str(value)
+
+
+@dataclass(frozen=True)
+class SensitivityInfo:
+    """A stored sensitivity run for the exclusion restriction: the interval when the instrument may have a direct
+    effect on the outcome. ``method`` is "union" (range of direct effects), "local-to-zero" (a prior on it) or
+    "breakdown" (the smallest direct effect at which the interval reaches ``target``). ``svg`` is the plot of the
+    interval against the assumed direct effect, when the run has one."""
+
+    slug: str
+    created_at: datetime | str
+    method: str
+    treatment: str = ""
+    instruments: tuple[str, ...] = ()
+    alpha: float = 0.05
+    estimate: float | None = None
+    ci: tuple[float, float] | None = None
+    lower: float | None = None
+    upper: float | None = None
+    direct_effect_min: tuple[float, ...] = ()
+    direct_effect_max: tuple[float, ...] = ()
+    prior_mean: tuple[float, ...] = ()
+    prior_sd: tuple[float, ...] = ()
+    target: float | None = None
+    breakdown: float | None = None
+    breakdown_direct_effect: tuple[float, ...] = ()
+    breakdown_share_of_reduced_form: float | None = None
+    covered_without_direct_effect: bool | None = None
+    svg: str = ""
+    note: str = ""  # e.g. a run stored before typed records, shown without its numbers
+
+    def __post_init__(self) -> None:
+        if self.method not in ("union", "local-to-zero", "breakdown"):
+            raise InvalidInputError(
+                f"sensitivity run {self.slug!r} has method {self.method!r}; use union, local-to-zero or breakdown."
+            )
+        for name in (
+            "instruments",
+            "direct_effect_min",
+            "direct_effect_max",
+            "prior_mean",
+            "prior_sd",
+            "breakdown_direct_effect",
+        ):
+            object.__setattr__(self, name, _as_tuple(getattr(self, name)))
+
+    @property
+    def created_text(self) -> str:
+        return _time_text(self.created_at)
+
+
+@dataclass(frozen=True)
+class FalsificationRow:
+    """One regression coefficient of a falsification check: what was regressed, on which instrument, where."""
+
+    target: str
+    instrument: str
+    estimate: float | None
+    se: float | None
+    p_value: float | None
+    n: int | None = None
+
+
+@dataclass(frozen=True)
+class FalsificationInfo:
+    """A stored falsification run (balance, placebo outcome, zero first stage, per instrument, first-stage signs)
+    as a table of coefficients, with one line on its joint test or what it assumes."""
+
+    slug: str
+    created_at: datetime | str
+    check: str
+    rows: tuple[FalsificationRow, ...] = ()
+    summary: str = ""
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "rows", _as_tuple(self.rows))
+
+    @property
+    def created_text(self) -> str:
+        return _time_text(self.created_at)
+
+
+@dataclass(frozen=True)
+class ComplierShare:
+    """One compliance type's share of the population with its standard error and interval."""
+
+    group: str
+    estimate: float
+    se: float | None = None
+    ci: tuple[float, float] | None = None
+
+
+@dataclass(frozen=True)
+class ComplierProfileRow:
+    """Mean of one covariate in the whole sample and among compliers, always-takers and never-takers."""
+
+    covariate: str
+    overall: float | None
+    complier: float | None
+    complier_se: float | None = None
+    always_taker: float | None = None
+    never_taker: float | None = None
+
+
+@dataclass(frozen=True)
+class CompliersInfo:
+    """A stored compliers run: the shares of each compliance type and, when asked, the complier profile."""
+
+    slug: str
+    created_at: datetime | str
+    treatment: str = ""
+    instrument: str = ""
+    shares: tuple[ComplierShare, ...] = ()
+    profile: tuple[ComplierProfileRow, ...] = ()
+    alpha: float = 0.05
+    se_method: str = ""
+    note: str = ""
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "shares", _as_tuple(self.shares))
+        object.__setattr__(self, "profile", _as_tuple(self.profile))
+
+    @property
+    def created_text(self) -> str:
+        return _time_text(self.created_at)
+
+
+@dataclass(frozen=True)
+class PowerInfo:
+    """A stored power run for a planned 2SLS design: its standard error, power at an effect, the minimum
+    detectable effect, the observations needed and the expected first stage, with the stated assumptions."""
+
+    slug: str
+    created_at: datetime | str
+    n: int | None
+    se: float | None
+    mde: float | None
+    target_power: float
+    alpha: float = 0.05
+    effect: float | None = None
+    power: float | None = None
+    n_required: int | None = None
+    expected_f: float | None = None
+    assumptions: tuple[str, ...] = ()
+    reliability: str = ""  # how far the analytic figure can be trusted
+    note: str = ""
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "assumptions", _as_tuple(self.assumptions))
+
+    @property
+    def created_text(self) -> str:
+        return _time_text(self.created_at)
 
 
 @dataclass(frozen=True)
@@ -269,8 +432,15 @@ class DossierInput:
     # audit); placed after the estimates. Never put raw user text here.
     extra_sections: tuple[str, ...] = ()
     evidence_runs: tuple[RunInfo, ...] = ()  # design and summary-data runs (reports/design_sections.py)
+    # Every attached evidence run, by kind, oldest first (shown whether or not a linked threat asks for it).
+    sensitivity: tuple[SensitivityInfo, ...] = ()
+    falsification: tuple[FalsificationInfo, ...] = ()
+    compliers: tuple[CompliersInfo, ...] = ()
+    power: tuple[PowerInfo, ...] = ()
 
     def __post_init__(self) -> None:
+        for name in ("sensitivity", "falsification", "compliers", "power"):
+            object.__setattr__(self, name, _as_tuple(getattr(self, name)))
         object.__setattr__(self, "links", _as_tuple(self.links))
         object.__setattr__(self, "runs", _as_tuple(self.runs))
         object.__setattr__(self, "audit", _as_tuple(self.audit))

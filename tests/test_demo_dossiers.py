@@ -128,3 +128,31 @@ def test_markdown_dossier_matches_its_golden_file(
     assert str(demo_dir) not in rendered[slug]  # no absolute paths: the demo folder is a temporary one
     golden = (GOLDEN / f"{slug}.md").read_text(encoding="utf-8")
     assert rendered[slug] == golden
+
+
+def test_the_demo_attaches_every_kind_of_evidence_and_its_dossier_shows_each(
+    demo_dir: Path, rendered: dict[str, str]
+) -> None:
+    from ivdossier.registry.db import open_registry
+    from ivdossier.workflows.run_records import list_runs
+
+    registry = open_registry(str(demo_dir / "ivdossier.sqlite"))
+    try:
+        with registry.reading() as s:
+            kinds = {r.kind for r in list_runs(s, "fibre-wave")}
+            primary = [r.slug for r in list_runs(s) if r.primary]
+    finally:
+        registry.dispose()
+    assert {"estimate", "sensitivity", "falsify-balance", "compliers", "power"} <= kinds
+    assert primary == ["fibre-wave-estimate-3"]
+    fibre = rendered["fibre-wave"]
+    for title in ("Sensitivity to a direct effect of the instrument", "Falsification checks", "Compliers",
+                  "Power and minimum detectable effect"):  # fmt: skip
+        assert f"\n## {title}\n" in fibre
+    assert "Primary run **fibre-wave-estimate-3**" in fibre
+    assert "union of intervals over a range of direct effects" in fibre and "breakdown value" in fibre
+    assert "Complier profile" in fibre and "Minimum detectable effect" in fibre
+    for slug in ("clerk-video-rate", "mast-distance"):
+        assert "No run is marked primary" in rendered[slug]
+    html = (demo_dir / "dossiers" / "fibre-wave.html").read_text(encoding="utf-8")
+    assert 'id="figure-sensitivity-fibre-wave-sensitivity-2"><svg' in html

@@ -2,7 +2,8 @@
 code. tests/fixtures/registry-<rev>.sqlite holds one small registry per released revision; registry-0001 was
 built with tests/test_portability_roundtrip.py::build_rich_registry at schema 0001 (the first schema), then
 checkpointed, switched to journal_mode=DELETE and vacuumed with page_size=1024 so it is one small file;
-registry-0002 was built the same way at schema 0002 (its team edge age -> Y predates edge scopes)."""
+registry-0002 was built the same way at schema 0002 (its team edge age -> Y predates edge scopes), and
+registry-0003 the same way at schema 0003 (edge scopes, before primary runs)."""
 
 from __future__ import annotations
 

@@ -48,11 +48,13 @@ def graph_roles(program: Program, instrument: Instrument) -> dict[str, str]:
 
 
 def conditioning_of(session: Session, instrument: Instrument, program: Program) -> set[str]:
-    """Measured covariates the latest estimation run controlled for: the set W the graph check conditions on."""
+    """Measured covariates the headline estimation run (the primary one, else the latest) controlled for: the set
+    W the graph check conditions on."""
     runs = [r for r in runs_of(session, instrument) if r.run_kind == "estimate"]
     if not runs:
         return set()
-    used = set((runs[-1].spec or {}).get("controls", []) or [])
+    headline = next((r for r in runs if r.is_primary), runs[-1])
+    used = set((headline.spec or {}).get("controls", []) or [])
     measured = {c.name for c in covariates_of(session, program) if c.measured}
     return used & measured
 
@@ -170,7 +172,9 @@ def _ratings(session: Session, link_id: int | None) -> tuple[ri.Rating, ...]:
 
 
 def run_info(session: Session, run: Run) -> ri.RunInfo:
-    """A stored run as the reports layer reads it, with its plot summaries."""
+    """A stored run as the reports layer reads it, with its plot summaries, primary mark and inference warnings."""
+    from ivdossier.workflows.run_records import warnings_of
+
     results: Mapping[str, Any] = run.results or {}
     plots: Mapping[str, Any] = results.get("plot_data") or {}
     bins = plots.get("first_stage_bins")
@@ -200,6 +204,9 @@ def run_info(session: Session, run: Run) -> ri.RunInfo:
         )
         if curve
         else None,
+        kind=run.run_kind,
+        primary=bool(run.is_primary),
+        warnings=warnings_of(run),
     )
 
 
@@ -291,6 +298,7 @@ def _assemble(
 ) -> tuple[Any, ri.DossierInput]:
     """The graph and the dossier input (without the drawing) with its verdicts derived once."""
     from ivdossier.reports.design_sections import KINDS as DESIGN_KINDS
+    from ivdossier.workflows.evidence_runs import evidence_fields
     from ivdossier.workflows.verdicts import with_verdicts
 
     program = records.get_by_id(session, Program, inst.program_id)
@@ -328,6 +336,7 @@ def _assemble(
             for r in all_runs
             if r.run_kind in DESIGN_KINDS
         ),
+        **evidence_fields(all_runs),
     )
     return G, with_verdicts(inp)
 

@@ -36,7 +36,8 @@ only move a verdict to "at risk" (rule X1). "Holds" for exclusion and exogeneity
 written argument, with every linked threat resolved.
 
 The statistics enter through one small typed input, :class:`RunEvidence`, built from a stored run by
-:func:`run_evidence` (the only place that reads a run's stored results).
+:func:`run_evidence` (the only place that reads a run's stored results). "Latest run" in the table means the run
+the headline rests on: the one the team marked primary (`run primary`), else the latest estimate with diagnostics.
 """
 
 from __future__ import annotations
@@ -48,7 +49,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from ivdossier.reports import resultview as rv
-from ivdossier.reports.dossier import latest_run, path_text
+from ivdossier.reports.dossier import headline_run, path_text
 from ivdossier.reports.inputs import DossierInput, LinkInfo, RunInfo
 from ivdossier.threats_catalog.graph import GraphVerdict
 from ivdossier.vocabulary import AT_RISK, BROKEN, CONDITIONS, HOLDS, NOT_ASSESSED, Verdict
@@ -267,7 +268,7 @@ def derive_verdict(
 
 def derive_verdicts(inp: DossierInput) -> tuple[Verdict, ...]:
     """Verdicts for all four conditions, in the standard order, from everything one dossier shows."""
-    evidence = run_evidence(latest_run(inp.runs))
+    evidence = run_evidence(headline_run(inp.runs))
     graph = inp.graph.verdict if inp.graph is not None else None
     return tuple(
         derive_verdict(
