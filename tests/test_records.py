@@ -23,9 +23,13 @@ from hypothesis.extra import numpy as hnp
 import ivdossier.estimation.api
 import ivdossier.estimation.compliers
 import ivdossier.estimation.falsification
+import ivdossier.estimation.influence
+import ivdossier.estimation.pairs_bootstrap
 import ivdossier.estimation.power
 import ivdossier.estimation.sensitivity
-import ivdossier.estimation.subgroups  # noqa: F401
+import ivdossier.estimation.subgroups
+import ivdossier.estimation.subvector
+import ivdossier.estimation.wild_bootstrap  # noqa: F401
 from ivdossier.errors import InvalidInputError
 from ivdossier.jsonsafe import Record, load_record, record_types
 from ivdossier.vocabulary import NotApplicable
@@ -35,6 +39,7 @@ STORED = sorted(record_types().items())
 TOP_LEVEL = (
     "EstimationResult", "InstrumentRegressions", "ZeroFirstStageResult", "PerInstrumentResult", "SubgroupSigns",
     "UnionIntervalResult", "LocalToZeroResult", "BreakdownResult", "ComplierReport", "PowerAnalysis",
+    "WildBootstrapResult", "PairsBootstrapResult", "InfluenceResult", "SubvectorAR",
 )  # fmt: skip
 
 FLOATS = st.floats(allow_nan=True, allow_infinity=True, width=64)
