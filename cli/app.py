@@ -97,6 +97,7 @@ COMMAND_MODULES = (
     "evidence_cmds",
     "studies",
     "plans",
+    "fragility_cmds",
 )
 
 

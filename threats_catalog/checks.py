@@ -27,6 +27,7 @@ COMMANDS: tuple[str, ...] = (
     "ivdossier compliers",
     "ivdossier power",
     "ivdossier plan compare",
+    "ivdossier fragility influence",
 )
 
 
@@ -193,10 +194,8 @@ _CHECK_LIST: tuple[Check, ...] = (
         "leave-one-cluster-out",
         "First stage and estimate refitted leaving out each cluster in turn; the spread shows how much rests on "
         "single clusters.",
-        "",
+        "ivdossier fragility influence",
         _to("relevance", "uncertainty"),
-        computable=False,
-        note="refit leaving out each cluster and report the smallest first-stage F and the range of estimates",
     ),
     Check(
         "saturated-vs-linear-covariates",
