@@ -138,7 +138,7 @@ def test_subvector_tests_one_treatment_with_the_other_unrestricted(cli, data_fil
     ],
 )
 def test_bootstrap_mistakes_get_one_line(cli, data_file: Path, args: tuple[str, ...], message: str) -> None:  # type: ignore[no-untyped-def]
-    code, out, err = cli(
+    code, _, err = cli(
         "fragility", "bootstrap", "--data", str(data_file), *BASE, "--weight-type", "webb", *args
     )
     assert code == 2 and err == message
