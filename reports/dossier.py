@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING, Any
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.estimates import ar_set_of, effective_f_of, estimates_markdown, treatment_of
+from ivdossier.reports.fragility_doc import fragility_figures, fragility_markdown
 from ivdossier.reports.inputs import CONDITIONS, READING_ASPECTS, DossierInput, LinkInfo, RunInfo
 from ivdossier.reports.provenance import provenance_markdown
 from ivdossier.vocabulary import Verdict
@@ -52,6 +53,7 @@ def dossier_markdown(inp: DossierInput) -> str:
         _argument(inp),
         _diagram(inp),
         estimates_markdown(inp, run),
+        fragility_markdown(inp),
         *inp.extra_sections,
         provenance_markdown(inp),
         _cautions(),
@@ -72,7 +74,7 @@ def dossier_figures(inp: DossierInput) -> dict[str, str]:
             out[key] = plots.first_stage_svg(run.first_stage_bins, key=key)
         elif kind == "ar-curve" and run is not None and run.ar_curve is not None:
             out[key] = plots.ar_curve_svg(run.ar_curve, ar_set=ar_set_of(run.result), key=key)
-    return out
+    return {**out, **fragility_figures(inp)}
 
 
 def dossier_html(inp: DossierInput, *, preamble: str = "") -> str:

@@ -268,6 +268,8 @@ class DossierInput:
     # Whole "##" sections built by other report builders that escape their own user text (e.g. the literature
     # audit); placed after the estimates. Never put raw user text here.
     extra_sections: tuple[str, ...] = ()
+    # The latest fragility runs (typed results) for "How fragile is the result" (reports/fragility_doc.py).
+    fragility: tuple[Any, ...] = ()
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "links", _as_tuple(self.links))

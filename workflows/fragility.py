@@ -135,6 +135,7 @@ def subvector_compute(
     return result, {}
 
 
+KINDS = ("fragility-bootstrap", "fragility-influence", "fragility-subvector")
 COMPUTE = {
     "fragility bootstrap": bootstrap_compute,
     "fragility influence": influence_compute,
@@ -157,3 +158,20 @@ def run_fragility(
         lambda frame: compute(frame, spec, options, progress),
         entry.stored_spec(spec, options),
     )
+
+
+def fragility_runs(runs: Any) -> tuple[Any, ...]:
+    """The stored fragility runs of an instrument as the dossier reads them (typed results, oldest first)."""
+    from ivdossier.reports.fragility_doc import FragilityRun
+    from ivdossier.workflows.runs import LegacyResult, load_result
+
+    out = []
+    for run in runs:
+        if run.run_kind not in KINDS:
+            continue
+        result = load_result(run.run_kind, run.results or {})
+        if isinstance(result, LegacyResult):
+            continue
+        created = run.created_at.isoformat(timespec="seconds") if run.created_at else ""
+        out.append(FragilityRun(slug=run.slug, run_kind=run.run_kind, created_text=created, result=result))
+    return tuple(out)
