@@ -258,6 +258,7 @@ def _build(
     from ivdossier.registry import instruments as reg
     from ivdossier.registry.db import open_registry
     from ivdossier.workflows.demo_data import simulate_telehealth
+    from ivdossier.workflows.demo_fragility import run_demo_fragility
 
     say = progress or (lambda _msg: None)
     out = Path(out)
@@ -325,6 +326,7 @@ def _build(
         say(f"stored {len(summary['runs'])} estimation runs")
         summary["checks"] = _checks(registry, csv_path, actor)
         say(f"stored {len(summary['checks'])} falsification and sensitivity runs")
+        summary["fragility"] = run_demo_fragility(registry, frame, data_dir, actor, say)
         summary["caught"] = _record_what_the_checks_found(registry)
         say(f"the zero-first-stage check caught the planted violation: {summary['caught']}")
         summary["documents"] = _documents(registry, out, (clock or (lambda: datetime.now(UTC)))())
