@@ -161,3 +161,18 @@ def test_influence_and_subvector_mistakes_get_one_line(cli, data_file: Path) -> 
         "--instrument", "z", "--cluster", "district", "--cluster", "w",
     )  # fmt: skip
     assert code == 2 and err.startswith("error: The fragility diagnostics take one cluster variable, got 2")
+
+
+def test_the_progress_bar_appears_only_after_the_run_passes_its_threshold() -> None:
+    from ivdossier.cli.fragility_cmds import TerminalProgress
+
+    quiet = TerminalProgress("fragility bootstrap", after=3600.0)
+    quiet.enabled = True  # as on a terminal
+    quiet(1, 10)
+    assert quiet.bar is None  # a short run draws nothing
+    shown = TerminalProgress("fragility bootstrap", after=0.0)
+    shown.enabled = True
+    shown(3, 10)
+    assert shown.bar is not None and shown.bar.tasks[0].completed == 3 and shown.bar.tasks[0].total == 10
+    shown.close()
+    assert shown.bar is None
