@@ -139,6 +139,7 @@ COMMAND_MODULES = (
     "plans",
     "design_cmds",
     "run_cmds",
+    "fragility_cmds",
 )
 
 

@@ -33,7 +33,7 @@ from ivdossier.estimation.cluster_crossproducts import (
     t_p_values,
 )
 from ivdossier.estimation.fragility_data import CAUTION, FragilityData
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 Progress = Callable[[int, int], None]
@@ -41,7 +41,7 @@ BLOCK_ELEMENTS = 1 << 20
 
 
 @dataclass(frozen=True)
-class Deletion:
+class Deletion(Record):
     """The model refitted without one cluster (or row)."""
 
     label: str
@@ -66,7 +66,7 @@ class Deletion:
 
 
 @dataclass(frozen=True)
-class InfluenceResult:
+class InfluenceResult(Record):
     """Jackknife influence summary and every deletion, or a not-applicable reason."""
 
     applicable: bool

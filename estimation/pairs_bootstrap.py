@@ -32,7 +32,7 @@ from ivdossier.estimation.cluster_crossproducts import (
     partialled_stats,
 )
 from ivdossier.estimation.fragility_data import CAUTION, FragilityData
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 Progress = Callable[[int, int], None]
@@ -40,7 +40,7 @@ BLOCK_ELEMENTS = 1 << 20
 
 
 @dataclass(frozen=True, eq=False)
-class PairsBootstrapResult:
+class PairsBootstrapResult(Record):
     """Pairs (cluster) bootstrap of the 2SLS estimate and the first-stage F, or a not-applicable reason."""
 
     applicable: bool

@@ -36,7 +36,7 @@ from ivdossier.estimation.covariance import CovSpec, sandwich
 from ivdossier.estimation.fragility_data import CAUTION
 from ivdossier.estimation.robust_inference import Interval, angle_grid, classify_set, invert_on_circle
 from ivdossier.estimation.strength import as_matrix, denominator_df, ols
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 SOURCES = (
@@ -74,7 +74,7 @@ def gkm_conditional_p_value(statistic: float, kappa_max: float, k_minus_mw: int)
 
 
 @dataclass(frozen=True)
-class SubvectorAR:
+class SubvectorAR(Record):
     """Anderson–Rubin test and set for one treatment's coefficient with the others unrestricted."""
 
     applicable: bool

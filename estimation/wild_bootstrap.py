@@ -39,7 +39,7 @@ from numpy.typing import NDArray
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.fragility_data import CAUTION, FragilityData
 from ivdossier.estimation.robust_inference import Interval, classify_set
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
 Progress = Callable[[int, int], None]
@@ -461,7 +461,7 @@ class _TTable:
 
 
 @dataclass(frozen=True)
-class BootstrapTest:
+class BootstrapTest(Record):
     """One bootstrap test of H0: beta = b0 with its confidence set (None when not requested)."""
 
     name: str
@@ -496,7 +496,7 @@ def _fmt_set(intervals: list[Interval] | None) -> str:
 
 
 @dataclass(frozen=True)
-class WildBootstrapResult:
+class WildBootstrapResult(Record):
     """WRE bootstrap t test and Anderson–Rubin test of one null, with sets, or a not-applicable reason."""
 
     applicable: bool

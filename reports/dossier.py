@@ -16,6 +16,7 @@ from ivdossier.reports import resultview as rv
 from ivdossier.reports.design_sections import design_figures, design_sections
 from ivdossier.reports.estimates import ar_set_of, effective_f_of, estimates_markdown, treatment_of
 from ivdossier.reports.evidence_doc import evidence_markdown, sensitivity_figures
+from ivdossier.reports.fragility_doc import fragility_figures, fragility_markdown
 from ivdossier.reports.inputs import CONDITIONS, READING_ASPECTS, DossierInput, LinkInfo, RunInfo
 from ivdossier.reports.provenance import provenance_markdown
 from ivdossier.vocabulary import Verdict
@@ -55,6 +56,7 @@ def dossier_markdown(inp: DossierInput) -> str:
         _diagram(inp),
         estimates_markdown(inp, run),
         evidence_markdown(inp),
+        fragility_markdown(inp),
         *inp.extra_sections,
         *design_sections(inp),
         provenance_markdown(inp),
@@ -78,7 +80,7 @@ def dossier_figures(inp: DossierInput) -> dict[str, str]:
             out[key] = plots.first_stage_svg(run.first_stage_bins, key=key)
         elif kind == "ar-curve" and run is not None and run.ar_curve is not None:
             out[key] = plots.ar_curve_svg(run.ar_curve, ar_set=ar_set_of(run.result), key=key)
-    return {**out, **design_figures(inp)}
+    return {**out, **design_figures(inp), **fragility_figures(inp)}
 
 
 def dossier_html(inp: DossierInput, *, preamble: str = "") -> str:

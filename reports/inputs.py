@@ -437,6 +437,8 @@ class DossierInput:
     falsification: tuple[FalsificationInfo, ...] = ()
     compliers: tuple[CompliersInfo, ...] = ()
     power: tuple[PowerInfo, ...] = ()
+    # The latest fragility runs (typed results) for "How fragile is the result" (reports/fragility_doc.py).
+    fragility: tuple[Any, ...] = ()
 
     def __post_init__(self) -> None:
         for name in ("sensitivity", "falsification", "compliers", "power"):

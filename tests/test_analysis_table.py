@@ -74,7 +74,10 @@ def test_every_analysis_is_a_command_of_the_cli_and_every_evidence_command_is_an
     assert set(ANALYSES) <= paths, sorted(set(ANALYSES) - paths)
     catalogue = {c.removeprefix("ivdossier ") for c in COMMANDS if c and c not in WORKFLOW_COMMANDS}
     evidence = {p for p in paths if any(p == c or p.startswith(c + " ") for c in catalogue)}
-    assert evidence == set(ANALYSES), sorted(evidence ^ set(ANALYSES))
+    assert evidence <= set(ANALYSES), sorted(evidence - set(ANALYSES))
+    # an analysis outside the catalogue's commands answers no catalogue check (fragility bootstrap, subvector)
+    uncatalogued = [a for name, a in ANALYSES.items() if name not in evidence]
+    assert all(not a.checks for a in uncatalogued), [a.name for a in uncatalogued if a.checks]
 
 
 def test_every_analysis_returns_a_stored_record_type() -> None:

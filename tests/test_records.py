@@ -26,14 +26,18 @@ import ivdossier.estimation.decision_maker_checks
 import ivdossier.estimation.design_results
 import ivdossier.estimation.exposure_share
 import ivdossier.estimation.falsification
+import ivdossier.estimation.influence
 import ivdossier.estimation.jackknife_iv
 import ivdossier.estimation.leave_out
 import ivdossier.estimation.many_instruments
 import ivdossier.estimation.omitted_variable
+import ivdossier.estimation.pairs_bootstrap
 import ivdossier.estimation.power
 import ivdossier.estimation.sensitivity
 import ivdossier.estimation.subgroups
-import ivdossier.estimation.variant_summary  # noqa: F401
+import ivdossier.estimation.subvector
+import ivdossier.estimation.variant_summary
+import ivdossier.estimation.wild_bootstrap  # noqa: F401
 from ivdossier.errors import InvalidInputError
 from ivdossier.jsonsafe import Record, load_record, record_types
 from ivdossier.vocabulary import NotApplicable
@@ -44,6 +48,7 @@ TOP_LEVEL = (
     "EstimationResult", "InstrumentRegressions", "ZeroFirstStageResult", "PerInstrumentResult", "SubgroupSigns",
     "UnionIntervalResult", "LocalToZeroResult", "BreakdownResult", "ComplierReport", "PowerAnalysis",
     "DecisionMakerDesign", "ExposureShareDesign", "SummaryEvidence", "IvRobustness", "SensitivityNotApplicable",
+    "WildBootstrapResult", "PairsBootstrapResult", "InfluenceResult", "SubvectorAR",
 )  # fmt: skip
 
 FLOATS = st.floats(allow_nan=True, allow_infinity=True, width=64)

@@ -31,6 +31,7 @@ COMMANDS: tuple[str, ...] = (
     "ivdossier variants",
     "ivdossier confounder-strength",
     "ivdossier plan compare",
+    "ivdossier fragility influence",
 )
 
 
@@ -260,10 +261,8 @@ _CHECK_LIST: tuple[Check, ...] = (
         "leave-one-cluster-out",
         "First stage and estimate refitted leaving out each cluster in turn; the spread shows how much rests on "
         "single clusters.",
-        "",
+        "ivdossier fragility influence",
         _to("relevance", "uncertainty"),
-        computable=False,
-        note="refit leaving out each cluster and report the smallest first-stage F and the range of estimates",
     ),
     Check(
         "saturated-vs-linear-covariates",

@@ -208,6 +208,17 @@ def _subgroup_signs(result: Any) -> str:
     )
 
 
+def _leave_one_out(result: Any) -> str:
+    if not result.applicable:
+        return f"leave-one-out influence not applicable: {result.reason}"
+    lo, hi = result.first_stage_f_range
+    return (
+        f"leaving one {result.unit} out moves the estimate by up to {_num(result.largest_change)} "
+        f"({result.largest_change_label}); {result.t_flips} deletions flip t significance, "
+        f"{result.ar_flips} flip Anderson–Rubin; first-stage F from {_num(lo)} to {_num(hi)}"
+    )
+
+
 def _power(result: Any) -> str:
     mde = f"minimum detectable effect {_num(result.mde)}"
     if result.power is None:
@@ -551,6 +562,15 @@ def _confounder(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Comp
     return result, {}
 
 
+def _fragility(name: str) -> Callable[[pd.DataFrame, ModelSpec | None, Options], Computed]:
+    def compute(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
+        from ivdossier.workflows.fragility import COMPUTE
+
+        return COMPUTE[name](frame, spec, o)
+
+    return compute
+
+
 _ESTIMATE_FINDINGS: dict[str, Callable[[Any], str]] = {
     "first-stage-strength": _strength,
     "weak-iv-robust-inference": _robust,
@@ -678,6 +698,28 @@ ANALYSES: dict[str, Analysis] = {
             _SENSITIVITY,
             _confounder,
             {"confounder-robustness-value": _robustness_value},
+        ),
+        Analysis(
+            "fragility bootstrap",
+            "fragility-bootstrap",
+            "fragility_bundle:BootstrapBundle",
+            _SENSITIVITY,
+            _fragility("fragility bootstrap"),
+        ),
+        Analysis(
+            "fragility influence",
+            "fragility-influence",
+            "influence:InfluenceResult",
+            _SENSITIVITY,
+            _fragility("fragility influence"),
+            {"leave-one-cluster-out": _leave_one_out},
+        ),
+        Analysis(
+            "fragility subvector",
+            "fragility-subvector",
+            "subvector:SubvectorAR",
+            _SENSITIVITY,
+            _fragility("fragility subvector"),
         ),
     )
 }

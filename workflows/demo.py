@@ -258,6 +258,7 @@ def _build(
     from ivdossier.registry import instruments as reg
     from ivdossier.registry.db import open_registry
     from ivdossier.workflows.demo_data import simulate_telehealth
+    from ivdossier.workflows.demo_fragility import run_demo_fragility
 
     say = progress or (lambda _msg: None)
     out = Path(out)
@@ -327,6 +328,7 @@ def _build(
         say(f"stored {len(summary['checks'])} falsification, sensitivity, compliers and power runs")
         summary["primary"] = _mark_primary(registry, actor)
         say(f"marked {summary['primary']} as the fibre instrument's primary run")
+        summary["fragility"] = run_demo_fragility(registry, frame, data_dir, actor, say)
         summary["caught"] = _record_what_the_checks_found(registry)
         say(f"the zero-first-stage check caught the planted violation: {summary['caught']}")
         summary["documents"] = _documents(registry, out, (clock or (lambda: datetime.now(UTC)))())

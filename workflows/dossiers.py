@@ -34,6 +34,7 @@ from ivdossier.registry.threats import THREAT_FIELDS, links_of
 from ivdossier.reports import inputs as ri
 from ivdossier.threats_catalog.graph import GraphVerdict
 from ivdossier.vocabulary import Verdict
+from ivdossier.workflows.fragility import fragility_runs
 
 CONFOUNDER = "U"
 
@@ -329,6 +330,7 @@ def _assemble(
         tool_version=__version__,
         links=_links(session, inst, all_runs),
         runs=runs,
+        fragility=fragility_runs(all_runs),
         graph=ri.GraphInfo(verdict=check),
         audit=audit,
         evidence_runs=tuple(
