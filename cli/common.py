@@ -77,3 +77,14 @@ def read_text_option(value: str | None, field: str = "text option") -> str | Non
     from ivdossier.registry.records import read_text_file
 
     return read_text_file(value[1:], field=field)
+
+
+MAX_INPUT_FILE_BYTES = 20_000_000
+"""Largest plan, receipt or exported copy a command reads (bounded: no endless or huge files read whole)."""
+
+
+def read_input_file(path: Any, what: str) -> str:
+    """The UTF-8 text of a file a command reads (a plan section, an exported copy, a receipt), read with a bound."""
+    from ivdossier.safefiles import read_bounded_text
+
+    return read_bounded_text(path, MAX_INPUT_FILE_BYTES, what=f"the {what}")

@@ -239,10 +239,10 @@ def edit(
 
 
 def _json_file(path: Path, what: str) -> Any:
-    from ivdossier.cli.studies import _read_file
+    from ivdossier.cli.common import read_input_file
     from ivdossier.errors import InvalidInputError
 
-    text = _read_file(path, f"{what} file")
+    text = read_input_file(path, f"{what} file")
     try:
         return json.loads(text)
     except json.JSONDecodeError as exc:
@@ -472,7 +472,7 @@ def verify(
     json_out: JsonFlag = False,
 ) -> None:
     """Check a frozen plan against its seal event (and a copy or receipt); exit 1 with the reason if it fails."""
-    from ivdossier.cli.studies import _read_file
+    from ivdossier.cli.common import read_input_file
     from ivdossier.registry import plans, records
     from ivdossier.registry.models import Plan
     from ivdossier.reports.plan_doc import verify_document
@@ -481,8 +481,8 @@ def verify(
     text = suffix = None
     if file is not None:
         suffix = _suffix(file, DOC_SUFFIXES, "--file")
-        text = _read_file(file, "exported plan")
-    receipt_text = _read_file(receipt, "seal receipt") if receipt is not None else None
+        text = read_input_file(file, "exported plan")
+    receipt_text = read_input_file(receipt, "seal receipt") if receipt is not None else None
     with reading() as s:
         report = verify_plan(s, plan, exported=text if suffix == ".json" else None, receipt=receipt_text)
         if text is not None and suffix in (".md", ".html"):
