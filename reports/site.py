@@ -23,7 +23,7 @@ from ivdossier import safefiles
 from ivdossier.errors import InvalidInputError
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
-from ivdossier.reports.dossier import CAUTIONS, dossier_html, latest_run
+from ivdossier.reports.dossier import CAUTIONS, dossier_html, headline_run
 from ivdossier.reports.estimates import ar_set_of, effective_f_of
 from ivdossier.reports.html import render_html
 from ivdossier.reports.inputs import CONDITIONS, CatalogEntry, DossierInput, LinkInfo, ProgramInfo
@@ -238,7 +238,7 @@ def _program_page(
     if dossiers:
         rows = []
         for d in sorted(dossiers, key=lambda x: (x.instrument.name or x.instrument.slug).lower()):
-            run = latest_run(d.runs)
+            run = headline_run(d.runs)
             feff = effective_f_of(run.result)[0] if run is not None else None
             ar = ar_set_of(run.result) if run is not None else None
             described = ", ".join(mt.inline(x) for x in (d.instrument.family, d.instrument.state) if x)
@@ -257,7 +257,7 @@ def _program_page(
         parts.append(
             "## Candidate instruments side by side\n\n"
             "Verdicts are derived by the rules in `ivdossier.workflows.verdicts`; effective F and the "
-            "Anderson–Rubin (AR) set come from each instrument's latest run with diagnostics.\n\n"
+            "Anderson–Rubin (AR) set come from each instrument's primary run, else its latest run with diagnostics.\n\n"
             + mt.table(headers, rows, "lccccl" + "rr")
         )
     else:

@@ -101,6 +101,23 @@ def test_site_layout_and_relative_links(tmp_path: Path) -> None:
                 assert (page.parent / href).resolve().is_file(), (page, href)
 
 
+def test_program_page_uses_the_primary_run_when_one_is_marked(tmp_path: Path) -> None:
+    real = sample_dossier_input()
+    assert len(real.runs) >= 2
+    first = real.runs[0]
+    marked = dataclasses.replace(real, runs=(dataclasses.replace(first, primary=True), *real.runs[1:]))
+    build_site(tmp_path, [PROGRAM], [with_verdicts(marked)], [])  # type: ignore[arg-type]
+    page = (tmp_path / "programs/telehealth-ed/index.html").read_text(encoding="utf-8")
+    table = page[page.index("<table>") : page.index("</table>")]
+    # the dossier's headline run (the primary one, here the OLS run), not the latest 2SLS run, gives the numbers
+    assert first.method == "ols"
+    latest = real.runs[-1].result
+    assert latest is not None and isinstance(latest.diagnostics, DiagnosticSuite)
+    eff = latest.diagnostics.strength.effective_f
+    assert eff is not None and f">{rv.fmt(eff.statistic)}<" not in table
+    assert table.count(">–</td>") >= 2  # no effective F and no AR set for an OLS run
+
+
 def test_program_page_compares_candidates(tmp_path: Path) -> None:
     real = sample_dossier_input()  # runs from the real producers (workflows.sample)
     dossiers = [real, dossier_for(PROGRAM, "mast", "Mast distance")]
