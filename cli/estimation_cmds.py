@@ -59,6 +59,11 @@ def estimate(
         alpha=alpha,
     )
     outcome_run = estimate_file(data, spec)
+    from ivdossier.workflows.run_records import inference_warnings
+
+    result = outcome_run.result
+    for warning in inference_warnings(result.n_clusters, result.ref_df):
+        typer.echo(f"warning: {warning}", err=True)
     slug = None
     if attach:
         from ivdossier.workflows.runs import store_run

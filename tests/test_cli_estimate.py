@@ -86,3 +86,16 @@ def test_failed_estimate_with_attach_writes_nothing(cli, data_file: Path) -> Non
         "program",
         "instrument",
     ]
+
+
+def test_few_clusters_are_warned_about_on_standard_error(cli, data_file: Path) -> None:  # type: ignore[no-untyped-def]
+    # 30 clusters of g: fewer than 42 (a common-practice threshold), so the terminal warns; JSON stays clean
+    n_groups = pd.read_csv(data_file)["g"].nunique()
+    assert n_groups == 30
+    args = ["estimate", "--data", str(data_file), "--outcome", "y", "--treatment", "x", "--instrument", "z"]
+    code, out, err = cli(*args, "--cluster", "g", "--vcov", "cluster", "--json")
+    assert code == 0, err
+    assert "warning: few clusters: 30 (fewer than 42)" in err
+    json.loads(out)
+    code, _, err = cli(*args, "--vcov", "robust")
+    assert code == 0 and "few clusters" not in err
