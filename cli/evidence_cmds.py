@@ -51,8 +51,9 @@ def _run(name: str, data: Any, spec: Any, **options: Any) -> Any:
     return run_analysis(name, data, spec, **options)
 
 
-def _finish(run: Any, name: str, *, attach: str | None, json_out: bool) -> None:
-    """Store the run if asked, then print JSON or the one-line findings of the analysis's catalogue checks."""
+def _finish(run: Any, name: str, *, attach: str | None, json_out: bool, caution: str | None = None) -> None:
+    """Store the run if asked, then print JSON, or the complete summary and one finding per catalogue check the
+    analysis answers; ``caution`` is printed when the result carries none of its own and its summary lacks it."""
     from ivdossier.jsonsafe import json_safe
     from ivdossier.workflows.analyses import analysis
     from ivdossier.workflows.findings import finding_of
@@ -69,11 +70,12 @@ def _finish(run: Any, name: str, *, attach: str | None, json_out: bool) -> None:
         return
     summary = str(run.result)
     typer.echo(summary)
-    typer.echo("")
-    typer.echo("Findings for the catalogue's checks:")
+    if entry.checks:
+        typer.echo("")
+        typer.echo("Findings for the catalogue's checks:")
     for check in entry.checks:
         typer.echo(f"  {check}: {finding_of(check, run.result, entry.run_kind)}")
-    caution = getattr(run.result, "caution", None) or getattr(run.result, "note", None)
+    caution = getattr(run.result, "caution", None) or getattr(run.result, "note", None) or caution
     if caution and caution not in summary:
         typer.echo(f"note: {caution}")
     if slug:

@@ -12,7 +12,7 @@ from typing import Annotated, Any
 import typer
 
 from ivdossier.cli import panels
-from ivdossier.cli.common import JsonFlag, actor, writing
+from ivdossier.cli.common import JsonFlag
 from ivdossier.cli.model_options import (
     Absorb,
     Alpha,
@@ -27,7 +27,6 @@ from ivdossier.cli.model_options import (
     Weights,
     model_spec,
 )
-from ivdossier.cli.output import print_json
 
 fragility_app = typer.Typer(
     help="How fragile the result is: bootstrap with few clusters, one cluster left out, one treatment of several.",
@@ -108,37 +107,11 @@ def _run(name: str, data: Any, spec: Any, **options: Any) -> Any:
 
 
 def _finish(run: Any, name: str, *, attach: str | None, json_out: bool) -> None:
-    """Store the run if asked, then print JSON or the summary and the findings for catalogue checks."""
-    from ivdossier.jsonsafe import json_safe
-    from ivdossier.workflows.analyses import analysis
-    from ivdossier.workflows.findings import finding_of
-    from ivdossier.workflows.runs import store_run
+    """Store and print as every evidence command does, with the fragility caution when a result has none."""
+    from ivdossier.cli.evidence_cmds import _finish as finish_evidence
+    from ivdossier.estimation.fragility_data import CAUTION
 
-    entry = analysis(name)
-    slug = None
-    if attach:
-        with writing() as session:
-            slug = store_run(session, run, instrument=attach, actor=actor()).slug
-    data = json_safe(run.result.to_dict())
-    if json_out:
-        print_json({**data, "run": slug} if slug else data)
-        return
-    summary = str(run.result)
-    typer.echo(summary)
-    if entry.checks:
-        typer.echo("")
-        typer.echo("Findings for the catalogue's checks:")
-        for check in entry.checks:
-            typer.echo(f"  {check}: {finding_of(check, run.result, entry.run_kind)}")
-    caution = getattr(run.result, "caution", None)
-    if caution is None:
-        from ivdossier.estimation.fragility_data import CAUTION
-
-        caution = CAUTION
-    if caution not in summary:
-        typer.echo(f"note: {caution}")
-    if slug:
-        typer.echo(f"stored as run {slug} on instrument {attach}")
+    finish_evidence(run, name, attach=attach, json_out=json_out, caution=CAUTION)
 
 
 @fragility_app.command("bootstrap")
