@@ -14,11 +14,11 @@ from functools import cached_property
 from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.result import EstimationResult
 from ivdossier.jsonsafe import RECORD_KEY, load_record
 from ivdossier.vocabulary import CONDITIONS, LINK_STATES, READING_ASPECTS, Verdict
 
 if TYPE_CHECKING:
+    from ivdossier.estimation.result import EstimationResult
     from ivdossier.threats_catalog.graph import GraphVerdict
 
 
@@ -202,6 +202,10 @@ class RunInfo:
     @cached_property
     def result(self) -> EstimationResult | None:
         """The typed estimation result stored with the run (None for runs stored before typed records)."""
+        from ivdossier.estimation.result import (
+            EstimationResult,  # the numerics load only when a result is read
+        )
+
         record = self.results.get(RECORD_KEY) if isinstance(self.results, Mapping) else None
         if not isinstance(record, Mapping):
             return None

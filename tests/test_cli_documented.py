@@ -54,3 +54,26 @@ def test_help_imports_no_database_or_numerics_libraries() -> None:
         [sys.executable, "-c", probe], capture_output=True, text=True, check=True
     ).stdout.strip()
     assert out == ""
+
+
+def test_catalogue_listing_loads_no_numerics(tmp_path: Path) -> None:
+    """`threat list` reads the registry only: the estimation stack (numpy, scipy, pandas) is never imported."""
+    import subprocess
+    import sys
+
+    db = str(tmp_path / "r.sqlite")
+    probe = (
+        "import sys\n"
+        "from ivdossier.cli.app import main\n"
+        f"sys.argv = ['ivdossier', '--db', {db!r}, 'threat', 'list', '--json']\n"
+        "try:\n    main()\nexcept SystemExit:\n    pass\n"
+        "heavy = [m for m in ('pandas', 'scipy', 'statsmodels', 'matplotlib', 'ivdossier.estimation') "
+        "if m in sys.modules]\n"
+        "print('HEAVY=' + ','.join(heavy), file=sys.stderr)"
+    )
+    init = subprocess.run(
+        [sys.executable, "-m", "ivdossier.cli", "--db", db, "init"], capture_output=True, text=True
+    )
+    assert init.returncode == 0, init.stderr
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
+    assert "HEAVY=\n" in done.stderr or done.stderr.rstrip().endswith("HEAVY="), done.stderr[-500:]
