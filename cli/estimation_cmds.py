@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Annotated
+
 import typer
 
 from ivdossier.cli import panels
@@ -42,9 +44,22 @@ def estimate(
     alpha: Alpha = 0.05,
     attach: Attach = None,
     json_out: JsonFlag = False,
+    engine: Annotated[
+        str,
+        typer.Option(
+            help="pandas (in memory, the default), duckdb (scans Parquet/CSV with bounded memory), spark, or "
+            "auto (pandas when the data fit, DuckDB above); --data may then be a directory of Parquet files."
+        ),
+    ] = "pandas",
+    memory_limit: Annotated[
+        str | None, typer.Option(help='DuckDB memory cap, e.g. "1GB" (the engine spills to disk beyond it).')
+    ] = None,
+    spark_master: Annotated[
+        str | None, typer.Option(help="Spark master URL for --engine spark (default: local mode).")
+    ] = None,
 ) -> None:
     """Estimate the effect with the full weak-instrument diagnostic suite."""
-    from ivdossier.workflows.runs import estimate_file
+    from ivdossier.workflows.runs import estimate_file, estimate_with_engine
 
     spec = model_spec(
         outcome=outcome,
@@ -58,7 +73,22 @@ def estimate(
         vcov=vcov,
         alpha=alpha,
     )
-    outcome_run = estimate_file(data, spec)
+    if engine == "pandas":
+        if memory_limit is not None or spark_master is not None:
+            from ivdossier.errors import InvalidInputError
+
+            raise InvalidInputError(
+                "--memory-limit and --spark-master apply to the scanning engines; add --engine duckdb, spark or "
+                "auto, or drop them."
+            )
+        outcome_run = estimate_file(data, spec)
+    else:
+        outcome_run = estimate_with_engine(
+            data, spec, engine=engine, memory_limit=memory_limit, spark_master=spark_master
+        )
+        if not json_out:
+            used = outcome_run.extra["engine"]
+            typer.echo(f"engine: {used['engine']} ({used['choice']})")
     from ivdossier.workflows.run_records import inference_warnings
 
     result = outcome_run.result
