@@ -45,7 +45,7 @@ from ivdossier.estimation.sources import (
     parquet_rows_and_types,
     resolve_source,
 )
-from ivdossier.estimation.spec import check_options
+from ivdossier.estimation.spec import ModelSpec
 from ivdossier.estimation.sql_moments import (
     SQL_MIN_LENGTH,
     MomentPlan,
@@ -67,54 +67,6 @@ from ivdossier.vocabulary import NotApplicable
 
 Array = NDArray[np.float64]
 ENGINES: tuple[str, ...] = ("auto", "pandas", "duckdb", "spark")
-
-
-@dataclass(frozen=True)
-class Model:
-    """The model options of one estimation (names normalised to tuples)."""
-
-    outcome: str
-    treatment: tuple[str, ...]
-    instruments: tuple[str, ...]
-    controls: tuple[str, ...]
-    absorb: tuple[str, ...]
-    cluster: tuple[str, ...]
-    weights: str | None
-    method: str
-    vcov: str
-    small_sample: bool
-    alpha: float
-    fuller_alpha: float
-
-    @property
-    def used(self) -> list[str]:
-        """Every column the model reads, once each."""
-        names = [
-            self.outcome,
-            *self.treatment,
-            *self.instruments,
-            *self.controls,
-            *self.absorb,
-            *self.cluster,
-        ]
-        return list(dict.fromkeys(names + ([self.weights] if self.weights else [])))
-
-    def echo(self) -> dict[str, object]:
-        """The specification as stored with a result (the same keys as the in-memory path)."""
-        return {
-            "outcome": self.outcome,
-            "treatment": list(self.treatment),
-            "instruments": list(self.instruments),
-            "controls": list(self.controls),
-            "absorb": list(self.absorb),
-            "cluster": list(self.cluster),
-            "weights": self.weights,
-            "method": self.method,
-            "vcov": self.vcov,
-            "small_sample": self.small_sample,
-            "alpha": self.alpha,
-            "fuller_alpha": self.fuller_alpha,
-        }
 
 
 @dataclass(frozen=True)
@@ -192,7 +144,7 @@ class _Counts:
     n_clusters: tuple[int, ...]
 
 
-def _check_columns(kinds: dict[str, str], model: Model) -> None:
+def _check_columns(kinds: dict[str, str], model: ModelSpec) -> None:
     columns = list(kinds)
     for name in model.used:
         if name not in kinds:
@@ -225,39 +177,30 @@ def _normalise(
     small_sample: bool,
     alpha: float,
     fuller_alpha: float,
-) -> Model:
+) -> ModelSpec:
     if not isinstance(outcome, str) or not outcome:
         raise InvalidInputError("Option outcome= must name one column.")
-    clus = as_names(cluster, "cluster")
-    check_options(method, vcov, clus, alpha, fuller_alpha)
-    inst = as_names(instruments, "instruments")
-    treat = as_names(treatment, "treatment")
-    if not treat:
+    if not as_names(treatment, "treatment"):
         raise InvalidInputError("Option treatment= must name at least one column.")
-    if method == "ols" and inst:
-        raise InvalidInputError(
-            "method='ols' takes no instruments; drop instruments= or choose '2sls', 'liml' or 'fuller'."
-        )
-    if method != "ols" and not inst:
-        raise InvalidInputError(f"method={method!r} needs instruments=; name at least one instrument column.")
+    model = ModelSpec.build(
+        outcome=outcome,
+        treatment=treatment,
+        instruments=instruments,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        method=method,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+        fuller_alpha=fuller_alpha,
+    )
+    treat, inst, clus = model.treatment, model.instruments, model.cluster
     if len(clus) > 2:
         raise InvalidInputError(
             f"At most two cluster variables are supported, got {len(clus)}; pass one or two."
         )
-    model = Model(
-        outcome,
-        treat,
-        inst,
-        as_names(controls, "controls"),
-        as_names(absorb, "absorb"),
-        clus,
-        weights,
-        method,
-        vcov,
-        small_sample,
-        alpha,
-        fuller_alpha,
-    )
     roles = {
         "outcome": (outcome,),
         "treatment": treat,
@@ -275,7 +218,7 @@ def _normalise(
     return model
 
 
-def refuse_unsupported(model: Model, engine: str) -> None:
+def refuse_unsupported(model: ModelSpec, engine: str) -> None:
     """One clear refusal for what the SQL engines cannot do in a bounded number of scans."""
     if len(model.absorb) > 1:
         raise InvalidInputError(
@@ -322,13 +265,13 @@ def _scan_counts(
     return row
 
 
-def _targets_order(model: Model) -> list[int]:
+def _targets_order(model: ModelSpec) -> list[int]:
     """Positions, in the [y, X, Z] order of the in-memory checks, of plan.targets = [Z, X, y]."""
     k, p = len(model.instruments), len(model.treatment)
     return [k + p, *range(k, k + p), *range(k)]
 
 
-def _check_partialled(model: Model, root: Array, pre: Array, *, exact: bool) -> None:
+def _check_partialled(model: ModelSpec, root: Array, pre: Array, *, exact: bool) -> None:
     """The in-memory path's checks for constant or collinear columns, on a square root of the partialled Gram
     matrix (same norms and R factor as the n-row columns); ``pre`` holds the lengths before partialling."""
     order = _targets_order(model)
@@ -359,7 +302,7 @@ def _psd_root(gram: Array) -> Array:
     return np.asarray(np.sqrt(np.clip(vals, 0.0, None))[:, None] * vecs.T, dtype=np.float64)
 
 
-def sql_cross_products(runner: Runner, model: Model) -> tuple[CrossProducts, _Counts, list[ScanTiming]]:
+def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts, _Counts, list[ScanTiming]]:
     """Run the scans on ``runner`` and build the sufficient statistics of ``model``."""
     refuse_unsupported(model, runner.name)
     _check_columns(runner.columns(), model)
@@ -488,7 +431,7 @@ def _ols_from(cp: CrossProducts) -> tuple[Array, Array, float]:
     return np.asarray(beta * unit, dtype=np.float64), np.asarray(cov * np.outer(unit, unit)), ssr
 
 
-def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: Model) -> EstimationResult:
+def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: ModelSpec) -> EstimationResult:
     """The estimation result (coefficients, covariance, intervals, diagnostic suite) from the sums alone."""
     n, k = counts.n, len(model.treatment)
     df_resid = n - k - counts.n_partialled

@@ -104,6 +104,19 @@ class ModelSpec:
         names = {f.name for f in dataclasses.fields(cls)}
         return cls.build(**{k: v for k, v in stored.items() if k in names and v is not None})
 
+    @property
+    def used(self) -> list[str]:
+        """Every column the model reads, once each, in role order."""
+        names = [
+            *([self.outcome] if self.outcome else []),
+            *self.treatment,
+            *self.instruments,
+            *self.controls,
+            *self.absorb,
+            *self.cluster,
+        ]
+        return list(dict.fromkeys(names + ([self.weights] if self.weights else [])))
+
     def adjustment(self) -> dict[str, Any]:
         """Controls, fixed effects, clusters, weights, covariance and level as keyword arguments."""
         out = {name: getattr(self, name) for name in ADJUSTMENT_KEYWORDS}
