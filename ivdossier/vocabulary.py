@@ -113,3 +113,17 @@ class NotApplicable(Record):
 
     def __str__(self) -> str:
         return f"{NOT_APPLICABLE} ({self.reason})"
+
+    @classmethod
+    def from_view(cls, view: Any) -> NotApplicable | None:
+        """The not-applicable object a stored JSON view stands for, or None when the view is not one.
+
+        Two shapes are stored: this class's ``{"status": "not applicable", "reason": ...}`` and the
+        ``{"applicable": false, "reason": ...}`` of results that keep their own applicable flag (the fragility,
+        design, summary-data and omitted-variable results); both read back as one object."""
+        if not isinstance(view, Mapping):
+            return None
+        if view.get("status") == NOT_APPLICABLE or view.get("applicable") is False:
+            reason = view.get("reason")
+            return cls(str(reason) if reason else "no reason stated")
+        return None
