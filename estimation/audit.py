@@ -651,7 +651,12 @@ def reanalyse_variants(
     summary-data estimator, beside the estimate the study reported."""
     import pandas as pd
 
-    frame = pd.DataFrame(list(table.get("rows") or []), columns=list(table.get("columns") or []))
+    try:
+        frame = pd.DataFrame(list(table.get("rows") or []), columns=list(table.get("columns") or []))
+    except (ValueError, TypeError) as exc:  # rows that do not fit the columns (a hand-edited export)
+        raise InvalidInputError(
+            f"the stored per-variant table is malformed ({exc}); attach the file again."
+        ) from None
     checked = variant_table(frame, source=str(table.get("source") or ""))
     evidence = summary_evidence(checked, alpha=alpha, draws=VARIANT_DRAWS, seed=VARIANT_SEED)
     return VariantReanalysis(str(table.get("source") or ""), str(table.get("sha256") or ""), evidence,
@@ -812,9 +817,13 @@ def audit_study(
             "(tF corrects the t-test; Anderson–Rubin inverts a test valid however weak the instrument), so "
             "report both"
         )
-    again = None if variants is None else reanalyse_variants(variants, reported_estimate=rep.estimate)
-    if again is not None:
-        flags += [f"per-variant table: {f}" for f in again.flags()]
+    again = None
+    if variants is not None:
+        try:
+            again = reanalyse_variants(variants, reported_estimate=rep.estimate)
+            flags += [f"per-variant table: {f}" for f in again.flags()]
+        except InvalidInputError as exc:  # one study's table does not stop the audit of the others
+            flags.append(f"per-variant table cannot be re-analysed: {exc}")
     return StudyAudit(
         key, citation, rep, tf, ar, strength, v5, v1, tuple(flags), _procedures(rep, tf, ar), again
     )

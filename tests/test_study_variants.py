@@ -134,3 +134,24 @@ def test_export_and_import_carry_the_attached_table(cli, study: Path, tmp_path: 
     study_files = sorted((tmp_path / "out" / "study").iterdir())
     again_files = sorted((tmp_path / "again" / "study").iterdir())
     assert [p.read_bytes() for p in study_files] == [p.read_bytes() for p in again_files]  # byte-identical
+
+
+def test_a_malformed_stored_table_is_flagged_and_the_audit_goes_on() -> None:
+    from ivdossier.estimation.audit import audit_study
+
+    broken = {
+        "source": "v.csv",
+        "sha256": "0" * 64,
+        "columns": ["variant", "exposure_effect"],
+        "rows": [["rs1", 0.1]],
+    }
+    audited = audit_study("K", {"estimate": 0.1, "std_error": 0.05}, variants=broken)
+    assert audited.variants is None
+    assert audited.flags[-1].startswith(
+        "per-variant table cannot be re-analysed: The per-variant table lacks"
+    )
+    ragged = {**broken, "rows": [["rs1", 0.1, 0.2, 0.3]]}
+    flagged = audit_study("K", {}, variants=ragged).flags[-1]
+    assert flagged.startswith(
+        "per-variant table cannot be re-analysed: the stored per-variant table is malformed"
+    )
