@@ -67,6 +67,13 @@ def test_not_applicable_is_read_the_same_from_every_stored_shape() -> None:
         "2 clusters"
     )
     assert NotApplicable.from_view({"applicable": True, "reason": None}) is None
+    from ivdossier.estimation.influence import InfluenceResult
+    from ivdossier.estimation.variant_summary import VariantNotApplicable
+
+    # typed results with their own applicable/reason fields read as the same object
+    assert NotApplicable.of(InfluenceResult(False, "2 clusters")) == NotApplicable("2 clusters")
+    assert NotApplicable.of(VariantNotApplicable("MR-Egger", "three needed")) == NotApplicable("three needed")
+    assert NotApplicable.of(NotApplicable("x")) == NotApplicable("x") and NotApplicable.of(object()) is None
     influence = {"applicable": False, "reason": "2 clusters: too few", "t_significance_flips": None}
     out = plan_rules.evaluate_rule(
         _rule("flips", "fragility-influence:t_significance_flips", "==", 0), influence

@@ -361,10 +361,11 @@ def _compliers(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Compu
 
 
 def _na_text(part: Any) -> str | None:
-    """The reason when a part of a result does not apply (either module's not-applicable record)."""
-    if getattr(part, "applicable", True) is False:
-        return f"not applicable: {getattr(part, 'reason', '')}"
-    return None
+    """The reason when a part of a result does not apply (any module's not-applicable record)."""
+    from ivdossier.vocabulary import NotApplicable
+
+    na = NotApplicable.of(part)
+    return None if na is None else f"not applicable: {na.reason}"
 
 
 def _leave_out(result: Any) -> str:
