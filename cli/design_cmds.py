@@ -136,8 +136,8 @@ def variants(
         Path,
         typer.Option(
             "--data",
-            help="Per-variant table (.csv): variant, exposure_effect, exposure_se, outcome_effect, outcome_se, "
-            "optional alleles and sample sizes.",
+            help="Per-variant table (.csv, .tsv, or .txt with the delimiter sniffed; .gz allowed): variant, "
+            "exposure_effect, exposure_se, outcome_effect, outcome_se, optional alleles and sample sizes.",
         ),
     ],
     draws: Annotated[int, typer.Option(help="Bootstrap draws for the weighted median's SE.")] = 1000,

@@ -162,22 +162,38 @@ def list_(json_out: JsonFlag = False) -> None:
 
 
 @plan_app.command("quantities")
-def quantities_cmd(json_out: JsonFlag = False) -> None:
-    """List the quantities a decision rule may name (paths into an estimation run's results)."""
-    from ivdossier.workflows.plan_quantities import INSTRUMENT, TREATMENT, quantities
+def quantities_cmd(
+    run_kind: Annotated[
+        str | None,
+        typer.Option("--run-kind", help="Only the quantities of this kind of run (e.g. variants)."),
+    ] = None,
+    json_out: JsonFlag = False,
+) -> None:
+    """List the quantities a decision rule may name (paths into a run's results), grouped by kind of run."""
+    from ivdossier.errors import InvalidInputError
+    from ivdossier.workflows.plan_quantities import ESTIMATE, INSTRUMENT, RULE_KINDS, TREATMENT, quantities
 
-    rows = [q.to_dict() for q in quantities()]
+    kinds = (ESTIMATE, *RULE_KINDS)
+    if run_kind is not None and run_kind not in kinds:
+        raise InvalidInputError(f"--run-kind {run_kind!r} is not known; use one of {', '.join(kinds)}.")
+    rows = [q.to_dict() for q in quantities(run_kind)]
     if json_out:
         print_json(rows)
         return
     typer.echo(
-        f"Quantities of an estimation run a decision rule may name ({len(rows)}). Write {TREATMENT} and "
-        f"{INSTRUMENT} as the plan's column names (coef.video_share); an item of a list by its position from 0 "
-        "(weak_iv_robust.anderson_rubin.confidence_set.0.1 is the upper end of the first interval)."
+        f"Quantities a decision rule may name ({len(rows)}). Write an estimate's path bare and any other kind's "
+        "qualified by its run kind (variants:egger.intercept_p); one rule reads one kind of run. Write "
+        f"{TREATMENT} and {INSTRUMENT} as the plan's column names (coef.video_share); an item of a list by its "
+        "position from 0 (weak_iv_robust.anderson_rubin.confidence_set.0.1 is the upper end of the first interval)."
     )
-    for row in rows:
-        row["may_be_empty"] = "yes" if row["may_be_empty"] else "no"
-    print_table(rows, ["path", "kind", "may_be_empty"])
+    for kind in kinds:
+        group = [r for r in rows if r["run_kind"] == kind]
+        if not group:
+            continue
+        typer.echo(f"\n{kind} runs ({len(group)})")
+        for row in group:
+            row["may_be_empty"] = "yes" if row["may_be_empty"] else "no"
+        print_table(group, ["path", "kind", "may_be_empty"])
 
 
 @plan_app.command("show")
@@ -543,7 +559,7 @@ def compare(
     if devs:
         print_table(devs, ["run", "kind", "field", "planned", "actual"])
     rules = [
-        {"run": r.run, "rule": o.rule_id, "holds": _holds(o.holds), "basis": _basis(o), "action": o.action}
+        {"run": r.run, "rule": o.rule_id, "holds": _holds(o), "basis": _basis(o), "action": o.action}
         for r in result.runs
         for o in r.rules
     ]
@@ -555,8 +571,9 @@ def compare(
             typer.echo(f"note: {note}")
 
 
-def _holds(holds: bool | None) -> str:
-    return "not evaluable" if holds is None else show_value(holds)
+def _holds(outcome: Any) -> str:
+    """yes/no, or why a rule was not decided ("not applicable" or "not evaluable")."""
+    return (outcome.status or "not evaluable") if outcome.holds is None else show_value(outcome.holds)
 
 
 def _basis(outcome: Any) -> str:

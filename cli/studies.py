@@ -143,6 +143,9 @@ def show(key: str, json_out: JsonFlag = False) -> None:
         ("families", ", ".join(data.get("families") or [])),
     ]
     pairs += [(f"reported {k}", v) for k, v in (data.get("reported") or {}).items()]
+    table = data.get("variant_table") or {}
+    if table:
+        pairs.append(("per-variant table", f"{table.get('n_variants')} variants from {table.get('source')}"))
     print_record(pairs)
     if data["critiques"]:
         typer.echo("")
@@ -226,6 +229,40 @@ def attach(
     typer.echo(
         f"study {key} attached to {'instrument ' + instrument if instrument else 'family ' + str(family)}"
     )
+
+
+@study_app.command("variants")
+def variants(
+    key: str,
+    data: Annotated[
+        Path | None,
+        typer.Option(
+            "--data",
+            help="The study's published per-variant table (.csv, .tsv or .txt; the columns of `variants`).",
+        ),
+    ] = None,
+    remove: Annotated[bool, typer.Option("--remove", help="Remove the table attached to the study.")] = False,
+    json_out: JsonFlag = False,
+) -> None:
+    """Attach a published study's per-variant table so that `audit` re-analyses it beside the reported estimate."""
+    from ivdossier.errors import InvalidInputError
+    from ivdossier.workflows.studies import attach_variant_table, remove_variant_table
+
+    if (data is None) == (not remove):
+        raise InvalidInputError("give either --data FILE (attach a per-variant table) or --remove.")
+    with writing() as s:
+        if data is not None:
+            table = dict(attach_variant_table(s, actor=actor(), key=key, path=data).variant_table or {})
+        else:
+            remove_variant_table(s, actor=actor(), key=key)
+            table = {}
+    summary = {k: table.get(k) for k in ("source", "sha256", "n_variants")}
+    if json_out:
+        print_json({"study": key, "variant_table": summary if table else None})
+    elif table:
+        typer.echo(f"study {key}: {table['n_variants']} variants attached from {table['source']}")
+    else:
+        typer.echo(f"study {key}: per-variant table removed")
 
 
 @study_app.command("critique")

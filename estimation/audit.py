@@ -39,6 +39,15 @@ from ivdossier.estimation.critical_values import (
     tf_critical_value,
 )
 from ivdossier.estimation.robust_inference import Interval, classify_set, quadratic_set
+from ivdossier.estimation.variant_summary import (
+    EggerFit,
+    Heterogeneity,
+    IvwFit,
+    SummaryEvidence,
+    WeightedMedian,
+    summary_evidence,
+    variant_table,
+)
 
 F_KINDS: tuple[str, ...] = (
     "unadjusted",
@@ -542,6 +551,118 @@ def _procedures(rep: ReportedStats, tf: TFCheck, ar: ARCheck) -> tuple[Procedure
     return tuple(out)
 
 
+VARIANT_DRAWS, VARIANT_SEED = (
+    1000,
+    20260101,
+)  # the weighted median's bootstrap in the audit (fixed: reproducible)
+
+
+@dataclass(frozen=True)
+class VariantReanalysis:
+    """A study's published per-variant table re-analysed (IVW, MR-Egger, weighted median, Q, Steiger) beside the
+    estimate the study reported; ``source`` and ``sha256`` name the file that was attached."""
+
+    source: str
+    sha256: str
+    evidence: SummaryEvidence
+    reported_estimate: float | None = None
+
+    @property
+    def n_variants(self) -> int:
+        return self.evidence.table.n_variants
+
+    @property
+    def reported_inside_ivw(self) -> bool | None:
+        """Whether the reported estimate lies in the IVW random-effects interval (None when either is missing)."""
+        ivw = self.evidence.ivw
+        if self.reported_estimate is None or not isinstance(ivw, IvwFit):
+            return None
+        lo, hi = ivw.ci_random
+        return bool(lo <= self.reported_estimate <= hi)
+
+    def lines(self) -> tuple[str, ...]:
+        """One sentence per statistic, in words, for the audit document and the terminal."""
+        ev = self.evidence
+        level = f"{1 - ev.alpha:.0%}"
+        out = [f"{self.source or 'the attached table'}: {ev.table.harmonisation}"]
+        ivw = ev.ivw
+        if isinstance(ivw, IvwFit):
+            lo, hi = ivw.ci_random
+            text = f"IVW {ivw.estimate:.4g} ({level} random-effects interval [{lo:.4g}, {hi:.4g}])"
+            if self.reported_inside_ivw is not None and self.reported_estimate is not None:
+                where = "inside" if self.reported_inside_ivw else "outside"
+                text += f"; the reported estimate {self.reported_estimate:.4g} lies {where} it"
+            out.append(text)
+        else:
+            out.append(str(ivw))
+        egger = ev.egger
+        out.append(
+            f"MR-Egger slope {egger.estimate:.4g}, intercept {egger.intercept:.4g} (p = {egger.intercept_p:.3g}); "
+            f"I²_GX {egger.i2_gx:.3g}"
+            if isinstance(egger, EggerFit)
+            else str(egger)
+        )
+        median = ev.weighted_median
+        out.append(
+            f"weighted median {median.estimate:.4g} (bootstrap SE {median.se:.3g}, {median.draws} draws)"
+            if isinstance(median, WeightedMedian)
+            else str(median)
+        )
+        het = ev.heterogeneity
+        out.append(
+            f"Cochran's Q {het.q:.4g} on {het.q_df} df (p = {het.q_p:.3g})"
+            if isinstance(het, Heterogeneity)
+            else str(het)
+        )
+        out.append(f"mean F of the variants {ev.ratios.mean_f:.4g} (smallest {ev.ratios.min_f:.4g})")
+        return tuple(out)
+
+    def flags(self) -> tuple[str, ...]:
+        """What the re-analysis puts in doubt (at the table's own level)."""
+        ev, out = self.evidence, []
+        if self.reported_inside_ivw is False:
+            out.append(
+                "the reported estimate lies outside the IVW interval re-computed from its own variants"
+            )
+        if isinstance(ev.egger, EggerFit) and ev.egger.intercept_p < ev.alpha:
+            out.append("the MR-Egger intercept differs from zero: directional pleiotropy is suspected")
+        if isinstance(ev.heterogeneity, Heterogeneity) and ev.heterogeneity.q_p < ev.alpha:
+            out.append("Cochran's Q rejects homogeneity of the variants' ratio estimates")
+        return tuple(out)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe dict: the file, the comparison with the reported estimate, the full evidence."""
+        return {
+            "source": self.source,
+            "sha256": self.sha256,
+            "n_variants": self.n_variants,
+            "reported_estimate": _json(self.reported_estimate),
+            "reported_inside_ivw_random_interval": self.reported_inside_ivw,
+            "summary": list(self.lines()),
+            "flags": list(self.flags()),
+            "evidence": self.evidence.to_dict(),
+        }
+
+
+def reanalyse_variants(
+    table: Mapping[str, Any], *, reported_estimate: float | None = None, alpha: float = 0.05
+) -> VariantReanalysis:
+    """Re-analyse a stored per-variant table (``source``, ``sha256``, ``columns``, ``rows``) with every
+    summary-data estimator, beside the estimate the study reported."""
+    import pandas as pd
+
+    try:
+        frame = pd.DataFrame(list(table.get("rows") or []), columns=list(table.get("columns") or []))
+    except (ValueError, TypeError) as exc:  # rows that do not fit the columns (a hand-edited export)
+        raise InvalidInputError(
+            f"the stored per-variant table is malformed ({exc}); attach the file again."
+        ) from None
+    checked = variant_table(frame, source=str(table.get("source") or ""))
+    evidence = summary_evidence(checked, alpha=alpha, draws=VARIANT_DRAWS, seed=VARIANT_SEED)
+    return VariantReanalysis(str(table.get("source") or ""), str(table.get("sha256") or ""), evidence,
+                             reported_estimate)  # fmt: skip
+
+
 @dataclass(frozen=True)
 class StudyAudit:
     """Everything the audit concludes about one study from what it reported.
@@ -561,6 +682,7 @@ class StudyAudit:
     verdict_1pct: str
     flags: tuple[str, ...]
     procedures: tuple[ProcedureVerdict, ...] = ()
+    variants: VariantReanalysis | None = None
 
     @property
     def survives_5pct(self) -> bool:
@@ -591,6 +713,7 @@ class StudyAudit:
             "anderson_rubin": self.ar.to_dict(),
             "strength": self.strength.to_dict(),
             "flags": list(self.flags),
+            "variants": None if self.variants is None else self.variants.to_dict(),
         }
 
     def __str__(self) -> str:
@@ -612,6 +735,8 @@ class StudyAudit:
         lines.append(f"  5 %: {self.verdict_5pct} — {self.procedure_text(0.05)}")
         lines.append(f"  1 %: {self.verdict_1pct} — {self.procedure_text(0.01)}")
         lines += [f"  note: {f}" for f in self.flags]
+        if self.variants is not None:
+            lines += [f"  per-variant table: {line}" for line in self.variants.lines()]
         lines.append("  Statistics cannot establish exclusion or exogeneity; a result that survives may still rest on "
                      "an invalid instrument.")  # fmt: skip
         return "\n".join(lines)
@@ -655,8 +780,15 @@ def _verdicts(rep: ReportedStats, tf: TFCheck, ar: ARCheck) -> tuple[str, str]:
     return v5, v1
 
 
-def audit_study(key: str, reported: ReportedStats | Mapping[str, Any], *, citation: str = "") -> StudyAudit:
-    """Re-examine one study from its reported statistics."""
+def audit_study(
+    key: str,
+    reported: ReportedStats | Mapping[str, Any],
+    *,
+    citation: str = "",
+    variants: Mapping[str, Any] | None = None,
+) -> StudyAudit:
+    """Re-examine one study from its reported statistics and, when one is attached, re-analyse its per-variant
+    table (``reanalyse_variants``) beside the reported estimate."""
     rep = (
         reported
         if isinstance(reported, ReportedStats)
@@ -685,7 +817,16 @@ def audit_study(key: str, reported: ReportedStats | Mapping[str, Any], *, citati
             "(tF corrects the t-test; Anderson–Rubin inverts a test valid however weak the instrument), so "
             "report both"
         )
-    return StudyAudit(key, citation, rep, tf, ar, strength, v5, v1, tuple(flags), _procedures(rep, tf, ar))
+    again = None
+    if variants is not None:
+        try:
+            again = reanalyse_variants(variants, reported_estimate=rep.estimate)
+            flags += [f"per-variant table: {f}" for f in again.flags()]
+        except InvalidInputError as exc:  # one study's table does not stop the audit of the others
+            flags.append(f"per-variant table cannot be re-analysed: {exc}")
+    return StudyAudit(
+        key, citation, rep, tf, ar, strength, v5, v1, tuple(flags), _procedures(rep, tf, ar), again
+    )
 
 
 @dataclass(frozen=True)

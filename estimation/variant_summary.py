@@ -33,7 +33,7 @@ import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, cast
+from typing import Any, Literal, cast
 
 import numpy as np
 import pandas as pd
@@ -62,6 +62,7 @@ __all__ = [
     "egger",
     "ivw",
     "leave_one_out",
+    "read_variant_frame",
     "read_variant_table",
     "summary_evidence",
     "variant_table",
@@ -197,33 +198,72 @@ class VariantTable(Record):
         return f"Per-variant table{f' {self.source}' if self.source else ''}: {self.harmonisation}"
 
 
-def read_variant_table(path: str | Path, *, columns: Mapping[str, str] | None = None) -> VariantTable:
-    """Read a per-variant CSV or TSV file (delimiter from the extension or sniffed) and check it."""
+VARIANT_SUFFIXES = (".csv", ".tsv", ".txt")
+_SEPARATORS = {",": "comma", "\t": "tab", ";": "semicolon"}
+
+
+def _variant_suffix(p: Path) -> tuple[str, str | None]:
+    """The table's own extension and its compression (``.tsv.gz`` -> ``.tsv``, ``gzip``)."""
+    suffixes = [x.lower() for x in p.suffixes]
+    if suffixes and suffixes[-1] == ".gz":
+        return (suffixes[-2] if len(suffixes) > 1 else ""), "gzip"
+    return (suffixes[-1] if suffixes else ""), None
+
+
+def read_variant_frame(path: str | Path) -> pd.DataFrame:
+    """Read a per-variant table as text columns: a .csv (comma), .tsv (tab) or .txt (delimiter sniffed among comma,
+    tab and semicolon) file, optionally gzip-compressed (.tsv.gz); one clear error for anything else.
+
+    A file whose header holds no delimiter of its extension but another one (a tab-separated file saved as .csv)
+    is refused with the delimiter found, rather than read as one column."""
     p = Path(path)
-    suffix = p.suffix.lower()
-    if suffix not in (".csv", ".tsv", ".txt"):
+    suffix, compression = _variant_suffix(p)
+    if suffix not in VARIANT_SUFFIXES:
+        shown = "".join(p.suffixes[-2:]) or "(none)"
         raise InvalidInputError(
-            f"Cannot read {str(p)!r}: unknown extension {suffix or '(none)'!r}; use .csv, .tsv or .txt."
+            f"Cannot read {str(p)!r}: unknown extension {shown!r}; use .csv, .tsv or .txt (optionally .gz)."
         )
     if not p.is_file():
         raise InvalidInputError(f"Cannot read {str(p)!r}: no such file; check the path.")
     try:
-        head = p.read_text(encoding="utf-8", errors="replace")[:4096]
-        sep = (
-            "\t"
-            if suffix == ".tsv"
-            else ","
-            if suffix == ".csv"
-            else csv.Sniffer().sniff(head, ",\t;").delimiter
-        )
-        frame = pd.read_csv(p, sep=sep, dtype={"variant": str}, keep_default_na=True)
-    except csv.Error as exc:
-        raise InvalidInputError(f"Cannot tell the delimiter of {str(p)!r}; save it as .csv or .tsv.") from exc
+        if compression == "gzip":
+            import gzip
+
+            with gzip.open(p, "rt", encoding="utf-8", errors="replace") as handle:
+                head = handle.read(4096)
+        else:
+            head = p.read_text(encoding="utf-8", errors="replace")[:4096]
+    except (OSError, EOFError) as exc:
+        raise InvalidInputError(f"Cannot read {str(p)!r}: {exc}; check the file.") from exc
+    header = head.splitlines()[0] if head.splitlines() else ""
+    if suffix == ".txt":
+        try:
+            sep = csv.Sniffer().sniff(head, ",\t;").delimiter
+        except csv.Error as exc:
+            raise InvalidInputError(
+                f"Cannot tell the delimiter of {str(p)!r}; save it as .csv (commas) or .tsv (tabs)."
+            ) from exc
+    else:
+        sep = "\t" if suffix == ".tsv" else ","
+        others = [d for d in _SEPARATORS if d != sep and d in header]
+        if sep not in header and others:
+            raise InvalidInputError(
+                f"Cannot read {str(p)!r}: a {suffix} file is {_SEPARATORS[sep]}-separated, but its header row is "
+                f"{_SEPARATORS[others[0]]}-separated; rename it to "
+                f"{'.tsv' if others[0] == chr(9) else '.txt'} or save it with {_SEPARATORS[sep]}s."
+            )
+    packed: Literal["gzip", "infer"] = "gzip" if compression else "infer"
+    try:
+        return pd.read_csv(p, sep=sep, dtype={"variant": str}, keep_default_na=True, compression=packed)
     except Exception as exc:  # the parser raises many unrelated types
         raise InvalidInputError(
             f"Cannot read {str(p)!r} as a delimited table: {exc}; check the file."
         ) from exc
-    return variant_table(frame, columns=columns, source=p.name)
+
+
+def read_variant_table(path: str | Path, *, columns: Mapping[str, str] | None = None) -> VariantTable:
+    """Read a per-variant CSV or TSV file (delimiter from the extension or sniffed) and check it."""
+    return variant_table(read_variant_frame(path), columns=columns, source=Path(path).name)
 
 
 def _numeric_column(frame: pd.DataFrame, name: str, variants: Sequence[str]) -> Array:

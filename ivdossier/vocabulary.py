@@ -113,3 +113,31 @@ class NotApplicable(Record):
 
     def __str__(self) -> str:
         return f"{NOT_APPLICABLE} ({self.reason})"
+
+    @classmethod
+    def of(cls, value: Any) -> NotApplicable | None:
+        """The not-applicable object a typed result stands for: itself, or the reason of a result that keeps its own
+        ``applicable``/``reason`` fields (fragility, design, summary-data and omitted-variable results); None when
+        the result applies."""
+        if isinstance(value, NotApplicable):
+            return value
+        if isinstance(value, Mapping):
+            return cls.from_view(value)
+        if getattr(value, "applicable", True) is False:
+            reason = getattr(value, "reason", None)
+            return cls(str(reason) if reason else "no reason stated")
+        return None
+
+    @classmethod
+    def from_view(cls, view: Any) -> NotApplicable | None:
+        """The not-applicable object a stored JSON view stands for, or None when the view is not one.
+
+        Two shapes are stored: this class's ``{"status": "not applicable", "reason": ...}`` and the
+        ``{"applicable": false, "reason": ...}`` of results that keep their own applicable flag (the fragility,
+        design, summary-data and omitted-variable results); both read back as one object."""
+        if not isinstance(view, Mapping):
+            return cls.of(view)
+        if view.get("status") == NOT_APPLICABLE or view.get("applicable") is False:
+            reason = view.get("reason")
+            return cls(str(reason) if reason else "no reason stated")
+        return None

@@ -234,6 +234,8 @@ class Study(Entity, table=True):
     instruments: list[str] | None = _json()  # instrument slugs this study used or speaks to
     reported: dict[str, Any] | None = _json()  # point estimate, se, first-stage F and kind, n, clusters ...
     extra: dict[str, Any] | None = _json()  # other BibTeX fields, kept for a faithful round trip
+    # a published per-variant summary table attached for re-analysis: source, sha256, columns and rows as read
+    variant_table: dict[str, Any] | None = _json()
 
 
 class Critique(Entity, table=True):

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -391,6 +391,45 @@ def attach(
     if family in fams:
         return study
     return records.edit(session, study, {"families": sorted([*fams, family])}, actor=actor, action="attach")
+
+
+MAX_VARIANT_ROWS = 100_000
+
+
+def set_variant_table(
+    session: Session,
+    *,
+    actor: str,
+    key: str,
+    table: Mapping[str, Any] | None,
+    expected_version: int | None = None,
+) -> Study:
+    """Attach a published per-variant table to a study (replacing the one attached before), or remove it (None).
+
+    The table arrives checked by the caller (``workflows.studies.attach_variant_table``) as plain JSON: ``source``,
+    ``sha256``, ``columns`` and ``rows``; this stores it in the caller's transaction with an audit event."""
+    study = records.get(session, Study, key)
+    if table is None:
+        if study.variant_table is None:
+            raise InvalidInputError(f"study {key!r} has no per-variant table to remove.")
+        return records.edit(
+            session, study, {"variant_table": None}, actor=actor, action="remove variants",
+            expected_version=expected_version,
+        )  # fmt: skip
+    missing = [k for k in ("source", "sha256", "columns", "rows") if k not in table]
+    if missing or not isinstance(table.get("rows"), list):
+        raise InvalidInputError(
+            f"a per-variant table needs source, sha256, columns and a list of rows (missing {', '.join(missing)})."
+        )
+    if len(table["rows"]) > MAX_VARIANT_ROWS:
+        raise InvalidInputError(
+            f"the per-variant table has {len(table['rows']):,} rows; at most {MAX_VARIANT_ROWS:,} are kept with a "
+            "study. Attach the instruments' variants only."
+        )
+    return records.edit(
+        session, study, {"variant_table": dict(table)}, actor=actor, action="attach variants",
+        expected_version=expected_version,
+    )  # fmt: skip
 
 
 def critique(

@@ -45,6 +45,14 @@ METHOD_NOTES = (
     "effective-F critical values (exact with one instrument).",
 )
 
+VARIANT_NOTE = (
+    "**Per-variant tables.** When a study's published per-variant summary table is attached, it is re-analysed "
+    "with the summary-data estimators of the `variants` command (inverse-variance weighted with multiplicative "
+    "random effects, MR-Egger with its intercept, weighted median with a seeded bootstrap SE, Cochran's Q, mean F) "
+    "and the reported estimate is set against the IVW interval. These statistics can reveal some pleiotropy; they "
+    "cannot show that the variants satisfy exclusion."
+)
+
 
 def _num(value: float | None, digits: int = 4) -> str:
     if value is None:
@@ -174,12 +182,20 @@ def _body(summary: AuditSummary, inputs: AuditInputs, h: str) -> list[str]:
             lines.append(
                 f"Anderson–Rubin 99 % set: {_set_text(a.ar.set_99)}; reference {mt.inline(a.ar.reference)}."
             )
+        if a.variants is not None:
+            sha = mt.inline(a.variants.sha256[:12])
+            lines.append(
+                f"**Its per-variant table re-analysed** (SHA-256 {sha}…):\n"
+                + "\n".join(f"- {mt.inline(line)}" for line in a.variants.lines())
+            )
         for c in critiques.get(a.key, ()):
             by = f" (raised by {mt.inline(c.raised_by)})" if c.raised_by else ""
             note = f": {mt.inline(c.note)}" if c.note else ""
             lines.append(f"- Critique **{mt.inline(c.threat_code)}** {mt.inline(c.threat_title)}{by}{note}")
         details.append("\n\n".join(lines))
-    without = [(k, cite, crit) for k, cite, rep, crit in inputs.studies if not rep]
+    without = [
+        (k, cite, crit) for k, cite, rep, crit in inputs.studies if not rep and k not in inputs.variant_tables
+    ]
     if without:
         rows = [
             [mt.cell(cite or k), ", ".join(mt.inline(c.threat_code) for c in crit) or "–"]
@@ -189,7 +205,10 @@ def _body(summary: AuditSummary, inputs: AuditInputs, h: str) -> list[str]:
             f"{h}## Studies without reported statistics\n\n" + mt.table(["Study", "Critiques raised"], rows)
         )
     parts.extend(details)
-    parts.append(f"{h}# How the re-examination works\n\n" + "\n\n".join(f"- {n}" for n in METHOD_NOTES))
+    method_notes: tuple[str, ...] = METHOD_NOTES
+    if any(a.variants for a in summary.studies):
+        method_notes = (*METHOD_NOTES, VARIANT_NOTE)
+    parts.append(f"{h}# How the re-examination works\n\n" + "\n\n".join(f"- {n}" for n in method_notes))
     return parts
 
 
@@ -240,7 +259,7 @@ def audit_json(summary: AuditSummary, inputs: AuditInputs) -> dict[str, Any]:
     data["studies_without_statistics"] = [
         {"key": key, "citation": cite, "critiques": crit.get(key, [])}
         for key, cite, rep, _ in inputs.studies
-        if not rep
+        if not rep and key not in inputs.variant_tables
     ]
     data["cautions"] = [c.replace("**", "") for c in CAUTIONS]
     return data

@@ -492,10 +492,12 @@ class CritiqueInfo:
 
 @dataclass(frozen=True)
 class AuditInputs:
-    """Plain data for an audit: the scope's name, its studies with their reported values and critiques."""
+    """Plain data for an audit: the scope's name, its studies with their reported values and critiques, and the
+    per-variant tables attached to some of them (by study key, as stored)."""
 
     scope: str
     studies: tuple[tuple[str, str, dict[str, Any], tuple[CritiqueInfo, ...]], ...]
+    variant_tables: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)

@@ -50,6 +50,22 @@ def condition_text(cond: Mapping[str, Any]) -> str:
     return f"{cond.get('statistic')} {symbol} {right}"
 
 
+def _run_kinds(cond: Any) -> set[str]:
+    """The kinds of run a condition's qualified paths read (``fragility-influence:...``); empty for an estimate's."""
+    if not isinstance(cond, Mapping):
+        return set()
+    out: set[str] = set()
+    for key in ("all", "any"):
+        for item in cond.get(key) or []:
+            out |= _run_kinds(item)
+    if "not" in cond:
+        out |= _run_kinds(cond["not"])
+    for key in ("statistic", "compare_to"):
+        if isinstance(cond.get(key), str) and ":" in cond[key]:
+            out.add(cond[key].split(":", 1)[0])
+    return out
+
+
 def _code(text: str) -> str:
     """A code span for generated values (hashes, the power formula); anything else is escaped as plain text."""
     if not re.fullmatch(r"[A-Za-z0-9 ()*/^+=_,.\-]+", text) or text.startswith(mt.BADGE_PREFIX):
@@ -216,8 +232,10 @@ def _rules(rules: Sequence[Mapping[str, Any]]) -> str:
         lines = [f"### Rule {mt.inline(rule.get('id'))}"]
         if rule.get("description"):
             lines.append(mt.block(rule["description"]))
+        kinds = sorted(_run_kinds(rule.get("when")))
+        reads = f"- **Applies to:** {mt.inline(', '.join(kinds))} runs\n" if kinds else ""
         lines.append(
-            f"- **When:** {mt.inline(condition_text(rule.get('when') or {}))}\n"
+            reads + f"- **When:** {mt.inline(condition_text(rule.get('when') or {}))}\n"
             f"- **Then:** {mt.inline(rule.get('then'))}\n"
             f"- **Otherwise:** {mt.inline(rule.get('otherwise'))}"
         )

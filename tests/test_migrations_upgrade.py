@@ -3,7 +3,8 @@ code. tests/fixtures/registry-<rev>.sqlite holds one small registry per released
 built with tests/test_portability_roundtrip.py::build_rich_registry at schema 0001 (the first schema), then
 checkpointed, switched to journal_mode=DELETE and vacuumed with page_size=1024 so it is one small file;
 registry-0002 was built the same way at schema 0002 (its team edge age -> Y predates edge scopes), and
-registry-0003 the same way at schema 0003 (edge scopes, before primary runs)."""
+registry-0003 the same way at schema 0003 (edge scopes, before primary runs), and registry-0004 the same way at
+schema 0004 (primary runs, before studies kept a per-variant table)."""
 
 from __future__ import annotations
 
@@ -118,5 +119,27 @@ def test_a_schema_0001_registry_gets_the_threat_kind_column_and_the_current_cata
             assert CATALOG_ACTOR in actors
             inst = records.get(s, Instrument, "fibre")
             assert [t.code for _, t in thr.links_of(s, inst)] == ["T-ROUTE"]  # team links are untouched
+    finally:
+        registry.dispose()
+
+
+def test_a_schema_0004_registry_gets_an_empty_variant_table_per_study_and_takes_one(tmp_path: Path) -> None:
+    from sqlmodel import select
+
+    from ivdossier.registry.models import Study
+    from ivdossier.registry.studies import set_variant_table
+
+    copy = tmp_path / "old.sqlite"
+    shutil.copyfile(FIXTURES / "registry-0004.sqlite", copy)
+    registry = open_registry(str(copy))
+    try:
+        with registry.reading() as s:  # migration 0005 adds the column, empty for every existing study
+            before = {st.key: (st.variant_table, st.reported, st.version) for st in s.exec(select(Study))}
+        assert before == {"smith2020": (None, {"beta": 1.5}, 1), "lee2021": (None, None, 1)}
+        table = {"source": "v.csv", "sha256": "0" * 64, "columns": ["variant"], "rows": [["rs1"]]}
+        with registry.writing() as s:
+            set_variant_table(s, actor="ana", key="smith2020", table=table)
+        with registry.reading() as s:
+            assert records.get(s, Study, "smith2020").variant_table == table
     finally:
         registry.dispose()

@@ -67,6 +67,15 @@ def test_sections_in_order_and_rules_as_readable_conditions() -> None:
     )
     assert "| fibre | DG-E01 | Roads | exclusion | open | placebo-outcome (ivdossier falsify placebo) |" in md
     assert "Statistics cannot establish exclusion or exogeneity." in md and "need domain review" in md
+    # a rule over another kind of run says which runs it applies to; an estimate's rules say nothing more
+    assert "**Applies to:**" not in md
+    kinds = _sealed()
+    kinds["content"]["decision_rules"] = [{"id": "flips", "then": "a", "otherwise": "b", "when": {
+        "statistic": "fragility-influence:t_significance_flips", "op": "==", "value": 0}}]  # fmt: skip
+    assert (
+        "- **Applies to:** fragility-influence runs\n- **When:** fragility-influence:t\\_significance\\_flips = 0"
+        in plan_markdown(kinds, state="draft")
+    )
     assert condition_text({"all": [{"statistic": "a", "op": "<", "value": 1},
                                    {"not": {"statistic": "b", "op": "excludes", "value": 0}}]}) == (
         "(a < 1 and not b excludes 0)")  # fmt: skip

@@ -27,6 +27,23 @@ def test_the_stored_list_is_what_the_estimator_reports() -> None:
     assert probed == pq.QUANTITIES, f"the results changed; replace QUANTITIES with:\n{fresh}"
 
 
+def test_the_stored_lists_of_other_kinds_are_what_their_analyses_report() -> None:
+    from ivdossier.workflows.plan_quantities_kinds import KIND_QUANTITIES
+
+    probed = pq.probe_kind_quantities()  # reruns every analysis on its generated designs
+    lines = ["KIND_QUANTITIES: dict[str, tuple[Quantity, ...]] = {"]
+    for kind, qs in probed.items():
+        lines += [f"    {kind!r}: ("]
+        lines += [f"        Quantity({q.path!r}, {q.kind!r}, {q.may_be_empty}, {kind!r})," for q in qs]
+        lines += ["    ),"]
+    fresh = "\n".join([*lines, "}"])
+    assert probed == KIND_QUANTITIES, f"a result type changed; replace KIND_QUANTITIES with:\n{fresh}"
+    assert set(probed) == set(pq.RULE_KINDS)
+    from ivdossier.workflows.analyses import ANALYSES
+
+    assert set(pq.RULE_KINDS) <= {a.run_kind for a in ANALYSES.values()}  # every kind is one the table stores
+
+
 def _results(n_instruments: int) -> dict[str, Any]:
     from ivdossier.estimation.api import estimate
 
@@ -147,14 +164,29 @@ def test_freeze_refuses_a_column_the_plans_specs_do_not_use(reg: Registry) -> No
 
 
 def test_plan_quantities_lists_every_quantity(cli) -> None:  # type: ignore[no-untyped-def]
+    from ivdossier.workflows.plan_quantities_kinds import KIND_QUANTITIES
+
     code, out, err = cli("plan", "quantities", "--json")
     assert code == 0, err
     rows = json.loads(out)
-    assert [r["path"] for r in rows] == [q.path for q in pq.QUANTITIES]
+    expected = [q.path for q in pq.QUANTITIES] + [
+        f"{kind}:{q.path}" for kind in pq.RULE_KINDS for q in KIND_QUANTITIES[kind]
+    ]
+    assert [r["path"] for r in rows] == expected
+    assert {r["run_kind"] for r in rows} == {"estimate", *pq.RULE_KINDS}
+    code, out, _ = cli("plan", "quantities", "--run-kind", "variants", "--json")
+    assert code == 0 and [r["path"] for r in json.loads(out)] == [
+        f"variants:{q.path}" for q in KIND_QUANTITIES["variants"]
+    ]
+    code, _, err = cli("plan", "quantities", "--run-kind", "variant")
+    assert code != 0 and "--run-kind 'variant' is not known; use one of estimate, fragility-bootstrap" in err
     code, out, _ = cli("plan", "quantities")
     assert code == 0
     lines = out.splitlines()
-    assert lines[0].startswith(f"Quantities of an estimation run a decision rule may name ({len(rows)}).")
+    assert lines[0].startswith(f"Quantities a decision rule may name ({len(rows)}).")
+    groups = [ln for ln in lines if ln.endswith(" runs)") or " runs (" in ln]
+    assert [g.split(" runs (")[0] for g in groups] == ["estimate", *pq.RULE_KINDS]
+    assert "fragility-influence:t_significance_flips" in out and "variants:egger.intercept_p" in out
     row = next(ln for ln in lines if ln.startswith("strength.effective_f.statistic "))
     assert row.split()[1:] == ["number", "yes"]  # empty with two treatments (the LIML design)
     row = next(ln for ln in lines if ln.startswith("coef.<treatment> "))

@@ -43,12 +43,16 @@ def test_default_rules_evaluate_on_a_strong_and_a_weak_run() -> None:
     assert claim.holds is all(not (lo <= 0 <= hi) for lo, hi in ar_set)
 
 
-def test_missing_or_not_applicable_statistics_make_a_rule_not_evaluable() -> None:
+def test_not_applicable_statistics_make_a_rule_not_applicable_and_missing_ones_not_evaluable() -> None:
     rule = plan_rules.default_rules(2)[2]
     outcome = plan_rules.evaluate_rule(rule, _results(0.8))  # just identified: overid p-value is null
-    assert outcome.holds is None
-    assert outcome.action == "not evaluable: overid.p_value is empty in this run (not applicable)"
+    assert outcome.holds is None and outcome.status == "not applicable"
+    assert outcome.action == (
+        "overid.p_value: not applicable (just identified (1 instrument(s) for 1 endogenous regressor(s)): there "
+        "are no over-identifying restrictions to test)"
+    )
     missing = plan_rules.evaluate_rule(rule, {})
+    assert missing.status == "not evaluable"
     assert missing.action == "not evaluable: the run has no overid.p_value"
 
 

@@ -35,7 +35,8 @@ class Analysis:
     carry; ``result_type`` the Record class it returns, as "module:Class" under ``ivdossier.estimation``; ``roles`` the model-spec roles it reads (the
     rest of the spec is the shared adjustment: controls, fixed effects, clusters, weights, covariance, level);
     ``compute(frame, spec, options) -> (result, extra)``; ``findings`` one line per catalogue check it answers,
-    read from the typed result's attributes.
+    read from the typed result's attributes; ``reader`` the function that reads its data file into a DataFrame
+    when ``estimation.load_table`` is not the right one (a per-variant table may be tab-separated).
     """
 
     name: str
@@ -44,6 +45,7 @@ class Analysis:
     roles: tuple[str, ...]
     compute: Callable[[pd.DataFrame, ModelSpec | None, Options], Computed] | None
     findings: Mapping[str, Callable[[Any], str]] = field(default_factory=dict)
+    reader: Callable[[Path | str], pd.DataFrame] | None = None
 
     @property
     def command(self) -> str:
@@ -359,10 +361,11 @@ def _compliers(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Compu
 
 
 def _na_text(part: Any) -> str | None:
-    """The reason when a part of a result does not apply (either module's not-applicable record)."""
-    if getattr(part, "applicable", True) is False:
-        return f"not applicable: {getattr(part, 'reason', '')}"
-    return None
+    """The reason when a part of a result does not apply (any module's not-applicable record)."""
+    from ivdossier.vocabulary import NotApplicable
+
+    na = NotApplicable.of(part)
+    return None if na is None else f"not applicable: {na.reason}"
 
 
 def _leave_out(result: Any) -> str:
@@ -537,6 +540,12 @@ def _variants(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Comput
     return evidence, {}
 
 
+def _read_variants(path: Path | str) -> pd.DataFrame:
+    from ivdossier.estimation.variant_summary import read_variant_frame
+
+    return read_variant_frame(path)
+
+
 def _confounder(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
     from ivdossier.estimation.omitted_variable import IvRobustness, iv_robustness
 
@@ -690,6 +699,7 @@ ANALYSES: dict[str, Analysis] = {
                 "variant-strength": _variant_strength,
                 "variant-directionality": _variant_direction,
             },
+            _read_variants,
         ),
         Analysis(
             "confounder-strength",
@@ -750,5 +760,9 @@ def run_analysis(name: str, path: Path | str, spec: ModelSpec | None, **options:
     if compute is None:
         raise InvalidInputError(f"the analysis {name!r} reads no data file; call its function directly.")
     return analyse_file(
-        entry.run_kind, path, lambda frame: compute(frame, spec, options), entry.stored_spec(spec, options)
+        entry.run_kind,
+        path,
+        lambda frame: compute(frame, spec, options),
+        entry.stored_spec(spec, options),
+        load=entry.reader,
     )

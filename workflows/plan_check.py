@@ -20,6 +20,7 @@ from ivdossier.registry import plans as store
 from ivdossier.registry import records
 from ivdossier.registry.models import Dataset, Instrument, Plan, Run
 from ivdossier.reports.inputs import Difference
+from ivdossier.workflows.plan_quantities import ESTIMATE, rule_kind
 from ivdossier.workflows.plan_rules import RuleOutcome, evaluate_rule
 
 SPEC_FIELDS: tuple[str, ...] = (
@@ -313,6 +314,7 @@ class RunView:
     results: Mapping[str, Any]
     dataset_sha256: str | None = None
     created_at: datetime | None = None
+    run_kind: str = ESTIMATE
 
 
 @dataclass(frozen=True)
@@ -407,7 +409,11 @@ def _match_spec(specs: Sequence[Mapping[str, Any]], run_spec: Mapping[str, Any])
 def compare_runs(
     content: Mapping[str, Any], runs: Sequence[RunView], *, plan: str = "", frozen_at: datetime | None = None
 ) -> tuple[RunComparison, ...]:
-    """Deviations of each run from the plan's closest spec and sample, and the plan's rules on its results."""
+    """Deviations of each run from the plan's closest spec and sample, and the plan's rules of the run's kind on
+    its results.
+
+    A run of another kind than an estimate is compared on the spec fields it stores (a fragility or
+    confounder-strength run stores the model's roles and adjustment; a design or summary-data run none)."""
     specs = list(content.get("specs") or [])
     rules = list(content.get("decision_rules") or [])
     data = content.get("data") or {}
@@ -416,10 +422,14 @@ def compare_runs(
         spec = _match_spec(specs, run.spec)
         devs: list[Deviation] = []
         notes: list[str] = []
+        fields = [f for f in SPEC_FIELDS if run.run_kind == ESTIMATE or f in run.spec]
         if spec is None:
             notes.append("the plan has no estimation spec to compare with")
+        elif not fields:
+            spec = None
+            notes.append(f"a {run.run_kind} run stores no model spec, so only the decision rules apply to it")
         else:
-            for name in SPEC_FIELDS:
+            for name in fields:
                 planned, actual = _norm_field(name, spec.get(name)), _norm_field(name, run.spec.get(name))
                 if planned != actual:
                     devs.append(Deviation(run.slug, DEVIATION_KIND[name], name, planned, actual))
@@ -432,7 +442,7 @@ def compare_runs(
             devs.append(Deviation(run.slug, "sample", "dataset_sha256", planned_data, run.dataset_sha256))
         if frozen_at is not None and run.created_at is not None and _utc(run.created_at) < _utc(frozen_at):
             notes.append(f"run {run.slug} was made before the plan was frozen ({store.iso(frozen_at)})")
-        outcomes = tuple(evaluate_rule(r, run.results) for r in rules)
+        outcomes = tuple(evaluate_rule(r, run.results) for r in rules if rule_kind(r) == run.run_kind)
         out.append(
             RunComparison(
                 run.slug,
@@ -505,7 +515,21 @@ def compare_plan(session: Session, slug: str, run_slugs: Sequence[str]) -> PlanC
                 dict(run.results or {}),
                 dataset.sha256 if dataset else None,
                 run.created_at,
+                run.run_kind or ESTIMATE,
             )
         )
     runs = compare_runs(plan.content or {}, views, plan=slug, frozen_at=plan.frozen_at)
+    notes += unapplied_rules(plan.content or {}, [v.run_kind for v in views])
     return PlanComparison(plan.slug, plan.state, plan.sha256, runs, tuple(notes))
+
+
+def unapplied_rules(content: Mapping[str, Any], run_kinds: Sequence[str]) -> list[str]:
+    """A note for each decision rule that reads a kind of run none of the compared runs is."""
+    out = []
+    for rule in content.get("decision_rules") or []:
+        kind = rule_kind(rule)
+        if kind not in run_kinds:
+            out.append(
+                f"decision rule {rule.get('id')!r} reads {kind} runs and none was compared; add one to apply it"
+            )
+    return out

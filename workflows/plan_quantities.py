@@ -1,11 +1,17 @@
-"""The quantities a decision rule may name: the dotted paths an estimation run's results report, read from the
-estimator itself, and the check that a plan's rules name only those.
+"""The quantities a decision rule may name: the dotted paths each kind of run reports, read from the analyses
+themselves, and the check that a plan's rules name only those.
 
-The list is not written by hand: ``probe_quantities()`` runs the estimator on three small generated designs and
+A path of an estimation run is written bare (``strength.effective_f.statistic``); a path of another kind of run is
+qualified by its run kind (``fragility-influence:t_significance_flips``, ``variants:egger.intercept_p``), and a rule
+reads one kind of run: ``plan compare`` applies it to the compared runs of that kind.
+
+The lists are not written by hand: ``probe_quantities()`` runs the estimator on three small generated designs and
 collects every path of ``EstimationResult.to_dict()``, with the regressor and instrument names replaced by
-``<treatment>`` and ``<instrument>``; ``QUANTITIES`` is its output, kept here so that checking a rule costs nothing,
-and a test keeps the two equal. A rule names the real columns (``coef.video_share``); those are checked against the
-plan's specs. Other kinds of runs (sensitivity, compliers, power) are not covered: rules apply to estimation runs.
+``<treatment>`` and ``<instrument>``; ``probe_kind_quantities()`` does the same for every other kind in
+``RULE_KINDS`` on the designs of ``plan_probes``. ``QUANTITIES`` and ``plan_quantities_kinds.KIND_QUANTITIES`` are
+their output, kept in the source so that checking a rule costs nothing, and a test keeps them equal. A rule names the
+real columns (``coef.video_share``); those are checked against the plan's specs. Sensitivity, complier,
+falsification and power runs are not covered.
 """
 
 from __future__ import annotations
@@ -18,6 +24,19 @@ from typing import Any
 from ivdossier.errors import InvalidInputError
 
 TREATMENT, INSTRUMENT = "<treatment>", "<instrument>"
+ESTIMATE = "estimate"
+#: Run kinds whose quantities a rule may name besides an estimate (their lists are in plan_quantities_kinds).
+RULE_KINDS: tuple[str, ...] = (
+    "fragility-bootstrap",
+    "fragility-influence",
+    "fragility-subvector",
+    "design-decision-makers",
+    "design-exposure-share",
+    "variants",
+    "confounder-strength",
+)
+#: A list of records is addressed by the value of this key in each record (estimates.estimates.ujive.estimate).
+RECORD_ID = "method"
 # Column names of the generated designs; chosen so that no key of the results can be mistaken for them.
 _PROBE_TREATMENT, _PROBE_INSTRUMENTS = "probe_treatment_col", ("probe_instrument_a", "probe_instrument_b")
 _PROBE_TREATMENT_2, _PROBE_INSTRUMENT_3 = "probe_treatment_col_2", "probe_instrument_c"
@@ -25,14 +44,33 @@ _PROBE_TREATMENT_2, _PROBE_INSTRUMENT_3 = "probe_treatment_col_2", "probe_instru
 
 @dataclass(frozen=True)
 class Quantity:
-    """One path a run reports: its kind (number, whole number, yes/no, text, list) and whether it can be empty."""
+    """One path a run of ``run_kind`` reports: its kind (number, whole number, yes/no, text, list) and whether it
+    can be empty."""
 
     path: str
     kind: str
     may_be_empty: bool
+    run_kind: str = ESTIMATE
+
+    @property
+    def rule_path(self) -> str:
+        """The path as a rule writes it: bare for an estimate, ``run-kind:path`` otherwise."""
+        return qualified(self.run_kind, self.path)
 
     def to_dict(self) -> dict[str, Any]:
-        return {"path": self.path, "kind": self.kind, "may_be_empty": self.may_be_empty}
+        return {"run_kind": self.run_kind, "path": self.rule_path, "kind": self.kind,
+                "may_be_empty": self.may_be_empty}  # fmt: skip
+
+
+def qualified(run_kind: str, path: str) -> str:
+    """A path as a rule writes it for a run of ``run_kind``."""
+    return path if run_kind == ESTIMATE else f"{run_kind}:{path}"
+
+
+def split_path(path: str) -> tuple[str, str]:
+    """The run kind a rule's path reads and the path inside that run's results (an estimate when unqualified)."""
+    kind, sep, rest = path.partition(":")
+    return (kind, rest) if sep else (ESTIMATE, path)
 
 
 def _kind(value: Any) -> str | None:
@@ -51,8 +89,19 @@ def _kind(value: Any) -> str | None:
     return "list"
 
 
+def _records_by_id(value: Any) -> bool:
+    """Whether a list holds records each named by a distinct ``RECORD_ID`` (addressed by that name)."""
+    if not isinstance(value, list) or not value or not all(isinstance(v, Mapping) for v in value):
+        return False
+    ids = [v.get(RECORD_ID) for v in value]
+    return all(isinstance(i, str) and i and not i.isdigit() for i in ids) and len(set(ids)) == len(ids)
+
+
 def _leaves(value: Any, path: str = "") -> Iterable[tuple[str, Any]]:
-    if isinstance(value, Mapping):
+    if _records_by_id(value):
+        for item in value:
+            yield from _leaves(item, f"{path}.{item[RECORD_ID]}")
+    elif isinstance(value, Mapping):
         for key, sub in value.items():
             name = {_PROBE_TREATMENT: TREATMENT, _PROBE_TREATMENT_2: TREATMENT}.get(str(key), str(key))
             name = INSTRUMENT if name in (*_PROBE_INSTRUMENTS, _PROBE_INSTRUMENT_3) else name
@@ -90,8 +139,23 @@ def probe_results() -> list[dict[str, Any]]:
 def probe_quantities() -> tuple[Quantity, ...]:
     """Every path the estimator reports on the generated designs, sorted, with its kind and whether some design
     leaves it empty (the source of ``QUANTITIES``; a test keeps the two equal)."""
+    return collect_quantities(probe_results())
+
+
+def probe_kind_quantities() -> dict[str, tuple[Quantity, ...]]:
+    """Every path each kind of ``RULE_KINDS`` reports on its generated designs (``plan_probes``): the source of
+    ``plan_quantities_kinds.KIND_QUANTITIES``; a test keeps the two equal."""
+    from ivdossier.workflows.plan_probes import PROBES
+
+    return {kind: collect_quantities(PROBES[kind](), kind) for kind in RULE_KINDS}
+
+
+def collect_quantities(
+    designs: Sequence[Mapping[str, Any]], run_kind: str = ESTIMATE
+) -> tuple[Quantity, ...]:
+    """The leaf paths of several results of one kind of run, sorted, with their kinds and whether some result
+    leaves them empty."""
     seen: dict[str, list[Any]] = {}
-    designs = probe_results()
     for results in designs:
         for path, value in _leaves(results):
             seen.setdefault(path, []).append(value)
@@ -102,7 +166,7 @@ def probe_quantities() -> tuple[Quantity, ...]:
             continue
         kinds = [k for k in (_kind(v) for v in values) if k is not None]
         empty = len(values) < len(designs) or any(v is None for v in values)
-        out.append(Quantity(path, kinds[0] if kinds else "empty in every generated design", empty))
+        out.append(Quantity(path, kinds[0] if kinds else "empty in every generated design", empty, run_kind))
     return tuple(out)
 
 
@@ -274,9 +338,13 @@ QUANTITIES: tuple[Quantity, ...] = (
 )
 
 
-def quantities() -> tuple[Quantity, ...]:
-    """Every path an estimation run reports (``QUANTITIES``)."""
-    return QUANTITIES
+def quantities(run_kind: str | None = None) -> tuple[Quantity, ...]:
+    """Every path a run of ``run_kind`` reports (``QUANTITIES`` for an estimate), or of every kind when None."""
+    from ivdossier.workflows.plan_quantities_kinds import KIND_QUANTITIES
+
+    if run_kind is None:
+        return QUANTITIES + tuple(q for kind in RULE_KINDS for q in KIND_QUANTITIES[kind])
+    return QUANTITIES if run_kind == ESTIMATE else KIND_QUANTITIES.get(run_kind, ())
 
 
 def _matches(pattern: Sequence[str], parts: Sequence[str], names: Mapping[str, set[str]], kind: str) -> bool:
@@ -303,10 +371,12 @@ def _names(specs: Sequence[Mapping[str, Any]]) -> dict[str, set[str]]:
 
 
 def is_known(path: str, specs: Sequence[Mapping[str, Any]] = ()) -> bool:
-    """Whether a run's results report `path` (names bound to the plan's treatment and instrument columns)."""
+    """Whether a run reports `path` (qualified by its run kind unless it is an estimate's; names bound to the plan's
+    treatment and instrument columns)."""
+    run_kind, bare = split_path(path)
     names = _names(specs)
-    parts = path.split(".")
-    return any(_matches(q.path.split("."), parts, names, q.kind) for q in quantities())
+    parts = bare.split(".")
+    return any(_matches(q.path.split("."), parts, names, q.kind) for q in quantities(run_kind))
 
 
 def _paths(cond: Any) -> Iterable[str]:
@@ -322,12 +392,39 @@ def _paths(cond: Any) -> Iterable[str]:
             yield cond[key]
 
 
+def rule_kind(rule: Mapping[str, Any]) -> str:
+    """The kind of run a rule reads (every path of one rule names the same kind; ``check_rule_paths`` ensures it)."""
+    kinds = [split_path(p)[0] for p in _paths(rule.get("when"))]
+    return kinds[0] if kinds else ESTIMATE
+
+
+def _check_kinds(rule: Mapping[str, Any]) -> None:
+    where = f"decision rule {rule.get('id')!r}"
+    paths = list(_paths(rule.get("when")))
+    known = (ESTIMATE, *RULE_KINDS)
+    for path in paths:
+        kind = split_path(path)[0]
+        if kind not in known:
+            raise InvalidInputError(
+                f"{where} names {path!r}, but {kind!r} is not a kind of run a rule may read; qualify a path with "
+                f"one of {', '.join(RULE_KINDS)} (e.g. fragility-influence:t_significance_flips), or write an "
+                "estimate's path bare."
+            )
+    kinds = sorted({split_path(p)[0] for p in paths})
+    if len(kinds) > 1:
+        shown = "; ".join(f"{k}: {', '.join(p for p in paths if split_path(p)[0] == k)}" for k in kinds)
+        raise InvalidInputError(
+            f"{where} reads several kinds of run ({shown}); a rule is applied to one run at a time, so write one "
+            "rule per kind of run."
+        )
+
+
 def check_rule_paths(rules: Sequence[Mapping[str, Any]], specs: Sequence[Mapping[str, Any]] = ()) -> None:
-    """Refuse a rule that names a quantity no estimation run reports (suggesting the closest), or, given the plan's
-    specs, a treatment or instrument column they do not use."""
-    known = [q.path for q in quantities()]
+    """Refuse a rule that names a quantity no run of its kind reports (suggesting the closest), that mixes kinds of
+    run, or, given the plan's specs, a treatment or instrument column they do not use."""
     names = _names(specs)
     for rule in rules:
+        _check_kinds(rule)
         for path in _paths(rule.get("when")):
             if is_known(path, specs):
                 continue
@@ -337,9 +434,12 @@ def check_rule_paths(rules: Sequence[Mapping[str, Any]], specs: Sequence[Mapping
                     f"{where}, but the plan's specs have treatment(s) {', '.join(sorted(names[TREATMENT])) or 'none'} "
                     f"and instrument(s) {', '.join(sorted(names[INSTRUMENT])) or 'none'}; use those column names."
                 )
+            run_kind = split_path(path)[0]
+            known = [q.rule_path for q in quantities(run_kind)]
             close = difflib.get_close_matches(path, known, n=3, cutoff=0.6)
             hint = f" Did you mean {' or '.join(close)}?" if close else ""
+            what = "estimation" if run_kind == ESTIMATE else run_kind
             raise InvalidInputError(
-                f"{where}, which no estimation run reports.{hint} "
+                f"{where}, which no {what} run reports.{hint} "
                 "`ivdossier plan quantities` lists every quantity a rule may use."
             )

@@ -1,8 +1,11 @@
 """Decision rules of a pre-analysis plan as data: validation, evaluation on a run's results, and the defaults.
 
 A rule is ``{"id", "description", "when", "then", "otherwise"}``; ``when`` is a condition tree of ``all``/``any``/
-``not`` over comparison leaves ``{"statistic": dotted.path, "op": ..., "value" | "compare_to": ...}``. Evaluating a
-rule on a run gives its prescribed action, or "not evaluable" with the reason when a statistic is missing.
+``not`` over comparison leaves ``{"statistic": dotted.path, "op": ..., "value" | "compare_to": ...}``. A path of a
+run other than an estimate is qualified by its run kind (``fragility-influence:t_significance_flips``; see
+``plan_quantities``). Evaluating a rule on a run gives its prescribed action; when a statistic is empty because the
+part of the analysis that reports it does not apply to the run, the rule is "not applicable" with that part's
+reason; when a statistic is missing for another reason, "not evaluable" with the reason.
 """
 
 from __future__ import annotations
@@ -13,21 +16,73 @@ from dataclasses import dataclass
 from typing import Any
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.vocabulary import NOT_APPLICABLE, NotApplicable
 
 OPS: tuple[str, ...] = (">=", ">", "<=", "<", "==", "!=", "excludes", "includes")
+
+
+def _bare(path: str) -> str:
+    """The path inside the run's results (without the run-kind qualifier of ``plan_quantities``)."""
+    return path.partition(":")[2] if ":" in path else path
+
+
+def _step(node: Any, part: str) -> tuple[bool, Any]:
+    if isinstance(node, Mapping) and part in node:
+        return True, node[part]
+    if isinstance(node, list) and part.isdigit() and int(part) < len(node):
+        return True, node[int(part)]
+    if isinstance(node, list) and not part.isdigit():  # a record of a list named by its method
+        named = [v for v in node if isinstance(v, Mapping) and v.get("method") == part]
+        if len(named) == 1:
+            return True, named[0]
+    return False, None
 
 
 def lookup(results: Mapping[str, Any], path: str) -> tuple[bool, Any]:
     """Value at a dotted path in a run's results dict; (False, None) when any part is missing."""
     node: Any = results
-    for part in path.split("."):
-        if isinstance(node, Mapping) and part in node:
-            node = node[part]
-        elif isinstance(node, list) and part.isdigit() and int(part) < len(node):
-            node = node[int(part)]
-        else:
+    for part in _bare(path).split("."):
+        found, node = _step(node, part)
+        if not found:
             return False, None
     return True, node
+
+
+def _is_empty(value: Any) -> bool:
+    return value is None or value == "nan" or (isinstance(value, float) and math.isnan(value))
+
+
+def not_applicable_reason(results: Mapping[str, Any], path: str) -> str | None:
+    """Why the statistic at ``path`` is empty or missing, when the part of the analysis that reports it does not
+    apply to this run: the reason of the innermost enclosing not-applicable section (either stored shape, read as
+    ``vocabulary.NotApplicable``), or the ``<name>_reason`` an estimate stores beside an empty statistic."""
+    node: Any = results
+    reason: str | None = None
+    parts = _bare(path).split(".")
+    for i, part in enumerate(parts):
+        na = NotApplicable.from_view(node)
+        if na is not None:
+            reason = na.reason
+        if (
+            isinstance(node, Mapping)
+            and isinstance(node.get(f"{part}_reason"), str)
+            and node[f"{part}_reason"]
+        ):
+            empty_here = part not in node or _is_empty(node[part])
+            if empty_here:
+                return str(node[f"{part}_reason"])
+        parent = node
+        found, node = _step(node, part)
+        if not found:
+            return reason
+        if i == len(parts) - 1:
+            inner = NotApplicable.from_view(node)
+            if inner is not None:
+                return inner.reason
+            own = parent.get("reason") if isinstance(parent, Mapping) and part != "reason" else None
+            if reason is None and _is_empty(node) and isinstance(own, str) and own:
+                return own  # a section that states why its statistics are empty (overid when just identified)
+    return reason
 
 
 def _as_number(value: Any) -> float | None:
@@ -122,6 +177,7 @@ class Comparison:
     threshold_from: str | None
     result: bool | None
     reason: str | None = None
+    not_applicable: bool = False  # empty because the part of the analysis reporting it does not apply
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -132,6 +188,7 @@ class Comparison:
             "threshold_from": self.threshold_from,
             "result": self.result,
             "reason": self.reason,
+            "not_applicable": self.not_applicable,
         }
 
 
@@ -172,19 +229,27 @@ def _evaluate(cond: Mapping[str, Any], results: Mapping[str, Any], out: list[Com
     found, value = lookup(results, stat)
     ref = cond.get("compare_to")
     threshold = cond.get("value")
-    if not found:
-        out.append(Comparison(stat, None, op, threshold, ref, None, f"the run has no {stat}"))
+    if not found or _is_empty(value):
+        why = not_applicable_reason(results, stat)
+        if why is not None:
+            note = f"{stat}: {NOT_APPLICABLE} ({why})"
+            out.append(Comparison(stat, None, op, threshold, ref, None, note, not_applicable=True))
+        elif not found:
+            out.append(Comparison(stat, None, op, threshold, ref, None, f"the run has no {stat}"))
+        else:
+            out.append(Comparison(stat, None, op, threshold, ref, None, f"{stat} is empty in this run"))
         return None
     if ref is not None:
         ok, threshold = lookup(results, ref)
-        if not ok:
-            out.append(Comparison(stat, value, op, None, ref, None, f"the run has no {ref}"))
+        if not ok or _is_empty(threshold):
+            why = not_applicable_reason(results, ref)
+            if why is not None:
+                note = f"{ref}: {NOT_APPLICABLE} ({why})"
+                out.append(Comparison(stat, value, op, None, ref, None, note, not_applicable=True))
+            else:
+                missing = f"the run has no {ref}" if not ok else f"{ref} is empty in this run"
+                out.append(Comparison(stat, value, op, None, ref, None, missing))
             return None
-    if value is None:
-        out.append(
-            Comparison(stat, None, op, threshold, ref, None, f"{stat} is empty in this run (not applicable)")
-        )
-        return None
     result, reason = _compare(value, op, threshold)
     out.append(Comparison(stat, value, op, threshold, ref, result, reason))
     return result
@@ -192,32 +257,46 @@ def _evaluate(cond: Mapping[str, Any], results: Mapping[str, Any], out: list[Com
 
 @dataclass(frozen=True)
 class RuleOutcome:
-    """A decision rule applied to one run: whether its condition held and the action it prescribes."""
+    """A decision rule applied to one run: whether its condition held and the action it prescribes.
+
+    ``status`` is "holds", "fails", "not applicable" (a statistic it needs is empty because that part of the
+    analysis does not apply to the run; the action names the reason) or "not evaluable" (a statistic is missing
+    for another reason)."""
 
     rule_id: str
     holds: bool | None
     action: str
     comparisons: tuple[Comparison, ...]
+    status: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         return {
             "rule": self.rule_id,
             "holds": self.holds,
+            "status": self.status,
             "action": self.action,
             "comparisons": [c.to_dict() for c in self.comparisons],
         }
 
 
 def evaluate_rule(rule: Mapping[str, Any], results: Mapping[str, Any]) -> RuleOutcome:
-    """Apply one rule to a run's results; a missing statistic makes it 'not evaluable' with the reason."""
+    """Apply one rule to a run's results; a statistic that does not apply makes it 'not applicable' with the
+    reason, a statistic missing for another reason 'not evaluable'."""
     comps: list[Comparison] = []
     holds = _evaluate(rule["when"], results, comps)
     if holds is None:
-        reasons = "; ".join(c.reason for c in comps if c.reason) or "a statistic is missing"
-        action = f"not evaluable: {reasons}"
+        undecided = [c for c in comps if c.result is None]
+        if undecided and all(c.not_applicable for c in undecided):
+            status = NOT_APPLICABLE
+            action = "; ".join(c.reason or "" for c in undecided)
+        else:
+            status = "not evaluable"
+            reasons = "; ".join(c.reason for c in comps if c.reason) or "a statistic is missing"
+            action = f"not evaluable: {reasons}"
     else:
+        status = "holds" if holds else "fails"
         action = str(rule["then"] if holds else rule["otherwise"])
-    return RuleOutcome(str(rule["id"]), holds, action, tuple(comps))
+    return RuleOutcome(str(rule["id"]), holds, action, tuple(comps), status)
 
 
 def default_rules(n_instruments: int) -> list[dict[str, Any]]:

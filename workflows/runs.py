@@ -46,13 +46,19 @@ class FileRun:
 
 
 def analyse_file(
-    kind: str, path: Path | str, compute: Callable[[Any], tuple[Any, dict[str, Any]]], spec: Mapping[str, Any]
+    kind: str,
+    path: Path | str,
+    compute: Callable[[Any], tuple[Any, dict[str, Any]]],
+    spec: Mapping[str, Any],
+    *,
+    load: Callable[[Path | str], Any] | None = None,
 ) -> FileRun:
-    """Load the file, run `compute(frame) -> (result, extra)` and record fingerprint, spec and timing."""
+    """Load the file (with ``load``, by default ``estimation.load_table``), run `compute(frame) -> (result, extra)`
+    and record fingerprint, spec and timing."""
     from ivdossier.estimation import file_sha256, load_table
 
     start = time.perf_counter()
-    frame = load_table(path)
+    frame = (load or load_table)(path)
     result, extra = compute(frame)
     seconds = time.perf_counter() - start
     return FileRun(

@@ -6,6 +6,7 @@ import csv
 import io
 from collections import Counter
 from collections.abc import Mapping
+from pathlib import Path
 from typing import Any
 
 from sqlmodel import Session
@@ -21,7 +22,7 @@ from ivdossier.estimation.audit import (
 )
 from ivdossier.registry import records
 from ivdossier.registry.models import Study
-from ivdossier.registry.studies import attach, citation, critique_rows, list_studies
+from ivdossier.registry.studies import attach, citation, critique_rows, list_studies, set_variant_table
 from ivdossier.reports.inputs import AuditInputs, CritiqueInfo
 
 
@@ -94,6 +95,63 @@ def import_stats_csv(session: Session, *, actor: str, text: str) -> list[Study]:
     return out
 
 
+MAX_VARIANT_FILE_BYTES = 20_000_000
+
+
+def variant_table_record(path: str | Path) -> dict[str, Any]:
+    """Read and check a per-variant table file (CSV, TSV, .txt sniffed; see ``read_variant_frame``) and return
+    what a study stores: the file name and SHA-256, the known columns as read and the rows as JSON values.
+
+    Every check of the ``variants`` command applies (missing columns, zero SEs, duplicate variants, alleles that
+    cannot be harmonised), so a table that cannot be re-analysed is never stored."""
+    import math
+
+    from ivdossier.estimation import file_sha256
+    from ivdossier.estimation.variant_summary import (
+        ALLELE_PAIRS,
+        OPTIONAL_NUMERIC,
+        REQUIRED_COLUMNS,
+        read_variant_frame,
+        variant_table,
+    )
+
+    size = Path(path).stat().st_size if Path(path).is_file() else 0
+    if size > MAX_VARIANT_FILE_BYTES:
+        raise InvalidInputError(
+            f"{str(path)!r} is {size:,} bytes; a study keeps a per-variant table of at most "
+            f"{MAX_VARIANT_FILE_BYTES:,} bytes. Keep the rows of the study's instruments only."
+        )
+    frame = read_variant_frame(path)
+    table = variant_table(frame, source=Path(path).name)  # raises the variants command's errors
+    known = {*REQUIRED_COLUMNS, *OPTIONAL_NUMERIC, *(name for pair in ALLELE_PAIRS for name in pair)}
+    columns = [str(c) for c in frame.columns if str(c).strip().lower() in known]
+
+    def plain(value: Any) -> Any:
+        if hasattr(value, "item"):
+            value = value.item()
+        return None if isinstance(value, float) and math.isnan(value) else value
+
+    rows = [[plain(v) for v in row] for row in frame[columns].itertuples(index=False, name=None)]
+    return {"source": Path(path).name, "sha256": file_sha256(path), "n_variants": table.n_variants,
+            "columns": columns, "rows": rows}  # fmt: skip
+
+
+def attach_variant_table(
+    session: Session, *, actor: str, key: str, path: str | Path, expected_version: int | None = None
+) -> Study:
+    """Attach a published study's per-variant table (checked first; replaces an earlier one) so the literature
+    audit re-analyses it; one audited write in the caller's transaction."""
+    records.get(session, Study, key)
+    return set_variant_table(
+        session, actor=actor, key=key, table=variant_table_record(path), expected_version=expected_version
+    )
+
+
+def remove_variant_table(session: Session, *, actor: str, key: str) -> Study:
+    """Remove the per-variant table attached to a study (audited)."""
+    return set_variant_table(session, actor=actor, key=key, table=None)
+
+
 def critiques_of(session: Session, study: Study) -> list[CritiqueInfo]:
     """Critiques recorded against one study, ordered by threat code."""
     return [
@@ -120,13 +178,18 @@ def audit_inputs(
     return AuditInputs(
         scope,
         tuple((s.key, citation(s), dict(s.reported or {}), tuple(critiques_of(session, s))) for s in chosen),
+        {s.key: dict(s.variant_table) for s in chosen if s.variant_table},
     )
 
 
 def build_audit(inputs: AuditInputs, *, top: int = 5) -> AuditSummary:
-    """Audit every study in scope that has reported statistics and count the threats raised against them."""
+    """Audit every study in scope that has reported statistics or a per-variant table (re-analysed beside the
+    reported estimate) and count the threats raised against them."""
+    tables = inputs.variant_tables
     audits = [
-        audit_study(key, reported, citation=cite) for key, cite, reported, _ in inputs.studies if reported
+        audit_study(key, reported, citation=cite, variants=tables.get(key))
+        for key, cite, reported, _ in inputs.studies
+        if reported or key in tables
     ]
     counts: Counter[str] = Counter()
     meta: dict[str, CritiqueInfo] = {}
