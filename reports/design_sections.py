@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from pathlib import PurePath
 from typing import Any
 
 from ivdossier.estimation.design_results import DecisionMakerDesign, ExposureShareDesign
@@ -24,6 +25,12 @@ __all__ = ["design_figures", "design_sections"]
 
 #: Run kinds shown here, in section order.
 KINDS = ("design-decision-makers", "design-exposure-share", "variants", "confounder-strength")
+EMPTY_SET = (
+    "An empty set means that no single effect fits every decision-maker's data: their differences in outcomes "
+    "are not proportional to their differences in treatment. With valid instruments and one effect for every "
+    "case this is unlikely; a path from the decision-maker to the outcome other than the treatment, or effects "
+    "that differ across cases, can produce it."
+)
 LIMITS = "Statistics cannot establish exclusion or exogeneity. Conclusions for policy or clinical use need domain review."
 
 
@@ -69,7 +76,12 @@ def _decision_makers(run: RunInfo, r: DecisionMakerDesign) -> str:
         f"(cases each from {min(r.cases, default=0):,} to {max(r.cases, default=0):,}).",
         "",
         f"Leave-out measure: {mt.inline(rec.description)}."
-        + (f" Written with the data to `{mt.inline(r.derived_file)}`." if r.derived_file else ""),
+        + (
+            f" Written with the data to `{mt.inline(PurePath(r.derived_file).name)}` (path, recipe and SHA-256 "
+            "in the run's provenance)."
+            if r.derived_file
+            else ""
+        ),
     ]
     if r.small:
         lines += [
@@ -106,6 +118,8 @@ def _decision_makers(run: RunInfo, r: DecisionMakerDesign) -> str:
             f"{_set(ar.confidence_set)}; test of β = {_num(ar.beta0)}: p = {_num(ar.p_value)}. Strength "
             f"{_num(ar.strength)}, {strong} the cut-off {_num(ar.strength_cutoff)}.",
         ]
+        if not ar.confidence_set:
+            lines += ["", EMPTY_SET]
     else:
         lines += ["", f"Jackknife Anderson–Rubin: not applicable ({mt.inline(ar.reason or '')})."]
     return "\n".join([*lines, "", mt.inline(r.caution)])
