@@ -3,7 +3,8 @@ figures they refer to.
 
 Decision-maker designs (leave-out measure, JIVE1/UJIVE beside 2SLS, jackknife Anderson–Rubin), exposure-share
 designs (Rotemberg weights with a figure, AKM/AKM0, shock level), per-variant summary evidence and the
-robustness value (the sections and figures of :mod:`variant_sections` and :mod:`variant_plots`). The one-line
+robustness value (the sections and figures of :mod:`variant_sections` and :mod:`variant_plots`), and the
+reporting checklist of a genetic-variant instrument (:mod:`variant_checklist`, filled from the registry and runs). The one-line
 findings under the threats come from the table of analyses; these sections show the numbers behind them.
 """
 
@@ -167,6 +168,7 @@ def _exposure(run: RunInfo, r: ExposureShareDesign) -> str:
 
 def design_sections(inp: DossierInput) -> tuple[str, ...]:
     """One Markdown section per kind of design or summary-data run attached to the instrument (newest run)."""
+    from ivdossier.reports.variant_checklist import checklist_markdown, dossier_checklist
     from ivdossier.reports.variant_sections import robustness_markdown, summary_evidence_markdown
 
     out: list[str] = []
@@ -201,7 +203,10 @@ def design_sections(inp: DossierInput) -> tuple[str, ...]:
                 + f"\n\nRun `{mt.inline(run.slug)}`.\n\n"
                 + mt.figure("robustness-contour", "Adjusted estimate over the strength of a confounder.")
             )
-    if out:
+    checklist = dossier_checklist(inp)
+    if checklist is not None:
+        out.append(checklist_markdown(checklist).rstrip())  # it states the limits itself
+    elif out:
         out.append(LIMITS)
     return tuple(out)
 
