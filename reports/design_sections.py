@@ -11,6 +11,7 @@ findings under the threats come from the table of analyses; these sections show 
 from __future__ import annotations
 
 import math
+import statistics
 from collections.abc import Sequence
 from pathlib import PurePath
 from typing import Any
@@ -74,7 +75,8 @@ def _decision_makers(run: RunInfo, r: DecisionMakerDesign) -> str:
         "## Decision-maker design",
         "",
         f"Run `{mt.inline(run.slug)}`: {rec.n_cases:,} cases, {rec.n_decision_makers:,} decision-makers "
-        f"(cases each from {min(r.cases, default=0):,} to {max(r.cases, default=0):,}).",
+        f"(cases each from {min(r.cases, default=0):,} to {max(r.cases, default=0):,}, median "
+        f"{_num(statistics.median(r.cases) if r.cases else float('nan'))}).",
         "",
         f"Leave-out measure: {mt.inline(rec.description)}."
         + (
