@@ -95,6 +95,13 @@ def _decision_makers(run: RunInfo, r: DecisionMakerDesign) -> str:
             + ".",
         ]
     level = f"{100 * (1 - r.estimates.alpha):g}%"
+    loo = r.leave_out_estimate
+    if loo is not None:
+        lines += [
+            "",
+            f"2SLS with the leave-out measure as the one instrument: {_num(loo.estimate)} (std. error "
+            f"{_num(loo.std_error)}), {level} interval [{_num(loo.ci_low)}, {_num(loo.ci_high)}].",
+        ]
     rows = [
         [
             mt.cell(e.method.upper()),
