@@ -11,7 +11,9 @@ Mikusheva and Sun 2022) of
   1 exactly, so any excess rejection it shows is the shape of the numerator's distribution, not the variance
   estimator;
 
-and the exact skewness of the oracle statistic for Gaussian errors (third cumulant of a quadratic form xi'B xi,
+the mean of the implemented variance estimate over the exact variance of the numerator (the cross-fit Phi-hat is
+unbiased when the errors are independent with mean zero, up to the O(1/n) effect of partialling the intercept:
+E[e_i (M e)_i e_j (M e)_j] = (M_ii M_jj + M_ij^2) s_i s_j for i != j), and the exact skewness of the oracle statistic for Gaussian errors (third cumulant of a quadratic form xi'B xi,
 B = H A H with A the zero-diagonal P and H = diag(sqrt(s)): 8 tr(B^3) / (2 tr(B^2))^{3/2}), with the one-term
 Cornish-Fisher (Edgeworth) approximation of the rejection rate that this skewness implies,
 1 - Phi(z - g (z^2 - 1) / 6). A right-skewed numerator makes a one-sided upper-tail normal test over-reject, by an
@@ -43,8 +45,11 @@ def projection(n_dm: int) -> np.ndarray:
     return (dm[:, None] == dm[None, :]) / CASES_PER_CLERK - 1.0 / n
 
 
-def oracle(e: np.ndarray, s: np.ndarray, dm: np.ndarray, n_dm: int) -> float:
-    """Numerator with the true errors over its exact standard deviation given the variances s (grouped sums)."""
+def oracle(e: np.ndarray, s: np.ndarray, dm: np.ndarray, n_dm: int) -> tuple[float, float, float]:
+    """(oracle statistic, the implementation's numerator, the exact variance of the numerator) for errors e
+    with variances s: the numerator with the true errors over its exact standard deviation (grouped sums); the
+    implementation partials the intercept out of e first, which leaves e'Pe unchanged (P annihilates it) but
+    changes the removed diagonal."""
     n, m = e.size, CASES_PER_CLERK
     sg, s2g = np.bincount(dm, weights=e, minlength=n_dm), np.bincount(dm, weights=e * e, minlength=n_dm)
     num = np.sum(sg * sg - s2g) / m - (e.sum() ** 2 - np.sum(e * e)) / n
@@ -52,7 +57,10 @@ def oracle(e: np.ndarray, s: np.ndarray, dm: np.ndarray, n_dm: int) -> float:
     within = np.sum(vg * vg - v2g)  # sum over i != j in the same group of s_i s_j
     total = s.sum() ** 2 - np.sum(s * s)
     var = 2.0 * ((1.0 / m - 1.0 / n) ** 2 * within + (total - within) / n**2)
-    return float(num / np.sqrt(var))
+    ec = e - e.mean()
+    p_diag = 1.0 / m - 1.0 / n
+    num_impl = num + p_diag * np.sum(e * e) - p_diag * np.sum(ec * ec)
+    return float(num / np.sqrt(var)), float(num_impl), float(var)
 
 
 def exact_skewness(p: np.ndarray, s: np.ndarray) -> float:
@@ -77,7 +85,7 @@ def main() -> None:
     )
     print(
         f"{'K':>5}{'as implemented':>16}{'MC s.e.':>9}{'oracle var.':>13}{'MC s.e.':>9}"
-        f"{'skew (sim)':>12}{'skew (exact)':>14}{'Edgeworth':>11}"
+        f"{'E[Phi^]/Phi':>13}{'skew (sim)':>12}{'skew (exact)':>14}{'Edgeworth':>11}"
     )
     t0 = time.perf_counter()
     for k in args.ks:
@@ -86,7 +94,7 @@ def main() -> None:
         dm = np.repeat(np.arange(n_dm), CASES_PER_CLERK)
         s_design = 0.25 + 1.5 * rng.uniform(size=n)  # one draw of the variances for the exact skewness
         g = exact_skewness(projection(n_dm), s_design) if n <= 2500 else float("nan")
-        feasible, orc = np.empty(r), np.empty(r)
+        feasible, orc, ratio = np.empty(r), np.empty(r), np.empty(r)
         for rep in range(r):
             s = 0.25 + 1.5 * rng.uniform(size=n)  # heteroskedasticity as in sim_jackknife_ar_size.py
             e = np.sqrt(s) * rng.normal(size=n)
@@ -96,13 +104,14 @@ def main() -> None:
                 df, outcome="visits", treatment="video", decision_maker="clerk", beta0=BETA
             )
             feasible[rep] = ar.statistic
-            orc[rep] = oracle(e, s, dm, n_dm)
+            orc[rep], num_impl, var = oracle(e, s, dm, n_dm)
+            ratio[rep] = (num_impl / ar.statistic) ** 2 / var  # K Phi-hat over the exact variance
         p_f, p_o = float(np.mean(feasible > z)), float(np.mean(orc > z))
         se_f, se_o = np.sqrt(p_f * (1 - p_f) / r), np.sqrt(p_o * (1 - p_o) / r)
         edgeworth = float(stats.norm.sf(z - g * (z * z - 1) / 6.0))
         print(
             f"{k:>5}{p_f:>16.3f}{se_f:>9.3f}{p_o:>13.3f}{se_o:>9.3f}"
-            f"{stats.skew(orc):>12.2f}{g:>14.2f}{edgeworth:>11.3f}"
+            f"{ratio.mean():>13.3f}{stats.skew(orc):>12.2f}{g:>14.2f}{edgeworth:>11.3f}"
         )
     print(f"elapsed {time.perf_counter() - t0:.1f} s")
 
