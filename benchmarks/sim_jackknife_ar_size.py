@@ -5,7 +5,8 @@ instruments are K clerk dummies, K = 50, 100, 200), a weak first stage (concentr
 the many-weak regime of Mikusheva and Sun 2022, and a less weak one, mu^2 = K), strong endogeneity (corr(e, v) = 0.8) and heteroskedastic
 errors. H0 is true in every replicate; a valid 5% test rejects about 5% of the time. Under H0 the jackknife AR
 statistic does not involve the first stage, so the two rows of one K are independent replications of its size. Each rate is printed with
-its Monte Carlo standard error sqrt(p (1 - p) / R).
+its Monte Carlo standard error sqrt(p (1 - p) / R). Why the jackknife AR sits a little above 5% at K = 50 (a
+right-skewed numerator, not an implementation error): benchmarks/sim_jackknife_ar_finite_sample.py.
 
     .venv/bin/python benchmarks/sim_jackknife_ar_size.py              # R = 1000 replicates per K (about a minute)
     .venv/bin/python benchmarks/sim_jackknife_ar_size.py --reps 300   # quicker
@@ -75,7 +76,7 @@ def main() -> None:
         p_ar, p_t = rej_ar / r, rej_t / r
         se_ar, se_t = np.sqrt(p_ar * (1 - p_ar) / r), np.sqrt(p_t * (1 - p_t) / r)
         print(
-            f"{k:>5}{(k + 1) * CASES_PER_CLERK:>7}{p_ar:>14.3f}{se_ar:>9.3f}{p_t:>13.3f}{se_t:>9.3f}"
+            f"{k:>5}{(k + 1) * CASES_PER_CLERK:>7}{mu2:>8.1f}{p_ar:>14.3f}{se_ar:>9.3f}{p_t:>13.3f}{se_t:>9.3f}"
             f"{f_sum / r:>9.2f}"
         )
     print(f"nominal level 0.05; elapsed {time.perf_counter() - t0:.1f} s")

@@ -12,8 +12,10 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.absorb import partial_out
 from ivdossier.estimation.exposure_share import CAUTION as EXPOSURE_CAUTION
 from ivdossier.estimation.exposure_share import (
     ExposureRobustIV,
@@ -26,7 +28,11 @@ from ivdossier.estimation.exposure_share import (
     rotemberg_weights,
     shock_level_iv,
 )
-from ivdossier.estimation.jackknife_iv import JackknifeIVResult, decision_maker_jackknife_iv
+from ivdossier.estimation.jackknife_iv import (
+    JackknifeEstimate,
+    JackknifeIVResult,
+    decision_maker_jackknife_iv,
+)
 from ivdossier.estimation.leave_out import (
     CAUTION,
     DEFAULT_MIN_CASES,
@@ -39,8 +45,9 @@ from ivdossier.jsonsafe import Record, json_safe
 
 @dataclass(frozen=True)
 class DecisionMakerDesign(Record):
-    """The leave-out propensity (summarised; the column itself is written to a derived data file), JIVE1 and
-    UJIVE beside 2SLS on the decision-maker dummies, and the jackknife Anderson–Rubin test."""
+    """The leave-out propensity (summarised; the column itself is written to a derived data file), 2SLS with that
+    propensity as the one instrument, JIVE1 and UJIVE beside 2SLS on the decision-maker dummies, and the
+    jackknife Anderson–Rubin test."""
 
     recipe: PropensityRecipe
     decision_makers: tuple[str, ...]
@@ -52,10 +59,14 @@ class DecisionMakerDesign(Record):
     anderson_rubin: JackknifeAR
     derived_file: str = ""
     caution: str = CAUTION
+    leave_out_estimate: JackknifeEstimate | None = (
+        None  # 2SLS with the leave-out propensity (runs before it: None)
+    )
 
     def to_dict(self) -> dict[str, Any]:
         out = {
             "kind": "decision_maker_design",
+            "leave_out_2sls": self.leave_out_estimate.to_dict() if self.leave_out_estimate else None,
             "propensity": {
                 "recipe": self.recipe.to_dict(),
                 "mean": self.instrument_mean,
@@ -88,6 +99,12 @@ class DecisionMakerDesign(Record):
                 f"  flagged: {len(self.small)} decision-maker(s) with fewer than {r.min_cases} cases: "
                 + ", ".join(self.small[:8])
                 + (" ..." if len(self.small) > 8 else "")
+            )
+        if self.leave_out_estimate is not None:
+            e = self.leave_out_estimate
+            lines.append(
+                f"  2SLS with the leave-out measure: {e.estimate:.4g} (se {e.std_error:.4g}), "
+                f"[{e.ci_low:.4g}, {e.ci_high:.4g}]"
             )
         lines += ["  " + line for line in str(self.estimates).splitlines() if "caution" not in line.lower()]
         lines += ["  " + line for line in str(self.anderson_rubin).splitlines()[:-1]]
@@ -137,6 +154,14 @@ def decision_maker_design(
         data, outcome=outcome, treatment=treatment, decision_maker=decision_maker, absorb=absorb, beta0=beta0,
         alpha=alpha,
     )  # fmt: skip
+    loo = leave_out_2sls(
+        data[outcome].to_numpy(dtype=np.float64),
+        data[treatment].to_numpy(dtype=np.float64),
+        prop.values,
+        controls=data[list(controls)].to_numpy(dtype=np.float64) if controls else None,
+        fe_codes=[pd.factorize(data[absorb], sort=False)[0].astype(np.int64)] if absorb else [],
+        alpha=alpha,
+    )
     result = DecisionMakerDesign(
         recipe=prop.recipe,
         decision_makers=tuple(str(d) for d in prop.decision_makers),
@@ -146,8 +171,39 @@ def decision_maker_design(
         instrument_sd=float(np.std(prop.values)),
         estimates=jive,
         anderson_rubin=ar,
+        leave_out_estimate=loo,
     )
     return result, prop.as_series()
+
+
+def leave_out_2sls(
+    y: np.ndarray,
+    x: np.ndarray,
+    z: np.ndarray,
+    *,
+    controls: np.ndarray | None = None,
+    fe_codes: Sequence[np.ndarray] = (),
+    alpha: float = 0.05,
+) -> JackknifeEstimate:
+    """Just-identified 2SLS of ``y`` on ``x`` with the one instrument ``z`` (e.g. a leave-out propensity), an
+    intercept, ``controls`` and fixed-effect cells partialled out (Frisch-Waugh-Lovell).
+
+    b = z~'y~ / z~'x~; the standard error is heteroskedasticity-robust with no small-sample factor and treats
+    ``z`` as fixed, as for the jackknife estimators: sqrt(sum_i z~_i^2 u_i^2) / |z~'x~| with u = y~ - b x~.
+    """
+    cols = np.column_stack([y, x, z]).astype(np.float64)
+    yt, xt, zt = (
+        partial_out(cols, controls=controls, fe_codes=list(fe_codes)).columns[:, j] for j in range(3)
+    )
+    denom = float(zt @ xt)
+    if not np.isfinite(denom) or abs(denom) <= 1e-12 * float(np.linalg.norm(zt) * np.linalg.norm(xt)):
+        nan = float("nan")
+        return JackknifeEstimate("2sls-leave-out", nan, nan, nan, nan)
+    b = float(zt @ yt) / denom
+    u = yt - b * xt
+    se = float(np.sqrt(np.sum((zt * u) ** 2)) / abs(denom))
+    crit = float(stats.norm.ppf(1 - alpha / 2))
+    return JackknifeEstimate("2sls-leave-out", b, se, b - crit * se, b + crit * se)
 
 
 @dataclass(frozen=True)

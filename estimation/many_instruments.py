@@ -9,6 +9,16 @@ M = I - P and e = y - x b0:
 
 is asymptotically standard normal under H0 with many (K -> infinity), possibly weak instruments and
 heteroskedasticity; the test rejects when AR(b0) exceeds the standard-normal 1 - alpha quantile (one-sided).
+The formulas above and the one-sided rejection rule are written from memory of the paper (recalled; the stored
+public material searched for this project holds the paper's abstract but not its formulas, so they could not be
+checked against its text). The tests check the code against these formulas written with explicit matrices.
+
+Finite samples: the numerator is a quadratic form in the errors whose distribution is skewed to the right, so
+the one-sided normal test over-rejects somewhat with tens of instruments, and the estimated Phi adds a little
+more; both shrink as K grows (benchmarks/sim_jackknife_ar_finite_sample.py: with K = 50 clerk dummies of 10
+cases each, 6.6% as implemented and 5.9% with the exact variance, Monte Carlo s.e. 0.4 points; the exact skewness
+of the numerator, 0.34, predicts 6.1% by a one-term Edgeworth correction; the mean of the estimated variance is
+within 1% of the exact one, so the rest comes from its sampling noise, not from a bias).
 The strength measure F~ is the same statistic with e replaced by x:
 F~ = sum_{i != j} P_ij x_i x_j / sqrt(K * Upsilon). AR(b) tends to F~ as |b| grows, so the confidence set is
 unbounded exactly when F~ does not exceed the critical value.

@@ -3,14 +3,17 @@ figures they refer to.
 
 Decision-maker designs (leave-out measure, JIVE1/UJIVE beside 2SLS, jackknife Anderson–Rubin), exposure-share
 designs (Rotemberg weights with a figure, AKM/AKM0, shock level), per-variant summary evidence and the
-robustness value (the sections and figures of :mod:`variant_sections` and :mod:`variant_plots`). The one-line
+robustness value (the sections and figures of :mod:`variant_sections` and :mod:`variant_plots`), and the
+reporting checklist of a genetic-variant instrument (:mod:`variant_checklist`, filled from the registry and runs). The one-line
 findings under the threats come from the table of analyses; these sections show the numbers behind them.
 """
 
 from __future__ import annotations
 
 import math
+import statistics
 from collections.abc import Sequence
+from pathlib import PurePath
 from typing import Any
 
 from ivdossier.estimation.design_results import DecisionMakerDesign, ExposureShareDesign
@@ -24,6 +27,12 @@ __all__ = ["design_figures", "design_sections"]
 
 #: Run kinds shown here, in section order.
 KINDS = ("design-decision-makers", "design-exposure-share", "variants", "confounder-strength")
+EMPTY_SET = (
+    "An empty set means that no single effect fits every decision-maker's data: their differences in outcomes "
+    "are not proportional to their differences in treatment. With valid instruments and one effect for every "
+    "case this is unlikely; a path from the decision-maker to the outcome other than the treatment, or effects "
+    "that differ across cases, can produce it."
+)
 LIMITS = "Statistics cannot establish exclusion or exogeneity. Conclusions for policy or clinical use need domain review."
 
 
@@ -66,10 +75,16 @@ def _decision_makers(run: RunInfo, r: DecisionMakerDesign) -> str:
         "## Decision-maker design",
         "",
         f"Run `{mt.inline(run.slug)}`: {rec.n_cases:,} cases, {rec.n_decision_makers:,} decision-makers "
-        f"(cases each from {min(r.cases, default=0):,} to {max(r.cases, default=0):,}).",
+        f"(cases each from {min(r.cases, default=0):,} to {max(r.cases, default=0):,}, median "
+        f"{_num(statistics.median(r.cases) if r.cases else float('nan'))}).",
         "",
         f"Leave-out measure: {mt.inline(rec.description)}."
-        + (f" Written with the data to `{mt.inline(r.derived_file)}`." if r.derived_file else ""),
+        + (
+            f" Written with the data to `{mt.inline(PurePath(r.derived_file).name)}` (path, recipe and SHA-256 "
+            "in the run's provenance)."
+            if r.derived_file
+            else ""
+        ),
     ]
     if r.small:
         lines += [
@@ -80,6 +95,13 @@ def _decision_makers(run: RunInfo, r: DecisionMakerDesign) -> str:
             + ".",
         ]
     level = f"{100 * (1 - r.estimates.alpha):g}%"
+    loo = r.leave_out_estimate
+    if loo is not None:
+        lines += [
+            "",
+            f"2SLS with the leave-out measure as the one instrument: {_num(loo.estimate)} (std. error "
+            f"{_num(loo.std_error)}), {level} interval [{_num(loo.ci_low)}, {_num(loo.ci_high)}].",
+        ]
     rows = [
         [
             mt.cell(e.method.upper()),
@@ -106,6 +128,8 @@ def _decision_makers(run: RunInfo, r: DecisionMakerDesign) -> str:
             f"{_set(ar.confidence_set)}; test of β = {_num(ar.beta0)}: p = {_num(ar.p_value)}. Strength "
             f"{_num(ar.strength)}, {strong} the cut-off {_num(ar.strength_cutoff)}.",
         ]
+        if not ar.confidence_set:
+            lines += ["", EMPTY_SET]
     else:
         lines += ["", f"Jackknife Anderson–Rubin: not applicable ({mt.inline(ar.reason or '')})."]
     return "\n".join([*lines, "", mt.inline(r.caution)])
@@ -153,6 +177,7 @@ def _exposure(run: RunInfo, r: ExposureShareDesign) -> str:
 
 def design_sections(inp: DossierInput) -> tuple[str, ...]:
     """One Markdown section per kind of design or summary-data run attached to the instrument (newest run)."""
+    from ivdossier.reports.variant_checklist import checklist_markdown, dossier_checklist
     from ivdossier.reports.variant_sections import robustness_markdown, summary_evidence_markdown
 
     out: list[str] = []
@@ -187,7 +212,10 @@ def design_sections(inp: DossierInput) -> tuple[str, ...]:
                 + f"\n\nRun `{mt.inline(run.slug)}`.\n\n"
                 + mt.figure("robustness-contour", "Adjusted estimate over the strength of a confounder.")
             )
-    if out:
+    checklist = dossier_checklist(inp)
+    if checklist is not None:
+        out.append(checklist_markdown(checklist).rstrip())  # it states the limits itself
+    elif out:
         out.append(LIMITS)
     return tuple(out)
 

@@ -4,23 +4,29 @@ The anchor is the published reporting guideline for such studies, STROBE-MR (Skr
 326:1614-1621, with its explanation and elaboration in BMJ 375:n2233); the items below are our own wording,
 grouped by the identifying condition they speak to, and do not reproduce the guideline's text or numbering.
 :func:`fill_checklist` marks an item as computed when the summary-data evidence answers it, as provided when the
-team wrote a note for it, and as missing otherwise.
+team wrote a note for it, and as missing otherwise. :func:`dossier_checklist` fills it for one instrument from
+what the registry holds (the newest summary-data run, the team's threat reviews and claims), for the dossier of a
+genetic-variant instrument.
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.variant_summary import NotApplicable, SummaryEvidence
 from ivdossier.reports.mdtext import inline
 
+if TYPE_CHECKING:
+    from ivdossier.reports.inputs import DossierInput
+
 GUIDELINE = (
     "Skrivankova VW, Richmond RC, Woolf BAR, et al. Strengthening the reporting of observational studies in "
     "epidemiology using Mendelian randomization: the STROBE-MR statement. JAMA 2021;326(16):1614-1621."
 )
+FAMILY = "genetic-variant"  # the catalogue family whose dossiers carry the checklist
 GROUPS: tuple[str, ...] = ("relevance", "exclusion", "exogeneity", "monotonicity", "design and data")
 STATUSES: tuple[str, ...] = ("computed", "provided", "missing")
 
@@ -248,3 +254,49 @@ def checklist_markdown(checklist: FilledChecklist) -> str:
         "domain review.",
     ]
     return "\n".join(out) + "\n"
+
+
+#: Catalogue threats of the genetic-variant family -> the checklist item a reviewed link answers (our mapping:
+#: the item that reports what the threat is about).
+THREAT_ITEMS: Mapping[str, str] = {
+    "GV-R01": "GV-R2",  # variants explain little of the exposure -> strength
+    "GV-R02": "GV-R1",  # chosen and weighted in the same data -> how variants were picked
+    "GV-R03": "GV-R3",  # overlapping samples
+    "GV-E01": "GV-E1",  # other traits on the way to the outcome
+    "GV-I03": "GV-E1",  # a neighbouring causal variant -> what is known about nearby genes
+    "GV-I01": "GV-X1",  # ancestry -> population structure
+    "GV-I02": "GV-X1",  # parents' genes -> family-based designs
+    "GV-I04": "GV-X2",  # selection into the study
+    "GV-M01": "GV-M1",  # variant effects of both signs
+    "GV-T01": "GV-M1",  # lifelong exposure -> which effect the estimate is
+}
+
+
+def dossier_checklist(inp: DossierInput) -> FilledChecklist | None:
+    """The checklist of a genetic-variant instrument filled from its dossier input, or None for other families.
+
+    Computed items come from the newest summary-data run attached to the instrument. An item is provided when a
+    linked threat it maps to (``THREAT_ITEMS``) has been reviewed (any state but open) with an argument or
+    evidence, quoted with the threat's code and state; the monotonicity item also takes the team's written
+    monotonicity claim. Everything else is missing: the registry holds no answer for it.
+    """
+    from ivdossier.jsonsafe import RECORD_KEY, load_record
+
+    if inp.instrument.family != FAMILY:
+        return None
+    evidence: SummaryEvidence | None = None
+    for run in sorted(inp.evidence_runs, key=lambda r: (r.created_text, r.slug)):
+        record = run.results.get(RECORD_KEY) if isinstance(run.results, Mapping) else None
+        value = load_record(record) if isinstance(record, Mapping) else None
+        if isinstance(value, SummaryEvidence):
+            evidence = value
+    notes: dict[str, list[str]] = {}
+    claim = (inp.instrument.claims or {}).get("monotonicity", "").strip()
+    if claim:
+        notes.setdefault("GV-M1", []).append(f"team's monotonicity claim: {claim}")
+    for link in sorted(inp.links, key=lambda k: k.threat_code):
+        code = THREAT_ITEMS.get(link.threat_code)
+        said = " ".join(t for t in (link.argument.strip(), link.evidence.strip()) if t)
+        if code and link.state != "open" and said:
+            notes.setdefault(code, []).append(f"{link.threat_code} ({link.state}): {said}")
+    return fill_checklist(evidence, {code: " ".join(texts) for code, texts in notes.items()})

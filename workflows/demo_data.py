@@ -6,9 +6,13 @@ purpose so that the tool can be seen catching them:
 - ``frailty`` (unobserved) raises both telehealth adoption and emergency visits, so OLS is biased upwards;
 - ``fibre_months`` (months since the invented utility's fibre reached the postal district, set by an engineering
   schedule) is a valid instrument;
-- ``clerk_video_rate`` (the video-visit share of the scheduling clerk a patient happened to get) moves adoption,
-  but clerks who like video visits also book prompt follow-ups, which cut emergency visits directly: a planted
-  exclusion violation;
+- ``clerk_video_rate`` (the historical video-visit share of the scheduling clerk a patient happened to get) moves
+  adoption, but clerks who like video visits also book prompt follow-ups, which cut emergency visits directly: a
+  planted exclusion violation;
+- ``clerk`` and ``clinic``: each postal district belongs to one of ``CLINICS`` clinics, and the clinic's rota
+  assigns each call to one of its clerks at random (so assignment is as good as random within a clinic, the cell a
+  leave-out design absorbs). The last clerk of every clinic is a relief clerk who takes only occasional calls
+  (about ``RELIEF_CALLS`` a year), so the design's check for decision-makers with few cases has something to flag;
 - ``mast_km`` (distance to the nearest mobile mast) is valid but weak;
 - patients without a capable device (``has_device == 0``) cannot adopt telehealth at all: a subgroup where every
   instrument should have no reduced-form effect if exclusion holds;
@@ -41,6 +45,9 @@ AVOIDABLE_RATE = 0.6  # expected avoidable emergency visits a year without teleh
 TRUE_EFFECT = -AVOIDABLE_RATE  # effect of adopting telehealth on the expected number of visits, every patient
 FOLLOWUP_EFFECT = -0.12  # log-mean effect of one unit of a clerk's follow-up habit (the planted violation)
 DISPERSION = 5.0  # gamma shape of the negative-binomial mixing: variance = mean + mean^2 / DISPERSION
+CLINICS = 8  # clinics, each with its own rota of clerks (clerks // CLINICS per clinic)
+RELIEF_SHARE = 0.075  # a relief clerk's chance of taking a call, relative to a regular clerk of the same rota
+RELIEF_CALLS = 12  # about 1,500 calls a clinic x 0.075 / 9.075: the expected cases of a relief clerk
 
 
 @dataclass(frozen=True)
@@ -74,7 +81,8 @@ def simulate_telehealth(
     mast_of_district = rng.gamma(2.0, 2.5, size=districts)
     mast_km = np.round(mast_of_district[district] + rng.normal(0, 0.3, size=n).clip(-1, 1), 2)
 
-    clerk = rng.integers(0, clerks, size=n)  # rota assignment, as good as random
+    # the rota: as good as random within a clinic
+    clerk, clinic = _rota(rng, district, districts=districts, clerks=clerks)
     clerk_taste = rng.normal(0.0, 1.0, size=clerks)
     clerk_video_rate = 1 / (1 + np.exp(-(-0.4 + 0.8 * clerk_taste)))  # historical share of video bookings
     followup_habit = 0.7 * clerk_taste + rng.normal(0, 0.6, size=clerks)
@@ -120,6 +128,7 @@ def simulate_telehealth(
         {
             "patient_id": np.arange(1, n + 1),
             "district": district,
+            "clinic": clinic,
             "clerk": clerk,
             "age": age,
             "chronic_conditions": chronic,
@@ -132,3 +141,24 @@ def simulate_telehealth(
             "prior_ed_visits": prior_ed_visits.astype(np.int64),
         }
     )
+
+
+def _rota(
+    rng: np.random.Generator, district: np.ndarray, *, districts: int, clerks: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """(clerk, clinic) per patient: the district's clinic, then a clerk drawn from that clinic's rota.
+
+    Clinics cover contiguous blocks of district numbers; each has ``clerks // CLINICS`` clerks, the last of them
+    a relief clerk drawn ``RELIEF_SHARE`` times as often as each regular one. Clerk ids are global
+    (clinic * clerks per clinic + position on the rota).
+    """
+    per_clinic = clerks // CLINICS
+    if per_clinic < 2 or clerks % CLINICS:
+        raise InvalidInputError(
+            f"clerks must be a multiple of {CLINICS} with at least two per clinic, got {clerks!r}."
+        )
+    clinic = (district * CLINICS) // districts
+    weights = np.ones(per_clinic)
+    weights[-1] = RELIEF_SHARE
+    position = np.searchsorted(np.cumsum(weights) / weights.sum(), rng.random(district.size), side="right")
+    return clinic * per_clinic + np.minimum(position, per_clinic - 1), clinic
