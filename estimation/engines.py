@@ -26,11 +26,9 @@ import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.api import OLS_REASON, _interval_quantile, conventions, estimate
+from ivdossier.estimation.api import SampleCounts, estimate, result_from_cross_products
 from ivdossier.estimation.crossproducts import CrossProducts
-from ivdossier.estimation.data import _check_collinear, _check_roles, as_names
-from ivdossier.estimation.diagnostics import DiagnosticSuite, suite_from, unidentified_reason
-from ivdossier.estimation.estimators import fit_from_cross_products
+from ivdossier.estimation.data import as_names, check_collinear, check_roles
 from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
 from ivdossier.estimation.sources import (
@@ -62,8 +60,6 @@ from ivdossier.estimation.sql_moments import (
     unpack,
 )
 from ivdossier.estimation.sql_runners import DuckDBRunner, ProgressCallback, Runner, SparkRunner, closing
-from ivdossier.estimation.strength import require_distinct_instruments
-from ivdossier.vocabulary import NotApplicable
 
 Array = NDArray[np.float64]
 ENGINES: tuple[str, ...] = ("auto", "pandas", "duckdb", "spark")
@@ -133,17 +129,6 @@ class SourceEstimate:
         return f"{self.result}\n{self.provenance}"
 
 
-@dataclass(frozen=True)
-class _Counts:
-    n: int
-    n_dropped: int
-    n_partialled: int
-    n_nested: int
-    n_absorbed: int
-    fe_levels: tuple[int, ...]
-    n_clusters: tuple[int, ...]
-
-
 def _check_columns(kinds: dict[str, str], model: ModelSpec) -> None:
     columns = list(kinds)
     for name in model.used:
@@ -209,7 +194,7 @@ def _normalise(
         "absorb": model.absorb,
         "weights": (weights,) if weights else (),
     }
-    _check_roles(roles)
+    check_roles(roles)
     if method != "ols" and len(inst) < len(treat):
         raise EstimationError(
             f"{len(inst)} excluded instrument(s) for {len(treat)} endogenous regressor(s): the model is not "
@@ -284,7 +269,7 @@ def _check_partialled(model: ModelSpec, root: Array, pre: Array, *, exact: bool)
             f"The outcome {model.outcome!r} has no variation left after partialling out the controls and fixed "
             "effects; check the specification."
         )
-    _check_collinear(r[:, 1 : 1 + p], r[:, 1 + p :], scale, model.treatment, model.instruments, p)
+    check_collinear(r[:, 1 : 1 + p], r[:, 1 + p :], scale, model.treatment, model.instruments, p)
     if not exact:
         lengths = np.linalg.norm(r, axis=0)
         names = (model.outcome, *model.treatment, *model.instruments)
@@ -302,7 +287,9 @@ def _psd_root(gram: Array) -> Array:
     return np.asarray(np.sqrt(np.clip(vals, 0.0, None))[:, None] * vecs.T, dtype=np.float64)
 
 
-def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts, _Counts, list[ScanTiming]]:
+def sql_cross_products(
+    runner: Runner, model: ModelSpec
+) -> tuple[CrossProducts, SampleCounts, list[ScanTiming]]:
     """Run the scans on ``runner`` and build the sufficient statistics of ``model``."""
     refuse_unsupported(model, runner.name)
     _check_columns(runner.columns(), model)
@@ -404,11 +391,11 @@ def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts,
         n_partialled_nested=nested,
     )
     _check_partialled(model, cp.r * cp.scale[None, :], pre[:n_targets], exact=True)
-    counts = _Counts(
+    counts = SampleCounts(
         n=n,
         n_dropped=int(row["ivd_rows"]) - n,
         n_partialled=n_partialled,
-        n_nested=nested,
+        n_partialled_nested=nested,
         n_absorbed=levels,
         fe_levels=(levels,) if absorb else (),
         n_clusters=tuple(int(row[f"ivd_ng{j}"]) for j in range(len(plan.clusters)))
@@ -416,110 +403,6 @@ def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts,
         else (),
     )
     return cp, counts, timings
-
-
-def _ols_from(cp: CrossProducts) -> tuple[Array, Array, float]:
-    """OLS of the outcome on the treatments from the sufficient statistics: beta, covariance, SSR."""
-    rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
-    qq, rr = np.linalg.qr(rx)
-    beta = scipy.linalg.solve_triangular(rr, qq.T @ ry, check_finite=False)
-    rinv = scipy.linalg.solve_triangular(rr, np.eye(cp.p), check_finite=False)
-    u = ry - rx @ beta
-    cov = cp.covariance(rx, u, rinv @ rinv.T, cp.p)
-    unit = cp.scale[cp.iy] / cp.scale[cp.ix]
-    ssr = float(u @ u) * float(cp.scale[cp.iy]) ** 2
-    return np.asarray(beta * unit, dtype=np.float64), np.asarray(cov * np.outer(unit, unit)), ssr
-
-
-def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: ModelSpec) -> EstimationResult:
-    """The estimation result (coefficients, covariance, intervals, diagnostic suite) from the sums alone."""
-    n, k = counts.n, len(model.treatment)
-    df_resid = n - k - counts.n_partialled
-    common: dict[str, Any] = {
-        "method": model.method,
-        "vcov": model.vcov,
-        "outcome": model.outcome,
-        "names": model.treatment,
-        "alpha": model.alpha,
-        "n": n,
-        "n_dropped": counts.n_dropped,
-        "n_clusters": counts.n_clusters,
-        "df_resid": df_resid,
-        "n_partialled": counts.n_partialled,
-        "n_absorbed": counts.n_absorbed,
-        "n_absorbed_nested": counts.n_nested,
-        "fe_levels": counts.fe_levels,
-        "spec": model.echo(),
-        "conventions": conventions(model.vcov, model.small_sample),
-    }
-    q, ci_ref, ref_df = _interval_quantile(
-        model.vcov, model.small_sample, df_resid, counts.n_clusters, model.alpha
-    )
-    names, inst = list(model.treatment), list(model.instruments)
-    if model.method == "ols":
-        beta, cov, ssr = _ols_from(cp)
-        kappa, kappa_liml = 0.0, None
-    else:
-        unident = unidentified_reason(cp, names, inst)
-        if unident is not None:
-            nan = np.full(k, np.nan)
-            unidentified_suite = suite_from(
-                cp,
-                beta=nan,
-                method=model.method,
-                kappa=float("nan"),
-                endog_names=names,
-                instrument_names=inst,
-                alpha=model.alpha,
-            )
-            return EstimationResult(
-                coef=nan,
-                se=nan.copy(),
-                cov=np.full((k, k), np.nan),
-                ci=np.full((k, 2), np.nan),
-                ci_reference=ci_ref,
-                ref_df=ref_df,
-                kappa=float("nan"),
-                kappa_liml=None,
-                sigma=float("nan"),
-                diagnostics=unidentified_suite,
-                identification=unident,
-                **common,
-            )
-        mfit = fit_from_cross_products(cp, method=model.method, fuller_alpha=model.fuller_alpha)
-        beta, cov, kappa, kappa_liml, ssr = mfit.beta, mfit.cov, mfit.kappa, mfit.kappa_liml, mfit.ssr
-    se = np.sqrt(np.diag(cov))
-    ci = np.column_stack([beta - q * se, beta + q * se])
-    suite: DiagnosticSuite | NotApplicable | None = (
-        NotApplicable(OLS_REASON) if model.method == "ols" else None
-    )
-    if model.method != "ols":
-        try:
-            require_distinct_instruments(cp, inst)
-            suite = suite_from(
-                cp,
-                beta=beta,
-                method=model.method,
-                kappa=kappa,
-                endog_names=names,
-                instrument_names=inst,
-                alpha=model.alpha,
-            )
-        except EstimationError as exc:
-            suite = NotApplicable(f"instrument diagnostics not computed: {exc}")
-    return EstimationResult(
-        coef=beta,
-        se=se,
-        cov=cov,
-        ci=ci,
-        ci_reference=ci_ref,
-        ref_df=ref_df,
-        kappa=kappa,
-        kappa_liml=kappa_liml,
-        sigma=float(np.sqrt(ssr / df_resid)),
-        diagnostics=suite,
-        **common,
-    )
 
 
 def choose_engine(engine: str, memory: MemoryEstimate | None, *, remote: bool = False) -> tuple[str, str]:
