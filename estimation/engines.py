@@ -14,9 +14,10 @@ decisions need domain review, whichever engine computed them.
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -26,7 +27,7 @@ import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.api import SampleCounts, estimate, result_from_cross_products
+from ivdossier.estimation.api import SampleCounts, estimate_spec, result_from_cross_products
 from ivdossier.estimation.crossproducts import CrossProducts
 from ivdossier.estimation.data import as_names, check_collinear, check_roles
 from ivdossier.estimation.linalg import one_blas_thread
@@ -287,6 +288,24 @@ def _psd_root(gram: Array) -> Array:
     return np.asarray(np.sqrt(np.clip(vals, 0.0, None))[:, None] * vecs.T, dtype=np.float64)
 
 
+def moment_plan(runner: Runner, model: ModelSpec) -> MomentPlan:
+    """The query plan of ``model`` on the runner's relation."""
+    if model.outcome is None:
+        raise InvalidInputError("The SQL engines need an outcome column; pass outcome=.")
+    return MomentPlan(
+        relation=runner.relation,
+        instruments=model.instruments,
+        treatments=model.treatment,
+        outcome=model.outcome,
+        controls=model.controls,
+        absorb=model.absorb[0] if model.absorb else None,
+        clusters=model.cluster,
+        weights=model.weights,
+        kind=model.vcov,
+        dialect=runner.dialect,
+    )
+
+
 def sql_cross_products(
     runner: Runner, model: ModelSpec
 ) -> tuple[CrossProducts, SampleCounts, list[ScanTiming]]:
@@ -294,18 +313,7 @@ def sql_cross_products(
     refuse_unsupported(model, runner.name)
     _check_columns(runner.columns(), model)
     absorb = model.absorb[0] if model.absorb else None
-    plan = MomentPlan(
-        relation=runner.relation,
-        instruments=model.instruments,
-        treatments=model.treatment,
-        outcome=model.outcome,
-        controls=model.controls,
-        absorb=absorb,
-        clusters=model.cluster,
-        weights=model.weights,
-        kind=model.vcov,
-        dialect=runner.dialect,
-    )
+    plan = moment_plan(runner, model)
     runner.scans_total = 3 if absorb else 2
     timings: list[ScanTiming] = []
     n_cols = len(plan.demeaned)
@@ -442,6 +450,189 @@ def _read_for_pandas(source: Source, used: list[str]) -> pd.DataFrame:
     return pd.read_csv(source.files[0], usecols=present)
 
 
+@dataclass(frozen=True)
+class EngineSettings:
+    """How to run a scan: the engine (``auto``, ``pandas``, ``duckdb``, ``spark``) and its options (DuckDB's
+    memory cap, spill folder and threads; Spark's master URL or an existing session), progress and whether to
+    fingerprint the data."""
+
+    engine: str = "auto"
+    memory_limit: str | None = None
+    temp_directory: str | None = None
+    threads: int | None = None
+    spark_master: str | None = None
+    spark_session: Any = None
+    progress: ProgressCallback | None = None
+    with_fingerprint: bool = True
+
+
+@dataclass(frozen=True)
+class _SourcePlan:
+    source: Source | None
+    memory: MemoryEstimate | None
+    chosen: str
+    why: str
+    fingerprint: str | None
+    fingerprint_method: str
+    rows: int | None
+    rows_hint: int | None
+
+
+def _plan_source(path: str, model: ModelSpec, settings: EngineSettings) -> _SourcePlan:
+    """Resolve the file or folder, estimate its in-memory size, choose the engine and fingerprint the data."""
+    engine = settings.engine
+    if engine not in ENGINES:
+        raise InvalidInputError(f"Unknown engine {engine!r}; choose one of {', '.join(ENGINES)}.")
+    remote = "://" in str(path)
+    if remote and engine not in ("spark", "auto"):
+        raise InvalidInputError(
+            f"{path!r} is not a local path; only engine='spark' reads remote storage. Copy the data locally "
+            "or use engine='spark'."
+        )
+    source = None if remote else resolve_source(path)
+    memory = None if source is None else pandas_memory(source, model.used)
+    chosen, why = choose_engine(engine, memory, remote=remote)
+    if chosen != "pandas":
+        refuse_unsupported(model, chosen)
+    rows = memory.rows if memory and not memory.rows_estimated else None
+    return _SourcePlan(
+        source, memory, chosen, why, None, "not computed", rows, memory.rows if memory else None
+    )
+
+
+def _fingerprinted(plan: _SourcePlan, settings: EngineSettings) -> _SourcePlan:
+    """The plan with the data fingerprint (a pass over the bytes, so taken once the engine is settled)."""
+    source = plan.source
+    if not settings.with_fingerprint or source is None:
+        return plan
+    method = (
+        "SHA-256 over each file's relative name, size and SHA-256"
+        if source.is_directory
+        else "SHA-256 of the file's bytes"
+    )
+    return dataclasses.replace(plan, fingerprint=fingerprint(source), fingerprint_method=method)
+
+
+def read_source_frame(
+    path: str, model: ModelSpec, settings: EngineSettings, *, choice: str | None = None
+) -> tuple[pd.DataFrame, Provenance]:
+    """The used columns of a file (or Parquet folder) in memory, for the pandas engine; refused when they would
+    not fit. The provenance states the choice (``choice``: why, when ``auto`` chose pandas) and times the read."""
+    plan = _plan_source(path, model, dataclasses.replace(settings, engine="pandas"))
+    plan = _fingerprinted(dataclasses.replace(plan, why=choice or plan.why), settings)
+    if plan.memory is not None:
+        check_pandas_fits(plan.memory)
+    assert plan.source is not None
+    t0 = time.monotonic()
+    frame = _read_for_pandas(plan.source, model.used)
+    prov = Provenance(
+        "pandas",
+        pd.__version__,
+        plan.why,
+        str(path),
+        plan.fingerprint,
+        plan.fingerprint_method,
+        len(frame),
+        (ScanTiming("read", time.monotonic() - t0),),
+        {},
+        plan.memory,
+    )
+    return frame, prov
+
+
+def _open_runner(path: str, plan: _SourcePlan, settings: EngineSettings) -> tuple[Runner, dict[str, str]]:
+    if plan.chosen == "duckdb":
+        assert plan.source is not None
+        duck = DuckDBRunner(
+            [str(f) for f in plan.source.files],
+            plan.source.format,
+            memory_limit=settings.memory_limit,
+            temp_directory=settings.temp_directory,
+            threads=settings.threads,
+            rows_total=plan.rows_hint,
+            progress=settings.progress,
+        )
+        return duck, duck.settings()
+    source = plan.source
+    target = str(path) if source is None or source.format == "csv" else str(source.path)
+    spark = SparkRunner(
+        target,
+        source.format if source else _remote_format(str(path)),
+        session=settings.spark_session,
+        master=settings.spark_master,
+        rows_total=plan.rows_hint,
+        progress=settings.progress,
+    )
+    return spark, {"master": str(spark.spark.sparkContext.master)}  # type: ignore[attr-defined]
+
+
+def auto_choice(path: str, model: ModelSpec, settings: EngineSettings) -> str | None:
+    """Why ``auto`` chose pandas (None for an engine named by the caller): the stated size and threshold."""
+    if settings.engine != "auto":
+        return None
+    return _plan_source(str(path), model, settings).why
+
+
+@dataclass(frozen=True, eq=False)
+class SourceScan:
+    """The sufficient statistics of a model summed by a scanning engine, with the sample counts, the
+    provenance of the run and what an extra query on the same rows returned (None without one)."""
+
+    cross_products: CrossProducts
+    counts: SampleCounts
+    provenance: Provenance
+    extra: Any = None
+
+
+ExtraQuery = Callable[[Runner, MomentPlan], Any]
+
+
+def scan_source(
+    path: str, model: ModelSpec, settings: EngineSettings, *, extra: ExtraQuery | None = None
+) -> SourceScan | None:
+    """Sum the sufficient statistics of ``model`` over a file or Parquet folder with DuckDB or Spark; None when
+    ``settings.engine`` is ``auto`` and chose pandas (read the data with :func:`read_source_frame` instead).
+    ``extra(runner, plan)`` runs one more query on the same rows before the runner closes."""
+    check_roles(
+        {
+            "outcome": (model.outcome,) if model.outcome else (),
+            "treatment": model.treatment,
+            "instruments": model.instruments,
+            "controls": model.controls,
+            "absorb": model.absorb,
+            "weights": (model.weights,) if model.weights else (),
+        }
+    )
+    plan = _plan_source(str(path), model, settings)
+    if plan.chosen == "pandas":
+        if settings.engine == "pandas":
+            raise InvalidInputError("scan_source runs the SQL engines; read the data with read_source_frame.")
+        return None
+    plan = _fingerprinted(plan, settings)
+    runner, run_settings = _open_runner(str(path), plan, settings)
+    extra_out = None
+    with closing(runner), one_blas_thread():
+        version = runner.version()
+        cp, counts, timings = sql_cross_products(runner, model)
+        if extra is not None:
+            t0 = time.monotonic()
+            extra_out = extra(runner, moment_plan(runner, model))
+            timings.append(ScanTiming("summary", time.monotonic() - t0))
+    prov = Provenance(
+        plan.chosen,
+        version,
+        plan.why,
+        str(path),
+        plan.fingerprint,
+        plan.fingerprint_method,
+        plan.rows or counts.n + counts.n_dropped,
+        tuple(timings),
+        run_settings,
+        plan.memory,
+    )
+    return SourceScan(cp, counts, prov, extra_out)
+
+
 def estimate_source(
     path: str,
     *,
@@ -488,106 +679,25 @@ def estimate_source(
         alpha,
         fuller_alpha,
     )
-    remote = "://" in str(path)
-    if remote and engine not in ("spark", "auto"):
-        raise InvalidInputError(
-            f"{path!r} is not a local path; only engine='spark' reads remote storage. Copy the data locally "
-            "or use engine='spark'."
-        )
-    source = None if remote else resolve_source(path)
-    memory = None if source is None else pandas_memory(source, model.used)
-    chosen, why = choose_engine(engine, memory, remote=remote)
-    if chosen != "pandas":
-        refuse_unsupported(model, chosen)
-    fp = fingerprint(source) if (with_fingerprint and source is not None) else None
-    fp_method = (
-        "not computed"
-        if fp is None
-        else "SHA-256 over each file's relative name, size and SHA-256"
-        if source is not None and source.is_directory
-        else "SHA-256 of the file's bytes"
+    settings = EngineSettings(
+        engine=engine,
+        memory_limit=memory_limit,
+        temp_directory=temp_directory,
+        threads=threads,
+        spark_master=spark_master,
+        spark_session=spark_session,
+        progress=progress,
+        with_fingerprint=with_fingerprint,
     )
-    rows = memory.rows if memory and not memory.rows_estimated else None
-    rows_hint = memory.rows if memory else None
-    if chosen == "pandas":
-        if memory is not None:
-            check_pandas_fits(memory)
-        assert source is not None
+    scan = None if engine == "pandas" else scan_source(str(path), model, settings)
+    if scan is None:
+        frame, prov = read_source_frame(str(path), model, settings, choice=auto_choice(path, model, settings))
         t0 = time.monotonic()
-        frame = _read_for_pandas(source, model.used)
-        read_s = time.monotonic() - t0
-        t0 = time.monotonic()
-        result = estimate(
-            frame,
-            outcome=outcome,
-            treatment=model.treatment,
-            instruments=model.instruments,
-            controls=model.controls,
-            absorb=model.absorb,
-            cluster=model.cluster or None,
-            weights=weights,
-            method=method,
-            vcov=vcov,
-            small_sample=small_sample,
-            alpha=alpha,
-            fuller_alpha=fuller_alpha,
-        )
-        prov = Provenance(
-            "pandas",
-            pd.__version__,
-            why,
-            str(path),
-            fp,
-            fp_method,
-            len(frame),
-            (ScanTiming("read", read_s), ScanTiming("estimate", time.monotonic() - t0)),
-            {},
-            memory,
-        )
+        result = estimate_spec(frame, model)
+        prov = dataclasses.replace(prov, scans=(*prov.scans, ScanTiming("estimate", time.monotonic() - t0)))
         return SourceEstimate(result, prov)
-    runner: Runner
-    settings: dict[str, str] = {}
-    if chosen == "duckdb":
-        assert source is not None
-        duck = DuckDBRunner(
-            [str(f) for f in source.files],
-            source.format,
-            memory_limit=memory_limit,
-            temp_directory=temp_directory,
-            threads=threads,
-            rows_total=rows_hint,
-            progress=progress,
-        )
-        settings = duck.settings()
-        runner = duck
-    else:
-        target = str(path) if source is None or source.format == "csv" else str(source.path)
-        runner = SparkRunner(
-            target,
-            source.format if source else _remote_format(str(path)),
-            session=spark_session,
-            master=spark_master,
-            rows_total=rows_hint,
-            progress=progress,
-        )
-        settings = {"master": str(runner.spark.sparkContext.master)}  # type: ignore[attr-defined]
-    with closing(runner), one_blas_thread():
-        version = runner.version()
-        cp, counts, timings = sql_cross_products(runner, model)
-        result = result_from_cross_products(cp, counts, model)
-    prov = Provenance(
-        chosen,
-        version,
-        why,
-        str(path),
-        fp,
-        fp_method,
-        rows or counts.n + counts.n_dropped,
-        tuple(timings),
-        settings,
-        memory,
-    )
-    return SourceEstimate(result, prov)
+    result = result_from_cross_products(scan.cross_products, scan.counts, model)
+    return SourceEstimate(result, scan.provenance)
 
 
 def _remote_format(path: str) -> str:
