@@ -512,6 +512,15 @@ def _reference_text(st: _Stacked) -> str:
 def _regressions(
     kind: str, st: _Stacked, *, vcov: str, alpha: float, data: pd.DataFrame
 ) -> InstrumentRegressions:
+    return regressions_from(
+        kind, st, vcov=vcov, alpha=alpha, row_account=count_rows(data, st.columns, n_used=st.n)
+    )
+
+
+def regressions_from(
+    kind: str, st: _Stacked, *, vcov: str, alpha: float, row_account: RowAccount | None
+) -> InstrumentRegressions:
+    """The balance or placebo-outcome table from stacked regressions (:func:`stacked_from`)."""
     return InstrumentRegressions(
         kind=kind,
         instruments=st.instruments,
@@ -525,7 +534,7 @@ def _regressions(
         alpha=alpha,
         reference=_reference_text(st),
         caution=CAUTION,
-        row_account=count_rows(data, st.columns, n_used=st.n),
+        row_account=row_account,
     )
 
 

@@ -314,6 +314,22 @@ def moments_query(
     return f"SELECT {', '.join(sel)} FROM ({grouped}) ivd_g GROUP BY ivd_dim ORDER BY ivd_dim"
 
 
+def raw_summary_query(plan: MomentPlan, columns: Sequence[int], split: int | None = None) -> str:
+    """Unweighted row counts, means and sample variances (ddof = 1) of the given numeric columns (positions in
+    ``plan.demeaned``) over the complete rows; with ``split`` grouped by whether that column is 0, 1 or another
+    value (``ivd_arm`` 0, 1, 2), for the standardised differences of one binary instrument."""
+    sel = ["count(*) AS ivd_n"]
+    for j in columns:
+        v = _alias("v", j)
+        sel += [f"avg({v}) AS {_alias('mean', j)}", f"var_samp({v}) AS {_alias('var', j)}"]
+    src = f"FROM ({rows_query(plan)}) ivd_r WHERE ivd_ok"
+    if split is None:
+        return f"SELECT 0 AS ivd_arm, {', '.join(sel)} {src}"
+    v = _alias("v", split)
+    arm = f"CASE WHEN {v} = 0.0e+00 THEN 0 WHEN {v} = 1.0e+00 THEN 1 ELSE 2 END"
+    return f"SELECT {arm} AS ivd_arm, {', '.join(sel)} {src} GROUP BY {arm}"
+
+
 def unpack(values: Sequence[float], size: int) -> Array:
     """A symmetric size x size matrix from its upper triangle packed row by row (pack_index order)."""
     out = np.zeros((size, size))
