@@ -52,6 +52,7 @@ from ivdossier.estimation.sql_moments import (
     cross_products_from_sums,
     first_factor,
     gram_query,
+    infinite_counts_query,
     level_means_query,
     levels_summary_query,
     moments_query,
@@ -221,8 +222,16 @@ def _scan_counts(
     label = "counts and means" if shift is None else "counts, means and Gram matrix"
     groups = runner.rows(counts_query(plan, shift), label, 1)
     timings.append(ScanTiming(label, time.monotonic() - t0))
+    infinite = groups
+    if (
+        groups
+        and "ivd_inf0" not in groups[0]
+        and not all(_finite_sums(g, len(plan.demeaned)) for g in groups)
+    ):
+        # a non-finite sum: an infinite value, or a NaN (missing) one; count the infinite values exactly
+        infinite = runner.rows(infinite_counts_query(plan), "infinite values", 1)
     for j, name in enumerate(plan.numeric):
-        bad = sum(int(g[f"ivd_inf{j}"] or 0) for g in groups)
+        bad = sum(int(g.get(f"ivd_inf{j}") or 0) for g in infinite)
         if bad:
             raise InvalidInputError(
                 f"Column {name!r} holds {bad} infinite value(s); replace them or mark them missing."
@@ -239,16 +248,26 @@ def _scan_counts(
             f"Weights column {plan.weights!r} holds {int(row['ivd_badw'])} zero or negative value(s); weights must "
             "be positive, drop those rows first."
         )
-    for j, name in enumerate(plan.clusters):
-        if int(row[f"ivd_ng{j}"]) < 2:
-            raise InvalidInputError(
-                f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
-                "at least two levels or use vcov='robust'."
-            )
     for j, name in enumerate(plan.instruments):
         if row[f"ivd_lo{j}"] == row[f"ivd_hi{j}"]:
             raise EstimationError(f"Instrument {name!r} is constant in the used rows; drop it.")
     return row
+
+
+def _finite_sums(group: dict[str, Any], n_cols: int) -> bool:
+    """Whether the shifted sums and squares of every column in one group of scan 1 are finite."""
+    values = [group.get(f"ivd_h{j}") for j in range(n_cols)]
+    values += [group.get(f"ivd_g{i}") for i in range(n_cols * (n_cols + 1) // 2)]
+    return all(v is None or np.isfinite(float(v)) for v in values)
+
+
+def _check_cluster_counts(plan: MomentPlan, counts: tuple[int, ...]) -> None:
+    for name, count in zip(plan.clusters, counts, strict=True):
+        if count < 2:
+            raise InvalidInputError(
+                f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
+                "at least two levels or use vcov='robust'."
+            )
 
 
 def _targets_order(model: ModelSpec) -> list[int]:
@@ -325,7 +344,7 @@ def sql_cross_products(
     row = _scan_counts(runner, plan, timings, shift)
     n = int(row["ivd_complete"])
     wsum = float(row["ivd_wsum"])
-    means = [float(row[f"ivd_s{j}"]) / wsum for j in range(n_cols)]
+    means = [float(row[f"ivd_s{j}"]) / wsum for j in range(n_cols)] if shift is None else []
     n_targets = len(plan.targets)
     index = 2
     means_table = None
@@ -382,6 +401,8 @@ def sql_cross_products(
     elif model.vcov == "cluster":
         moment_sums = [packed(r, "k", n_k) for r in mrows]
         groups = [int(r["ivd_groups"]) for r in mrows]
+    cluster_counts = tuple(groups[: len(plan.clusters)])
+    _check_cluster_counts(plan, cluster_counts)
     n_used_controls = len(model.controls)
     n_partialled = (0 if absorb else 1) + n_used_controls + levels
     cp = cross_products_from_sums(
@@ -406,9 +427,7 @@ def sql_cross_products(
         n_partialled_nested=nested,
         n_absorbed=levels,
         fe_levels=(levels,) if absorb else (),
-        n_clusters=tuple(int(row[f"ivd_ng{j}"]) for j in range(len(plan.clusters)))
-        if model.vcov == "cluster"
-        else (),
+        n_clusters=cluster_counts,
     )
     return cp, counts, timings
 
