@@ -112,19 +112,17 @@ def _raw_summary(runner: Runner, plan: MomentPlan, targets: Sequence[str], instr
             for r in groups
         )
         sd[name] = math.sqrt(ss / (n - 1)) if n > 1 else math.nan
+
+    def arm(r: dict[str, Any] | None, j: int) -> tuple[int, float, float]:
+        return (
+            (0, math.nan, math.nan) if r is None else (int(r["ivd_n"]), stat(r, "mean", j), stat(r, "var", j))
+        )
+
     arms = None
     by_arm = {int(r["ivd_arm"]): r for r in groups}
     if k == 1 and set(by_arm) <= {0, 1}:
-        arms = {}
-        for j, t in enumerate(targets, start=k):
-            one, zero = by_arm.get(1), by_arm.get(0)
-            arms[t] = tuple(
-                (0, math.nan, math.nan)
-                if r is None
-                else (int(r["ivd_n"]), stat(r, "mean", j), stat(r, "var", j))
-                for r in (one, zero)
-            )
-    return RawSummary(sd, arms)  # type: ignore[arg-type]
+        arms = {t: (arm(by_arm.get(1), j), arm(by_arm.get(0), j)) for j, t in enumerate(targets, start=k)}
+    return RawSummary(sd, arms)
 
 
 def _regressions_source(
