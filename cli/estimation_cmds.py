@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from typing import Annotated
-
 import typer
 
 from ivdossier.cli import panels
@@ -15,12 +13,16 @@ from ivdossier.cli.model_options import (
     Cluster,
     Controls,
     Data,
+    Engine,
+    MemoryLimit,
     Method,
     OptionalInstruments,
     Outcome,
+    SparkMaster,
     Treatments,
     Vcov,
     Weights,
+    engine_settings,
     model_spec,
 )
 from ivdossier.cli.output import print_json
@@ -44,19 +46,9 @@ def estimate(
     alpha: Alpha = 0.05,
     attach: Attach = None,
     json_out: JsonFlag = False,
-    engine: Annotated[
-        str,
-        typer.Option(
-            help="pandas (in memory, the default), duckdb (scans Parquet/CSV with bounded memory), spark, or "
-            "auto (pandas when the data fit, DuckDB above); --data may then be a directory of Parquet files."
-        ),
-    ] = "pandas",
-    memory_limit: Annotated[
-        str | None, typer.Option(help='DuckDB memory cap, e.g. "1GB" (the engine spills to disk beyond it).')
-    ] = None,
-    spark_master: Annotated[
-        str | None, typer.Option(help="Spark master URL for --engine spark (default: local mode).")
-    ] = None,
+    engine: Engine = "pandas",
+    memory_limit: MemoryLimit = None,
+    spark_master: SparkMaster = None,
 ) -> None:
     """Estimate the effect with the full weak-instrument diagnostic suite."""
     from ivdossier.workflows.runs import estimate_file, estimate_with_engine
@@ -73,14 +65,8 @@ def estimate(
         vcov=vcov,
         alpha=alpha,
     )
-    if engine == "pandas":
-        if memory_limit is not None or spark_master is not None:
-            from ivdossier.errors import InvalidInputError
-
-            raise InvalidInputError(
-                "--memory-limit and --spark-master apply to the scanning engines; add --engine duckdb, spark or "
-                "auto, or drop them."
-            )
+    settings = engine_settings(engine, memory_limit, spark_master)
+    if settings is None:
         outcome_run = estimate_file(data, spec)
     else:
         outcome_run = estimate_with_engine(

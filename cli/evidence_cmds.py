@@ -20,12 +20,16 @@ from ivdossier.cli.model_options import (
     Cluster,
     Controls,
     Data,
+    Engine,
     Instruments,
+    MemoryLimit,
     Outcome,
     PlotOut,
+    SparkMaster,
     Treatment,
     Vcov,
     Weights,
+    engine_settings,
     model_spec,
     split_names,
 )
@@ -45,10 +49,22 @@ def register(app: typer.Typer) -> None:
     app.command("power", rich_help_panel=panels.EVIDENCE)(power)
 
 
-def _run(name: str, data: Any, spec: Any, **options: Any) -> Any:
+def _run(
+    name: str,
+    data: Any,
+    spec: Any,
+    engine: tuple[str, str | None, str | None] = ("pandas", None, None),
+    **options: Any,
+) -> Any:
+    """Run one analysis of the table; ``engine`` is (--engine, --memory-limit, --spark-master)."""
     from ivdossier.workflows.analyses import run_analysis
 
-    return run_analysis(name, data, spec, **options)
+    settings = engine_settings(*engine)
+    run = run_analysis(name, data, spec, engine=engine[0], engine_settings=settings, **options)
+    used = run.extra.get("engine")
+    if used:
+        typer.echo(f"engine: {used['engine']} ({used['choice']})", err=True)
+    return run
 
 
 def _finish(run: Any, name: str, *, attach: str | None, json_out: bool, caution: str | None = None) -> None:
@@ -104,6 +120,9 @@ def sensitivity_range(
     vcov: Vcov = "robust",
     alpha: Alpha = 0.05,
     plot: PlotOut = None,
+    engine: Engine = "pandas",
+    memory_limit: MemoryLimit = None,
+    spark_master: SparkMaster = None,
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -114,7 +133,14 @@ def sensitivity_range(
         outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
         cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
     )  # fmt: skip
-    run = _run("sensitivity range", data, spec, gamma_min=gamma_min, gamma_max=gamma_max)
+    run = _run(
+        "sensitivity range",
+        data,
+        spec,
+        (engine, memory_limit, spark_master),
+        gamma_min=gamma_min,
+        gamma_max=gamma_max,
+    )
     if plot is not None:
         plot.write_text(plot_sensitivity_svg(run.result), encoding="utf-8")
     _finish(run, "sensitivity range", attach=attach, json_out=json_out)
@@ -136,6 +162,9 @@ def sensitivity_prior(
     weights: Weights = None,
     vcov: Vcov = "robust",
     alpha: Alpha = 0.05,
+    engine: Engine = "pandas",
+    memory_limit: MemoryLimit = None,
+    spark_master: SparkMaster = None,
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -144,7 +173,14 @@ def sensitivity_prior(
         outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
         cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
     )  # fmt: skip
-    run = _run("sensitivity prior", data, spec, prior_mean=prior_mean, prior_sd=prior_sd)
+    run = _run(
+        "sensitivity prior",
+        data,
+        spec,
+        (engine, memory_limit, spark_master),
+        prior_mean=prior_mean,
+        prior_sd=prior_sd,
+    )
     _finish(run, "sensitivity prior", attach=attach, json_out=json_out)
 
 
@@ -163,6 +199,9 @@ def sensitivity_breakdown(
     weights: Weights = None,
     vcov: Vcov = "robust",
     alpha: Alpha = 0.05,
+    engine: Engine = "pandas",
+    memory_limit: MemoryLimit = None,
+    spark_master: SparkMaster = None,
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -171,7 +210,7 @@ def sensitivity_breakdown(
         outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
         cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
     )  # fmt: skip
-    run = _run("sensitivity breakdown", data, spec, target=target)
+    run = _run("sensitivity breakdown", data, spec, (engine, memory_limit, spark_master), target=target)
     _finish(run, "sensitivity breakdown", attach=attach, json_out=json_out)
 
 
@@ -189,6 +228,9 @@ def falsify_balance(
     weights: Weights = None,
     vcov: Vcov = "robust",
     alpha: Alpha = 0.05,
+    engine: Engine = "pandas",
+    memory_limit: MemoryLimit = None,
+    spark_master: SparkMaster = None,
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -197,7 +239,9 @@ def falsify_balance(
         instrument=instrument, control=control, absorb=absorb, cluster=cluster, weights=weights, vcov=vcov,
         alpha=alpha,
     )  # fmt: skip
-    run = _run("falsify balance", data, spec, covariates=list(covariate))
+    run = _run(
+        "falsify balance", data, spec, (engine, memory_limit, spark_master), covariates=list(covariate)
+    )
     _finish(run, "falsify balance", attach=attach, json_out=json_out)
 
 
@@ -212,6 +256,9 @@ def falsify_placebo(
     weights: Weights = None,
     vcov: Vcov = "robust",
     alpha: Alpha = 0.05,
+    engine: Engine = "pandas",
+    memory_limit: MemoryLimit = None,
+    spark_master: SparkMaster = None,
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -220,7 +267,9 @@ def falsify_placebo(
         instrument=instrument, control=control, absorb=absorb, cluster=cluster, weights=weights, vcov=vcov,
         alpha=alpha,
     )  # fmt: skip
-    run = _run("falsify placebo", data, spec, outcomes=list(placebo_outcome))
+    run = _run(
+        "falsify placebo", data, spec, (engine, memory_limit, spark_master), outcomes=list(placebo_outcome)
+    )
     _finish(run, "falsify placebo", attach=attach, json_out=json_out)
 
 
@@ -238,6 +287,7 @@ def falsify_zero_first_stage(
     weights: Weights = None,
     vcov: Vcov = "robust",
     alpha: Alpha = 0.05,
+    engine: Engine = "pandas",
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -246,7 +296,7 @@ def falsify_zero_first_stage(
         outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
         cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
     )  # fmt: skip
-    run = _run("falsify zero-first-stage", data, spec, query=where, subsample=subsample)
+    run = _run("falsify zero-first-stage", data, spec, (engine, None, None), query=where, subsample=subsample)
     _finish(run, "falsify zero-first-stage", attach=attach, json_out=json_out)
 
 
@@ -262,6 +312,9 @@ def falsify_per_instrument(
     weights: Weights = None,
     vcov: Vcov = "robust",
     alpha: Alpha = 0.05,
+    engine: Engine = "pandas",
+    memory_limit: MemoryLimit = None,
+    spark_master: SparkMaster = None,
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -270,7 +323,7 @@ def falsify_per_instrument(
         outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
         cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
     )  # fmt: skip
-    run = _run("falsify per-instrument", data, spec)
+    run = _run("falsify per-instrument", data, spec, (engine, memory_limit, spark_master))
     _finish(run, "falsify per-instrument", attach=attach, json_out=json_out)
 
 
@@ -287,6 +340,7 @@ def falsify_first_stage_signs(
     weights: Weights = None,
     vcov: Vcov = "robust",
     alpha: Alpha = 0.05,
+    engine: Engine = "pandas",
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -295,7 +349,7 @@ def falsify_first_stage_signs(
         treatment=treatment, instrument=instrument, control=control, absorb=absorb, cluster=cluster,
         weights=weights, vcov=vcov, alpha=alpha,
     )  # fmt: skip
-    run = _run("falsify first-stage-signs", data, spec, by=by, bins=bins)
+    run = _run("falsify first-stage-signs", data, spec, (engine, None, None), by=by, bins=bins)
     _finish(run, "falsify first-stage-signs", attach=attach, json_out=json_out)
 
 
@@ -311,6 +365,7 @@ def compliers(
     bins: Annotated[int, typer.Option(help="Outcome bins for the implied-density check.")] = 5,
     cluster: Annotated[str | None, typer.Option(help="Cluster column for bootstrap resampling.")] = None,
     seed: Annotated[int, typer.Option(help="Seed of the bootstrap.")] = 0,
+    engine: Engine = "pandas",
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:
@@ -359,6 +414,7 @@ def power(
     effect: Annotated[float | None, typer.Option(help="Effect to compute power for.")] = None,
     target_power: Annotated[float, typer.Option("--power", help="Target power for MDE and N.")] = 0.8,
     alpha: Alpha = 0.05,
+    engine: Engine = "pandas",
     attach: Attach = None,
     json_out: JsonFlag = False,
 ) -> None:

@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING, Annotated
 import typer
 
 if TYPE_CHECKING:
+    from ivdossier.estimation.engines import EngineSettings
     from ivdossier.estimation.spec import ModelSpec
 
 Data = Annotated[Path, typer.Option("--data", help="CSV, Parquet or Stata .dta file.")]
@@ -43,6 +44,24 @@ Attach = Annotated[
     str | None, typer.Option("--attach", help="Store the result as a run attached to this instrument.")
 ]
 PlotOut = Annotated[Path | None, typer.Option("--plot", help="Also write the plot to this .svg file.")]
+Engine = Annotated[
+    str,
+    typer.Option(
+        "--engine",
+        help="pandas (in memory, the default), duckdb (scans Parquet/CSV with bounded memory), spark, or auto "
+        "(pandas when the data fit, DuckDB above); --data may then be a directory of Parquet files.",
+    ),
+]
+MemoryLimit = Annotated[
+    str | None,
+    typer.Option(
+        "--memory-limit", help='DuckDB memory cap, e.g. "1GB" (the engine spills to disk beyond it).'
+    ),
+]
+SparkMaster = Annotated[
+    str | None,
+    typer.Option("--spark-master", help="Spark master URL for --engine spark (default: local mode)."),
+]
 
 
 def split_names(values: Sequence[str] | None) -> tuple[str, ...]:
@@ -81,3 +100,19 @@ def model_spec(
         vcov=vcov,
         alpha=alpha,
     )
+
+
+def engine_settings(engine: str, memory_limit: str | None, spark_master: str | None) -> EngineSettings | None:
+    """The scanning engine's settings from --engine, --memory-limit and --spark-master (None for pandas)."""
+    if engine == "pandas":
+        if memory_limit is not None or spark_master is not None:
+            from ivdossier.errors import InvalidInputError
+
+            raise InvalidInputError(
+                "--memory-limit and --spark-master apply to the scanning engines; add --engine duckdb, spark or "
+                "auto, or drop them."
+            )
+        return None
+    from ivdossier.estimation.engines import EngineSettings
+
+    return EngineSettings(engine=engine, memory_limit=memory_limit, spark_master=spark_master)

@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Sequence
-from typing import cast
+from dataclasses import dataclass
+from typing import Any, cast
 
 import numpy as np
 import pandas as pd
@@ -21,7 +22,11 @@ from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
 from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import PreparedData, prepare
 from ivdossier.estimation.diagnostics import DiagnosticSuite, unidentified_reason
-from ivdossier.estimation.estimators import KClassFit, fit_from_cross_products, fit_kclass
+from ivdossier.estimation.estimators import (
+    KClassFit,
+    fit_from_cross_products,
+    ols_from_cross_products,
+)
 from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
 from ivdossier.estimation.spec import ModelSpec, check_options
@@ -176,13 +181,31 @@ def _estimate(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool) -> 
     return dataclasses.replace(result, controls_table=table)
 
 
-def _interval_quantile(
+def interval_quantile(
     vcov: str, small_sample: bool, df_resid: int, n_clusters: tuple[int, ...], alpha: float
 ) -> tuple[float, str, int | None]:
+    """The quantile of the coefficient intervals, its description and its degrees of freedom (None: normal).
+
+    t with n - k - p degrees of freedom (G - 1, smallest G, with clusters) when ``small_sample``, else normal.
+    """
     df = None if not small_sample else (min(n_clusters) - 1 if vcov == "cluster" else df_resid)
     if df is None:
         return float(stats.norm.ppf(1 - alpha / 2)), "normal quantiles", None
     return float(stats.t.ppf(1 - alpha / 2, df)), f"t quantiles with {df} degrees of freedom", df
+
+
+@dataclass(frozen=True)
+class SampleCounts:
+    """What a result states about its rows beside the cross-products: rows used and dropped, partialled
+    columns (and those nested in a cluster), absorbed levels per factor and clusters per dimension."""
+
+    n: int
+    n_dropped: int
+    n_partialled: int
+    n_partialled_nested: int
+    n_absorbed: int
+    fe_levels: tuple[int, ...]
+    n_clusters: tuple[int, ...]
 
 
 def estimate_prepared(
@@ -197,185 +220,135 @@ def estimate_prepared(
 ) -> EstimationResult:
     """Estimate from validated, partialled data; ``diagnostics=False`` skips the weak-instrument suite."""
     with one_blas_thread():
-        return _estimate_prepared(
-            prepared,
-            method=method,
-            vcov=vcov,
-            small_sample=small_sample,
-            alpha=alpha,
-            fuller_alpha=fuller_alpha,
-            diagnostics=diagnostics,
-        )
-
-
-def _estimate_prepared(
-    prepared: PreparedData,
-    *,
-    method: str,
-    vcov: str,
-    small_sample: bool,
-    alpha: float,
-    fuller_alpha: float,
-    diagnostics: bool,
-) -> EstimationResult:
-    check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
-    spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
-    cp = None
-    if method != "ols":
+        check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
+        spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
         cp = build(
-            prepared.Z,
+            prepared.Z if method != "ols" else np.zeros((prepared.X.shape[0], 0)),
             prepared.X,
             prepared.y,
             spec,
             n_partialled=prepared.n_partialled,
             n_partialled_nested=prepared.n_partialled_nested,
         )
-        unident = unidentified_reason(cp, list(prepared.treatment), list(prepared.instruments))
-        if unident is not None:
-            return _unidentified_result(
-                prepared, cp, spec, method, vcov, small_sample, alpha, fuller_alpha, unident
-            )
-    n, k = prepared.X.shape
-    df_resid = n - k - prepared.n_partialled
-    if cp is not None:
-        mfit = fit_from_cross_products(cp, method=method, fuller_alpha=fuller_alpha)
-        beta, cov, kappa, kappa_liml, ssr = mfit.beta, mfit.cov, mfit.kappa, mfit.kappa_liml, mfit.ssr
-    else:
-        fit = fit_kclass(prepared.y, prepared.X, None, method=method, n_partialled=prepared.n_partialled)
-        cov = covariance_of(
-            fit, spec, n_partialled=prepared.n_partialled, n_nested=prepared.n_partialled_nested
+        counts = SampleCounts(
+            n=prepared.X.shape[0],
+            n_dropped=prepared.n_dropped,
+            n_partialled=prepared.n_partialled,
+            n_partialled_nested=prepared.n_partialled_nested,
+            n_absorbed=prepared.n_absorbed,
+            fe_levels=prepared.fe_levels,
+            n_clusters=spec.n_clusters(),
         )
-        beta, kappa, kappa_liml, ssr = fit.beta, fit.kappa, fit.kappa_liml, float(fit.resid @ fit.resid)
+        model = ModelSpec.build(
+            outcome=prepared.outcome,
+            treatment=prepared.treatment,
+            instruments=prepared.instruments if method != "ols" else (),
+            controls=prepared.controls,
+            absorb=prepared.absorb,
+            cluster=prepared.cluster or None,
+            weights=prepared.weights,
+            method=method,
+            vcov=vcov,
+            small_sample=small_sample,
+            alpha=alpha,
+            fuller_alpha=fuller_alpha,
+        )
+        return result_from_cross_products(cp, counts, model, diagnostics=diagnostics)
+
+
+def result_from_cross_products(
+    cp: CrossProducts, counts: SampleCounts, model: ModelSpec, *, diagnostics: bool = True
+) -> EstimationResult:
+    """The estimation result (coefficients, covariance, intervals and the diagnostic suite) from the sufficient
+    statistics alone: the one path from cross-products to numbers, whether they were built in memory or summed
+    by an SQL engine. ``diagnostics=False`` skips the weak-instrument suite (for resampling and comparisons)."""
+    from ivdossier.estimation.diagnostics import suite_from
+    from ivdossier.estimation.strength import require_distinct_instruments
+
+    n, k = counts.n, len(model.treatment)
+    df_resid = n - k - counts.n_partialled
+    method, vcov, alpha = model.method, model.vcov, model.alpha
+    common: dict[str, Any] = {
+        "method": method,
+        "vcov": vcov,
+        "outcome": model.outcome,
+        "names": model.treatment,
+        "alpha": alpha,
+        "n": n,
+        "n_dropped": counts.n_dropped,
+        "n_clusters": counts.n_clusters,
+        "df_resid": df_resid,
+        "n_partialled": counts.n_partialled,
+        "n_absorbed": counts.n_absorbed,
+        "n_absorbed_nested": counts.n_partialled_nested,
+        "fe_levels": counts.fe_levels,
+        "spec": model.echo(),
+        "conventions": conventions(vcov, model.small_sample),
+    }
+    q, ci_ref, ref_df = interval_quantile(vcov, model.small_sample, df_resid, counts.n_clusters, alpha)
+    names, inst = list(model.treatment), list(model.instruments)
+    if method == "ols":
+        mfit = ols_from_cross_products(cp)
+    else:
+        unident = unidentified_reason(cp, names, inst)
+        if unident is not None:
+            # no coefficients when the effect is not identified; the AR test and set are still reported
+            nan = np.full(k, np.nan)
+            return EstimationResult(
+                coef=nan,
+                se=nan.copy(),
+                cov=np.full((k, k), np.nan),
+                ci=np.full((k, 2), np.nan),
+                ci_reference=ci_ref,
+                ref_df=ref_df,
+                kappa=float("nan"),
+                kappa_liml=None,
+                sigma=float("nan"),
+                diagnostics=suite_from(
+                    cp,
+                    beta=nan,
+                    method=method,
+                    kappa=float("nan"),
+                    endog_names=names,
+                    instrument_names=inst,
+                    alpha=alpha,
+                ),
+                identification=unident,
+                **common,
+            )
+        mfit = fit_from_cross_products(cp, method=method, fuller_alpha=model.fuller_alpha)
+    beta, cov = mfit.beta, mfit.cov
     se = np.sqrt(np.diag(cov))
-    n_clusters = spec.n_clusters()
-    q, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, n_clusters, alpha)
     ci = np.column_stack([beta - q * se, beta + q * se])
     suite: DiagnosticSuite | NotApplicable | None = NotApplicable(OLS_REASON) if method == "ols" else None
     if diagnostics and method != "ols":
-        from ivdossier.estimation.diagnostics import weak_iv_suite
-
         try:
-            suite = weak_iv_suite(
-                prepared.y,
-                prepared.X,
-                prepared.Z,
-                spec=spec,
-                n_partialled=prepared.n_partialled,
-                n_partialled_nested=prepared.n_partialled_nested,
+            require_distinct_instruments(cp, inst)
+            suite = suite_from(
+                cp,
                 beta=beta,
                 method=method,
-                kappa=kappa,
-                endog_names=list(prepared.treatment),
-                instrument_names=list(prepared.instruments),
+                kappa=mfit.kappa,
+                endog_names=names,
+                instrument_names=inst,
                 alpha=alpha,
-                cross_products=cp,
             )
         except EstimationError as exc:
             # e.g. no more clusters than instruments: the coefficients stand, the diagnostics cannot be had
             suite = NotApplicable(f"instrument diagnostics not computed: {exc}")
     return EstimationResult(
-        method=method,
-        vcov=vcov,
-        outcome=prepared.outcome,
-        names=prepared.treatment,
         coef=beta,
         se=se,
         cov=cov,
         ci=ci,
-        alpha=alpha,
-        n=n,
-        n_dropped=prepared.n_dropped,
-        n_clusters=n_clusters,
-        df_resid=df_resid,
         ci_reference=ci_ref,
         ref_df=ref_df,
-        kappa=kappa,
-        kappa_liml=kappa_liml,
-        sigma=float(np.sqrt(ssr / df_resid)),
-        n_partialled=prepared.n_partialled,
-        n_absorbed=prepared.n_absorbed,
-        n_absorbed_nested=prepared.n_partialled_nested,
-        fe_levels=prepared.fe_levels,
-        spec=_echo(prepared, method, vcov, small_sample, alpha, fuller_alpha),
-        conventions=conventions(vcov, small_sample),
+        kappa=mfit.kappa,
+        kappa_liml=mfit.kappa_liml,
+        sigma=float(np.sqrt(mfit.ssr / df_resid)),
         diagnostics=suite,
+        **common,
     )
-
-
-def _unidentified_result(
-    prepared: PreparedData,
-    cp: CrossProducts,
-    spec: CovSpec,
-    method: str,
-    vcov: str,
-    small_sample: bool,
-    alpha: float,
-    fuller_alpha: float,
-    reason: str,
-) -> EstimationResult:
-    """No coefficients (NaN) when the effect is not identified; the AR test and set are still reported."""
-    from ivdossier.estimation.diagnostics import suite_from
-
-    n, k = prepared.X.shape
-    nan = np.full(k, np.nan)
-    suite = suite_from(
-        cp,
-        beta=nan,
-        method=method,
-        kappa=float("nan"),
-        endog_names=list(prepared.treatment),
-        instrument_names=list(prepared.instruments),
-        alpha=alpha,
-    )
-    df_resid = n - k - prepared.n_partialled
-    _, ci_ref, ref_df = _interval_quantile(vcov, small_sample, df_resid, spec.n_clusters(), alpha)
-    return EstimationResult(
-        method=method,
-        vcov=vcov,
-        outcome=prepared.outcome,
-        names=prepared.treatment,
-        coef=nan,
-        se=nan.copy(),
-        cov=np.full((k, k), np.nan),
-        ci=np.full((k, 2), np.nan),
-        alpha=alpha,
-        n=n,
-        n_dropped=prepared.n_dropped,
-        n_clusters=spec.n_clusters(),
-        df_resid=df_resid,
-        ci_reference=ci_ref,
-        ref_df=ref_df,
-        kappa=float("nan"),
-        kappa_liml=None,
-        sigma=float("nan"),
-        n_partialled=prepared.n_partialled,
-        n_absorbed=prepared.n_absorbed,
-        n_absorbed_nested=prepared.n_partialled_nested,
-        fe_levels=prepared.fe_levels,
-        spec=_echo(prepared, method, vcov, small_sample, alpha, fuller_alpha),
-        conventions=conventions(vcov, small_sample),
-        diagnostics=suite,
-        identification=reason,
-    )
-
-
-def _echo(
-    prepared: PreparedData, method: str, vcov: str, small_sample: bool, alpha: float, fuller_alpha: float
-) -> dict[str, object]:
-    return {
-        "outcome": prepared.outcome,
-        "treatment": list(prepared.treatment),
-        "instruments": list(prepared.instruments),
-        "controls": list(prepared.controls),
-        "absorb": list(prepared.absorb),
-        "cluster": list(prepared.cluster),
-        "weights": prepared.weights,
-        "method": method,
-        "vcov": vcov,
-        "small_sample": small_sample,
-        "alpha": alpha,
-        "fuller_alpha": fuller_alpha,
-    }
 
 
 def covariance_of(fit: KClassFit, spec: CovSpec, *, n_partialled: int, n_nested: int = 0) -> Array:
@@ -404,7 +377,8 @@ def fit_arrays(
     small_sample: bool = True,
     fuller_alpha: float = 1.0,
 ) -> tuple[Array, Array]:
-    """Coefficients and covariance from raw arrays, without validation or diagnostics (for resampling).
+    """Coefficients and covariance from raw arrays, without validation or diagnostics (for resampling), by
+    the same sufficient statistics as :func:`estimate` (one partialling pass, then :class:`CrossProducts`).
 
     Cluster and fixed-effect codes must be int64 arrays 0..G-1; the caller guarantees complete, finite data.
     """
@@ -424,14 +398,22 @@ def fit_arrays(
         cluster_codes=clusters if vcov == "cluster" else (),
     )
     cols = absorbed.columns
-    fit = fit_kclass(
-        cols[:, 0],
-        cols[:, 1 : 1 + k],
-        cols[:, 1 + k :] if Z is not None else None,
-        method=method,
-        n_partialled=absorbed.n_partialled,
-        fuller_alpha=fuller_alpha,
-    )
     spec = CovSpec(cast(CovKind, vcov), tuple(clusters) if vcov == "cluster" else (), small_sample)
-    cov = covariance_of(fit, spec, n_partialled=absorbed.n_partialled, n_nested=absorbed.n_absorbed_nested)
-    return fit.beta, cov
+    with one_blas_thread():
+        cp = build(
+            cols[:, 1 + k :] if Z is not None else np.zeros((cols.shape[0], 0)),
+            cols[:, 1 : 1 + k],
+            cols[:, 0],
+            spec,
+            n_partialled=absorbed.n_partialled,
+            n_partialled_nested=absorbed.n_absorbed_nested,
+        )
+        if method == "ols":
+            mfit = ols_from_cross_products(cp)
+        else:
+            if Z is None:
+                raise InvalidInputError(
+                    f"Method {method!r} needs excluded instruments; pass instruments or use 'ols'."
+                )
+            mfit = fit_from_cross_products(cp, method=method, fuller_alpha=fuller_alpha)
+    return mfit.beta, mfit.cov

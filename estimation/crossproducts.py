@@ -80,6 +80,22 @@ def pack_weights(mats: Array) -> Array:
     return np.asarray(w, dtype=np.float64)
 
 
+def packed_map(basis: np.ndarray) -> Array:
+    """The linear map L with pack(B' T B) = L pack(T) for symmetric T (m x m) and ``basis`` B (m x s)."""
+    b = np.asarray(basis, dtype=np.float64)
+    m, s = b.shape
+    ia, ib = pack_index(s)
+    ca, cb = pack_index(m)
+    lin = np.empty((ia.size, ca.size))
+    for col, (c, d) in enumerate(zip(ca, cb, strict=True)):
+        # T_cd (and T_dc when c != d) contributes B[c, a] B[d, b] (+ B[d, a] B[c, b]) to entry (a, b)
+        contrib = b[c, ia] * b[d, ib]
+        if c != d:
+            contrib = contrib + b[d, ia] * b[c, ib]
+        lin[:, col] = contrib
+    return lin
+
+
 def _group_add(target: Array, codes: np.ndarray, values: Array) -> None:
     for j in range(values.shape[1]):
         target[:, j] += np.bincount(codes, weights=values[:, j], minlength=target.shape[0])
@@ -156,18 +172,8 @@ class MomentAccumulator:
         the robust case); ``basis_inv`` maps the rows given to orthonormal rows (q_i = b_i basis_inv), used
         when the chunks held standardised columns rather than Q."""
         u = self.m * (self.m + 1) // 2
-        lin = np.eye(u)
-        if basis_inv is not None:
-            # t(q) = L t(b): entry (a, b) of R^{-T} T R^{-1}
-            ia, ib = pack_index(self.m)
-            ri = np.asarray(basis_inv, dtype=np.float64)
-            lin = np.empty((u, u))
-            for col, (c, d) in enumerate(zip(ia, ib, strict=True)):
-                # T_cd contributes to (R^{-T} T R^{-1})_ab via ri[c, a] ri[d, b] (+ the mirrored term c != d)
-                contrib = ri[c, ia] * ri[d, ib]
-                if c != d:
-                    contrib = contrib + ri[d, ia] * ri[c, ib]
-                lin[:, col] = contrib
+        # t(q) = L t(b): entry (a, b) of R^{-T} T R^{-1}
+        lin = np.eye(u) if basis_inv is None else packed_map(basis_inv)
         if self.n_dims == 0:
             return (lin @ self.row_moments @ lin.T,), (self.n,)
         moments = []
@@ -357,6 +363,41 @@ class CrossProducts:
             self.n_partialled,
             self.n_partialled_nested,
             self.exact_basis,
+        )
+
+    def subset(
+        self, instruments: Sequence[int], endogenous: Sequence[int], *, outcome: bool = True
+    ) -> CrossProducts:
+        """The sufficient statistics of a sub-model that keeps some instruments and endogenous columns (indices
+        within each block, in the order given) and optionally the outcome, from these sums alone.
+
+        The kept standardised columns are Q R_s (R_s the kept columns of R); a QR factorisation R_s = Q_s R'
+        gives the new basis Q Q_s, whose rows are Q_s' q_i, so every moment matrix maps by the packed form of
+        T -> Q_s' T Q_s. No pass over the rows.
+        """
+        cols = [int(j) for j in instruments] + [self.k + int(j) for j in endogenous]
+        if outcome:
+            cols.append(self.iy)
+        r_s = self.r[:, cols]
+        q_s, r_new = np.linalg.qr(r_s)
+        signs = np.where(np.diag(r_new) < 0, -1.0, 1.0)
+        q_s, r_new = q_s * signs, signs[:, None] * r_new
+        lin = packed_map(q_s)
+        moments = tuple(np.asarray(lin @ k_d @ lin.T, dtype=np.float64) for k_d in self.moments)
+        return CrossProducts(
+            n=self.n,
+            k=len(instruments),
+            p=len(endogenous),
+            has_y=outcome,
+            r=np.asarray(r_new, dtype=np.float64),
+            scale=np.asarray(self.scale[cols], dtype=np.float64),
+            kind=self.kind,
+            small_sample=self.small_sample,
+            moments=moments,
+            n_groups=self.n_groups,
+            n_partialled=self.n_partialled,
+            n_partialled_nested=self.n_partialled_nested,
+            exact_basis=self.exact_basis,
         )
 
     def to_dict(self) -> dict[str, Any]:

@@ -118,7 +118,8 @@ def as_names(value: str | Sequence[str] | None, option: str) -> tuple[str, ...]:
     return names
 
 
-def _check_roles(roles: dict[str, tuple[str, ...]]) -> None:
+def check_roles(roles: dict[str, tuple[str, ...]]) -> None:
+    """Refuse a column given two roles (or one role twice), naming the column and both roles."""
     seen: dict[str, str] = {}
     for role, names in roles.items():
         for name in names:
@@ -204,7 +205,7 @@ def prepare(
         "weights": (wname,) if wname else (),
     }
     # a fixed effect may also define the clusters, that is a common and valid design
-    _check_roles({k: v for k, v in roles.items() if k != "cluster"})
+    check_roles({k: v for k, v in roles.items() if k != "cluster"})
     _check_present(data, [n for names in roles.values() for n in names])
     if require_instruments and len(inst) < len(treat):
         raise EstimationError(
@@ -289,7 +290,7 @@ def prepare(
             "effects; check the specification."
         )
     if not _clearly_full_rank(cols_out[:, 1:], scale[1:]):
-        _check_collinear(x, z, scale, treat, inst, k)
+        check_collinear(x, z, scale, treat, inst, k)
     return PreparedData(
         y=y,
         X=x,
@@ -328,10 +329,14 @@ def _clearly_full_rank(mat: Array, scale: Array) -> bool:
     return bool(np.diag(chol).min() > 1e-3)
 
 
-def _check_collinear(
+def check_collinear(
     x: Array, z: Array, scale: Array, treat: tuple[str, ...], inst: tuple[str, ...], k: int
 ) -> None:
-    """Name the treatments and instruments that are constant, partialled away or collinear."""
+    """Name the treatments and instruments that are constant, partialled away or collinear.
+
+    ``x`` and ``z`` are the partialled columns (or any matrices with the same R factor, such as a square root
+    of their Gram matrix); ``scale`` holds [y, X, Z] lengths before partialling.
+    """
     n_inst = len(inst)
     _name_collinear(x, scale[1 : 1 + k], treat, "treatment", "controls or fixed effects")
     _name_collinear(z, scale[1 + k :], inst, "instrument", "controls or fixed effects")

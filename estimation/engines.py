@@ -14,9 +14,10 @@ decisions need domain review, whichever engine computed them.
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -26,11 +27,9 @@ import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.api import OLS_REASON, _interval_quantile, conventions, estimate
+from ivdossier.estimation.api import SampleCounts, estimate_spec, result_from_cross_products
 from ivdossier.estimation.crossproducts import CrossProducts
-from ivdossier.estimation.data import _check_collinear, _check_roles, as_names
-from ivdossier.estimation.diagnostics import DiagnosticSuite, suite_from, unidentified_reason
-from ivdossier.estimation.estimators import fit_from_cross_products
+from ivdossier.estimation.data import as_names, check_collinear, check_roles
 from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
 from ivdossier.estimation.sources import (
@@ -53,6 +52,7 @@ from ivdossier.estimation.sql_moments import (
     cross_products_from_sums,
     first_factor,
     gram_query,
+    infinite_counts_query,
     level_means_query,
     levels_summary_query,
     moments_query,
@@ -62,8 +62,6 @@ from ivdossier.estimation.sql_moments import (
     unpack,
 )
 from ivdossier.estimation.sql_runners import DuckDBRunner, ProgressCallback, Runner, SparkRunner, closing
-from ivdossier.estimation.strength import require_distinct_instruments
-from ivdossier.vocabulary import NotApplicable
 
 Array = NDArray[np.float64]
 ENGINES: tuple[str, ...] = ("auto", "pandas", "duckdb", "spark")
@@ -133,17 +131,6 @@ class SourceEstimate:
         return f"{self.result}\n{self.provenance}"
 
 
-@dataclass(frozen=True)
-class _Counts:
-    n: int
-    n_dropped: int
-    n_partialled: int
-    n_nested: int
-    n_absorbed: int
-    fe_levels: tuple[int, ...]
-    n_clusters: tuple[int, ...]
-
-
 def _check_columns(kinds: dict[str, str], model: ModelSpec) -> None:
     columns = list(kinds)
     for name in model.used:
@@ -209,7 +196,7 @@ def _normalise(
         "absorb": model.absorb,
         "weights": (weights,) if weights else (),
     }
-    _check_roles(roles)
+    check_roles(roles)
     if method != "ols" and len(inst) < len(treat):
         raise EstimationError(
             f"{len(inst)} excluded instrument(s) for {len(treat)} endogenous regressor(s): the model is not "
@@ -235,8 +222,16 @@ def _scan_counts(
     label = "counts and means" if shift is None else "counts, means and Gram matrix"
     groups = runner.rows(counts_query(plan, shift), label, 1)
     timings.append(ScanTiming(label, time.monotonic() - t0))
+    infinite = groups
+    if (
+        groups
+        and "ivd_inf0" not in groups[0]
+        and not all(_finite_sums(g, len(plan.demeaned)) for g in groups)
+    ):
+        # a non-finite sum: an infinite value, or a NaN (missing) one; count the infinite values exactly
+        infinite = runner.rows(infinite_counts_query(plan), "infinite values", 1)
     for j, name in enumerate(plan.numeric):
-        bad = sum(int(g[f"ivd_inf{j}"] or 0) for g in groups)
+        bad = sum(int(g.get(f"ivd_inf{j}") or 0) for g in infinite)
         if bad:
             raise InvalidInputError(
                 f"Column {name!r} holds {bad} infinite value(s); replace them or mark them missing."
@@ -253,16 +248,26 @@ def _scan_counts(
             f"Weights column {plan.weights!r} holds {int(row['ivd_badw'])} zero or negative value(s); weights must "
             "be positive, drop those rows first."
         )
-    for j, name in enumerate(plan.clusters):
-        if int(row[f"ivd_ng{j}"]) < 2:
-            raise InvalidInputError(
-                f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
-                "at least two levels or use vcov='robust'."
-            )
     for j, name in enumerate(plan.instruments):
         if row[f"ivd_lo{j}"] == row[f"ivd_hi{j}"]:
             raise EstimationError(f"Instrument {name!r} is constant in the used rows; drop it.")
     return row
+
+
+def _finite_sums(group: dict[str, Any], n_cols: int) -> bool:
+    """Whether the shifted sums and squares of every column in one group of scan 1 are finite."""
+    values = [group.get(f"ivd_h{j}") for j in range(n_cols)]
+    values += [group.get(f"ivd_g{i}") for i in range(n_cols * (n_cols + 1) // 2)]
+    return all(v is None or np.isfinite(float(v)) for v in values)
+
+
+def _check_cluster_counts(plan: MomentPlan, counts: tuple[int, ...]) -> None:
+    for name, count in zip(plan.clusters, counts, strict=True):
+        if count < 2:
+            raise InvalidInputError(
+                f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
+                "at least two levels or use vcov='robust'."
+            )
 
 
 def _targets_order(model: ModelSpec) -> list[int]:
@@ -284,7 +289,7 @@ def _check_partialled(model: ModelSpec, root: Array, pre: Array, *, exact: bool)
             f"The outcome {model.outcome!r} has no variation left after partialling out the controls and fixed "
             "effects; check the specification."
         )
-    _check_collinear(r[:, 1 : 1 + p], r[:, 1 + p :], scale, model.treatment, model.instruments, p)
+    check_collinear(r[:, 1 : 1 + p], r[:, 1 + p :], scale, model.treatment, model.instruments, p)
     if not exact:
         lengths = np.linalg.norm(r, axis=0)
         names = (model.outcome, *model.treatment, *model.instruments)
@@ -302,23 +307,32 @@ def _psd_root(gram: Array) -> Array:
     return np.asarray(np.sqrt(np.clip(vals, 0.0, None))[:, None] * vecs.T, dtype=np.float64)
 
 
-def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts, _Counts, list[ScanTiming]]:
-    """Run the scans on ``runner`` and build the sufficient statistics of ``model``."""
-    refuse_unsupported(model, runner.name)
-    _check_columns(runner.columns(), model)
-    absorb = model.absorb[0] if model.absorb else None
-    plan = MomentPlan(
+def moment_plan(runner: Runner, model: ModelSpec) -> MomentPlan:
+    """The query plan of ``model`` on the runner's relation."""
+    if model.outcome is None:
+        raise InvalidInputError("The SQL engines need an outcome column; pass outcome=.")
+    return MomentPlan(
         relation=runner.relation,
         instruments=model.instruments,
         treatments=model.treatment,
         outcome=model.outcome,
         controls=model.controls,
-        absorb=absorb,
+        absorb=model.absorb[0] if model.absorb else None,
         clusters=model.cluster,
         weights=model.weights,
         kind=model.vcov,
         dialect=runner.dialect,
     )
+
+
+def sql_cross_products(
+    runner: Runner, model: ModelSpec
+) -> tuple[CrossProducts, SampleCounts, list[ScanTiming]]:
+    """Run the scans on ``runner`` and build the sufficient statistics of ``model``."""
+    refuse_unsupported(model, runner.name)
+    _check_columns(runner.columns(), model)
+    absorb = model.absorb[0] if model.absorb else None
+    plan = moment_plan(runner, model)
     runner.scans_total = 3 if absorb else 2
     timings: list[ScanTiming] = []
     n_cols = len(plan.demeaned)
@@ -330,7 +344,7 @@ def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts,
     row = _scan_counts(runner, plan, timings, shift)
     n = int(row["ivd_complete"])
     wsum = float(row["ivd_wsum"])
-    means = [float(row[f"ivd_s{j}"]) / wsum for j in range(n_cols)]
+    means = [float(row[f"ivd_s{j}"]) / wsum for j in range(n_cols)] if shift is None else []
     n_targets = len(plan.targets)
     index = 2
     means_table = None
@@ -387,6 +401,8 @@ def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts,
     elif model.vcov == "cluster":
         moment_sums = [packed(r, "k", n_k) for r in mrows]
         groups = [int(r["ivd_groups"]) for r in mrows]
+    cluster_counts = tuple(groups[: len(plan.clusters)])
+    _check_cluster_counts(plan, cluster_counts)
     n_used_controls = len(model.controls)
     n_partialled = (0 if absorb else 1) + n_used_controls + levels
     cp = cross_products_from_sums(
@@ -404,122 +420,16 @@ def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts,
         n_partialled_nested=nested,
     )
     _check_partialled(model, cp.r * cp.scale[None, :], pre[:n_targets], exact=True)
-    counts = _Counts(
+    counts = SampleCounts(
         n=n,
         n_dropped=int(row["ivd_rows"]) - n,
         n_partialled=n_partialled,
-        n_nested=nested,
+        n_partialled_nested=nested,
         n_absorbed=levels,
         fe_levels=(levels,) if absorb else (),
-        n_clusters=tuple(int(row[f"ivd_ng{j}"]) for j in range(len(plan.clusters)))
-        if model.vcov == "cluster"
-        else (),
+        n_clusters=cluster_counts,
     )
     return cp, counts, timings
-
-
-def _ols_from(cp: CrossProducts) -> tuple[Array, Array, float]:
-    """OLS of the outcome on the treatments from the sufficient statistics: beta, covariance, SSR."""
-    rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
-    qq, rr = np.linalg.qr(rx)
-    beta = scipy.linalg.solve_triangular(rr, qq.T @ ry, check_finite=False)
-    rinv = scipy.linalg.solve_triangular(rr, np.eye(cp.p), check_finite=False)
-    u = ry - rx @ beta
-    cov = cp.covariance(rx, u, rinv @ rinv.T, cp.p)
-    unit = cp.scale[cp.iy] / cp.scale[cp.ix]
-    ssr = float(u @ u) * float(cp.scale[cp.iy]) ** 2
-    return np.asarray(beta * unit, dtype=np.float64), np.asarray(cov * np.outer(unit, unit)), ssr
-
-
-def result_from_cross_products(cp: CrossProducts, counts: _Counts, model: ModelSpec) -> EstimationResult:
-    """The estimation result (coefficients, covariance, intervals, diagnostic suite) from the sums alone."""
-    n, k = counts.n, len(model.treatment)
-    df_resid = n - k - counts.n_partialled
-    common: dict[str, Any] = {
-        "method": model.method,
-        "vcov": model.vcov,
-        "outcome": model.outcome,
-        "names": model.treatment,
-        "alpha": model.alpha,
-        "n": n,
-        "n_dropped": counts.n_dropped,
-        "n_clusters": counts.n_clusters,
-        "df_resid": df_resid,
-        "n_partialled": counts.n_partialled,
-        "n_absorbed": counts.n_absorbed,
-        "n_absorbed_nested": counts.n_nested,
-        "fe_levels": counts.fe_levels,
-        "spec": model.echo(),
-        "conventions": conventions(model.vcov, model.small_sample),
-    }
-    q, ci_ref, ref_df = _interval_quantile(
-        model.vcov, model.small_sample, df_resid, counts.n_clusters, model.alpha
-    )
-    names, inst = list(model.treatment), list(model.instruments)
-    if model.method == "ols":
-        beta, cov, ssr = _ols_from(cp)
-        kappa, kappa_liml = 0.0, None
-    else:
-        unident = unidentified_reason(cp, names, inst)
-        if unident is not None:
-            nan = np.full(k, np.nan)
-            unidentified_suite = suite_from(
-                cp,
-                beta=nan,
-                method=model.method,
-                kappa=float("nan"),
-                endog_names=names,
-                instrument_names=inst,
-                alpha=model.alpha,
-            )
-            return EstimationResult(
-                coef=nan,
-                se=nan.copy(),
-                cov=np.full((k, k), np.nan),
-                ci=np.full((k, 2), np.nan),
-                ci_reference=ci_ref,
-                ref_df=ref_df,
-                kappa=float("nan"),
-                kappa_liml=None,
-                sigma=float("nan"),
-                diagnostics=unidentified_suite,
-                identification=unident,
-                **common,
-            )
-        mfit = fit_from_cross_products(cp, method=model.method, fuller_alpha=model.fuller_alpha)
-        beta, cov, kappa, kappa_liml, ssr = mfit.beta, mfit.cov, mfit.kappa, mfit.kappa_liml, mfit.ssr
-    se = np.sqrt(np.diag(cov))
-    ci = np.column_stack([beta - q * se, beta + q * se])
-    suite: DiagnosticSuite | NotApplicable | None = (
-        NotApplicable(OLS_REASON) if model.method == "ols" else None
-    )
-    if model.method != "ols":
-        try:
-            require_distinct_instruments(cp, inst)
-            suite = suite_from(
-                cp,
-                beta=beta,
-                method=model.method,
-                kappa=kappa,
-                endog_names=names,
-                instrument_names=inst,
-                alpha=model.alpha,
-            )
-        except EstimationError as exc:
-            suite = NotApplicable(f"instrument diagnostics not computed: {exc}")
-    return EstimationResult(
-        coef=beta,
-        se=se,
-        cov=cov,
-        ci=ci,
-        ci_reference=ci_ref,
-        ref_df=ref_df,
-        kappa=kappa,
-        kappa_liml=kappa_liml,
-        sigma=float(np.sqrt(ssr / df_resid)),
-        diagnostics=suite,
-        **common,
-    )
 
 
 def choose_engine(engine: str, memory: MemoryEstimate | None, *, remote: bool = False) -> tuple[str, str]:
@@ -557,6 +467,189 @@ def _read_for_pandas(source: Source, used: list[str]) -> pd.DataFrame:
     header = pd.read_csv(source.files[0], nrows=0).columns
     present = [c for c in used if c in header]
     return pd.read_csv(source.files[0], usecols=present)
+
+
+@dataclass(frozen=True)
+class EngineSettings:
+    """How to run a scan: the engine (``auto``, ``pandas``, ``duckdb``, ``spark``) and its options (DuckDB's
+    memory cap, spill folder and threads; Spark's master URL or an existing session), progress and whether to
+    fingerprint the data."""
+
+    engine: str = "auto"
+    memory_limit: str | None = None
+    temp_directory: str | None = None
+    threads: int | None = None
+    spark_master: str | None = None
+    spark_session: Any = None
+    progress: ProgressCallback | None = None
+    with_fingerprint: bool = True
+
+
+@dataclass(frozen=True)
+class _SourcePlan:
+    source: Source | None
+    memory: MemoryEstimate | None
+    chosen: str
+    why: str
+    fingerprint: str | None
+    fingerprint_method: str
+    rows: int | None
+    rows_hint: int | None
+
+
+def _plan_source(path: str, model: ModelSpec, settings: EngineSettings) -> _SourcePlan:
+    """Resolve the file or folder, estimate its in-memory size, choose the engine and fingerprint the data."""
+    engine = settings.engine
+    if engine not in ENGINES:
+        raise InvalidInputError(f"Unknown engine {engine!r}; choose one of {', '.join(ENGINES)}.")
+    remote = "://" in str(path)
+    if remote and engine not in ("spark", "auto"):
+        raise InvalidInputError(
+            f"{path!r} is not a local path; only engine='spark' reads remote storage. Copy the data locally "
+            "or use engine='spark'."
+        )
+    source = None if remote else resolve_source(path)
+    memory = None if source is None else pandas_memory(source, model.used)
+    chosen, why = choose_engine(engine, memory, remote=remote)
+    if chosen != "pandas":
+        refuse_unsupported(model, chosen)
+    rows = memory.rows if memory and not memory.rows_estimated else None
+    return _SourcePlan(
+        source, memory, chosen, why, None, "not computed", rows, memory.rows if memory else None
+    )
+
+
+def _fingerprinted(plan: _SourcePlan, settings: EngineSettings) -> _SourcePlan:
+    """The plan with the data fingerprint (a pass over the bytes, so taken once the engine is settled)."""
+    source = plan.source
+    if not settings.with_fingerprint or source is None:
+        return plan
+    method = (
+        "SHA-256 over each file's relative name, size and SHA-256"
+        if source.is_directory
+        else "SHA-256 of the file's bytes"
+    )
+    return dataclasses.replace(plan, fingerprint=fingerprint(source), fingerprint_method=method)
+
+
+def read_source_frame(
+    path: str, model: ModelSpec, settings: EngineSettings, *, choice: str | None = None
+) -> tuple[pd.DataFrame, Provenance]:
+    """The used columns of a file (or Parquet folder) in memory, for the pandas engine; refused when they would
+    not fit. The provenance states the choice (``choice``: why, when ``auto`` chose pandas) and times the read."""
+    plan = _plan_source(path, model, dataclasses.replace(settings, engine="pandas"))
+    plan = _fingerprinted(dataclasses.replace(plan, why=choice or plan.why), settings)
+    if plan.memory is not None:
+        check_pandas_fits(plan.memory)
+    assert plan.source is not None
+    t0 = time.monotonic()
+    frame = _read_for_pandas(plan.source, model.used)
+    prov = Provenance(
+        "pandas",
+        pd.__version__,
+        plan.why,
+        str(path),
+        plan.fingerprint,
+        plan.fingerprint_method,
+        len(frame),
+        (ScanTiming("read", time.monotonic() - t0),),
+        {},
+        plan.memory,
+    )
+    return frame, prov
+
+
+def _open_runner(path: str, plan: _SourcePlan, settings: EngineSettings) -> tuple[Runner, dict[str, str]]:
+    if plan.chosen == "duckdb":
+        assert plan.source is not None
+        duck = DuckDBRunner(
+            [str(f) for f in plan.source.files],
+            plan.source.format,
+            memory_limit=settings.memory_limit,
+            temp_directory=settings.temp_directory,
+            threads=settings.threads,
+            rows_total=plan.rows_hint,
+            progress=settings.progress,
+        )
+        return duck, duck.settings()
+    source = plan.source
+    target = str(path) if source is None or source.format == "csv" else str(source.path)
+    spark = SparkRunner(
+        target,
+        source.format if source else _remote_format(str(path)),
+        session=settings.spark_session,
+        master=settings.spark_master,
+        rows_total=plan.rows_hint,
+        progress=settings.progress,
+    )
+    return spark, {"master": str(spark.spark.sparkContext.master)}  # type: ignore[attr-defined]
+
+
+def auto_choice(path: str, model: ModelSpec, settings: EngineSettings) -> str | None:
+    """Why ``auto`` chose pandas (None for an engine named by the caller): the stated size and threshold."""
+    if settings.engine != "auto":
+        return None
+    return _plan_source(str(path), model, settings).why
+
+
+@dataclass(frozen=True, eq=False)
+class SourceScan:
+    """The sufficient statistics of a model summed by a scanning engine, with the sample counts, the
+    provenance of the run and what an extra query on the same rows returned (None without one)."""
+
+    cross_products: CrossProducts
+    counts: SampleCounts
+    provenance: Provenance
+    extra: Any = None
+
+
+ExtraQuery = Callable[[Runner, MomentPlan], Any]
+
+
+def scan_source(
+    path: str, model: ModelSpec, settings: EngineSettings, *, extra: ExtraQuery | None = None
+) -> SourceScan | None:
+    """Sum the sufficient statistics of ``model`` over a file or Parquet folder with DuckDB or Spark; None when
+    ``settings.engine`` is ``auto`` and chose pandas (read the data with :func:`read_source_frame` instead).
+    ``extra(runner, plan)`` runs one more query on the same rows before the runner closes."""
+    check_roles(
+        {
+            "outcome": (model.outcome,) if model.outcome else (),
+            "treatment": model.treatment,
+            "instruments": model.instruments,
+            "controls": model.controls,
+            "absorb": model.absorb,
+            "weights": (model.weights,) if model.weights else (),
+        }
+    )
+    plan = _plan_source(str(path), model, settings)
+    if plan.chosen == "pandas":
+        if settings.engine == "pandas":
+            raise InvalidInputError("scan_source runs the SQL engines; read the data with read_source_frame.")
+        return None
+    plan = _fingerprinted(plan, settings)
+    runner, run_settings = _open_runner(str(path), plan, settings)
+    extra_out = None
+    with closing(runner), one_blas_thread():
+        version = runner.version()
+        cp, counts, timings = sql_cross_products(runner, model)
+        if extra is not None:
+            t0 = time.monotonic()
+            extra_out = extra(runner, moment_plan(runner, model))
+            timings.append(ScanTiming("summary", time.monotonic() - t0))
+    prov = Provenance(
+        plan.chosen,
+        version,
+        plan.why,
+        str(path),
+        plan.fingerprint,
+        plan.fingerprint_method,
+        plan.rows or counts.n + counts.n_dropped,
+        tuple(timings),
+        run_settings,
+        plan.memory,
+    )
+    return SourceScan(cp, counts, prov, extra_out)
 
 
 def estimate_source(
@@ -605,106 +698,25 @@ def estimate_source(
         alpha,
         fuller_alpha,
     )
-    remote = "://" in str(path)
-    if remote and engine not in ("spark", "auto"):
-        raise InvalidInputError(
-            f"{path!r} is not a local path; only engine='spark' reads remote storage. Copy the data locally "
-            "or use engine='spark'."
-        )
-    source = None if remote else resolve_source(path)
-    memory = None if source is None else pandas_memory(source, model.used)
-    chosen, why = choose_engine(engine, memory, remote=remote)
-    if chosen != "pandas":
-        refuse_unsupported(model, chosen)
-    fp = fingerprint(source) if (with_fingerprint and source is not None) else None
-    fp_method = (
-        "not computed"
-        if fp is None
-        else "SHA-256 over each file's relative name, size and SHA-256"
-        if source is not None and source.is_directory
-        else "SHA-256 of the file's bytes"
+    settings = EngineSettings(
+        engine=engine,
+        memory_limit=memory_limit,
+        temp_directory=temp_directory,
+        threads=threads,
+        spark_master=spark_master,
+        spark_session=spark_session,
+        progress=progress,
+        with_fingerprint=with_fingerprint,
     )
-    rows = memory.rows if memory and not memory.rows_estimated else None
-    rows_hint = memory.rows if memory else None
-    if chosen == "pandas":
-        if memory is not None:
-            check_pandas_fits(memory)
-        assert source is not None
+    scan = None if engine == "pandas" else scan_source(str(path), model, settings)
+    if scan is None:
+        frame, prov = read_source_frame(str(path), model, settings, choice=auto_choice(path, model, settings))
         t0 = time.monotonic()
-        frame = _read_for_pandas(source, model.used)
-        read_s = time.monotonic() - t0
-        t0 = time.monotonic()
-        result = estimate(
-            frame,
-            outcome=outcome,
-            treatment=model.treatment,
-            instruments=model.instruments,
-            controls=model.controls,
-            absorb=model.absorb,
-            cluster=model.cluster or None,
-            weights=weights,
-            method=method,
-            vcov=vcov,
-            small_sample=small_sample,
-            alpha=alpha,
-            fuller_alpha=fuller_alpha,
-        )
-        prov = Provenance(
-            "pandas",
-            pd.__version__,
-            why,
-            str(path),
-            fp,
-            fp_method,
-            len(frame),
-            (ScanTiming("read", read_s), ScanTiming("estimate", time.monotonic() - t0)),
-            {},
-            memory,
-        )
+        result = estimate_spec(frame, model)
+        prov = dataclasses.replace(prov, scans=(*prov.scans, ScanTiming("estimate", time.monotonic() - t0)))
         return SourceEstimate(result, prov)
-    runner: Runner
-    settings: dict[str, str] = {}
-    if chosen == "duckdb":
-        assert source is not None
-        duck = DuckDBRunner(
-            [str(f) for f in source.files],
-            source.format,
-            memory_limit=memory_limit,
-            temp_directory=temp_directory,
-            threads=threads,
-            rows_total=rows_hint,
-            progress=progress,
-        )
-        settings = duck.settings()
-        runner = duck
-    else:
-        target = str(path) if source is None or source.format == "csv" else str(source.path)
-        runner = SparkRunner(
-            target,
-            source.format if source else _remote_format(str(path)),
-            session=spark_session,
-            master=spark_master,
-            rows_total=rows_hint,
-            progress=progress,
-        )
-        settings = {"master": str(runner.spark.sparkContext.master)}  # type: ignore[attr-defined]
-    with closing(runner), one_blas_thread():
-        version = runner.version()
-        cp, counts, timings = sql_cross_products(runner, model)
-        result = result_from_cross_products(cp, counts, model)
-    prov = Provenance(
-        chosen,
-        version,
-        why,
-        str(path),
-        fp,
-        fp_method,
-        rows or counts.n + counts.n_dropped,
-        tuple(timings),
-        settings,
-        memory,
-    )
-    return SourceEstimate(result, prov)
+    result = result_from_cross_products(scan.cross_products, scan.counts, model)
+    return SourceEstimate(result, scan.provenance)
 
 
 def _remote_format(path: str) -> str:

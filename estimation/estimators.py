@@ -249,6 +249,28 @@ def fit_from_cross_products(cp: Any, *, method: str, fuller_alpha: float = 1.0) 
     )
 
 
+def ols_from_cross_products(cp: Any) -> MomentFit:
+    """OLS of the outcome on the treatments from :class:`~ivdossier.estimation.crossproducts.CrossProducts`
+    (no pass over the rows; the instrument block, if any, is ignored): the conventions of :func:`fit_kclass`."""
+    rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
+    qq, rr = np.linalg.qr(rx)
+    if np.any(np.abs(np.diag(rr)) <= RANK_TOL * np.maximum(np.linalg.norm(rx, axis=0), 1e-300)):
+        raise EstimationError("The regressors are collinear; drop the redundant regressor.")
+    beta = scipy.linalg.solve_triangular(rr, qq.T @ ry, check_finite=False)
+    rinv = scipy.linalg.solve_triangular(rr, np.eye(cp.p), check_finite=False)
+    u = ry - rx @ beta
+    cov = cp.covariance(rx, u, rinv @ rinv.T, cp.p)
+    unit = cp.scale[cp.iy] / cp.scale[cp.ix]
+    return MomentFit(
+        method="ols",
+        beta=np.asarray(beta * unit, dtype=np.float64),
+        cov=np.asarray(cov * np.outer(unit, unit), dtype=np.float64),
+        kappa=0.0,
+        kappa_liml=None,
+        ssr=float(u @ u) * float(cp.scale[cp.iy]) ** 2,
+    )
+
+
 def _liml_kappa_coords(w: Array, k: int) -> float:
     """Smallest eigenvalue of (W'M_Z W)^{-1} W'W from coordinates (the first k span the instruments)."""
     ww = w.T @ w

@@ -20,6 +20,7 @@ Conventions (stated here once):
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import math
 from collections.abc import Sequence
@@ -28,16 +29,17 @@ from typing import Any, cast
 
 import numpy as np
 import pandas as pd
+import scipy.linalg
 from numpy.typing import NDArray
 from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.api import estimate_prepared
-from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
-from ivdossier.estimation.data import PreparedData, as_names, prepare
-from ivdossier.estimation.estimators import fit_kclass
+from ivdossier.estimation.api import SampleCounts, result_from_cross_products
+from ivdossier.estimation.covariance import CovKind, CovSpec
+from ivdossier.estimation.crossproducts import CrossProducts, build
+from ivdossier.estimation.data import as_names, prepare
 from ivdossier.estimation.rows import RowAccount, count_rows
-from ivdossier.estimation.spec import check_options
+from ivdossier.estimation.spec import ModelSpec, check_options
 from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
@@ -225,6 +227,41 @@ def _aligned(head: Sequence[str], body: Sequence[Sequence[str]]) -> list[str]:
 # ----------------------------------------------------------------------------------------------------------
 
 
+@dataclass(frozen=True)
+class RawSummary:
+    """Unweighted sample statistics of the estimation rows that the standardised differences need.
+
+    ``sd`` maps each target and instrument to its sample standard deviation (ddof = 1); ``arms`` is set when
+    there is one instrument and it takes only the values 0 and 1: per target, (rows, mean, sample variance)
+    where the instrument is 1 and where it is 0.
+    """
+
+    sd: dict[str, float]
+    arms: dict[str, tuple[tuple[int, float, float], tuple[int, float, float]]] | None = None
+
+
+def raw_summary(frame: pd.DataFrame, targets: Sequence[str], instruments: Sequence[str]) -> RawSummary:
+    """The :class:`RawSummary` of the estimation rows held in memory."""
+
+    def values(name: str) -> Array:
+        return pd.to_numeric(frame[name]).to_numpy(dtype=np.float64)
+
+    sd = {name: float(np.std(values(name), ddof=1)) for name in dict.fromkeys([*targets, *instruments])}
+    arms = None
+    if len(instruments) == 1:
+        z = values(instruments[0])
+        if set(np.unique(z)) <= {0.0, 1.0}:
+            arms = {}
+            for t in targets:
+                w = values(t)
+                w1, w0 = w[z == 1.0], w[z == 0.0]
+                arms[t] = (
+                    (int(w1.size), float(w1.mean()), float(np.var(w1, ddof=1)) if w1.size > 1 else math.nan),
+                    (int(w0.size), float(w0.mean()), float(np.var(w0, ddof=1)) if w0.size > 1 else math.nan),
+                )
+    return RawSummary(sd, arms)
+
+
 @dataclass(frozen=True, eq=False)
 class _Stacked:
     targets: tuple[str, ...]
@@ -235,8 +272,9 @@ class _Stacked:
     dist: tuple[str, int | None]  # ("t", df) or ("normal", None)
     n: int
     n_dropped: int
-    frame: pd.DataFrame  # the estimation rows (raw values)
-    prepared: PreparedData  # of the first target (instruments, n_partialled, clusters)
+    summary: RawSummary | None  # raw statistics for the standardised differences
+    controls: tuple[str, ...] = ()
+    absorb: tuple[str, ...] = ()
     columns: tuple[str, ...] = ()  # every column the regressions use
 
 
@@ -312,37 +350,74 @@ def _stacked(
         for t in tgts
     ]
     first = preps[0]
-    z = first.X
-    coefs, resids = [], []
-    for p in preps:
-        fit = fit_kclass(p.y, z, None, method="ols")
-        coefs.append(fit.beta)
-        resids.append(fit.resid)
     spec = CovSpec(cast(CovKind, vcov), first.clusters if vcov == "cluster" else (), small_sample)
-    cov = sandwich(
-        z,
-        np.column_stack(resids),
+    ys = np.column_stack([p.y for p in preps])
+    cp = build(
+        first.X,
+        ys[:, :-1],
+        ys[:, -1],
         spec,
         n_partialled=first.n_partialled,
         n_partialled_nested=first.n_partialled_nested,
     )
-    df = first.n - len(inst) - first.n_partialled
-    dist = _reference(vcov, small_sample, df, spec.n_clusters())
+    return stacked_from(
+        cp,
+        targets=tgts,
+        instruments=inst,
+        n_dropped=n_dropped,
+        alpha=alpha,
+        summary=raw_summary(frame, tgts, inst),
+        controls=ctrl,
+        absorb=fe,
+        columns=tuple(dict.fromkeys(used)),
+    )
+
+
+def stacked_from(
+    cp: CrossProducts,
+    *,
+    targets: tuple[str, ...],
+    instruments: tuple[str, ...],
+    n_dropped: int,
+    alpha: float,
+    summary: RawSummary | None,
+    controls: tuple[str, ...] = (),
+    absorb: tuple[str, ...] = (),
+    columns: tuple[str, ...] = (),
+) -> _Stacked:
+    """Several targets regressed on the same instruments, from the sufficient statistics of [Z, targets] (the
+    instruments first, then the targets in order, the last one in the outcome slot): coefficients and the
+    seemingly-unrelated covariance, in data units, with the reference distribution of the intervals."""
+    k = cp.k
+    rz = cp.coords(cp.iz)
+    rw = np.asarray(cp.r[:, k:], dtype=np.float64)
+    rzz = rz[:k]
+    coef_std = scipy.linalg.solve_triangular(rzz, rw[:k], check_finite=False)  # (L, m)
+    rinv = scipy.linalg.solve_triangular(rzz, np.eye(k), check_finite=False)
+    resid = rw.copy()
+    resid[:k] = 0.0  # the instruments' coordinates span the first k: what is left is the residual
+    cov_std = cp.covariance(rz, resid, rinv @ rinv.T, k)
+    unit = cp.scale[k:][:, None] / cp.scale[:k][None, :]  # (m, L): target units per instrument unit
+    coef = coef_std.T * unit
+    cov = cov_std * np.outer(unit.ravel(), unit.ravel())
+    df = cp.n - k - cp.n_partialled
+    dist = _reference(cp.kind, cp.small_sample, df, cp.cluster_counts())
     quantile = float(
         stats.norm.ppf(1 - alpha / 2) if dist[0] == "normal" else stats.t.ppf(1 - alpha / 2, dist[1])
     )
     return _Stacked(
-        targets=tgts,
-        instruments=inst,
-        coef=np.vstack(coefs),
+        targets=targets,
+        instruments=instruments,
+        coef=np.asarray(coef, dtype=np.float64),
         cov=np.asarray(cov, dtype=np.float64),
         quantile=quantile,
         dist=dist,
-        n=first.n,
+        n=cp.n,
         n_dropped=n_dropped,
-        frame=frame,
-        prepared=first,
-        columns=tuple(dict.fromkeys(used)),
+        summary=summary,
+        controls=controls,
+        absorb=absorb,
+        columns=columns,
     )
 
 
@@ -359,20 +434,14 @@ def _p_two_sided(t: float, dist: tuple[str, int | None]) -> float:
     return float(2 * stats.t.sf(abs(t), dist[1]))
 
 
-def _std_diff(
-    frame: pd.DataFrame, target: str, instrument: str, coef: float, n_inst: int
-) -> tuple[float, str]:
-    w = pd.to_numeric(frame[target]).to_numpy(dtype=np.float64)
-    z = pd.to_numeric(frame[instrument]).to_numpy(dtype=np.float64)
-    if n_inst == 1 and set(np.unique(z)) <= {0.0, 1.0}:
-        w1, w0 = w[z == 1.0], w[z == 0.0]
-        pooled = (
-            math.sqrt((np.var(w1, ddof=1) + np.var(w0, ddof=1)) / 2) if min(w1.size, w0.size) > 1 else 0.0
-        )
-        value = (w1.mean() - w0.mean()) / pooled if pooled > 0 else math.nan
+def _std_diff(summary: RawSummary, target: str, instrument: str, coef: float) -> tuple[float, str]:
+    if summary.arms is not None:
+        (n1, m1, v1), (n0, m0, v0) = summary.arms[target]
+        pooled = math.sqrt((v1 + v0) / 2) if min(n1, n0) > 1 else 0.0
+        value = (m1 - m0) / pooled if pooled > 0 else math.nan
         return float(value), "binary: (mean1 - mean0) / pooled SD"
-    sd_w = float(np.std(w, ddof=1))
-    value = coef * float(np.std(z, ddof=1)) / sd_w if sd_w > 0 else math.nan
+    sd_w = summary.sd[target]
+    value = coef * summary.sd[instrument] / sd_w if sd_w > 0 else math.nan
     return float(value), "continuous: coef * SD(Z) / SD(W)"
 
 
@@ -387,7 +456,11 @@ def _rows(st: _Stacked, *, std_diff: bool = True) -> tuple[TargetRegression, ...
             b = float(st.coef[j, i])
             se = math.sqrt(max(float(cov_j[i, i]), 0.0))
             t = b / se if se > 0 else math.inf
-            sd, kind = _std_diff(st.frame, target, z, b, n_inst) if std_diff else (math.nan, "not computed")
+            sd, kind = (
+                _std_diff(st.summary, target, z, b)
+                if std_diff and st.summary is not None
+                else (math.nan, "not computed")
+            )
             coefs.append(
                 InstrumentCoefficient(
                     instrument=z,
@@ -439,6 +512,15 @@ def _reference_text(st: _Stacked) -> str:
 def _regressions(
     kind: str, st: _Stacked, *, vcov: str, alpha: float, data: pd.DataFrame
 ) -> InstrumentRegressions:
+    return regressions_from(
+        kind, st, vcov=vcov, alpha=alpha, row_account=count_rows(data, st.columns, n_used=st.n)
+    )
+
+
+def regressions_from(
+    kind: str, st: _Stacked, *, vcov: str, alpha: float, row_account: RowAccount | None
+) -> InstrumentRegressions:
+    """The balance or placebo-outcome table from stacked regressions (:func:`stacked_from`)."""
     return InstrumentRegressions(
         kind=kind,
         instruments=st.instruments,
@@ -446,13 +528,13 @@ def _regressions(
         joint=_joint(st),
         n=st.n,
         n_dropped=st.n_dropped,
-        controls=st.prepared.controls,
-        absorb=st.prepared.absorb,
+        controls=st.controls,
+        absorb=st.absorb,
         vcov=vcov,
         alpha=alpha,
         reference=_reference_text(st),
         caution=CAUTION,
-        row_account=count_rows(data, st.columns, n_used=st.n),
+        row_account=row_account,
     )
 
 
@@ -916,7 +998,6 @@ def per_instrument(
     alpha: float = 0.05,
 ) -> PerInstrumentResult:
     """Just-identified 2SLS for each instrument and the over-identified comparison (two or more instruments)."""
-    from ivdossier.estimation.specification import overid_test
 
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
@@ -935,22 +1016,51 @@ def per_instrument(
     frame, n_dropped = _complete_rows(data, used)
     common = {"controls": ctrl, "absorb": fe, "cluster": clus, "weights": weights}
     full = prepare(frame, outcome=outcome, treatment=treatment, instruments=inst, **common)  # type: ignore[arg-type]
-    res_all = estimate_prepared(
-        full, method="2sls", vcov=vcov, small_sample=small_sample, alpha=alpha, diagnostics=False
-    )
     spec = CovSpec(cast(CovKind, vcov), full.clusters if vcov == "cluster" else (), small_sample)
-    overid = overid_test(full.y, full.X, full.Z, beta=res_all.coef, spec=spec, n_partialled=full.n_partialled)
+    cp = build(
+        full.Z,
+        full.X,
+        full.y,
+        spec,
+        n_partialled=full.n_partialled,
+        n_partialled_nested=full.n_partialled_nested,
+    )
+    counts = SampleCounts(
+        n=full.n,
+        n_dropped=n_dropped,
+        n_partialled=full.n_partialled,
+        n_partialled_nested=full.n_partialled_nested,
+        n_absorbed=full.n_absorbed,
+        fe_levels=full.fe_levels,
+        n_clusters=spec.n_clusters(),
+    )
+    model = ModelSpec.build(
+        outcome=outcome, treatment=treatment, instruments=inst, vcov=vcov, small_sample=small_sample,
+        alpha=alpha, **common,
+    )  # fmt: skip
+    return replace(per_instrument_from(cp, counts, model), row_account=count_rows(data, used, n_used=full.n))
+
+
+def per_instrument_from(cp: CrossProducts, counts: SampleCounts, model: ModelSpec) -> PerInstrumentResult:
+    """Each instrument's just-identified 2SLS, its own first-stage F and the over-identified comparison, from
+    the sufficient statistics of the model with every instrument (:meth:`CrossProducts.subset`)."""
+    from ivdossier.estimation.specification import overid_from
+
+    two_sls = dataclasses.replace(model, method="2sls")
+    res_all = result_from_cross_products(cp, counts, two_sls, diagnostics=False)
+    overid = overid_from(cp, beta=res_all.coef)
     rows = []
-    for j, z in enumerate(inst):
-        zj = full.Z[:, j : j + 1]
-        one = replace(full, Z=zj, instruments=(z,))
-        res = estimate_prepared(
-            one, method="2sls", vcov=vcov, small_sample=small_sample, alpha=alpha, diagnostics=False
+    for j, z in enumerate(model.instruments):
+        one = cp.subset([j], [0])
+        res = result_from_cross_products(
+            one, counts, dataclasses.replace(two_sls, instruments=(z,)), diagnostics=False
         )
-        fs = fit_kclass(full.X[:, 0], zj, None, method="ols")
-        fs_cov = sandwich(
-            zj, fs.resid, spec, n_partialled=full.n_partialled, n_partialled_nested=full.n_partialled_nested
-        )
+        # first stage of the treatment on this instrument alone: OLS in the sub-model's coordinates
+        rz, rx = one.coords(one.iz), one.coords(one.ix)
+        b = rx[0, 0] / rz[0, 0]
+        fs_resid = rx.copy()
+        fs_resid[0] = 0.0
+        fs_var = one.covariance(rz, fs_resid, np.array([[1.0 / rz[0, 0] ** 2]]), 1)[0, 0]
         rows.append(
             JustIdentifiedEstimate(
                 instrument=z,
@@ -958,23 +1068,22 @@ def per_instrument(
                 se=float(res.se[0]),
                 ci_lower=float(res.ci[0, 0]),
                 ci_upper=float(res.ci[0, 1]),
-                first_stage_f=float(fs.beta[0] ** 2 / fs_cov[0, 0]),
+                first_stage_f=float(b**2 / fs_var),
                 difference_from_all=float(res.coef[0] - res_all.coef[0]),
             )
         )
     return PerInstrumentResult(
-        treatment=treatment,
-        instruments=inst,
+        treatment=model.treatment[0],
+        instruments=model.instruments,
         rows=tuple(rows),
         estimate_all=float(res_all.coef[0]),
         se_all=float(res_all.se[0]),
         ci_all=(float(res_all.ci[0, 0]), float(res_all.ci[0, 1])),
         overid=cast(dict[str, Any], json_safe(overid.to_dict())),
-        n=full.n,
-        n_dropped=n_dropped,
-        vcov=vcov,
-        alpha=alpha,
+        n=counts.n,
+        n_dropped=counts.n_dropped,
+        vcov=model.vcov,
+        alpha=model.alpha,
         ci_reference=res_all.ci_reference,
         caution=CAUTION,
-        row_account=count_rows(data, used, n_used=full.n),
     )

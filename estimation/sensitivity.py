@@ -27,6 +27,7 @@ the direct effect lay in the stated range; no statistic establishes exclusion.
 
 from __future__ import annotations
 
+import dataclasses
 import io
 import math
 from collections.abc import Sequence
@@ -35,14 +36,16 @@ from typing import Any, cast
 
 import numpy as np
 import pandas as pd
+import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.api import estimate_prepared
-from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, is_psd, sandwich
+from ivdossier.estimation.api import SampleCounts, result_from_cross_products
+from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, is_psd
+from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import PreparedData, as_names, prepare
-from ivdossier.estimation.estimators import fit_kclass
 from ivdossier.estimation.rows import RowAccount, count_rows
+from ivdossier.estimation.spec import ModelSpec
 from ivdossier.jsonsafe import Record, json_safe
 
 __all__ = [
@@ -51,9 +54,13 @@ __all__ = [
     "LocalToZeroResult",
     "UnionIntervalResult",
     "breakdown_value",
+    "breakdown_value_from",
     "local_to_zero",
+    "local_to_zero_from",
     "plot_sensitivity_svg",
+    "sensitivity_core",
     "union_of_intervals",
+    "union_of_intervals_from",
 ]
 
 Array = NDArray[np.float64]
@@ -80,6 +87,8 @@ class _Core:
     vcov: str
     alpha: float
     exact_from_vertices: bool
+    y_coords: Array  # the partialled outcome and instruments as coordinates in the orthonormal basis, in
+    z_coords: Array  # data units (m and m x L): auxiliary regressions without a pass over the rows
 
     def estimate(self, gamma: Array) -> float:
         return float(self.beta_hat - self.shift @ gamma)
@@ -130,33 +139,70 @@ def _spec_options(
 
 
 def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float) -> _Core:
-    base = estimate_prepared(
-        prepared, method="2sls", vcov=vcov, small_sample=small_sample, alpha=alpha, diagnostics=False
-    )
     spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
-    fit = fit_kclass(prepared.y, prepared.X, prepared.Z, method="2sls", n_partialled=prepared.n_partialled)
-    x, z = prepared.X, prepared.Z
-    shift = (fit.bread @ (x.T @ z)).ravel()  # A = (X'P_Z X)^{-1} X'Z, 1 x L
-    m = z - x @ shift[None, :]
-    quad = sandwich(
-        fit.score_regressors,
-        np.column_stack([fit.resid, m]),
+    cp = build(
+        prepared.Z,
+        prepared.X,
+        prepared.y,
         spec,
         n_partialled=prepared.n_partialled,
-        bread=fit.bread,
         n_partialled_nested=prepared.n_partialled_nested,
     )
+    counts = SampleCounts(
+        n=prepared.n,
+        n_dropped=prepared.n_dropped,
+        n_partialled=prepared.n_partialled,
+        n_partialled_nested=prepared.n_partialled_nested,
+        n_absorbed=prepared.n_absorbed,
+        fe_levels=prepared.fe_levels,
+        n_clusters=spec.n_clusters(),
+    )
+    model = ModelSpec.build(
+        outcome=prepared.outcome,
+        treatment=prepared.treatment,
+        instruments=prepared.instruments,
+        controls=prepared.controls,
+        absorb=prepared.absorb,
+        cluster=prepared.cluster or None,
+        weights=prepared.weights,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+    )
+    return sensitivity_core(cp, counts, model)
+
+
+def sensitivity_core(cp: CrossProducts, counts: SampleCounts, model: ModelSpec) -> _Core:
+    """The 2SLS fit, A and H of the module docstring from the sufficient statistics (one treatment)."""
+    if cp.p != 1:
+        raise InvalidInputError(
+            "The plausibly-exogenous analysis takes one treatment column; pass treatment= as a single name."
+        )
+    two_sls = dataclasses.replace(model, method="2sls")
+    base = result_from_cross_products(cp, counts, two_sls, diagnostics=False)
+    k = cp.k
+    # coordinates in data units: the partialled columns are Q times these
+    z = cp.coords(cp.iz) * cp.scale[:k][None, :]
+    x = cp.coords(cp.ix) * cp.scale[cp.ix][None, :]
+    y = cp.coords(cp.iy) * cp.scale[cp.iy]
+    xhat = np.zeros_like(x)
+    xhat[:k] = x[:k]
+    bread = np.array([[1.0 / float(xhat[:, 0] @ xhat[:, 0])]])
+    shift = (bread @ (x.T @ z)).ravel()  # A = (X'P_Z X)^{-1} X'Z, 1 x L
+    resid = y - x[:, 0] * float(base.coef[0])
+    m = z - x @ shift[None, :]
+    quad = cp.covariance(xhat, np.column_stack([resid, m]), bread, 1)
     se = float(base.se[0])
     if not se > 0:
         raise EstimationError(
             "The 2SLS standard error is zero, so no interval can be formed; check the data."
         )
     quantile = float((base.ci[0, 1] - base.coef[0]) / se)
-    rf = fit_kclass(prepared.y, z, None, method="ols").beta
-    two_way = vcov == "cluster" and len(prepared.clusters) == 2
+    rf = scipy.linalg.solve_triangular(z[:k], y[:k], check_finite=False)
+    two_way = model.vcov == "cluster" and len(cp.moments) > 1
     return _Core(
-        treatment=prepared.treatment[0],
-        instruments=prepared.instruments,
+        treatment=model.treatment[0],
+        instruments=model.instruments,
         beta_hat=float(base.coef[0]),
         se_hat=se,
         ci_hat=(float(base.ci[0, 0]), float(base.ci[0, 1])),
@@ -165,10 +211,12 @@ def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float
         quantile=quantile,
         ci_reference=base.ci_reference,
         reduced_form=np.asarray(rf, dtype=np.float64),
-        n=prepared.n,
-        vcov=vcov,
-        alpha=alpha,
+        n=counts.n,
+        vcov=model.vcov,
+        alpha=model.alpha,
         exact_from_vertices=(not two_way) or is_psd(quad),
+        y_coords=np.asarray(y, dtype=np.float64),
+        z_coords=np.asarray(z, dtype=np.float64),
     )
 
 
@@ -335,6 +383,33 @@ def union_of_intervals(
         vcov=vcov,
     )
     core = _core(prepared, vcov=vcov, small_sample=small_sample, alpha=alpha)
+    return _union(core, gamma_min, gamma_max, n_grid, _account(data, prepared))
+
+
+def union_of_intervals_from(
+    cp: CrossProducts,
+    counts: SampleCounts,
+    model: ModelSpec,
+    *,
+    gamma_min: float | Sequence[float],
+    gamma_max: float | Sequence[float],
+    n_grid: int = 101,
+    row_account: RowAccount | None = None,
+) -> UnionIntervalResult:
+    """:func:`union_of_intervals` from the sufficient statistics (any engine)."""
+    if n_grid < 2:
+        raise InvalidInputError(f"n_grid must be at least 2, got {n_grid}.")
+    return _union(sensitivity_core(cp, counts, model), gamma_min, gamma_max, n_grid, row_account)
+
+
+def _union(
+    core: _Core,
+    gamma_min: float | Sequence[float],
+    gamma_max: float | Sequence[float],
+    n_grid: int,
+    row_account: RowAccount | None,
+) -> UnionIntervalResult:
+    alpha, vcov = core.alpha, core.vcov
     n_inst = len(core.instruments)
     lo = _as_vector(gamma_min, n_inst, "gamma_min")
     hi = _as_vector(gamma_max, n_inst, "gamma_max")
@@ -385,7 +460,7 @@ def union_of_intervals(
         vcov=vcov,
         n=core.n,
         note=NOTE,
-        row_account=_account(data, prepared),
+        row_account=row_account,
     )
 
 
@@ -478,6 +553,29 @@ def local_to_zero(
         vcov=vcov,
     )
     core = _core(prepared, vcov=vcov, small_sample=small_sample, alpha=alpha)
+    return _ltz(core, mu, omega, _account(data, prepared))
+
+
+def local_to_zero_from(
+    cp: CrossProducts,
+    counts: SampleCounts,
+    model: ModelSpec,
+    *,
+    mu: float | Sequence[float],
+    omega: float | Sequence[Sequence[float]] | Sequence[float],
+    row_account: RowAccount | None = None,
+) -> LocalToZeroResult:
+    """:func:`local_to_zero` from the sufficient statistics (any engine)."""
+    return _ltz(sensitivity_core(cp, counts, model), mu, omega, row_account)
+
+
+def _ltz(
+    core: _Core,
+    mu: float | Sequence[float],
+    omega: float | Sequence[Sequence[float]] | Sequence[float],
+    row_account: RowAccount | None,
+) -> LocalToZeroResult:
+    alpha, vcov = core.alpha, core.vcov
     n_inst = len(core.instruments)
     mu_v = _as_vector(mu, n_inst, "mu")
     om = np.asarray(omega, dtype=np.float64)
@@ -519,7 +617,7 @@ def local_to_zero(
         vcov=vcov,
         n=core.n,
         note=NOTE,
-        row_account=_account(data, prepared),
+        row_account=row_account,
     )
 
 
@@ -652,6 +750,26 @@ def breakdown_value(
         vcov=vcov,
     )
     core = _core(prepared, vcov=vcov, small_sample=small_sample, alpha=alpha)
+    return _breakdown(core, target, direction, _account(data, prepared))
+
+
+def breakdown_value_from(
+    cp: CrossProducts,
+    counts: SampleCounts,
+    model: ModelSpec,
+    *,
+    target: float = 0.0,
+    direction: Sequence[float] | None = None,
+    row_account: RowAccount | None = None,
+) -> BreakdownResult:
+    """:func:`breakdown_value` from the sufficient statistics (any engine)."""
+    return _breakdown(sensitivity_core(cp, counts, model), target, direction, row_account)
+
+
+def _breakdown(
+    core: _Core, target: float, direction: Sequence[float] | None, row_account: RowAccount | None
+) -> BreakdownResult:
+    alpha, vcov = core.alpha, core.vcov
     n_inst = len(core.instruments)
     if direction is None:
         if n_inst > 1:
@@ -667,7 +785,7 @@ def breakdown_value(
         raise InvalidInputError("direction is the zero vector; give at least one non-zero weight.")
     dvec = dvec / norm
     t = _breakdown_t(core, dvec, float(target))
-    rf = float(core.reduced_form @ dvec) if n_inst == 1 else _reduced_form_along(prepared, dvec)
+    rf = float(core.reduced_form @ dvec) if n_inst == 1 else _reduced_form_along(core, dvec)
     return BreakdownResult(
         treatment=core.treatment,
         instruments=core.instruments,
@@ -685,14 +803,14 @@ def breakdown_value(
         vcov=vcov,
         n=core.n,
         note=NOTE,
-        row_account=_account(data, prepared),
+        row_account=row_account,
     )
 
 
-def _reduced_form_along(prepared: PreparedData, direction: Array) -> float:
-    """OLS coefficient of the partialled outcome on the instrument combination Z'direction."""
-    zc = prepared.Z @ direction
-    return float(fit_kclass(prepared.y, zc, None, method="ols").beta[0])
+def _reduced_form_along(core: _Core, direction: Array) -> float:
+    """OLS coefficient of the partialled outcome on the instrument combination Z'direction (coordinates)."""
+    zc = core.z_coords @ direction
+    return float(zc @ core.y_coords) / float(zc @ zc)
 
 
 # ----------------------------------------------------------------------------------------------------------

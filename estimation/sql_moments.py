@@ -151,24 +151,24 @@ def sample_means_query(plan: MomentPlan, rows: int = 10000) -> str:
 
 def counts_query(plan: MomentPlan, shift: Sequence[float] | None = None) -> str:
     """Scan 1, one row per value of the completeness flag (grouping is cheaper than filtered aggregates): rows,
-    infinite values, bad weights, instrument ranges, cluster counts and weighted sums. With ``shift`` (no
+    infinite values, bad weights, instrument ranges and weighted sums. With ``shift`` (no
     absorbed factor) also the weighted sums ``ivd_h{j}`` and cross-products ``ivd_g{i}`` of v - shift, from
     which the centred Gram matrix follows exactly (G - h h' / W), so no separate Gram scan is needed."""
-    inf = "CAST('Infinity' AS DOUBLE)"
     n_d = len(plan.demeaned)
     sel = ["ivd_ok", "count(*) AS ivd_rows"]
-    values = [_alias("v", j) for j in range(n_d)] + (["ivd_w"] if plan.weights else [])
-    for j, v in enumerate(values):
-        sel.append(f"sum(CASE WHEN abs({v}) = {inf} THEN 1 ELSE 0 END) AS {_alias('inf', j)}")
+    if shift is None or plan.weights:
+        # without a shift (or with weights, whose missing values hide a row's other values from the sums)
+        # infinite values are counted here; otherwise a non-finite sum calls :func:`infinite_counts_query`
+        sel += _infinite_counts(plan)
     sel.append("sum(ivd_w) AS ivd_wsum")
     if plan.weights:
         sel.append("sum(CASE WHEN ivd_w <= 0.0e+00 THEN 1 ELSE 0 END) AS ivd_badw")
-    sel += [f"sum(ivd_w * {_alias('v', j)}) AS {_alias('s', j)}" for j in range(n_d)]
+    if shift is None:  # with a shift the means follow from the sums h of v - shift
+        sel += [f"sum(ivd_w * {_alias('v', j)}) AS {_alias('s', j)}" for j in range(n_d)]
     for j in range(len(plan.instruments)):
         sel.append(f"min({_alias('v', j)}) AS {_alias('lo', j)}")
         sel.append(f"max({_alias('v', j)}) AS {_alias('hi', j)}")
-    for j in range(len(plan.clusters)):
-        sel.append(f"count(DISTINCT {_alias('c', j)}) AS {_alias('ng', j)}")
+    # clusters are counted by the moments scan, which groups by them anyway
     src = f"({rows_query(plan)}) ivd_r"
     if shift is not None:
         if plan.absorb is not None:
@@ -184,6 +184,20 @@ def counts_query(plan: MomentPlan, shift: Sequence[float] | None = None) -> str:
             for i, (a, b) in enumerate(zip(*pack_index(n_d), strict=True))
         ]
     return f"SELECT {', '.join(sel)} FROM {src} GROUP BY ivd_ok"
+
+
+def _infinite_counts(plan: MomentPlan) -> list[str]:
+    inf = "CAST('Infinity' AS DOUBLE)"
+    values = [_alias("v", j) for j in range(len(plan.demeaned))] + (["ivd_w"] if plan.weights else [])
+    return [
+        f"sum(CASE WHEN abs({v}) = {inf} THEN 1 ELSE 0 END) AS {_alias('inf', j)}"
+        for j, v in enumerate(values)
+    ]
+
+
+def infinite_counts_query(plan: MomentPlan) -> str:
+    """Infinite values per numeric column over every row (run only when a sum of scan 1 is not finite)."""
+    return f"SELECT {', '.join(_infinite_counts(plan))} FROM ({rows_query(plan)}) ivd_r"
 
 
 def level_means_query(plan: MomentPlan) -> str:
@@ -312,6 +326,22 @@ def moments_query(
         for i, (a, b) in enumerate(zip(ka, kb, strict=True))
     ]
     return f"SELECT {', '.join(sel)} FROM ({grouped}) ivd_g GROUP BY ivd_dim ORDER BY ivd_dim"
+
+
+def raw_summary_query(plan: MomentPlan, columns: Sequence[int], split: int | None = None) -> str:
+    """Unweighted row counts, means and sample variances (ddof = 1) of the given numeric columns (positions in
+    ``plan.demeaned``) over the complete rows; with ``split`` grouped by whether that column is 0, 1 or another
+    value (``ivd_arm`` 0, 1, 2), for the standardised differences of one binary instrument."""
+    sel = ["count(*) AS ivd_n"]
+    for j in columns:
+        v = _alias("v", j)
+        sel += [f"avg({v}) AS {_alias('mean', j)}", f"var_samp({v}) AS {_alias('var', j)}"]
+    src = f"FROM ({rows_query(plan)}) ivd_r WHERE ivd_ok"
+    if split is None:
+        return f"SELECT 0 AS ivd_arm, {', '.join(sel)} {src}"
+    v = _alias("v", split)
+    arm = f"CASE WHEN {v} = 0.0e+00 THEN 0 WHEN {v} = 1.0e+00 THEN 1 ELSE 2 END"
+    return f"SELECT {arm} AS ivd_arm, {', '.join(sel)} {src} GROUP BY {arm}"
 
 
 def unpack(values: Sequence[float], size: int) -> Array:

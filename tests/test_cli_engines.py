@@ -64,3 +64,33 @@ def test_engine_options_without_an_engine_are_refused(cli, parquet_file: Path) -
     assert code == 2 and "--memory-limit and --spark-master apply to the scanning engines" in err
     code, _, err = cli(*_args(parquet_file), "--engine", "gpu")
     assert code == 2 and "Unknown engine 'gpu'" in err
+
+
+def test_evidence_commands_take_the_engine_option(cli, parquet_file: Path) -> None:  # type: ignore[no-untyped-def]
+    args = [
+        "falsify", "per-instrument", "--data", str(parquet_file), "--outcome", "y", "--treatment", "x",
+        "--instrument", "z1", "--instrument", "z2", "--control", "w", "--vcov", "cluster", "--cluster", "g",
+        "--json",
+    ]  # fmt: skip
+    code, out, err = cli(*args)
+    assert code == 0, err
+    memory = json.loads(out)
+    code, out, err = cli(*args, "--engine", "duckdb", "--memory-limit", "500MB")
+    assert code == 0, err
+    scanned = json.loads(out)
+    # the reference is the in-memory path of the same command: identical numbers to 1e-10 relative
+    for got, ref in zip(scanned["rows"], memory["rows"], strict=True):
+        assert got["estimate"] == pytest.approx(ref["estimate"], rel=1e-10)
+        assert got["first_stage_f"] == pytest.approx(ref["first_stage_f"], rel=1e-10)
+    assert scanned["overid"]["statistic"] == pytest.approx(memory["overid"]["statistic"], rel=1e-10)
+    assert "engine: duckdb (chosen by the caller)" in err
+
+
+def test_an_analysis_that_needs_the_rows_refuses_a_scanning_engine(cli, parquet_file: Path) -> None:  # type: ignore[no-untyped-def]
+    code, _, err = cli(
+        "falsify", "first-stage-signs", "--data", str(parquet_file), "--treatment", "x", "--instrument", "z1",
+        "--by", "w", "--engine", "duckdb",
+    )  # fmt: skip
+    assert code == 2
+    assert "ivdossier falsify first-stage-signs runs on engine 'pandas' only" in err
+    assert "Drop --engine duckdb" in err

@@ -210,6 +210,18 @@ def test_same_errors_as_the_pandas_path(frame: pd.DataFrame, tmp_path: Path) -> 
             r"'extra_z'.*collinear",
         ),
         (frame, {"instruments": ["fibre_wav"]}, InvalidInputError, "did you mean 'fibre_wave'"),
+        (  # row 3 misses the outcome: an infinite value there is still an error on both paths
+            frame.assign(age=frame["age"].where(frame.index != 3, -np.inf)),
+            {"cluster": "district", "vcov": "cluster"},
+            InvalidInputError,
+            "Column 'age' holds an infinite value|Column 'age' holds 1 infinite value",
+        ),
+        (
+            frame.assign(region="north"),
+            {"cluster": "region", "vcov": "cluster"},
+            InvalidInputError,
+            "Cluster variable 'region' has a single level in the used rows",
+        ),
         (frame, {"cluster": "district", "vcov": "cluster", "controls": []}, None, ""),
     ]
     for data, extra, err, pattern in cases:

@@ -72,3 +72,32 @@ def test_spark_equals_pandas_path_in_every_number(
     # the runner dropped its views and kept the caller's session running
     assert not [t for t in spark.catalog.listTables() if t.name.startswith("ivd_")]
     assert spark.conf.get("spark.sql.codegen.maxFields") == "100"  # the session's setting is restored
+
+
+@pytest.mark.parametrize(
+    ("name", "adjustment"),
+    [
+        ("falsify balance", "twoway"),
+        ("falsify placebo", "cluster-weights"),
+        ("falsify per-instrument", "unadjusted-absorb"),
+        ("sensitivity range", "nested-absorb-cluster"),
+        ("sensitivity prior", "robust"),
+        ("sensitivity breakdown", "cluster-weights"),
+    ],
+)
+def test_spark_equals_pandas_for_the_analyses_that_need_only_cross_products(
+    spark: Any, data: tuple[pd.DataFrame, Path], name: str, adjustment: str
+) -> None:
+    from test_engines_analyses import ADJUSTMENTS, COVERED, compare, spec_for
+
+    from ivdossier.estimation.engines import EngineSettings
+    from ivdossier.workflows.analyses import run_analysis
+
+    _, path = data
+    roles, options = COVERED[name]
+    spec = spec_for(roles, ADJUSTMENTS[adjustment])
+    settings = EngineSettings("spark", spark_session=spark)
+    scanned = run_analysis(name, path, spec, engine="spark", engine_settings=settings, **options)
+    # source: the in-memory path of the same analysis on the same rows; every number within 1e-10 relative
+    compare(scanned, run_analysis(name, path, spec, **options))
+    assert scanned.extra["engine"]["engine"] == "spark"

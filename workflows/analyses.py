@@ -20,6 +20,7 @@ from ivdossier.jsonsafe import Record
 if TYPE_CHECKING:
     import pandas as pd
 
+    from ivdossier.estimation.engines import EngineSettings
     from ivdossier.estimation.spec import ModelSpec
     from ivdossier.workflows.runs import FileRun
 
@@ -37,6 +38,9 @@ class Analysis:
     ``compute(frame, spec, options) -> (result, extra)``; ``findings`` one line per catalogue check it answers,
     read from the typed result's attributes; ``reader`` the function that reads its data file into a DataFrame
     when ``estimation.load_table`` is not the right one (a per-variant table may be tab-separated).
+    ``scan(path, spec, options, settings)`` runs it with a scanning engine (DuckDB, Spark, or the automatic
+    choice) when it needs only the sufficient statistics of one model, returning the result with the engine's
+    provenance; analyses without one run in memory only, and ``single_engine`` says why.
     """
 
     name: str
@@ -46,6 +50,10 @@ class Analysis:
     compute: Callable[[pd.DataFrame, ModelSpec | None, Options], Computed] | None
     findings: Mapping[str, Callable[[Any], str]] = field(default_factory=dict)
     reader: Callable[[Path | str], pd.DataFrame] | None = None
+    scan: Callable[[str, ModelSpec | None, Options, EngineSettings], Any] | None = None
+    single_engine: str = (
+        "it needs the rows themselves, not only sums of cross-products of the model's columns"
+    )
 
     @property
     def command(self) -> str:
@@ -290,13 +298,18 @@ def _sensitivity_prior(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) 
     from ivdossier.estimation.sensitivity import local_to_zero
 
     kw = _model(spec, "sensitivity prior", "outcome", "treatment", "instruments")
+    mean, omega = _prior(_need(spec, "sensitivity prior"), o)
+    return local_to_zero(frame, mu=mean, omega=omega, **kw), {}
+
+
+def _prior(spec: ModelSpec, o: Options) -> tuple[list[float], list[list[float]]]:
+    """The prior mean and (diagonal) covariance of the direct effect from --prior-mean and --prior-sd."""
     mean, sd = list(o["prior_mean"]), list(o["prior_sd"])
-    if len(mean) != len(kw["instruments"]) or len(sd) != len(kw["instruments"]):
+    if len(mean) != len(spec.instruments) or len(sd) != len(spec.instruments):
         raise InvalidInputError(
             "give one --prior-mean and one --prior-sd per --instrument, in the same order."
         )
-    omega = [[(s**2 if i == j else 0.0) for j, s in enumerate(sd)] for i in range(len(sd))]
-    return local_to_zero(frame, mu=mean, omega=omega, **kw), {}
+    return mean, [[(s**2 if i == j else 0.0) for j, s in enumerate(sd)] for i in range(len(sd))]
 
 
 def _sensitivity_breakdown(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
@@ -355,6 +368,95 @@ def _compliers(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Compu
         seed=o.get("seed", 0),
     )
     return report, {}
+
+
+# ---------------------------------------------------------------- the same analyses with a scanning engine
+
+
+def _estimate_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
+    from ivdossier.estimation.engines import estimate_source
+
+    s = _need(spec, "estimate")
+    if s.outcome is None:
+        raise InvalidInputError("an estimate needs --outcome; name the outcome column.")
+    return estimate_source(
+        path,
+        outcome=s.outcome,
+        treatment=s.treatment,
+        instruments=s.instruments,
+        controls=s.controls,
+        absorb=s.absorb,
+        cluster=s.cluster or None,
+        weights=s.weights,
+        method=s.method,
+        vcov=s.vcov,
+        small_sample=s.small_sample,
+        alpha=s.alpha,
+        fuller_alpha=s.fuller_alpha,
+        **{k: getattr(settings, k) for k in _SETTINGS},
+    )
+
+
+_SETTINGS = (
+    "engine",
+    "spark_master",
+    "spark_session",
+    "memory_limit",
+    "temp_directory",
+    "threads",
+    "progress",
+    "with_fingerprint",
+)
+
+
+def _balance_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
+    from ivdossier.estimation.source_analyses import balance_source
+
+    return balance_source(
+        path, _need(spec, "falsify balance"), covariates=list(o["covariates"]), settings=settings
+    )
+
+
+def _placebo_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
+    from ivdossier.estimation.source_analyses import placebo_outcomes_source
+
+    return placebo_outcomes_source(
+        path, _need(spec, "falsify placebo"), outcomes=list(o["outcomes"]), settings=settings
+    )
+
+
+def _per_instrument_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
+    from ivdossier.estimation.source_analyses import per_instrument_source
+
+    return per_instrument_source(path, _need(spec, "falsify per-instrument"), settings=settings)
+
+
+def _range_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
+    from ivdossier.estimation.source_analyses import union_of_intervals_source
+
+    return union_of_intervals_source(
+        path,
+        _need(spec, "sensitivity range"),
+        gamma_min=_one(o["gamma_min"]),
+        gamma_max=_one(o["gamma_max"]),
+        settings=settings,
+    )
+
+
+def _prior_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
+    from ivdossier.estimation.source_analyses import local_to_zero_source
+
+    s = _need(spec, "sensitivity prior")
+    mean, omega = _prior(s, o)
+    return local_to_zero_source(path, s, mu=mean, omega=omega, settings=settings)
+
+
+def _breakdown_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
+    from ivdossier.estimation.source_analyses import breakdown_value_source
+
+    return breakdown_value_source(
+        path, _need(spec, "sensitivity breakdown"), target=o.get("target", 0.0), settings=settings
+    )
 
 
 # ---------------------------------------------------------------- designs, summary data, confounder strength
@@ -593,7 +695,13 @@ ANALYSES: dict[str, Analysis] = {
     a.name: a
     for a in (
         Analysis(
-            "estimate", "estimate", "result:EstimationResult", _SENSITIVITY, _estimate, _ESTIMATE_FINDINGS
+            "estimate",
+            "estimate",
+            "result:EstimationResult",
+            _SENSITIVITY,
+            _estimate,
+            _ESTIMATE_FINDINGS,
+            scan=_estimate_scan,
         ),
         Analysis(
             "falsify balance",
@@ -602,6 +710,7 @@ ANALYSES: dict[str, Analysis] = {
             ("instruments",),
             _balance,
             {"covariate-balance": _joint},
+            scan=_balance_scan,
         ),
         Analysis(
             "falsify placebo",
@@ -610,6 +719,7 @@ ANALYSES: dict[str, Analysis] = {
             ("instruments",),
             _placebo,
             {"placebo-outcome": _joint},
+            scan=_placebo_scan,
         ),
         Analysis(
             "falsify zero-first-stage",
@@ -618,6 +728,7 @@ ANALYSES: dict[str, Analysis] = {
             _SENSITIVITY,
             _zero,
             {"zero-first-stage-reduced-form": _zero_first_stage},
+            single_engine="it selects its subsample with a pandas expression or column in memory",
         ),
         Analysis(
             "falsify per-instrument",
@@ -626,6 +737,7 @@ ANALYSES: dict[str, Analysis] = {
             _SENSITIVITY,
             _per_instrument_compute,
             {"per-instrument-estimates": _per_instrument, "over-identification": _per_instrument},
+            scan=_per_instrument_scan,
         ),
         Analysis(
             "falsify first-stage-signs",
@@ -634,6 +746,7 @@ ANALYSES: dict[str, Analysis] = {
             ("treatment", "instruments"),
             _signs,
             {"subgroup-first-stage-signs": _subgroup_signs},
+            single_engine="it cuts a covariate into quantile bins and fits one first stage per subgroup",
         ),
         Analysis(
             "sensitivity range",
@@ -642,6 +755,7 @@ ANALYSES: dict[str, Analysis] = {
             _SENSITIVITY,
             _sensitivity_range,
             {"exclusion-sensitivity": _interval_sensitivity("union of intervals")},
+            scan=_range_scan,
         ),
         Analysis(
             "sensitivity prior",
@@ -650,6 +764,7 @@ ANALYSES: dict[str, Analysis] = {
             _SENSITIVITY,
             _sensitivity_prior,
             {"exclusion-sensitivity": _interval_sensitivity("local-to-zero interval")},
+            scan=_prior_scan,
         ),
         Analysis(
             "sensitivity breakdown",
@@ -658,6 +773,7 @@ ANALYSES: dict[str, Analysis] = {
             _SENSITIVITY,
             _sensitivity_breakdown,
             {"exclusion-sensitivity": _breakdown},
+            scan=_breakdown_scan,
         ),
         Analysis(
             "compliers",
@@ -751,18 +867,95 @@ def analysis_of_result(run_kind: str, result: Any) -> Analysis | None:
     return None
 
 
-def run_analysis(name: str, path: Path | str, spec: ModelSpec | None, **options: Any) -> FileRun:
-    """Load a data file, compute one analysis from a validated spec and record fingerprint, spec and timing."""
+def run_analysis(
+    name: str,
+    path: Path | str,
+    spec: ModelSpec | None,
+    *,
+    engine: str = "pandas",
+    engine_settings: EngineSettings | None = None,
+    **options: Any,
+) -> FileRun:
+    """Compute one analysis from a validated spec on a data file and record fingerprint, spec and timing.
+
+    ``engine`` "pandas" loads the file (the default); "duckdb", "spark" or "auto" scan it (a file or a directory
+    of Parquet files) for the analyses that need only cross-products, and record the engine's provenance with
+    the run; the others are refused with the reason. ``engine_settings`` carries the engine's own options.
+    """
     from ivdossier.workflows.runs import analyse_file
 
     entry = analysis(name)
     compute = entry.compute
     if compute is None:
         raise InvalidInputError(f"the analysis {name!r} reads no data file; call its function directly.")
+    if engine != "pandas":
+        return _scan_analysis(entry, path, spec, engine, engine_settings, options)
+    if engine_settings is not None and engine_settings != _default_settings("pandas"):
+        raise InvalidInputError(
+            "--memory-limit and --spark-master apply to the scanning engines; add --engine duckdb, spark or "
+            "auto, or drop them."
+        )
     return analyse_file(
         entry.run_kind,
         path,
         lambda frame: compute(frame, spec, options),
         entry.stored_spec(spec, options),
         load=entry.reader,
+    )
+
+
+def _default_settings(engine: str) -> EngineSettings:
+    from ivdossier.estimation.engines import EngineSettings
+
+    return EngineSettings(engine=engine)
+
+
+def engine_refusal(name: str, engine: str) -> str | None:
+    """Why ``ivdossier NAME`` cannot run on ``engine`` (None when it can), naming the engine that can."""
+    entry = analysis(name)
+    if engine == "pandas" or entry.scan is not None:
+        return None
+    return (
+        f"{entry.command} runs on engine 'pandas' only: {entry.single_engine}. Drop --engine {engine} (the "
+        "pandas engine reads the file into memory), or run the analyses that need only cross-products "
+        "(estimate, falsify balance/placebo/per-instrument, sensitivity) on large files."
+    )
+
+
+def _scan_analysis(
+    entry: Analysis,
+    path: Path | str,
+    spec: ModelSpec | None,
+    engine: str,
+    settings: EngineSettings | None,
+    options: Options,
+) -> FileRun:
+    import dataclasses
+    import time
+
+    from ivdossier.estimation.engines import ENGINES
+    from ivdossier.workflows.runs import FileRun
+
+    if engine not in ENGINES:
+        raise InvalidInputError(f"Unknown engine {engine!r}; choose one of {', '.join(ENGINES)}.")
+    refusal = engine_refusal(entry.name, engine)
+    if refusal is not None or entry.scan is None:
+        raise InvalidInputError(refusal or f"{entry.command} has no scanning engine.")
+    chosen = dataclasses.replace(settings or _default_settings(engine), engine=engine)
+    start = time.perf_counter()
+    done = entry.scan(str(path), spec, options, chosen)
+    provenance = done.provenance
+    stored = entry.stored_spec(spec, options)
+    if entry.name == "estimate":
+        stored = dict(done.result.spec)
+    return FileRun(
+        kind=entry.run_kind,
+        result=done.result,
+        path=str(path),
+        sha256=provenance.fingerprint or "",
+        rows=provenance.rows or 0,
+        columns=(),
+        seconds=time.perf_counter() - start,
+        spec={"data": str(path), **stored, "engine": provenance.engine},
+        extra={"engine": provenance.to_dict()},
     )

@@ -104,42 +104,15 @@ def estimate_with_engine(
 ) -> FileRun:
     """Estimate a spec with a scanning engine (DuckDB or Spark, or the automatic choice) on a file or a directory
     of Parquet files; the engine's provenance (name, version, why chosen, fingerprint, scans) is stored with it."""
-    from ivdossier.estimation.engines import estimate_source
+    from ivdossier.estimation.engines import EngineSettings
+    from ivdossier.workflows.analyses import run_analysis
 
     if spec.outcome is None:
         raise InvalidInputError("an estimate needs --outcome; name the outcome column.")
-    start = time.perf_counter()
-    done = estimate_source(
-        str(path),
-        outcome=spec.outcome,
-        treatment=spec.treatment,
-        instruments=spec.instruments,
-        controls=spec.controls,
-        absorb=spec.absorb,
-        cluster=spec.cluster or None,
-        weights=spec.weights,
-        method=spec.method,
-        vcov=spec.vcov,
-        small_sample=spec.small_sample,
-        alpha=spec.alpha,
-        fuller_alpha=spec.fuller_alpha,
-        engine=engine,
-        memory_limit=memory_limit,
-        spark_master=spark_master,
-        progress=progress,
+    settings = EngineSettings(
+        engine=engine, memory_limit=memory_limit, spark_master=spark_master, progress=progress
     )
-    provenance = done.provenance
-    return FileRun(
-        kind="estimate",
-        result=done.result,
-        path=str(path),
-        sha256=provenance.fingerprint or "",
-        rows=provenance.rows or done.result.n,
-        columns=(),
-        seconds=time.perf_counter() - start,
-        spec={"data": str(path), **done.result.spec, "engine": provenance.engine},
-        extra={"engine": provenance.to_dict()},
-    )
+    return run_analysis("estimate", path, spec, engine=engine, engine_settings=settings)
 
 
 def stored_results(result: Any, extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
