@@ -152,7 +152,7 @@ def draft_content(
         "graph": {
             "roles": {"instrument": "Z", "treatment": program.treatment, "outcome": program.outcome},
             "covariates": [{"name": c.name, "measured": c.measured} for c in covs],
-            "edges": [{"from": e.source, "to": e.target, "note": e.note} for e in edges],
+            "edges": _edge_rows(edges, instruments),
         },
         "threats": [row for inst in instruments for row in _threat_rows(session, inst)],
         "specs": specs,
@@ -161,6 +161,21 @@ def draft_content(
         "power": None if power is None else dict(power),
         "deviations": DEVIATIONS_TEXT,
     }
+
+
+def _edge_rows(edges: Any, instruments: list[Instrument]) -> list[dict[str, Any]]:
+    """The team's edges with their scope: "program" (every instrument's graph) or the one instrument they belong to.
+
+    Edges scoped to an instrument the plan does not cover are left out: they are in no graph the plan describes.
+    """
+    slugs = {i.id: i.slug for i in instruments}
+    rows = []
+    for e in edges:
+        if e.instrument_id is not None and e.instrument_id not in slugs:
+            continue
+        scope = "program" if e.instrument_id is None else slugs[e.instrument_id]
+        rows.append({"from": e.source, "to": e.target, "scope": scope, "note": e.note})
+    return rows
 
 
 def draft_plan(
