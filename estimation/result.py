@@ -202,10 +202,10 @@ class EstimationResult(Record):
             out.append(f"Anderson-Rubin {100 * (1 - self.alpha):g}% set ({ar.get('shape', '')}): {pieces}")
         oid = d["overid"]
         if isinstance(oid.get("p_value"), float):
-            out.append(f"over-identification ({oid.get('test')}): p = {oid['p_value']:.4g}")
+            out.append(f"over-identification ({_test_name(oid.get('test'))}): p = {oid['p_value']:.4g}")
         endo = d["endogeneity"]
         if isinstance(endo.get("p_value"), float):
-            out.append(f"endogeneity ({endo.get('test')}): p = {endo['p_value']:.4g}")
+            out.append(f"endogeneity ({_test_name(endo.get('test'))}): p = {endo['p_value']:.4g}")
         return out or ["no headline statistics available; see to_dict()"]
 
     def _vcov_text(self) -> str:
@@ -239,3 +239,15 @@ class EstimationResult(Record):
 
 def _num(value: Any) -> str:
     return value if isinstance(value, str) else f"{value:.4g}"
+
+
+TEST_NAMES = {
+    "durbin_wu_hausman_control_function": "Durbin-Wu-Hausman test, control-function form",
+    "hansen_j": "Hansen J test",
+    "sargan": "Sargan test",
+}
+"""Readable names of the tests whose JSON identifiers appear in the terminal summary."""
+
+
+def _test_name(test: object) -> str:
+    return TEST_NAMES.get(str(test), str(test).replace("_", " "))

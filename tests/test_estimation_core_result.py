@@ -140,3 +140,15 @@ def test_low_level_paths_agree_with_estimate(telehealth):
     np.testing.assert_allclose(again.coef, res.coef, rtol=1e-12)
     np.testing.assert_allclose(beta, res.coef, rtol=1e-10)
     np.testing.assert_allclose(cov, res.cov, rtol=1e-10)
+
+
+def test_summary_names_the_tests_in_words_not_json_identifiers(telehealth):
+    res = estimate(
+        telehealth, outcome="ed_visits", treatment="telehealth", instruments=["fibre_wave", "clerk_rate"]
+    )
+    text = str(res)
+    # the JSON keeps its identifier; the terminal says it in words
+    assert res.to_dict()["endogeneity"]["test"] == "durbin_wu_hausman_control_function"
+    assert "endogeneity (Durbin-Wu-Hausman test, control-function form): p = " in text
+    assert f"over-identification (Hansen J test): p = {res.to_dict()['overid']['p_value']:.4g}" in text
+    assert "durbin_wu_hausman" not in text and "hansen_j" not in text
