@@ -91,12 +91,24 @@ def sensitivity_range(
     outcome: Outcome,
     treatment: Treatment,
     instrument: Instruments,
+    direct_effect_min: Annotated[
+        list[float] | None,
+        typer.Option(
+            help="Lowest direct effect of the instrument on the outcome (one, or one per instrument)."
+        ),
+    ] = None,
+    direct_effect_max: Annotated[
+        list[float] | None,
+        typer.Option(
+            help="Highest direct effect of the instrument on the outcome (one, or one per instrument)."
+        ),
+    ] = None,
     gamma_min: Annotated[
-        list[float], typer.Option(help="Lowest direct effect (one, or one per instrument).")
-    ],
+        list[float] | None, typer.Option(hidden=True, help="Deprecated spelling of --direct-effect-min.")
+    ] = None,
     gamma_max: Annotated[
-        list[float], typer.Option(help="Highest direct effect (one, or one per instrument).")
-    ],
+        list[float] | None, typer.Option(hidden=True, help="Deprecated spelling of --direct-effect-max.")
+    ] = None,
     control: Controls = None,
     absorb: Absorb = None,
     cluster: Cluster = None,
@@ -108,13 +120,22 @@ def sensitivity_range(
     json_out: JsonFlag = False,
 ) -> None:
     """Union of 2SLS intervals over a range of direct effects (Conley, Hansen and Rossi 2012)."""
+    from ivdossier.cli.deprecated import either
+    from ivdossier.errors import InvalidInputError
     from ivdossier.estimation.sensitivity import plot_sensitivity_svg
 
+    low = either(direct_effect_min or None, gamma_min or None, new="--direct-effect-min", old="--gamma-min")
+    high = either(direct_effect_max or None, gamma_max or None, new="--direct-effect-max", old="--gamma-max")
+    if low is None or high is None:
+        raise InvalidInputError(
+            "sensitivity range needs the assumed range of the direct effect: pass --direct-effect-min and "
+            "--direct-effect-max (one value, or one per instrument)."
+        )
     spec = model_spec(
         outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
         cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
     )  # fmt: skip
-    run = _run("sensitivity range", data, spec, gamma_min=gamma_min, gamma_max=gamma_max)
+    run = _run("sensitivity range", data, spec, direct_effect_min=low, direct_effect_max=high)
     if plot is not None:
         plot.write_text(plot_sensitivity_svg(run.result), encoding="utf-8")
     _finish(run, "sensitivity range", attach=attach, json_out=json_out)

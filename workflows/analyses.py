@@ -281,7 +281,10 @@ def _sensitivity_range(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) 
     from ivdossier.estimation.sensitivity import union_of_intervals
 
     kw = _model(spec, "sensitivity range", "outcome", "treatment", "instruments")
-    return union_of_intervals(frame, gamma_min=_one(o["gamma_min"]), gamma_max=_one(o["gamma_max"]), **kw), {}
+    # Runs stored before the options were renamed keep gamma_min / gamma_max.
+    low = o["direct_effect_min"] if "direct_effect_min" in o else o["gamma_min"]
+    high = o["direct_effect_max"] if "direct_effect_max" in o else o["gamma_max"]
+    return union_of_intervals(frame, gamma_min=_one(low), gamma_max=_one(high), **kw), {}
 
 
 def _sensitivity_prior(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:

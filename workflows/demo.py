@@ -430,7 +430,7 @@ def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
     jobs.append(("clerk-video-rate", "falsify first-stage-signs", signs, {"by": "age"}))
     jobs.append(("fibre-wave", "sensitivity breakdown", spec(["fibre_months"], **model), {}))
     # The team allows the fibre schedule a direct effect of up to 0.003 visits per month either way.
-    direct = {"gamma_min": [-0.003], "gamma_max": [0.003]}
+    direct = {"direct_effect_min": [-0.003], "direct_effect_max": [0.003]}
     jobs.append(("fibre-wave", "sensitivity range", spec(["fibre_months"], **model), direct))
     slugs = []
     for instrument, name, model_spec, options in jobs:
