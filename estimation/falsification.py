@@ -22,9 +22,10 @@ from __future__ import annotations
 
 import difflib
 import math
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
-from typing import Any, cast
+from typing import Any, ClassVar, cast
 
 import numpy as np
 import pandas as pd
@@ -537,7 +538,7 @@ def placebo_outcomes(
 class ZeroFirstStageResult(Record):
     """First stage and reduced form in a subsample where the instrument should not move the treatment.
 
-    ``prior_mu`` and ``prior_omega`` are the reduced-form coefficients of Y on Z in the subsample and their
+    ``direct_effect_prior_mean`` and ``direct_effect_prior_covariance`` are the reduced-form coefficients of Y on Z in the subsample and their
     covariance, in outcome units per unit of each instrument: the scale of gamma in
     :func:`ivdossier.estimation.sensitivity.local_to_zero`. Using them as the local-to-zero prior assumes
     (i) the treatment does not respond to Z in the subsample, so the reduced form there is the direct effect,
@@ -552,8 +553,8 @@ class ZeroFirstStageResult(Record):
     first_stage: TargetRegression
     first_stage_p_value: float
     reduced_form: TargetRegression
-    prior_mu: tuple[float, ...]
-    prior_omega: tuple[tuple[float, ...], ...]
+    direct_effect_prior_mean: tuple[float, ...]
+    direct_effect_prior_covariance: tuple[tuple[float, ...], ...]
     assumption: str
     warning: str | None
     vcov: str
@@ -569,6 +570,28 @@ class ZeroFirstStageResult(Record):
         out["row_account"] = None if self.row_account is None else self.row_account.to_dict()
         out["kind"] = "zero_first_stage"
         return out
+
+    # Stored before the fields had their own names (read back under the new ones; see Record.RENAMED_FIELDS).
+    RENAMED_FIELDS: ClassVar[dict[str, str]] = {
+        "prior_mu": "direct_effect_prior_mean",
+        "prior_omega": "direct_effect_prior_covariance",
+    }
+
+    @property
+    def prior_mu(self) -> tuple[float, ...]:
+        """Deprecated name of ``direct_effect_prior_mean`` (removed in the next release)."""
+        warnings.warn(
+            "prior_mu is deprecated; use direct_effect_prior_mean.", DeprecationWarning, stacklevel=2
+        )
+        return self.direct_effect_prior_mean
+
+    @property
+    def prior_omega(self) -> tuple[tuple[float, ...], ...]:
+        """Deprecated name of ``direct_effect_prior_covariance`` (removed in the next release)."""
+        warnings.warn(
+            "prior_omega is deprecated; use direct_effect_prior_covariance.", DeprecationWarning, stacklevel=2
+        )
+        return self.direct_effect_prior_covariance
 
     def __str__(self) -> str:
         fs = self.first_stage
@@ -716,8 +739,8 @@ def zero_first_stage(
         first_stage=first,
         first_stage_p_value=fs_p,
         reduced_form=reduced,
-        prior_mu=tuple(map(float, st.coef[1])),
-        prior_omega=tuple(tuple(map(float, r)) for r in omega),
+        direct_effect_prior_mean=tuple(map(float, st.coef[1])),
+        direct_effect_prior_covariance=tuple(tuple(map(float, r)) for r in omega),
         assumption=ZERO_FIRST_STAGE_ASSUMPTION,
         warning=warning,
         vcov=vcov,
@@ -796,8 +819,8 @@ def _zero_first_stage_exact(
         first_stage=first,
         first_stage_p_value=1.0,
         reduced_form=reduced,
-        prior_mu=tuple(map(float, st.coef[0])),
-        prior_omega=tuple(tuple(map(float, r)) for r in st.cov),
+        direct_effect_prior_mean=tuple(map(float, st.coef[0])),
+        direct_effect_prior_covariance=tuple(tuple(map(float, r)) for r in st.cov),
         assumption=ZERO_FIRST_STAGE_ASSUMPTION + f"; here {treatment!r} is constant in the subsample, so the "
         "first stage is exactly zero",
         warning=None,
