@@ -10,7 +10,7 @@ import typer
 
 from ivdossier.cli import panels
 from ivdossier.cli.common import IfVersion, JsonFlag, actor, read_text_option, reading, writing
-from ivdossier.cli.model_options import Controls, split_names
+from ivdossier.cli.model_options import Controls, current_cov_name, split_names
 from ivdossier.cli.output import print_json, print_table
 
 plan_app = typer.Typer(
@@ -77,7 +77,8 @@ def draft(
     cluster: Annotated[list[str] | None, typer.Option(help="Cluster column (one or two).")] = None,
     method: Annotated[str, typer.Option(help="Estimator: 2sls, liml or fuller.")] = "2sls",
     vcov: Annotated[
-        str | None, typer.Option(help="unadjusted, robust or cluster (default: cluster if --cluster).")
+        str | None,
+        typer.Option(help="homoskedastic, heteroskedastic or clustered (default: clustered if --cluster)."),
     ] = None,
     alpha: Annotated[float, typer.Option(help="Test level.")] = 0.05,
     data: Annotated[str | None, typer.Option(help="Data description, or @FILE.")] = None,
@@ -117,7 +118,7 @@ def draft(
                     power, max(n_inst, 1))  # fmt: skip
         plan = draft_plan(
             s, actor=actor(), target=target, slug=slug, title=title, controls=list(split_names(control)), absorb=absorb or [],
-            cluster=cluster or [], method=method, vcov=vcov, alpha=alpha, data_description=read_text_option(data) or "",
+            cluster=cluster or [], method=method, vcov=vcov and current_cov_name(vcov), alpha=alpha, data_description=read_text_option(data) or "",
             sample=read_text_option(sample) or "", expected_n=n, power=pw,
         )  # fmt: skip
         view = plans.plan_dict(s, plan)

@@ -164,7 +164,8 @@ def report(
     f_kind: Annotated[
         str | None,
         typer.Option(
-            help="Which F: unadjusted, robust, cluster, effective, kleibergen-paap, cragg-donald or unknown."
+            help="Which F: homoskedastic, heteroskedastic, clustered, effective, kleibergen-paap, cragg-donald or "
+            "unknown."
         ),
     ] = None,
     n: Annotated[int | None, typer.Option(help="Number of observations.")] = None,

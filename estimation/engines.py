@@ -257,7 +257,7 @@ def _scan_counts(
         if int(row[f"ivd_ng{j}"]) < 2:
             raise InvalidInputError(
                 f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
-                "at least two levels or use vcov='robust'."
+                "at least two levels or use vcov='heteroskedastic'."
             )
     for j, name in enumerate(plan.instruments):
         if row[f"ivd_lo{j}"] == row[f"ivd_hi{j}"]:
@@ -382,9 +382,9 @@ def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts,
     first = mrows[0]
     moment_sums: list[list[float]] = []
     groups: list[int] = []
-    if model.vcov == "robust":
+    if model.vcov == "heteroskedastic":
         moment_sums = [packed(first, "k", n_k)]
-    elif model.vcov == "cluster":
+    elif model.vcov == "clustered":
         moment_sums = [packed(r, "k", n_k) for r in mrows]
         groups = [int(r["ivd_groups"]) for r in mrows]
     n_used_controls = len(model.controls)
@@ -412,7 +412,7 @@ def sql_cross_products(runner: Runner, model: ModelSpec) -> tuple[CrossProducts,
         n_absorbed=levels,
         fe_levels=(levels,) if absorb else (),
         n_clusters=tuple(int(row[f"ivd_ng{j}"]) for j in range(len(plan.clusters)))
-        if model.vcov == "cluster"
+        if model.vcov == "clustered"
         else (),
     )
     return cp, counts, timings
@@ -570,7 +570,7 @@ def estimate_source(
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
     method: str = "2sls",
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
     fuller_alpha: float = 1.0,

@@ -34,7 +34,7 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import estimate_prepared
-from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
+from ivdossier.estimation.covariance import CovKind, CovSpec, cov_name, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
 from ivdossier.estimation.rows import RowAccount, count_rows
@@ -265,7 +265,7 @@ def _complete_rows(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[pd.Data
 def _reference(vcov: str, small_sample: bool, df: int, n_clusters: tuple[int, ...]) -> tuple[str, int | None]:
     if not small_sample:
         return "normal", None
-    if vcov == "cluster":
+    if cov_name(vcov) == "clustered":
         return "t", min(n_clusters) - 1
     return "t", df
 
@@ -286,6 +286,7 @@ def _stacked(
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     clus = _check_common(vcov, alpha, cluster)
+    vcov = cov_name(vcov)
     inst = as_names(instruments, "instruments")
     if not inst:
         raise InvalidInputError("instruments= is empty; name at least one instrument column.")
@@ -319,7 +320,7 @@ def _stacked(
         fit = fit_kclass(p.y, z, None, method="ols")
         coefs.append(fit.beta)
         resids.append(fit.resid)
-    spec = CovSpec(cast(CovKind, vcov), first.clusters if vcov == "cluster" else (), small_sample)
+    spec = CovSpec(cast(CovKind, vcov), first.clusters if vcov == "clustered" else (), small_sample)
     cov = sandwich(
         z,
         np.column_stack(resids),
@@ -471,7 +472,7 @@ def balance(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> InstrumentRegressions:
@@ -506,7 +507,7 @@ def placebo_outcomes(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> InstrumentRegressions:
@@ -668,7 +669,7 @@ def zero_first_stage(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> ZeroFirstStageResult:
@@ -934,7 +935,7 @@ def per_instrument(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> PerInstrumentResult:
@@ -944,6 +945,7 @@ def per_instrument(
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     clus = _check_common(vcov, alpha, cluster)
+    vcov = cov_name(vcov)
     if not isinstance(treatment, str):
         raise InvalidInputError(
             "per_instrument takes one treatment column; pass treatment= as a single name."
@@ -961,7 +963,7 @@ def per_instrument(
     res_all = estimate_prepared(
         full, method="2sls", vcov=vcov, small_sample=small_sample, alpha=alpha, diagnostics=False
     )
-    spec = CovSpec(cast(CovKind, vcov), full.clusters if vcov == "cluster" else (), small_sample)
+    spec = CovSpec(cast(CovKind, vcov), full.clusters if vcov == "clustered" else (), small_sample)
     overid = overid_test(full.y, full.X, full.Z, beta=res_all.coef, spec=spec, n_partialled=full.n_partialled)
     rows = []
     for j, z in enumerate(inst):

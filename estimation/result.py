@@ -10,6 +10,7 @@ from numpy.typing import NDArray
 from scipy import stats
 
 from ivdossier.estimation.controls import ControlsTable
+from ivdossier.estimation.covariance import OLD_COV_NAMES
 from ivdossier.estimation.diagnostics import DiagnosticSuite
 from ivdossier.jsonsafe import Record, json_safe
 from ivdossier.vocabulary import NotApplicable
@@ -188,7 +189,8 @@ class EstimationResult(Record):
         d = {name: self._section(name) or {} for name in DIAGNOSTIC_SECTIONS}
         out: list[str] = []
         for name, row in (d["first_stage"].get("by_endog") or {}).items():
-            f = row.get("robust_f") if self.vcov != "unadjusted" else row.get("partial_f")
+            homoskedastic = OLD_COV_NAMES.get(self.vcov, self.vcov) == "homoskedastic"
+            f = row.get("partial_f") if homoskedastic else row.get("robust_f")
             if isinstance(f, float):
                 out.append(f"first-stage F for {name!r}: {f:.4g} ({self.vcov} covariance)")
         eff = (d["strength"].get("effective_f") or {}).get("statistic")
@@ -210,10 +212,10 @@ class EstimationResult(Record):
 
     def _vcov_text(self) -> str:
         text = {
-            "unadjusted": "homoskedastic (unadjusted)",
-            "robust": "heteroskedasticity-robust",
-            "cluster": "cluster-robust",
-        }.get(self.vcov, self.vcov)
+            "homoskedastic": "homoskedastic errors",
+            "heteroskedastic": "heteroskedastic errors (robust)",
+            "clustered": "errors clustered",
+        }.get(OLD_COV_NAMES.get(self.vcov, self.vcov), self.vcov)
         if self.n_clusters:
             text += " on " + " and ".join(
                 f"{c:,} clusters of {n!r}"

@@ -39,7 +39,7 @@ from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import estimate_prepared
-from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, is_psd, sandwich
+from ivdossier.estimation.covariance import CovKind, CovSpec, cov_name, is_psd, sandwich
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.estimators import fit_kclass
 from ivdossier.estimation.rows import RowAccount, count_rows
@@ -110,8 +110,7 @@ def _spec_options(
         raise InvalidInputError(
             "The plausibly-exogenous analysis takes one treatment column; pass treatment= as a single name."
         )
-    if vcov not in COV_KINDS:
-        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
+    cov_name(vcov)  # refuses an unknown covariance before the data are read
     inst = as_names(instruments, "instruments")
     if not inst:
         raise InvalidInputError(
@@ -130,10 +129,11 @@ def _spec_options(
 
 
 def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float) -> _Core:
+    vcov = cov_name(vcov)
     base = estimate_prepared(
         prepared, method="2sls", vcov=vcov, small_sample=small_sample, alpha=alpha, diagnostics=False
     )
-    spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
+    spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "clustered" else (), small_sample)
     fit = fit_kclass(prepared.y, prepared.X, prepared.Z, method="2sls", n_partialled=prepared.n_partialled)
     x, z = prepared.X, prepared.Z
     shift = (fit.bread @ (x.T @ z)).ravel()  # A = (X'P_Z X)^{-1} X'Z, 1 x L
@@ -153,7 +153,7 @@ def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float
         )
     quantile = float((base.ci[0, 1] - base.coef[0]) / se)
     rf = fit_kclass(prepared.y, z, None, method="ols").beta
-    two_way = vcov == "cluster" and len(prepared.clusters) == 2
+    two_way = vcov == "clustered" and len(prepared.clusters) == 2
     return _Core(
         treatment=prepared.treatment[0],
         instruments=prepared.instruments,
@@ -312,7 +312,7 @@ def union_of_intervals(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
     n_grid: int = 101,
@@ -457,7 +457,7 @@ def local_to_zero(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> LocalToZeroResult:
@@ -631,7 +631,7 @@ def breakdown_value(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> BreakdownResult:

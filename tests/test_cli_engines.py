@@ -28,7 +28,7 @@ def parquet_file(tmp_path: Path) -> Path:
 def _args(path: Path) -> list[str]:
     return [
         "estimate", "--data", str(path), "--outcome", "y", "--treatment", "x", "--instrument", "z1",
-        "--instrument", "z2", "--control", "w", "--cluster", "g", "--vcov", "cluster", "--json",
+        "--instrument", "z2", "--control", "w", "--cluster", "g", "--vcov", "clustered", "--json",
     ]  # fmt: skip
 
 

@@ -64,7 +64,7 @@ def test_to_dict_is_json_with_agreed_keys_and_diagnostics(telehealth):
         instruments=["fibre_wave", "clerk_rate"],
         controls="age",
         cluster="district",
-        vcov="cluster",
+        vcov="clustered",
     )
     assert isinstance(res, EstimationResult)
     d = res.to_dict()
@@ -115,7 +115,7 @@ def test_low_level_paths_agree_with_estimate(telehealth):
         controls="age",
         absorb="district",
         method="liml",
-        vcov="robust",
+        vcov="heteroskedastic",
     )
     prepared = prepare(
         telehealth,
@@ -125,7 +125,7 @@ def test_low_level_paths_agree_with_estimate(telehealth):
         controls="age",
         absorb="district",
     )
-    again = estimate_prepared(prepared, method="liml", vcov="robust", diagnostics=False)
+    again = estimate_prepared(prepared, method="liml", vcov="heteroskedastic", diagnostics=False)
     assert again.diagnostics is None and again.to_dict()["first_stage"] is None
     codes = pd.factorize(telehealth["district"])[0].astype(np.int64)
     beta, cov = fit_arrays(
@@ -135,7 +135,7 @@ def test_low_level_paths_agree_with_estimate(telehealth):
         controls=telehealth[["age"]].to_numpy(),
         fe_codes=[codes],
         method="liml",
-        vcov="robust",
+        vcov="heteroskedastic",
     )
     np.testing.assert_allclose(again.coef, res.coef, rtol=1e-12)
     np.testing.assert_allclose(beta, res.coef, rtol=1e-10)

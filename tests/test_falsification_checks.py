@@ -76,7 +76,7 @@ def test_balance_rows_match_statsmodels_hc1(sim: pd.DataFrame) -> None:
 def test_balance_with_clusters_and_fixed_effects_matches_statsmodels_dummies(sim: pd.DataFrame) -> None:
     # Reference: statsmodels OLS with region dummies, cluster-robust by district (G/(G-1) (n-1)/(n-K) factor).
     res = balance(
-        sim, instruments="clerk", covariates=["age"], absorb="region", cluster="district", vcov="cluster"
+        sim, instruments="clerk", covariates=["age"], absorb="region", cluster="district", vcov="clustered"
     )
     design = pd.concat([sim[["clerk"]], pd.get_dummies(sim["region"], prefix="r", dtype=float)], axis=1)
     ref = sm.OLS(sim["age"], design).fit(cov_type="cluster", cov_kwds={"groups": sim["district"]}, use_t=True)
@@ -217,8 +217,8 @@ def test_clear_errors(sim: pd.DataFrame) -> None:
         balance(sim, instruments="early_fibre", covariates=["agee"])
     with pytest.raises(InvalidInputError, match="needs at least two"):
         per_instrument(sim, outcome="visits", treatment="telehealth", instruments=["clerk"])
-    with pytest.raises(InvalidInputError, match="vcov='cluster' needs cluster="):
-        placebo_outcomes(sim, instruments="clerk", outcomes=["age"], vcov="cluster")
+    with pytest.raises(InvalidInputError, match="vcov='clustered' needs cluster="):
+        placebo_outcomes(sim, instruments="clerk", outcomes=["age"], vcov="clustered")
     with pytest.raises(EstimationError, match="'early_fibre' is constant"):
         balance(sim.assign(early_fibre=1.0), instruments="early_fibre", covariates=["age"])
 

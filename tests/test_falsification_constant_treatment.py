@@ -32,7 +32,7 @@ def test_constant_treatment_gives_exact_zero_first_stage_and_the_reduced_form(fr
         query="able == 0",
         controls="w",
         cluster="g",
-        vcov="cluster",
+        vcov="clustered",
     )
     assert res.first_stage.coefficients[0].coef == 0.0
     assert res.first_stage_p_value == 1.0 and res.warning is None

@@ -95,7 +95,7 @@ def test_plan_life_cycle(cli, tmp_path: Path, monkeypatch) -> None:  # type: ign
     assert "content.decision_rules[0].when.value" in out and "23.1" in out
 
     on_plan = _run(cli, data, "--control", "w")
-    off_plan = _run(cli, data, "--control", "w", "--control", "age", "--vcov", "unadjusted")
+    off_plan = _run(cli, data, "--control", "w", "--control", "age", "--vcov", "homoskedastic")
     code, out, err = cli("plan", "compare", "fibre-plan", on_plan, off_plan, "--json")
     assert code == 0, err
     result = json.loads(out)
@@ -103,7 +103,7 @@ def test_plan_life_cycle(cli, tmp_path: Path, monkeypatch) -> None:  # type: ign
     assert by_run[on_plan]["deviations"] == []
     assert {(d["field"], str(d["actual"])) for d in by_run[off_plan]["deviations"]} == {
         ("controls", "['age', 'w']"),
-        ("vcov", "unadjusted"),
+        ("vcov", "homoskedastic"),
     }
     gate = by_run[on_plan]["decision_rules"][0]
     assert gate["rule"] == "gate" and gate["holds"] in (True, False)

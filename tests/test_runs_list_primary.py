@@ -172,7 +172,7 @@ def test_few_clusters_are_warned_about_in_the_terminal_and_the_dossier(  # type:
     cli, data_file: Path, tmp_path: Path
 ) -> None:
     _setup(cli)
-    slug = _estimate(cli, data_file, "--instrument", "z", "--cluster", "g", "--vcov", "cluster")
+    slug = _estimate(cli, data_file, "--instrument", "z", "--cluster", "g", "--vcov", "clustered")
     groups = pd.read_csv(data_file)["g"].nunique()  # 20 clusters, counted by pandas
     code, _, err = cli("run", "show", slug)
     assert code == 0
@@ -285,7 +285,7 @@ def test_estimate_warns_about_few_clusters_whether_or_not_the_run_is_attached(  
     _setup(cli)
     groups = pd.read_csv(data_file)["g"].nunique()  # 20 clusters, counted by pandas
     base = ("estimate", "--data", str(data_file), "--outcome", "y", "--treatment", "d", "--instrument", "z")
-    clustered = ("--cluster", "g", "--vcov", "cluster")
+    clustered = ("--cluster", "g", "--vcov", "clustered")
     for extra in ((), ("--attach", "zz"), ("--attach", "zz", "--json")):
         code, _, err = cli(*base, *clustered, *extra)
         assert code == 0, err

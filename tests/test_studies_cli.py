@@ -59,7 +59,7 @@ def test_bad_options_name_the_field(cli) -> None:  # type: ignore[no-untyped-def
     _setup(cli)
     code, _, err = cli("study", "report", "Okafor2021", "--f-kind", "hc3")
     assert code == 2
-    assert "f_kind 'hc3' is not known; use one of unadjusted, robust" in err
+    assert "f_kind 'hc3' is not known; use one of homoskedastic, heteroskedastic, clustered" in err
     code, _, err = cli("study", "report", "Okafr2021", "--estimate", "1")
     assert code == 3 and "Did you mean 'Okafor2021'?" in err
     code, _, err = cli("study", "critique", "Okafor2021", "--threat", "DG-E99")

@@ -110,7 +110,7 @@ PRIOR_STUDY_STATS: tuple[tuple[str, dict[str, Any]], ...] = (
             "estimate": -0.42,
             "std_error": 0.17,
             "first_stage_f": 11.5,
-            "f_kind": "robust",
+            "f_kind": "heteroskedastic",
             "n": 4200,
             "first_stage_coef": 0.011,
             "first_stage_se": 0.0032,
@@ -124,7 +124,7 @@ PRIOR_STUDY_STATS: tuple[tuple[str, dict[str, Any]], ...] = (
             "estimate": -0.8,
             "std_error": 0.21,
             "first_stage_f": 48.0,
-            "f_kind": "cluster",
+            "f_kind": "clustered",
             "n": 9100,
             "n_clusters": 140,
         },
@@ -394,7 +394,7 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
             controls=CONTROLS,
             cluster="district",
             method=method,
-            vcov="cluster",
+            vcov="clustered",
         )
         run = estimate_file(csv_path, spec)
         with registry.writing() as s:
@@ -410,7 +410,7 @@ def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
 
     def spec(instruments: list[str], **roles: Any) -> ModelSpec:
         adjust: dict[str, Any] = {"controls": CONTROLS, **roles}
-        return ModelSpec.build(instruments=instruments, cluster="district", vcov="cluster", **adjust)
+        return ModelSpec.build(instruments=instruments, cluster="district", vcov="clustered", **adjust)
 
     model = {"outcome": "ed_visits", "treatment": "telehealth"}
     jobs: list[tuple[str, str, ModelSpec, dict[str, Any]]] = []

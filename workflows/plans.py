@@ -91,9 +91,11 @@ def draft_content(
 
     Each instrument carries its verdicts as the verdict engine derives them at drafting time, so the sealed plan
     records how the argument stood when the plan was written."""
-    cov = vcov or ("cluster" if cluster else "robust")
-    if cov == "cluster" and not cluster:
-        raise InvalidInputError("vcov 'cluster' needs --cluster COLUMN; name the clustering column.")
+    from ivdossier.estimation.covariance import cov_name
+
+    cov = cov_name(vcov) if vcov else ("clustered" if cluster else "heteroskedastic")
+    if cov == "clustered" and not cluster:
+        raise InvalidInputError("vcov 'clustered' needs --cluster COLUMN; name the clustering column.")
     specs = []
     for inst in instruments:
         cols = _names(inst.columns)
@@ -163,7 +165,7 @@ def draft_content(
     }
 
 
-def _edge_rows(edges: Any, instruments: list[Instrument]) -> list[dict[str, Any]]:
+def _edge_rows(edges: Any, instruments: Sequence[Instrument]) -> list[dict[str, Any]]:
     """The team's edges with their scope: "program" (every instrument's graph) or the one instrument they belong to.
 
     Edges scoped to an instrument the plan does not cover are left out: they are in no graph the plan describes.
