@@ -203,7 +203,9 @@ def sensitivity_breakdown(
 def falsify_balance(
     data: Data,
     instrument: Instruments,
-    covariate: Annotated[list[str], typer.Option(help="Predetermined covariate(s) (repeatable).")],
+    covariate: Annotated[
+        list[str], typer.Option(help="Predetermined covariate(s): repeat the option or separate by commas.")
+    ],
     control: Controls = None,
     absorb: Absorb = None,
     cluster: Cluster = None,
@@ -218,7 +220,7 @@ def falsify_balance(
         instrument=instrument, control=control, absorb=absorb, cluster=cluster, weights=weights, vcov=vcov,
         alpha=alpha,
     )  # fmt: skip
-    run = _run("falsify balance", data, spec, covariates=list(covariate))
+    run = _run("falsify balance", data, spec, covariates=list(split_names(covariate)))
     _finish(run, "falsify balance", attach=attach, json_out=json_out)
 
 
@@ -226,7 +228,12 @@ def falsify_balance(
 def falsify_placebo(
     data: Data,
     instrument: Instruments,
-    placebo_outcome: Annotated[list[str], typer.Option(help="Outcome(s) the instrument cannot have caused.")],
+    placebo_outcome: Annotated[
+        list[str],
+        typer.Option(
+            help="Outcome(s) the instrument cannot have caused: repeat the option or separate by commas."
+        ),
+    ],
     control: Controls = None,
     absorb: Absorb = None,
     cluster: Cluster = None,
@@ -241,7 +248,7 @@ def falsify_placebo(
         instrument=instrument, control=control, absorb=absorb, cluster=cluster, weights=weights, vcov=vcov,
         alpha=alpha,
     )  # fmt: skip
-    run = _run("falsify placebo", data, spec, outcomes=list(placebo_outcome))
+    run = _run("falsify placebo", data, spec, outcomes=list(split_names(placebo_outcome)))
     _finish(run, "falsify placebo", attach=attach, json_out=json_out)
 
 
@@ -327,7 +334,10 @@ def compliers(
     data: Data,
     treatment: Annotated[str, typer.Option(help="Binary treatment column (0/1).")],
     instrument: Annotated[str, typer.Option(help="Binary instrument column (0/1).")],
-    covariate: Annotated[list[str] | None, typer.Option(help="Covariates to profile compliers on.")] = None,
+    covariate: Annotated[
+        list[str] | None,
+        typer.Option(help="Covariates to profile compliers on: repeat the option or separate by commas."),
+    ] = None,
     outcome: Annotated[str | None, typer.Option(help="Outcome for the implied-density check.")] = None,
     bins: Annotated[int, typer.Option(help="Outcome bins for the implied-density check.")] = 5,
     cluster: Annotated[str | None, typer.Option(help="Cluster column for bootstrap resampling.")] = None,
@@ -337,7 +347,7 @@ def compliers(
 ) -> None:
     """Complier, always-taker and never-taker shares; complier profile; implied complier densities."""
     run = _run(
-        "compliers", data, None, treatment=treatment, instrument=instrument, covariates=list(covariate or []),
+        "compliers", data, None, treatment=treatment, instrument=instrument, covariates=list(split_names(covariate)),
         outcome=outcome, bins=bins, cluster=cluster, seed=seed,
     )  # fmt: skip
     _finish(run, "compliers", attach=attach, json_out=json_out)
