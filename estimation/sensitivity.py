@@ -336,13 +336,13 @@ def union_of_intervals(
     )
     core = _core(prepared, vcov=vcov, small_sample=small_sample, alpha=alpha)
     n_inst = len(core.instruments)
-    lo = _as_vector(gamma_min, n_inst, "gamma_min")
-    hi = _as_vector(gamma_max, n_inst, "gamma_max")
+    lo = _as_vector(gamma_min, n_inst, "the direct-effect minimum (gamma_min, --direct-effect-min)")
+    hi = _as_vector(gamma_max, n_inst, "the direct-effect maximum (gamma_max, --direct-effect-max)")
     if np.any(lo > hi):
         j = int(np.argmax(lo > hi))
         raise InvalidInputError(
             f"The direct-effect range for instrument {core.instruments[j]!r} is reversed "
-            f"(gamma_min {lo[j]:g} > gamma_max {hi[j]:g}); swap the bounds."
+            f"(minimum {lo[j]:g} > maximum {hi[j]:g}); swap the bounds."
         )
     steps = np.linspace(0.0, 1.0, n_grid)
     grid: list[GammaInterval] = []

@@ -246,7 +246,10 @@ def test_clear_errors(sim: pd.DataFrame) -> None:
     kw = {"outcome": "visits", "treatment": "telehealth", "instruments": "fibre"}
     with pytest.raises(InvalidInputError, match="range for instrument 'fibre' is reversed"):
         union_of_intervals(sim, gamma_min=0.2, gamma_max=0.1, **kw)  # type: ignore[arg-type]
-    with pytest.raises(InvalidInputError, match="gamma_min has 2 entries but there are 1 instruments"):
+    with pytest.raises(
+        InvalidInputError,
+        match=r"the direct-effect minimum \(gamma_min, --direct-effect-min\) has 2 entries but there are 1 instruments",
+    ):
         union_of_intervals(sim, gamma_min=[0, 0], gamma_max=0.1, **kw)  # type: ignore[arg-type]
     with pytest.raises(InvalidInputError, match="omega must be symmetric positive semi-definite"):
         local_to_zero(sim, mu=0.0, omega=-1.0, **kw)  # type: ignore[arg-type]
