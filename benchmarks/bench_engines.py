@@ -51,7 +51,7 @@ MODEL = {
     "instruments": ["z1", "z2"],
     "controls": CONTROLS,
     "cluster": "cluster",
-    "vcov": "cluster",
+    "vcov": "clustered",
 }
 
 

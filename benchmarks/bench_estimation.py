@@ -103,7 +103,7 @@ def main() -> None:
             instruments=["z1", "z2"],
             controls=controls,
             cluster="cluster",
-            vcov="cluster",
+            vcov="clustered",
         )
 
     t_ours, res = timed(ours, args.repeat)
@@ -152,7 +152,7 @@ def main() -> None:
                 controls=controls,
                 absorb=["fe_a", "fe_b"],
                 cluster="cluster",
-                vcov="cluster",
+                vcov="clustered",
             )
 
         t_fe, res_fe = timed(two_way, 1)

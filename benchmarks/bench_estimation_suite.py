@@ -101,7 +101,7 @@ def ours(df: pd.DataFrame) -> Any:
         instruments=["z1", "z2"],
         controls=CONTROLS,
         cluster="cluster",
-        vcov="cluster",
+        vcov="clustered",
     )
 
 
@@ -169,7 +169,7 @@ def run_fe(n: int, n_clusters: int, levels: int, rounds: int) -> None:
             controls=CONTROLS,
             absorb=["fe_a", "fe_b"],
             cluster="fe_a",
-            vcov="cluster",
+            vcov="clustered",
         )
 
     def theirs() -> Any:

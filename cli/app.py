@@ -30,6 +30,10 @@ def exit_code(exc: IvdossierError) -> int:
 class ErrorReportingGroup(TyperGroup):
     """Turns library errors into one line on stderr and a non-zero exit; --debug shows the traceback."""
 
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        _flags_take_no_value(self)
+
     def invoke(self, ctx: Any) -> Any:
         try:
             return super().invoke(ctx)
@@ -46,6 +50,21 @@ class ErrorReportingGroup(TyperGroup):
             if known is not None:
                 _fail(known, 1)
             _fail(f"unexpected {type(exc).__name__}: {exc} (rerun with --debug for details)", 1)
+
+
+def _flags_take_no_value(command: Any) -> None:
+    """Show on/off flags without a value type in --help (they take none), in this group and every command below."""
+    from types import SimpleNamespace
+
+    params = list(getattr(command, "params", ()))
+    # The help option is built once and cached by the command; ["--help"] is our only name for it.
+    if hasattr(command, "get_help_option"):
+        params.append(command.get_help_option(SimpleNamespace(help_option_names=["--help"])))
+    for param in params:
+        if getattr(param, "is_flag", False):
+            param.metavar = ""
+    for sub in getattr(command, "commands", {}).values():
+        _flags_take_no_value(sub)
 
 
 def _fail(message: str, code: int) -> None:

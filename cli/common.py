@@ -34,12 +34,15 @@ def actor() -> str:
     return resolve_actor(settings.actor)
 
 
-def _open(*, sync: bool = True) -> Any:
-    """Open the chosen registry and (unless ``sync`` is off) bring its copy of the built-in catalogue up to date."""
+def _open(*, sync: bool = True, create: bool = False) -> Any:
+    """Open the chosen registry and (unless ``sync`` is off) bring its copy of the built-in catalogue up to date.
+
+    Only `init` passes ``create``: every other command refuses a registry that does not exist yet.
+    """
     from ivdossier.registry.db import open_registry
     from ivdossier.workflows.catalog_sync import sync_on_open
 
-    reg = open_registry(settings.db)
+    reg = open_registry(settings.db, create=create)
     if sync:
         try:
             sync_on_open(reg)
@@ -50,11 +53,19 @@ def _open(*, sync: bool = True) -> Any:
 
 
 @contextmanager
-def writing(*, sync: bool = True) -> Iterator[Any]:
-    """A write transaction on the chosen registry; nothing is kept if the command fails."""
-    reg = _open(sync=sync)
+def writing(*, sync: bool = True, create: bool = False) -> Iterator[Any]:
+    """A write transaction on the chosen registry; nothing is kept if the command fails.
+
+    Every write refuses an acting handle that is not a member once the registry has members
+    (`registry.instruments.check_writer`); `init` (``create``) writes only as the catalogue and is not checked.
+    """
+    reg = _open(sync=sync, create=create)
     try:
         with reg.writing() as session:
+            if not create:
+                from ivdossier.registry.instruments import check_writer
+
+                check_writer(session, actor())
             yield session
     finally:
         reg.dispose()

@@ -42,7 +42,7 @@ def estimate(
     cluster: Cluster = None,
     weights: Weights = None,
     method: Method = "2sls",
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     attach: Attach = None,
     json_out: JsonFlag = False,

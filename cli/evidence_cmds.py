@@ -107,17 +107,29 @@ def sensitivity_range(
     outcome: Outcome,
     treatment: Treatment,
     instrument: Instruments,
+    direct_effect_min: Annotated[
+        list[float] | None,
+        typer.Option(
+            help="Lowest direct effect of the instrument on the outcome (one, or one per instrument)."
+        ),
+    ] = None,
+    direct_effect_max: Annotated[
+        list[float] | None,
+        typer.Option(
+            help="Highest direct effect of the instrument on the outcome (one, or one per instrument)."
+        ),
+    ] = None,
     gamma_min: Annotated[
-        list[float], typer.Option(help="Lowest direct effect (one, or one per instrument).")
-    ],
+        list[float] | None, typer.Option(hidden=True, help="Deprecated spelling of --direct-effect-min.")
+    ] = None,
     gamma_max: Annotated[
-        list[float], typer.Option(help="Highest direct effect (one, or one per instrument).")
-    ],
+        list[float] | None, typer.Option(hidden=True, help="Deprecated spelling of --direct-effect-max.")
+    ] = None,
     control: Controls = None,
     absorb: Absorb = None,
     cluster: Cluster = None,
     weights: Weights = None,
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     plot: PlotOut = None,
     engine: Engine = "pandas",
@@ -127,8 +139,17 @@ def sensitivity_range(
     json_out: JsonFlag = False,
 ) -> None:
     """Union of 2SLS intervals over a range of direct effects (Conley, Hansen and Rossi 2012)."""
+    from ivdossier.cli.deprecated import either
+    from ivdossier.errors import InvalidInputError
     from ivdossier.estimation.sensitivity import plot_sensitivity_svg
 
+    low = either(direct_effect_min or None, gamma_min or None, new="--direct-effect-min", old="--gamma-min")
+    high = either(direct_effect_max or None, gamma_max or None, new="--direct-effect-max", old="--gamma-max")
+    if low is None or high is None:
+        raise InvalidInputError(
+            "sensitivity range needs the assumed range of the direct effect: pass --direct-effect-min and "
+            "--direct-effect-max (one value, or one per instrument)."
+        )
     spec = model_spec(
         outcome=outcome, treatment=treatment, instrument=instrument, control=control, absorb=absorb,
         cluster=cluster, weights=weights, vcov=vcov, alpha=alpha,
@@ -138,8 +159,8 @@ def sensitivity_range(
         data,
         spec,
         (engine, memory_limit, spark_master),
-        gamma_min=gamma_min,
-        gamma_max=gamma_max,
+        direct_effect_min=low,
+        direct_effect_max=high,
     )
     if plot is not None:
         plot.write_text(plot_sensitivity_svg(run.result), encoding="utf-8")
@@ -160,7 +181,7 @@ def sensitivity_prior(
     absorb: Absorb = None,
     cluster: Cluster = None,
     weights: Weights = None,
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     engine: Engine = "pandas",
     memory_limit: MemoryLimit = None,
@@ -197,7 +218,7 @@ def sensitivity_breakdown(
     absorb: Absorb = None,
     cluster: Cluster = None,
     weights: Weights = None,
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     engine: Engine = "pandas",
     memory_limit: MemoryLimit = None,
@@ -221,12 +242,14 @@ def sensitivity_breakdown(
 def falsify_balance(
     data: Data,
     instrument: Instruments,
-    covariate: Annotated[list[str], typer.Option(help="Predetermined covariate(s) (repeatable).")],
+    covariate: Annotated[
+        list[str], typer.Option(help="Predetermined covariate(s): repeat the option or separate by commas.")
+    ],
     control: Controls = None,
     absorb: Absorb = None,
     cluster: Cluster = None,
     weights: Weights = None,
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     engine: Engine = "pandas",
     memory_limit: MemoryLimit = None,
@@ -240,7 +263,11 @@ def falsify_balance(
         alpha=alpha,
     )  # fmt: skip
     run = _run(
-        "falsify balance", data, spec, (engine, memory_limit, spark_master), covariates=list(covariate)
+        "falsify balance",
+        data,
+        spec,
+        (engine, memory_limit, spark_master),
+        covariates=list(split_names(covariate)),
     )
     _finish(run, "falsify balance", attach=attach, json_out=json_out)
 
@@ -249,12 +276,17 @@ def falsify_balance(
 def falsify_placebo(
     data: Data,
     instrument: Instruments,
-    placebo_outcome: Annotated[list[str], typer.Option(help="Outcome(s) the instrument cannot have caused.")],
+    placebo_outcome: Annotated[
+        list[str],
+        typer.Option(
+            help="Outcome(s) the instrument cannot have caused: repeat the option or separate by commas."
+        ),
+    ],
     control: Controls = None,
     absorb: Absorb = None,
     cluster: Cluster = None,
     weights: Weights = None,
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     engine: Engine = "pandas",
     memory_limit: MemoryLimit = None,
@@ -268,7 +300,11 @@ def falsify_placebo(
         alpha=alpha,
     )  # fmt: skip
     run = _run(
-        "falsify placebo", data, spec, (engine, memory_limit, spark_master), outcomes=list(placebo_outcome)
+        "falsify placebo",
+        data,
+        spec,
+        (engine, memory_limit, spark_master),
+        outcomes=list(split_names(placebo_outcome)),
     )
     _finish(run, "falsify placebo", attach=attach, json_out=json_out)
 
@@ -285,7 +321,7 @@ def falsify_zero_first_stage(
     absorb: Absorb = None,
     cluster: Cluster = None,
     weights: Weights = None,
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     engine: Engine = "pandas",
     attach: Attach = None,
@@ -310,7 +346,7 @@ def falsify_per_instrument(
     absorb: Absorb = None,
     cluster: Cluster = None,
     weights: Weights = None,
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     engine: Engine = "pandas",
     memory_limit: MemoryLimit = None,
@@ -338,7 +374,7 @@ def falsify_first_stage_signs(
     absorb: Absorb = None,
     cluster: Cluster = None,
     weights: Weights = None,
-    vcov: Vcov = "robust",
+    vcov: Vcov = "heteroskedastic",
     alpha: Alpha = 0.05,
     engine: Engine = "pandas",
     attach: Attach = None,
@@ -360,7 +396,10 @@ def compliers(
     data: Data,
     treatment: Annotated[str, typer.Option(help="Binary treatment column (0/1).")],
     instrument: Annotated[str, typer.Option(help="Binary instrument column (0/1).")],
-    covariate: Annotated[list[str] | None, typer.Option(help="Covariates to profile compliers on.")] = None,
+    covariate: Annotated[
+        list[str] | None,
+        typer.Option(help="Covariates to profile compliers on: repeat the option or separate by commas."),
+    ] = None,
     outcome: Annotated[str | None, typer.Option(help="Outcome for the implied-density check.")] = None,
     bins: Annotated[int, typer.Option(help="Outcome bins for the implied-density check.")] = 5,
     cluster: Annotated[str | None, typer.Option(help="Cluster column for bootstrap resampling.")] = None,
@@ -371,7 +410,7 @@ def compliers(
 ) -> None:
     """Complier, always-taker and never-taker shares; complier profile; implied complier densities."""
     run = _run(
-        "compliers", data, None, treatment=treatment, instrument=instrument, covariates=list(covariate or []),
+        "compliers", data, None, treatment=treatment, instrument=instrument, covariates=list(split_names(covariate)),
         outcome=outcome, bins=bins, cluster=cluster, seed=seed,
     )  # fmt: skip
     _finish(run, "compliers", attach=attach, json_out=json_out)

@@ -44,7 +44,8 @@ WeightType = Annotated[
 FragVcov = Annotated[
     str | None,
     typer.Option(
-        "--vcov", help="unadjusted, robust or cluster (default: cluster with --cluster, else robust)."
+        "--vcov",
+        help="homoskedastic, heteroskedastic or clustered (default: clustered with --cluster, else heteroskedastic).",
     ),
 ]
 AFTER_SECONDS = 2.0
@@ -93,7 +94,7 @@ class TerminalProgress:
 
 
 def _vcov(vcov: str | None, cluster: list[str] | None) -> str:
-    return vcov if vcov is not None else ("cluster" if cluster else "robust")
+    return vcov if vcov is not None else ("clustered" if cluster else "heteroskedastic")
 
 
 def _run(name: str, data: Any, spec: Any, **options: Any) -> Any:

@@ -25,7 +25,7 @@ def init() -> None:
     from ivdossier.registry.db import resolve_url
     from ivdossier.workflows.catalog_sync import CATALOG_ACTOR, ensure_builtin
 
-    with writing(sync=False) as s:
+    with writing(sync=False, create=True) as s:
         added = ensure_builtin(s, actor=CATALOG_ACTOR)
 
     typer.echo(f"registry ready at {resolve_url(settings.db)} ({added} catalogue entries added or refreshed)")

@@ -38,7 +38,14 @@ Cluster = Annotated[
 ]
 Weights = Annotated[str | None, typer.Option("--weights", help="Column of non-negative analytic weights.")]
 Method = Annotated[str, typer.Option("--method", help="ols, 2sls, liml or fuller.")]
-Vcov = Annotated[str, typer.Option("--vcov", help="unadjusted, robust or cluster.")]
+Vcov = Annotated[
+    str,
+    typer.Option(
+        "--vcov",
+        help="homoskedastic, heteroskedastic or clustered: the errors' variance is the same for every row, may "
+        "differ by row, or errors may be correlated within clusters.",
+    ),
+]
 Alpha = Annotated[float, typer.Option("--alpha", help="1 - confidence level of every interval.")]
 Attach = Annotated[
     str | None, typer.Option("--attach", help="Store the result as a run attached to this instrument.")
@@ -82,12 +89,13 @@ def model_spec(
     cluster: Sequence[str] | None = None,
     weights: str | None = None,
     method: str = "2sls",
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     alpha: float = 0.05,
 ) -> ModelSpec:
     """The validated model spec from the command-line options (the same checks as the Python API)."""
     from ivdossier.estimation.spec import ModelSpec
 
+    vcov = current_cov_name(vcov)
     return ModelSpec.build(
         outcome=outcome,
         treatment=treatment,
@@ -116,3 +124,15 @@ def engine_settings(engine: str, memory_limit: str | None, spark_master: str | N
     from ivdossier.estimation.engines import EngineSettings
 
     return EngineSettings(engine=engine, memory_limit=memory_limit, spark_master=spark_master)
+
+
+def current_cov_name(vcov: str) -> str:
+    """--vcov in the current words; an old spelling (unadjusted, robust, cluster) works with a deprecation note."""
+    from ivdossier.estimation.covariance import OLD_COV_NAMES
+
+    if vcov in OLD_COV_NAMES:
+        from ivdossier.cli.deprecated import note
+
+        note(f"--vcov {vcov}", f"--vcov {OLD_COV_NAMES[vcov]}")
+        return OLD_COV_NAMES[vcov]
+    return vcov

@@ -10,6 +10,7 @@ import typer
 
 from ivdossier.cli import panels
 from ivdossier.cli.common import IfVersion, JsonFlag, actor, read_text_option, reading, writing
+from ivdossier.cli.model_options import Controls, current_cov_name, split_names
 from ivdossier.cli.output import print_json, print_table
 
 plan_app = typer.Typer(
@@ -71,12 +72,13 @@ def draft(
     ],
     slug: Annotated[str | None, typer.Option(help="Plan slug (default TARGET-plan).")] = None,
     title: Annotated[str | None, typer.Option(help="Plan title.")] = None,
-    control: Annotated[list[str] | None, typer.Option(help="Control column (repeat).")] = None,
+    control: Controls = None,
     absorb: Annotated[list[str] | None, typer.Option(help="Fixed-effect column to absorb (repeat).")] = None,
     cluster: Annotated[list[str] | None, typer.Option(help="Cluster column (one or two).")] = None,
     method: Annotated[str, typer.Option(help="Estimator: 2sls, liml or fuller.")] = "2sls",
     vcov: Annotated[
-        str | None, typer.Option(help="unadjusted, robust or cluster (default: cluster if --cluster).")
+        str | None,
+        typer.Option(help="homoskedastic, heteroskedastic or clustered (default: clustered if --cluster)."),
     ] = None,
     alpha: Annotated[float, typer.Option(help="Test level.")] = 0.05,
     data: Annotated[str | None, typer.Option(help="Data description, or @FILE.")] = None,
@@ -115,8 +117,8 @@ def draft(
         pw = _power(n, expected_f, partial_r2, outcome_sd, residual_sd, treatment_sd, cluster_size, icc, effect,
                     power, max(n_inst, 1))  # fmt: skip
         plan = draft_plan(
-            s, actor=actor(), target=target, slug=slug, title=title, controls=control or [], absorb=absorb or [],
-            cluster=cluster or [], method=method, vcov=vcov, alpha=alpha, data_description=read_text_option(data) or "",
+            s, actor=actor(), target=target, slug=slug, title=title, controls=list(split_names(control)), absorb=absorb or [],
+            cluster=cluster or [], method=method, vcov=vcov and current_cov_name(vcov), alpha=alpha, data_description=read_text_option(data) or "",
             sample=read_text_option(sample) or "", expected_n=n, power=pw,
         )  # fmt: skip
         view = plans.plan_dict(s, plan)

@@ -11,7 +11,7 @@ from ivdossier.cli.common import JsonFlag, actor, reading, writing
 from ivdossier.cli.output import print_json, print_record, print_table
 
 run_app = typer.Typer(
-    help="Stored runs: list them, show one, mark an instrument's primary run.", no_args_is_help=True
+    help="Stored runs: list them, show one, mark or clear an instrument's primary run.", no_args_is_help=True
 )
 
 
@@ -90,6 +90,25 @@ def run_primary(
         return
     typer.echo(f"{summary.slug} is now the primary run of {summary.instrument}.")
     _warn([summary])
+
+
+@run_app.command("clear-primary")
+def run_clear_primary(
+    instrument: Annotated[str, typer.Argument(help="The instrument whose primary mark to clear.")],
+    reason: Annotated[str, typer.Option(help="Why (kept in the audit trail).")] = "",
+    json_out: JsonFlag = False,
+) -> None:
+    """Clear an instrument's primary run mark: its dossier headline and verdicts follow the latest run again."""
+    from ivdossier.workflows.run_records import clear_primary
+
+    with writing() as s:
+        summary = clear_primary(s, actor=actor(), instrument=instrument, reason=reason)
+    if json_out:
+        print_json(summary.to_dict())
+        return
+    typer.echo(
+        f"{summary.slug} is no longer the primary run of {summary.instrument}; its dossier follows the latest run."
+    )
 
 
 def _warn(runs: list[object]) -> None:

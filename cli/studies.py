@@ -156,12 +156,19 @@ def show(key: str, json_out: JsonFlag = False) -> None:
 def report(
     key: str,
     estimate: Annotated[float | None, typer.Option(help="2SLS (or other IV) point estimate.")] = None,
-    se: Annotated[float | None, typer.Option(help="Its standard error.")] = None,
+    std_error: Annotated[
+        float | None,
+        typer.Option("--std-error", help="Standard error of the estimate (CSV column std_error)."),
+    ] = None,
+    se: Annotated[
+        float | None, typer.Option("--se", hidden=True, help="Deprecated spelling of --std-error.")
+    ] = None,
     first_stage_f: Annotated[float | None, typer.Option(help="First-stage F the study reported.")] = None,
     f_kind: Annotated[
         str | None,
         typer.Option(
-            help="Which F: unadjusted, robust, cluster, effective, kleibergen-paap, cragg-donald or unknown."
+            help="Which F: homoskedastic, heteroskedastic, clustered, effective, kleibergen-paap, cragg-donald or "
+            "unknown."
         ),
     ] = None,
     n: Annotated[int | None, typer.Option(help="Number of observations.")] = None,
@@ -182,10 +189,12 @@ def report(
     json_out: JsonFlag = False,
 ) -> None:
     """Record the statistics a study reported for its headline IV specification."""
+    from ivdossier.cli.deprecated import either
     from ivdossier.workflows.studies import report_stats
 
+    std_error = either(std_error, se, new="--std-error", old="--se")
     given = {
-        "estimate": estimate, "std_error": se, "first_stage_f": first_stage_f, "f_kind": f_kind, "n": n,
+        "estimate": estimate, "std_error": std_error, "first_stage_f": first_stage_f, "f_kind": f_kind, "n": n,
         "n_clusters": clusters, "n_instruments": instruments, "first_stage_coef": fs_coef, "first_stage_se": fs_se,
         "reduced_form_coef": rf_coef, "reduced_form_se": rf_se, "fs_rf_cov": fs_rf_cov, "method": method,
         "label": label,

@@ -18,7 +18,7 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
-from ivdossier.estimation.covariance import CovKind, CovSpec, sandwich
+from ivdossier.estimation.covariance import CovKind, CovSpec, cov_name, sandwich
 from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import PreparedData, prepare
 from ivdossier.estimation.diagnostics import DiagnosticSuite, unidentified_reason
@@ -51,9 +51,10 @@ def conventions(vcov: str, small_sample: bool) -> dict[str, str]:
         "absorbed_df": "one fixed effect: its levels; two: L1 + L2 - connected components; more: "
         "L1 + sum_j (Lj - components with the first), conservative",
     }
-    if vcov == "unadjusted":
+    vcov = cov_name(vcov)
+    if vcov == "homoskedastic":
         out["vcov"] = f"sigma^2 = e'e / (n - k - p), {p}" if small_sample else "sigma^2 = e'e / n"
-    elif vcov == "robust":
+    elif vcov == "heteroskedastic":
         out["vcov"] = f"HC1, meat times n / (n - k - p), {p}" if small_sample else "HC0"
     else:
         out["vcov"] = (
@@ -64,7 +65,7 @@ def conventions(vcov: str, small_sample: bool) -> dict[str, str]:
         )
     if not small_sample:
         out["intervals"] = "normal quantiles"
-    elif vcov == "cluster":
+    elif vcov == "clustered":
         out["intervals"] = "t quantiles with G - 1 degrees of freedom (smallest G for two-way)"
     else:
         out["intervals"] = "t quantiles with n - k - p degrees of freedom"
@@ -82,7 +83,7 @@ def estimate(
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
     method: str = "2sls",
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
     fuller_alpha: float = 1.0,
@@ -90,7 +91,7 @@ def estimate(
 ) -> EstimationResult:
     """Estimate the effect of ``treatment`` on ``outcome`` and return coefficients with diagnostics.
 
-    ``method`` is one of "ols", "2sls", "liml", "fuller"; ``vcov`` one of "unadjusted", "robust", "cluster"
+    ``method`` is one of "ols", "2sls", "liml", "fuller"; ``vcov`` one of "homoskedastic", "heteroskedastic", "clustered"
     (the last needs ``cluster``, one or two column names). Conventions are listed in ``result.conventions``.
     ``report_controls=True`` also reports the intercept and control coefficients and the R^2
     (``result.controls_table``), from one extra fit of the full equation. The keywords build one
@@ -172,7 +173,7 @@ def _estimate(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool) -> 
         control_names=prepared.controls,
         method=method,
         beta=result.coef,
-        spec=CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample),
+        spec=CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "clustered" else (), small_sample),
         fe_codes=[pd.factorize(frame[c])[0].astype(np.int64) for c in prepared.absorb],
         weights=frame[weights].to_numpy(dtype=np.float64) if weights else None,
         n_absorbed=prepared.n_absorbed,
@@ -188,7 +189,8 @@ def interval_quantile(
 
     t with n - k - p degrees of freedom (G - 1, smallest G, with clusters) when ``small_sample``, else normal.
     """
-    df = None if not small_sample else (min(n_clusters) - 1 if vcov == "cluster" else df_resid)
+    clustered = cov_name(vcov) == "clustered"
+    df = None if not small_sample else (min(n_clusters) - 1 if clustered else df_resid)
     if df is None:
         return float(stats.norm.ppf(1 - alpha / 2)), "normal quantiles", None
     return float(stats.t.ppf(1 - alpha / 2, df)), f"t quantiles with {df} degrees of freedom", df
@@ -212,16 +214,17 @@ def estimate_prepared(
     prepared: PreparedData,
     *,
     method: str = "2sls",
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
     fuller_alpha: float = 1.0,
     diagnostics: bool = True,
 ) -> EstimationResult:
     """Estimate from validated, partialled data; ``diagnostics=False`` skips the weak-instrument suite."""
+    vcov = cov_name(vcov)
     with one_blas_thread():
         check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
-        spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
+        spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "clustered" else (), small_sample)
         cp = build(
             prepared.Z if method != "ols" else np.zeros((prepared.X.shape[0], 0)),
             prepared.X,
@@ -373,7 +376,7 @@ def fit_arrays(
     weights: np.ndarray | None = None,
     clusters: Sequence[np.ndarray] = (),
     method: str = "2sls",
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     fuller_alpha: float = 1.0,
 ) -> tuple[Array, Array]:
@@ -382,6 +385,7 @@ def fit_arrays(
 
     Cluster and fixed-effect codes must be int64 arrays 0..G-1; the caller guarantees complete, finite data.
     """
+    vcov = cov_name(vcov)
     yv = np.asarray(y, dtype=np.float64).reshape(-1, 1)
     x = np.asarray(X, dtype=np.float64)
     x = x[:, None] if x.ndim == 1 else x
@@ -395,10 +399,10 @@ def fit_arrays(
         controls=controls,
         fe_codes=fe_codes,
         weights=weights,
-        cluster_codes=clusters if vcov == "cluster" else (),
+        cluster_codes=clusters if vcov == "clustered" else (),
     )
     cols = absorbed.columns
-    spec = CovSpec(cast(CovKind, vcov), tuple(clusters) if vcov == "cluster" else (), small_sample)
+    spec = CovSpec(cast(CovKind, vcov), tuple(clusters) if vcov == "clustered" else (), small_sample)
     with one_blas_thread():
         cp = build(
             cols[:, 1 + k :] if Z is not None else np.zeros((cols.shape[0], 0)),

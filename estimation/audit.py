@@ -50,15 +50,18 @@ from ivdossier.estimation.variant_summary import (
 )
 
 F_KINDS: tuple[str, ...] = (
-    "unadjusted",
-    "robust",
-    "cluster",
+    "homoskedastic",
+    "heteroskedastic",
+    "clustered",
     "effective",
     "kleibergen-paap",
     "cragg-donald",
     "unknown",
 )
-"""Which first-stage F a study reported: homoskedastic, robust, cluster, effective (MOP), KP rk, CD, unknown."""
+"""Which first-stage F a study reported: homoskedastic, heteroskedastic (robust), clustered, effective (MOP), KP rk,
+CD, unknown. The older words unadjusted, robust and cluster are read as the first three (stored values, one release
+on input)."""
+OLD_F_KINDS = {"unadjusted": "homoskedastic", "robust": "heteroskedastic", "cluster": "clustered"}
 
 NUMBER_FIELDS: tuple[str, ...] = (
     "estimate",
@@ -143,6 +146,7 @@ class ReportedStats:
         nums = {k: _number(data.get(k), k, where) for k in NUMBER_FIELDS}
         ints = {k: _integer(data.get(k), k, where) for k in INT_FIELDS}
         f_kind = str(data.get("f_kind") or "unknown").strip().lower()
+        f_kind = OLD_F_KINDS.get(f_kind, f_kind)
         if f_kind not in F_KINDS:
             raise InvalidInputError(
                 f"{where}: f_kind {f_kind!r} is not known; use one of {', '.join(F_KINDS)}."
@@ -456,7 +460,7 @@ def strength_check(rep: ReportedStats) -> StrengthCheck:
             continue
         name = f"Stock–Yogo {cell.criterion.replace('_', ' ')} {_pct(cell.level)}"
         sy_rows.append(Threshold(name, value, f > value))
-    if rep.f_kind in ("unadjusted", "cragg-donald"):
+    if rep.f_kind in ("homoskedastic", "cragg-donald"):
         sy_note = None
     elif rep.f_kind == "unknown":
         sy_note = "the study did not say which F it reported; the tables assume homoskedastic errors"
@@ -467,7 +471,7 @@ def strength_check(rep: ReportedStats) -> StrengthCheck:
         )
     eff_rows: list[Threshold] = []
     eff_note: str | None = None
-    if k == 1 or rep.f_kind in ("unadjusted", "cragg-donald"):
+    if k == 1 or rep.f_kind in ("homoskedastic", "cragg-donald"):
         # K_eff = 1 with one instrument; K_eff = k under homoskedasticity (S proportional to the identity).
         k_eff = 1.0 if k == 1 else float(k)
         for tau in MOP_TAUS:
@@ -475,7 +479,7 @@ def strength_check(rep: ReportedStats) -> StrengthCheck:
             eff_rows.append(Threshold(f"effective F, tau = {_pct(tau)}", c, f > c))
         if rep.f_kind == "unknown":
             eff_note = "the study did not say which F it reported; read as the effective F"
-        elif k == 1 and rep.f_kind in ("unadjusted", "cragg-donald"):
+        elif k == 1 and rep.f_kind in ("homoskedastic", "cragg-donald"):
             eff_note = "with one instrument the effective F equals the F under the covariance the study used"
     else:
         eff_note = (

@@ -1,4 +1,4 @@
-"""Sandwich covariance of linear-model coefficients: unadjusted, heteroskedasticity-robust and clustered.
+"""Sandwich covariance of linear-model coefficients: homoskedastic, heteroskedastic (robust) and clustered.
 
 All functions work on arrays that have already been partialled (Frisch–Waugh–Lovell) and, when the model is
 weighted, multiplied row-wise by sqrt(w): callers pass sqrt(w)-scaled regressors and residuals, so the
@@ -6,8 +6,8 @@ formulas here are weight-agnostic.
 
 Small-sample conventions (common practice; applied when ``CovSpec.small_sample`` is True, omitted otherwise):
 
-* unadjusted: ``kron(E'E / (n - k - p), bread)``; without the adjustment ``E'E / n``;
-* robust (HC1): ``bread (sum_i (e_i e_i') ⊗ (r_i r_i')) bread * n / (n - k - p)``; without it HC0;
+* homoskedastic: ``kron(E'E / (n - k - p), bread)``; without the adjustment ``E'E / n``;
+* heteroskedastic (HC1): ``bread (sum_i (e_i e_i') ⊗ (r_i r_i')) bread * n / (n - k - p)``; without it HC0;
 * one-way cluster: score sums per cluster, factor ``G / (G - 1) * (n - 1) / (n - k - p_c)``;
 * two-way cluster (Cameron, Gelbach and Miller 2011): ``V1 + V2 - V12`` with V12 clustered on the
   intersection, each term with its own G in the factor above. No eigenvalue fix is applied, so the two-way
@@ -30,8 +30,26 @@ from numpy.typing import NDArray
 from ivdossier.errors import EstimationError, InvalidInputError
 
 Array = NDArray[np.float64]
-CovKind = Literal["unadjusted", "robust", "cluster"]
-COV_KINDS: tuple[str, ...] = ("unadjusted", "robust", "cluster")
+CovKind = Literal["homoskedastic", "heteroskedastic", "clustered"]
+COV_KINDS: tuple[str, ...] = ("homoskedastic", "heteroskedastic", "clustered")
+"""The covariance choices: errors with one variance, errors whose variance may differ by row, errors that may be
+correlated within clusters (one- or two-way)."""
+
+OLD_COV_NAMES: dict[str, str] = {
+    "unadjusted": "homoskedastic",
+    "robust": "heteroskedastic",
+    "cluster": "clustered",
+}
+"""Spellings used before release 0.x of this project (deprecated; accepted for one release, and always when
+reading stored runs and plans)."""
+
+
+def cov_name(value: str) -> str:
+    """The covariance choice `value` names, in the current words (an old spelling is translated)."""
+    name = OLD_COV_NAMES.get(value, value)
+    if name not in COV_KINDS:
+        raise InvalidInputError(f"Unknown covariance {value!r}; choose one of {', '.join(COV_KINDS)}.")
+    return name
 
 
 @dataclass(frozen=True, eq=False)
@@ -47,11 +65,8 @@ class CovSpec:
     _counts: tuple[int, ...] = field(default=(), init=False, repr=False)
 
     def __post_init__(self) -> None:
-        if self.kind not in COV_KINDS:
-            raise InvalidInputError(
-                f"Unknown covariance kind {self.kind!r}; choose one of {', '.join(COV_KINDS)}."
-            )
-        if self.kind == "cluster":
+        object.__setattr__(self, "kind", cov_name(self.kind))  # stored old spellings still work
+        if self.kind == "clustered":
             if len(self.clusters) not in (1, 2):
                 raise InvalidInputError(
                     f"A cluster covariance needs one or two cluster code arrays, got {len(self.clusters)}; "
@@ -74,7 +89,7 @@ class CovSpec:
         elif self.clusters:
             raise InvalidInputError(
                 f"Cluster codes were given with covariance kind {self.kind!r}; "
-                "use kind 'cluster' or drop them."
+                "use kind 'clustered' or drop them."
             )
         counts = tuple(int(np.count_nonzero(np.bincount(c))) for c in self.clusters)
         object.__setattr__(self, "_counts", counts)
@@ -130,16 +145,16 @@ def scores_meat(scores: np.ndarray, spec: CovSpec, *, n_df: int, n_df_cluster: i
     """Meat matrix from per-row scores (n x p), small-sample factors included.
 
     ``n_df`` is the residual df n - k - p used by the robust factor and ``n_df_cluster`` the df
-    n - k - p_c used by the cluster factor. For kind "unadjusted" this returns the plain outer product,
+    n - k - p_c used by the cluster factor. For kind "homoskedastic" this returns the plain outer product,
     unscaled; :func:`sandwich` handles the unadjusted case itself.
     """
     s = np.asarray(scores, dtype=np.float64)
     if s.ndim == 1:
         s = s[:, None]
     n = s.shape[0]
-    if spec.kind != "cluster":
+    if spec.kind != "clustered":
         meat = s.T @ s
-        if spec.kind == "robust" and spec.small_sample:
+        if spec.kind == "heteroskedastic" and spec.small_sample:
             meat *= n / n_df
         return meat
     for c in spec.clusters:
@@ -215,11 +230,11 @@ def sandwich(
     if k == 0:
         return np.zeros((0, 0))
     df = df_resid(n, k, n_partialled)
-    if spec.kind == "unadjusted":
+    if spec.kind == "homoskedastic":
         sigma = e.T @ e / (df if spec.small_sample else n)
         return np.asarray(np.kron(sigma, b), dtype=np.float64)
     scores = r * e if m == 1 else (e[:, :, None] * r[:, None, :]).reshape(n, m * k)
-    df_c = df_resid(n, k, n_partialled - n_partialled_nested) if spec.kind == "cluster" else df
+    df_c = df_resid(n, k, n_partialled - n_partialled_nested) if spec.kind == "clustered" else df
     meat = scores_meat(scores, spec, n_df=df, n_df_cluster=df_c)
     big_bread = b if m == 1 else np.kron(np.eye(m), b)
     cov = big_bread @ meat @ big_bread

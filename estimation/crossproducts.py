@@ -304,12 +304,12 @@ class CrossProducts:
         kreg = r_ if n_regressors is None else n_regressors
         mats = np.einsum("as,bj->jsab", a, e).reshape(e_ * r_, self.m, self.m)
         w = pack_weights(mats).T  # u x (e r)
-        if self.kind == "robust":
+        if self.kind == "heteroskedastic":
             meat = w.T @ self.moments[0] @ w
             if adjust:
                 meat *= self.n / self.df(kreg)
             return np.asarray(meat, dtype=np.float64)
-        if self.kind != "cluster":
+        if self.kind != "clustered":
             raise InvalidInputError("meat() applies to robust and cluster covariances only.")
         signs = (1.0,) if len(self.moments) == 1 else (1.0, 1.0, -1.0)
         total = np.zeros((e_ * r_, e_ * r_))
@@ -338,7 +338,7 @@ class CrossProducts:
         kreg = r_ if n_regressors is None else n_regressors
         b = np.linalg.inv(a.T @ a) if bread is None else np.asarray(bread, dtype=np.float64)
         adjust = self.small_sample if small_sample is None else small_sample
-        if self.kind == "unadjusted":
+        if self.kind == "homoskedastic":
             sigma = e.T @ e / (self.df(kreg) if adjust else self.n)
             return np.asarray(np.kron(sigma, b), dtype=np.float64)
         big = b if e_ == 1 else np.kron(np.eye(e_), b)
@@ -346,9 +346,9 @@ class CrossProducts:
         return np.asarray((cov + cov.T) / 2, dtype=np.float64)
 
     def with_kind(self, kind: str) -> CrossProducts:
-        """The same sums read under the unadjusted covariance (the moments are not needed for it)."""
-        if kind != "unadjusted":
-            raise InvalidInputError("Only a switch to the unadjusted covariance needs no new sums.")
+        """The same sums read under the homoskedastic covariance (the moments are not needed for it)."""
+        if kind != "homoskedastic":
+            raise InvalidInputError("Only a switch to the homoskedastic covariance needs no new sums.")
         return CrossProducts(
             self.n,
             self.k,
@@ -356,7 +356,7 @@ class CrossProducts:
             self.has_y,
             self.r,
             self.scale,
-            "unadjusted",
+            "homoskedastic",
             self.small_sample,
             (),
             (),
@@ -445,10 +445,10 @@ def _build(
     scale = np.sqrt(np.einsum("ij,ij->j", a, a))
     unit = np.where(scale > 0, scale, 1.0)
     a /= unit
-    codes: list[np.ndarray] = list(spec.clusters) if spec.kind == "cluster" else []
+    codes: list[np.ndarray] = list(spec.clusters) if spec.kind == "clustered" else []
     if len(codes) == 2:
         codes.append(intersection_codes(codes[0], codes[1]))
-    need_moments = spec.kind != "unadjusted"
+    need_moments = spec.kind != "homoskedastic"
     acc = MomentAccumulator(m, len(codes))
     gram = a.T @ a
     r1 = _cholesky_upper(gram)

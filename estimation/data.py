@@ -253,7 +253,7 @@ def prepare(
         if int(codes.max()) < 1:
             raise InvalidInputError(
                 f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
-                "at least two levels or use vcov='robust'."
+                "at least two levels or use vcov='heteroskedastic'."
             )
     k, n_inst = len(treat), len(inst)
     for name, col in zip(inst, cols[1 + k : 1 + k + n_inst], strict=True):

@@ -266,7 +266,7 @@ def _check_cluster_counts(plan: MomentPlan, counts: tuple[int, ...]) -> None:
         if count < 2:
             raise InvalidInputError(
                 f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
-                "at least two levels or use vcov='robust'."
+                "at least two levels or use vcov='heteroskedastic'."
             )
 
 
@@ -396,9 +396,9 @@ def sql_cross_products(
     first = mrows[0]
     moment_sums: list[list[float]] = []
     groups: list[int] = []
-    if model.vcov == "robust":
+    if model.vcov == "heteroskedastic":
         moment_sums = [packed(first, "k", n_k)]
-    elif model.vcov == "cluster":
+    elif model.vcov == "clustered":
         moment_sums = [packed(r, "k", n_k) for r in mrows]
         groups = [int(r["ivd_groups"]) for r in mrows]
     cluster_counts = tuple(groups[: len(plan.clusters)])
@@ -663,7 +663,7 @@ def estimate_source(
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
     method: str = "2sls",
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
     fuller_alpha: float = 1.0,

@@ -23,9 +23,10 @@ from __future__ import annotations
 import dataclasses
 import difflib
 import math
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
-from typing import Any, cast
+from typing import Any, ClassVar, cast
 
 import numpy as np
 import pandas as pd
@@ -35,7 +36,7 @@ from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import SampleCounts, result_from_cross_products
-from ivdossier.estimation.covariance import CovKind, CovSpec
+from ivdossier.estimation.covariance import CovKind, CovSpec, cov_name
 from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import as_names, prepare
 from ivdossier.estimation.rows import RowAccount, count_rows
@@ -302,7 +303,7 @@ def _complete_rows(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[pd.Data
 def _reference(vcov: str, small_sample: bool, df: int, n_clusters: tuple[int, ...]) -> tuple[str, int | None]:
     if not small_sample:
         return "normal", None
-    if vcov == "cluster":
+    if cov_name(vcov) == "clustered":
         return "t", min(n_clusters) - 1
     return "t", df
 
@@ -323,6 +324,7 @@ def _stacked(
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     clus = _check_common(vcov, alpha, cluster)
+    vcov = cov_name(vcov)
     inst = as_names(instruments, "instruments")
     if not inst:
         raise InvalidInputError("instruments= is empty; name at least one instrument column.")
@@ -350,7 +352,7 @@ def _stacked(
         for t in tgts
     ]
     first = preps[0]
-    spec = CovSpec(cast(CovKind, vcov), first.clusters if vcov == "cluster" else (), small_sample)
+    spec = CovSpec(cast(CovKind, vcov), first.clusters if vcov == "clustered" else (), small_sample)
     ys = np.column_stack([p.y for p in preps])
     cp = build(
         first.X,
@@ -552,7 +554,7 @@ def balance(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> InstrumentRegressions:
@@ -587,7 +589,7 @@ def placebo_outcomes(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> InstrumentRegressions:
@@ -619,7 +621,7 @@ def placebo_outcomes(
 class ZeroFirstStageResult(Record):
     """First stage and reduced form in a subsample where the instrument should not move the treatment.
 
-    ``prior_mu`` and ``prior_omega`` are the reduced-form coefficients of Y on Z in the subsample and their
+    ``direct_effect_prior_mean`` and ``direct_effect_prior_covariance`` are the reduced-form coefficients of Y on Z in the subsample and their
     covariance, in outcome units per unit of each instrument: the scale of gamma in
     :func:`ivdossier.estimation.sensitivity.local_to_zero`. Using them as the local-to-zero prior assumes
     (i) the treatment does not respond to Z in the subsample, so the reduced form there is the direct effect,
@@ -634,8 +636,8 @@ class ZeroFirstStageResult(Record):
     first_stage: TargetRegression
     first_stage_p_value: float
     reduced_form: TargetRegression
-    prior_mu: tuple[float, ...]
-    prior_omega: tuple[tuple[float, ...], ...]
+    direct_effect_prior_mean: tuple[float, ...]
+    direct_effect_prior_covariance: tuple[tuple[float, ...], ...]
     assumption: str
     warning: str | None
     vcov: str
@@ -651,6 +653,28 @@ class ZeroFirstStageResult(Record):
         out["row_account"] = None if self.row_account is None else self.row_account.to_dict()
         out["kind"] = "zero_first_stage"
         return out
+
+    # Stored before the fields had their own names (read back under the new ones; see Record.RENAMED_FIELDS).
+    RENAMED_FIELDS: ClassVar[dict[str, str]] = {
+        "prior_mu": "direct_effect_prior_mean",
+        "prior_omega": "direct_effect_prior_covariance",
+    }
+
+    @property
+    def prior_mu(self) -> tuple[float, ...]:
+        """Deprecated name of ``direct_effect_prior_mean`` (removed in the next release)."""
+        warnings.warn(
+            "prior_mu is deprecated; use direct_effect_prior_mean.", DeprecationWarning, stacklevel=2
+        )
+        return self.direct_effect_prior_mean
+
+    @property
+    def prior_omega(self) -> tuple[tuple[float, ...], ...]:
+        """Deprecated name of ``direct_effect_prior_covariance`` (removed in the next release)."""
+        warnings.warn(
+            "prior_omega is deprecated; use direct_effect_prior_covariance.", DeprecationWarning, stacklevel=2
+        )
+        return self.direct_effect_prior_covariance
 
     def __str__(self) -> str:
         fs = self.first_stage
@@ -727,7 +751,7 @@ def zero_first_stage(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> ZeroFirstStageResult:
@@ -798,8 +822,8 @@ def zero_first_stage(
         first_stage=first,
         first_stage_p_value=fs_p,
         reduced_form=reduced,
-        prior_mu=tuple(map(float, st.coef[1])),
-        prior_omega=tuple(tuple(map(float, r)) for r in omega),
+        direct_effect_prior_mean=tuple(map(float, st.coef[1])),
+        direct_effect_prior_covariance=tuple(tuple(map(float, r)) for r in omega),
         assumption=ZERO_FIRST_STAGE_ASSUMPTION,
         warning=warning,
         vcov=vcov,
@@ -878,8 +902,8 @@ def _zero_first_stage_exact(
         first_stage=first,
         first_stage_p_value=1.0,
         reduced_form=reduced,
-        prior_mu=tuple(map(float, st.coef[0])),
-        prior_omega=tuple(tuple(map(float, r)) for r in st.cov),
+        direct_effect_prior_mean=tuple(map(float, st.coef[0])),
+        direct_effect_prior_covariance=tuple(tuple(map(float, r)) for r in st.cov),
         assumption=ZERO_FIRST_STAGE_ASSUMPTION + f"; here {treatment!r} is constant in the subsample, so the "
         "first stage is exactly zero",
         warning=None,
@@ -993,7 +1017,7 @@ def per_instrument(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> PerInstrumentResult:
@@ -1002,6 +1026,7 @@ def per_instrument(
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     clus = _check_common(vcov, alpha, cluster)
+    vcov = cov_name(vcov)
     if not isinstance(treatment, str):
         raise InvalidInputError(
             "per_instrument takes one treatment column; pass treatment= as a single name."
@@ -1016,7 +1041,7 @@ def per_instrument(
     frame, n_dropped = _complete_rows(data, used)
     common = {"controls": ctrl, "absorb": fe, "cluster": clus, "weights": weights}
     full = prepare(frame, outcome=outcome, treatment=treatment, instruments=inst, **common)  # type: ignore[arg-type]
-    spec = CovSpec(cast(CovKind, vcov), full.clusters if vcov == "cluster" else (), small_sample)
+    spec = CovSpec(cast(CovKind, vcov), full.clusters if vcov == "clustered" else (), small_sample)
     cp = build(
         full.Z,
         full.X,

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 from scipy import optimize, stats
 
-from ivdossier.estimation.covariance import CovSpec
+from ivdossier.estimation.covariance import CovSpec, cov_name
 from ivdossier.estimation.data import PreparedData
 from ivdossier.estimation.result import EstimationResult
 from ivdossier.estimation.robust_inference import ar_statistics
@@ -166,7 +166,7 @@ def ar_curve_data(
         return None
     spec = CovSpec(
         result.vcov,  # type: ignore[arg-type]
-        prepared.clusters if result.vcov == "cluster" else (),
+        prepared.clusters if cov_name(result.vcov) == "clustered" else (),
         bool(result.spec.get("small_sample", True)),
     )
 

@@ -10,6 +10,7 @@ from numpy.typing import NDArray
 from scipy import stats
 
 from ivdossier.estimation.controls import ControlsTable
+from ivdossier.estimation.covariance import OLD_COV_NAMES
 from ivdossier.estimation.diagnostics import DiagnosticSuite
 from ivdossier.jsonsafe import Record, json_safe
 from ivdossier.vocabulary import NotApplicable
@@ -188,7 +189,8 @@ class EstimationResult(Record):
         d = {name: self._section(name) or {} for name in DIAGNOSTIC_SECTIONS}
         out: list[str] = []
         for name, row in (d["first_stage"].get("by_endog") or {}).items():
-            f = row.get("robust_f") if self.vcov != "unadjusted" else row.get("partial_f")
+            homoskedastic = OLD_COV_NAMES.get(self.vcov, self.vcov) == "homoskedastic"
+            f = row.get("partial_f") if homoskedastic else row.get("robust_f")
             if isinstance(f, float):
                 out.append(f"first-stage F for {name!r}: {f:.4g} ({self.vcov} covariance)")
         eff = (d["strength"].get("effective_f") or {}).get("statistic")
@@ -202,18 +204,18 @@ class EstimationResult(Record):
             out.append(f"Anderson-Rubin {100 * (1 - self.alpha):g}% set ({ar.get('shape', '')}): {pieces}")
         oid = d["overid"]
         if isinstance(oid.get("p_value"), float):
-            out.append(f"over-identification ({oid.get('test')}): p = {oid['p_value']:.4g}")
+            out.append(f"over-identification ({_test_name(oid.get('test'))}): p = {oid['p_value']:.4g}")
         endo = d["endogeneity"]
         if isinstance(endo.get("p_value"), float):
-            out.append(f"endogeneity ({endo.get('test')}): p = {endo['p_value']:.4g}")
+            out.append(f"endogeneity ({_test_name(endo.get('test'))}): p = {endo['p_value']:.4g}")
         return out or ["no headline statistics available; see to_dict()"]
 
     def _vcov_text(self) -> str:
         text = {
-            "unadjusted": "homoskedastic (unadjusted)",
-            "robust": "heteroskedasticity-robust",
-            "cluster": "cluster-robust",
-        }.get(self.vcov, self.vcov)
+            "homoskedastic": "homoskedastic errors",
+            "heteroskedastic": "heteroskedastic errors (robust)",
+            "clustered": "errors clustered",
+        }.get(OLD_COV_NAMES.get(self.vcov, self.vcov), self.vcov)
         if self.n_clusters:
             text += " on " + " and ".join(
                 f"{c:,} clusters of {n!r}"
@@ -239,3 +241,15 @@ class EstimationResult(Record):
 
 def _num(value: Any) -> str:
     return value if isinstance(value, str) else f"{value:.4g}"
+
+
+TEST_NAMES = {
+    "durbin_wu_hausman_control_function": "Durbin-Wu-Hausman test, control-function form",
+    "hansen_j": "Hansen J test",
+    "sargan": "Sargan test",
+}
+"""Readable names of the tests whose JSON identifiers appear in the terminal summary."""
+
+
+def _test_name(test: object) -> str:
+    return TEST_NAMES.get(str(test), str(test).replace("_", " "))

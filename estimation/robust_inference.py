@@ -416,12 +416,12 @@ def anderson_rubin_from(
     reason = None
     intervals: list[Interval] | None
     how: str | None
-    if k > 1 and cp.kind != "unadjusted" and m.joint_rank < 2 * k:
+    if k > 1 and cp.kind != "homoskedastic" and m.joint_rank < 2 * k:
         intervals, how = None, None
         reason = (
             f"the confidence set is not computed: the joint covariance of the reduced-form and first-stage "
             f"coefficients has rank {m.joint_rank} of {2 * k}"
-            + (f" (with {min(cp.cluster_counts())} clusters)" if cp.kind == "cluster" else "")
+            + (f" (with {min(cp.cluster_counts())} clusters)" if cp.kind == "clustered" else "")
         )
     else:
         std_set, how = _ar_confidence_set(m, crit, cp.kind)
@@ -442,7 +442,7 @@ def anderson_rubin_from(
 
 def _ar_confidence_set(m: _Moments, crit: float, kind: str) -> tuple[list[Interval], str]:
     """Invert AR(b) <= crit (Wald units): analytic quadratic when possible, else angle grid plus brentq."""
-    if m.k == 1 or kind == "unadjusted":
+    if m.k == 1 or kind == "homoskedastic":
         q = m.zz
         s_yy = float(np.trace(m.v_yy @ q)) / m.k
         s_yx = float(np.trace(m.v_yx @ q)) / m.k
@@ -788,14 +788,14 @@ def clr_from(cp: CrossProducts, *, alpha: float = 0.05, null: float = 0.0, n_gri
         return CLRResult(False, "the CLR test here covers one endogenous regressor")
     m = moments_from(cp)
     k = m.k
-    if m.joint_rank < 2 * k and cp.kind != "unadjusted":
+    if m.joint_rank < 2 * k and cp.kind != "homoskedastic":
         return CLRResult(
             False,
             f"not computed: the joint covariance of the reduced-form and first-stage coefficients has rank "
             f"{m.joint_rank} of {2 * k}"
-            + (f" (with {min(cp.cluster_counts())} clusters)" if cp.kind == "cluster" else ""),
+            + (f" (with {min(cp.cluster_counts())} clusters)" if cp.kind == "clustered" else ""),
         )
-    if cp.kind == "unadjusted":
+    if cp.kind == "homoskedastic":
         omega = (
             np.array(
                 [

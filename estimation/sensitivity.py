@@ -41,7 +41,7 @@ from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import SampleCounts, result_from_cross_products
-from ivdossier.estimation.covariance import COV_KINDS, CovKind, CovSpec, is_psd
+from ivdossier.estimation.covariance import CovKind, CovSpec, cov_name, is_psd
 from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.rows import RowAccount, count_rows
@@ -119,8 +119,7 @@ def _spec_options(
         raise InvalidInputError(
             "The plausibly-exogenous analysis takes one treatment column; pass treatment= as a single name."
         )
-    if vcov not in COV_KINDS:
-        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
+    cov_name(vcov)  # refuses an unknown covariance before the data are read
     inst = as_names(instruments, "instruments")
     if not inst:
         raise InvalidInputError(
@@ -139,7 +138,8 @@ def _spec_options(
 
 
 def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float) -> _Core:
-    spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "cluster" else (), small_sample)
+    vcov = cov_name(vcov)
+    spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "clustered" else (), small_sample)
     cp = build(
         prepared.Z,
         prepared.X,
@@ -199,7 +199,7 @@ def sensitivity_core(cp: CrossProducts, counts: SampleCounts, model: ModelSpec) 
         )
     quantile = float((base.ci[0, 1] - base.coef[0]) / se)
     rf = scipy.linalg.solve_triangular(z[:k], y[:k], check_finite=False)
-    two_way = model.vcov == "cluster" and len(cp.moments) > 1
+    two_way = model.vcov == "clustered" and len(cp.moments) > 1
     return _Core(
         treatment=model.treatment[0],
         instruments=model.instruments,
@@ -360,7 +360,7 @@ def union_of_intervals(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
     n_grid: int = 101,
@@ -411,13 +411,13 @@ def _union(
 ) -> UnionIntervalResult:
     alpha, vcov = core.alpha, core.vcov
     n_inst = len(core.instruments)
-    lo = _as_vector(gamma_min, n_inst, "gamma_min")
-    hi = _as_vector(gamma_max, n_inst, "gamma_max")
+    lo = _as_vector(gamma_min, n_inst, "the direct-effect minimum (gamma_min, --direct-effect-min)")
+    hi = _as_vector(gamma_max, n_inst, "the direct-effect maximum (gamma_max, --direct-effect-max)")
     if np.any(lo > hi):
         j = int(np.argmax(lo > hi))
         raise InvalidInputError(
             f"The direct-effect range for instrument {core.instruments[j]!r} is reversed "
-            f"(gamma_min {lo[j]:g} > gamma_max {hi[j]:g}); swap the bounds."
+            f"(minimum {lo[j]:g} > maximum {hi[j]:g}); swap the bounds."
         )
     steps = np.linspace(0.0, 1.0, n_grid)
     grid: list[GammaInterval] = []
@@ -532,7 +532,7 @@ def local_to_zero(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> LocalToZeroResult:
@@ -729,7 +729,7 @@ def breakdown_value(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> BreakdownResult:

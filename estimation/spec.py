@@ -9,12 +9,13 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.covariance import COV_KINDS
+from ivdossier.estimation.covariance import COV_KINDS, OLD_COV_NAMES
 from ivdossier.estimation.data import as_names
 from ivdossier.estimation.estimators import METHODS
 
@@ -46,12 +47,20 @@ class ModelSpec:
     cluster: tuple[str, ...] = ()
     weights: str | None = None
     method: str = "2sls"
-    vcov: str = "robust"
+    vcov: str = "heteroskedastic"
     alpha: float = 0.05
     small_sample: bool = True
     fuller_alpha: float = 1.0
 
     def __post_init__(self) -> None:
+        if self.vcov in OLD_COV_NAMES:
+            warnings.warn(
+                f"vcov={self.vcov!r} is deprecated and will be removed in the next release; "
+                f"use vcov={OLD_COV_NAMES[self.vcov]!r}.",
+                DeprecationWarning,
+                stacklevel=4,
+            )
+            object.__setattr__(self, "vcov", OLD_COV_NAMES[self.vcov])
         for name in ("treatment", "instruments", "controls", "absorb", "cluster"):
             object.__setattr__(self, name, as_names(getattr(self, name), name))
         check_options(self.method, self.vcov, self.cluster, self.alpha, self.fuller_alpha)
@@ -76,7 +85,7 @@ class ModelSpec:
         cluster: str | Sequence[str] | None = None,
         weights: str | None = None,
         method: str = "2sls",
-        vcov: str = "robust",
+        vcov: str = "heteroskedastic",
         alpha: float = 0.05,
         small_sample: bool = True,
         fuller_alpha: float = 1.0,
@@ -102,7 +111,10 @@ class ModelSpec:
         """Rebuild (and so validate) a spec from its stored form (:meth:`echo`, a run's or a plan's spec);
         keys other than the spec's fields (the data path, an analysis's own options) are ignored."""
         names = {f.name for f in dataclasses.fields(cls)}
-        return cls.build(**{k: v for k, v in stored.items() if k in names and v is not None})
+        given = {k: v for k, v in stored.items() if k in names and v is not None}
+        if isinstance(given.get("vcov"), str):  # runs and plans stored with the old words read silently
+            given["vcov"] = OLD_COV_NAMES.get(given["vcov"], given["vcov"])
+        return cls.build(**given)
 
     @property
     def used(self) -> list[str]:
@@ -153,16 +165,17 @@ class ModelSpec:
 def check_options(
     method: str, vcov: str, cluster: tuple[str, ...], alpha: float, fuller_alpha: float
 ) -> None:
-    """Refuse an unknown method or covariance, clusters without vcov='cluster' (or the reverse), a bad level."""
+    """Refuse an unknown method or covariance, clusters without vcov='clustered' (or the reverse), a bad level."""
     if method not in METHODS:
         raise InvalidInputError(f"Unknown method {method!r}; choose one of {', '.join(METHODS)}.")
+    vcov = OLD_COV_NAMES.get(vcov, vcov)  # the deprecated words still validate
     if vcov not in COV_KINDS:
         raise InvalidInputError(f"Unknown vcov {vcov!r}; choose one of {', '.join(COV_KINDS)}.")
-    if vcov == "cluster" and not cluster:
-        raise InvalidInputError("vcov='cluster' needs cluster= (one or two column names); pass cluster=.")
-    if cluster and vcov != "cluster":
+    if vcov == "clustered" and not cluster:
+        raise InvalidInputError("vcov='clustered' needs cluster= (one or two column names); pass cluster=.")
+    if cluster and vcov != "clustered":
         raise InvalidInputError(
-            f"cluster= was given with vcov={vcov!r}; use vcov='cluster' to cluster, or drop cluster=."
+            f"cluster= was given with vcov={vcov!r}; use vcov='clustered' to cluster, or drop cluster=."
         )
     if isinstance(alpha, bool) or not isinstance(alpha, int | float) or not 0.0 < alpha < 1.0:
         raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")

@@ -89,7 +89,7 @@ def _std_beta(cp: CrossProducts, beta: np.ndarray) -> Array:
 
 def sargan(y: np.ndarray, x: np.ndarray, z: np.ndarray, beta: np.ndarray) -> float:
     """Sargan statistic n u'P_Z u / u'u at the residual u = y - X beta."""
-    cp = _cp(y, x, z, CovSpec("unadjusted"), 0)
+    cp = _cp(y, x, z, CovSpec("homoskedastic"), 0)
     return sargan_from(cp, beta)
 
 
@@ -103,7 +103,7 @@ def hansen_j(
     y: np.ndarray, x: np.ndarray, z: np.ndarray, *, spec: CovSpec, n_partialled: int
 ) -> tuple[float, np.ndarray]:
     """Hansen J from two-step efficient GMM (step-1 2SLS weight); returns (J, two-step GMM coefficients)."""
-    if spec.kind == "unadjusted":
+    if spec.kind == "homoskedastic":
         raise EstimationError("Hansen J needs a robust or cluster covariance; use the Sargan test otherwise.")
     return hansen_j_from(_cp(y, x, z, spec, n_partialled))
 
@@ -158,7 +158,7 @@ def overid_from(cp: CrossProducts, *, beta: np.ndarray) -> OverId:
     if k <= p:
         return _just_identified(k, p, cp.kind)
     df = k - p
-    if cp.kind == "unadjusted":
+    if cp.kind == "homoskedastic":
         stat, name = sargan_from(cp, beta), "sargan"
     else:
         stat, name = hansen_j_from(cp)[0], "hansen_j"

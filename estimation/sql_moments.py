@@ -275,7 +275,7 @@ def moments_query(
     """
     m = coef.shape[1]
     u = m * (m + 1) // 2
-    n_k = u * (u + 1) // 2 if plan.kind != "unadjusted" else 0
+    n_k = u * (u + 1) // 2 if plan.kind != "homoskedastic" else 0
     if u + n_k > MAX_SUM_COLUMNS:
         raise EstimationError(
             f"The {plan.kind} covariance of {m} columns needs {u + n_k} sums per scan, more than the SQL engines "
@@ -292,10 +292,10 @@ def moments_query(
     inner_sel = [f"{cols[j]} AS {_alias('b', j)}" for j in range(m)] + ckeys
     base = f"SELECT {', '.join(inner_sel)} FROM ({_demeaned_query(plan, means, means_table)}) ivd_d"
     prods = [f"{_alias('b', a)} * {_alias('b', b)}" for a, b in zip(ia, ib, strict=True)]
-    if plan.kind == "unadjusted":
+    if plan.kind == "homoskedastic":
         sel = ["count(*) AS ivd_n"] + [f"sum({p}) AS {_alias('t', i)}" for i, p in enumerate(prods)]
         return f"SELECT {', '.join(sel)} FROM ({base}) ivd_b"
-    if plan.kind == "robust":
+    if plan.kind == "heteroskedastic":
         tsel = [f"{p} AS {_alias('p', i)}" for i, p in enumerate(prods)]
         sel = ["count(*) AS ivd_n"] + [f"sum({_alias('p', i)}) AS {_alias('t', i)}" for i in range(u)]
         sel += [
@@ -303,7 +303,7 @@ def moments_query(
             for i, (a, b) in enumerate(zip(ka, kb, strict=True))
         ]
         return f"SELECT {', '.join(sel)} FROM (SELECT {', '.join(tsel)} FROM ({base}) ivd_b) ivd_p"
-    if plan.kind != "cluster" or not plan.clusters:
+    if plan.kind != "clustered" or not plan.clusters:
         raise InvalidInputError(f"Unknown covariance layout {plan.kind!r} for the moments query.")
     gsel = ["count(*) AS ivd_rows"] + [f"sum({p}) AS {_alias('t', i)}" for i, p in enumerate(prods)]
     if len(ckeys) == 1:
@@ -486,7 +486,7 @@ def cross_products_from_sums(
         kind=kind,
         small_sample=small_sample,
         moments=tuple(moments),
-        n_groups=tuple(int(g) for g in n_groups) if kind == "cluster" else (),
+        n_groups=tuple(int(g) for g in n_groups) if kind == "clustered" else (),
         n_partialled=n_partialled,
         n_partialled_nested=n_partialled_nested,
         exact_basis=False,

@@ -81,7 +81,7 @@ def ols(regressors: Array, dependent: Array) -> tuple[Array, Array]:
 
 def denominator_df(spec: CovSpec, n: int, k: int, n_partialled: int) -> int:
     """Denominator df for F-form p-values: n - k - n_partialled, or G - 1 for cluster covariances."""
-    if spec.kind == "cluster":
+    if spec.kind == "clustered":
         return max(min(spec.n_clusters()) - 1, 1)
     return max(n - k - n_partialled, 1)
 
@@ -151,7 +151,7 @@ class FirstStageRow(Record):
             "partial_f": json_safe(self.partial_f),
             "partial_f_df": list(self.f_df),
             "partial_f_p_value": json_safe(self.partial_f_p_value),
-            "partial_f_cov": "unadjusted",
+            "partial_f_cov": "homoskedastic",
             "robust_f": json_safe(self.robust_f),
             "robust_f_df": list(self.robust_f_df),
             "robust_f_p_value": json_safe(self.robust_f_p_value),
@@ -227,7 +227,7 @@ def to_instrument_units(cp: CrossProducts, coef: Array, cov: Array, target: int)
 
 def denominator_df_cp(cp: CrossProducts, k: int) -> int:
     """Denominator df for F-form p-values: n - k - n_partialled, or G - 1 for cluster covariances."""
-    if cp.kind == "cluster":
+    if cp.kind == "clustered":
         return max(min(cp.cluster_counts()) - 1, 1)
     return max(cp.n - k - cp.n_partialled, 1)
 
@@ -261,9 +261,11 @@ def first_stage_from(
     """First-stage section from the sufficient statistics (see :func:`first_stage`)."""
     k, p = cp.k, cp.p
     pi = first_stage_pi(cp)
-    cov_u = cp.with_kind("unadjusted").covariance(instrument_basis(cp), first_stage_resid(cp), np.eye(k), k)
+    cov_u = cp.with_kind("homoskedastic").covariance(
+        instrument_basis(cp), first_stage_resid(cp), np.eye(k), k
+    )
     try:
-        cov = cov_u if cp.kind == "unadjusted" else first_stage_cov(cp)
+        cov = cov_u if cp.kind == "homoskedastic" else first_stage_cov(cp)
         cov_reason = None
     except NotComputable as exc:
         cov, cov_reason = None, str(exc)
@@ -363,7 +365,7 @@ def effective_f_from(cp: CrossProducts) -> EffectiveF:
 def cragg_donald_f(x: np.ndarray, z: np.ndarray, *, n_partialled: int) -> float:
     """Cragg–Donald F: smallest eigenvalue of Sigma^{-1/2} X'P_Z X Sigma^{-1/2} / k (Stock and Yogo 2005)."""
     xm, zm = as_matrix(x, "X"), as_matrix(z, "Z")
-    return cragg_donald_from(_from_arrays(xm, zm, CovSpec("unadjusted"), n_partialled, 0))
+    return cragg_donald_from(_from_arrays(xm, zm, CovSpec("homoskedastic"), n_partialled, 0))
 
 
 def _resid_sigma(cp: CrossProducts) -> Array:
@@ -487,7 +489,7 @@ def kleibergen_paap_lm_from(cp: CrossProducts) -> RankLM:
     rx = cp.coords(cp.ix)
     xx = rx.T @ rx
     f = _sym_sqrt(xx, inverse=True)
-    if cp.kind == "unadjusted":
+    if cp.kind == "homoskedastic":
         v_pi = np.kron(xx / cp.n, np.eye(cp.k))
     else:
         v_pi = cp.covariance(instrument_basis(cp), rx, np.eye(cp.k), cp.k, small_sample=False)
@@ -623,7 +625,7 @@ def strength_from(cp: CrossProducts, *, method: str, endog_names: list[str]) -> 
     else:
         sw_reason = "with one endogenous regressor the conditional F equals the first-stage F"
     notes = []
-    if cp.kind != "unadjusted":
+    if cp.kind != "homoskedastic":
         notes.append(
             "Stock–Yogo critical values assume homoskedastic errors; with a robust or cluster covariance "
             "compare the effective F with its own critical values instead."

@@ -152,7 +152,7 @@ def subgroup_first_stages(
     absorb: str | Sequence[str] = (),
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     small_sample: bool = True,
     alpha: float = 0.05,
 ) -> SubgroupSigns:

@@ -32,7 +32,7 @@ from numpy.typing import NDArray
 from scipy import integrate, optimize, stats
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.covariance import CovSpec, sandwich
+from ivdossier.estimation.covariance import CovSpec, cov_name, sandwich
 from ivdossier.estimation.fragility_data import CAUTION
 from ivdossier.estimation.robust_inference import Interval, angle_grid, classify_set, invert_on_circle
 from ivdossier.estimation.strength import as_matrix, denominator_df, ols
@@ -251,7 +251,7 @@ def subvector_anderson_rubin(
         return SubvectorAR(False, f"{n_inst} instrument(s) for {m} treatments: the model is not identified")
     theta0 = math.atan(null)
     yv = ym[:, 0]
-    if spec.kind == "unadjusted":
+    if spec.kind == "homoskedastic":
         d = n - n_inst - n_partialled
         dfn = n_inst - mw
         hom = _Homoskedastic(yv, xm, zm, index)
@@ -361,7 +361,7 @@ def subvector_ar_prepared(
     prepared: Any,
     *,
     treatment: str,
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     alpha: float = 0.05,
     null: float = 0.0,
     confidence_set: bool = True,
@@ -372,13 +372,12 @@ def subvector_ar_prepared(
         raise InvalidInputError(
             f"{treatment!r} is not a treatment of this model; choose one of {', '.join(names)}."
         )
-    if vcov not in ("unadjusted", "robust", "cluster"):
-        raise InvalidInputError(f"Unknown vcov {vcov!r}; choose unadjusted, robust or cluster.")
-    if vcov == "cluster" and not prepared.clusters:
+    vcov = cov_name(vcov)
+    if vcov == "clustered" and not prepared.clusters:
         raise InvalidInputError(
-            "vcov='cluster' needs a cluster variable in the prepared data; pass cluster=."
+            "vcov='clustered' needs a cluster variable in the prepared data; pass cluster=."
         )
-    spec = CovSpec(vcov, prepared.clusters if vcov == "cluster" else ())  # type: ignore[arg-type]
+    spec = CovSpec(vcov, prepared.clusters if vcov == "clustered" else ())  # type: ignore[arg-type]
     return subvector_anderson_rubin(
         prepared.y,
         prepared.X,

@@ -369,6 +369,9 @@ def _decode_dataclass(data: Any, cls: type) -> Any:
             )
         cls = target
     hints = _hints(cls)
+    renamed: Mapping[str, str] = getattr(cls, "RENAMED_FIELDS", {})  # old stored name -> field name
+    if any(old in data for old in renamed):
+        data = {**{renamed.get(k, k): v for k, v in data.items() if renamed.get(k, k) not in data}, **data}
     kwargs: dict[str, Any] = {}
     for f in dataclasses.fields(cls):
         if not f.init:

@@ -17,7 +17,7 @@ from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, Operationa
 from sqlalchemy.orm.exc import StaleDataError
 from sqlmodel import Session, create_engine
 
-from ivdossier.errors import ConflictError, InvalidInputError
+from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 
 DEFAULT_PATH = "ivdossier.sqlite"
 ENV_DB = "IVDOSSIER_DB"
@@ -193,16 +193,29 @@ def upgrade(engine: Engine, revision: str = "head") -> None:
     run_upgrade(engine, revision)
 
 
-def open_registry(db: str | None = None, *, migrate: bool = True) -> Registry:
-    """Open (and create or upgrade if needed) the registry named by --db, $IVDOSSIER_DB or the default file."""
+def open_registry(db: str | None = None, *, migrate: bool = True, create: bool = True) -> Registry:
+    """Open (and upgrade if needed) the registry named by --db, $IVDOSSIER_DB or the default file.
+
+    With ``create`` off, a registry that does not exist yet (a missing SQLite file, a database without the
+    registry's schema) is refused with `NotFoundError` instead of being created empty: the command line creates
+    registries only in `init` and `demo`, so a mistyped --db path fails instead of starting a second registry.
+    """
     import ivdossier.registry.plans  # noqa: F401  (registers the guard that keeps frozen plans read-only)
 
     url = resolve_url(db)
+    if not create:
+        _refuse_missing_file(url)
     engine = make_engine(url)
     try:
         rev = current_revision(engine)
     except OperationalError as exc:
         raise InvalidInputError(f"cannot open the registry at {url!r}: {exc.orig}") from exc
+    if rev is None and not create:
+        engine.dispose()
+        raise NotFoundError(
+            f"{_where(url)} holds no ivdossier registry; check --db (or $IVDOSSIER_DB), "
+            f"or create a registry there with `ivdossier --db {_shown(url)} init`."
+        )
     if rev != SCHEMA_HEAD:
         if not migrate:
             raise InvalidInputError(
@@ -211,6 +224,36 @@ def open_registry(db: str | None = None, *, migrate: bool = True) -> Registry:
             )
         _upgrade_once(engine)
     return Registry(url=url, engine=engine)
+
+
+def _sqlite_file(url: str) -> Path | None:
+    """The file behind a SQLite URL (None for PostgreSQL or an in-memory database)."""
+    if not url.startswith("sqlite"):
+        return None
+    path = url.split("sqlite:///", 1)[-1]
+    return None if not path or path == ":memory:" else Path(path)
+
+
+def _shown(url: str) -> str:
+    """The --db value a person would type for this URL (the file path for SQLite; the URL without password)."""
+    file = _sqlite_file(url)
+    if file is not None:
+        return str(file)
+    return make_url(url).render_as_string(hide_password=True)
+
+
+def _where(url: str) -> str:
+    file = _sqlite_file(url)
+    return f"the file {str(file)!r}" if file is not None else f"the database {_shown(url)!r}"
+
+
+def _refuse_missing_file(url: str) -> None:
+    file = _sqlite_file(url)
+    if file is not None and not file.exists():
+        raise NotFoundError(
+            f"no registry at {str(file)!r}: the file does not exist; check --db (or $IVDOSSIER_DB), "
+            f"or create a registry there with `ivdossier --db {file} init`."
+        )
 
 
 def serialize_writes(session: Session, topic: str) -> None:

@@ -158,6 +158,25 @@ def instruments_of(session: Session, program: Program) -> list[Instrument]:
     )
 
 
+def check_writer(session: Session, actor: str) -> None:
+    """Refuse a write by someone who is not a member, once the registry has members.
+
+    The rule every write of the command line follows: while a registry has no members anyone may write (that is
+    how the first member is added); from then on the acting handle (--as, $IVDOSSIER_USER, else the
+    operating-system user) must be a member, so a mistyped --as cannot put an unknown author into the audit trail.
+    Rating a link always needs a member (the rating is stored against the member).
+    """
+    handles = [str(h) for h in session.exec(select(Member.handle).order_by(Member.handle)).all()]
+    if not handles or actor in handles:
+        return
+    shown = ", ".join(handles[:8]) + (f" and {len(handles) - 8} more" if len(handles) > 8 else "")
+    raise InvalidInputError(
+        f"{actor!r} is not a member of this registry (members: {shown}), so it may not write; "
+        f"act as a member with --as HANDLE, or have a member add you: "
+        f"`ivdossier --as {handles[0]} member add {actor}`."
+    )
+
+
 def add_member(session: Session, *, actor: str, handle: str, name: str = "", email: str = "") -> Member:
     records.check_slug(handle, what="member handle")
     if email and not (set(email) >= EMAIL_CHARS and " " not in email):

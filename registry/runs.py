@@ -108,3 +108,19 @@ def mark_primary(session: Session, *, actor: str, run: str, reason: str = "") ->
             reason=f"run {row.slug} became the primary run of {inst.slug}",
         )
     return records.edit(session, row, {"is_primary": True}, actor=actor, action="mark-primary", reason=reason)
+
+
+def clear_primary(session: Session, *, actor: str, instrument: str, reason: str = "") -> Run:
+    """Remove the primary mark of `instrument`'s primary run (audited); the dossier then follows the latest run."""
+    from ivdossier.errors import InvalidInputError
+
+    inst = records.get(session, Instrument, instrument)
+    current = primary_run_of(session, inst)
+    if current is None:
+        raise InvalidInputError(
+            f"instrument {inst.slug!r} has no primary run, so there is no mark to clear "
+            f"(see `ivdossier run list {inst.slug}`)."
+        )
+    return records.edit(
+        session, current, {"is_primary": False}, actor=actor, action="unmark-primary", reason=reason
+    )

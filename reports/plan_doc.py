@@ -178,7 +178,9 @@ def _graph(graph: Mapping[str, Any], threats: Sequence[Mapping[str, Any]]) -> st
         )
     edges = graph.get("edges") or []
     if edges:
-        out.append("\n".join(f"- {mt.inline(e.get('from'))} → {mt.inline(e.get('to'))}" for e in edges))
+        out.append(
+            "\n".join(f"- {mt.inline(e.get('from'))} → {mt.inline(e.get('to'))}{_scope(e)}" for e in edges)
+        )
     if threats:
         rows = []
         for t in threats:
@@ -305,3 +307,11 @@ def verify_document(text: str, sealed: Mapping[str, Any], *, sha256: str, fmt: s
             line = j1 + k + 1 if j1 + k < j2 else j1 + 1
             out.append(Difference("exported file", f"line {line}", old, new))
     return out
+
+
+def _scope(edge: Mapping[str, Any]) -> str:
+    """Where a team edge is drawn: every instrument's graph, or one instrument's (plans drafted before scopes: none)."""
+    scope = edge.get("scope")
+    if scope is None:
+        return ""
+    return " (every instrument's graph)" if scope == "program" else f" (only in {mt.inline(scope)}'s graph)"

@@ -62,7 +62,7 @@ def iv_results(
     """An estimation result shaped like `EstimationResult.to_dict()` of the estimation layer (invented values)."""
     return {
         "method": "2sls",
-        "vcov": "cluster",
+        "vcov": "clustered",
         "outcome": "ed_visits",
         "n": 48210,
         "n_dropped": 37,
@@ -170,7 +170,7 @@ def ols_results() -> dict[str, Any]:
         "weak_iv_robust": na,
         "overid": na,
         "method": "ols",
-        "vcov": "cluster",
+        "vcov": "clustered",
         "n": 48210,
         "coef": {"telehealth": -0.05, "const": 1.02},
         "se": {"telehealth": 0.01, "const": 0.03},

@@ -1,8 +1,9 @@
 """Publication table of selected runs: one column per run, estimates over diagnostics, LaTeX or Markdown.
 
-Layout: a numbered column per run with its method beneath; the effect with its standard error in parentheses,
-the Wald interval and the Anderson-Rubin set; then instrument strength; then sample facts; a note names the runs
-and the data fingerprints. LaTeX uses booktabs rules and escapes every text cell.
+Layout (our own): one column per run, headed by the run's name with its estimator beneath; the effect, then its
+standard error on a row of its own labelled as such, the Wald interval and the Anderson-Rubin set; then
+instrument strength; then sample facts, ending with each run's data fingerprint. LaTeX uses booktabs rules and
+escapes every text cell.
 """
 
 from __future__ import annotations
@@ -98,9 +99,6 @@ def _render(cell: _Cell, fmt: str) -> str:
         return _tex_num(cell.value) if fmt == "latex" else rv.fmt(cell.value)
     if cell.kind == "int":
         return _tex_num(cell.value, 12) if fmt == "latex" else rv.fmt(cell.value, 12)
-    if cell.kind == "se":
-        inner = _tex_num(cell.value) if fmt == "latex" else rv.fmt(cell.value)
-        return f"({inner})"
     if cell.kind == "set":
         return _tex_set(cell.value) if fmt == "latex" else rv.fmt_set(cell.value)
     raise AssertionError(cell.kind)
@@ -111,12 +109,12 @@ def _finite(value: float | None) -> float | None:
 
 
 def _rows(runs: Sequence[RunInfo], treatment: str | None) -> list[tuple[str, list[_Cell]]]:
-    est, se, ci, ar, feff, cv10, fs, kp, n, clusters, vcov = ([] for _ in range(11))
+    est, se, ci, ar, feff, cv10, fs, kp, n, clusters, vcov, data = ([] for _ in range(12))
     for run in runs:
         res = run.result  # None for runs stored before typed records: their cells stay empty
         name = treatment_of(res, treatment or "") if res is not None else None
         est.append(_Cell("num", res.coef_of(name) if res is not None and name else None))
-        se.append(_Cell("se", res.se_of(name) if res is not None and name else None))
+        se.append(_Cell("num", res.se_of(name) if res is not None and name else None))
         ci.append(_Cell("set", wald_interval(res, name) if res is not None and name else None))
         ar.append(_Cell("set", ar_set_of(res)))
         f_eff, cvs = effective_f_of(res)
@@ -132,11 +130,12 @@ def _rows(runs: Sequence[RunInfo], treatment: str | None) -> list[tuple[str, lis
         one_way = res is not None and len(res.n_clusters) == 1
         clusters.append(_Cell("int", res.n_clusters[0] if res is not None and one_way else None))
         vcov.append(_Cell("text", run.vcov or (res.vcov if res is not None else None) or None))
+        data.append(_Cell("text", run.dataset_sha256[:12] or None))
     named = (treatment_of(r.result) for r in runs if r.result is not None)
     label = treatment or next(named, None) or "treatment"
     return [
         (f"Effect of {label}", est),
-        ("", se),
+        ("Standard error", se),
         ("Wald interval", ci),
         ("Anderson–Rubin set", ar),
         ("@First stage", []),
@@ -148,6 +147,7 @@ def _rows(runs: Sequence[RunInfo], treatment: str | None) -> list[tuple[str, lis
         ("Observations", n),
         ("Clusters", clusters),
         ("Covariance", vcov),
+        ("Data fingerprint", data),
     ]
 
 
@@ -163,7 +163,6 @@ def runs_table(
         raise InvalidInputError(f"fmt={fmt!r} is not a table format; use 'latex' or 'markdown'.")
     if not runs:
         raise InvalidInputError("runs_table needs at least one run; select runs to tabulate.")
-    k = len(runs)
     body: list[tuple[str, list[str]]] = []
     for label, cells in _rows(runs, treatment):
         if label.startswith("@"):
@@ -178,13 +177,12 @@ def runs_table(
         if label.startswith("@") and (i + 1 == len(body) or body[i + 1][0].startswith("@")):
             continue
         kept.append((label, texts))
-    heads = [f"({i + 1})" for i in range(k)]
+    heads = [r.slug for r in runs]
     methods = [rv.method_label(r.method) for r in runs]
-    note = "Columns: " + "; ".join(
-        f"({i + 1}) run {r.slug}" + (f", data {r.dataset_sha256[:12]}" if r.dataset_sha256 else "")
-        for i, r in enumerate(runs)
+    note = (
+        "Each column is one stored run. Intervals and sets are at the level each run used; the data fingerprint "
+        "is the start of the SHA-256 of the run's data file."
     )
-    note += ". Standard errors in parentheses; intervals and sets at the level each run used."
     if fmt == "markdown":
         return _markdown(kept, heads, methods, note, caption)
     return _latex(kept, heads, methods, note, caption)
@@ -193,13 +191,13 @@ def runs_table(
 def _markdown(
     body: list[tuple[str, list[str]]], heads: list[str], methods: list[str], note: str, caption: str | None
 ) -> str:
-    rows = [["", *[mt.cell(m) for m in methods]]]
+    rows = [["Estimator", *[mt.cell(m) for m in methods]]]
     for label, cells in body:
         if label.startswith("@"):
             rows.append([f"*{mt.inline(label[1:])}*", *[""] * len(heads)])
         else:
             rows.append([mt.inline(label.strip()) if label.strip() else "", *cells])
-    text = mt.table(["", *heads], rows, "l" + "r" * len(heads))
+    text = mt.table(["Run", *[mt.cell(h) for h in heads]], rows, "l" + "r" * len(heads))
     lead = f"**{mt.inline(caption)}**\n\n" if caption else ""
     return lead + text + "\n\n" + mt.inline(note) + "\n"
 
@@ -214,8 +212,8 @@ def _latex(
     lines += [
         r"\begin{tabular}{l" + "c" * k + "}",
         r"\toprule",
-        " & ".join(["", *heads]) + r" \\",
-        " & ".join(["", *[latex_escape(m) for m in methods]]) + r" \\",
+        " & ".join(["Run", *[latex_escape(h) for h in heads]]) + r" \\",
+        " & ".join(["Estimator", *[latex_escape(m) for m in methods]]) + r" \\",
         r"\midrule",
     ]
     for label, cells in body:

@@ -45,11 +45,18 @@ def sqlite_path(tmp_path: Path) -> str:
 
 @pytest.fixture
 def cli(monkeypatch: pytest.MonkeyPatch, sqlite_path: str):  # type: ignore[no-untyped-def]
-    """Invoke the ivdossier app in-process against a fresh SQLite registry; returns (exit_code, stdout, stderr)."""
+    """Invoke the ivdossier app in-process against a fresh SQLite registry; returns (exit_code, stdout, stderr).
+
+    The registry file is created (schema only, as `init` would before loading the catalogue), because commands
+    other than `init` and `demo` refuse a registry that does not exist.
+    """
     from typer.testing import CliRunner
 
     from ivdossier.cli.app import app
     from ivdossier.cli.common import settings
+    from ivdossier.registry.db import open_registry
+
+    open_registry(sqlite_path, create=True).dispose()
 
     monkeypatch.setenv("IVDOSSIER_USER", "tester")
     monkeypatch.delenv("IVDOSSIER_DB", raising=False)

@@ -52,17 +52,17 @@ def telehealth_frame(n: int = 2400, seed: int = 20261202) -> pd.DataFrame:
 
 
 DESIGNS: dict[str, dict[str, Any]] = {
-    "2sls-robust": {"vcov": "robust"},
-    "2sls-unadjusted": {"vcov": "unadjusted"},
-    "2sls-cluster-weights": {"vcov": "cluster", "cluster": "district", "weights": "weight"},
+    "2sls-robust": {"vcov": "heteroskedastic"},
+    "2sls-unadjusted": {"vcov": "homoskedastic"},
+    "2sls-cluster-weights": {"vcov": "clustered", "cluster": "district", "weights": "weight"},
     "liml-robust-absorb-weights": {"method": "liml", "absorb": "clinic", "weights": "weight"},
     "fuller-cluster-absorb": {
         "method": "fuller",
-        "vcov": "cluster",
+        "vcov": "clustered",
         "cluster": "district",
         "absorb": "clinic",
     },
-    "2sls-twoway": {"vcov": "cluster", "cluster": ["district", "clinic"]},
+    "2sls-twoway": {"vcov": "clustered", "cluster": ["district", "clinic"]},
     "two-treatments-robust": {
         "treatment": ["tele_share", "tele_visits"],
         "instruments": ["fibre_wave", "clerk_pull", "extra_z"],
@@ -70,12 +70,12 @@ DESIGNS: dict[str, dict[str, Any]] = {
     "ols-cluster-absorb": {
         "method": "ols",
         "instruments": [],
-        "vcov": "cluster",
+        "vcov": "clustered",
         "cluster": "district",
         "absorb": "clinic",
     },
     "2sls-cluster-nested-absorb": {
-        "vcov": "cluster",
+        "vcov": "clustered",
         "cluster": "clinic",
         "absorb": "clinic",
         "weights": "weight",

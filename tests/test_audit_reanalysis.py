@@ -132,7 +132,7 @@ def test_ar_set_from_reported_statistics_matches_a_direct_computation_on_seeded_
     from ivdossier.estimation.api import estimate
 
     data = _seeded_cluster_data()
-    res = estimate(data, outcome="y", treatment="x", instruments="z", vcov="cluster", cluster="g").to_dict()
+    res = estimate(data, outcome="y", treatment="x", instruments="z", vcov="clustered", cluster="g").to_dict()
     fs = res["first_stage"]["by_endog"]["x"]
     reported = {
         "estimate": res["coef"]["x"],
@@ -259,3 +259,16 @@ def test_summary_counts_verdicts_spread_and_top_threats() -> None:
     sp = spread([3.5, 3.4, -1.0])
     assert (sp.minimum, sp.median, sp.maximum, sp.positive, sp.negative) == (-1.0, 3.4, 3.5, 2, 1)
     assert sp.q1 == pytest.approx(1.2) and sp.q3 == pytest.approx(3.45)
+
+
+def test_the_f_kind_words_and_their_old_spellings_read_the_same() -> None:
+    """unadjusted, robust and cluster (before the rename) are read as homoskedastic, heteroskedastic, clustered."""
+    for old, new in (
+        ("unadjusted", "homoskedastic"),
+        ("robust", "heteroskedastic"),
+        ("cluster", "clustered"),
+    ):
+        before = audit_study("s", {"first_stage_f": 20.0, "f_kind": old, "n_instruments": 2})
+        after = audit_study("s", {"first_stage_f": 20.0, "f_kind": new, "n_instruments": 2})
+        assert ReportedStats.from_mapping({"f_kind": old}).f_kind == new
+        assert before.to_dict() == after.to_dict()

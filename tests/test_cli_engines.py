@@ -28,7 +28,7 @@ def parquet_file(tmp_path: Path) -> Path:
 def _args(path: Path) -> list[str]:
     return [
         "estimate", "--data", str(path), "--outcome", "y", "--treatment", "x", "--instrument", "z1",
-        "--instrument", "z2", "--control", "w", "--cluster", "g", "--vcov", "cluster", "--json",
+        "--instrument", "z2", "--control", "w", "--cluster", "g", "--vcov", "clustered", "--json",
     ]  # fmt: skip
 
 
@@ -69,7 +69,7 @@ def test_engine_options_without_an_engine_are_refused(cli, parquet_file: Path) -
 def test_evidence_commands_take_the_engine_option(cli, parquet_file: Path) -> None:  # type: ignore[no-untyped-def]
     args = [
         "falsify", "per-instrument", "--data", str(parquet_file), "--outcome", "y", "--treatment", "x",
-        "--instrument", "z1", "--instrument", "z2", "--control", "w", "--vcov", "cluster", "--cluster", "g",
+        "--instrument", "z1", "--instrument", "z2", "--control", "w", "--vcov", "clustered", "--cluster", "g",
         "--json",
     ]  # fmt: skip
     code, out, err = cli(*args)

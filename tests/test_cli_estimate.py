@@ -48,7 +48,7 @@ def test_attach_stores_the_run_with_sha256_versions_and_plot_data(cli, data_file
     _program(cli)
     code, out, err = cli(
         "estimate", "--data", str(data_file), "--outcome", "y", "--treatment", "x", "--instrument", "z",
-        "--cluster", "g", "--vcov", "cluster", "--attach", "zed", "--json",
+        "--cluster", "g", "--vcov", "clustered", "--attach", "zed", "--json",
     )  # fmt: skip
     assert code == 0, err
     slug = json.loads(out)["run"]
@@ -64,7 +64,7 @@ def test_attach_stores_the_run_with_sha256_versions_and_plot_data(cli, data_file
             dataset = s.get(Dataset, run.dataset_id)
             assert dataset.sha256 == hashlib.sha256(data_file.read_bytes()).hexdigest()
             assert dataset.rows == 600
-            assert run.spec["instruments"] == ["z"] and run.spec["vcov"] == "cluster"
+            assert run.spec["instruments"] == ["z"] and run.spec["vcov"] == "clustered"
             assert {"python", "numpy", "ivdossier"} <= set(run.versions)
             assert len(run.results["plot_data"]["ar_curve"]["betas"]) > 10
             assert run.results["n_clusters"] == [30]
@@ -93,9 +93,9 @@ def test_few_clusters_are_warned_about_on_standard_error(cli, data_file: Path) -
     n_groups = pd.read_csv(data_file)["g"].nunique()
     assert n_groups == 30
     args = ["estimate", "--data", str(data_file), "--outcome", "y", "--treatment", "x", "--instrument", "z"]
-    code, out, err = cli(*args, "--cluster", "g", "--vcov", "cluster", "--json")
+    code, out, err = cli(*args, "--cluster", "g", "--vcov", "clustered", "--json")
     assert code == 0, err
     assert "warning: few clusters: 30 (fewer than 42)" in err
     json.loads(out)
-    code, _, err = cli(*args, "--vcov", "robust")
+    code, _, err = cli(*args, "--vcov", "heteroskedastic")
     assert code == 0 and "few clusters" not in err

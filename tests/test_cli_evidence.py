@@ -97,9 +97,9 @@ def test_per_instrument_and_sensitivity(cli, data_file: Path) -> None:  # type: 
         "--data",
         str(data_file),
         *BASE,
-        "--gamma-min",
+        "--direct-effect-min",
         "0",
-        "--gamma-max",
+        "--direct-effect-max",
         "0",
         "--json",
     )
@@ -161,3 +161,34 @@ def test_likely_mistakes_get_one_line_errors(cli, data_file: Path) -> None:  # t
         "1",
     )
     assert code == 2 and "one --prior-mean and one --prior-sd per --instrument" in err
+
+
+def test_the_direct_effect_range_options_and_their_old_spelling(cli, data_file: Path, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    base = ("sensitivity", "range", "--data", str(data_file), *BASE, "--json")
+    code, new, err = cli(*base, "--direct-effect-min", "-0.1", "--direct-effect-max", "0.2")
+    assert code == 0 and err == ""
+    code, old, err = cli(*base, "--gamma-min", "-0.1", "--gamma-max", "0.2")
+    assert code == 0 and json.loads(old) == json.loads(new)
+    assert err == (
+        "warning: --gamma-min is deprecated and will be removed in the next release; use --direct-effect-min.\n"
+        "warning: --gamma-max is deprecated and will be removed in the next release; use --direct-effect-max.\n"
+    )
+    code, _, err = cli(*base, "--direct-effect-min", "0", "--gamma-min", "0", "--direct-effect-max", "0")
+    assert code == 2 and "give --direct-effect-min only; --gamma-min is its deprecated old spelling" in err
+    code, _, err = cli(*base, "--direct-effect-min", "0")
+    assert code == 2 and "pass --direct-effect-min and --direct-effect-max" in err
+    _, help_text, _ = cli("sensitivity", "range", "--help")
+    assert "--direct-effect-min" in help_text and "--gamma" not in help_text
+
+
+def test_a_run_stored_with_the_old_option_names_is_computed_the_same(data_file: Path) -> None:
+    from ivdossier.estimation.spec import ModelSpec
+    from ivdossier.workflows.analyses import run_analysis
+
+    spec = ModelSpec.build(outcome="y", treatment="d", instruments=("z",))
+    new = run_analysis(
+        "sensitivity range", data_file, spec, direct_effect_min=[-0.1], direct_effect_max=[0.2]
+    )
+    old = run_analysis("sensitivity range", data_file, spec, gamma_min=[-0.1], gamma_max=[0.2])
+    assert old.result.to_dict() == new.result.to_dict()
+    assert new.spec["direct_effect_min"] == [-0.1] and "gamma_min" not in new.spec

@@ -80,7 +80,7 @@ def test_members_and_text_from_file(cli, tmp_path) -> None:  # type: ignore[no-u
     code, out, _ = cli("instrument", "show", "fibre", "--json")
     assert json.loads(out)["claim_exogeneity"] == "Clerks only book slots.\n\nNothing else."
     assert cli("member", "add", "ana", "--name", "Ana", "--email", "ana@example.org")[0] == 0
-    code, _, err = cli("member", "add", "bo", "--email", "not-an-address")
+    code, _, err = cli("--as", "ana", "member", "add", "bo", "--email", "not-an-address")
     assert code == 2 and "does not look like an address" in err
     code, out, _ = cli("member", "list", "--json")
     assert [m["handle"] for m in json.loads(out)] == ["ana"]

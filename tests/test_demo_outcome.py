@@ -14,7 +14,7 @@ from ivdossier.workflows.demo_data import AVOIDABLE_RATE, TRUE_EFFECT, simulate_
 
 CONTROLS = ["age", "chronic_conditions"]  # the demo's controls (workflows/demo.py)
 MODEL = {"outcome": "ed_visits", "treatment": "telehealth", "controls": CONTROLS}
-CLUSTERED = {"cluster": "district", "vcov": "cluster"}
+CLUSTERED = {"cluster": "district", "vcov": "clustered"}
 
 
 @pytest.fixture(scope="module")

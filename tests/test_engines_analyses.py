@@ -23,12 +23,12 @@ from ivdossier.workflows.analyses import ANALYSES, engine_refusal, run_analysis
 pytest.importorskip("duckdb")
 
 ADJUSTMENTS: dict[str, dict[str, Any]] = {
-    "robust": {"vcov": "robust"},
-    "cluster-weights": {"vcov": "cluster", "cluster": "district", "weights": "weight"},
-    "unadjusted-absorb": {"vcov": "unadjusted", "absorb": "clinic"},
-    "twoway": {"vcov": "cluster", "cluster": ["district", "clinic"]},
-    "nested-absorb-cluster": {"vcov": "cluster", "cluster": "clinic", "absorb": "clinic"},
-    "large-sample": {"vcov": "robust", "small_sample": False},
+    "robust": {"vcov": "heteroskedastic"},
+    "cluster-weights": {"vcov": "clustered", "cluster": "district", "weights": "weight"},
+    "unadjusted-absorb": {"vcov": "homoskedastic", "absorb": "clinic"},
+    "twoway": {"vcov": "clustered", "cluster": ["district", "clinic"]},
+    "nested-absorb-cluster": {"vcov": "clustered", "cluster": "clinic", "absorb": "clinic"},
+    "large-sample": {"vcov": "heteroskedastic", "small_sample": False},
 }
 
 #: analysis name -> (roles of the spec, its options)
@@ -93,7 +93,7 @@ def test_standardised_differences_of_one_binary_instrument(
 ) -> None:
     _, path = data
     roles, options = COVERED[name]
-    spec = spec_for(roles, {"vcov": "cluster", "cluster": "district"}, ["early_fibre"])
+    spec = spec_for(roles, {"vcov": "clustered", "cluster": "district"}, ["early_fibre"])
     memory = run_analysis(name, path, spec, **options)
     scanned = run_analysis(name, path, spec, engine="duckdb", **options)
     compare(scanned, memory)

@@ -212,17 +212,17 @@ def test_same_errors_as_the_pandas_path(frame: pd.DataFrame, tmp_path: Path) -> 
         (frame, {"instruments": ["fibre_wav"]}, InvalidInputError, "did you mean 'fibre_wave'"),
         (  # row 3 misses the outcome: an infinite value there is still an error on both paths
             frame.assign(age=frame["age"].where(frame.index != 3, -np.inf)),
-            {"cluster": "district", "vcov": "cluster"},
+            {"cluster": "district", "vcov": "clustered"},
             InvalidInputError,
             "Column 'age' holds an infinite value|Column 'age' holds 1 infinite value",
         ),
         (
             frame.assign(region="north"),
-            {"cluster": "region", "vcov": "cluster"},
+            {"cluster": "region", "vcov": "clustered"},
             InvalidInputError,
             "Cluster variable 'region' has a single level in the used rows",
         ),
-        (frame, {"cluster": "district", "vcov": "cluster", "controls": []}, None, ""),
+        (frame, {"cluster": "district", "vcov": "clustered", "controls": []}, None, ""),
     ]
     for data, extra, err, pattern in cases:
         path = _write(tmp_path, data)
@@ -243,7 +243,7 @@ def test_text_treatment_column_is_refused(frame: pd.DataFrame, tmp_path: Path) -
 
 def test_too_many_sums_for_sql_is_refused_naming_pandas() -> None:
     plan = MomentPlan(
-        "t", tuple(f"z{i}" for i in range(14)), ("x",), "y", (), None, (), None, "robust", DUCKDB
+        "t", tuple(f"z{i}" for i in range(14)), ("x",), "y", (), None, (), None, "heteroskedastic", DUCKDB
     )
     # 16 columns: u = 16*17/2 = 136 packed products, u + u(u+1)/2 = 136 + 9316 = 9452 sums (arithmetic)
     with pytest.raises(EstimationError, match=r"needs 9452 sums per scan.*use engine='pandas'"):
@@ -251,7 +251,7 @@ def test_too_many_sums_for_sql_is_refused_naming_pandas() -> None:
 
 
 def test_one_generator_differs_between_engines_only_in_quoting() -> None:
-    plan = MomentPlan("src", ("z 1",), ("x",), "y", ("c",), "f", ("g", "h"), "w", "cluster", DUCKDB)
+    plan = MomentPlan("src", ("z 1",), ("x",), "y", ("c",), "f", ("g", "h"), "w", "clustered", DUCKDB)
     coef = np.eye(4, 3)
     duck = moments_query(plan, coef, means=[0.0] * 4, means_table="lm")
     spark = moments_query(

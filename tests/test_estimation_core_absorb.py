@@ -93,7 +93,13 @@ def test_nested_fixed_effect_counted_and_left_out_of_cluster_factor():
     y = 0.7 * x + rng.normal(size=120)[classroom] + u
     df = pd.DataFrame({"y": y, "x": x, "z": z, "school": school, "classroom": classroom})
     ours = estimate(
-        df, outcome="y", treatment="x", instruments="z", absorb="classroom", cluster="school", vcov="cluster"
+        df,
+        outcome="y",
+        treatment="x",
+        instruments="z",
+        absorb="classroom",
+        cluster="school",
+        vcov="clustered",
     )
     assert ours.n_absorbed == 120 and ours.n_absorbed_nested == 120
     exog = pd.get_dummies(df["classroom"], prefix="c", dtype=float)

@@ -25,10 +25,10 @@ def _arrays(seed: int, n: int = 3000) -> tuple[np.ndarray, np.ndarray, np.ndarra
     return c(z), c(x), c(y), g
 
 
-@pytest.mark.parametrize("kind", ["robust", "cluster"])
+@pytest.mark.parametrize("kind", ["heteroskedastic", "clustered"])
 def test_first_stage_covariance_from_the_moments_equals_the_row_sandwich(kind: str) -> None:
     z, x, y, g = _arrays(1)
-    spec = CovSpec(kind, (g,) if kind == "cluster" else ())
+    spec = CovSpec(kind, (g,) if kind == "clustered" else ())
     cp = build(z, x, y, spec, n_partialled=1)
     # coordinates: regressors are the orthonormal instrument basis, residual the first-stage residual
     v = cp.r[:, cp.ix].copy()
@@ -63,7 +63,7 @@ def test_accumulating_in_chunks_equals_one_pass_and_merge_adds() -> None:
 def test_out_of_core_path_gives_the_in_memory_moments() -> None:
     """Chunks of standardised columns plus the basis applied at the end equal the exact in-memory moments."""
     z, x, y, g = _arrays(3)
-    spec = CovSpec("cluster", (g,))
+    spec = CovSpec("clustered", (g,))
     exact = build(z, x, y, spec, n_partialled=1)
     a = np.column_stack([z, x, y]) / exact.scale
     acc = MomentAccumulator(4, 1)

@@ -69,7 +69,9 @@ def _mroz_fit(df: pd.DataFrame, instruments: list[str], vcov: str) -> Any:
     )
 
 
-@pytest.mark.parametrize(("eps", "vcov"), [(1e-6, "robust"), (3e-8, "unadjusted"), (1e-7, "robust")])
+@pytest.mark.parametrize(
+    ("eps", "vcov"), [(1e-6, "heteroskedastic"), (3e-8, "homoskedastic"), (1e-7, "heteroskedastic")]
+)
 def test_nearly_collinear_instruments_give_the_statistics_of_a_well_conditioned_basis(
     mroz: pd.DataFrame, eps: float, vcov: str
 ) -> None:
@@ -88,9 +90,9 @@ def test_nearly_collinear_instruments_give_the_statistics_of_a_well_conditioned_
     # and the well-conditioned fit itself agrees with linearmodels (first-stage F; test-only reference)
     ref = IV2SLS.from_formula(
         "lwage ~ 1 + exper + expersq + [educ ~ motheduc + noise]", mroz.assign(noise=df.noise)
-    ).fit(cov_type="robust" if vcov == "robust" else "unadjusted", debiased=True)
+    ).fit(cov_type="robust" if vcov == "heteroskedastic" else "unadjusted", debiased=True)
     diag = ref.first_stage.diagnostics.loc["educ"]
-    if vcov == "robust":
+    if vcov == "heteroskedastic":
         assert hg["robust_f"] * 2 == pytest.approx(diag["f.stat"], rel=1e-6)  # linearmodels robust Wald
     assert hg["partial_r2"] == pytest.approx(diag["partial.rsquared"], rel=1e-8)  # linearmodels partial R^2
     assert near.to_dict()["strength"]["instrument_condition"] > 1e5  # reported as nearly collinear
@@ -118,7 +120,7 @@ def _design(seed: int, n: int = 400, clusters: int = 0) -> pd.DataFrame:
 
 
 def _fit(df: pd.DataFrame, vcov: str) -> Any:
-    kw: dict[str, Any] = {"cluster": "g"} if vcov == "cluster" else {}
+    kw: dict[str, Any] = {"cluster": "g"} if vcov == "clustered" else {}
     return estimate(df, outcome="y", treatment="x", instruments=["z1", "z2"], controls="c", vcov=vcov, **kw)
 
 
@@ -150,7 +152,7 @@ def _finite_ends(intervals: list[list[Any]]) -> list[float]:
 @given(
     column=st.sampled_from(["y", "x", "z1", "z2", "c"]),
     power=st.sampled_from([-8, 8]),
-    vcov=st.sampled_from(["unadjusted", "robust", "cluster"]),
+    vcov=st.sampled_from(["homoskedastic", "heteroskedastic", "clustered"]),
 )
 def test_every_statistic_is_equivariant_to_the_units_of_each_column(
     column: str, power: int, vcov: str
@@ -175,7 +177,7 @@ def test_every_statistic_is_equivariant_to_the_units_of_each_column(
 
 
 @settings(max_examples=10, deadline=None)
-@given(seed=st.integers(0, 10_000), vcov=st.sampled_from(["unadjusted", "robust", "cluster"]))
+@given(seed=st.integers(0, 10_000), vcov=st.sampled_from(["homoskedastic", "heteroskedastic", "clustered"]))
 def test_every_statistic_is_invariant_to_a_change_of_instrument_basis(seed: int, vcov: str) -> None:
     """Exact identity: instruments Z A (A non-singular) span the space of Z, so nothing in the suite changes."""
     df = _design(5, clusters=25)
@@ -220,7 +222,7 @@ def test_a_zero_first_stage_is_not_identified_and_still_reports_anderson_rubin()
     z = zc - (zc @ xc) / (xc @ xc) * xc  # orthogonal to x after centring: the first stage is exactly zero
     y = 0.5 * x + rng.normal(size=n)
     df = pd.DataFrame({"y": y, "x": x, "z": z})
-    res = estimate(df, outcome="y", treatment="x", instruments="z", vcov="robust")
+    res = estimate(df, outcome="y", treatment="x", instruments="z", vcov="heteroskedastic")
     assert (
         res.identification is not None
         and "'z'" in res.identification
@@ -246,7 +248,7 @@ def test_report_controls_reproduces_the_nist_longley_certified_values() -> None:
         treatment="GNPDEFL",
         controls=["GNP", "UNEMP", "ARMED", "POP", "YEAR"],
         method="ols",
-        vcov="unadjusted",
+        vcov="homoskedastic",
         report_controls=True,
     )
     table = res.controls_table
@@ -276,7 +278,7 @@ def test_report_controls_for_2sls_matches_linearmodels(mroz: pd.DataFrame) -> No
         treatment="educ",
         instruments=["motheduc", "fatheduc"],
         controls=["exper", "expersq"],
-        vcov="robust",
+        vcov="heteroskedastic",
         report_controls=True,
     )
     ref = IV2SLS.from_formula("lwage ~ 1 + exper + expersq + [educ ~ motheduc + fatheduc]", mroz).fit(

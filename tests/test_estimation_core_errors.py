@@ -84,7 +84,7 @@ def test_non_positive_weights(frame):
 def test_cluster_with_one_level(frame):
     frame["one"] = 3
     with pytest.raises(InvalidInputError, match=r"Cluster variable 'one' has a single level"):
-        fit(frame, vcov="cluster", cluster="one")
+        fit(frame, vcov="clustered", cluster="one")
 
 
 def test_fewer_instruments_than_endogenous(frame):
@@ -140,18 +140,19 @@ def test_unknown_method_lists_valid_ones(frame):
 
 def test_unknown_vcov_lists_valid_ones(frame):
     with pytest.raises(
-        InvalidInputError, match=r"Unknown vcov 'hc3'; choose one of unadjusted, robust, cluster"
+        InvalidInputError,
+        match=r"Unknown vcov 'hc3'; choose one of homoskedastic, heteroskedastic, clustered",
     ):
         fit(frame, vcov="hc3")
 
 
 def test_cluster_vcov_needs_cluster(frame):
-    with pytest.raises(InvalidInputError, match=r"vcov='cluster' needs cluster="):
-        fit(frame, vcov="cluster")
+    with pytest.raises(InvalidInputError, match=r"vcov='clustered' needs cluster="):
+        fit(frame, vcov="clustered")
 
 
 def test_cluster_with_non_cluster_vcov_is_a_conflict(frame):
-    with pytest.raises(InvalidInputError, match=r"cluster= was given with vcov='robust'"):
+    with pytest.raises(InvalidInputError, match=r"cluster= was given with vcov='heteroskedastic'"):
         fit(frame, cluster="district")
 
 
@@ -167,7 +168,7 @@ def test_iv_without_instruments(frame):
 
 def test_three_cluster_variables(frame):
     with pytest.raises(InvalidInputError, match=r"At most two cluster variables"):
-        fit(frame, vcov="cluster", cluster=["district", "clinic", "age"])
+        fit(frame, vcov="clustered", cluster=["district", "clinic", "age"])
 
 
 def test_load_table_unknown_extension(tmp_path: Path):

@@ -21,7 +21,7 @@ def _frame(seed: int) -> pd.DataFrame:
 
 def test_two_clusters_two_instruments_keeps_the_estimate_and_names_the_singular_covariance() -> None:
     res = estimate(
-        _frame(5), outcome="y", treatment="x", instruments=["z1", "z2"], cluster="g", vcov="cluster"
+        _frame(5), outcome="y", treatment="x", instruments=["z1", "z2"], cluster="g", vcov="clustered"
     )
     out = res.to_dict()
     assert np.isfinite(out["coef"]["x"])
@@ -34,7 +34,7 @@ def test_two_clusters_two_instruments_keeps_the_estimate_and_names_the_singular_
 
 
 def test_two_clusters_one_instrument_reports_why_clr_is_absent() -> None:
-    res = estimate(_frame(6), outcome="y", treatment="x", instruments="z1", cluster="g", vcov="cluster")
+    res = estimate(_frame(6), outcome="y", treatment="x", instruments="z1", cluster="g", vcov="clustered")
     out = res.to_dict()
     assert np.isfinite(out["coef"]["x"])
     clr = out["weak_iv_robust"]["clr"]

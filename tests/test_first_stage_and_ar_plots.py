@@ -62,7 +62,7 @@ def test_several_instruments_are_labelled_as_a_prediction_without_a_slope() -> N
 def test_ar_curve_holds_a_bounded_set_far_wider_than_eight_standard_errors() -> None:
     # a weak instrument (seed found by a search): the AR 95 % set is bounded but reaches ~43 SEs above the estimate
     prepared = prepare(_frame_wide(), outcome="y", treatment="x", instruments=("z",))
-    result = estimate_prepared(prepared, method="2sls", vcov="robust")
+    result = estimate_prepared(prepared, method="2sls", vcov="heteroskedastic")
     b, se = float(result.coef[0]), float(result.se[0])
     ((low, high),) = result.to_dict()["weak_iv_robust"]["anderson_rubin"]["confidence_set"]
     assert high > b + 8 * se  # the old fixed range (8 SEs either side) would cut the set off
@@ -102,7 +102,7 @@ def test_unbounded_sets_keep_the_default_range() -> None:
     x = 0.01 * z + u + rng.normal(size=n)  # essentially irrelevant instrument
     frame = pd.DataFrame({"y": x - u + rng.normal(size=n), "x": x, "z": z})
     prepared = prepare(frame, outcome="y", treatment="x", instruments=("z",))
-    result = estimate_prepared(prepared, method="2sls", vcov="robust")
+    result = estimate_prepared(prepared, method="2sls", vcov="heteroskedastic")
     curve = ar_curve_data(prepared, result)
     assert curve is not None
     ar_set = result.to_dict()["weak_iv_robust"]["anderson_rubin"]["confidence_set"]

@@ -63,7 +63,7 @@ def test_bootstrap_enumerates_few_clusters_and_states_draws_weights_and_enumerat
     assert again["wild"]["t_test"] == wild["t_test"]  # enumeration does not depend on the seed
     analytic = json.loads(out)["analytic"]
     lo, hi = analytic["t_interval"]
-    assert lo < wild["estimate"] < hi and analytic["vcov"] == "cluster"
+    assert lo < wild["estimate"] < hi and analytic["vcov"] == "clustered"
 
 
 def test_bootstrap_with_webb_weights_and_pairs_draws_prints_the_summary(cli, data_file: Path) -> None:  # type: ignore[no-untyped-def]
@@ -74,7 +74,7 @@ def test_bootstrap_with_webb_weights_and_pairs_draws_prints_the_summary(cli, dat
     assert code == 0, err
     assert "199 draws, webb weights by 10 clusters, seed 4" in out
     assert "Pairs bootstrap for x: " in out and "of 99 draws used" in out
-    assert "analytic (cluster) beside them: t interval [" in out
+    assert "analytic (clustered) beside them: t interval [" in out
     assert "cannot establish exclusion or exogeneity" in out
 
 
@@ -114,7 +114,7 @@ def test_influence_matches_brute_force_refits_and_attaches_a_typed_run(
 def test_subvector_tests_one_treatment_with_the_other_unrestricted(cli, data_file: Path) -> None:  # type: ignore[no-untyped-def]
     code, out, err = cli(
         "fragility", "subvector", "--data", str(data_file), "--outcome", "y", "--treatment", "x",
-        "--treatment", "x2", "--instrument", "z", "--instrument", "z2", "--of", "x", "--vcov", "unadjusted",
+        "--treatment", "x2", "--instrument", "z", "--instrument", "z2", "--of", "x", "--vcov", "homoskedastic",
         "--json",
     )  # fmt: skip
     assert code == 0, err
@@ -148,9 +148,9 @@ def test_influence_and_subvector_mistakes_get_one_line(cli, data_file: Path) -> 
     code, _, err = cli("fragility", "influence", "--data", str(data_file), *BASE, "--top", "0")
     assert (code, err) == (2, "error: --top must be at least 1, got 0.\n")
     code, _, err = cli(
-        "fragility", "influence", "--data", str(data_file), *BASE, "--vcov", "robust",
+        "fragility", "influence", "--data", str(data_file), *BASE, "--vcov", "heteroskedastic",
     )  # fmt: skip
-    assert code == 2 and err.startswith("error: cluster= was given with vcov='robust'")
+    assert code == 2 and err.startswith("error: cluster= was given with vcov='heteroskedastic'")
     code, _, err = cli(
         "fragility", "subvector", "--data", str(data_file), "--outcome", "y", "--treatment", "x",
         "--treatment", "x2", "--instrument", "z", "--instrument", "z2", "--of", "x3",

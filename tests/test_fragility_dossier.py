@@ -61,7 +61,7 @@ def test_section_shows_the_jackknife_and_the_bootstrap_sets_beside_the_analytic_
         "B = 256 draws, rademacher weights by 8 clusters, every sign vector enumerated (exact)" in section
     )  # 2^8
     assert "| t test (2SLS) |" in section and "| Anderson–Rubin |" in section
-    assert "Analytic 95 % set (cluster)" in section
+    assert "Analytic 95 % set (clustered)" in section
     assert "cannot establish exclusion or exogeneity" in section
     page = out_html.read_text()
     figure = page[page.index('id="figure-leave-one-out"') :]

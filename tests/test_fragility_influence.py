@@ -52,10 +52,10 @@ def hospitals(seed: int = 4, g: int = 12, n: int = 300, two_instruments: bool = 
 
 def refit(frame: pd.DataFrame, null: float, **spec: object) -> tuple[float, float, float, float]:
     """Brute force: the full estimation path on the given rows; returns estimate, se, AR F and first-stage F."""
-    vcov = "cluster" if spec.get("cluster") else "robust"
+    vcov = "clustered" if spec.get("cluster") else "heteroskedastic"
     prep = prepare(frame, outcome="y", treatment="x", **spec)  # type: ignore[arg-type]
     res = estimate_prepared(prep, vcov=vcov, diagnostics=False)
-    cov = CovSpec(vcov, prep.clusters if vcov == "cluster" else ())  # type: ignore[arg-type]
+    cov = CovSpec(vcov, prep.clusters if vcov == "clustered" else ())  # type: ignore[arg-type]
     ar = anderson_rubin(
         prep.y,
         prep.X,

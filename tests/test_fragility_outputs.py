@@ -50,7 +50,7 @@ def test_every_result_serialises_and_carries_the_caution() -> None:
             np.column_stack([frame.x - frame.x.mean(), rng.normal(size=300)]),
             np.column_stack([frame.z - frame.z.mean(), rng.normal(size=300)]),
             index=0,
-            spec=CovSpec("robust"),
+            spec=CovSpec("heteroskedastic"),
             n_partialled=1,
             confidence_set=False,
         ),

@@ -36,11 +36,11 @@ def refit_resample(frame: pd.DataFrame, clusters: list[int], **spec: object) -> 
     pieces = [frame[frame.d == k].assign(d=f"copy{j}") for j, k in enumerate(clusters)]
     data = pd.concat(pieces, ignore_index=True)
     prep = prepare(data, outcome="y", treatment="x", instruments="z", cluster="d", **spec)  # type: ignore[arg-type]
-    res = estimate_prepared(prep, vcov="cluster", diagnostics=False)
+    res = estimate_prepared(prep, vcov="clustered", diagnostics=False)
     fs = first_stage(
         prep.X,
         prep.Z,
-        spec=CovSpec("cluster", prep.clusters),
+        spec=CovSpec("clustered", prep.clusters),
         n_partialled=prep.n_partialled,
         n_partialled_nested=prep.n_partialled_nested,
         endog_names=["x"],

@@ -40,11 +40,11 @@ def two_treatments(seed: int = 0, n: int = 400) -> tuple[np.ndarray, np.ndarray,
     return y - y.mean(), x - x.mean(axis=0), z - z.mean(axis=0)
 
 
-@pytest.mark.parametrize("kind", ["unadjusted", "robust", "cluster"])
+@pytest.mark.parametrize("kind", ["homoskedastic", "heteroskedastic", "clustered"])
 def test_one_treatment_reduces_to_the_existing_anderson_rubin(kind: str) -> None:
     y, x, z = two_treatments(seed=2)
     groups = np.arange(len(y)) % 25
-    spec = CovSpec(kind, (groups,) if kind == "cluster" else ())  # type: ignore[arg-type]
+    spec = CovSpec(kind, (groups,) if kind == "clustered" else ())  # type: ignore[arg-type]
     mine = subvector_anderson_rubin(y, x[:, :1], z, index=0, spec=spec, n_partialled=1, null=0.2)
     ref = anderson_rubin(y, x[:, :1], z, spec=spec, n_partialled=1, null=np.array([0.2]))
     # identity with the project's one-treatment AR (statistic, p-value and set)
@@ -61,7 +61,7 @@ def test_homoskedastic_subvector_test_and_set_match_ivmodels() -> None:
     from ivmodels.tests.anderson_rubin import anderson_rubin_test, inverse_anderson_rubin_test
 
     y, x, z = two_treatments()
-    res = subvector_anderson_rubin(y, x, z, index=0, spec=CovSpec("unadjusted"), n_partialled=0, null=0.4)
+    res = subvector_anderson_rubin(y, x, z, index=0, spec=CovSpec("homoskedastic"), n_partialled=0, null=0.4)
     # ivmodels on centred data without an intercept uses the same degrees of freedom as n_partialled=0
     stat, p_f = anderson_rubin_test(
         z, x[:, [0]], y, np.array([0.4]), W=x[:, [1]], critical_values="f", fit_intercept=False
@@ -102,7 +102,7 @@ def test_conditional_p_value_tends_to_chi_square_when_kappa_max_is_large() -> No
 
 def test_robust_projection_set_ends_are_where_the_minimised_joint_statistic_hits_the_critical_value() -> None:
     y, x, z = two_treatments(seed=5)
-    spec = CovSpec("robust")
+    spec = CovSpec("heteroskedastic")
     res = subvector_anderson_rubin(y, x, z, index=1, spec=spec, n_partialled=0)
     assert res.applicable and "projection" in (res.version or "")
     assert res.intervals is not None and len(res.intervals) == 1
@@ -132,7 +132,7 @@ def test_prepared_wrapper_names_treatments_and_rejects_unknown_ones() -> None:
     y, x, z = two_treatments(seed=7, n=300)
     frame = pd.DataFrame({"y": y, "a": x[:, 0], "b": x[:, 1], "z1": z[:, 0], "z2": z[:, 1], "z3": z[:, 2]})
     prep = prepare(frame, outcome="y", treatment=["a", "b"], instruments=["z1", "z2", "z3"])
-    res = subvector_ar_prepared(prep, treatment="b", vcov="unadjusted", confidence_set=False)
+    res = subvector_ar_prepared(prep, treatment="b", vcov="homoskedastic", confidence_set=False)
     assert res.treatment == "b" and res.nuisance == ("a",) and res.intervals is None
     assert "b with a unrestricted" in str(res)
     with pytest.raises(InvalidInputError, match="'c' is not a treatment"):

@@ -80,7 +80,7 @@ def brute_force_draws(
             frame[list(inst)].to_numpy(),
             controls=np.column_stack([frame.c.to_numpy(), *dummies]),
             clusters=(codes,) if cluster else (),
-            vcov="cluster" if cluster else "robust",
+            vcov="clustered" if cluster else "robust",
             weights=weights,
         )
         t_stats.append((beta[0] - b0) / math.sqrt(cov[0, 0]))

@@ -65,7 +65,7 @@ def test_card_college_proximity_graph_session(cli, tmp_path: Path) -> None:  # t
         controls = [a for c in CONTROLS for a in ("--control", c)]
         code, _, err = cli(
             "estimate", "--data", str(data), "--outcome", "lwage", "--treatment", "educ",
-            "--instrument", slug, *controls, "--vcov", "robust", "--attach", slug,
+            "--instrument", slug, *controls, "--vcov", "heteroskedastic", "--attach", slug,
         )  # fmt: skip
         assert code == 0, err
 

@@ -45,8 +45,8 @@ REFUSALS = [
     # (keyword arguments of estimate(), command-line options, the one message both must give)
     ({"method": "ols", "instruments": "z"}, ["--method", "ols", "--instrument", "z"], "method='ols' takes no instruments"),
     ({"method": "2sls"}, [], "method='2sls' needs instruments="),
-    ({"instruments": "z", "vcov": "cluster"}, ["--instrument", "z", "--vcov", "cluster"], "vcov='cluster' needs cluster="),
-    ({"instruments": "z", "cluster": "g"}, ["--instrument", "z", "--cluster", "g"], "cluster= was given with vcov='robust'"),
+    ({"instruments": "z", "vcov": "clustered"}, ["--instrument", "z", "--vcov", "clustered"], "vcov='clustered' needs cluster="),
+    ({"instruments": "z", "cluster": "g"}, ["--instrument", "z", "--cluster", "g"], "cluster= was given with vcov='heteroskedastic'"),
     ({"instruments": "z", "method": "gmm"}, ["--instrument", "z", "--method", "gmm"], "Unknown method 'gmm'"),
     ({"instruments": "z", "vcov": "hc3"}, ["--instrument", "z", "--vcov", "hc3"], "Unknown vcov 'hc3'"),
     ({"instruments": "z", "alpha": 1.5}, ["--instrument", "z", "--alpha", "1.5"], "alpha must lie strictly between 0 and 1"),
@@ -70,13 +70,13 @@ def test_a_spec_is_validated_whenever_it_is_built() -> None:
     with pytest.raises(InvalidInputError, match="method='ols' takes no instruments"):
         ModelSpec(outcome="y", treatment=("x",), instruments=("z",), method="ols")
     spec = ModelSpec.build(outcome="y", treatment="x", instruments="z")
-    with pytest.raises(InvalidInputError, match="vcov='cluster' needs cluster="):
-        dataclasses.replace(spec, vcov="cluster")
+    with pytest.raises(InvalidInputError, match="vcov='clustered' needs cluster="):
+        dataclasses.replace(spec, vcov="clustered")
 
 
 def test_build_accepts_one_name_or_a_list_and_stores_tuples() -> None:
     spec = ModelSpec.build(
-        outcome="y", treatment="x", instruments=["z"], controls="w1", cluster="g", vcov="cluster"
+        outcome="y", treatment="x", instruments=["z"], controls="w1", cluster="g", vcov="clustered"
     )
     assert spec.treatment == ("x",) and spec.instruments == ("z",) and spec.controls == ("w1",)
     assert spec.cluster == ("g",)
@@ -124,7 +124,7 @@ def test_a_stored_spec_rebuilds_into_the_same_validated_spec(frame: pd.DataFrame
     from ivdossier.estimation.api import estimate_spec
 
     spec = ModelSpec.build(
-        outcome="y", treatment="x", instruments=["z"], controls=["w1"], cluster="g", vcov="cluster"
+        outcome="y", treatment="x", instruments=["z"], controls=["w1"], cluster="g", vcov="clustered"
     )
     result = estimate_spec(frame, spec)
     assert ModelSpec.from_echo({"data": "d.csv", **result.spec}) == spec  # the run's stored spec is the spec
@@ -137,7 +137,9 @@ def test_evidence_functions_and_commands_share_the_spec_checks(  # type: ignore[
 ) -> None:
     from ivdossier.estimation.falsification import balance
 
-    with pytest.raises(InvalidInputError, match="cluster= was given with vcov='robust'") as python_error:
+    with pytest.raises(
+        InvalidInputError, match="cluster= was given with vcov='heteroskedastic'"
+    ) as python_error:
         balance(frame, instruments="z", covariates=["w1"], cluster="g")
     code, _out, err = cli("falsify", "balance", "--data", str(data_file), "--instrument", "z",
                           "--covariate", "w1", "--cluster", "g")  # fmt: skip
@@ -153,3 +155,54 @@ def test_estimate_file_takes_a_spec_or_the_same_keywords(data_file: Path) -> Non
     assert np.array_equal(by_spec.result.coef, by_keywords.result.coef)  # exact identity: one code path
     with pytest.raises(InvalidInputError, match="method='ols' takes no instruments"):
         estimate_file(data_file, outcome="y", treatment="x", instruments="z", method="ols")
+
+
+def test_the_covariance_words_and_their_old_spellings_for_one_release(cli, tmp_path) -> None:  # type: ignore[no-untyped-def]
+    import warnings
+
+    from ivdossier.estimation.covariance import OLD_COV_NAMES, CovSpec
+    from ivdossier.workflows.plan_check import OLD_COV_WORDS
+
+    assert (
+        OLD_COV_WORDS
+        == OLD_COV_NAMES
+        == {
+            "unadjusted": "homoskedastic",
+            "robust": "heteroskedastic",
+            "cluster": "clustered",
+        }
+    )
+    # the library: an old word warns once and means the new one; a stored spec reads silently
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        spec = ModelSpec.build(outcome="y", treatment="x", instruments="z", vcov="robust")
+    assert spec.vcov == "heteroskedastic"
+    assert [str(w.message) for w in caught] == [
+        "vcov='robust' is deprecated and will be removed in the next release; use vcov='heteroskedastic'."
+    ]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        stored = ModelSpec.from_echo({"outcome": "y", "treatment": ["x"], "instruments": ["z"], "cluster": ["g"],
+                                      "vcov": "cluster"})  # fmt: skip
+    assert stored.vcov == "clustered"
+    assert CovSpec("unadjusted").kind == "homoskedastic"  # stored results name the old kinds
+    # the command line: the old word works with a note on stderr and gives the same numbers
+    rng = np.random.default_rng(8)
+    n = 200
+    z, u = rng.normal(size=n), rng.normal(size=n)
+    x = z + u + rng.normal(size=n)
+    data = tmp_path / "d.csv"
+    pd.DataFrame({"y": x + u, "x": x, "z": z, "g": rng.integers(0, 30, n)}).to_csv(data, index=False)
+    base = ("estimate", "--data", str(data), "--outcome", "y", "--treatment", "x", "--instrument", "z",
+            "--cluster", "g", "--json")  # fmt: skip
+    code, new, err_new = cli(*base, "--vcov", "clustered")
+    assert code == 0
+    code, old, err_old = cli(*base, "--vcov", "cluster")
+    assert code == 0 and json.loads(old) == json.loads(new) and json.loads(new)["vcov"] == "clustered"
+    note = "warning: --vcov cluster is deprecated and will be removed in the next release; use --vcov clustered.\n"
+    assert err_old == note + err_new
+    code, _, err = cli(*base, "--vcov", "sandwich")
+    assert (
+        code == 2
+        and "Unknown vcov 'sandwich'; choose one of homoskedastic, heteroskedastic, clustered." in err
+    )

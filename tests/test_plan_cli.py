@@ -95,7 +95,7 @@ def test_plan_life_cycle(cli, tmp_path: Path, monkeypatch) -> None:  # type: ign
     assert "content.decision_rules[0].when.value" in out and "23.1" in out
 
     on_plan = _run(cli, data, "--control", "w")
-    off_plan = _run(cli, data, "--control", "w", "--control", "age", "--vcov", "unadjusted")
+    off_plan = _run(cli, data, "--control", "w", "--control", "age", "--vcov", "homoskedastic")
     code, out, err = cli("plan", "compare", "fibre-plan", on_plan, off_plan, "--json")
     assert code == 0, err
     result = json.loads(out)
@@ -103,7 +103,7 @@ def test_plan_life_cycle(cli, tmp_path: Path, monkeypatch) -> None:  # type: ign
     assert by_run[on_plan]["deviations"] == []
     assert {(d["field"], str(d["actual"])) for d in by_run[off_plan]["deviations"]} == {
         ("controls", "['age', 'w']"),
-        ("vcov", "unadjusted"),
+        ("vcov", "homoskedastic"),
     }
     gate = by_run[on_plan]["decision_rules"][0]
     assert gate["rule"] == "gate" and gate["holds"] in (True, False)
@@ -131,3 +131,30 @@ def test_plan_errors(cli, tmp_path: Path) -> None:  # type: ignore[no-untyped-de
     assert code == 2 and "decision rule 'r': when: op '~' is not known" in err
     code, out, _ = cli("plan", "show", "tele-plan")
     assert code == 0 and out.startswith("# Pre-analysis plan: Telehealth")
+
+
+def test_a_plan_lists_team_edges_with_their_scope(cli, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    _setup(cli, tmp_path)
+    assert (
+        cli("instrument", "add", "mast", "--program", "tele", "--name", "Mast", "--column", "mast_km")[0] == 0
+    )
+    for name in ("region", "income"):
+        assert cli("graph", "covariate", "tele", name)[0] == 0
+    assert cli("graph", "edge", "add", "tele", "region", "y")[0] == 0  # program-wide
+    code, _, err = cli("graph", "edge", "add", "tele", "income", "mast_km", "--instrument", "mast")
+    assert code == 0, err
+    assert cli("plan", "draft", "tele", "--slug", "whole")[0] == 0
+    assert cli("plan", "draft", "fibre", "--slug", "one")[0] == 0
+    whole = json.loads(cli("plan", "show", "whole", "--json")[1])
+    edges = whole["content"]["graph"]["edges"]
+    assert [(e["from"], e["to"], e["scope"]) for e in edges] == [  # in the order of the edges' slugs
+        ("income", "mast_km", "mast"),
+        ("region", "y", "program"),
+    ]
+    text = cli("plan", "show", "whole")[1]
+    assert "- income → mast\\_km (only in mast's graph)\n- region → y (every instrument's graph)\n" in text
+    assert "- region → y (every instrument's graph)" in text
+    one = json.loads(cli("plan", "show", "one", "--json")[1])
+    edges = one["content"]["graph"]["edges"]
+    # the mast-only edge is in no graph of a plan for fibre
+    assert [(e["from"], e["to"], e["scope"]) for e in edges] == [("region", "y", "program")]

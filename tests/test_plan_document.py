@@ -30,7 +30,7 @@ def _sealed() -> dict[str, Any]:
             "threats": [{"instrument": "fibre", "code": "DG-E01", "title": "Roads", "condition": "exclusion",
                          "state": "open", "checks": [{"name": "placebo-outcome", "command": "ivdossier falsify placebo"}]}],
             "specs": [{"id": "fibre", "outcome": "y", "treatment": ["x"], "instruments": ["z"], "controls": [],
-                       "absorb": [], "cluster": [], "weights": None, "method": "2sls", "vcov": "robust",
+                       "absorb": [], "cluster": [], "weights": None, "method": "2sls", "vcov": "heteroskedastic",
                        "small_sample": True, "alpha": 0.05}],
             "diagnostics": ["effective F"],
             "decision_rules": default_rules(1),

@@ -57,7 +57,7 @@ def test_draft_collects_question_instruments_specs_and_default_rules(reg: Regist
     assert [sp["id"] for sp in content["specs"]] == ["clerk", "fibre"]
     spec = content["specs"][1]
     assert (spec["outcome"], spec["treatment"], spec["instruments"], spec["controls"], spec["vcov"]) == (
-        "ed_visits", ["video_share"], ["fibre_months"], ["age"], "robust")  # fmt: skip
+        "ed_visits", ["video_share"], ["fibre_months"], ["age"], "heteroskedastic")  # fmt: skip
     assert [r["id"] for r in content["decision_rules"]] == ["strength-gate", "effect-claim"]
     assert content["data"]["expected_n"] == 5000
     with reg.writing() as s:

@@ -100,7 +100,7 @@ def test_duplicate_rule_ids_are_refused() -> None:
 
 def test_compare_lists_every_deviation_from_the_planned_spec_and_sample() -> None:
     spec = {"id": "fibre", "outcome": "y", "treatment": ["x"], "instruments": ["z"], "controls": ["w"],
-            "absorb": [], "cluster": ["g"], "weights": None, "method": "2sls", "vcov": "cluster",
+            "absorb": [], "cluster": ["g"], "weights": None, "method": "2sls", "vcov": "clustered",
             "small_sample": True, "alpha": 0.05}  # fmt: skip
     content = {"specs": [spec], "data": {"expected_n": 600, "dataset_sha256": "a" * 64},
                "decision_rules": plan_rules.default_rules(1)}  # fmt: skip
@@ -109,7 +109,7 @@ def test_compare_lists_every_deviation_from_the_planned_spec_and_sample() -> Non
     off_spec = {
         **results["spec"],
         "controls": ["w", "age"],
-        "vcov": "robust",
+        "vcov": "heteroskedastic",
         "cluster": [],
         "instruments": ["z", "z2"],
     }
@@ -120,7 +120,7 @@ def test_compare_lists_every_deviation_from_the_planned_spec_and_sample() -> Non
     assert got[0].deviations == ()
     assert {(d.kind, d.field, str(d.planned), str(d.actual)) for d in got[1].deviations} == {
         ("controls", "controls", "['w']", "['age', 'w']"),
-        ("vcov", "vcov", "cluster", "robust"),
+        ("vcov", "vcov", "clustered", "heteroskedastic"),
         ("vcov", "cluster", "['g']", "[]"),
         ("instrument set", "instruments", "['z']", "['z', 'z2']"),
         ("sample", "n", "600", "580"),

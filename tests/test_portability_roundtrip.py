@@ -363,11 +363,11 @@ def test_cli_export_import_and_their_mistakes(cli, sqlite_path: str, tmp_path: P
     assert (
         out.startswith("exported 1 comment, 1 covariate, 2 critique, 1 dataset") and "audit events to" in out
     )
-    code, out, _ = cli("import", str(tmp_path / "dump"), "--json")
+    code, out, _ = cli("--as", "ana", "import", str(tmp_path / "dump"), "--json")
     assert code == 0 and json.loads(out)["unchanged"]["instrument"] == 2
-    code, _, err = cli("import", str(tmp_path))
+    code, _, err = cli("--as", "ana", "import", str(tmp_path))
     assert code == 2 and "has no ivdossier export manifest" in err
-    code, _, err = cli("import", str(tmp_path / "dump"), "--on-conflict", "merge")
+    code, _, err = cli("--as", "ana", "import", str(tmp_path / "dump"), "--on-conflict", "merge")
     assert (
         code == 2
         and "--on-conflict 'merge' is not known; use one of: stop, keep-registry, take-import" in err
@@ -379,9 +379,9 @@ def test_cli_dry_run_reports_conflicts_and_writes_nothing(cli, sqlite_path: str,
     build_rich_registry(registry)
     registry.dispose()
     assert cli("export", str(tmp_path / "dump"))[0] == 0
-    assert cli("program", "edit", "tele", "--unit", "patient")[0] == 0
-    assert cli("program", "add", "extra", "--title", "Extra")[0] == 0
-    code, out, _ = cli("import", str(tmp_path / "dump"), "--dry-run")
+    assert cli("--as", "ana", "program", "edit", "tele", "--unit", "patient")[0] == 0
+    assert cli("--as", "ana", "program", "add", "extra", "--title", "Extra")[0] == 0
+    code, out, _ = cli("--as", "ana", "import", str(tmp_path / "dump"), "--dry-run")
     assert code == 0
     lines = out.splitlines()
     assert lines[0] == "would add nothing and 0 audit events"
@@ -389,7 +389,7 @@ def test_cli_dry_run_reports_conflicts_and_writes_nothing(cli, sqlite_path: str,
         lines[-1].startswith("conflict: program 'tele' (")
         and "registry version 2, export version 1" in lines[-1]
     )
-    code, _, err = cli("import", str(tmp_path / "dump"))
+    code, _, err = cli("--as", "ana", "import", str(tmp_path / "dump"))
     assert code == 4 and "import refused, nothing was written: 1 conflicting entity: program 'tele'" in err
     (tmp_path / "notes").mkdir()
     (tmp_path / "notes" / "todo.md").write_text("x")

@@ -132,7 +132,7 @@ def _simulate_power(
         y = beta * x + u
         zc, xc, yc = z - z.mean(), x - x.mean(), y - y.mean()
         fit = fit_kclass(yc, xc, zc, method="2sls", n_partialled=1)
-        spec = CovSpec("cluster", (codes,)) if m > 1 else CovSpec("robust")
+        spec = CovSpec("clustered", (codes,)) if m > 1 else CovSpec("heteroskedastic")
         cov = sandwich(fit.score_regressors, fit.resid, spec, n_partialled=1, bread=fit.bread)
         rejections += abs(fit.beta[0] / math.sqrt(cov[0, 0])) > 1.959964
     return rejections / reps

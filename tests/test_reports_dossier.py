@@ -139,7 +139,7 @@ def test_not_applicable_diagnostics_are_left_out_or_give_their_reason() -> None:
     md = dossier_markdown(dataclasses.replace(sample_input(), runs=(sample_run(1, just),)))
     assert f"#### Over-identification\n\nNot computed: {mt.inline(just.diagnostics.overid.reason)}." in md
     # 2 clusters: each section that cannot be computed says why, and the others are still shown
-    few = sample_result("2sls", vcov="cluster", districts=2)
+    few = sample_result("2sls", vcov="clustered", districts=2)
     suite = few.diagnostics
     assert isinstance(suite, DiagnosticSuite)
     absent = {n: getattr(suite, n) for n in ("weak_iv_robust", "reduced_form")}

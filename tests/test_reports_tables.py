@@ -40,15 +40,18 @@ def test_latex_escape(text: str, expected: str) -> None:
     assert latex_escape(text) == expected
 
 
-def test_latex_table_uses_booktabs_and_one_column_per_run() -> None:
-    tex = runs_table(runs())
+def test_latex_table_uses_booktabs_and_one_column_per_run_named_after_it() -> None:
+    listed = runs()
+    tex = runs_table(listed)
     lines = tex.splitlines()
     assert lines[0] == r"\begin{tabular}{lccc}"
     assert lines.index(r"\toprule") < lines.index(r"\midrule") < lines.index(r"\bottomrule")
     assert r"\hline" not in tex
-    assert lines[2] == r" & (1) & (2) & (3) \\"
-    assert lines[3] == r" & OLS & 2SLS & LIML \\"
+    assert lines[2] == "Run & " + " & ".join(latex_escape(r.slug) for r in listed) + r" \\"
+    assert lines[3] == r"Estimator & OLS & 2SLS & LIML \\"
     assert tex.rstrip().endswith(r"\end{tabular}")
+    # our own layout: no numbered columns, no standard errors in parentheses
+    assert "(1)" not in tex and "parentheses" not in tex
 
 
 def test_latex_table_reports_each_runs_numbers() -> None:
@@ -60,7 +63,12 @@ def test_latex_table_reports_each_runs_numbers() -> None:
         [r.coef_of("telehealth") for r in RESULTS], rel=5e-4
     )  # 4 significant digits
     se_line = tex.splitlines()[tex.splitlines().index(est.group(0)) + 1]
-    assert se_line == " & " + " & ".join(f"({_tex(r.se_of('telehealth'))})" for r in RESULTS) + r" \\"
+    assert se_line == "Standard error & " + " & ".join(_tex(r.se_of("telehealth")) for r in RESULTS) + r" \\"
+    fingerprints = re.search(r"^Data fingerprint & (.*) \\\\$", tex, re.M)
+    assert fingerprints is not None
+    assert [c.strip() for c in fingerprints.group(1).split("&")] == [
+        latex_escape(r.dataset_sha256[:12]) for r in runs()
+    ]
     feff = re.search(r"^Effective F & (.*) \\\\$", tex, re.M)
     assert feff is not None
     suites = [r.diagnostics for r in RESULTS[1:]]
@@ -100,11 +108,16 @@ def test_markdown_table_has_the_same_layout() -> None:
     md = runs_table(runs(), "markdown", caption="Effect | of telehealth")
     assert md.startswith("**Effect \\| of telehealth**")
     rows = [line for line in md.splitlines() if line.startswith("|")]
-    assert rows[0] == "|  | (1) | (2) | (3) |"
-    assert rows[2] == "|  | OLS | 2SLS | LIML |"
+    assert rows[0] == "| Run | " + " | ".join(r.slug for r in runs()) + " |"
+    assert rows[2] == "| Estimator | OLS | 2SLS | LIML |"
     est = next(r for r in rows if r.startswith("| Effect of telehealth"))
     shown = [rv.parse_fmt(c.strip()) for c in est.strip("|").split("|")[1:]]
     assert shown == pytest.approx([r.coef_of("telehealth") for r in RESULTS], rel=5e-4)
+    se = rows[rows.index(est) + 1]
+    assert se.startswith("| Standard error |")
+    shown = [rv.parse_fmt(c.strip()) for c in se.strip("|").split("|")[1:]]
+    assert shown == pytest.approx([r.se_of("telehealth") for r in RESULTS], rel=5e-4)
+    assert "Standard errors in parentheses" not in md and "(1)" not in md
 
 
 def test_rows_empty_in_every_run_are_left_out() -> None:

@@ -40,7 +40,7 @@ def _attach_every_kind(cli, data: Path) -> dict[str, dict]:  # type: ignore[no-u
     out: dict[str, dict] = {}  # type: ignore[type-arg]
     jobs = {
         "estimate": ("estimate", "--data", str(data), *MODEL),
-        "range": ("sensitivity", "range", "--data", str(data), *MODEL, "--gamma-min", "-0.05", "--gamma-max", "0.05"),
+        "range": ("sensitivity", "range", "--data", str(data), *MODEL, "--direct-effect-min", "-0.05", "--direct-effect-max", "0.05"),
         "breakdown": ("sensitivity", "breakdown", "--data", str(data), *MODEL),
         "balance": ("falsify", "balance", "--data", str(data), "--instrument", "z", "--covariate", "w"),
         "compliers": ("compliers", "--data", str(data), "--treatment", "d", "--instrument", "z", "--covariate", "age"),

@@ -172,7 +172,7 @@ def test_few_clusters_are_warned_about_in_the_terminal_and_the_dossier(  # type:
     cli, data_file: Path, tmp_path: Path
 ) -> None:
     _setup(cli)
-    slug = _estimate(cli, data_file, "--instrument", "z", "--cluster", "g", "--vcov", "cluster")
+    slug = _estimate(cli, data_file, "--instrument", "z", "--cluster", "g", "--vcov", "clustered")
     groups = pd.read_csv(data_file)["g"].nunique()  # 20 clusters, counted by pandas
     code, _, err = cli("run", "show", slug)
     assert code == 0
@@ -254,3 +254,42 @@ def test_the_registry_itself_refuses_a_second_primary_run_for_one_instrument(tmp
             assert [r.slug for r in s.exec(select(Run).where(Run.is_primary == True))] == ["zz-estimate-2"]  # noqa: E712
     finally:
         registry.dispose()
+
+
+def test_clearing_the_primary_mark_is_audited_and_the_dossier_follows_the_latest_run_again(  # type: ignore[no-untyped-def]
+    cli, data_file: Path, tmp_path: Path
+) -> None:
+    _setup(cli)
+    code, _, err = cli("run", "clear-primary", "zz")
+    assert code == 2 and "instrument 'zz' has no primary run, so there is no mark to clear" in err
+    first = _estimate(cli, data_file, "--instrument", "z")
+    latest = _estimate(cli, data_file, "--instrument", "z_weak")
+    assert cli("run", "primary", first)[0] == 0
+    code, out, err = cli("run", "clear-primary", "zz", "--reason", "the plan changed")
+    assert code == 0, err
+    assert out == f"{first} is no longer the primary run of zz; its dossier follows the latest run.\n"
+    runs = json.loads(cli("run", "list", "zz", "--json")[1])
+    assert [r["run"] for r in runs if r["primary"]] == []
+    events = json.loads(cli("history", first, "--json")[1])
+    assert [e["action"] for e in events] == ["create", "mark-primary", "unmark-primary"]
+    assert events[-1]["reason"] == "the plan changed" and events[-1]["actor"] == "tester"
+    out_md = tmp_path / "d.md"
+    assert cli("dossier", "zz", "--out", str(out_md))[0] == 0
+    text = out_md.read_text(encoding="utf-8")
+    assert f"Latest run **{latest}**" in text and "No run is marked primary" in text
+
+
+def test_estimate_warns_about_few_clusters_whether_or_not_the_run_is_attached(  # type: ignore[no-untyped-def]
+    cli, data_file: Path
+) -> None:
+    _setup(cli)
+    groups = pd.read_csv(data_file)["g"].nunique()  # 20 clusters, counted by pandas
+    base = ("estimate", "--data", str(data_file), "--outcome", "y", "--treatment", "d", "--instrument", "z")
+    clustered = ("--cluster", "g", "--vcov", "clustered")
+    for extra in ((), ("--attach", "zz"), ("--attach", "zz", "--json")):
+        code, _, err = cli(*base, *clustered, *extra)
+        assert code == 0, err
+        assert f"warning: few clusters: {groups} (fewer than 42)" in err, extra
+        assert f"the t reference has only {groups - 1} degrees of freedom" in err, extra
+    code, _, err = cli(*base, "--attach", "zz")  # heteroskedasticity-robust: no cluster warning
+    assert code == 0 and "few clusters" not in err

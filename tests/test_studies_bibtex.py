@@ -177,7 +177,12 @@ def test_reported_statistics_attachments_and_critiques(reg: Registry) -> None:
         nak = studies.study_dict(s, s.exec(select(Study).where(Study.key == "Nakamura2019")).one())
         in_scope = [st.key for st in studies.list_studies(s, instrument="fibre")]
         inputs = study_work.audit_inputs(s, family="distance-geography")
-    assert nak["reported"] == {"estimate": -0.4, "std_error": 0.1, "first_stage_f": 12.5, "f_kind": "cluster"}
+    assert nak["reported"] == {
+        "estimate": -0.4,
+        "std_error": 0.1,
+        "first_stage_f": 12.5,
+        "f_kind": "clustered",
+    }
     assert nak["instruments"] == ["fibre"]
     assert nak["citation"] == "Nakamura et al. (2019)"
     assert nak["critiques"] == [
@@ -241,7 +246,7 @@ def test_csv_of_many_studies_is_all_or_nothing_with_the_line(reg: Registry) -> N
         "std_error": 0.1,
         "first_stage_f": 25.0,
         "n": 1000,
-        "f_kind": "robust",
+        "f_kind": "heteroskedastic",
     }
     assert a.instruments == ["fibre"]
     with pytest.raises(InvalidInputError, match=r"CSV column\(s\) 'beta' are not known"), reg.writing() as s:

@@ -21,7 +21,7 @@ def _setup(cli) -> None:  # type: ignore[no-untyped-def]
 
 def test_import_report_attach_critique_and_show(cli) -> None:  # type: ignore[no-untyped-def]
     _setup(cli)
-    code, out, err = cli("study", "report", "Nakamura2019", "--estimate", "-0.40", "--se", "0.12",
+    code, out, err = cli("study", "report", "Nakamura2019", "--estimate", "-0.40", "--std-error", "0.12",
                          "--first-stage-f", "11", "--f-kind", "cluster", "--clusters", "60",
                          "--fs-coef", "0.30", "--fs-se", "0.09", "--rf-coef", "-0.12", "--rf-se", "0.04")  # fmt: skip
     assert code == 0, err
@@ -59,7 +59,7 @@ def test_bad_options_name_the_field(cli) -> None:  # type: ignore[no-untyped-def
     _setup(cli)
     code, _, err = cli("study", "report", "Okafor2021", "--f-kind", "hc3")
     assert code == 2
-    assert "f_kind 'hc3' is not known; use one of unadjusted, robust" in err
+    assert "f_kind 'hc3' is not known; use one of homoskedastic, heteroskedastic, clustered" in err
     code, _, err = cli("study", "report", "Okafr2021", "--estimate", "1")
     assert code == 3 and "Did you mean 'Okafor2021'?" in err
     code, _, err = cli("study", "critique", "Okafor2021", "--threat", "DG-E99")
@@ -88,11 +88,24 @@ def test_audit_json_and_documents(cli, tmp_path: Path) -> None:  # type: ignore[
     _setup(cli)
     # t = 3.4 with F = 10: significant with 1.96 but not with the tF value 3.43 (Lee et al. 2022, abstract)
     assert (
-        cli("study", "report", "Nakamura2019", "--estimate", "3.4", "--se", "1", "--first-stage-f", "10")[0]
+        cli(
+            "study",
+            "report",
+            "Nakamura2019",
+            "--estimate",
+            "3.4",
+            "--std-error",
+            "1",
+            "--first-stage-f",
+            "10",
+        )[0]
         == 0
     )
     assert (
-        cli("study", "report", "Garcia2024", "--estimate", "5", "--se", "1", "--first-stage-f", "200")[0] == 0
+        cli("study", "report", "Garcia2024", "--estimate", "5", "--std-error", "1", "--first-stage-f", "200")[
+            0
+        ]
+        == 0
     )
     for key in ("Nakamura2019", "Garcia2024"):
         assert cli("study", "attach", key, "--instrument", "fibre")[0] == 0
@@ -116,3 +129,20 @@ def test_audit_json_and_documents(cli, tmp_path: Path) -> None:  # type: ignore[
     code, out, _ = cli("audit", "--study", "Nakamura2019", "--out", str(html))
     assert code == 0 and out.splitlines()[0] == "audit of study Nakamura2019: 1 studies, 1 with statistics"
     assert "<script" not in html.read_text("utf-8")
+
+
+def test_the_standard_error_has_one_name_and_the_old_option_still_works_for_one_release(cli) -> None:  # type: ignore[no-untyped-def]
+    _setup(cli)
+    code, out, err = cli(
+        "study", "report", "Nakamura2019", "--estimate", "-0.4", "--std-error", "0.12", "--json"
+    )
+    assert code == 0 and err == "" and json.loads(out)["std_error"] == 0.12
+    code, out, err = cli("study", "report", "Okafor2021", "--estimate", "0.2", "--se", "0.05", "--json")
+    assert code == 0 and json.loads(out)["std_error"] == 0.05
+    assert err == "warning: --se is deprecated and will be removed in the next release; use --std-error.\n"
+    code, _, err = cli("study", "report", "Doe2023", "--std-error", "1", "--se", "2")
+    assert code == 2 and err == "error: give --std-error only; --se is its deprecated old spelling.\n"
+    code, _, err = cli("study", "report", "Doe2023", "--std-error", "-1")
+    assert code == 2 and "std_error must be positive, got -1.0" in err
+    _, help_text, _ = cli("study", "report", "--help")
+    assert "--std-error" in help_text and "--se " not in help_text

@@ -88,7 +88,7 @@ def test_comments_on_any_entity_are_listed_oldest_first_and_audited(cli, sqlite_
     _team_registry(sqlite_path)
     assert cli("--as", "ben", "comment", "add", "fibre--t-b", "Clerks rotate weekly <b>not</b> daily")[0] == 0
     assert cli("--as", "cai", "comment", "add", "fibre--t-b", "Agreed; see the roster.")[0] == 0
-    assert cli("comment", "add", "T-A", "catalogue wording is vague")[0] == 0
+    assert cli("--as", "ana", "comment", "add", "T-A", "catalogue wording is vague")[0] == 0
     _code, out, _ = cli("comment", "list", "fibre--t-b", "--json")
     rows = json.loads(out)
     assert [(r["author"], r["body"]) for r in rows] == [
@@ -104,9 +104,9 @@ def test_comments_on_any_entity_are_listed_oldest_first_and_audited(cli, sqlite_
 
 def test_comment_mistakes_are_clear_errors(cli, sqlite_path) -> None:  # type: ignore[no-untyped-def]
     _team_registry(sqlite_path)
-    code, _, err = cli("comment", "add", "nothing-here", "text")
+    code, _, err = cli("--as", "ana", "comment", "add", "nothing-here", "text")
     assert code == 3 and "nothing in this registry is named 'nothing-here'" in err
-    code, _, err = cli("comment", "add", "fibre", "   ")
+    code, _, err = cli("--as", "ana", "comment", "add", "fibre", "   ")
     assert code == 2 and "a comment needs text" in err
     registry = open_registry(sqlite_path)
     try:

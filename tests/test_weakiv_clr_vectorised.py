@@ -22,7 +22,7 @@ def _moments(kind: str) -> ri._Moments:
 
 def test_vectorised_statistics_equal_the_scalar_ones() -> None:
     thetas = np.linspace(-np.pi / 2, np.pi / 2, 41)
-    m = _moments("robust")
+    m = _moments("heteroskedastic")
     lr, r = ri._clr_stats_robust_many(m, thetas)
     for i, t in enumerate(thetas):
         assert (lr[i], r[i]) == pytest.approx(ri._clr_stats_robust(m, float(t)), rel=1e-10, abs=1e-12)

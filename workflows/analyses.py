@@ -291,7 +291,15 @@ def _sensitivity_range(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) 
     from ivdossier.estimation.sensitivity import union_of_intervals
 
     kw = _model(spec, "sensitivity range", "outcome", "treatment", "instruments")
-    return union_of_intervals(frame, gamma_min=_one(o["gamma_min"]), gamma_max=_one(o["gamma_max"]), **kw), {}
+    low, high = _direct_effect_range(o)
+    return union_of_intervals(frame, gamma_min=low, gamma_max=high, **kw), {}
+
+
+def _direct_effect_range(o: Options) -> tuple[Any, Any]:
+    """The assumed range of the direct effect (runs stored before the rename keep gamma_min / gamma_max)."""
+    low = o["direct_effect_min"] if "direct_effect_min" in o else o["gamma_min"]
+    high = o["direct_effect_max"] if "direct_effect_max" in o else o["gamma_max"]
+    return _one(low), _one(high)
 
 
 def _sensitivity_prior(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Computed:
@@ -434,12 +442,9 @@ def _per_instrument_scan(path: str, spec: ModelSpec | None, o: Options, settings
 def _range_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
     from ivdossier.estimation.source_analyses import union_of_intervals_source
 
+    low, high = _direct_effect_range(o)
     return union_of_intervals_source(
-        path,
-        _need(spec, "sensitivity range"),
-        gamma_min=_one(o["gamma_min"]),
-        gamma_max=_one(o["gamma_max"]),
-        settings=settings,
+        path, _need(spec, "sensitivity range"), gamma_min=low, gamma_max=high, settings=settings
     )
 
 

@@ -110,7 +110,7 @@ PRIOR_STUDY_STATS: tuple[tuple[str, dict[str, Any]], ...] = (
             "estimate": -0.42,
             "std_error": 0.17,
             "first_stage_f": 11.5,
-            "f_kind": "robust",
+            "f_kind": "heteroskedastic",
             "n": 4200,
             "first_stage_coef": 0.011,
             "first_stage_se": 0.0032,
@@ -124,7 +124,7 @@ PRIOR_STUDY_STATS: tuple[tuple[str, dict[str, Any]], ...] = (
             "estimate": -0.8,
             "std_error": 0.21,
             "first_stage_f": 48.0,
-            "f_kind": "cluster",
+            "f_kind": "clustered",
             "n": 9100,
             "n_clusters": 140,
         },
@@ -411,7 +411,7 @@ def _estimate(registry: Any, csv_path: Path, actor: str) -> list[str]:
             controls=CONTROLS,
             cluster="district",
             method=method,
-            vcov="cluster",
+            vcov="clustered",
         )
         run = estimate_file(csv_path, spec)
         with registry.writing() as s:
@@ -427,7 +427,7 @@ def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
 
     def spec(instruments: list[str], **roles: Any) -> ModelSpec:
         adjust: dict[str, Any] = {"controls": CONTROLS, **roles}
-        return ModelSpec.build(instruments=instruments, cluster="district", vcov="cluster", **adjust)
+        return ModelSpec.build(instruments=instruments, cluster="district", vcov="clustered", **adjust)
 
     model = {"outcome": "ed_visits", "treatment": "telehealth"}
     jobs: list[tuple[str, str, ModelSpec, dict[str, Any]]] = []
@@ -447,7 +447,7 @@ def _checks(registry: Any, csv_path: Path, actor: str) -> list[str]:
     jobs.append(("clerk-video-rate", "falsify first-stage-signs", signs, {"by": "age"}))
     jobs.append(("fibre-wave", "sensitivity breakdown", spec(["fibre_months"], **model), {}))
     # The team allows the fibre schedule a direct effect of up to 0.003 visits per month either way.
-    direct = {"gamma_min": [-0.003], "gamma_max": [0.003]}
+    direct = {"direct_effect_min": [-0.003], "direct_effect_max": [0.003]}
     jobs.append(("fibre-wave", "sensitivity range", spec(["fibre_months"], **model), direct))
     slugs = []
     for instrument, name, model_spec, options in jobs:

@@ -34,7 +34,7 @@ def run_demo_fragility(
     few_district_subsample(frame).to_csv(path, index=False)
     spec = ModelSpec.build(
         outcome="ed_visits", treatment="telehealth", instruments=["fibre_months"], controls=CONTROLS,
-        cluster="district", vcov="cluster",
+        cluster="district", vcov="clustered",
     )  # fmt: skip
     jobs: list[tuple[str, dict[str, Any]]] = [
         ("fragility influence", {"null": 0.0}),

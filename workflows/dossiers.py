@@ -172,6 +172,31 @@ def _ratings(session: Session, link_id: int | None) -> tuple[ri.Rating, ...]:
     )
 
 
+SPEC_ORDER: tuple[str, ...] = (
+    "data",
+    "outcome",
+    "treatment",
+    "instruments",
+    "controls",
+    "absorb",
+    "cluster",
+    "weights",
+    "method",
+    "vcov",
+    "small_sample",
+    "alpha",
+    "fuller_alpha",
+)
+"""The order a run's spec is shown in: the model spec's own order (its echo), then an analysis's options by name."""
+
+
+def canonical_spec_order(spec: Mapping[str, Any]) -> dict[str, Any]:
+    """A stored spec in one order whatever order it was stored in (an exported and imported run stores its keys
+    sorted), so a dossier reads the same in every registry that holds the run."""
+    known = [k for k in SPEC_ORDER if k in spec]
+    return {k: spec[k] for k in [*known, *sorted(k for k in spec if k not in SPEC_ORDER)]}
+
+
 def run_info(session: Session, run: Run) -> ri.RunInfo:
     """A stored run as the reports layer reads it, with its plot summaries, primary mark and inference warnings."""
     from ivdossier.workflows.run_records import warnings_of
@@ -186,7 +211,7 @@ def run_info(session: Session, run: Run) -> ri.RunInfo:
         created_at=run.created_at,
         method=str(results.get("method", (run.spec or {}).get("method", ""))),
         vcov=str(results.get("vcov", (run.spec or {}).get("vcov", ""))),
-        spec=run.spec or {},
+        spec=canonical_spec_order(run.spec or {}),
         dataset_path=dataset.path if dataset else "",
         dataset_sha256=dataset.sha256 if dataset else "",
         results={k: v for k, v in results.items() if k != "plot_data"},
@@ -316,7 +341,7 @@ def _assemble(
         ri.AuditEvent(
             when=e.at,
             actor=e.actor,
-            action=e.action,
+            action=plain_action(e.action),
             entity=e.entity_label,
             summary=e.reason or ", ".join(sorted((e.after or {}).keys()))[:200],
         )
@@ -421,3 +446,12 @@ def write_site(
         for t in registry_catalog(session)
     ]
     return build_site(out, infos, dossiers, entries)
+
+
+def plain_action(action: str) -> str:
+    """An audit action without the mark an import puts on another registry's events: a dossier tells what was done
+    to the instrument, and reads the same in every registry holding the same history (`ivdossier history` keeps
+    the mark)."""
+    from ivdossier.registry.portability import IMPORTED_PREFIX
+
+    return action.removeprefix(IMPORTED_PREFIX)

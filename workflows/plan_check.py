@@ -388,9 +388,16 @@ def _norm_field(name: str, value: Any) -> Any:
             return []
         items = [value] if isinstance(value, str) else list(value)
         return sorted(str(v) for v in items if v not in ("", None))
+    if name == "vcov" and value in OLD_COV_WORDS:  # plans and runs stored with the old words compare equal
+        return OLD_COV_WORDS[value]
     if isinstance(value, float) and value.is_integer():
         return int(value)
     return value
+
+
+OLD_COV_WORDS = {"unadjusted": "homoskedastic", "robust": "heteroskedastic", "cluster": "clustered"}
+"""The covariance words before they were renamed (kept here so comparing plans loads no numerics; a test keeps
+it equal to ``estimation.covariance.OLD_COV_NAMES``)."""
 
 
 def _match_spec(specs: Sequence[Mapping[str, Any]], run_spec: Mapping[str, Any]) -> Mapping[str, Any] | None:

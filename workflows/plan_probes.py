@@ -49,7 +49,7 @@ def _compute(name: str, frame: Any, spec: Any, options: dict[str, Any]) -> dict[
 
 
 def _bootstrap() -> list[dict[str, Any]]:
-    clustered = _one(cluster="g", vcov="cluster")
+    clustered = _one(cluster="g", vcov="clustered")
     return [
         _compute("fragility bootstrap", _frame(120, 10, 1), clustered, {"draws": 99, "pairs_draws": 19}),
         _compute("fragility bootstrap", _frame(120, 10, 2), clustered, {"draws": 99}),  # no pairs bootstrap
@@ -59,9 +59,9 @@ def _bootstrap() -> list[dict[str, Any]]:
 
 def _influence() -> list[dict[str, Any]]:
     return [
-        _compute("fragility influence", _frame(120, 10, 4), _one(cluster="g", vcov="cluster"), {}),
+        _compute("fragility influence", _frame(120, 10, 4), _one(cluster="g", vcov="clustered"), {}),
         _compute(
-            "fragility influence", _frame(60, 2, 5), _one(cluster="g", vcov="cluster"), {}
+            "fragility influence", _frame(60, 2, 5), _one(cluster="g", vcov="clustered"), {}
         ),  # 2 clusters
     ]
 
@@ -69,7 +69,7 @@ def _influence() -> list[dict[str, Any]]:
 def _subvector() -> list[dict[str, Any]]:
     spec = _one(treatment=[PROBE_TREATMENT, PROBE_TREATMENT_2], instruments=list(PROBE_INSTRUMENTS))
     homoskedastic = _one(treatment=[PROBE_TREATMENT, PROBE_TREATMENT_2], instruments=list(PROBE_INSTRUMENTS),
-                         vcov="unadjusted")  # fmt: skip
+                         vcov="homoskedastic")  # fmt: skip
     return [
         _compute("fragility subvector", _frame(150, 10, 6), spec, {"of": PROBE_TREATMENT}),
         _compute("fragility subvector", _frame(150, 10, 7), homoskedastic, {"of": PROBE_TREATMENT}),

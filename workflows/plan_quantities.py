@@ -130,7 +130,7 @@ def probe_results() -> list[dict[str, Any]]:
         frame, outcome="y", treatment=_PROBE_TREATMENT, instruments=_PROBE_INSTRUMENTS[0], controls="w"
     )
     two = estimate(frame, outcome="y", treatment=_PROBE_TREATMENT, instruments=list(_PROBE_INSTRUMENTS),
-                   controls="w", cluster="g", vcov="cluster")  # fmt: skip
+                   controls="w", cluster="g", vcov="clustered")  # fmt: skip
     three = estimate(frame, outcome="y", treatment=[_PROBE_TREATMENT, _PROBE_TREATMENT_2],
                      instruments=[*_PROBE_INSTRUMENTS, _PROBE_INSTRUMENT_3], weights="wt", method="liml")  # fmt: skip
     return [one.to_dict(), two.to_dict(), three.to_dict()]

@@ -91,9 +91,11 @@ def draft_content(
 
     Each instrument carries its verdicts as the verdict engine derives them at drafting time, so the sealed plan
     records how the argument stood when the plan was written."""
-    cov = vcov or ("cluster" if cluster else "robust")
-    if cov == "cluster" and not cluster:
-        raise InvalidInputError("vcov 'cluster' needs --cluster COLUMN; name the clustering column.")
+    from ivdossier.estimation.covariance import cov_name
+
+    cov = cov_name(vcov) if vcov else ("clustered" if cluster else "heteroskedastic")
+    if cov == "clustered" and not cluster:
+        raise InvalidInputError("vcov 'clustered' needs --cluster COLUMN; name the clustering column.")
     specs = []
     for inst in instruments:
         cols = _names(inst.columns)
@@ -152,7 +154,7 @@ def draft_content(
         "graph": {
             "roles": {"instrument": "Z", "treatment": program.treatment, "outcome": program.outcome},
             "covariates": [{"name": c.name, "measured": c.measured} for c in covs],
-            "edges": [{"from": e.source, "to": e.target, "note": e.note} for e in edges],
+            "edges": _edge_rows(edges, instruments),
         },
         "threats": [row for inst in instruments for row in _threat_rows(session, inst)],
         "specs": specs,
@@ -161,6 +163,21 @@ def draft_content(
         "power": None if power is None else dict(power),
         "deviations": DEVIATIONS_TEXT,
     }
+
+
+def _edge_rows(edges: Any, instruments: Sequence[Instrument]) -> list[dict[str, Any]]:
+    """The team's edges with their scope: "program" (every instrument's graph) or the one instrument they belong to.
+
+    Edges scoped to an instrument the plan does not cover are left out: they are in no graph the plan describes.
+    """
+    slugs = {i.id: i.slug for i in instruments}
+    rows = []
+    for e in edges:
+        if e.instrument_id is not None and e.instrument_id not in slugs:
+            continue
+        scope = "program" if e.instrument_id is None else slugs[e.instrument_id]
+        rows.append({"from": e.source, "to": e.target, "scope": scope, "note": e.note})
+    return rows
 
 
 def draft_plan(

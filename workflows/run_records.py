@@ -148,6 +148,13 @@ def mark_primary(session: Session, *, actor: str, run: str, reason: str = "") ->
     return summarise(session, _mark_primary(session, actor=actor, run=run, reason=reason))
 
 
+def clear_primary(session: Session, *, actor: str, instrument: str, reason: str = "") -> RunSummary:
+    """Clear the primary mark of an instrument's primary run (audited); its dossier then follows the latest run."""
+    from ivdossier.registry.runs import clear_primary as _clear_primary
+
+    return summarise(session, _clear_primary(session, actor=actor, instrument=instrument, reason=reason))
+
+
 def result_summary(run: Run) -> tuple[tuple[str, str], ...]:
     """A few labelled key results of a stored run, whatever its kind (the full results stay in --json)."""
     from ivdossier.estimation.result import EstimationResult

@@ -41,7 +41,7 @@ def sample_result(
     method: str = "2sls",
     *,
     instruments: tuple[str, ...] = ("fibre_wave", "clerk_propensity"),
-    vcov: str = "robust",
+    vcov: str = "heteroskedastic",
     n: int = 400,
     seed: int = 7,
     strength: float = 0.6,
@@ -55,7 +55,7 @@ def sample_result(
         outcome="ed_visits",
         treatment="telehealth",
         instruments=() if method == "ols" else instruments,
-        cluster="district" if vcov == "cluster" else None,
+        cluster="district" if vcov in ("clustered", "cluster") else None,
         method=method,
         vcov=vcov,
     )
