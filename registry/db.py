@@ -23,7 +23,7 @@ DEFAULT_PATH = "ivdossier.sqlite"
 ENV_DB = "IVDOSSIER_DB"
 SQLITE_BUSY_TIMEOUT_MS = 30_000
 # Keep in step with the newest file in migrations/versions (a test checks this).
-SCHEMA_HEAD = "0005"
+SCHEMA_HEAD = "0006"
 # PostgreSQL SQLSTATEs after which the whole transaction may simply be run again.
 TRANSIENT_SQLSTATES = {"40001", "40P01"}  # serialization failure, deadlock detected
 

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import statistics
+import uuid
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from typing import Any
 
 from sqlmodel import Session, select
@@ -23,6 +25,20 @@ from ivdossier.registry.models import (
     Rating,
     Threat,
 )
+
+#: Namespace of built-in catalogue identities: every registry derives the same UUID from an entry's code, so an
+#: export from any registry names the built-in threats as any other registry does.
+BUILTIN_NAMESPACE = uuid.UUID("d83e9d89-a6e5-4a1a-8aee-3b2bef0888a9")
+
+#: The one timestamp every registry gives a built-in entry (created or refreshed by a catalogue release): the
+#: entries' content is the same everywhere, so their bookkeeping is too.
+BUILTIN_STAMP = datetime(2026, 12, 1, tzinfo=UTC)
+
+
+def builtin_uuid(code: str) -> str:
+    """The identity of the built-in catalogue entry ``code``, the same on every registry."""
+    return str(uuid.uuid5(BUILTIN_NAMESPACE, code.upper()))
+
 
 THREAT_FIELDS = (
     "title",
@@ -73,7 +89,15 @@ def sync_catalog(
         values = _values(entry)
         current = existing.get(code)
         if current is None:
-            threat = Threat(code=code, origin="builtin", catalog_version=version, **values)
+            threat = Threat(
+                code=code,
+                uuid=builtin_uuid(code),
+                created_at=BUILTIN_STAMP,
+                updated_at=BUILTIN_STAMP,
+                origin="builtin",
+                catalog_version=version,
+                **values,
+            )
             records.create(session, threat, actor=actor, reason=f"built-in catalogue {version}")
             existing[code] = threat
             changed += 1
@@ -86,6 +110,7 @@ def sync_catalog(
                 action="catalog-upgrade",
                 reason=f"built-in catalogue {current.catalog_version} -> {version}",
             )
+            _stamp(session, current)
             changed += 1
     for old_code, new_code in sorted((retired or {}).items()):
         old = existing.get(old_code)
@@ -101,8 +126,16 @@ def sync_catalog(
             action="catalog-retire",
             reason=f"built-in catalogue {version}: {old_code} was merged into or replaced by {new_code}",
         )
+        _stamp(session, old)
         changed += 1
     return changed
+
+
+def _stamp(session: Session, threat: Threat) -> None:
+    """Give a built-in entry the catalogue's timestamp after an edit (which stamped it with the clock)."""
+    threat.updated_at = BUILTIN_STAMP
+    session.add(threat)
+    session.flush()
 
 
 def carry_to_successor(session: Session, old: Threat, new: Threat, *, actor: str, version: str) -> int:

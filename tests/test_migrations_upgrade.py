@@ -4,7 +4,10 @@ built with tests/test_portability_roundtrip.py::build_rich_registry at schema 00
 checkpointed, switched to journal_mode=DELETE and vacuumed with page_size=1024 so it is one small file;
 registry-0002 was built the same way at schema 0002 (its team edge age -> Y predates edge scopes), and
 registry-0003 the same way at schema 0003 (edge scopes, before primary runs), and registry-0004 the same way at
-schema 0004 (primary runs, before studies kept a per-variant table)."""
+schema 0004 (primary runs, before studies kept a per-variant table), and registry-0005 the same way at
+schema 0005 (per-variant tables, before built-in threats had identities derived from their codes), with the
+built-in catalogue loaded first (workflows.catalog_sync.sync_on_open), so it holds built-in entries with random
+identities."""
 
 from __future__ import annotations
 
@@ -143,3 +146,57 @@ def test_a_schema_0004_registry_gets_an_empty_variant_table_per_study_and_takes_
             assert records.get(s, Study, "smith2020").variant_table == table
     finally:
         registry.dispose()
+
+
+def test_a_schema_0005_registry_gives_built_in_threats_the_identity_derived_from_their_code(
+    tmp_path: Path,
+) -> None:
+    from sqlmodel import select
+
+    from ivdossier.registry.models import AuditEvent, Link, Threat
+    from ivdossier.registry.threats import builtin_uuid
+
+    copy = tmp_path / "old.sqlite"
+    shutil.copyfile(FIXTURES / "registry-0005.sqlite", copy)
+    raw = create_engine(f"sqlite:///{copy}")
+    with raw.connect() as con:  # before: random identities, each with its audit events
+        old = {
+            code: (uuid, con.exec_driver_sql("SELECT count(*) FROM audit_event WHERE entity_uuid = ?", (uuid,))
+                   .scalar_one())
+            for code, uuid, in con.exec_driver_sql("SELECT code, uuid FROM threat WHERE origin = 'builtin'")
+        }  # fmt: skip
+        team = dict(con.exec_driver_sql("SELECT code, uuid FROM threat WHERE origin = 'team'").fetchall())
+    raw.dispose()
+    assert old and team and all(uuid != builtin_uuid(code) for code, (uuid, _) in old.items())
+    registry = open_registry(str(copy))
+    try:
+        with registry.reading() as s:
+            threats = {t.code: t for t in s.exec(select(Threat))}
+            for code, (_, events) in old.items():
+                new = threats[code].uuid
+                assert new == builtin_uuid(code)  # uuid5 of the code in the project's namespace
+                trail = s.exec(select(AuditEvent).where(AuditEvent.entity_uuid == new)).all()
+                assert len(trail) >= events  # the old trail follows (a catalogue refresh may add events)
+            assert {code: threats[code].uuid for code in team} == team  # team entries keep theirs
+            links = s.exec(select(Link)).all()
+            assert links and all(s.get(Threat, link.threat_id) is not None for link in links)
+    finally:
+        registry.dispose()
+
+
+def test_two_new_registries_give_every_built_in_threat_the_same_file_in_their_exports(tmp_path: Path) -> None:
+    from ivdossier.workflows.catalog_sync import sync_on_open
+
+    exports = []
+    for name in ("a", "b"):
+        registry = open_registry(str(tmp_path / f"{name}.sqlite"))
+        try:
+            sync_on_open(registry)  # what `init` does: load the built-in catalogue
+            with registry.reading() as s:
+                export_registry(s, tmp_path / f"export-{name}")
+        finally:
+            registry.dispose()
+        exports.append(
+            {p.name: p.read_bytes() for p in sorted((tmp_path / f"export-{name}" / "threat").glob("*.json"))}
+        )
+    assert exports[0] and exports[0] == exports[1]
