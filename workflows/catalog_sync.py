@@ -7,11 +7,13 @@ audit event. The check that decides whether anything is due is one small query, 
 
 from __future__ import annotations
 
+from typing import Any
+
 from sqlmodel import Session, func, select
 
 from ivdossier.registry.db import Registry
 from ivdossier.registry.models import Threat
-from ivdossier.registry.threats import sync_catalog
+from ivdossier.registry.threats import THREAT_FIELDS, sync_catalog
 
 #: Who the audit trail names for catalogue refreshes and carry-overs made when a registry is opened: the tool,
 #: not the person whose command happened to open the registry first.
@@ -50,3 +52,26 @@ def sync_on_open(registry: Registry, *, actor: str = CATALOG_ACTOR) -> int:
             return 0
     with registry.writing() as session:
         return ensure_builtin(session, actor=actor)
+
+
+def catalog_entry(row: Threat) -> Any:
+    """The registry's copy of a threat as a validated catalogue entry (with its graph fragment)."""
+    from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
+
+    data = {f: getattr(row, f) for f in THREAT_FIELDS}
+    data["code"] = row.code
+    for f in ("families", "checks", "mitigations", "references"):
+        data[f] = data[f] or []
+    data["fragment"] = data["fragment"] or {"nodes": [], "edges": []}
+    return CatalogThreat.from_dict(data, source=f"registry threat {row.code}")
+
+
+def registry_catalog(session: Session) -> Any:
+    """The catalogue as this registry sees it: built-in entries followed by the team's own."""
+    from ivdossier.threats_catalog.catalog import load_builtin, merge
+
+    team = [
+        catalog_entry(t)
+        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
+    ]
+    return merge(load_builtin(), team)
