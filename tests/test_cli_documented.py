@@ -101,7 +101,17 @@ def test_the_command_word_is_found_after_the_root_options() -> None:
 
 # Modules no registry listing or show may import: numerics, statistics, plotting, the estimation layer (and the
 # graph library, except for `graph show`, which builds each instrument's graph to list the edges it leaves out).
-FORBIDDEN = ("numpy", "pandas", "scipy", "statsmodels", "matplotlib", "ivdossier.estimation", "networkx")
+# On a SQLite registry SQLAlchemy's PostgreSQL dialect stays unloaded too.
+FORBIDDEN = (
+    "numpy",
+    "pandas",
+    "scipy",
+    "statsmodels",
+    "matplotlib",
+    "ivdossier.estimation",
+    "networkx",
+    "sqlalchemy.dialects.postgresql",
+)
 READ_COMMANDS = (
     ("program", "list"),
     ("program", "show", "telehealth-ed"),
