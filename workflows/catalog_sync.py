@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlmodel import Session, func, select
+from sqlmodel import Session, case, func, select
 
 from ivdossier.registry.db import Registry
 from ivdossier.registry.models import Threat
@@ -24,10 +24,10 @@ def catalog_is_current(session: Session) -> bool:
     """True when every built-in row carries the shipped catalogue version (and there is at least one)."""
     from ivdossier.threats_catalog.catalog import CATALOGUE_VERSION
 
-    builtin = select(func.count()).select_from(Threat).where(Threat.origin == "builtin")
-    total = session.exec(builtin).one()
-    stale = session.exec(builtin.where(Threat.catalog_version != CATALOGUE_VERSION)).one()
-    return bool(total) and not stale
+    stale = case((Threat.catalog_version != CATALOGUE_VERSION, 1), else_=0)
+    query = select(func.count(), func.coalesce(func.sum(stale), 0)).where(Threat.origin == "builtin")
+    total, outdated = session.exec(query).one()  # one query: this runs whenever a command opens the registry
+    return bool(total) and not outdated
 
 
 def ensure_builtin(session: Session, *, actor: str) -> int:
