@@ -4,8 +4,7 @@ that rests on few clusters or on a t reference with few degrees of freedom."""
 from __future__ import annotations
 
 import math
-import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -17,43 +16,8 @@ from ivdossier.registry.models import Dataset, Instrument, Run
 from ivdossier.registry.runs import mark_primary as _mark_primary
 from ivdossier.registry.runs import runs_in_context
 from ivdossier.workflows.evidence_runs import FALSIFICATION_KINDS, _fmt, _num
+from ivdossier.workflows.run_warnings import inference_warnings, run_warnings  # noqa: F401  (also read from here)
 from ivdossier.workflows.runs import LEGACY_NOTE
-
-FEW_CLUSTERS = 42
-"""Below this many clusters, cluster-robust inference can over-reject (common practice; a rule of thumb, not a
-theorem: with few or unbalanced clusters a wild cluster bootstrap is the usual remedy)."""
-FEW_T_DF = 30
-"""Below this many degrees of freedom the t reference is far from normal and the interval leans on the error
-distribution (common practice)."""
-_T_DF = re.compile(r"t quantiles with (\d+) degrees of freedom")
-
-
-def inference_warnings(n_clusters: Sequence[int], ref_df: float | None) -> tuple[str, ...]:
-    """Warnings about a run's inference: few clusters (G < 42) or a t reference with few degrees of freedom."""
-    out = []
-    if n_clusters and min(n_clusters) < FEW_CLUSTERS:
-        out.append(
-            f"few clusters: {min(n_clusters)} (fewer than {FEW_CLUSTERS}); cluster-robust standard errors can be "
-            "too small with few clusters, so confirm the inference with a wild cluster bootstrap or "
-            "randomization inference"
-        )
-    if ref_df is not None and ref_df < FEW_T_DF:
-        out.append(
-            f"the t reference has only {int(ref_df)} degrees of freedom (fewer than {FEW_T_DF}); intervals and "
-            "p-values lean on that small-sample reference"
-        )
-    return tuple(out)
-
-
-def run_warnings(results: Mapping[str, Any] | None) -> tuple[str, ...]:
-    """`inference_warnings` read from a run's stored JSON view (any kind that reports clusters or its reference)."""
-    res = results or {}
-    clusters = [int(g) for g in res.get("n_clusters") or () if isinstance(g, int | float)]
-    df = res.get("ref_df")
-    if df is None:
-        match = _T_DF.search(str(res.get("ci_reference") or res.get("reference") or ""))
-        df = int(match.group(1)) if match else None
-    return inference_warnings(clusters, df if isinstance(df, int | float) else None)
 
 
 def warnings_of(run: Run) -> tuple[str, ...]:
