@@ -8,6 +8,7 @@ so a change in the machine's load falls on all of them alike. Printed per comman
 CPU time (user + system of the process, less sensitive to other work on the machine) of --repeat runs, whether
 it meets its target (0.3 s; `estimate` 1.5 s) and the heavy modules it imported (one extra, untimed run).
 `--imports` adds the import cost of each command group by package (python -X importtime, self times summed).
+Commands run with Python's bytecode cache on (PYTHONDONTWRITEBYTECODE removed), as in an ordinary install.
 
 Run: .venv/bin/python benchmarks/bench_startup.py [--registry demo|scale|both] [--backend sqlite|postgresql|both]
      [--repeat N] [--instruments N] [--imports]
@@ -42,6 +43,7 @@ HEAVY = (
     "sqlalchemy.dialects.postgresql",
 )
 BIN = Path(sys.executable).parent
+BASE_ENV = {k: v for k, v in os.environ.items() if k != "PYTHONDONTWRITEBYTECODE"}
 IVDOSSIER = (
     [str(BIN / "ivdossier")] if (BIN / "ivdossier").exists() else [sys.executable, "-m", "ivdossier.cli"]
 )
@@ -123,7 +125,7 @@ def heavy_modules(argv: list[str], env: dict[str, str]) -> str:
 
 
 def bench(title: str, db: str, commands: dict[str, list[str]], actor: str, repeat: int) -> None:
-    env = {**os.environ, "IVDOSSIER_DB": db, "IVDOSSIER_USER": actor}
+    env = {**BASE_ENV, "IVDOSSIER_DB": db, "IVDOSSIER_USER": actor}
     walls: dict[str, list[float]] = collections.defaultdict(list)
     cpus: dict[str, list[float]] = collections.defaultdict(list)
     codes: dict[str, int] = {}
@@ -162,7 +164,7 @@ def import_table(db: str, actor: str) -> None:
     buckets = ("sqlalchemy", "pydantic", "sqlmodel", "typer/click/rich", "ivdossier", "numerics", "other")
     print(f"\n[import cost by command group, ms of import self time, one run each]\n  {'group':32s}", end="")
     print("".join(f"{b:>11s}" for b in buckets) + f"{'total':>9s}")
-    env = {**os.environ, "IVDOSSIER_DB": db, "IVDOSSIER_USER": actor}
+    env = {**BASE_ENV, "IVDOSSIER_DB": db, "IVDOSSIER_USER": actor}
     for label, argv in groups.items():
         done = subprocess.run(
             [sys.executable, "-X", "importtime", "-m", "ivdossier.cli", *argv],
@@ -213,7 +215,7 @@ def copy_registry(source: str, target: str, tmp: Path) -> None:
     folder = tmp / f"export-{time.monotonic_ns()}"
     for argv in (["--db", source, "export", str(folder)], ["--db", target, "import", str(folder)]):
         done = subprocess.run(
-            [*IVDOSSIER, *argv], capture_output=True, text=True, env={**os.environ, "IVDOSSIER_USER": "amara"}
+            [*IVDOSSIER, *argv], capture_output=True, text=True, env={**BASE_ENV, "IVDOSSIER_USER": "amara"}
         )
         if done.returncode != 0:
             sys.exit(f"{' '.join(argv[2:])} failed: {done.stderr[-2000:]}")
@@ -230,7 +232,7 @@ def main() -> None:
     parser.add_argument("--instruments", type=int, default=10_000)
     parser.add_argument("--imports", action="store_true", help="Also print the import cost by command group.")
     args = parser.parse_args()
-    baseline = statistics.median(timed(["--version"], dict(os.environ))[0] for _ in range(5))
+    baseline = statistics.median(timed(["--version"], dict(BASE_ENV))[0] for _ in range(5))
     interpreter = statistics.median(_python_pass() for _ in range(5))
     print(
         f"python -c pass: {interpreter:.3f} s; ivdossier --version: {baseline:.3f} s (interpreter and typer)"
