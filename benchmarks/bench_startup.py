@@ -10,8 +10,12 @@ it meets its target (0.3 s; `estimate` 1.5 s) and the heavy modules it imported 
 `--imports` adds the import cost of each command group by package (python -X importtime, self times summed).
 Commands run with Python's bytecode cache on (PYTHONDONTWRITEBYTECODE removed), as in an ordinary install.
 
+`--against REF` instead compares this tree with an earlier commit on the demo registry (SQLite): both run through
+the same launcher (the editable install pointed at a `git archive` copy of REF, or at this tree), interleaved
+A B A B, and the medians and their ratio are printed; the machine's load then affects both alike.
+
 Run: .venv/bin/python benchmarks/bench_startup.py [--registry demo|scale|both] [--backend sqlite|postgresql|both]
-     [--repeat N] [--instruments N] [--imports]
+     [--repeat N] [--instruments N] [--imports] [--against REF]
 """
 
 from __future__ import annotations
@@ -163,7 +167,7 @@ def import_table(db: str, actor: str) -> None:
     }
     buckets = ("sqlalchemy", "pydantic", "sqlmodel", "typer/click/rich", "ivdossier", "numerics", "other")
     print(f"\n[import cost by command group, ms of import self time, one run each]\n  {'group':32s}", end="")
-    print("".join(f"{b:>11s}" for b in buckets) + f"{'total':>9s}")
+    print("".join(f"{b:>17s}" for b in buckets) + f"{'total':>9s}")
     env = {**BASE_ENV, "IVDOSSIER_DB": db, "IVDOSSIER_USER": actor}
     for label, argv in groups.items():
         done = subprocess.run(
@@ -178,7 +182,7 @@ def import_table(db: str, actor: str) -> None:
                 continue
             self_us, _, name = line[len("import time:") :].split("|")
             cost[_bucket(name.strip())] += int(self_us) / 1000
-        print(f"  {label:32s}" + "".join(f"{cost[b]:11.0f}" for b in buckets) + f"{sum(cost.values()):9.0f}")
+        print(f"  {label:32s}" + "".join(f"{cost[b]:17.0f}" for b in buckets) + f"{sum(cost.values()):9.0f}")
 
 
 def _bucket(module: str) -> str:
@@ -201,6 +205,53 @@ def _bucket(module: str) -> str:
     ):
         return "numerics"
     return "other"
+
+
+LAUNCH = (
+    "import sys\nimport __editable___ivdossier_0_1_0_finder as finder\n"
+    "tree = sys.argv.pop(1)\n"
+    "finder.MAPPING.update({{k: tree + v[len({root!r}):] for k, v in finder.MAPPING.items() if v.startswith({root!r})}})\n"
+    "from ivdossier.cli.app import main\nmain()\n"
+)
+
+
+def compare(ref: str, db: str, commands: dict[str, list[str]], repeat: int, tmp: Path) -> None:
+    """Interleaved A/B of every command: REF (a `git archive` copy) against this tree, same launcher."""
+    old = tmp / "against"
+    old.mkdir()
+    archive = subprocess.run(["git", "-C", str(ROOT), "archive", ref], capture_output=True, check=True).stdout
+    subprocess.run(["tar", "-x", "-C", str(old)], input=archive, check=True)
+    launcher = LAUNCH.format(root=str(ROOT))
+    env = {**BASE_ENV, "IVDOSSIER_DB": db, "IVDOSSIER_USER": "amara"}
+    trees = {"A " + ref: str(old), "B this tree": str(ROOT)}
+    samples: dict[tuple[str, str], list[tuple[float, float]]] = collections.defaultdict(list)
+
+    def one(tree: str, argv: list[str]) -> tuple[float, float]:
+        start = time.perf_counter()
+        proc = subprocess.Popen(
+            [sys.executable, "-c", launcher, tree, *argv],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+            env=env,
+        )
+        _, _, usage = os.wait4(proc.pid, 0)
+        return time.perf_counter() - start, usage.ru_utime + usage.ru_stime
+
+    for argv in commands.values():  # bytecode caches of both trees, untimed
+        for tree in trees.values():
+            one(tree, argv)
+    for _ in range(repeat):
+        for label, argv in commands.items():
+            for name, tree in trees.items():
+                samples[(label, name)].append(one(tree, argv))
+    print(f"\n[A/B on the demo registry, sqlite: median of {repeat}, load average {os.getloadavg()[0]:.1f}]")
+    print(f"  {'command':34s} {'A wall':>8s} {'B wall':>8s} {'A CPU':>8s} {'B CPU':>8s}  B/A CPU")
+    a_name, b_name = trees
+    for label in commands:
+        a, b = samples[(label, a_name)], samples[(label, b_name)]
+        aw, bw = statistics.median(x[0] for x in a), statistics.median(x[0] for x in b)
+        ac, bc = statistics.median(x[1] for x in a), statistics.median(x[1] for x in b)
+        print(f"  {label:34s} {aw:7.3f}s {bw:7.3f}s {ac:7.3f}s {bc:7.3f}s  {bc / ac:6.2f}")
 
 
 def build_demo(folder: Path) -> Path:
@@ -231,6 +282,9 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=5)
     parser.add_argument("--instruments", type=int, default=10_000)
     parser.add_argument("--imports", action="store_true", help="Also print the import cost by command group.")
+    parser.add_argument(
+        "--against", metavar="REF", help="Compare with an earlier commit (demo registry, SQLite)."
+    )
     args = parser.parse_args()
     baseline = statistics.median(timed(["--version"], dict(BASE_ENV))[0] for _ in range(5))
     interpreter = statistics.median(_python_pass() for _ in range(5))
@@ -240,6 +294,15 @@ def main() -> None:
     server = None
     with tempfile.TemporaryDirectory(prefix="ivd-startup-") as name:
         tmp = Path(name)
+        if args.against:
+            compare(
+                args.against,
+                str(build_demo(tmp / "demo")),
+                demo_commands(tmp / "demo" / "data"),
+                args.repeat,
+                tmp,
+            )
+            return
         backends = ["sqlite", "postgresql"] if args.backend == "both" else [args.backend]
         if "postgresql" in backends:
             from pgserver import find_pg_bin, start_server
