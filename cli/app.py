@@ -104,22 +104,12 @@ def quiet_closed_pipe() -> None:
     raise typer.Exit(code=0)
 
 
-app = typer.Typer(
-    cls=ErrorReportingGroup,
-    no_args_is_help=True,
-    pretty_exceptions_enable=False,
-    add_completion=False,
-    help="Keep candidate instruments, their validity arguments, threats and diagnostics in one registry.",
-)
-
-
 def _version(value: bool) -> None:
     if value:
         typer.echo(f"ivdossier {__version__}")
         raise typer.Exit()
 
 
-@app.callback()
 def _global(
     db: Annotated[
         str | None,
@@ -143,38 +133,72 @@ def _global(
     settings.debug = debug
 
 
-# Each module adds its commands through register(app); one line per module.
-COMMAND_MODULES = (
-    "general",
-    "entities",
-    "team",
-    "portability",
-    "estimation_cmds",
-    "threat_cmds",
-    "family_cmds",
-    "report_cmds",
-    "evidence_cmds",
-    "studies",
-    "plans",
-    "design_cmds",
-    "run_cmds",
-    "fragility_cmds",
-)
+# Each module adds its commands through register(app), in this order; beside each, the top-level commands and
+# groups it adds (tests/test_cli_documented.py keeps this table in step with the modules).
+COMMAND_MODULES: dict[str, tuple[str, ...]] = {
+    "general": ("init", "history", "demo"),
+    "entities": ("program", "instrument", "member", "link"),
+    "team": ("review", "comment"),
+    "portability": ("export", "import", "backup", "restore"),
+    "estimation_cmds": ("estimate",),
+    "threat_cmds": ("threat", "graph"),
+    "family_cmds": ("family",),
+    "report_cmds": ("dossier", "site", "table"),
+    "evidence_cmds": ("sensitivity", "falsify", "compliers", "power"),
+    "studies": ("study", "audit"),
+    "plans": ("plan",),
+    "design_cmds": ("design", "variants", "confounder-strength"),
+    "run_cmds": ("run",),
+    "fragility_cmds": ("fragility",),
+}
+MODULE_OF = {command: module for module, commands in COMMAND_MODULES.items() for command in commands}
+# Root options that take a value: the command name is the first word that is neither one of them nor its value.
+_VALUE_OPTIONS = ("--db", "--as")
 
 
-def _register() -> None:
+def build_app(modules: tuple[str, ...] | None = None) -> typer.Typer:
+    """The `ivdossier` application with the commands of `modules` (all of them when None)."""
     import importlib
 
-    for name in COMMAND_MODULES:
-        importlib.import_module(f"ivdossier.cli.{name}").register(app)
+    built = typer.Typer(
+        cls=ErrorReportingGroup,
+        no_args_is_help=True,
+        pretty_exceptions_enable=False,
+        add_completion=False,
+        help="Keep candidate instruments, their validity arguments, threats and diagnostics in one registry.",
+    )
+    built.callback()(_global)
+    for name in COMMAND_MODULES if modules is None else modules:
+        importlib.import_module(f"ivdossier.cli.{name}").register(built)
+    return built
 
 
-_register()
+def command_modules(argv: list[str]) -> tuple[str, ...] | None:
+    """The one command module a command line needs, or None (all of them: root help, unknown names)."""
+    args = iter(argv)
+    for arg in args:
+        if arg in _VALUE_OPTIONS:
+            next(args, None)
+        elif not arg.startswith("-"):
+            module = MODULE_OF.get(arg)
+            return None if module is None else (module,)
+    return None
+
+
+def __getattr__(name: str) -> typer.Typer:
+    """`app`, the application with every command, built on first use (tests and tools import it)."""
+    if name == "app":
+        full = globals()["app"] = build_app()
+        return full
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 def main() -> None:
+    """The console entry point: loads only the module of the command being run (start-up stays short)."""
+    import sys
+
     try:
-        app()
+        build_app(command_modules(sys.argv[1:]))()
     except BrokenPipeError:  # raised while flushing after the command finished
         with contextlib.suppress(typer.Exit):
             quiet_closed_pipe()

@@ -75,7 +75,7 @@ def estimate(
         if not json_out:
             used = outcome_run.extra["engine"]
             typer.echo(f"engine: {used['engine']} ({used['choice']})")
-    from ivdossier.workflows.run_records import inference_warnings
+    from ivdossier.workflows.run_warnings import inference_warnings
 
     result = outcome_run.result
     for warning in inference_warnings(result.n_clusters, result.ref_df):

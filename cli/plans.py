@@ -152,7 +152,7 @@ def list_(json_out: JsonFlag = False) -> None:
     from ivdossier.registry.models import Plan
 
     with reading() as s:
-        rows = [plans.plan_dict(s, p) for p in s.exec(select(Plan).order_by(Plan.slug))]
+        rows = plans.plan_dicts(s, list(s.exec(select(Plan).order_by(Plan.slug))))
     if json_out:
         print_json(rows)
         return

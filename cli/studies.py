@@ -105,10 +105,12 @@ def list_(
     json_out: JsonFlag = False,
 ) -> None:
     """List studies with what they reported."""
-    from ivdossier.registry.studies import list_studies, study_dict
+    from ivdossier.registry.studies import critiques_by_study, list_studies, study_dict
 
     with reading() as s:
-        rows = [study_dict(s, st) for st in list_studies(s, instrument=instrument, family=family)]
+        studies = list_studies(s, instrument=instrument, family=family)
+        critiques = critiques_by_study(s, studies)
+        rows = [study_dict(s, st, critiques.get(st.id or 0, [])) for st in studies]
     if json_out:
         print_json(rows)
         return

@@ -27,7 +27,7 @@ def register(app: typer.Typer) -> None:
 
 
 def _registry_catalog(session: Any) -> Any:
-    from ivdossier.workflows.dossiers import registry_catalog
+    from ivdossier.workflows.catalog_sync import registry_catalog
 
     return registry_catalog(session)
 

@@ -169,6 +169,9 @@ def make_engine(url: str) -> Engine:
         engine = create_engine(url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000})
         _install_sqlite_hooks(engine)
         return engine
+    from ivdossier.registry.models import postgresql_options
+
+    postgresql_options()
     return create_engine(url, pool_pre_ping=True)
 
 

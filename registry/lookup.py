@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from sqlalchemy import literal, select, union_all
 from sqlmodel import Session
 
 from ivdossier.errors import InvalidInputError, NotFoundError
@@ -11,7 +12,13 @@ from ivdossier.registry.models import ENTITY_CLASSES, Entity
 
 def find_any(session: Session, label: str) -> Entity:
     """The one entity whose slug/code/handle/key is `label`; an error when none or several match."""
-    hits = [obj for cls in ENTITY_CLASSES if (obj := records.find(session, cls, label)) is not None]
+    # One query over every kind's label column (not one per kind), then the matching rows by primary key.
+    per_kind = [
+        select(literal(k).label("kind"), cls.id.label("id")).where(records._label_column(cls) == label)  # type: ignore[attr-defined]
+        for k, cls in enumerate(ENTITY_CLASSES)
+    ]
+    found = sorted(session.connection().execute(union_all(*per_kind)).all())
+    hits = [records.get_by_id(session, ENTITY_CLASSES[kind], ident) for kind, ident in found]
     if not hits:
         raise NotFoundError(
             f"nothing in this registry is named {label!r}; check the spelling with a list command."

@@ -267,14 +267,12 @@ class Run(Entity, table=True):
     """One estimation or evidence run: exact spec, data fingerprint, results, versions and timing."""
 
     kind: ClassVar[str] = "run"
-    # At most one primary run per instrument, also under concurrent writers (a partial unique index).
+    # At most one primary run per instrument, also under concurrent writers (a partial unique index, created by
+    # migration 0004 on both databases). The PostgreSQL form of its WHERE is added by postgresql_options():
+    # naming it here would make SQLAlchemy import its whole PostgreSQL dialect on every start-up, SQLite too.
     __table_args__ = (
         Index(
-            "ux_run_one_primary_per_instrument",
-            "instrument_id",
-            unique=True,
-            sqlite_where=text("is_primary"),
-            postgresql_where=text("is_primary"),
+            "ux_run_one_primary_per_instrument", "instrument_id", unique=True, sqlite_where=text("is_primary")
         ),
     )
 
@@ -335,6 +333,14 @@ class AuditEvent(SQLModel, table=True):
     before: dict[str, Any] | None = _json()
     after: dict[str, Any] | None = _json()
     reason: str = Field(default="")
+
+
+def postgresql_options() -> None:
+    """Give the tables their PostgreSQL-only options (imports the PostgreSQL dialect; called before a PostgreSQL
+    engine is used and by the migration environment, so the metadata is complete wherever PostgreSQL is)."""
+    for index in Run.__table__.indexes:  # type: ignore[attr-defined]
+        if index.name == "ux_run_one_primary_per_instrument":
+            index.dialect_options["postgresql"]["where"] = text("is_primary")
 
 
 ENTITY_CLASSES: tuple[type[Entity], ...] = (

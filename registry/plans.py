@@ -16,7 +16,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
@@ -355,3 +355,17 @@ def plan_dict(session: Session, plan: Plan) -> dict[str, Any]:
     if plan.frozen_at is not None:
         data["frozen_at"] = iso(plan.frozen_at)
     return data
+
+
+def plan_dicts(session: Session, plans: Sequence[Plan]) -> list[dict[str, Any]]:
+    """`plan_dict` of several plans, their programs and instruments read in one query each (not one per plan)."""
+    program_ids = {p.program_id for p in plans}
+    instrument_ids = {p.instrument_id for p in plans if p.instrument_id}
+    # Held here so the session's identity map keeps them: plan_dict's session.get then finds them without a query.
+    loaded = [
+        *session.exec(select(Program).where(Program.id.in_(program_ids))),  # type: ignore[union-attr]
+        *session.exec(select(Instrument).where(Instrument.id.in_(instrument_ids))),  # type: ignore[union-attr]
+    ]
+    out = [plan_dict(session, p) for p in plans]
+    del loaded
+    return out

@@ -124,3 +124,19 @@ def clear_primary(session: Session, *, actor: str, instrument: str, reason: str 
     return records.edit(
         session, current, {"is_primary": False}, actor=actor, action="unmark-primary", reason=reason
     )
+
+
+def runs_in_context(
+    session: Session, instrument: Instrument | None = None
+) -> list[tuple[Run, str | None, Dataset | None]]:
+    """`all_runs` with each run's instrument slug and dataset, read in one query (no query per run)."""
+    query = (
+        select(Run, Instrument.slug, Dataset)
+        .outerjoin(Instrument, Run.instrument_id == Instrument.id)  # type: ignore[arg-type]
+        .outerjoin(Dataset, Run.dataset_id == Dataset.id)  # type: ignore[arg-type]
+    )
+    if instrument is not None:
+        query = query.where(Run.instrument_id == instrument.id)
+    return [
+        (run, slug, dataset) for run, slug, dataset in session.exec(query.order_by(Run.created_at, Run.id))
+    ]  # type: ignore[arg-type]

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from sqlalchemy.orm import aliased
 from sqlmodel import Session, select
 
 from ivdossier.errors import ConflictError, InvalidInputError
@@ -468,22 +469,34 @@ def critique(
 
 def critique_rows(session: Session, study: Study) -> list[dict[str, Any]]:
     """Critiques recorded against one study as plain rows (threat, title, condition, raised_by, note), by code."""
-    rows = session.exec(
-        select(Critique, Threat).where(Critique.study_id == study.id, Critique.threat_id == Threat.id)
+    return critiques_by_study(session, [study]).get(study.id or 0, [])
+
+
+def critiques_by_study(session: Session, studies: Sequence[Study]) -> dict[int, list[dict[str, Any]]]:
+    """`critique_rows` of several studies, read in one query (a listing makes no query per study)."""
+    raiser = aliased(Study)
+    query = (
+        select(Critique, Threat, raiser.key)
+        .join(Threat, Critique.threat_id == Threat.id)  # type: ignore[arg-type]
+        .outerjoin(raiser, Critique.raised_by_id == raiser.id)  # type: ignore[arg-type]
     )
-    out = []
-    for crit, threat in rows:
-        raiser = session.get(Study, crit.raised_by_id) if crit.raised_by_id else None
-        out.append(
+    wanted = {st.id for st in studies}
+    if len(wanted) <= 500:  # a short list by key; a long one reads every critique (no huge IN list)
+        query = query.where(Critique.study_id.in_(wanted))  # type: ignore[attr-defined]
+    out: dict[int, list[dict[str, Any]]] = {}
+    for crit, threat, raised_by in session.exec(query):
+        if crit.study_id not in wanted:
+            continue
+        out.setdefault(crit.study_id, []).append(
             {
                 "threat": threat.code,
                 "title": threat.title,
                 "condition": threat.condition,
-                "raised_by": raiser.key if raiser else None,
+                "raised_by": raised_by,
                 "note": crit.note,
             }
         )
-    return sorted(out, key=lambda c: (c["threat"], c["raised_by"] or ""))
+    return {k: sorted(v, key=lambda c: (c["threat"], c["raised_by"] or "")) for k, v in out.items()}
 
 
 def list_studies(
@@ -522,11 +535,13 @@ def citation(study: Study) -> str:
     return f"{who} ({latex_to_text(raw_year)})" if raw_year else who
 
 
-def study_dict(session: Session, study: Study) -> dict[str, Any]:
-    """A JSON-safe view of one study with its critiques."""
+def study_dict(
+    session: Session, study: Study, critiques: Sequence[dict[str, Any]] | None = None
+) -> dict[str, Any]:
+    """A JSON-safe view of one study with its critiques (read here unless given, as a listing does)."""
     data = records.snapshot(study, bookkeeping=True)
     data["citation"] = citation(study)
-    data["critiques"] = critique_rows(session, study)
+    data["critiques"] = list(critiques) if critiques is not None else critique_rows(session, study)
     return data
 
 

@@ -413,13 +413,16 @@ class RatingSummary:
 def rating_summaries(session: Session, instrument: Instrument) -> list[RatingSummary]:
     """Per link of the instrument, the ratings and disagreement; most disputed links first."""
     out = []
+    by_link: dict[int, list[tuple[str, int, int, str]]] = {}
+    every_rating = (
+        select(Rating, Member.handle)
+        .where(Rating.member_id == Member.id, Rating.link_id == Link.id, Link.instrument_id == instrument.id)
+        .order_by(Member.handle)
+    )  # one query for all the instrument's links, not one per link
+    for r, handle in session.exec(every_rating):
+        by_link.setdefault(r.link_id, []).append((handle, r.likelihood, r.severity, r.comment))
     for link, threat in links_of(session, instrument):
-        rows = session.exec(
-            select(Rating, Member)
-            .where(Rating.link_id == link.id, Rating.member_id == Member.id)
-            .order_by(Member.handle)
-        ).all()
-        ratings = tuple((m.handle, r.likelihood, r.severity, r.comment) for r, m in rows)
+        ratings = tuple(by_link.get(link.id, ()))
         liks = [r[1] for r in ratings]
         sevs = [r[2] for r in ratings]
         spread = float(max(max(liks) - min(liks), max(sevs) - min(sevs))) if ratings else 0.0

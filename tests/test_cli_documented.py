@@ -77,3 +77,106 @@ def test_catalogue_listing_loads_no_numerics(tmp_path: Path) -> None:
     assert init.returncode == 0, init.stderr
     done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
     assert "HEAVY=\n" in done.stderr or done.stderr.rstrip().endswith("HEAVY="), done.stderr[-500:]
+
+
+def test_the_table_of_command_modules_matches_what_each_module_registers() -> None:
+    """`ivdossier X` loads only the module that registers X, so the table in cli/app.py must name it exactly."""
+    from ivdossier.cli.app import COMMAND_MODULES, build_app
+
+    full = list(typer.main.get_command(app).commands)  # type: ignore[attr-defined]
+    assert sorted(full) == sorted(c for commands in COMMAND_MODULES.values() for c in commands)
+    for module, commands in COMMAND_MODULES.items():
+        alone = typer.main.get_command(build_app((module,)))
+        assert sorted(alone.commands) == sorted(commands), module  # type: ignore[attr-defined]
+
+
+def test_the_command_word_is_found_after_the_root_options() -> None:
+    from ivdossier.cli.app import command_modules
+
+    assert command_modules(["--db", "run", "--as", "x", "--debug", "run", "list"]) == ("run_cmds",)
+    assert command_modules(["--db=r.sqlite", "instrument", "show", "plan"]) == ("entities",)
+    assert command_modules(["--help"]) is None  # the root help lists every command
+    assert command_modules(["no-such-command"]) is None  # click's "did you mean" sees every command
+
+
+# Modules no registry listing or show may import: numerics, statistics, plotting, the estimation layer (and the
+# graph library, except for `graph show`, which builds each instrument's graph to list the edges it leaves out).
+# On a SQLite registry SQLAlchemy's PostgreSQL dialect stays unloaded too.
+FORBIDDEN = (
+    "numpy",
+    "pandas",
+    "scipy",
+    "statsmodels",
+    "matplotlib",
+    "ivdossier.estimation",
+    "networkx",
+    "sqlalchemy.dialects.postgresql",
+)
+READ_COMMANDS = (
+    ("program", "list"),
+    ("program", "show", "telehealth-ed"),
+    ("instrument", "list"),
+    ("instrument", "list", "--json"),
+    ("instrument", "show", "fibre-wave"),
+    ("instrument", "show", "fibre-wave", "--json"),
+    ("member", "list"),
+    ("member", "show", "amara"),
+    ("link", "list", "fibre-wave"),
+    ("link", "show", "fibre-wave--an-e01"),
+    ("comment", "list", "fibre-wave"),
+    ("threat", "list"),
+    ("threat", "show", "AN-E01"),
+    ("threat", "suggest", "fibre-wave"),
+    ("family", "list"),
+    ("study", "list"),
+    ("study", "show", "ferreira2024fibre"),
+    ("plan", "list"),
+    ("plan", "show", "fibre-wave-plan"),
+    ("run", "list"),
+    ("run", "list", "--json"),
+    ("run", "show", "fibre-wave-estimate-3"),
+    ("run", "show", "fibre-wave-sensitivity-1"),
+    ("run", "show", "fibre-wave-falsify-placebo-1"),
+    ("run", "show", "fibre-wave-compliers-1"),
+    ("run", "show", "fibre-wave-power-1"),
+    ("history", "fibre-wave"),
+    ("review", "fibre-wave"),
+    ("graph", "show", "telehealth-ed"),
+)
+
+
+def test_every_registry_listing_and_show_loads_no_numerics(tmp_path: Path) -> None:
+    """Each listing and show command, run as `ivdossier` runs it, imports none of FORBIDDEN; the probe names the
+    first command that does (commands run one after another in one process, so later ones inherit its imports)."""
+    import json
+    import subprocess
+    import sys
+
+    from ivdossier.workflows.demo import build_demo
+
+    demo = tmp_path / "demo"
+    build_demo(demo)
+    db = str(demo / "ivdossier.sqlite")
+    draft = subprocess.run(
+        [sys.executable, "-m", "ivdossier.cli", "--db", db, "--as", "amara", "plan", "draft", "fibre-wave"],
+        capture_output=True,
+        text=True,
+    )
+    assert draft.returncode == 0, draft.stderr
+    probe = (
+        "import json, sys\n"
+        "from ivdossier.cli.app import main\n"
+        f"forbidden = {FORBIDDEN!r}\n"
+        "out = []\n"
+        f"for argv in {READ_COMMANDS!r}:\n"
+        f"    sys.argv = ['ivdossier', '--db', {db!r}, *argv]\n"
+        "    try:\n        main()\n    except SystemExit as exc:\n        code = exc.code\n    else:\n        code = 0\n"
+        "    loaded = [m for m in forbidden if m in sys.modules and not (m == 'networkx' and argv[0] == 'graph')]\n"
+        "    out.append([' '.join(argv), code, loaded])\n"
+        "print('RESULT=' + json.dumps(out), file=sys.stderr)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
+    line = next(x for x in done.stderr.splitlines() if x.startswith("RESULT="))
+    results = json.loads(line[len("RESULT=") :])
+    assert [(cmd, code) for cmd, code, _ in results if code] == []  # every command ran
+    assert [(cmd, loaded) for cmd, _, loaded in results if loaded] == []

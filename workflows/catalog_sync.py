@@ -7,11 +7,13 @@ audit event. The check that decides whether anything is due is one small query, 
 
 from __future__ import annotations
 
-from sqlmodel import Session, func, select
+from typing import Any
+
+from sqlmodel import Session, case, func, select
 
 from ivdossier.registry.db import Registry
 from ivdossier.registry.models import Threat
-from ivdossier.registry.threats import sync_catalog
+from ivdossier.registry.threats import THREAT_FIELDS, sync_catalog
 
 #: Who the audit trail names for catalogue refreshes and carry-overs made when a registry is opened: the tool,
 #: not the person whose command happened to open the registry first.
@@ -22,10 +24,10 @@ def catalog_is_current(session: Session) -> bool:
     """True when every built-in row carries the shipped catalogue version (and there is at least one)."""
     from ivdossier.threats_catalog.catalog import CATALOGUE_VERSION
 
-    builtin = select(func.count()).select_from(Threat).where(Threat.origin == "builtin")
-    total = session.exec(builtin).one()
-    stale = session.exec(builtin.where(Threat.catalog_version != CATALOGUE_VERSION)).one()
-    return bool(total) and not stale
+    stale = case((Threat.catalog_version != CATALOGUE_VERSION, 1), else_=0)
+    query = select(func.count(), func.coalesce(func.sum(stale), 0)).where(Threat.origin == "builtin")
+    total, outdated = session.exec(query).one()  # one query: this runs whenever a command opens the registry
+    return bool(total) and not outdated
 
 
 def ensure_builtin(session: Session, *, actor: str) -> int:
@@ -50,3 +52,26 @@ def sync_on_open(registry: Registry, *, actor: str = CATALOG_ACTOR) -> int:
             return 0
     with registry.writing() as session:
         return ensure_builtin(session, actor=actor)
+
+
+def catalog_entry(row: Threat) -> Any:
+    """The registry's copy of a threat as a validated catalogue entry (with its graph fragment)."""
+    from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
+
+    data = {f: getattr(row, f) for f in THREAT_FIELDS}
+    data["code"] = row.code
+    for f in ("families", "checks", "mitigations", "references"):
+        data[f] = data[f] or []
+    data["fragment"] = data["fragment"] or {"nodes": [], "edges": []}
+    return CatalogThreat.from_dict(data, source=f"registry threat {row.code}")
+
+
+def registry_catalog(session: Session) -> Any:
+    """The catalogue as this registry sees it: built-in entries followed by the team's own."""
+    from ivdossier.threats_catalog.catalog import load_builtin, merge
+
+    team = [
+        catalog_entry(t)
+        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
+    ]
+    return merge(load_builtin(), team)

@@ -27,13 +27,13 @@ from ivdossier.registry.models import (
     Program,
     Rating,
     Run,
-    Threat,
 )
 from ivdossier.registry.runs import runs_of
-from ivdossier.registry.threats import THREAT_FIELDS, links_of
+from ivdossier.registry.threats import links_of
 from ivdossier.reports import inputs as ri
 from ivdossier.threats_catalog.graph import GraphVerdict
 from ivdossier.vocabulary import Verdict
+from ivdossier.workflows.catalog_sync import catalog_entry, registry_catalog
 from ivdossier.workflows.fragility import fragility_runs
 
 CONFOUNDER = "U"
@@ -98,29 +98,6 @@ def base_graph(session: Session, instrument: Instrument) -> Any:
         link_states=states,
         confounder=CONFOUNDER,
     )
-
-
-def catalog_entry(row: Threat) -> Any:
-    """The registry's copy of a threat as a validated catalogue entry (with its graph fragment)."""
-    from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
-
-    data = {f: getattr(row, f) for f in THREAT_FIELDS}
-    data["code"] = row.code
-    for f in ("families", "checks", "mitigations", "references"):
-        data[f] = data[f] or []
-    data["fragment"] = data["fragment"] or {"nodes": [], "edges": []}
-    return CatalogThreat.from_dict(data, source=f"registry threat {row.code}")
-
-
-def registry_catalog(session: Session) -> Any:
-    """The catalogue as this registry sees it: built-in entries followed by the team's own."""
-    from ivdossier.threats_catalog.catalog import load_builtin, merge
-
-    team = [
-        catalog_entry(t)
-        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
-    ]
-    return merge(load_builtin(), team)
 
 
 def program_info(program: Program) -> ri.ProgramInfo:

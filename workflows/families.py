@@ -35,7 +35,7 @@ def family_rows(session: Session) -> list[dict[str, Any]]:
 
     from ivdossier.registry.models import Instrument
     from ivdossier.threats_catalog.catalog import FAMILY_PREFIXES
-    from ivdossier.workflows.dossiers import registry_catalog
+    from ivdossier.workflows.catalog_sync import registry_catalog
 
     catalog = registry_catalog(session)
     entries = {f: 0 for f in FAMILIES}

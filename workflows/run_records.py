@@ -3,65 +3,25 @@ that rests on few clusters or on a t reference with few degrees of freedom."""
 
 from __future__ import annotations
 
-import re
-from collections.abc import Mapping, Sequence
+import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 from sqlmodel import Session
 
-from ivdossier.jsonsafe import json_safe
+from ivdossier.jsonsafe import RECORD_KEY, json_safe
 from ivdossier.registry import records
 from ivdossier.registry.models import Dataset, Instrument, Run
-from ivdossier.registry.runs import all_runs
 from ivdossier.registry.runs import mark_primary as _mark_primary
-
-FEW_CLUSTERS = 42
-"""Below this many clusters, cluster-robust inference can over-reject (common practice; a rule of thumb, not a
-theorem: with few or unbalanced clusters a wild cluster bootstrap is the usual remedy)."""
-FEW_T_DF = 30
-"""Below this many degrees of freedom the t reference is far from normal and the interval leans on the error
-distribution (common practice)."""
-_T_DF = re.compile(r"t quantiles with (\d+) degrees of freedom")
-
-
-def inference_warnings(n_clusters: Sequence[int], ref_df: float | None) -> tuple[str, ...]:
-    """Warnings about a run's inference: few clusters (G < 42) or a t reference with few degrees of freedom."""
-    out = []
-    if n_clusters and min(n_clusters) < FEW_CLUSTERS:
-        out.append(
-            f"few clusters: {min(n_clusters)} (fewer than {FEW_CLUSTERS}); cluster-robust standard errors can be "
-            "too small with few clusters, so confirm the inference with a wild cluster bootstrap or "
-            "randomization inference"
-        )
-    if ref_df is not None and ref_df < FEW_T_DF:
-        out.append(
-            f"the t reference has only {int(ref_df)} degrees of freedom (fewer than {FEW_T_DF}); intervals and "
-            "p-values lean on that small-sample reference"
-        )
-    return tuple(out)
-
-
-def run_warnings(results: Mapping[str, Any] | None) -> tuple[str, ...]:
-    """`inference_warnings` read from a run's stored JSON view (any kind that reports clusters or its reference)."""
-    res = results or {}
-    clusters = [int(g) for g in res.get("n_clusters") or () if isinstance(g, int | float)]
-    df = res.get("ref_df")
-    if df is None:
-        match = _T_DF.search(str(res.get("ci_reference") or res.get("reference") or ""))
-        df = int(match.group(1)) if match else None
-    return inference_warnings(clusters, df if isinstance(df, int | float) else None)
+from ivdossier.registry.runs import runs_in_context
+from ivdossier.workflows.evidence_runs import FALSIFICATION_KINDS, _fmt, _num
+from ivdossier.workflows.run_warnings import inference_warnings, run_warnings  # noqa: F401  (also read from here)
+from ivdossier.workflows.runs import LEGACY_NOTE
 
 
 def warnings_of(run: Run) -> tuple[str, ...]:
-    """A stored run's inference warnings, from its typed estimation result when it has one."""
-    from ivdossier.estimation.result import EstimationResult
-    from ivdossier.workflows.evidence_runs import typed_result
-
-    if run.run_kind == "estimate":
-        res = typed_result(run)
-        if isinstance(res, EstimationResult):
-            return inference_warnings(tuple(res.n_clusters), res.ref_df)
+    """A stored run's inference warnings, read from its JSON view (clusters and the interval's reference)."""
     return run_warnings(run.results)
 
 
@@ -116,10 +76,14 @@ def summarise(session: Session, run: Run) -> RunSummary:
     """A stored run with its instrument, dataset fingerprint, key results and inference warnings."""
     dataset = session.get(Dataset, run.dataset_id) if run.dataset_id else None
     inst = session.get(Instrument, run.instrument_id) if run.instrument_id else None
+    return _summary(run, inst.slug if inst else "", dataset)
+
+
+def _summary(run: Run, instrument: str, dataset: Dataset | None) -> RunSummary:
     return RunSummary(
         slug=run.slug,
         kind=run.run_kind,
-        instrument=inst.slug if inst else "",
+        instrument=instrument,
         created=run.created_at.isoformat(timespec="seconds"),
         primary=bool(run.is_primary),
         dataset=dataset.path if dataset else "",
@@ -134,9 +98,9 @@ def summarise(session: Session, run: Run) -> RunSummary:
 
 
 def list_runs(session: Session, instrument: str | None = None) -> list[RunSummary]:
-    """Every run (or those of one instrument), oldest first."""
+    """Every run (or those of one instrument), oldest first; one query, whatever the number of runs."""
     inst = records.get(session, Instrument, instrument) if instrument else None
-    return [summarise(session, r) for r in all_runs(session, inst)]
+    return [_summary(run, slug or "", dataset) for run, slug, dataset in runs_in_context(session, inst)]
 
 
 def show_run(session: Session, run: str) -> RunSummary:
@@ -155,45 +119,132 @@ def clear_primary(session: Session, *, actor: str, instrument: str, reason: str 
     return summarise(session, _clear_primary(session, actor=actor, instrument=instrument, reason=reason))
 
 
+# A few labelled key results per run kind, read from the JSON view every run stores beside its typed record
+# (``workflows.runs.stored_results``): listings and `run show` never decode the typed record, so they load no
+# numerics. ``tests/test_run_summaries.py`` checks them against the typed records of every kind of run.
+
+
 def result_summary(run: Run) -> tuple[tuple[str, str], ...]:
     """A few labelled key results of a stored run, whatever its kind (the full results stay in --json)."""
-    from ivdossier.estimation.result import EstimationResult
-    from ivdossier.workflows import evidence_runs as ev
-
+    res: Mapping[str, Any] = run.results or {}
+    legacy = RECORD_KEY not in res  # stored before typed records: shown as the typed reading shows it
     if run.run_kind == "estimate":
-        res = ev.typed_result(run)
-        if not isinstance(res, EstimationResult):
+        if legacy:
             return (("results", "stored before typed records; see --json"),)
-        out = [
-            (f"estimate of {name}", f"{_g(res.coef_of(name))} (standard error {_g(res.se_of(name))})")
-            for name in res.names[:3]
-        ]
-        out.append(("method", f"{res.method}, {res.vcov}"))
-        out.append(("rows used", f"{res.n} ({res.n_dropped} left out)"))
-        if res.n_clusters:
-            out.append(("clusters", ", ".join(str(g) for g in res.n_clusters)))
-        out.append(("interval reference", res.ci_reference))
-        return tuple(out)
+        return _estimate_summary(res)
     if run.run_kind == "sensitivity":
-        s = ev.sensitivity_info(run)
-        if s.method == "breakdown":
-            return (("breakdown value", _g(s.breakdown)), ("target effect", _g(s.target)))
-        return ((f"{s.method} interval", f"[{_g(s.lower)}, {_g(s.upper)}]"),)
-    if run.run_kind in ev.FALSIFICATION_KINDS:
-        f = ev.falsification_info(run)
-        out = [(f"{r.target} on {r.instrument}", f"{_g(r.estimate)} (p {_g(r.p_value)})") for r in f.rows[:6]]
-        return tuple(out + ([("summary", f.summary)] if f.summary else []))
+        kind = None if legacy else res.get("kind")
+        if kind == "union_of_confidence_intervals":
+            return (("union interval", f"[{_g(_num(res.get('lower')))}, {_g(_num(res.get('upper')))}]"),)
+        if kind == "local_to_zero":
+            return (
+                ("local-to-zero interval", f"[{_g(_num(res.get('lower')))}, {_g(_num(res.get('upper')))}]"),
+            )
+        if kind == "breakdown_value":
+            return (
+                ("breakdown value", _g(_num(res.get("magnitude")))),
+                ("target effect", _g(_num(res.get("target")))),
+            )
+        return (("breakdown value", "–"), ("target effect", "–"))
+    if run.run_kind in FALSIFICATION_KINDS:
+        rows, summary = ([], LEGACY_NOTE) if legacy else _falsification_rows(res)
+        out = [(f"{target} on {inst}", f"{_g(est)} (p {_g(p)})") for target, inst, est, p in rows[:6]]
+        return tuple(out + ([("summary", summary)] if summary else []))
     if run.run_kind == "compliers":
-        c = ev.compliers_info(run)
-        return tuple((f"{s.group} share", _g(s.estimate)) for s in c.shares)
+        shares = {} if legacy else _mapping(res.get("shares"))
+        return tuple(
+            (f"{name.replace('_', '-')} share", _g(_float(_mapping(shares.get(name)).get("estimate"))))
+            for name in (() if legacy else ("complier", "always_taker", "never_taker"))
+        )
     if run.run_kind == "power":
-        p = ev.power_info(run)
+        target_power = 0.8 if legacy else res.get("target_power")
         return (
-            ("standard error", _g(p.se)),
-            (f"minimum detectable effect at {p.target_power:.0%} power", _g(p.mde)),
-            ("power at the effect", _g(p.power)),
+            ("standard error", _g(None if legacy else _num(res.get("se")))),
+            (
+                f"minimum detectable effect at {target_power:.0%} power",
+                _g(None if legacy else _num(res.get("mde"))),
+            ),
+            ("power at the effect", _g(None if legacy else _num(res.get("power")))),
         )
     return ()
+
+
+def _estimate_summary(res: Mapping[str, Any]) -> tuple[tuple[str, str], ...]:
+    coef, se = _mapping(res.get("coef")), _mapping(res.get("se"))
+    out = [
+        (f"estimate of {name}", f"{_g(_float(coef[name]))} (standard error {_g(_float(se.get(name)))})")
+        for name in list(coef)[:3]
+    ]
+    out.append(("method", f"{res.get('method')}, {res.get('vcov')}"))
+    out.append(("rows used", f"{res.get('n')} ({res.get('n_dropped')} left out)"))
+    if res.get("n_clusters"):
+        out.append(("clusters", ", ".join(str(g) for g in res["n_clusters"])))
+    out.append(("interval reference", str(res.get("ci_reference"))))
+    return tuple(out)
+
+
+_Row = tuple[str, str, float | None, float | None]  # target, instrument, estimate, p-value
+
+
+def _falsification_rows(res: Mapping[str, Any]) -> tuple[list[_Row], str]:
+    """The coefficient rows and the one-line summary of a falsification run (as `evidence_runs` reads them)."""
+    kind = res.get("kind")
+    rows: list[_Row] = []
+    summary = ""
+    if kind == "per_instrument":
+        for r in res.get("rows") or ():
+            target = f"own estimate (first-stage F {_fmt(r.get('first_stage_f'))})"
+            rows.append((target, str(r.get("instrument")), _num(r.get("estimate")), None))
+        instruments = ", ".join(str(i) for i in res.get("instruments") or ())
+        rows.append(("estimate with all instruments", instruments, _num(res.get("estimate_all")), None))
+        p = _num(_mapping(res.get("overid")).get("p_value"))
+        if p is not None:
+            summary = f"Over-identification test: p = {_fmt(p)}."
+    elif kind == "zero_first_stage":
+        rows.extend(
+            _coefficient_rows(_mapping(res.get("reduced_form")), suffix=f" in {res.get('subsample')}")
+        )
+        summary = (
+            f"First stage in {res.get('subsample')}: p = {_fmt(res.get('first_stage_p_value'))} "
+            f"({res.get('n')} of {res.get('n_full')} rows). Assumption: {res.get('assumption')}."
+        )
+    elif kind == "subgroup_first_stages":
+        for g in res.get("groups") or ():
+            rows.extend(_coefficient_rows(g, suffix=f" where {res.get('by')} in {g.get('group')}"))
+        flagged = [str(f) for f in res.get("flagged") or ()]
+        summary = (
+            f"Subgroups with a significantly reversed first stage: {', '.join(flagged)}."
+            if flagged
+            else "No subgroup has a significantly reversed first stage."
+        )
+    elif kind in ("balance", "placebo_outcomes"):
+        for r in res.get("rows") or ():
+            rows.extend(_coefficient_rows(r))
+        p = _num(_mapping(res.get("joint")).get("p_value"))
+        if p is not None:
+            summary = f"Joint test of all coefficients: p = {_fmt(p)}."
+    return rows, summary
+
+
+def _coefficient_rows(regression: Mapping[str, Any], suffix: str = "") -> list[_Row]:
+    return [
+        (
+            f"{regression.get('target')}{suffix}",
+            str(c.get("instrument")),
+            _num(c.get("coef")),
+            _num(c.get("p_value")),
+        )
+        for c in regression.get("coefficients") or ()
+    ]
+
+
+def _mapping(value: Any) -> Mapping[str, Any]:
+    return value if isinstance(value, Mapping) else {}
+
+
+def _float(value: Any) -> float:
+    """A number the typed record always holds as a float: the JSON view writes NaN as null and infinities as text."""
+    return math.nan if value is None else float(value)
 
 
 def _g(value: Any) -> str:

@@ -5,7 +5,9 @@ from __future__ import annotations
 from alembic import context
 from sqlmodel import SQLModel
 
-import ivdossier.registry.models  # noqa: F401  (registers the tables on SQLModel.metadata)
+from ivdossier.registry.models import postgresql_options  # registers the tables on SQLModel.metadata
+
+postgresql_options()  # the metadata alembic compares carries every database's options
 
 config = context.config
 engine = config.attributes["engine"]
