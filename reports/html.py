@@ -221,6 +221,14 @@ def render_html(
             return f'<span class="chip chip-{state}">{state}</span>'
         return f"<code>{html.escape(content)}</code>"
 
+    def image(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        # User text cannot form an image (its brackets are escaped); generated documents use figure markers
+        # when rendered for HTML. An image here is a Markdown-file figure link rendered by mistake.
+        raise InvalidInputError(
+            f"the document links to the image {toks[idx].attrGet('src')!r}; generate it for HTML "
+            "(within ivdossier.reports.mdtext.for_html()) so its figures are inlined."
+        )
+
     def table_open(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
         return '<div class="table-wrap"><table>\n'
 
@@ -229,6 +237,7 @@ def render_html(
 
     md.add_render_rule("fence", fence)
     md.add_render_rule("code_inline", code_inline)
+    md.add_render_rule("image", image)
     md.add_render_rule("table_open", table_open)
     md.add_render_rule("table_close", table_close)
     body = md.renderer.render(tokens, md.options, env)

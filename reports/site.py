@@ -123,6 +123,22 @@ def build_site(
     by_program: dict[str, list[DossierInput]] = {p.slug: [] for p in ordered}
     for d in dossiers:
         by_program[d.program.slug].append(d)
+    with mt.for_html():
+        written = _pages(root, ordered, by_program, program_dirs, dossiers, catalog_entries, title)
+    # Every page is rendered before anything is written; then the whole site replaces the old one in one swap.
+    safefiles.replace_tree(root, written, allowed_old=old)
+    return [root.joinpath(*rel.split("/")) for rel in written]
+
+
+def _pages(
+    root: Path,
+    ordered: Sequence[ProgramInfo],
+    by_program: dict[str, list[DossierInput]],
+    program_dirs: dict[str, str],
+    dossiers: Sequence[DossierInput],
+    catalog_entries: Sequence[CatalogEntry],
+    title: str,
+) -> dict[str, bytes]:
     stamp = _stamp(dossiers)
     written: dict[str, bytes] = {}
     _write(root, "index.html", _index_page(ordered, by_program, program_dirs, title, stamp), written)
@@ -144,9 +160,7 @@ def build_site(
                 dossier_html(d, preamble=nav),
                 written,
             )
-    # Every page is rendered before anything is written; then the whole site replaces the old one in one swap.
-    safefiles.replace_tree(root, written, allowed_old=old)
-    return [root.joinpath(*rel.split("/")) for rel in written]
+    return written
 
 
 def _stamp(dossiers: Sequence[DossierInput]) -> str:

@@ -156,7 +156,7 @@ def check_finding(check: str, runs: Sequence[Run]) -> str:
             r for r in candidates if ((r.results or {}).get("overid") or {}).get("p_value") is not None
         ]
     if not candidates:
-        return f"not run yet (`{spec.command}`)"
+        return f"not run yet (command: {spec.command})"
     return f"{finding(check, candidates[0].results or {})} (run {candidates[0].slug})"
 
 
@@ -384,15 +384,23 @@ def write_dossier(
     relative_to: Path | None = None,
     reproducible: bool = False,
 ) -> Path:
-    """Write the dossier of instrument `slug` to `out` (.md Markdown or .html one self-contained page)."""
-    from ivdossier.reports.dossier import dossier_html, dossier_markdown
+    """Write the dossier of instrument `slug` to `out`: .html is one self-contained page; .md is Markdown with its
+    figures as SVG files in the folder ``<stem>-figures`` beside it, written together so that no reader ever sees
+    a document whose figures are missing (`ivdossier.reports.docfiles`)."""
+    from ivdossier.reports import docfiles
+    from ivdossier.reports.dossier import dossier_figures, dossier_html, dossier_markdown, figure_folder_name
+    from ivdossier.reports.mdtext import figure_file
 
     inp = dossier_input(
         session, slug, generated_at=generated_at, relative_to=relative_to, reproducible=reproducible
     )
-    text = dossier_html(inp) if out.suffix.lower() == ".html" else dossier_markdown(inp)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    out.write_text(text, encoding="utf-8")
+    if out.suffix.lower() == ".html":
+        docfiles.write_file(out, dossier_html(inp).encode("utf-8"))
+        return out
+    folder = out.with_name(figure_folder_name(out.stem))
+    text = dossier_markdown(inp, figure_dir=folder.name)
+    figures = {figure_file(key): svg.encode("utf-8") for key, svg in dossier_figures(inp).items()}
+    docfiles.write_document(out, text, folder, figures)
     return out
 
 
