@@ -18,15 +18,20 @@ from sqlmodel import Session, select
 from ivdossier import __version__
 from ivdossier.registry import records
 from ivdossier.registry.history import history
-from ivdossier.registry.instruments import covariates_of, edges_for
+from ivdossier.registry.instruments import covariates_of, edges_of
 from ivdossier.registry.models import (
     CONDITIONS,
+    AuditEvent,
+    Covariate,
     Dataset,
+    GraphEdge,
     Instrument,
+    Link,
     Member,
     Program,
     Rating,
     Run,
+    Study,
     Threat,
 )
 from ivdossier.registry.runs import runs_of
@@ -39,6 +44,127 @@ from ivdossier.workflows.fragility import fragility_runs
 CONFOUNDER = "U"
 
 
+class RegistryReader:
+    """What dossiers read from the registry, through one session.
+
+    Used as is, each read is one query the first time it is asked (and remembered); after `preload` every read
+    comes from a few batch queries over the whole registry (`ivdossier.registry.bulk`: one per table), so the
+    site costs the same number of queries for ten instruments as for ten thousand. Both give the same rows in
+    the same order, so a dossier is identical either way.
+    """
+
+    def __init__(self, session: Session) -> None:
+        self.session = session
+        self._programs: dict[int, Program] = {}
+        self._links: dict[int, list[tuple[Link, Threat]]] = {}
+        self._ratings: dict[int, list[tuple[Rating, Member]]] = {}
+        self._runs: dict[int, list[Run]] = {}
+        self._datasets: dict[int, Dataset | None] = {}
+        self._covariates: dict[int, list[Covariate]] = {}
+        self._edges: dict[int, list[GraphEdge]] = {}
+        self._events: dict[str, list[AuditEvent]] | None = None
+        self._studies: list[Study] | None = None
+        self._entries: dict[tuple[int | None, int], Any] = {}
+        self.preloaded = False
+
+    def preload(self, instruments: Sequence[Instrument]) -> None:
+        """Read everything the dossiers of `instruments` show in one batch query per table."""
+        from ivdossier.registry import bulk
+
+        ids = [i.id for i in instruments if i.id is not None]
+        self._programs = bulk.programs(self.session)
+        links = bulk.links_by_instrument(self.session, ids)
+        self._links = {i: links.get(i, []) for i in ids}
+        link_ids = [lk.id for pairs in self._links.values() for lk, _ in pairs if lk.id is not None]
+        ratings = bulk.ratings_by_link(self.session, link_ids)
+        self._ratings = {i: ratings.get(i, []) for i in link_ids}
+        runs = bulk.runs_by_instrument(self.session, ids)
+        self._runs = {i: runs.get(i, []) for i in ids}
+        dataset_ids = {r.dataset_id for rs in self._runs.values() for r in rs if r.dataset_id}
+        found = bulk.datasets(self.session, dataset_ids)
+        self._datasets = {i: found.get(i) for i in dataset_ids}
+        self._covariates = dict(bulk.covariates_by_program(self.session))
+        self._edges = dict(bulk.edges_by_program(self.session))
+        uuids = [i.uuid for i in instruments] + [lk.uuid for pairs in self._links.values() for lk, _ in pairs]
+        self._events = dict(bulk.events_by_entity(self.session, uuids))
+        self._studies = list(self.session.exec(select(Study).order_by(Study.key)))
+        self.preloaded = True
+
+    def program(self, instrument: Instrument) -> Program:
+        pid = instrument.program_id
+        if pid not in self._programs:
+            self._programs[pid] = records.get_by_id(self.session, Program, pid)
+        return self._programs[pid]
+
+    def links(self, instrument: Instrument) -> list[tuple[Link, Threat]]:
+        key = instrument.id or 0
+        if key not in self._links:
+            self._links[key] = links_of(self.session, instrument)
+        return self._links[key]
+
+    def ratings(self, link: Link) -> list[tuple[Rating, Member]]:
+        key = link.id or 0
+        if key not in self._ratings:
+            self._ratings[key] = list(
+                self.session.exec(
+                    select(Rating, Member)
+                    .where(Rating.link_id == link.id, Rating.member_id == Member.id)
+                    .order_by(Member.handle, Rating.id)  # type: ignore[arg-type]
+                ).all()
+            )
+        return self._ratings[key]
+
+    def runs(self, instrument: Instrument) -> list[Run]:
+        key = instrument.id or 0
+        if key not in self._runs:
+            self._runs[key] = runs_of(self.session, instrument)
+        return self._runs[key]
+
+    def dataset(self, dataset_id: int | None) -> Dataset | None:
+        if not dataset_id:
+            return None
+        if dataset_id not in self._datasets:
+            self._datasets[dataset_id] = self.session.get(Dataset, dataset_id)
+        return self._datasets[dataset_id]
+
+    def covariates(self, program: Program) -> list[Covariate]:
+        key = program.id or 0
+        if key not in self._covariates:
+            self._covariates[key] = [] if self.preloaded else covariates_of(self.session, program)
+        return self._covariates[key]
+
+    def edges(self, instrument: Instrument) -> list[GraphEdge]:
+        """The team edges drawn in the instrument's graph: program-wide ones and those scoped to it."""
+        key = instrument.program_id
+        if key not in self._edges:
+            self._edges[key] = [] if self.preloaded else edges_of(self.session, self.program(instrument))
+        return [e for e in self._edges[key] if e.instrument_id is None or e.instrument_id == instrument.id]
+
+    def events(self, uuids: Sequence[str]) -> list[AuditEvent]:
+        if self._events is None:
+            return history(self.session, entity_uuids=set(uuids))
+        from ivdossier.registry.bulk import merged_events
+
+        return merged_events(self._events, uuids)
+
+    def has_studies(self, instrument: Instrument) -> bool:
+        """Whether any study is attached to the instrument or its family (decided without the audit's numerics)."""
+        if self._studies is None:
+            self._studies = list(self.session.exec(select(Study).order_by(Study.key)))
+        return any(
+            instrument.slug in (s.instruments or [])
+            or (instrument.family and instrument.family in (s.families or []))
+            for s in self._studies
+        )
+
+    def catalog_entry(self, threat: Threat) -> Any:
+        """The threat as a validated catalogue entry, validated once per threat (and version) per reader."""
+        key = (threat.id, threat.version)
+        if key not in self._entries:
+            self._entries[key] = catalog_entry(threat)
+        return self._entries[key]
+
+
 def graph_roles(program: Program, instrument: Instrument) -> dict[str, str]:
     """Node names for the graph: the data columns where known, else the role letters."""
     z = instrument.columns[0] if instrument.columns and len(instrument.columns) == 1 else instrument.slug
@@ -48,20 +174,27 @@ def graph_roles(program: Program, instrument: Instrument) -> dict[str, str]:
     return roles
 
 
-def conditioning_of(session: Session, instrument: Instrument, program: Program) -> set[str]:
+def conditioning_of(
+    session: Session, instrument: Instrument, program: Program, *, reader: RegistryReader | None = None
+) -> set[str]:
     """Measured covariates the headline estimation run (the primary one, else the latest) controlled for: the set
     W the graph check conditions on."""
-    runs = [r for r in runs_of(session, instrument) if r.run_kind == "estimate"]
+    reader = reader or RegistryReader(session)
+    runs = [r for r in reader.runs(instrument) if r.run_kind == "estimate"]
     if not runs:
         return set()
     headline = next((r for r in runs if r.is_primary), runs[-1])
     used = set((headline.spec or {}).get("controls", []) or [])
-    measured = {c.name for c in covariates_of(session, program) if c.measured}
+    measured = {c.name for c in reader.covariates(program) if c.measured}
     return used & measured
 
 
 def instrument_graph(
-    session: Session, instrument: Instrument, *, team_edges: Sequence[tuple[str, str]] | None = None
+    session: Session,
+    instrument: Instrument,
+    *,
+    team_edges: Sequence[tuple[str, str]] | None = None,
+    reader: RegistryReader | None = None,
 ) -> tuple[Any, GraphVerdict]:
     """Build the instrument's causal graph from its program, linked threats and team edges, and check it.
 
@@ -70,27 +203,30 @@ def instrument_graph(
     it would close a cycle with a newly linked threat) is left out and named in ``G.graph["skipped_edges"]``."""
     from ivdossier.threats_catalog.graph import add_team_edges, check_instrument
 
-    G = base_graph(session, instrument)
+    reader = reader or RegistryReader(session)
+    G = base_graph(session, instrument, reader=reader)
     if team_edges is None:
-        team_edges = [(e.source, e.target) for e in edges_for(session, instrument)]
+        team_edges = [(e.source, e.target) for e in reader.edges(instrument)]
     G.graph["skipped_edges"] = add_team_edges(G, team_edges)
-    roles = graph_roles(records.get_by_id(session, Program, instrument.program_id), instrument)
-    program = records.get_by_id(session, Program, instrument.program_id)
-    verdict = check_instrument(G, conditioning=conditioning_of(session, instrument, program), **roles)
+    program = reader.program(instrument)
+    roles = graph_roles(program, instrument)
+    conditioning = conditioning_of(session, instrument, program, reader=reader)
+    verdict = check_instrument(G, conditioning=conditioning, **roles)
     return G, verdict
 
 
-def base_graph(session: Session, instrument: Instrument) -> Any:
+def base_graph(session: Session, instrument: Instrument, *, reader: RegistryReader | None = None) -> Any:
     """The instrument's graph without team edges: roles, declared covariates and linked threats' fragments."""
     from ivdossier.threats_catalog.graph import build_graph
 
-    program = records.get_by_id(session, Program, instrument.program_id)
+    reader = reader or RegistryReader(session)
+    program = reader.program(instrument)
     fragments = []
     states: dict[str, str] = {}
-    for link, threat in links_of(session, instrument):
+    for link, threat in reader.links(instrument):
         states[threat.code] = link.state
-        fragments.append(catalog_entry(threat).fragment)
-    covariates = {c.name: c.measured for c in covariates_of(session, program)}
+        fragments.append(reader.catalog_entry(threat).fragment)
+    covariates = {c.name: c.measured for c in reader.covariates(program)}
     return build_graph(
         **graph_roles(program, instrument),
         covariates=covariates,
@@ -160,19 +296,14 @@ def check_finding(check: str, runs: Sequence[Run]) -> str:
     return f"{finding(check, candidates[0].results or {})} (run {candidates[0].slug})"
 
 
-def _ratings(session: Session, link_id: int | None) -> tuple[ri.Rating, ...]:
-    rows = session.exec(
-        select(Rating, Member)
-        .where(Rating.link_id == link_id, Rating.member_id == Member.id)
-        .order_by(Member.handle)
-    ).all()
+def _ratings(reader: RegistryReader, link: Link) -> tuple[ri.Rating, ...]:
     return tuple(
         ri.Rating(reviewer=m.handle, likelihood=r.likelihood, severity=r.severity, comment=r.comment)
-        for r, m in rows
+        for r, m in reader.ratings(link)
     )
 
 
-def run_info(session: Session, run: Run) -> ri.RunInfo:
+def run_info(session: Session, run: Run, *, reader: RegistryReader | None = None) -> ri.RunInfo:
     """A stored run as the reports layer reads it, with its plot summaries, primary mark and inference warnings."""
     from ivdossier.workflows.run_records import warnings_of
 
@@ -180,7 +311,7 @@ def run_info(session: Session, run: Run) -> ri.RunInfo:
     plots: Mapping[str, Any] = results.get("plot_data") or {}
     bins = plots.get("first_stage_bins")
     curve = plots.get("ar_curve")
-    dataset = session.get(Dataset, run.dataset_id) if run.dataset_id else None
+    dataset = (reader or RegistryReader(session)).dataset(run.dataset_id)
     return ri.RunInfo(
         slug=run.slug,
         created_at=run.created_at,
@@ -211,7 +342,7 @@ def run_info(session: Session, run: Run) -> ri.RunInfo:
     )
 
 
-def _links(session: Session, inst: Instrument, all_runs: Sequence[Run]) -> tuple[ri.LinkInfo, ...]:
+def _links(reader: RegistryReader, inst: Instrument, all_runs: Sequence[Run]) -> tuple[ri.LinkInfo, ...]:
     return tuple(
         ri.LinkInfo(
             threat_code=threat.code,
@@ -220,12 +351,12 @@ def _links(session: Session, inst: Instrument, all_runs: Sequence[Run]) -> tuple
             state=link.state,
             argument=link.argument,
             evidence=link.evidence,
-            ratings=_ratings(session, link.id),
+            ratings=_ratings(reader, link),
             checks=tuple(
                 ri.CheckInfo(name=c, finding=check_finding(c, all_runs)) for c in (threat.checks or [])
             ),
         )
-        for link, threat in links_of(session, inst)
+        for link, threat in reader.links(inst)
     )
 
 
@@ -266,18 +397,42 @@ def dossier_input(
     generated_at: datetime | str,
     relative_to: Path | None = None,
     reproducible: bool = False,
+    reader: RegistryReader | None = None,
 ) -> ri.DossierInput:
     """Everything the dossier of instrument `slug` shows, read in one session, with its verdicts derived once.
 
     `relative_to` shows dataset paths relative to that folder when they lie inside it; `reproducible` leaves out
     what differs from machine to machine (run timings and installed package versions), for golden files.
+    `reader` shares reads between many dossiers (the site preloads one).
     """
     from ivdossier.threats_catalog.draw import render_svg
 
     inst = records.get(session, Instrument, slug)
+    return _dossier_input(
+        session,
+        inst,
+        generated_at=generated_at,
+        relative_to=relative_to,
+        reproducible=reproducible,
+        reader=reader or RegistryReader(session),
+        render_svg=render_svg,
+    )
+
+
+def _dossier_input(
+    session: Session,
+    inst: Instrument,
+    *,
+    generated_at: datetime | str,
+    relative_to: Path | None,
+    reproducible: bool,
+    reader: RegistryReader,
+    render_svg: Any,
+) -> ri.DossierInput:
     G, inp = _assemble(
         session,
         inst,
+        reader=reader,
         generated_at=generated_at,
         relative_to=relative_to,
         reproducible=reproducible,
@@ -296,22 +451,23 @@ def _assemble(
     relative_to: Path | None,
     reproducible: bool,
     prior: bool,
+    reader: RegistryReader | None = None,
 ) -> tuple[Any, ri.DossierInput]:
     """The graph and the dossier input (without the drawing) with its verdicts derived once."""
     from ivdossier.reports.design_sections import KINDS as DESIGN_KINDS
     from ivdossier.workflows.evidence_runs import evidence_fields
     from ivdossier.workflows.verdicts import with_verdicts
 
-    program = records.get_by_id(session, Program, inst.program_id)
-    all_runs = runs_of(session, inst)
-    G, check = instrument_graph(session, inst)
+    reader = reader or RegistryReader(session)
+    program = reader.program(inst)
+    all_runs = reader.runs(inst)
+    G, check = instrument_graph(session, inst, reader=reader)
     runs = tuple(
-        _portable(run_info(session, r), relative_to, reproducible)
+        _portable(run_info(session, r, reader=reader), relative_to, reproducible)
         for r in all_runs
         if r.run_kind == "estimate"
     )
-    link_uuids = {lk.uuid for lk, _ in links_of(session, inst)}
-    events = history(session, entity_uuids={inst.uuid, *link_uuids})
+    events = reader.events([inst.uuid, *(lk.uuid for lk, _ in reader.links(inst))])
     audit = tuple(
         ri.AuditEvent(
             when=e.at,
@@ -323,18 +479,18 @@ def _assemble(
         for e in events
     )
     inp = ri.DossierInput(
-        extra_sections=_prior_uses(session, inst) if prior else (),
+        extra_sections=_prior_uses(session, inst, reader) if prior else (),
         program=program_info(program),
         instrument=_instrument_info(inst),
         generated_at=generated_at,
         tool_version=__version__,
-        links=_links(session, inst, all_runs),
+        links=_links(reader, inst, all_runs),
         runs=runs,
         fragility=fragility_runs(all_runs),
         graph=ri.GraphInfo(verdict=check),
         audit=audit,
         evidence_runs=tuple(
-            _portable(run_info(session, r), relative_to, reproducible)
+            _portable(run_info(session, r, reader=reader), relative_to, reproducible)
             for r in all_runs
             if r.run_kind in DESIGN_KINDS
         ),
@@ -364,8 +520,10 @@ def _relative(path: str, base: Path) -> str:
         return path
 
 
-def _prior_uses(session: Session, instrument: Instrument) -> tuple[str, ...]:
+def _prior_uses(session: Session, instrument: Instrument, reader: RegistryReader) -> tuple[str, ...]:
     """The literature audit of studies attached to the instrument or its family, when there are any."""
+    if not reader.has_studies(instrument):  # decided before the audit's numerics are imported
+        return ()
     from ivdossier.reports.audit_doc import audit_section_markdown
     from ivdossier.workflows.studies import audit_inputs, build_audit
 
@@ -408,13 +566,26 @@ def write_site(
     session: Session, out: Path, *, generated_at: datetime | str, relative_to: Path | None = None
 ) -> list[Path]:
     """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
+    from ivdossier.registry import bulk
     from ivdossier.reports.site import build_site
+    from ivdossier.threats_catalog.draw import render_svg
 
     programs = list(session.exec(select(Program).order_by(Program.slug)))
     infos = [program_info(p) for p in programs]
-    slugs = list(session.exec(select(Instrument.slug).order_by(Instrument.slug)))
+    instruments = bulk.instruments(session)
+    reader = RegistryReader(session)
+    reader.preload(instruments)
     dossiers = [
-        dossier_input(session, slug, generated_at=generated_at, relative_to=relative_to) for slug in slugs
+        _dossier_input(
+            session,
+            inst,
+            generated_at=generated_at,
+            relative_to=relative_to,
+            reproducible=False,
+            reader=reader,
+            render_svg=render_svg,
+        )
+        for inst in instruments
     ]
     entries = [
         ri.CatalogEntry(
