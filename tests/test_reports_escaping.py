@@ -252,3 +252,37 @@ def test_badges_differ_by_shape_not_only_colour(status: str) -> None:
     assert not any(o in svg for o in others)
     with pytest.raises(InvalidInputError, match="unknown verdict 'fine'"):
         verdict_badge_svg("fine")
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    st.lists(
+        st.sampled_from(
+            [
+                "## Heading",
+                "#### Card",
+                "",
+                "",
+                "- item",
+                "- item two",
+                "1. first",
+                "    indented",
+                "| a | b |\n| :-- | --: |\n| 1 | 2 |",
+                "```ivdossier-figure\nplot\n```",
+                "```\n# not a heading\n\n- not a list\n```",
+                "A paragraph with `verdict:holds` and **bold**.",
+                "*caption*",
+                "> quote",
+                "text continued",
+            ]
+        ),
+        max_size=14,
+    ).map("\n".join)
+)
+def test_rendering_piece_by_piece_equals_rendering_the_whole_document(markdown: str) -> None:
+    # exact identity (brute force): the cached piece-by-piece renderer against one pass over the whole text
+    from ivdossier.reports.html import _render_section, _section_parser, _split_sections
+
+    whole = _section_parser().render(markdown)
+    pieces = "".join(_render_section(piece)[0] for piece in _split_sections(markdown))
+    assert pieces == whole
