@@ -285,7 +285,10 @@ def check_finding(check: str, runs: Sequence[Run]) -> str:
         return ""
     if not spec.computable:
         return spec.how_to_run
-    kind = run_kind_for_command(spec.command)
+    try:
+        kind = run_kind_for_command(spec.command)
+    except KeyError:  # a check answered by a command that stores no run (e.g. comparing runs with a plan)
+        return f"answered by a command, not by a stored run (command: {spec.command})"
     candidates = [r for r in reversed(runs) if r.run_kind == kind]
     if check == "over-identification":
         candidates = [
