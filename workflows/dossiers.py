@@ -147,10 +147,17 @@ class RegistryReader:
 
         return merged_events(self._events, uuids)
 
-    def has_studies(self, instrument: Instrument) -> bool:
-        """Whether any study is attached to the instrument or its family (decided without the audit's numerics)."""
+    def any_studies(self) -> bool:
+        """Whether the registry records any study at all."""
         if self._studies is None:
             self._studies = list(self.session.exec(select(Study).order_by(Study.key)))
+        return bool(self._studies)
+
+    def has_studies(self, instrument: Instrument) -> bool:
+        """Whether any study is attached to the instrument or its family (decided without the audit's numerics)."""
+        if not self.any_studies():
+            return False
+        assert self._studies is not None
         return any(
             instrument.slug in (s.instruments or [])
             or (instrument.family and instrument.family in (s.families or []))
@@ -602,4 +609,76 @@ def write_site(
         )
         for t in registry_catalog(session)
     ]
-    return build_site(out, infos, dossiers, entries)
+    return build_site(
+        out,
+        infos,
+        dossiers,
+        entries,
+        plans=_plan_pages(session, reader),
+        runs=_run_rows(reader, instruments),
+        studies=_studies_audit(session, reader),
+    )
+
+
+def _plan_pages(session: Session, reader: RegistryReader) -> list[Any]:
+    """Every pre-analysis plan with its sealed form (a draft has the same shape without freeze fields)."""
+    from ivdossier.registry.models import Plan
+    from ivdossier.registry.plans import sealed_document
+    from ivdossier.reports.site import PlanPage
+
+    out = []
+    for plan in session.exec(select(Plan).order_by(Plan.slug)):
+        program = session.get(Program, plan.program_id)
+        inst = session.get(Instrument, plan.instrument_id) if plan.instrument_id else None
+        out.append(
+            PlanPage(
+                program=program.slug if program else "",
+                slug=plan.slug,
+                title=plan.title,
+                state=plan.state,
+                instrument=inst.slug if inst else "",
+                sealed=sealed_document(session, plan),
+                sha256=plan.sha256 if plan.state == "frozen" else "",
+                frozen_at=plan.frozen_at.isoformat(timespec="seconds") if plan.frozen_at else "",
+            )
+        )
+    return out
+
+
+def _run_rows(reader: RegistryReader, instruments: Sequence[Instrument]) -> list[Any]:
+    """Every stored run of every instrument, oldest first, with its key results and inference warnings."""
+    from ivdossier.reports.site import RunRow
+
+    rows: list[Any] = []
+    for inst in instruments:
+        runs = reader.runs(inst)
+        if not runs:
+            continue
+        from ivdossier.workflows.run_records import result_summary, warnings_of
+
+        program = reader.program(inst)
+        rows.extend(
+            RunRow(
+                program=program.slug,
+                instrument=inst.slug,
+                slug=r.slug,
+                kind=r.run_kind,
+                created=r.created_at.isoformat(timespec="seconds"),
+                primary=bool(r.is_primary),
+                summary=result_summary(r),
+                warnings=warnings_of(r),
+            )
+            for r in runs
+        )
+    return rows
+
+
+def _studies_audit(session: Session, reader: RegistryReader) -> Any:
+    """The literature audit over every recorded study, or None when there is none (numerics stay unloaded)."""
+    if not reader.any_studies():
+        return None
+    from ivdossier.reports.site import StudiesAudit
+    from ivdossier.workflows.studies import audit_inputs, build_audit
+
+    inputs = audit_inputs(session)
+    return StudiesAudit(summary=build_audit(inputs), inputs=inputs)
