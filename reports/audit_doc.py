@@ -246,7 +246,8 @@ def audit_html(
     """The audit document as one self-contained HTML page (raw HTML disabled in the Markdown)."""
     from ivdossier.reports.html import render_html
 
-    markdown = audit_markdown(summary, inputs, generated_at=generated_at, tool_version=tool_version)
+    with mt.for_html():
+        markdown = audit_markdown(summary, inputs, generated_at=generated_at, tool_version=tool_version)
     return render_html(markdown, title=f"Literature audit: {summary.scope}", badges={})
 
 

@@ -14,14 +14,14 @@ import math
 import statistics
 from collections.abc import Sequence
 from pathlib import PurePath
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from ivdossier.estimation.design_results import DecisionMakerDesign, ExposureShareDesign
-from ivdossier.estimation.omitted_variable import IvRobustness
-from ivdossier.estimation.variant_summary import SummaryEvidence
 from ivdossier.jsonsafe import RECORD_KEY, load_record
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports.inputs import DossierInput, RunInfo
+
+if TYPE_CHECKING:  # the result types load pandas and scipy: imported only when a design run is shown
+    from ivdossier.estimation.design_results import DecisionMakerDesign, ExposureShareDesign
 
 __all__ = ["design_figures", "design_sections"]
 
@@ -74,13 +74,13 @@ def _decision_makers(run: RunInfo, r: DecisionMakerDesign) -> str:
     lines = [
         "## Decision-maker design",
         "",
-        f"Run `{mt.inline(run.slug)}`: {rec.n_cases:,} cases, {rec.n_decision_makers:,} decision-makers "
+        f"Run {mt.inline(run.slug)}: {rec.n_cases:,} cases, {rec.n_decision_makers:,} decision-makers "
         f"(cases each from {min(r.cases, default=0):,} to {max(r.cases, default=0):,}, median "
         f"{_num(statistics.median(r.cases) if r.cases else float('nan'))}).",
         "",
         f"Leave-out measure: {mt.inline(rec.description)}."
         + (
-            f" Written with the data to `{mt.inline(PurePath(r.derived_file).name)}` (path, recipe and SHA-256 "
+            f" Written with the data to {mt.inline(PurePath(r.derived_file).name)} (path, recipe and SHA-256 "
             "in the run's provenance)."
             if r.derived_file
             else ""
@@ -146,7 +146,7 @@ def _exposure(run: RunInfo, r: ExposureShareDesign) -> str:
     lines = [
         "## Exposure-share design",
         "",
-        f"Run `{mt.inline(run.slug)}`: {rec.n_units:,} units, {rec.n_sectors:,} sectors; instrument "
+        f"Run {mt.inline(run.slug)}: {rec.n_units:,} units, {rec.n_sectors:,} sectors; instrument "
         f"{mt.inline(rec.to_dict()['description'])}"
         + ("; the share sum is a control because shares sum to less than one" if r.share_sum_control else "")
         + ".",
@@ -178,11 +178,19 @@ def _exposure(run: RunInfo, r: ExposureShareDesign) -> str:
 def design_sections(inp: DossierInput) -> tuple[str, ...]:
     """One Markdown section per kind of design or summary-data run attached to the instrument (newest run)."""
     from ivdossier.reports.variant_checklist import checklist_markdown, dossier_checklist
+
+    newest = _newest(inp)
+    checklist = dossier_checklist(inp)  # a genetic-variant instrument has one even before any run
+    if not newest and checklist is None:
+        return ()
+    from ivdossier.estimation.design_results import DecisionMakerDesign, ExposureShareDesign
+    from ivdossier.estimation.omitted_variable import IvRobustness
+    from ivdossier.estimation.variant_summary import SummaryEvidence
     from ivdossier.reports.variant_sections import robustness_markdown, summary_evidence_markdown
 
     out: list[str] = []
     for _kind, (run, result) in sorted(
-        _newest(inp).items(), key=lambda kv: KINDS.index(kv[0]) if kv[0] in KINDS else 99
+        newest.items(), key=lambda kv: KINDS.index(kv[0]) if kv[0] in KINDS else 99
     ):
         if isinstance(result, DecisionMakerDesign):
             out.append(_decision_makers(run, result))
@@ -203,16 +211,15 @@ def design_sections(inp: DossierInput) -> tuple[str, ...]:
             )
             out.append(
                 summary_evidence_markdown(result).rstrip()
-                + f"\n\nRun `{mt.inline(run.slug)}`."
+                + f"\n\nRun {mt.inline(run.slug)}."
                 + (f"\n\n{figures}" if figures else "")
             )
         elif isinstance(result, IvRobustness):
             out.append(
                 robustness_markdown(result).rstrip()
-                + f"\n\nRun `{mt.inline(run.slug)}`.\n\n"
+                + f"\n\nRun {mt.inline(run.slug)}.\n\n"
                 + mt.figure("robustness-contour", "Adjusted estimate over the strength of a confounder.")
             )
-    checklist = dossier_checklist(inp)
     if checklist is not None:
         out.append(checklist_markdown(checklist).rstrip())  # it states the limits itself
     elif out:
@@ -223,7 +230,14 @@ def design_sections(inp: DossierInput) -> tuple[str, ...]:
 def design_figure_keys(inp: DossierInput) -> dict[str, str]:
     """Figure keys the sections refer to -> run kind."""
     keys: dict[str, str] = {}
-    for kind, (_, result) in _newest(inp).items():
+    newest = _newest(inp)
+    if not newest:
+        return keys
+    from ivdossier.estimation.design_results import ExposureShareDesign
+    from ivdossier.estimation.omitted_variable import IvRobustness
+    from ivdossier.estimation.variant_summary import SummaryEvidence
+
+    for kind, (_, result) in newest.items():
         if isinstance(result, ExposureShareDesign):
             keys["rotemberg-weights"] = kind
         elif isinstance(result, SummaryEvidence):
@@ -238,6 +252,9 @@ def design_figure_keys(inp: DossierInput) -> dict[str, str]:
 
 def design_figures(inp: DossierInput) -> dict[str, str]:
     """The SVG of every figure the design sections refer to."""
+    keys = design_figure_keys(inp)
+    if not keys:
+        return {}
     from ivdossier.reports.rotemberg_plot import rotemberg_svg
     from ivdossier.reports.variant_plots import (
         funnel_svg,
@@ -248,7 +265,7 @@ def design_figures(inp: DossierInput) -> dict[str, str]:
 
     newest = _newest(inp)
     out: dict[str, str] = {}
-    for key, kind in design_figure_keys(inp).items():
+    for key, kind in keys.items():
         result = newest[kind][1]
         if key == "rotemberg-weights":
             out[key] = rotemberg_svg(result.rotemberg, key=key)

@@ -46,8 +46,24 @@ CAUTIONS = (
 )
 
 
-def dossier_markdown(inp: DossierInput) -> str:
-    """Render the dossier for one instrument as Markdown (deterministic for equal inputs)."""
+def figure_folder_name(document_stem: str) -> str:
+    """The folder beside a Markdown dossier ``<stem>.md`` that holds its figures as SVG files."""
+    return f"{document_stem}-figures"
+
+
+def dossier_markdown(inp: DossierInput, *, figure_dir: str | None = None) -> str:
+    """Render the dossier for one instrument as Markdown (deterministic for equal inputs).
+
+    Figures are image links to ``<figure_dir>/<key>.svg`` (default: the folder `figure_folder_name` gives for a
+    file named after the instrument's slug); `dossier_figures` gives their SVG text, and
+    `ivdossier.reports.docfiles.write_document` writes the two together.
+    """
+    folder = figure_dir if figure_dir is not None else figure_folder_name(inp.instrument.slug)
+    with mt.figures_in(folder):
+        return _dossier_markdown(inp)
+
+
+def _dossier_markdown(inp: DossierInput) -> str:
     run = headline_run(inp.runs)
     parts = [
         _header(inp),
@@ -87,7 +103,8 @@ def dossier_html(inp: DossierInput, *, preamble: str = "") -> str:
     """The dossier as one self-contained HTML page; `preamble` is trusted Markdown placed first (site navigation)."""
     from ivdossier.reports.html import render_html
 
-    markdown = dossier_markdown(inp)
+    with mt.for_html():
+        markdown = dossier_markdown(inp)
     if preamble:
         markdown = preamble.rstrip() + "\n\n" + markdown
     title = f"Dossier: {inp.instrument.name or inp.instrument.slug}"
@@ -180,11 +197,13 @@ def _summary(inp: DossierInput, run: RunInfo | None) -> str:
         out.append(
             mt.table(["Condition", "Verdict", "Why", "Rule"], [_glance_row(v) for v in _ordered(inp)], "lllc")
         )
-        out.append(
+        shapes = (
             "Verdict shapes: filled circle with a tick = holds; triangle with an exclamation mark = at risk; "
-            "square with a cross = broken; dashed ring = not assessed. Rules are listed in "
-            "`ivdossier.workflows.verdicts`."
+            "square with a cross = broken; dashed ring = not assessed."
+            if mt.html_target()
+            else mt.GLYPH_LEGEND
         )
+        out.append(f"{shapes} Rules are listed in `ivdossier.workflows.verdicts`.")
     else:
         out.append(
             "No verdicts were derived for this input; build it with `ivdossier.workflows.dossiers.dossier_input` "
@@ -375,7 +394,12 @@ def _graph_rows(graph: GraphVerdict) -> list[list[str]]:
         }.get(value, "not decided")
         reason = "; ".join(found[0].reasons) if found else ""
         rows.append(
-            [condition.capitalize(), outcome, "; ".join(mt.inline(p) for p in paths) or "–", mt.cell(reason)]
+            [
+                condition.capitalize(),
+                outcome,
+                "; ".join(mt.inline(p) for p in paths) or "–",
+                mt.inline_with_commands(reason) or "–",
+            ]
         )
     return rows
 

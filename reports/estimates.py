@@ -7,17 +7,27 @@ A section the run does not report is left out; a section the estimation marked n
 from __future__ import annotations
 
 import math
-from typing import Any
+import sys
+from typing import TYPE_CHECKING, Any
 
-from ivdossier.estimation.diagnostics import DiagnosticSuite
-from ivdossier.estimation.result import EstimationResult
-from ivdossier.estimation.robust_inference import AndersonRubin, CLRResult, TFResult
-from ivdossier.estimation.specification import Endogeneity, OverId
-from ivdossier.estimation.strength import StrengthSection
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.inputs import DossierInput, RunInfo
 from ivdossier.vocabulary import NotApplicable
+
+if TYPE_CHECKING:  # the result types load scipy: a dossier without runs never needs them
+    from ivdossier.estimation.diagnostics import DiagnosticSuite
+    from ivdossier.estimation.result import EstimationResult
+    from ivdossier.estimation.robust_inference import AndersonRubin, CLRResult, TFResult
+    from ivdossier.estimation.strength import StrengthSection
+
+
+def _is(value: Any, module: str, *names: str) -> bool:
+    """isinstance against result classes of ``ivdossier.estimation.<module>``, without importing it: when the
+    module is not loaded, no object of its classes can exist."""
+    loaded = sys.modules.get(f"ivdossier.estimation.{module}")
+    return loaded is not None and isinstance(value, tuple(getattr(loaded, n) for n in names))
+
 
 LEGACY_RUN = (
     "stored by ivdossier 0.1 before runs kept a typed result; its numbers are left out here (rerun it to show "
@@ -87,7 +97,11 @@ def wald_interval(res: EstimationResult, name: str) -> list[rv.Interval]:
 
 def suite_of(res: EstimationResult | None) -> DiagnosticSuite | None:
     """The run's diagnostics when they were computed (None for OLS, failures and old runs)."""
-    return res.diagnostics if res is not None and isinstance(res.diagnostics, DiagnosticSuite) else None
+    return (
+        res.diagnostics
+        if res is not None and _is(res.diagnostics, "diagnostics", "DiagnosticSuite")
+        else None
+    )
 
 
 def section_of(suite: DiagnosticSuite | None, name: str) -> Any:
@@ -181,7 +195,7 @@ def _coef_with_se(value: float, se: float | None) -> str:
 
 
 def _first_stage(suite: Any) -> str:
-    if not isinstance(suite, DiagnosticSuite):
+    if not _is(suite, "diagnostics", "DiagnosticSuite"):
         return ""
     reason = section_reason(suite, "first_stage")
     if reason is not None:
@@ -213,7 +227,7 @@ def _first_stage(suite: Any) -> str:
 
 
 def _reduced_form(suite: Any) -> str:
-    if not isinstance(suite, DiagnosticSuite):
+    if not _is(suite, "diagnostics", "DiagnosticSuite"):
         return ""
     reason = section_reason(suite, "reduced_form")
     if reason is not None:
@@ -255,7 +269,7 @@ def _stock_yogo_rows(strength: StrengthSection) -> list[list[str]]:
 
 
 def _strength(suite: Any) -> str:
-    if not isinstance(suite, DiagnosticSuite):
+    if not _is(suite, "diagnostics", "DiagnosticSuite"):
         return ""
     reason = section_reason(suite, "strength")
     if reason is not None:
@@ -351,11 +365,11 @@ def _robust_inference(inp: DossierInput, run: RunInfo, res: EstimationResult) ->
         ("tF", suite.weak_iv_robust.tf),
     )
     for label, node in procedures:
-        if isinstance(node, TFResult | CLRResult) and not node.applicable:
+        if _is(node, "robust_inference", "TFResult", "CLRResult") and not node.applicable:
             if node.reason:
                 skipped.append(f"{label} — {mt.inline(node.reason)}")
             continue
-        if isinstance(node, TFResult):
+        if _is(node, "robust_inference", "TFResult"):
             sets = None if node.interval is None else [(float(node.interval[0]), float(node.interval[1]))]
             cv = node.critical_value
             stat = f"critical value {rv.fmt(cv)}" if cv is not None and not math.isnan(cv) else "–"
@@ -400,16 +414,16 @@ _ENDOG_NOTE = (
 def _tests(suite: Any, key: str, title: str, note: str) -> str:
     if isinstance(suite, NotApplicable):
         return f"#### {title}\n\nNot computed: {mt.inline(suite.reason)}."
-    if not isinstance(suite, DiagnosticSuite):
+    if not _is(suite, "diagnostics", "DiagnosticSuite"):
         return ""
     reason = section_reason(suite, key)
     if reason is not None:
         return f"#### {title}\n\nNot computed: {mt.inline(reason)}."
-    node: OverId | Endogeneity = getattr(suite, key)
+    node: Any = getattr(suite, key)
     if node.statistic is None or math.isnan(node.statistic):
         reason = getattr(node, "reason", None)
         return f"#### {title}\n\nNot computed: {mt.inline(reason)}." if reason else ""
-    label = node.test if isinstance(node, OverId) else "durbin_wu_hausman_control_function"
+    label = node.test if _is(node, "specification", "OverId") else "durbin_wu_hausman_control_function"
     row = [
         mt.cell(_pretty(str(label or key))),
         rv.fmt(node.statistic),

@@ -64,7 +64,7 @@ def fragility_markdown(inp: DossierInput) -> str:
 
 def _influence_block(run: FragilityRun) -> str:
     r = run.result
-    head = f"### Leaving one {mt.inline(r.unit or 'cluster')} out (run `{mt.inline(run.slug)}`)"
+    head = f"### Leaving one {mt.inline(r.unit or 'cluster')} out (run {mt.inline(run.slug)})"
     if not r.applicable:
         return f"{head}\n\nNot applicable: {mt.inline(r.reason or '')}."
     from ivdossier.reports.jackknife_plot import LIMIT, rows_shown
@@ -99,7 +99,7 @@ def _influence_block(run: FragilityRun) -> str:
 def _bootstrap_block(run: FragilityRun) -> str:
     b = run.result
     w = b.wild
-    head = f"### Bootstrap sets beside the analytic ones (run `{mt.inline(run.slug)}`)"
+    head = f"### Bootstrap sets beside the analytic ones (run {mt.inline(run.slug)})"
     if not w.applicable:
         return f"{head}\n\nNot applicable: {mt.inline(w.reason or '')}."
     how = "every sign vector enumerated (exact)" if w.enumerated else f"random draws, seed {w.seed}"
@@ -150,7 +150,7 @@ def _bootstrap_block(run: FragilityRun) -> str:
 
 def _subvector_block(run: FragilityRun) -> str:
     s = run.result
-    head = f"### One treatment among several (run `{mt.inline(run.slug)}`)"
+    head = f"### One treatment among several (run {mt.inline(run.slug)})"
     if not s.applicable:
         return f"{head}\n\nNot applicable: {mt.inline(s.reason or '')}."
     level = f"{100 * (1 - (s.alpha or 0.05)):g} %"

@@ -143,6 +143,12 @@ def clean_svg(svg: str, *, key: str) -> str:
     return body
 
 
+@lru_cache(maxsize=256)
+def _clean_svg_cached(svg: str, key: str) -> str:
+    """`clean_svg` remembered for figures that recur across pages (badges, repeated plots)."""
+    return clean_svg(svg, key=key)
+
+
 @lru_cache(maxsize=1)
 def stylesheet() -> str:
     """The document stylesheet (reports/dossier.css)."""
@@ -178,8 +184,12 @@ def render_html(
     `svgs` maps figure keys (from ``mdtext.figure``) to trusted generated SVG; `badges` maps verdict statuses
     to badge SVG (default: ``plots.verdict_badge_svg``); `wide` widens the sheet for broad comparison tables.
     A figure marker without an SVG raises InvalidInputError, so a missing plot is noticed, not dropped.
+
+    The document is rendered section by section (a section runs from one heading to the next, which CommonMark
+    renders independently) and each section's HTML is remembered, so text repeated across documents (a
+    catalogue threat, a shared claim) is parsed once per process however many pages show it.
     """
-    figures = {key: clean_svg(svg, key=key) for key, svg in (svgs or {}).items()}
+    figures = {key: _clean_svg_cached(svg, key) for key, svg in (svgs or {}).items()}
     if badges is None:
         from ivdossier.reports.plots import verdict_badge_svg
 
@@ -188,50 +198,45 @@ def render_html(
         }
     else:
         badge_svgs = dict(badges)
-    md = markdown_parser()
-    env: dict[str, Any] = {}
-    tokens = md.parse(markdown, env)
-    sections = _assign_ids(tokens)
-    tokens = _wrap_cards(tokens)
 
-    def fence(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
-        tok = toks[idx]
-        if tok.info.strip() == FIGURE_INFO:
-            key = tok.content.strip()
-            if key not in figures:
-                raise InvalidInputError(
-                    f"the document refers to figure {key!r}, but no SVG was given for it."
-                )
-            return f'<figure class="figure" id="figure-{html.escape(key)}">{figures[key]}</figure>\n'
-        return f"<pre><code>{html.escape(tok.content)}</code></pre>\n"
+    def figure(match: re.Match[str]) -> str:
+        key = match.group(1)
+        if key not in figures:
+            raise InvalidInputError(f"the document refers to figure {key!r}, but no SVG was given for it.")
+        return f'<figure class="figure" id="figure-{html.escape(key)}">{figures[key]}</figure>\n'
 
-    def code_inline(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
-        content = toks[idx].content
-        if content.startswith(BADGE_PREFIX):
-            status = content[len(BADGE_PREFIX) :].replace("-", " ")
-            if status in badge_svgs:
-                css = status.replace(" ", "-")
-                return (
-                    f'<span class="badge badge-{css}">'
-                    f'<span class="badge-shape" aria-hidden="true">{badge_svgs[status]}</span>'
-                    f'<span class="badge-word">{html.escape(status)}</span></span>'
-                )
-        if content.startswith(CHIP_PREFIX) and content[len(CHIP_PREFIX) :] in LINK_STATES:
-            state = content[len(CHIP_PREFIX) :]
-            return f'<span class="chip chip-{state}">{state}</span>'
-        return f"<code>{html.escape(content)}</code>"
+    def badge(match: re.Match[str]) -> str:
+        status = match.group(1)
+        if status not in badge_svgs:
+            return f"<code>{html.escape(BADGE_PREFIX + status.replace(' ', '-'))}</code>"
+        css = status.replace(" ", "-")
+        return (
+            f'<span class="badge badge-{css}">'
+            f'<span class="badge-shape" aria-hidden="true">{badge_svgs[status]}</span>'
+            f'<span class="badge-word">{html.escape(status)}</span></span>'
+        )
 
-    def table_open(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
-        return '<div class="table-wrap"><table>\n'
-
-    def table_close(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
-        return "</table></div>\n"
-
-    md.add_render_rule("fence", fence)
-    md.add_render_rule("code_inline", code_inline)
-    md.add_render_rule("table_open", table_open)
-    md.add_render_rule("table_close", table_close)
-    body = md.renderer.render(tokens, md.options, env)
+    seen: dict[str, int] = {}
+    sections: list[tuple[str, str]] = []
+    parts: list[str] = []
+    in_card = False
+    for text in _split_sections(markdown):
+        body, tag, heading = _render_section(text)
+        if tag in ("h1", "h2", "h3", "h4") and in_card:
+            parts.append("</section>\n")
+            in_card = False
+        if tag in ("h2", "h3"):
+            ident = _slug(heading, seen)
+            body = body.replace(f"<{tag}>", f'<{tag} id="{ident}">', 1)
+            if tag == "h2":
+                sections.append((ident, heading))
+        if tag == "h4":
+            parts.append('<section class="card">\n')
+            in_card = True
+        parts.append(body)
+    if in_card:
+        parts.append("</section>\n")
+    body = _BADGE_MARK.sub(badge, _FIGURE_MARK.sub(figure, "".join(parts)))
     nav = ""
     if toc and len(sections) > 1:
         items = "".join(f'<li><a href="#{ident}">{html.escape(text)}</a></li>' for ident, text in sections)
@@ -248,45 +253,96 @@ def render_html(
     )
 
 
-def _assign_ids(tokens: list[Token]) -> list[tuple[str, str]]:
-    """Give h2/h3 headings stable ids; return the (id, text) of h2 sections for the contents list."""
-    seen: dict[str, int] = {}
-    sections = []
-    for i, tok in enumerate(tokens):
-        if tok.type == "heading_open" and tok.tag in ("h2", "h3") and i + 1 < len(tokens):
-            inline = tokens[i + 1]
-            text = "".join(
-                child.content for child in inline.children or [] if child.type in ("text", "code_inline")
-            )
-            ident = _slug(text, seen)
-            tok.attrSet("id", ident)
-            if tok.tag == "h2":
-                sections.append((ident, text))
-    return sections
+# Placeholders the cached section renderer writes for figures and badges (NUL never survives into rendered
+# text: Markdown parsing replaces it by U+FFFD), filled in per document.
+_FIGURE_MARK = re.compile("\x00figure:([a-z0-9-]+)\x00\n?")
+_BADGE_MARK = re.compile("\x00badge:([a-z ]+)\x00")
+_ATX = re.compile(r"^#{1,6}(?:[ \t]|$)")
 
 
-def _html_token(content: str) -> Token:
-    tok = Token("html_block", "", 0)
-    tok.content = content
-    tok.block = True
-    return tok
+_CONTINUES = re.compile(r"^(?:[ \t]|[-+*][ \t]|\d{1,9}[.)][ \t])")
 
 
-def _wrap_cards(tokens: list[Token]) -> list[Token]:
-    """Wrap each h4 and the blocks after it (up to the next heading) in a <section class="card">."""
-    out: list[Token] = []
-    open_card = False
-    for tok in tokens:
-        if tok.type == "heading_open" and tok.tag in ("h1", "h2", "h3", "h4") and open_card:
-            out.append(_html_token("</section>\n"))
-            open_card = False
-        if tok.type == "heading_open" and tok.tag == "h4":
-            out.append(_html_token('<section class="card">\n'))
-            open_card = True
-        out.append(tok)
-    if open_card:
-        out.append(_html_token("</section>\n"))
+def _split_sections(markdown: str) -> list[str]:
+    """The document cut into pieces CommonMark renders independently: before every heading line, and at a blank
+    line when what follows cannot continue the block before it (it is not indented and is no list item, so it
+    can neither join a list nor an indented block). Nothing is cut inside a fence."""
+    out: list[str] = []
+    current: list[str] = []
+    fenced = False
+    blank = False
+    for line in markdown.split("\n"):
+        if line.startswith("```"):
+            if not fenced and current and (blank or _ATX.match(current[0])):
+                out.append("\n".join(current))
+                current = []
+            fenced = not fenced
+        elif not fenced and current and line.strip():
+            heading = _ATX.match(line) is not None
+            if heading or (blank and not _CONTINUES.match(line)):
+                out.append("\n".join(current))
+                current = []
+        blank = not line.strip() and not fenced
+        current.append(line)
+    if current:
+        out.append("\n".join(current))
     return out
+
+
+@lru_cache(maxsize=1)
+def _section_parser() -> MarkdownIt:
+    md = markdown_parser()
+
+    def fence(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        tok = toks[idx]
+        if tok.info.strip() == FIGURE_INFO and re.fullmatch(r"[a-z0-9-]+", tok.content.strip()):
+            return f"\x00figure:{tok.content.strip()}\x00\n"
+        return f"<pre><code>{html.escape(tok.content)}</code></pre>\n"
+
+    def code_inline(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        content = toks[idx].content
+        if content.startswith(BADGE_PREFIX) and re.fullmatch(r"[a-z-]+", content[len(BADGE_PREFIX) :]):
+            return f"\x00badge:{content[len(BADGE_PREFIX) :].replace('-', ' ')}\x00"
+        if content.startswith(CHIP_PREFIX) and content[len(CHIP_PREFIX) :] in LINK_STATES:
+            state = content[len(CHIP_PREFIX) :]
+            return f'<span class="chip chip-{state}">{state}</span>'
+        return f"<code>{html.escape(content)}</code>"
+
+    def image(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        # User text cannot form an image (its brackets are escaped); generated documents use figure markers
+        # when rendered for HTML. An image here is a Markdown-file figure link rendered by mistake.
+        raise InvalidInputError(
+            f"the document links to the image {toks[idx].attrGet('src')!r}; generate it for HTML "
+            "(within ivdossier.reports.mdtext.for_html()) so its figures are inlined."
+        )
+
+    def table_open(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        return '<div class="table-wrap"><table>\n'
+
+    def table_close(self: Any, toks: Sequence[Token], idx: int, options: Any, env_: Any) -> str:
+        return "</table></div>\n"
+
+    md.add_render_rule("fence", fence)
+    md.add_render_rule("code_inline", code_inline)
+    md.add_render_rule("image", image)
+    md.add_render_rule("table_open", table_open)
+    md.add_render_rule("table_close", table_close)
+    return md
+
+
+@lru_cache(maxsize=16384)
+def _render_section(text: str) -> tuple[str, str, str]:
+    """One section's HTML with figure and badge placeholders, its heading tag ('' if it has none) and text."""
+    md = _section_parser()
+    env: dict[str, Any] = {}
+    tokens = md.parse(text, env)
+    tag, heading = "", ""
+    if len(tokens) > 1 and tokens[0].type == "heading_open":
+        tag = tokens[0].tag
+        heading = "".join(
+            child.content for child in tokens[1].children or [] if child.type in ("text", "code_inline")
+        )
+    return md.renderer.render(tokens, md.options, env), tag, heading
 
 
 def _insert_after_first_h1(body: str, nav: str) -> str:

@@ -281,10 +281,9 @@ def plan_html(sealed: Mapping[str, Any], *, state: str, sha256: str = "") -> str
     """The plan as one self-contained HTML page."""
     from ivdossier.reports.html import render_html
 
-    return render_html(
-        plan_markdown(sealed, state=state, sha256=sha256),
-        title=str(sealed.get("title") or "Pre-analysis plan"),
-    )
+    with mt.for_html():
+        markdown = plan_markdown(sealed, state=state, sha256=sha256)
+    return render_html(markdown, title=str(sealed.get("title") or "Pre-analysis plan"))
 
 
 def verify_document(text: str, sealed: Mapping[str, Any], *, sha256: str, fmt: str) -> list[Difference]:

@@ -7,7 +7,10 @@ Layout::
 
     index.html
     catalogue.html
-    programs/<program>/index.html
+    studies.html                                  (when studies are recorded: each study and its audit)
+    programs/<program>/index.html                 (candidates side by side, plans, link to the runs)
+    programs/<program>/runs.html                  (every run of the program's instruments)
+    programs/<program>/plans/<plan>.html          (one page per pre-analysis plan)
     programs/<program>/instruments/<instrument>.html
 """
 
@@ -16,8 +19,10 @@ from __future__ import annotations
 import os
 import re
 import unicodedata
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 from ivdossier import safefiles
 from ivdossier.errors import InvalidInputError
@@ -26,8 +31,55 @@ from ivdossier.reports import resultview as rv
 from ivdossier.reports.dossier import CAUTIONS, dossier_html, headline_run
 from ivdossier.reports.estimates import ar_set_of, effective_f_of
 from ivdossier.reports.html import render_html
-from ivdossier.reports.inputs import CONDITIONS, CatalogEntry, DossierInput, LinkInfo, ProgramInfo
+from ivdossier.reports.inputs import (
+    CONDITIONS,
+    AuditInputs,
+    CatalogEntry,
+    DossierInput,
+    LinkInfo,
+    ProgramInfo,
+)
 from ivdossier.vocabulary import BROKEN, READING_ASPECTS
+
+if TYPE_CHECKING:
+    from ivdossier.estimation.audit import AuditSummary
+
+
+@dataclass(frozen=True)
+class PlanPage:
+    """A pre-analysis plan as the site shows it: its sealed form (drafts: the same shape, no freeze fields)."""
+
+    program: str
+    slug: str
+    title: str
+    state: str
+    instrument: str = ""
+    sealed: Mapping[str, Any] = field(default_factory=dict)
+    sha256: str = ""
+    frozen_at: str = ""
+
+
+@dataclass(frozen=True)
+class RunRow:
+    """One stored run on a program's runs page: what it is, when, whether primary, and its key results."""
+
+    program: str
+    instrument: str
+    slug: str
+    kind: str
+    created: str
+    primary: bool = False
+    summary: tuple[tuple[str, str], ...] = ()
+    warnings: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class StudiesAudit:
+    """Every recorded study and the re-examination of what it reported (the literature audit)."""
+
+    summary: AuditSummary
+    inputs: AuditInputs
+
 
 _RESERVED = {"con", "prn", "aux", "nul", *(f"com{i}" for i in range(10)), *(f"lpt{i}" for i in range(10))}
 _MAX_SLUG = 64
@@ -65,7 +117,7 @@ def _write(root: Path, relative: str, text: str, pages: dict[str, bytes]) -> Non
 
 def _is_site_file(rel: str, kind: str) -> bool:
     """Entries an earlier site build writes: the two top pages, and folders and pages under programs/."""
-    if rel in ("index.html", "catalogue.html"):
+    if rel in ("index.html", "catalogue.html", "studies.html"):
         return kind == "file"
     if rel == "programs" or rel.startswith("programs/"):
         return kind == "dir" or (kind == "file" and rel.endswith(".html"))
@@ -104,10 +156,14 @@ def build_site(
     catalog_entries: Sequence[CatalogEntry] = (),
     *,
     title: str = "Instrument dossiers",
+    plans: Sequence[PlanPage] = (),
+    runs: Sequence[RunRow] = (),
+    studies: StudiesAudit | None = None,
 ) -> list[Path]:
     """Write the site under `out_dir` and return the written files (index first).
 
     Dossiers are grouped by their program's slug; a dossier whose program is not in `programs` brings its own.
+    `plans` and `runs` are shown under their program; `studies` (when given) gets its own page.
     """
     root = Path(out_dir).expanduser().resolve()
     safefiles.clean_stale(root)
@@ -123,16 +179,49 @@ def build_site(
     by_program: dict[str, list[DossierInput]] = {p.slug: [] for p in ordered}
     for d in dossiers:
         by_program[d.program.slug].append(d)
+    extras = _Extras(plans=plans, runs=runs, studies=studies)
+    with mt.for_html():
+        written = _pages(root, ordered, by_program, program_dirs, dossiers, catalog_entries, title, extras)
+    # Every page is rendered before anything is written; then the whole site replaces the old one in one swap.
+    safefiles.replace_tree(root, written, allowed_old=old)
+    return [root.joinpath(*rel.split("/")) for rel in written]
+
+
+def _pages(
+    root: Path,
+    ordered: Sequence[ProgramInfo],
+    by_program: dict[str, list[DossierInput]],
+    program_dirs: dict[str, str],
+    dossiers: Sequence[DossierInput],
+    catalog_entries: Sequence[CatalogEntry],
+    title: str,
+    extras: _Extras,
+) -> dict[str, bytes]:
     stamp = _stamp(dossiers)
     written: dict[str, bytes] = {}
-    _write(root, "index.html", _index_page(ordered, by_program, program_dirs, title, stamp), written)
+    has_studies = extras.studies is not None and bool(extras.studies.inputs.studies)
+    _write(
+        root, "index.html", _index_page(ordered, by_program, program_dirs, title, stamp, has_studies), written
+    )
     _write(root, "catalogue.html", _catalogue_page(catalog_entries, stamp), written)
+    if has_studies and extras.studies is not None:
+        _write(root, "studies.html", _studies_page(extras.studies, stamp), written)
     for program in ordered:
         folder = program_dirs[program.slug]
         used: set[str] = set()
         files = {id(d): _unique(safe_slug(d.instrument.slug), used) for d in by_program[program.slug]}
-        page = _program_page(program, by_program[program.slug], files, stamp)
+        used_plans: set[str] = set()
+        plans = [pl for pl in extras.plans if pl.program == program.slug]
+        plan_files = {pl.slug: _unique(safe_slug(pl.slug), used_plans) for pl in plans}
+        runs = [r for r in extras.runs if r.program == program.slug]
+        by_slug = {d.instrument.slug: files[id(d)] for d in by_program[program.slug]}
+        page = _program_page(program, by_program[program.slug], files, stamp, plans, plan_files, len(runs))
         _write(root, f"programs/{folder}/index.html", page, written)
+        _write(root, f"programs/{folder}/runs.html", _runs_page(program, runs, by_slug, stamp), written)
+        for pl in plans:
+            _write(
+                root, f"programs/{folder}/plans/{plan_files[pl.slug]}.html", _plan_page(program, pl), written
+            )
         for d in by_program[program.slug]:
             nav = (
                 f"[All programs](../../../index.html) · [{mt.inline(program.title or program.slug)}](../index.html)"
@@ -144,9 +233,78 @@ def build_site(
                 dossier_html(d, preamble=nav),
                 written,
             )
-    # Every page is rendered before anything is written; then the whole site replaces the old one in one swap.
-    safefiles.replace_tree(root, written, allowed_old=old)
-    return [root.joinpath(*rel.split("/")) for rel in written]
+    return written
+
+
+@dataclass(frozen=True)
+class _Extras:
+    plans: Sequence[PlanPage]
+    runs: Sequence[RunRow]
+    studies: StudiesAudit | None
+
+
+def _studies_page(studies: StudiesAudit, stamp: str) -> str:
+    from ivdossier.reports.audit_doc import audit_markdown
+
+    body = audit_markdown(studies.summary, studies.inputs)
+    nav = "[All programs](index.html) · [Threat catalogue](catalogue.html)"
+    parts = [nav, body.rstrip()] + ([stamp] if stamp else [])
+    return render_html("\n\n".join(parts) + "\n", title="Studies and their audit", svgs={}, badges={})
+
+
+def _plan_page(program: ProgramInfo, plan: PlanPage) -> str:
+    from ivdossier.reports.plan_doc import plan_markdown
+
+    nav = (
+        f"[All programs](../../../index.html) · [{mt.inline(program.title or program.slug)}](../index.html)"
+        " · [Threat catalogue](../../../catalogue.html)"
+    )
+    body = plan_markdown(plan.sealed, state=plan.state, sha256=plan.sha256)
+    return render_html(nav + "\n\n" + body, title=f"Plan: {plan.title or plan.slug}", svgs={})
+
+
+def _runs_page(program: ProgramInfo, runs: Sequence[RunRow], files: Mapping[str, str], stamp: str) -> str:
+    parts = [
+        "[All programs](../../index.html) · [Program](index.html) · [Threat catalogue](../../catalogue.html)",
+        f"# Runs: {mt.inline(program.title or program.slug)}",
+    ]
+    if stamp:
+        parts.append(stamp)
+    if not runs:
+        parts.append("No runs have been stored for this program's instruments yet.")
+    by_instrument: dict[str, list[RunRow]] = {}
+    for r in runs:
+        by_instrument.setdefault(r.instrument, []).append(r)
+    for instrument, rows in sorted(by_instrument.items()):
+        page = files.get(instrument)
+        head = (
+            f"[{mt.inline(instrument)}](instruments/{page}.html)"
+            if page
+            else mt.inline(instrument or "no instrument")
+        )
+        table = mt.table(
+            ["Run", "Kind", "Created", "Primary", "Key results"],
+            [
+                [
+                    mt.cell(r.slug),
+                    mt.cell(r.kind),
+                    mt.cell(r.created),
+                    "yes" if r.primary else "–",
+                    "; ".join(f"{mt.inline(k)}: {mt.inline(v)}" for k, v in r.summary) or "–",
+                ]
+                for r in rows
+            ],
+            "lllcl",
+        )
+        warnings = [
+            f"- **Warning (run {mt.inline(r.slug)}):** {mt.inline(w)}" for r in rows for w in r.warnings
+        ]
+        parts.append(f"## {head}\n\n{table}" + ("\n\n" + "\n".join(warnings) if warnings else ""))
+    parts.append(
+        "The headline of each dossier uses the run marked primary, else the latest estimate; "
+        "`ivdossier run show RUN --json` gives a run's full results."
+    )
+    return render_html("\n\n".join(parts) + "\n", title=f"Runs: {program.title or program.slug}", svgs={})
 
 
 def _stamp(dossiers: Sequence[DossierInput]) -> str:
@@ -162,6 +320,7 @@ def _index_page(
     dirs: dict[str, str],
     title: str,
     stamp: str,
+    has_studies: bool = False,
 ) -> str:
     parts = [f"# {mt.inline(title)}"]
     if stamp:
@@ -187,9 +346,13 @@ def _index_page(
         )
     else:
         parts.append("No programs have been registered yet.")
-    parts.append(
-        "## Reference\n\n[The threat catalogue](catalogue.html) describes the recorded ways an instrument can fail, by condition."
-    )
+    reference = "[The threat catalogue](catalogue.html) describes the recorded ways an instrument can fail, by condition."
+    if has_studies:
+        reference += (
+            "\n\n[Studies and their audit](studies.html): earlier studies that used these instruments, their "
+            "critiques, and whether each reported result survives re-examination."
+        )
+    parts.append("## Reference\n\n" + reference)
     parts.append("## Cautions\n\n" + "\n\n".join(CAUTIONS[:3]))
     return render_html("\n\n".join(parts) + "\n", title=title, svgs={}, toc=False)
 
@@ -214,7 +377,13 @@ def _strongest_threat(links: Sequence[LinkInfo]) -> str:
 
 
 def _program_page(
-    program: ProgramInfo, dossiers: Sequence[DossierInput], files: dict[int, str], stamp: str
+    program: ProgramInfo,
+    dossiers: Sequence[DossierInput],
+    files: dict[int, str],
+    stamp: str,
+    plans: Sequence[PlanPage] = (),
+    plan_files: Mapping[str, str] | None = None,
+    n_runs: int = 0,
 ) -> str:
     parts = [
         "[All programs](../../index.html) · [Threat catalogue](../../catalogue.html)",
@@ -262,6 +431,25 @@ def _program_page(
         )
     else:
         parts.append("No candidate instruments have been registered for this program yet.")
+    if plans:
+        rows = [
+            [
+                f"[{mt.inline(pl.title or pl.slug)}](plans/{(plan_files or {})[pl.slug]}.html)",
+                mt.cell(pl.instrument),
+                "frozen" if pl.state == "frozen" else "draft (not sealed)",
+                mt.cell(pl.frozen_at),
+                mt.cell(pl.sha256[:12]),
+            ]
+            for pl in plans
+        ]
+        parts.append(
+            "## Pre-analysis plans\n\n"
+            + mt.table(["Plan", "Instrument", "State", "Frozen at", "SHA-256 (first 12)"], rows, "lllll")
+        )
+    parts.append(
+        f"## Runs\n\n[Every run of this program's instruments]({'runs.html'}) ({n_runs} stored), with its kind, "
+        "whether it is primary and its key results."
+    )
     parts.append("## Cautions\n\n" + "\n\n".join(CAUTIONS[:3]))
     title = f"Program: {program.title or program.slug}"
     return render_html("\n\n".join(parts) + "\n", title=title, svgs={}, toc=False, wide=True)

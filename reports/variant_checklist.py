@@ -16,10 +16,10 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 from ivdossier.errors import InvalidInputError
-from ivdossier.estimation.variant_summary import NotApplicable, SummaryEvidence
 from ivdossier.reports.mdtext import inline
 
 if TYPE_CHECKING:
+    from ivdossier.estimation.variant_summary import SummaryEvidence
     from ivdossier.reports.inputs import DossierInput
 
 GUIDELINE = (
@@ -188,6 +188,8 @@ class FilledChecklist:
 
 
 def _answer(evidence: SummaryEvidence, key: str) -> str:
+    from ivdossier.estimation.variant_summary import NotApplicable
+
     part: Any = getattr(evidence, key)
     if isinstance(part, NotApplicable):
         return ""
@@ -208,6 +210,7 @@ def fill_checklist(
     evidence: SummaryEvidence | None = None, notes: Mapping[str, str] | None = None
 ) -> FilledChecklist:
     """Mark each item computed (from ``evidence``), provided (a team note under its code) or missing."""
+
     given = dict(notes or {})
     codes = {i.code for i in ITEMS}
     unknown = sorted(set(given) - codes)
@@ -284,6 +287,8 @@ def dossier_checklist(inp: DossierInput) -> FilledChecklist | None:
 
     if inp.instrument.family != FAMILY:
         return None
+    from ivdossier.estimation.variant_summary import SummaryEvidence
+
     evidence: SummaryEvidence | None = None
     for run in sorted(inp.evidence_runs, key=lambda r: (r.created_text, r.slug)):
         record = run.results.get(RECORD_KEY) if isinstance(run.results, Mapping) else None

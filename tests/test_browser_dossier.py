@@ -198,3 +198,65 @@ def test_site_index_links_through_to_a_dossier(driver: Any, tmp_path: Path) -> N
     assert len(boxes) == 3 and min(boxes) > 50
     urls = _requested_urls(driver)
     assert urls and all(u.startswith(("file:", "data:")) for u in urls), urls
+
+
+def _wide_comparison(tmp_path: Path) -> Path:
+    """A program of five candidates with long names, long threat titles and real estimates, one of them weak
+    with an Anderson-Rubin set of two rays (the widest cell the table can hold)."""
+    from ivdossier.reports.inputs import LinkInfo, Rating
+    from ivdossier.workflows.sample import sample_result, sample_run
+
+    dossiers = []
+    for i in range(5):
+        strength, seed = (0.05, 1) if i == 0 else (0.6, i)  # seed 1 at 0.05: AR set (−∞, 0.549] ∪ [1.278, ∞)
+        run = sample_run(1, sample_result(strength=strength, seed=seed, instruments=("fibre_wave",)))
+        base = dataclasses.replace(sample_input(n_links=3, n_runs=1), runs=(run,))
+        long_link = LinkInfo(
+            threat_code=f"TH-LONG-{i:02d}",
+            title="Roll-out schedule follows district income, which also shapes emergency use through many paths",
+            condition="exogeneity",
+            state="open",
+            ratings=(Rating("ana", 5, 5),),
+        )
+        dossiers.append(
+            with_verdicts(
+                dataclasses.replace(
+                    base,
+                    instrument=InstrumentInfo(
+                        slug=f"candidate-{i}",
+                        name=f"Months since the regional fibre roll-out reached the postal district, variant {i}",
+                        family="timing-of-entry-or-rollout-schedule",
+                        state="under review by the whole team",
+                        claims=base.instrument.claims,
+                    ),
+                    links=(*base.links, long_link),
+                )
+            )
+        )
+    root = tmp_path / "site"
+    build_site(root, [PROGRAM], dossiers, [])
+    return root / "programs" / "telehealth-ed" / "index.html"
+
+
+def test_the_comparison_table_needs_no_horizontal_scroll_at_1280_px(driver: Any, tmp_path: Path) -> None:
+    page = _wide_comparison(tmp_path)
+    driver.set_window_size(1280, 1000)
+    driver.get(page.as_uri())
+    width = driver.execute_script("return window.innerWidth")
+    assert width <= 1280
+    doc = driver.execute_script("return document.documentElement.scrollWidth")
+    assert doc <= width, f"the page scrolls sideways: {doc} px of content in a {width} px window"
+    wraps = driver.execute_script(
+        "return Array.from(document.querySelectorAll('.table-wrap')).map(w => [w.scrollWidth, w.clientWidth])"
+    )
+    assert wraps and all(scroll <= client for scroll, client in wraps), wraps
+    cells = driver.execute_script(
+        "return Array.from(document.querySelectorAll('tbody tr')).map(r => r.lastElementChild.innerText)"
+    )
+    assert len(cells) == 5 and "∪" in "".join(cells), cells  # the two-ray AR set is in the table
+    # every badge still shows its shape and its whole word on one line
+    badges = driver.execute_script(
+        "return Array.from(document.querySelectorAll('tbody .badge')).map(b => b.getClientRects().length)"
+    )
+    assert len(badges) == 5 * 4 and all(n == 1 for n in badges), badges
+    _full_screenshot(driver, ARTIFACTS / "site-comparison-1280.png")

@@ -39,7 +39,7 @@ def test_planted_exclusion_violation_is_not_reported_as_holding(demo_dir: Path) 
     text = (demo_dir / "dossiers" / "clerk-video-rate.md").read_text(encoding="utf-8")
     glance = text.split("## At a glance", 1)[1].split("\n## ", 1)[0]
     exclusion = next(line for line in glance.splitlines() if line.startswith("| Exclusion"))
-    assert "verdict:broken" in exclusion or "verdict:at-risk" in exclusion
+    assert "| ■ broken |" in exclusion or "| ▲ at risk |" in exclusion
 
 
 def test_demo_refuses_a_non_empty_folder_and_never_clears_foreign_files(tmp_path: Path) -> None:

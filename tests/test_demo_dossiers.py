@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import re
+import xml.etree.ElementTree as ET
 from pathlib import Path
 
 import pytest
@@ -17,7 +18,7 @@ from ivdossier.workflows.demo import INSTRUMENTS, build_demo, demo_markdown, tic
 
 GOLDEN = Path(__file__).resolve().parent / "golden"
 SLUGS = [spec["slug"] for spec in INSTRUMENTS]
-BADGE = re.compile(r"`verdict:([a-z-]+)`")
+VERDICT = r"(?:● holds|▲ at risk|■ broken|◌ not assessed)"  # glyph and word, as a Markdown file writes it
 
 
 @pytest.fixture(scope="module")
@@ -35,10 +36,13 @@ def rendered(demo_dir: Path) -> dict[str, str]:
 def glance(markdown: str) -> dict[str, str]:
     """Condition -> verdict key from the "At a glance" table of a Markdown dossier."""
     section = markdown.split("## At a glance", 1)[1].split("\n## ", 1)[0]
-    rows = re.findall(
-        r"^\| (Relevance|Exclusion|Exogeneity|Monotonicity) \| `verdict:([a-z-]+)` \|", section, re.M
-    )
-    return {condition.lower(): key for condition, key in rows}
+    rows = re.findall(rf"^\| (Relevance|Exclusion|Exogeneity|Monotonicity) \| ({VERDICT}) \|", section, re.M)
+    return {condition.lower(): _key(verdict) for condition, verdict in rows}
+
+
+def _key(verdict: str) -> str:
+    """'▲ at risk' -> 'at-risk' (the key the HTML badges and the diagram use)."""
+    return verdict.split(" ", 1)[1].replace(" ", "-")
 
 
 def diagram_badges(html: str) -> dict[str, str]:
@@ -57,7 +61,8 @@ def test_table_and_diagram_show_the_same_verdict_per_condition(demo_dir: Path, s
     for condition, key in table.items():
         part = markdown.split(f"### {condition.capitalize()} — ", 1)
         if len(part) == 2:
-            assert BADGE.search(part[1]).group(1) == key  # type: ignore[union-attr]
+            found = re.search(rf"Verdict: ({VERDICT})", part[1])
+            assert found is not None and _key(found.group(1)) == key
 
 
 @pytest.mark.parametrize("slug", SLUGS)
@@ -116,8 +121,38 @@ def test_site_terminal_and_plan_render_the_same_verdicts(demo_dir: Path, cli) ->
         registry.dispose()
     plan = plan_markdown({"title": "Plan", "content": content}, state="draft")
     section = plan.split("Verdicts when the plan was drafted", 1)[1].split("\n## ", 1)[0]
-    rows = re.findall(r"^\| (\w+) \| `verdict:([a-z-]+)` \|", section, re.M)
-    assert {c.lower(): k for c, k in rows} == tables["fibre-wave"]
+    rows = re.findall(rf"^\| (\w+) \| ({VERDICT}) \|", section, re.M)
+    assert {c.lower(): _key(k) for c, k in rows} == tables["fibre-wave"]
+
+
+@pytest.mark.parametrize("slug", SLUGS)
+def test_markdown_dossier_links_its_figures_as_svg_files_beside_it(demo_dir: Path, slug: str) -> None:
+    folder = demo_dir / "dossiers"
+    text = (folder / f"{slug}.md").read_text(encoding="utf-8")
+    links = re.findall(r"^!\[[^\n]+\]\(([^)\s]+)\)$", text, re.M)
+    assert len(links) >= 2  # at least the causal diagram and one plot
+    assert all(link.startswith(f"{slug}-figures/") and link.endswith(".svg") for link in links), links
+    for link in links:  # every image link resolves to a well-formed SVG file
+        svg = folder / link
+        assert svg.is_file(), link
+        assert ET.fromstring(svg.read_bytes()).tag == "{http://www.w3.org/2000/svg}svg", link
+    # the folder holds exactly the figures the document links to: nothing stale, nothing missing
+    assert sorted(p.name for p in (folder / f"{slug}-figures").iterdir()) == sorted(
+        Path(link).name for link in links
+    )
+
+
+@pytest.mark.parametrize("slug", SLUGS)
+def test_documents_carry_no_markers_or_stray_escapes(demo_dir: Path, slug: str) -> None:
+    md = (demo_dir / "dossiers" / f"{slug}.md").read_text(encoding="utf-8")
+    html = (demo_dir / "dossiers" / f"{slug}.html").read_text(encoding="utf-8")
+    for text in (md, html):
+        assert re.search(r"`?(verdict|state):[a-z]", text) is None  # no marker left anywhere
+        assert "ivdossier-figure" not in text
+        assert "\\`" not in text  # no escaped backtick shown as text
+        assert "\\-" not in text and "\\>" not in text and "\\&gt;" not in text  # no "\-\>" in paths
+    body = html.split("<body>", 1)[1]
+    assert "\\" not in re.sub(r"<svg.*?</svg>", "", body, flags=re.S)  # no backslash reaches the page
 
 
 @pytest.mark.parametrize("slug", SLUGS)

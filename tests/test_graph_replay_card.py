@@ -85,7 +85,7 @@ def test_card_college_proximity_graph_session(cli, tmp_path: Path) -> None:  # t
     assert code == 0 and trail == [("create", ""), ("delete", "controls cover it")]
 
     # 3. geography as a common cause of nearc4 and lwage, for nearc4 only: nearc2's dossier does not move
-    before = tmp_path / "nearc2-before.md"
+    before = tmp_path / "before" / "nearc2.md"  # same file name, so the figure links name the same folder
     assert cli("dossier", "nearc2", "--out", str(before))[0] == 0
     code, _, err = cli("graph", "edge", "add", "card", "geography", "nearc4")
     assert code == 2 and "--instrument nearc4" in err
@@ -95,11 +95,17 @@ def test_card_college_proximity_graph_session(cli, tmp_path: Path) -> None:  # t
     checked = json.loads(out)
     assert "nearc4 <- geography -> lwage" in [p["path"] for p in checked["open_paths"]]
     assert {v["condition"]: v["status"] for v in checked["verdicts"]}["exogeneity"] == "broken"
-    after = tmp_path / "nearc2-after.md"
+    after = tmp_path / "after" / "nearc2.md"
     assert cli("dossier", "nearc2", "--out", str(after))[0] == 0
     assert _without_clock(after.read_text(encoding="utf-8")) == _without_clock(
         before.read_text(encoding="utf-8")
     )
+    figures = sorted(p.name for p in (before.parent / "nearc2-figures").iterdir())
+    assert figures and all(
+        (after.parent / "nearc2-figures" / name).read_bytes()
+        == (before.parent / "nearc2-figures" / name).read_bytes()
+        for name in figures
+    )  # the diagram file is unchanged too
     assert cli("dossier", "nearc4", "--out", str(tmp_path / "nearc4.html"))[0] == 0
     code, _, err = cli("site", str(tmp_path / "site"))
     assert code == 0, err

@@ -45,7 +45,7 @@ def test_plan_life_cycle(cli, tmp_path: Path, monkeypatch) -> None:  # type: ign
     assert (code, out.strip()) == (0, "plan fibre-plan drafted for fibre"), err
     text = draft_md.read_text("utf-8")
     assert "**Draft — not sealed.**" in text
-    assert "Telehealth \\<b\\>and\\</b\\> ED" in text  # user text escaped, never raw HTML
+    assert "Telehealth \\<b>and\\</b> ED" in text  # user text escaped ("<" opens no tag), never raw HTML
     assert "Only \\*through\\* video visits." in text
     assert "## Power and minimum detectable effect" in text and "Minimum detectable effect" in text
     assert "Statistics cannot establish exclusion or exogeneity." in text

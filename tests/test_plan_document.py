@@ -61,10 +61,7 @@ def test_sections_in_order_and_rules_as_readable_conditions() -> None:
     hostile = _sealed()
     hostile["content"]["decision_rules"][0]["when"] = {"statistic": "verdict:holds", "op": ">=", "value": 1}
     assert "`verdict:" not in plan_markdown(hostile, state="draft")
-    assert (
-        "- **When:** strength.effective\\_f.statistic ≥ strength.effective\\_f.critical\\_values.tau\\_10pct"
-        in md
-    )
+    assert "- **When:** strength.effective_f.statistic ≥ strength.effective_f.critical_values.tau_10pct" in md
     assert "| fibre | DG-E01 | Roads | exclusion | open | placebo-outcome (ivdossier falsify placebo) |" in md
     assert "Statistics cannot establish exclusion or exogeneity." in md and "need domain review" in md
     # a rule over another kind of run says which runs it applies to; an estimate's rules say nothing more
@@ -87,7 +84,7 @@ def test_user_text_is_escaped_and_html_is_inert() -> None:
     assert "**Draft — not sealed.**" in md
     assert (
         re.search(r"(?<!\\)<img", md) is None
-        and "\\<img src=x onerror=alert(1)\\> \\*\\*loud\\*\\* \\`code\\`" in md
+        and "\\<img src=x onerror=alert(1)> \\*\\*loud\\*\\* \\`code\\`" in md
     )
     html = plan_html(sealed, state="draft")
     assert "<img" not in html and "onerror=alert(1)&gt;" in html

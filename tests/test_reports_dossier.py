@@ -45,10 +45,15 @@ def test_summary_comes_first_and_gives_each_condition_a_verdict_and_reason() -> 
     md = dossier_markdown(with_verdicts(sample_input()))
     glance = md.split("## At a glance")[1].split("\n## ")[0]
     for condition in ("Relevance", "Exclusion", "Exogeneity", "Monotonicity"):
-        assert re.search(rf"^\| {condition} \| `verdict:[a-z-]+` \| .+ \| [A-Z]\d \|$", glance, re.M), (
-            condition
-        )
-    assert "`verdict:broken`" in glance  # the sample diagram has a path around the treatment
+        # a verdict is its plain-text glyph and its word, never a code span
+        assert re.search(
+            rf"^\| {condition} \| (● holds|▲ at risk|■ broken|◌ not assessed) \| .+ \| [A-Z]\d \|$",
+            glance,
+            re.M,
+        ), condition
+    assert "| ■ broken |" in glance  # the sample diagram has a path around the treatment
+    assert "`verdict:" not in md and "`state:" not in md
+    assert mt.GLYPH_LEGEND in glance
     assert "lifecycle state: **under review**" in md.split("## At a glance")[0]
 
 
@@ -98,7 +103,7 @@ def test_every_number_of_the_latest_run_is_reported_as_given() -> None:
     fs = suite.first_stage.rows[0]
     coef, se = fs.coefficients["fibre_wave"], fs.std_errors["fibre_wave"]
     expected = (
-        f"| fibre\\_wave | {rv.fmt(coef)} ({rv.fmt(se)}) | {rv.fmt(fs.partial_f)} | {rv.fmt(fs.robust_f)} | "
+        f"| fibre_wave | {rv.fmt(coef)} ({rv.fmt(se)}) | {rv.fmt(fs.partial_f)} | {rv.fmt(fs.robust_f)} | "
         f"{rv.fmt(fs.partial_r2, 3)} |"
     )
     assert expected in detail.replace("| telehealth ", "|")
@@ -155,13 +160,18 @@ def test_not_applicable_diagnostics_are_left_out_or_give_their_reason() -> None:
 
 
 def test_plots_and_diagram_are_referenced_only_when_their_data_exist() -> None:
-    md = dossier_markdown(sample_input())
-    assert "```ivdossier-figure\nfirst-stage\n```" in md
-    assert "```ivdossier-figure\nar-curve\n```" in md
-    assert "```ivdossier-figure\ncausal-diagram\n```" in md
+    md = dossier_markdown(sample_input(), figure_dir="my dossier-figures")
+    # figures are ordinary Markdown images linking to SVG files in the folder beside the document
+    images = re.findall(r"^!\[[^\n]*\]\(([^)]+)\)$", md, re.M)
+    assert images == [
+        "my%20dossier-figures/causal-diagram.svg",
+        "my%20dossier-figures/first-stage.svg",
+        "my%20dossier-figures/ar-curve.svg",
+    ]
+    assert "ivdossier-figure" not in md
     plain = dataclasses.replace(sample_input(), runs=(make_run(1, plots=False),), graph=None)
     md = dossier_markdown(plain)
-    assert "ivdossier-figure" not in md
+    assert "![" not in md
     assert "## Causal diagram" not in md
 
 
@@ -179,7 +189,7 @@ def test_provenance_lists_fingerprints_specs_versions_and_who_did_what() -> None
     assert "`01" + "ab3f" * 15 + "9c`" in prov
     assert "Options shared by every run:" in prov  # identical specs are shown once
     assert "Options that differ between runs:" not in prov
-    assert "| controls | age, sex, distance\\_to\\_ed |" in prov
+    assert "| controls | age, sex, distance_to_ed |" in prov
     assert "| numpy | 2.1.3 |" in prov
     assert "| ana | create ×1, run ×1 | 2026-11-02T08:00:00+00:00 | 2026-11-04T11:00:00+00:00 |" in prov
 
@@ -244,7 +254,7 @@ def test_the_graph_checkers_svg_is_inlined_as_the_diagram() -> None:
         )
     )
     md = dossier_markdown(inp)
-    assert "| Exclusion | violated in the diagram | fibre\\_wave → pharmacy → ed\\_visits |" in md
+    assert "| Exclusion | violated in the diagram | fibre_wave → pharmacy → ed_visits |" in md
     page = dossier_html(inp)
     start = page.index('<figure class="figure" id="figure-causal-diagram">')
     assert page[start:].split(">", 1)[1].startswith("<svg")
@@ -259,7 +269,7 @@ def test_specs_that_differ_are_tabulated_run_by_run() -> None:
     )
     md = dossier_markdown(dataclasses.replace(sample_input(), runs=runs))
     prov = md.split("### Exact specifications")[1].split("###")[0]
-    assert "| outcome | ed\\_visits |" in prov and "| weights | (none) |" in prov
+    assert "| outcome | ed_visits |" in prov and "| weights | (none) |" in prov
     assert "| Run | method |" in prov
     assert "| run-002 | liml |" in prov
 

@@ -58,12 +58,18 @@ def test_a_diagram_whose_labels_look_like_markup_renders_escaped(label: str) -> 
 )
 def test_figures_that_could_run_code_or_fetch_are_refused(bad: str) -> None:
     with pytest.raises(InvalidInputError, match=r"figure 'plot'"):
-        render_html(mt.figure("plot", "caption"), title="t", svgs={"plot": bad})
+        render_html(html_figure(), title="t", svgs={"plot": bad})
+
+
+def html_figure() -> str:
+    """A figure as generated for the HTML renderer (the marker it inlines the SVG for)."""
+    with mt.for_html():
+        return mt.figure("plot", "caption")
 
 
 def test_text_in_a_figure_is_not_judged_by_its_wording() -> None:
     svg = '<svg xmlns="http://www.w3.org/2000/svg"><text>wave onset=2019; see javascript: url(x)</text></svg>'
-    page = render_html(mt.figure("plot", "caption"), title="t", svgs={"plot": svg})
+    page = render_html(html_figure(), title="t", svgs={"plot": svg})
     assert "wave onset=2019" in page
 
 
@@ -105,6 +111,7 @@ def test_a_site_replaces_only_an_earlier_site(tmp_path: Path) -> None:
         "catalogue.html",
         "index.html",
         "programs/telehealth-ed/index.html",
+        "programs/telehealth-ed/runs.html",
     ]
     mine = tmp_path / "mine"
     mine.mkdir()

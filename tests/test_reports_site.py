@@ -12,7 +12,7 @@ from ivdossier.estimation.diagnostics import DiagnosticSuite
 from ivdossier.reports import resultview as rv
 from ivdossier.reports.inputs import CatalogEntry, InstrumentInfo, ProgramInfo
 from ivdossier.reports.sample import PROGRAM, make_run, sample_input
-from ivdossier.reports.site import build_site, safe_slug
+from ivdossier.reports.site import PlanPage, RunRow, build_site, safe_slug
 from ivdossier.workflows.sample import sample_dossier_input
 from ivdossier.workflows.verdicts import with_verdicts
 
@@ -80,16 +80,30 @@ def test_site_layout_and_relative_links(tmp_path: Path) -> None:
             ("placebo outcome",),
         ),
     ]
-    written = build_site(tmp_path, [PROGRAM], [with_verdicts(d) for d in dossiers], catalogue)  # type: ignore[arg-type]
+    plan = PlanPage(program=PROGRAM.slug, slug="fibre-plan", title="Plan for the fibre wave", state="draft",
+                    sealed={"title": "Plan for the fibre wave", "content": {}})  # fmt: skip
+    run = RunRow(program=PROGRAM.slug, instrument="mast", slug="mast-estimate-1", kind="estimate",
+                 created="2026-11-02T08:00:00+00:00")  # fmt: skip
+    written = build_site(
+        tmp_path,
+        [PROGRAM],
+        [with_verdicts(d) for d in dossiers],
+        catalogue,
+        plans=[plan],
+        runs=[run],  # type: ignore[arg-type]
+    )
     rel = sorted(str(p.relative_to(tmp_path.resolve())) for p in written)
     assert rel == sorted(
         [
             "index.html",
             "catalogue.html",
             "programs/telehealth-ed/index.html",
+            "programs/telehealth-ed/runs.html",
+            "programs/telehealth-ed/plans/fibre-plan.html",
             "programs/telehealth-ed/instruments/fibre-wave.html",
             "programs/telehealth-ed/instruments/mast.html",
             "programs/telehealth-ed-2/index.html",
+            "programs/telehealth-ed-2/runs.html",
             "programs/telehealth-ed-2/instruments/z.html",
         ]
     )
@@ -133,3 +147,53 @@ def test_program_page_compares_candidates(tmp_path: Path) -> None:
     assert eff is not None and f">{rv.fmt(eff.statistic)}<" in table  # the latest run's own numbers
     assert rv.fmt_set(latest.diagnostics.weak_iv_robust.anderson_rubin.intervals) in table
     assert table.count('class="badge ') == 8
+
+
+def test_site_pages_for_plans_runs_and_studies(tmp_path: Path) -> None:
+    from ivdossier.reports.inputs import AuditInputs, CritiqueInfo
+    from ivdossier.reports.site import StudiesAudit
+    from ivdossier.workflows.studies import build_audit
+
+    plans = [
+        PlanPage(program=PROGRAM.slug, slug="fibre-plan", title="Fibre <plan>", state="frozen", instrument="fibre-wave",
+                 sealed={"title": "Fibre <plan>", "plan": "fibre-plan", "content": {}, "frozen_at": "2026-11-01T10:00:00+00:00",
+                         "frozen_by": "ana"}, sha256="ab" * 32, frozen_at="2026-11-01T10:00:00+00:00"),
+    ]  # fmt: skip
+    runs = [
+        RunRow(program=PROGRAM.slug, instrument="fibre-wave", slug="fibre-wave-estimate-1", kind="estimate",
+               created="2026-11-02T08:00:00+00:00", primary=True,
+               summary=(("estimate of telehealth", "-0.41 (standard error 0.1)"),),
+               warnings=("only 12 clusters (G < 42)",)),
+        RunRow(program=PROGRAM.slug, instrument="fibre-wave", slug="fibre-wave-power-1", kind="power",
+               created="2026-11-03T08:00:00+00:00"),
+    ]  # fmt: skip
+    inputs = AuditInputs(
+        "all studies",
+        (("Good2019", "Good (2019)", {"estimate": 5.0, "std_error": 1.0, "first_stage_f": 200.0},
+          (CritiqueInfo("DG-E01", "Roads built with fibre", "exclusion", "ana", "see appendix"),)),),
+    )  # fmt: skip
+    build_site(tmp_path, [PROGRAM], [with_verdicts(sample_input())], plans=plans, runs=runs,
+               studies=StudiesAudit(build_audit(inputs), inputs))  # fmt: skip
+
+    program = (tmp_path / "programs" / "telehealth-ed" / "index.html").read_text(encoding="utf-8")
+    assert '<a href="plans/fibre-plan.html">Fibre &lt;plan&gt;</a>' in program  # user text stays text
+    assert "abababababab" in program and "frozen" in program
+    assert '<a href="runs.html">' in program
+
+    plan_page = (tmp_path / "programs" / "telehealth-ed" / "plans" / "fibre-plan.html").read_text(
+        encoding="utf-8"
+    )
+    assert "<title>Plan: Fibre &lt;plan&gt;</title>" in plan_page and "ab" * 32 in plan_page
+
+    runs_page = (tmp_path / "programs" / "telehealth-ed" / "runs.html").read_text(encoding="utf-8")
+    rows = re.findall(r"<tr>\s*<td[^>]*>([^<]+)</td>\s*<td[^>]*>([^<]+)</td>", runs_page)
+    assert rows == [("fibre-wave-estimate-1", "estimate"), ("fibre-wave-power-1", "power")]
+    assert '<a href="instruments/fibre-wave.html">fibre-wave</a>' in runs_page
+    assert "estimate of telehealth: -0.41 (standard error 0.1)" in runs_page
+    assert "only 12 clusters (G &lt; 42)" in runs_page
+
+    studies = (tmp_path / "studies.html").read_text(encoding="utf-8")
+    assert "Good (2019)" in studies and "DG-E01" in studies
+    assert "Statistics cannot establish exclusion or exogeneity." in studies
+    index = (tmp_path / "index.html").read_text(encoding="utf-8")
+    assert '<a href="studies.html">Studies and their audit</a>' in index

@@ -21,6 +21,7 @@ Visual language (meaning never rests on colour alone):
 
 from __future__ import annotations
 
+import bisect
 import hashlib
 import math
 import re
@@ -371,6 +372,20 @@ def _overlaps(a: Rect, b: Rect, pad: float = 0.0) -> bool:
     return a[0] < b[2] + pad and b[0] < a[2] + pad and a[1] < b[3] + pad and b[1] < a[3] + pad
 
 
+class PointIndex:
+    """Points sorted by x, to count those inside a box by bisection instead of testing every point."""
+
+    def __init__(self, points: Sequence[tuple[float, float]]) -> None:
+        ordered = sorted(points)
+        self.xs = [x for x, _ in ordered]
+        self.ys = [y for _, y in ordered]
+
+    def count(self, box: Rect) -> int:
+        """How many points lie in the closed box (left, top, right, bottom)."""
+        lo, hi = bisect.bisect_left(self.xs, box[0]), bisect.bisect_right(self.xs, box[2])
+        return sum(1 for y in self.ys[lo:hi] if box[1] <= y <= box[3])
+
+
 def _place_tags(
     tags: Sequence[tuple[str, list[tuple[float, float]], int]],
     obstacles: Sequence[Rect],
@@ -382,9 +397,10 @@ def _place_tags(
     placed: list[Rect] = []
     out: list[tuple[str, Rect, tuple[float, float] | None]] = []
     order = (20, 16, 24, 12, 28, 14, 26, 10, 30, 8, 32, 18, 22, 6, 34)
+    every = PointIndex([p for curve in curves for p in curve])
     for text, points, own in tags:
         w, h = text_width(text, TAG_SIZE, mono=True) + 8, TAG_H
-        others = [p for k, curve in enumerate(curves) if k != own for p in curve]
+        mine = PointIndex(curves[own] if 0 <= own < len(curves) else [])
         best: tuple[float, Rect] | None = None
         for rank, i in enumerate(order):
             px, py = points[i]
@@ -392,9 +408,8 @@ def _place_tags(
                 r = (px - w / 2, py + dy - h / 2, px + w / 2, py + dy + h / 2)
                 if any(_overlaps(r, o, 2) for o in placed) or any(_overlaps(r, o, 2) for o in obstacles):
                     continue
-                crossed = sum(
-                    1 for qx, qy in others if r[0] - 2 <= qx <= r[2] + 2 and r[1] - 2 <= qy <= r[3] + 2
-                )
+                box = (r[0] - 2, r[1] - 2, r[2] + 2, r[3] + 2)
+                crossed = every.count(box) - mine.count(box)  # points of other edges' curves in the box
                 score = crossed * 100 + rank + 3 * k
                 if best is None or score < best[0]:
                     best = (score, r)

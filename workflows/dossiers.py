@@ -18,15 +18,21 @@ from sqlmodel import Session, select
 from ivdossier import __version__
 from ivdossier.registry import records
 from ivdossier.registry.history import history
-from ivdossier.registry.instruments import covariates_of, edges_for
+from ivdossier.registry.instruments import covariates_of, edges_of
 from ivdossier.registry.models import (
     CONDITIONS,
+    AuditEvent,
+    Covariate,
     Dataset,
+    GraphEdge,
     Instrument,
+    Link,
     Member,
     Program,
     Rating,
     Run,
+    Study,
+    Threat,
 )
 from ivdossier.registry.runs import runs_of
 from ivdossier.registry.threats import links_of
@@ -39,6 +45,134 @@ from ivdossier.workflows.fragility import fragility_runs
 CONFOUNDER = "U"
 
 
+class RegistryReader:
+    """What dossiers read from the registry, through one session.
+
+    Used as is, each read is one query the first time it is asked (and remembered); after `preload` every read
+    comes from a few batch queries over the whole registry (`ivdossier.registry.bulk`: one per table), so the
+    site costs the same number of queries for ten instruments as for ten thousand. Both give the same rows in
+    the same order, so a dossier is identical either way.
+    """
+
+    def __init__(self, session: Session) -> None:
+        self.session = session
+        self._programs: dict[int, Program] = {}
+        self._links: dict[int, list[tuple[Link, Threat]]] = {}
+        self._ratings: dict[int, list[tuple[Rating, Member]]] = {}
+        self._runs: dict[int, list[Run]] = {}
+        self._datasets: dict[int, Dataset | None] = {}
+        self._covariates: dict[int, list[Covariate]] = {}
+        self._edges: dict[int, list[GraphEdge]] = {}
+        self._events: dict[str, list[AuditEvent]] | None = None
+        self._studies: list[Study] | None = None
+        self._entries: dict[tuple[int | None, int], Any] = {}
+        self.preloaded = False
+
+    def preload(self, instruments: Sequence[Instrument]) -> None:
+        """Read everything the dossiers of `instruments` show in one batch query per table."""
+        from ivdossier.registry import bulk
+
+        ids = [i.id for i in instruments if i.id is not None]
+        self._programs = bulk.programs(self.session)
+        links = bulk.links_by_instrument(self.session, ids)
+        self._links = {i: links.get(i, []) for i in ids}
+        link_ids = [lk.id for pairs in self._links.values() for lk, _ in pairs if lk.id is not None]
+        ratings = bulk.ratings_by_link(self.session, link_ids)
+        self._ratings = {i: ratings.get(i, []) for i in link_ids}
+        runs = bulk.runs_by_instrument(self.session, ids)
+        self._runs = {i: runs.get(i, []) for i in ids}
+        dataset_ids = {r.dataset_id for rs in self._runs.values() for r in rs if r.dataset_id}
+        found = bulk.datasets(self.session, dataset_ids)
+        self._datasets = {i: found.get(i) for i in dataset_ids}
+        self._covariates = dict(bulk.covariates_by_program(self.session))
+        self._edges = dict(bulk.edges_by_program(self.session))
+        uuids = [i.uuid for i in instruments] + [lk.uuid for pairs in self._links.values() for lk, _ in pairs]
+        self._events = dict(bulk.events_by_entity(self.session, uuids))
+        self._studies = list(self.session.exec(select(Study).order_by(Study.key)))
+        self.preloaded = True
+
+    def program(self, instrument: Instrument) -> Program:
+        pid = instrument.program_id
+        if pid not in self._programs:
+            self._programs[pid] = records.get_by_id(self.session, Program, pid)
+        return self._programs[pid]
+
+    def links(self, instrument: Instrument) -> list[tuple[Link, Threat]]:
+        key = instrument.id or 0
+        if key not in self._links:
+            self._links[key] = links_of(self.session, instrument)
+        return self._links[key]
+
+    def ratings(self, link: Link) -> list[tuple[Rating, Member]]:
+        key = link.id or 0
+        if key not in self._ratings:
+            self._ratings[key] = list(
+                self.session.exec(
+                    select(Rating, Member)
+                    .where(Rating.link_id == link.id, Rating.member_id == Member.id)
+                    .order_by(Member.handle, Rating.id)  # type: ignore[arg-type]
+                ).all()
+            )
+        return self._ratings[key]
+
+    def runs(self, instrument: Instrument) -> list[Run]:
+        key = instrument.id or 0
+        if key not in self._runs:
+            self._runs[key] = runs_of(self.session, instrument)
+        return self._runs[key]
+
+    def dataset(self, dataset_id: int | None) -> Dataset | None:
+        if not dataset_id:
+            return None
+        if dataset_id not in self._datasets:
+            self._datasets[dataset_id] = self.session.get(Dataset, dataset_id)
+        return self._datasets[dataset_id]
+
+    def covariates(self, program: Program) -> list[Covariate]:
+        key = program.id or 0
+        if key not in self._covariates:
+            self._covariates[key] = [] if self.preloaded else covariates_of(self.session, program)
+        return self._covariates[key]
+
+    def edges(self, instrument: Instrument) -> list[GraphEdge]:
+        """The team edges drawn in the instrument's graph: program-wide ones and those scoped to it."""
+        key = instrument.program_id
+        if key not in self._edges:
+            self._edges[key] = [] if self.preloaded else edges_of(self.session, self.program(instrument))
+        return [e for e in self._edges[key] if e.instrument_id is None or e.instrument_id == instrument.id]
+
+    def events(self, uuids: Sequence[str]) -> list[AuditEvent]:
+        if self._events is None:
+            return history(self.session, entity_uuids=set(uuids))
+        from ivdossier.registry.bulk import merged_events
+
+        return merged_events(self._events, uuids)
+
+    def any_studies(self) -> bool:
+        """Whether the registry records any study at all."""
+        if self._studies is None:
+            self._studies = list(self.session.exec(select(Study).order_by(Study.key)))
+        return bool(self._studies)
+
+    def has_studies(self, instrument: Instrument) -> bool:
+        """Whether any study is attached to the instrument or its family (decided without the audit's numerics)."""
+        if not self.any_studies():
+            return False
+        assert self._studies is not None
+        return any(
+            instrument.slug in (s.instruments or [])
+            or (instrument.family and instrument.family in (s.families or []))
+            for s in self._studies
+        )
+
+    def catalog_entry(self, threat: Threat) -> Any:
+        """The threat as a validated catalogue entry, validated once per threat (and version) per reader."""
+        key = (threat.id, threat.version)
+        if key not in self._entries:
+            self._entries[key] = catalog_entry(threat)
+        return self._entries[key]
+
+
 def graph_roles(program: Program, instrument: Instrument) -> dict[str, str]:
     """Node names for the graph: the data columns where known, else the role letters."""
     z = instrument.columns[0] if instrument.columns and len(instrument.columns) == 1 else instrument.slug
@@ -48,20 +182,27 @@ def graph_roles(program: Program, instrument: Instrument) -> dict[str, str]:
     return roles
 
 
-def conditioning_of(session: Session, instrument: Instrument, program: Program) -> set[str]:
+def conditioning_of(
+    session: Session, instrument: Instrument, program: Program, *, reader: RegistryReader | None = None
+) -> set[str]:
     """Measured covariates the headline estimation run (the primary one, else the latest) controlled for: the set
     W the graph check conditions on."""
-    runs = [r for r in runs_of(session, instrument) if r.run_kind == "estimate"]
+    reader = reader or RegistryReader(session)
+    runs = [r for r in reader.runs(instrument) if r.run_kind == "estimate"]
     if not runs:
         return set()
     headline = next((r for r in runs if r.is_primary), runs[-1])
     used = set((headline.spec or {}).get("controls", []) or [])
-    measured = {c.name for c in covariates_of(session, program) if c.measured}
+    measured = {c.name for c in reader.covariates(program) if c.measured}
     return used & measured
 
 
 def instrument_graph(
-    session: Session, instrument: Instrument, *, team_edges: Sequence[tuple[str, str]] | None = None
+    session: Session,
+    instrument: Instrument,
+    *,
+    team_edges: Sequence[tuple[str, str]] | None = None,
+    reader: RegistryReader | None = None,
 ) -> tuple[Any, GraphVerdict]:
     """Build the instrument's causal graph from its program, linked threats and team edges, and check it.
 
@@ -70,27 +211,30 @@ def instrument_graph(
     it would close a cycle with a newly linked threat) is left out and named in ``G.graph["skipped_edges"]``."""
     from ivdossier.threats_catalog.graph import add_team_edges, check_instrument
 
-    G = base_graph(session, instrument)
+    reader = reader or RegistryReader(session)
+    G = base_graph(session, instrument, reader=reader)
     if team_edges is None:
-        team_edges = [(e.source, e.target) for e in edges_for(session, instrument)]
+        team_edges = [(e.source, e.target) for e in reader.edges(instrument)]
     G.graph["skipped_edges"] = add_team_edges(G, team_edges)
-    roles = graph_roles(records.get_by_id(session, Program, instrument.program_id), instrument)
-    program = records.get_by_id(session, Program, instrument.program_id)
-    verdict = check_instrument(G, conditioning=conditioning_of(session, instrument, program), **roles)
+    program = reader.program(instrument)
+    roles = graph_roles(program, instrument)
+    conditioning = conditioning_of(session, instrument, program, reader=reader)
+    verdict = check_instrument(G, conditioning=conditioning, **roles)
     return G, verdict
 
 
-def base_graph(session: Session, instrument: Instrument) -> Any:
+def base_graph(session: Session, instrument: Instrument, *, reader: RegistryReader | None = None) -> Any:
     """The instrument's graph without team edges: roles, declared covariates and linked threats' fragments."""
     from ivdossier.threats_catalog.graph import build_graph
 
-    program = records.get_by_id(session, Program, instrument.program_id)
+    reader = reader or RegistryReader(session)
+    program = reader.program(instrument)
     fragments = []
     states: dict[str, str] = {}
-    for link, threat in links_of(session, instrument):
+    for link, threat in reader.links(instrument):
         states[threat.code] = link.state
-        fragments.append(catalog_entry(threat).fragment)
-    covariates = {c.name: c.measured for c in covariates_of(session, program)}
+        fragments.append(reader.catalog_entry(threat).fragment)
+    covariates = {c.name: c.measured for c in reader.covariates(program)}
     return build_graph(
         **graph_roles(program, instrument),
         covariates=covariates,
@@ -126,26 +270,24 @@ def check_finding(check: str, runs: Sequence[Run]) -> str:
         return ""
     if not spec.computable:
         return spec.how_to_run
-    kind = run_kind_for_command(spec.command)
+    try:
+        kind = run_kind_for_command(spec.command)
+    except KeyError:  # a check answered by a command that stores no run (e.g. comparing runs with a plan)
+        return f"answered by a command, not by a stored run (command: {spec.command})"
     candidates = [r for r in reversed(runs) if r.run_kind == kind]
     if check == "over-identification":
         candidates = [
             r for r in candidates if ((r.results or {}).get("overid") or {}).get("p_value") is not None
         ]
     if not candidates:
-        return f"not run yet (`{spec.command}`)"
+        return f"not run yet (command: {spec.command})"
     return f"{finding(check, candidates[0].results or {})} (run {candidates[0].slug})"
 
 
-def _ratings(session: Session, link_id: int | None) -> tuple[ri.Rating, ...]:
-    rows = session.exec(
-        select(Rating, Member)
-        .where(Rating.link_id == link_id, Rating.member_id == Member.id)
-        .order_by(Member.handle)
-    ).all()
+def _ratings(reader: RegistryReader, link: Link) -> tuple[ri.Rating, ...]:
     return tuple(
         ri.Rating(reviewer=m.handle, likelihood=r.likelihood, severity=r.severity, comment=r.comment)
-        for r, m in rows
+        for r, m in reader.ratings(link)
     )
 
 
@@ -174,7 +316,7 @@ def canonical_spec_order(spec: Mapping[str, Any]) -> dict[str, Any]:
     return {k: spec[k] for k in [*known, *sorted(k for k in spec if k not in SPEC_ORDER)]}
 
 
-def run_info(session: Session, run: Run) -> ri.RunInfo:
+def run_info(session: Session, run: Run, *, reader: RegistryReader | None = None) -> ri.RunInfo:
     """A stored run as the reports layer reads it, with its plot summaries, primary mark and inference warnings."""
     from ivdossier.workflows.run_records import warnings_of
 
@@ -182,7 +324,7 @@ def run_info(session: Session, run: Run) -> ri.RunInfo:
     plots: Mapping[str, Any] = results.get("plot_data") or {}
     bins = plots.get("first_stage_bins")
     curve = plots.get("ar_curve")
-    dataset = session.get(Dataset, run.dataset_id) if run.dataset_id else None
+    dataset = (reader or RegistryReader(session)).dataset(run.dataset_id)
     return ri.RunInfo(
         slug=run.slug,
         created_at=run.created_at,
@@ -213,7 +355,7 @@ def run_info(session: Session, run: Run) -> ri.RunInfo:
     )
 
 
-def _links(session: Session, inst: Instrument, all_runs: Sequence[Run]) -> tuple[ri.LinkInfo, ...]:
+def _links(reader: RegistryReader, inst: Instrument, all_runs: Sequence[Run]) -> tuple[ri.LinkInfo, ...]:
     return tuple(
         ri.LinkInfo(
             threat_code=threat.code,
@@ -222,12 +364,12 @@ def _links(session: Session, inst: Instrument, all_runs: Sequence[Run]) -> tuple
             state=link.state,
             argument=link.argument,
             evidence=link.evidence,
-            ratings=_ratings(session, link.id),
+            ratings=_ratings(reader, link),
             checks=tuple(
                 ri.CheckInfo(name=c, finding=check_finding(c, all_runs)) for c in (threat.checks or [])
             ),
         )
-        for link, threat in links_of(session, inst)
+        for link, threat in reader.links(inst)
     )
 
 
@@ -268,18 +410,42 @@ def dossier_input(
     generated_at: datetime | str,
     relative_to: Path | None = None,
     reproducible: bool = False,
+    reader: RegistryReader | None = None,
 ) -> ri.DossierInput:
     """Everything the dossier of instrument `slug` shows, read in one session, with its verdicts derived once.
 
     `relative_to` shows dataset paths relative to that folder when they lie inside it; `reproducible` leaves out
     what differs from machine to machine (run timings and installed package versions), for golden files.
+    `reader` shares reads between many dossiers (the site preloads one).
     """
     from ivdossier.threats_catalog.draw import render_svg
 
     inst = records.get(session, Instrument, slug)
+    return _dossier_input(
+        session,
+        inst,
+        generated_at=generated_at,
+        relative_to=relative_to,
+        reproducible=reproducible,
+        reader=reader or RegistryReader(session),
+        render_svg=render_svg,
+    )
+
+
+def _dossier_input(
+    session: Session,
+    inst: Instrument,
+    *,
+    generated_at: datetime | str,
+    relative_to: Path | None,
+    reproducible: bool,
+    reader: RegistryReader,
+    render_svg: Any,
+) -> ri.DossierInput:
     G, inp = _assemble(
         session,
         inst,
+        reader=reader,
         generated_at=generated_at,
         relative_to=relative_to,
         reproducible=reproducible,
@@ -298,22 +464,23 @@ def _assemble(
     relative_to: Path | None,
     reproducible: bool,
     prior: bool,
+    reader: RegistryReader | None = None,
 ) -> tuple[Any, ri.DossierInput]:
     """The graph and the dossier input (without the drawing) with its verdicts derived once."""
     from ivdossier.reports.design_sections import KINDS as DESIGN_KINDS
     from ivdossier.workflows.evidence_runs import evidence_fields
     from ivdossier.workflows.verdicts import with_verdicts
 
-    program = records.get_by_id(session, Program, inst.program_id)
-    all_runs = runs_of(session, inst)
-    G, check = instrument_graph(session, inst)
+    reader = reader or RegistryReader(session)
+    program = reader.program(inst)
+    all_runs = reader.runs(inst)
+    G, check = instrument_graph(session, inst, reader=reader)
     runs = tuple(
-        _portable(run_info(session, r), relative_to, reproducible)
+        _portable(run_info(session, r, reader=reader), relative_to, reproducible)
         for r in all_runs
         if r.run_kind == "estimate"
     )
-    link_uuids = {lk.uuid for lk, _ in links_of(session, inst)}
-    events = history(session, entity_uuids={inst.uuid, *link_uuids})
+    events = reader.events([inst.uuid, *(lk.uuid for lk, _ in reader.links(inst))])
     audit = tuple(
         ri.AuditEvent(
             when=e.at,
@@ -325,18 +492,18 @@ def _assemble(
         for e in events
     )
     inp = ri.DossierInput(
-        extra_sections=_prior_uses(session, inst) if prior else (),
+        extra_sections=_prior_uses(session, inst, reader) if prior else (),
         program=program_info(program),
         instrument=_instrument_info(inst),
         generated_at=generated_at,
         tool_version=__version__,
-        links=_links(session, inst, all_runs),
+        links=_links(reader, inst, all_runs),
         runs=runs,
         fragility=fragility_runs(all_runs),
         graph=ri.GraphInfo(verdict=check),
         audit=audit,
         evidence_runs=tuple(
-            _portable(run_info(session, r), relative_to, reproducible)
+            _portable(run_info(session, r, reader=reader), relative_to, reproducible)
             for r in all_runs
             if r.run_kind in DESIGN_KINDS
         ),
@@ -366,8 +533,10 @@ def _relative(path: str, base: Path) -> str:
         return path
 
 
-def _prior_uses(session: Session, instrument: Instrument) -> tuple[str, ...]:
+def _prior_uses(session: Session, instrument: Instrument, reader: RegistryReader) -> tuple[str, ...]:
     """The literature audit of studies attached to the instrument or its family, when there are any."""
+    if not reader.has_studies(instrument):  # decided before the audit's numerics are imported
+        return ()
     from ivdossier.reports.audit_doc import audit_section_markdown
     from ivdossier.workflows.studies import audit_inputs, build_audit
 
@@ -386,15 +555,23 @@ def write_dossier(
     relative_to: Path | None = None,
     reproducible: bool = False,
 ) -> Path:
-    """Write the dossier of instrument `slug` to `out` (.md Markdown or .html one self-contained page)."""
-    from ivdossier.reports.dossier import dossier_html, dossier_markdown
+    """Write the dossier of instrument `slug` to `out`: .html is one self-contained page; .md is Markdown with its
+    figures as SVG files in the folder ``<stem>-figures`` beside it, written together so that no reader ever sees
+    a document whose figures are missing (`ivdossier.reports.docfiles`)."""
+    from ivdossier.reports import docfiles
+    from ivdossier.reports.dossier import dossier_figures, dossier_html, dossier_markdown, figure_folder_name
+    from ivdossier.reports.mdtext import figure_file
 
     inp = dossier_input(
         session, slug, generated_at=generated_at, relative_to=relative_to, reproducible=reproducible
     )
-    text = dossier_html(inp) if out.suffix.lower() == ".html" else dossier_markdown(inp)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    out.write_text(text, encoding="utf-8")
+    if out.suffix.lower() == ".html":
+        docfiles.write_file(out, dossier_html(inp).encode("utf-8"))
+        return out
+    folder = out.with_name(figure_folder_name(out.stem))
+    text = dossier_markdown(inp, figure_dir=folder.name)
+    figures = {figure_file(key): svg.encode("utf-8") for key, svg in dossier_figures(inp).items()}
+    docfiles.write_document(out, text, folder, figures)
     return out
 
 
@@ -402,13 +579,26 @@ def write_site(
     session: Session, out: Path, *, generated_at: datetime | str, relative_to: Path | None = None
 ) -> list[Path]:
     """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
+    from ivdossier.registry import bulk
     from ivdossier.reports.site import build_site
+    from ivdossier.threats_catalog.draw import render_svg
 
     programs = list(session.exec(select(Program).order_by(Program.slug)))
     infos = [program_info(p) for p in programs]
-    slugs = list(session.exec(select(Instrument.slug).order_by(Instrument.slug)))
+    instruments = bulk.instruments(session)
+    reader = RegistryReader(session)
+    reader.preload(instruments)
     dossiers = [
-        dossier_input(session, slug, generated_at=generated_at, relative_to=relative_to) for slug in slugs
+        _dossier_input(
+            session,
+            inst,
+            generated_at=generated_at,
+            relative_to=relative_to,
+            reproducible=False,
+            reader=reader,
+            render_svg=render_svg,
+        )
+        for inst in instruments
     ]
     entries = [
         ri.CatalogEntry(
@@ -422,7 +612,79 @@ def write_site(
         )
         for t in registry_catalog(session)
     ]
-    return build_site(out, infos, dossiers, entries)
+    return build_site(
+        out,
+        infos,
+        dossiers,
+        entries,
+        plans=_plan_pages(session, reader),
+        runs=_run_rows(reader, instruments),
+        studies=_studies_audit(session, reader),
+    )
+
+
+def _plan_pages(session: Session, reader: RegistryReader) -> list[Any]:
+    """Every pre-analysis plan with its sealed form (a draft has the same shape without freeze fields)."""
+    from ivdossier.registry.models import Plan
+    from ivdossier.registry.plans import sealed_document
+    from ivdossier.reports.site import PlanPage
+
+    out = []
+    for plan in session.exec(select(Plan).order_by(Plan.slug)):
+        program = session.get(Program, plan.program_id)
+        inst = session.get(Instrument, plan.instrument_id) if plan.instrument_id else None
+        out.append(
+            PlanPage(
+                program=program.slug if program else "",
+                slug=plan.slug,
+                title=plan.title,
+                state=plan.state,
+                instrument=inst.slug if inst else "",
+                sealed=sealed_document(session, plan),
+                sha256=plan.sha256 if plan.state == "frozen" else "",
+                frozen_at=plan.frozen_at.isoformat(timespec="seconds") if plan.frozen_at else "",
+            )
+        )
+    return out
+
+
+def _run_rows(reader: RegistryReader, instruments: Sequence[Instrument]) -> list[Any]:
+    """Every stored run of every instrument, oldest first, with its key results and inference warnings."""
+    from ivdossier.reports.site import RunRow
+
+    rows: list[Any] = []
+    for inst in instruments:
+        runs = reader.runs(inst)
+        if not runs:
+            continue
+        from ivdossier.workflows.run_records import result_summary, warnings_of
+
+        program = reader.program(inst)
+        rows.extend(
+            RunRow(
+                program=program.slug,
+                instrument=inst.slug,
+                slug=r.slug,
+                kind=r.run_kind,
+                created=r.created_at.isoformat(timespec="seconds"),
+                primary=bool(r.is_primary),
+                summary=result_summary(r),
+                warnings=warnings_of(r),
+            )
+            for r in runs
+        )
+    return rows
+
+
+def _studies_audit(session: Session, reader: RegistryReader) -> Any:
+    """The literature audit over every recorded study, or None when there is none (numerics stay unloaded)."""
+    if not reader.any_studies():
+        return None
+    from ivdossier.reports.site import StudiesAudit
+    from ivdossier.workflows.studies import audit_inputs, build_audit
+
+    inputs = audit_inputs(session)
+    return StudiesAudit(summary=build_audit(inputs), inputs=inputs)
 
 
 def plain_action(action: str) -> str:
