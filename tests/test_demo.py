@@ -100,7 +100,7 @@ def test_clerk_instrument_is_built_from_the_case_level_assignments(demo_dir: Pat
 def test_clerk_dossier_shows_the_leave_out_design_and_the_planted_violation(demo_dir: Path) -> None:
     text = (demo_dir / "dossiers" / "clerk-video-rate.md").read_text(encoding="utf-8")
     section = text.split("## Decision-maker design", 1)[1].split("\n## ", 1)[0]
-    assert "clerk\\_video\\_share = mean of the residual of 'telehealth'" in section
+    assert "clerk_video_share = mean of the residual of 'telehealth'" in section
     assert "Flagged: 8 decision-maker(s) with fewer than 20 cases" in section
     assert "2SLS with the leave-out measure as the one instrument: " in section
     for estimator in ("| 2SLS |", "| JIVE1 |", "| UJIVE |"):

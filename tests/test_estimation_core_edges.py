@@ -103,7 +103,7 @@ def test_exactly_collinear_instruments_are_named(mroz: pd.DataFrame) -> None:
 
     df = mroz.assign(twice=2.0 * mroz.motheduc - 3.0)
     with pytest.raises(EstimationError, match="'twice'"):
-        _mroz_fit(df, ["motheduc", "twice"], "robust")
+        _mroz_fit(df, ["motheduc", "twice"], "heteroskedastic")
 
 
 def _design(seed: int, n: int = 400, clusters: int = 0) -> pd.DataFrame:
@@ -197,8 +197,8 @@ def test_an_effect_near_a_million_keeps_a_bounded_ar_set() -> None:
     """A treatment in tiny units makes the effect about 7e5; the AR set must stay the bounded interval found
     in natural units, scaled (exact algebra), not turn into a ray."""
     df = _design(8)
-    base = _fit(df, "robust").to_dict()["weak_iv_robust"]["anderson_rubin"]
-    tiny = _fit(df.assign(x=df.x * 1e-6), "robust").to_dict()["weak_iv_robust"]["anderson_rubin"]
+    base = _fit(df, "heteroskedastic").to_dict()["weak_iv_robust"]["anderson_rubin"]
+    tiny = _fit(df.assign(x=df.x * 1e-6), "heteroskedastic").to_dict()["weak_iv_robust"]["anderson_rubin"]
     assert base["shape"] == "bounded" and tiny["shape"] == "bounded"
     assert _finite_ends(tiny["confidence_set"]) == pytest.approx(
         [v * 1e6 for v in _finite_ends(base["confidence_set"])], rel=1e-7
@@ -207,8 +207,8 @@ def test_an_effect_near_a_million_keeps_a_bounded_ar_set() -> None:
 
 def test_robust_clr_in_tiny_outcome_units_is_computed() -> None:
     df = _design(9)
-    res = _fit(df.assign(y=df.y * 1e-9), "robust").to_dict()["weak_iv_robust"]["clr"]
-    ref = _fit(df, "robust").to_dict()["weak_iv_robust"]["clr"]
+    res = _fit(df.assign(y=df.y * 1e-9), "heteroskedastic").to_dict()["weak_iv_robust"]["clr"]
+    ref = _fit(df, "heteroskedastic").to_dict()["weak_iv_robust"]["clr"]
     assert res["applicable"] is True
     assert res["p_value"] == pytest.approx(ref["p_value"], rel=1e-8)  # exact algebra: units do not matter
 

@@ -152,7 +152,7 @@ def test_a_plan_lists_team_edges_with_their_scope(cli, tmp_path: Path) -> None: 
         ("region", "y", "program"),
     ]
     text = cli("plan", "show", "whole")[1]
-    assert "- income → mast\\_km (only in mast's graph)\n- region → y (every instrument's graph)\n" in text
+    assert "- income → mast_km (only in mast's graph)\n- region → y (every instrument's graph)\n" in text
     assert "- region → y (every instrument's graph)" in text
     one = json.loads(cli("plan", "show", "one", "--json")[1])
     edges = one["content"]["graph"]["edges"]

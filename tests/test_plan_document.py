@@ -70,7 +70,7 @@ def test_sections_in_order_and_rules_as_readable_conditions() -> None:
     kinds["content"]["decision_rules"] = [{"id": "flips", "then": "a", "otherwise": "b", "when": {
         "statistic": "fragility-influence:t_significance_flips", "op": "==", "value": 0}}]  # fmt: skip
     assert (
-        "- **Applies to:** fragility-influence runs\n- **When:** fragility-influence:t\\_significance\\_flips = 0"
+        "- **Applies to:** fragility-influence runs\n- **When:** fragility-influence:t_significance_flips = 0"
         in plan_markdown(kinds, state="draft")
     )
     assert condition_text({"all": [{"statistic": "a", "op": "<", "value": 1},

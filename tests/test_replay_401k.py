@@ -215,7 +215,8 @@ def test_401k_eligibility_session(cli, tmp_path: Path, monkeypatch: pytest.Monke
         registry = open_registry(db, create=False)
         try:
             with registry.reading() as s:
-                out = tmp_path / f"dossier-{len(rendered)}.md"
+                out = tmp_path / f"from-{len(rendered)}" / "dossier.md"  # same name: figure links match
+                out.parent.mkdir()
                 write_dossier(s, "elig", out, generated_at="2026-01-01T00:00:00Z", relative_to=tmp_path,
                               reproducible=True)  # fmt: skip
                 rendered.append(out.read_bytes())

@@ -140,7 +140,7 @@ def test_local_to_zero_and_non_finite_estimates_read_the_same(demo: Path, tmp_pa
     frame = load_table(demo / "data" / "telehealth.csv")
     ltz = local_to_zero(
         frame, outcome="ed_visits", treatment="telehealth", instruments="fibre_months", mu=0.0, omega=1e-5,
-        cluster="district", vcov="cluster",
+        cluster="district", vcov="clustered",
     )  # fmt: skip
     registry = open_registry(str(db))
     try:

@@ -68,7 +68,7 @@ def test_the_audit_reanalyses_the_attached_table_beside_the_reported_estimate(cl
     code, out, err = cli("audit", "--study", "Lind2024", "--out", str(study.parent / "audit.md"))
     assert code == 0, err
     text = (study.parent / "audit.md").read_text()
-    assert "**Its per-variant table re-analysed**" in text and "- lind\\_variants.tsv: 15 variants" in text
+    assert "**Its per-variant table re-analysed**" in text and "- lind_variants.tsv: 15 variants" in text
     assert "**Per-variant tables.**" in text and "cannot show that the variants satisfy exclusion" in text
     code, out, _ = cli("study", "show", "Lind2024")
     assert "15 variants from lind_variants.tsv" in out
