@@ -39,7 +39,7 @@ def _power(
     partial_r2: float | None,
     outcome_sd: float | None,
     residual_sd: float | None,
-    treatment_sd: float,
+    treatment_sd: float | None,
     cluster_size: float,
     icc: float,
     effect: float | None,
@@ -56,6 +56,11 @@ def _power(
         raise InvalidInputError(
             "power needs --n, one of --expected-f or --partial-r2, and one of --outcome-sd or --residual-sd; "
             "give all three or none."
+        )
+    if treatment_sd is None:
+        raise InvalidInputError(
+            "power needs --treatment-sd, the treatment's standard deviation after controls (it is never assumed; "
+            "`ivdossier power --data FILE --treatment D` derives it from data)."
         )
     from ivdossier.estimation.power import iv_design, power_analysis
 
@@ -92,7 +97,10 @@ def draft(
         float | None, typer.Option(help="SD of the outcome (used as the error SD).")
     ] = None,
     residual_sd: Annotated[float | None, typer.Option(help="SD of the structural error.")] = None,
-    treatment_sd: Annotated[float, typer.Option(help="SD of the treatment after controls.")] = 1.0,
+    treatment_sd: Annotated[
+        float | None,
+        typer.Option(help="SD of the treatment after controls (needed for power; never assumed)."),
+    ] = None,
     cluster_size: Annotated[float, typer.Option(help="Average cluster size (design effect).")] = 1.0,
     icc: Annotated[float, typer.Option(help="Intra-cluster correlation (design effect).")] = 0.0,
     effect: Annotated[float | None, typer.Option(help="Effect size for power and the N needed.")] = None,

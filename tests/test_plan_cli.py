@@ -41,7 +41,7 @@ def test_plan_life_cycle(cli, tmp_path: Path, monkeypatch) -> None:  # type: ign
     data = _setup(cli, tmp_path)
     draft_md = tmp_path / "draft.md"
     code, out, err = cli("plan", "draft", "fibre", "--control", "w", "--n", "600", "--expected-f", "40",
-                         "--outcome-sd", "1.5", "--effect", "0.3", "--out", str(draft_md))  # fmt: skip
+                         "--outcome-sd", "1.5", "--treatment-sd", "0.45", "--effect", "0.3", "--out", str(draft_md))  # fmt: skip
     assert (code, out.strip()) == (0, "plan fibre-plan drafted for fibre"), err
     text = draft_md.read_text("utf-8")
     assert "**Draft — not sealed.**" in text
@@ -120,6 +120,8 @@ def test_plan_errors(cli, tmp_path: Path) -> None:  # type: ignore[no-untyped-de
     assert (
         code == 2 and "power needs --n, one of --expected-f or --partial-r2, and one of --outcome-sd" in err
     )
+    code, _, err = cli("plan", "draft", "fibre", "--n", "500", "--expected-f", "20", "--outcome-sd", "2")
+    assert code == 2 and "power needs --treatment-sd" in err and "never assumed" in err  # no silent SD of 1
     assert cli("plan", "draft", "tele")[0] == 0
     code, _, err = cli("plan", "verify", "tele-plan")
     assert code == 2 and "is a draft; only frozen plans can be verified" in err
