@@ -224,32 +224,8 @@ def estimate_prepared(
     vcov = cov_name(vcov)
     with one_blas_thread():
         check_options(method, vcov, prepared.cluster, alpha, fuller_alpha)
-        spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "clustered" else (), small_sample)
-        cp = build(
-            prepared.Z if method != "ols" else np.zeros((prepared.X.shape[0], 0)),
-            prepared.X,
-            prepared.y,
-            spec,
-            n_partialled=prepared.n_partialled,
-            n_partialled_nested=prepared.n_partialled_nested,
-        )
-        counts = SampleCounts(
-            n=prepared.X.shape[0],
-            n_dropped=prepared.n_dropped,
-            n_partialled=prepared.n_partialled,
-            n_partialled_nested=prepared.n_partialled_nested,
-            n_absorbed=prepared.n_absorbed,
-            fe_levels=prepared.fe_levels,
-            n_clusters=spec.n_clusters(),
-        )
-        model = ModelSpec.build(
-            outcome=prepared.outcome,
-            treatment=prepared.treatment,
-            instruments=prepared.instruments if method != "ols" else (),
-            controls=prepared.controls,
-            absorb=prepared.absorb,
-            cluster=prepared.cluster or None,
-            weights=prepared.weights,
+        cp, counts, model = sufficient_statistics(
+            prepared,
             method=method,
             vcov=vcov,
             small_sample=small_sample,
@@ -257,6 +233,55 @@ def estimate_prepared(
             fuller_alpha=fuller_alpha,
         )
         return result_from_cross_products(cp, counts, model, diagnostics=diagnostics)
+
+
+def sufficient_statistics(
+    prepared: PreparedData,
+    *,
+    method: str = "2sls",
+    vcov: str = "heteroskedastic",
+    small_sample: bool = True,
+    alpha: float = 0.05,
+    fuller_alpha: float = 1.0,
+    n_dropped: int | None = None,
+) -> tuple[CrossProducts, SampleCounts, ModelSpec]:
+    """The cross-products of validated, partialled data with the counts and the model spec that go with them:
+    what :func:`result_from_cross_products` and the analyses built on the same sums take. ``n_dropped`` overrides
+    the prepared data's count when rows were dropped before preparing."""
+    vcov = cov_name(vcov)
+    spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "clustered" else (), small_sample)
+    cp = build(
+        prepared.Z if method != "ols" else np.zeros((prepared.X.shape[0], 0)),
+        prepared.X,
+        prepared.y,
+        spec,
+        n_partialled=prepared.n_partialled,
+        n_partialled_nested=prepared.n_partialled_nested,
+    )
+    counts = SampleCounts(
+        n=prepared.X.shape[0],
+        n_dropped=prepared.n_dropped if n_dropped is None else n_dropped,
+        n_partialled=prepared.n_partialled,
+        n_partialled_nested=prepared.n_partialled_nested,
+        n_absorbed=prepared.n_absorbed,
+        fe_levels=prepared.fe_levels,
+        n_clusters=spec.n_clusters(),
+    )
+    model = ModelSpec.build(
+        outcome=prepared.outcome,
+        treatment=prepared.treatment,
+        instruments=prepared.instruments if method != "ols" else (),
+        controls=prepared.controls,
+        absorb=prepared.absorb,
+        cluster=prepared.cluster or None,
+        weights=prepared.weights,
+        method=method,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+        fuller_alpha=fuller_alpha,
+    )
+    return cp, counts, model
 
 
 def result_from_cross_products(

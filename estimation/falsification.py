@@ -35,7 +35,7 @@ from numpy.typing import NDArray
 from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.api import SampleCounts, result_from_cross_products
+from ivdossier.estimation.api import SampleCounts, result_from_cross_products, sufficient_statistics
 from ivdossier.estimation.covariance import CovKind, CovSpec, cov_name
 from ivdossier.estimation.crossproducts import CrossProducts, build
 from ivdossier.estimation.data import as_names, prepare
@@ -1041,28 +1041,9 @@ def per_instrument(
     frame, n_dropped = _complete_rows(data, used)
     common = {"controls": ctrl, "absorb": fe, "cluster": clus, "weights": weights}
     full = prepare(frame, outcome=outcome, treatment=treatment, instruments=inst, **common)  # type: ignore[arg-type]
-    spec = CovSpec(cast(CovKind, vcov), full.clusters if vcov == "clustered" else (), small_sample)
-    cp = build(
-        full.Z,
-        full.X,
-        full.y,
-        spec,
-        n_partialled=full.n_partialled,
-        n_partialled_nested=full.n_partialled_nested,
+    cp, counts, model = sufficient_statistics(
+        full, vcov=vcov, small_sample=small_sample, alpha=alpha, n_dropped=n_dropped
     )
-    counts = SampleCounts(
-        n=full.n,
-        n_dropped=n_dropped,
-        n_partialled=full.n_partialled,
-        n_partialled_nested=full.n_partialled_nested,
-        n_absorbed=full.n_absorbed,
-        fe_levels=full.fe_levels,
-        n_clusters=spec.n_clusters(),
-    )
-    model = ModelSpec.build(
-        outcome=outcome, treatment=treatment, instruments=inst, vcov=vcov, small_sample=small_sample,
-        alpha=alpha, **common,
-    )  # fmt: skip
     return replace(per_instrument_from(cp, counts, model), row_account=count_rows(data, used, n_used=full.n))
 
 

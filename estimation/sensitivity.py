@@ -40,9 +40,9 @@ import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.api import SampleCounts, result_from_cross_products
-from ivdossier.estimation.covariance import CovKind, CovSpec, cov_name, is_psd
-from ivdossier.estimation.crossproducts import CrossProducts, build
+from ivdossier.estimation.api import SampleCounts, result_from_cross_products, sufficient_statistics
+from ivdossier.estimation.covariance import cov_name, is_psd
+from ivdossier.estimation.crossproducts import CrossProducts
 from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.rows import RowAccount, count_rows
 from ivdossier.estimation.spec import ModelSpec
@@ -138,37 +138,7 @@ def _spec_options(
 
 
 def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float) -> _Core:
-    vcov = cov_name(vcov)
-    spec = CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "clustered" else (), small_sample)
-    cp = build(
-        prepared.Z,
-        prepared.X,
-        prepared.y,
-        spec,
-        n_partialled=prepared.n_partialled,
-        n_partialled_nested=prepared.n_partialled_nested,
-    )
-    counts = SampleCounts(
-        n=prepared.n,
-        n_dropped=prepared.n_dropped,
-        n_partialled=prepared.n_partialled,
-        n_partialled_nested=prepared.n_partialled_nested,
-        n_absorbed=prepared.n_absorbed,
-        fe_levels=prepared.fe_levels,
-        n_clusters=spec.n_clusters(),
-    )
-    model = ModelSpec.build(
-        outcome=prepared.outcome,
-        treatment=prepared.treatment,
-        instruments=prepared.instruments,
-        controls=prepared.controls,
-        absorb=prepared.absorb,
-        cluster=prepared.cluster or None,
-        weights=prepared.weights,
-        vcov=vcov,
-        small_sample=small_sample,
-        alpha=alpha,
-    )
+    cp, counts, model = sufficient_statistics(prepared, vcov=vcov, small_sample=small_sample, alpha=alpha)
     return sensitivity_core(cp, counts, model)
 
 
