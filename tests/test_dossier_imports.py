@@ -13,14 +13,33 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 COMPUTE_ONLY = ("pandas", "scipy.stats", "scipy.optimize", "scipy.integrate", "statsmodels")
 
 
-def _loaded_after(code: str) -> list[str]:
-    probe = (
-        code
-        + f"\nimport json, sys\nprint('LOADED=' + json.dumps([m for m in {COMPUTE_ONLY!r} if m in sys.modules]))"
+@pytest.fixture(scope="module")
+def demo_db(tmp_path_factory: pytest.TempPathFactory) -> str:
+    from ivdossier.workflows.demo import build_demo
+
+    demo = tmp_path_factory.mktemp("imports") / "demo"
+    build_demo(demo)
+    return str(demo / "ivdossier.sqlite")
+
+
+def _command(db: str, *argv: str) -> str:
+    """Python code that runs one `ivdossier` command in the probe's process and fails on a non-zero exit."""
+    return (
+        "import sys\nfrom ivdossier.cli.app import main\n"
+        f"sys.argv = ['ivdossier', '--db', {db!r}, *{list(argv)!r}]\n"
+        "try:\n    main()\nexcept SystemExit as exc:\n    assert not exc.code, exc.code\n"
     )
+
+
+def _loaded_after(code: str, modules: tuple[str, ...] = COMPUTE_ONLY) -> list[str]:
+    """Which of `modules` a fresh interpreter has imported after running `code`."""
+    listed = f"[m for m in {modules!r} if m in sys.modules]"
+    probe = code + f"\nimport json, sys\nprint('LOADED=' + json.dumps({listed}))"
     done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True)
     assert done.returncode == 0, done.stderr[-2000:]
     line = next(x for x in done.stdout.splitlines() if x.startswith("LOADED="))
@@ -36,21 +55,21 @@ def test_every_result_class_in_the_table_of_analyses_loads_without_compute_libra
     assert _loaded_after(code) == []
 
 
-def test_rendering_each_demo_dossier_loads_no_compute_library(tmp_path: Path) -> None:
+def test_rendering_each_demo_dossier_loads_no_compute_library(demo_db: str, tmp_path: Path) -> None:
     """Markdown and HTML, with figures, for every demo instrument: estimates, falsification, sensitivity,
     compliers, power, fragility and design runs and a literature audit are all read back from storage."""
-    from ivdossier.workflows.demo import INSTRUMENTS, build_demo
+    from ivdossier.workflows.demo import INSTRUMENTS
 
-    demo = tmp_path / "demo"
-    build_demo(demo)
-    db = str(demo / "ivdossier.sqlite")
     for spec in INSTRUMENTS:
         for suffix in (".md", ".html"):
             out = tmp_path / f"{spec['slug']}{suffix}"
-            code = (
-                "import sys\nfrom ivdossier.cli.app import main\n"
-                f"sys.argv = ['ivdossier', '--db', {db!r}, 'dossier', {spec['slug']!r}, '--out', {str(out)!r}]\n"
-                "try:\n    main()\nexcept SystemExit as exc:\n    assert not exc.code, exc.code\n"
-            )
+            code = _command(demo_db, "dossier", spec["slug"], "--out", str(out))
             assert _loaded_after(code) == [], f"{spec['slug']}{suffix}"
             assert out.stat().st_size > 0
+
+
+def test_graph_check_draws_no_plot(demo_db: str) -> None:
+    """`graph check` shows verdicts, not figures: the sensitivity run's plot is not drawn, so matplotlib stays
+    unloaded (fibre-wave has two sensitivity runs in the demo)."""
+    code = _command(demo_db, "graph", "check", "fibre-wave")
+    assert _loaded_after(code, (*COMPUTE_ONLY, "matplotlib")) == []
