@@ -9,12 +9,10 @@ from __future__ import annotations
 import dataclasses
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
@@ -31,6 +29,9 @@ from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
 from ivdossier.estimation.spec import ModelSpec, check_options
 from ivdossier.vocabulary import NotApplicable
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 Array = NDArray[np.float64]
 
@@ -138,6 +139,8 @@ def estimate_spec(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool 
 
 
 def _estimate(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool) -> EstimationResult:
+    import pandas as pd
+
     prepared = prepare_spec(data, spec)
     method, vcov, small_sample, alpha, fuller_alpha = (
         spec.method,
@@ -189,6 +192,8 @@ def interval_quantile(
 
     t with n - k - p degrees of freedom (G - 1, smallest G, with clusters) when ``small_sample``, else normal.
     """
+    from scipy import stats
+
     clustered = cov_name(vcov) == "clustered"
     df = None if not small_sample else (min(n_clusters) - 1 if clustered else df_resid)
     if df is None:

@@ -24,8 +24,6 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-from scipy import stats
-
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.critical_values import (
     MOP_SOURCE,
@@ -38,7 +36,8 @@ from ivdossier.estimation.critical_values import (
     stock_yogo_applicable,
     tf_critical_value,
 )
-from ivdossier.estimation.robust_inference import Interval, classify_set, quadratic_set
+from ivdossier.estimation.distributions import chi2_ppf, f_ppf, norm_ppf
+from ivdossier.estimation.sets import Interval, classify_set, quadratic_set
 from ivdossier.estimation.variant_summary import (
     EggerFit,
     Heterogeneity,
@@ -325,10 +324,10 @@ def ar_reference(rep: ReportedStats) -> tuple[str, float, float]:
     else:
         return (
             "chi-square(1) (large sample; n not reported)",
-            float(stats.chi2.ppf(0.95, 1)),
-            float(stats.chi2.ppf(0.99, 1)),
+            chi2_ppf(0.95, 1),
+            chi2_ppf(0.99, 1),
         )
-    return name, float(stats.f.ppf(0.95, 1, d)), float(stats.f.ppf(0.99, 1, d))
+    return name, f_ppf(0.95, 1, d), f_ppf(0.99, 1, d)
 
 
 def implied_covariance(rep: ReportedStats) -> float | None:
@@ -527,7 +526,7 @@ def _procedures(rep: ReportedStats, tf: TFCheck, ar: ARCheck) -> tuple[Procedure
     if rep.estimate is None or rep.std_error is None:
         return ()
     t = abs(rep.estimate / rep.std_error)
-    z_01 = float(stats.norm.ppf(0.995))
+    z_01 = norm_ppf(0.995)
     out.append(ProcedureVerdict("1.96 (as reported)", 0.05, t > Z_05, f"|t| = {t:.3g} against 1.96"))
     if tf.applicable:
         out.append(
@@ -772,7 +771,7 @@ def _verdicts(rep: ReportedStats, tf: TFCheck, ar: ARCheck) -> tuple[str, str]:
     if rep.estimate is None or rep.std_error is None:
         return "cannot be re-examined", "cannot be re-examined"
     t = abs(rep.estimate / rep.std_error)
-    conv_5, conv_1 = t > Z_05, t > float(stats.norm.ppf(0.995))
+    conv_5, conv_1 = t > Z_05, t > norm_ppf(0.995)
     robust_5 = [
         tf.significant_5pct if tf.applicable else None,
         ar.excludes_zero_95 if ar.applicable else None,

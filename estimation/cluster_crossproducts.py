@@ -21,7 +21,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import stats
 
 Array = NDArray[np.float64]
 
@@ -178,9 +177,13 @@ def partialled_stats(
 
 def t_p_values(t: Array, df: Array) -> Array:
     """Two-sided p-values of t statistics with t(df) reference distributions."""
+    from scipy import stats
+
     return np.asarray(2 * stats.t.sf(np.abs(t), df), dtype=np.float64)
 
 
 def f_p_values(f: Array, q: int, df: Array) -> Array:
     """Upper-tail p-values of F(q, df) statistics."""
+    from scipy import stats
+
     return np.asarray(stats.f.sf(f, q, df), dtype=np.float64)

@@ -12,15 +12,17 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
-from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
+from ivdossier.estimation.distributions import norm_ppf
 from ivdossier.estimation.rows import RowAccount
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 __all__ = [
     "ComplierMeans",
@@ -59,6 +61,8 @@ FloatArray = np.ndarray[Any, np.dtype[np.float64]]
 
 
 def _frame(data: pd.DataFrame | Mapping[str, Any]) -> pd.DataFrame:
+    import pandas as pd
+
     if isinstance(data, pd.DataFrame):
         return data
     if isinstance(data, Mapping):
@@ -71,6 +75,8 @@ def _frame(data: pd.DataFrame | Mapping[str, Any]) -> pd.DataFrame:
 
 def _numeric_columns(frame: pd.DataFrame, names: Sequence[str], role: str) -> dict[str, FloatArray]:
     """Return the named columns as float arrays, naming any missing column or missing value."""
+    import pandas as pd
+
     out: dict[str, FloatArray] = {}
     for name in names:
         if name not in frame.columns:
@@ -111,6 +117,8 @@ def _binary(values: FloatArray, name: str, role: str) -> FloatArray:
 
 
 def _cluster_codes(frame: pd.DataFrame, cluster: str | None) -> np.ndarray[Any, np.dtype[np.int64]] | None:
+    import pandas as pd
+
     if cluster is None:
         return None
     if cluster not in frame.columns:
@@ -172,7 +180,7 @@ class ComplierShares(Record):
             )
         est = float(getattr(self, name))
         se = float(getattr(self, f"{name}_se"))
-        q = float(stats.norm.ppf(1.0 - self.alpha / 2.0))
+        q = norm_ppf(1.0 - self.alpha / 2.0)
         return (est - q * se, est + q * se)
 
     def to_dict(self) -> dict[str, Any]:

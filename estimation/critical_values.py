@@ -20,9 +20,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.distributions import ncx2_ppf
 from ivdossier.jsonsafe import Record
 
 DATA_DIR = Path(__file__).resolve().parent / "data"
@@ -214,4 +214,4 @@ def mop_critical_value(k_eff: float, tau: float, *, level: float = 0.05) -> floa
     if k_eff <= 0:
         raise InvalidInputError(f"K_eff must be positive, got {k_eff}.")
     x = 1.0 / tau
-    return float(stats.ncx2.ppf(1 - level, k_eff, x * k_eff) / k_eff)
+    return ncx2_ppf(1 - level, k_eff, x * k_eff) / k_eff

@@ -14,14 +14,17 @@ import hashlib
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import DEFAULT_MAX_ITER, DEFAULT_TOL, partial_out
 from ivdossier.estimation.estimators import collinear_columns
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 Array = NDArray[np.float64]
 READERS = {".csv": "CSV", ".parquet": "Parquet", ".dta": "Stata .dta"}
@@ -29,6 +32,8 @@ READERS = {".csv": "CSV", ".parquet": "Parquet", ".dta": "Stata .dta"}
 
 def load_table(path: str | Path) -> pd.DataFrame:
     """Read a .csv, .parquet or .dta file into a DataFrame; InvalidInputError names the path on failure."""
+    import pandas as pd
+
     p = Path(path)
     suffix = p.suffix.lower()
     if suffix not in READERS:
@@ -141,6 +146,8 @@ def _check_present(data: pd.DataFrame, names: Sequence[str]) -> None:
 
 
 def _numeric(data: pd.DataFrame, name: str, role: str) -> Array:
+    import pandas as pd
+
     col = data[name]
     if pd.api.types.is_bool_dtype(col):
         return col.to_numpy(dtype=np.float64, na_value=np.nan)
@@ -156,6 +163,8 @@ def _numeric(data: pd.DataFrame, name: str, role: str) -> Array:
 
 
 def _codes(values: pd.Series) -> np.ndarray:
+    import pandas as pd
+
     codes, _ = pd.factorize(values, sort=False)
     return codes.astype(np.int64)
 
@@ -179,6 +188,8 @@ def prepare(
     ``require_instruments`` is False for OLS (no excluded instruments). Rows with a missing value in any used
     column are dropped and counted; an infinite value is an error naming the column and row label.
     """
+    import pandas as pd
+
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     if not isinstance(outcome, str) or not outcome:

@@ -12,13 +12,15 @@ an approximation would be presented under their name. :func:`fll_test` returns a
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 FLL_REASON = (
     "the test of Frandsen, Lefgren and Leslie (2023, AER) is not implemented: its exact statistic (a "

@@ -8,11 +8,9 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
-from scipy import stats
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.absorb import partial_out
@@ -41,6 +39,9 @@ from ivdossier.estimation.leave_out import (
 )
 from ivdossier.estimation.many_instruments import JackknifeAR, decision_maker_anderson_rubin
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 
 @dataclass(frozen=True)
@@ -128,6 +129,8 @@ def decision_maker_design(
     name: str | None = None,
 ) -> tuple[DecisionMakerDesign, pd.Series]:
     """The design result and the leave-out propensity per case (a Series named after its recipe)."""
+    import pandas as pd
+
     if outcome not in data.columns:
         raise InvalidInputError(f"Column {outcome!r} not found in the data; check --outcome.")
     prop = decision_maker_propensity(
@@ -191,6 +194,8 @@ def leave_out_2sls(
     b = z~'y~ / z~'x~; the standard error is heteroskedasticity-robust with no small-sample factor and treats
     ``z`` as fixed, as for the jackknife estimators: sqrt(sum_i z~_i^2 u_i^2) / |z~'x~| with u = y~ - b x~.
     """
+    from scipy import stats
+
     cols = np.column_stack([y, x, z]).astype(np.float64)
     yt, xt, zt = (
         partial_out(cols, controls=controls, fe_codes=list(fe_codes)).columns[:, j] for j in range(3)

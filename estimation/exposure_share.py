@@ -25,16 +25,17 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.jackknife_iv import orthonormal_basis
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 Array = NDArray[np.float64]
 SHARE_TOL = 1e-9
@@ -109,6 +110,8 @@ class ShiftShareDesign:
         return bool(np.any(self.share_sums < 1 - 1e-6))
 
     def as_series(self) -> pd.Series:
+        import pandas as pd
+
         return pd.Series(
             self.instrument, index=pd.Index(self.units, name=self.recipe.unit), name=self.recipe.name
         )
@@ -203,6 +206,8 @@ def build_shift_share(
     units exactly. Shares must lie in [0, 1] and sum to at most one per unit; every sector with a share needs a
     shock. Shocks of sectors no unit is exposed to are ignored (counted in the recipe).
     """
+    import pandas as pd
+
     for table, label, cols in (
         (shares, "shares", (unit, sector, share)),
         (shocks, "shocks", (sector, shock)),
@@ -294,6 +299,8 @@ def build_shift_share(
 
 def align_units(design: ShiftShareDesign, data: pd.DataFrame, unit: str) -> pd.DataFrame:
     """Rows of ``data`` (one per unit) reordered like ``design.units``; mismatched or repeated ids are named."""
+    import pandas as pd
+
     if unit not in data.columns:
         raise InvalidInputError(f"Column {unit!r} not found in the data; name the unit id column.")
     dup = data[unit].duplicated(keep=False).to_numpy()
@@ -554,6 +561,9 @@ def exposure_robust_iv(
     within clusters of sectors. AKM needs the shares matrix to have full column rank (no more sectors than
     units); otherwise only the conventional interval is returned with the reason.
     """
+    import pandas as pd
+    from scipy import stats
+
     if not 0 < alpha < 1:
         raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
     p = _partial(design, y, x, controls)
@@ -684,6 +694,9 @@ def shock_level_iv(
     With ``shock_intercept`` (their recommendation when shocks have a common mean) the unit-level equivalence
     needs the share sum among ``controls`` when shares are incomplete. Sectors no unit is exposed to are dropped.
     """
+    import pandas as pd
+    from scipy import stats
+
     if not 0 < alpha < 1:
         raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
     p = _partial(design, y, x, controls)

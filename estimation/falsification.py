@@ -26,13 +26,11 @@ import math
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
-from typing import Any, ClassVar, cast
+from typing import TYPE_CHECKING, Any, ClassVar, cast
 
 import numpy as np
-import pandas as pd
 import scipy.linalg
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import SampleCounts, result_from_cross_products, sufficient_statistics
@@ -42,6 +40,9 @@ from ivdossier.estimation.data import as_names, prepare
 from ivdossier.estimation.rows import RowAccount, count_rows
 from ivdossier.estimation.spec import ModelSpec, check_options
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 __all__ = [
     "InstrumentCoefficient",
@@ -243,6 +244,7 @@ class RawSummary:
 
 def raw_summary(frame: pd.DataFrame, targets: Sequence[str], instruments: Sequence[str]) -> RawSummary:
     """The :class:`RawSummary` of the estimation rows held in memory."""
+    import pandas as pd
 
     def values(name: str) -> Array:
         return pd.to_numeric(frame[name]).to_numpy(dtype=np.float64)
@@ -321,6 +323,8 @@ def _stacked(
     small_sample: bool,
     alpha: float,
 ) -> _Stacked:
+    import pandas as pd
+
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     clus = _check_common(vcov, alpha, cluster)
@@ -390,6 +394,8 @@ def stacked_from(
     """Several targets regressed on the same instruments, from the sufficient statistics of [Z, targets] (the
     instruments first, then the targets in order, the last one in the outcome slot): coefficients and the
     seemingly-unrelated covariance, in data units, with the reference distribution of the intervals."""
+    from scipy import stats
+
     k = cp.k
     rz = cp.coords(cp.iz)
     rw = np.asarray(cp.r[:, k:], dtype=np.float64)
@@ -431,6 +437,8 @@ def _wald(coef: Array, cov: Array) -> float:
 
 
 def _p_two_sided(t: float, dist: tuple[str, int | None]) -> float:
+    from scipy import stats
+
     if dist[0] == "normal":
         return float(2 * stats.norm.sf(abs(t)))
     return float(2 * stats.t.sf(abs(t), dist[1]))
@@ -448,6 +456,8 @@ def _std_diff(summary: RawSummary, target: str, instrument: str, coef: float) ->
 
 
 def _rows(st: _Stacked, *, std_diff: bool = True) -> tuple[TargetRegression, ...]:
+    from scipy import stats
+
     n_inst = len(st.instruments)
     out = []
     for j, target in enumerate(st.targets):
@@ -492,6 +502,8 @@ def _rows(st: _Stacked, *, std_diff: bool = True) -> tuple[TargetRegression, ...
 
 
 def _joint(st: _Stacked) -> JointTest:
+    from scipy import stats
+
     stat = _wald(st.coef.ravel(), st.cov)
     df = st.coef.size
     return JointTest(
@@ -699,6 +711,8 @@ class ZeroFirstStageResult(Record):
 def _select_subsample(
     data: pd.DataFrame, subsample: str | None, query: str | None
 ) -> tuple[pd.DataFrame, str, Any]:
+    import pandas as pd
+
     if (subsample is None) == (query is None):
         raise InvalidInputError(
             "give exactly one of subsample= (a boolean column marking the rows) or query= (a condition on "
@@ -760,6 +774,9 @@ def zero_first_stage(
     The subsample is ``subsample`` (a boolean column) or ``query`` (a pandas expression such as
     "broadband == 0"); the reduced form doubles as a local-to-zero prior (see the result's ``assumption``).
     """
+    import pandas as pd
+    from scipy import stats
+
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     sub, label, mask = _select_subsample(data, subsample, query)
@@ -1022,6 +1039,7 @@ def per_instrument(
     alpha: float = 0.05,
 ) -> PerInstrumentResult:
     """Just-identified 2SLS for each instrument and the over-identified comparison (two or more instruments)."""
+    import pandas as pd
 
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")

@@ -17,14 +17,17 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.absorb import is_nested, partial_out
 from ivdossier.estimation.data import PreparedData, as_names, prepare
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 Array = NDArray[np.float64]
 CAUTION = (
@@ -82,6 +85,8 @@ def fragility_data(
 
     Rows with a missing value in a used column are dropped first (counted in ``prepared.n_dropped``).
     """
+    import pandas as pd
+
     if not isinstance(data, pd.DataFrame):
         raise InvalidInputError(f"data must be a pandas DataFrame, got {type(data).__name__}; load it first.")
     clus = as_names(cluster, "cluster")

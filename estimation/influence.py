@@ -21,7 +21,6 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.cluster_crossproducts import (
@@ -138,6 +137,8 @@ class InfluenceResult(Record):
 
 
 def _deletions_from(stats_: BatchStats, labels: list[str], alpha: float, n_inst: int) -> list[Deletion]:
+    from scipy import stats
+
     q = stats.t.ppf(1 - alpha / 2, stats_.t_df)
     tp = t_p_values(stats_.t, stats_.t_df)
     arp = f_p_values(stats_.ar_f, n_inst, stats_.ar_df)

@@ -23,17 +23,18 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 import scipy.linalg
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import is_nested
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 Array = NDArray[np.float64]
 RANK_TOL = 1e-9
@@ -155,6 +156,8 @@ def _check_leverage(d_a: Array) -> None:
 
 
 def _estimates(y: Array, x: Array, p: _Projections, alpha: float) -> tuple[JackknifeEstimate, ...]:
+    from scipy import stats
+
     two_sls = p.mw_x - p.ma_x  # (H_A - H_W) x
     jive1 = p.mw_x - p.mw_scaled_ma_x  # M_W x~ with x~ = x - (I - D_A)^-1 M_A x
     ujive = p.mw_x / (1 - p.d_w) - p.ma_x / (1 - p.d_a)
@@ -272,6 +275,8 @@ def decision_maker_jackknife_iv(
     other controls and each decision-maker works within one cell (or no cells are given) the hat matrices are
     group means and the computation is one grouped pass; otherwise the dense path is used.
     """
+    import pandas as pd
+
     ctrl = (controls,) if isinstance(controls, str) else tuple(controls)
     cols = [outcome, treatment, decision_maker, *([absorb] if absorb else []), *ctrl]
     missing = [c for c in cols if c not in data.columns]

@@ -14,15 +14,17 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.absorb import partial_out
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 Array = NDArray[np.float64]
 LEAVE_OUT_KINDS = ("case", "cluster")
@@ -47,6 +49,8 @@ def leave_out_means(values: np.ndarray, groups: np.ndarray, *, clusters: np.ndar
     ``groups`` and ``clusters`` are non-negative integer codes. Raises InvalidInputError naming the groups for
     which the leave-out mean is undefined (one case; or, with clusters, every case in a single cluster).
     """
+    import pandas as pd
+
     v = np.asarray(values, dtype=np.float64)
     g = np.asarray(groups)
     n_groups = int(g.max()) + 1 if g.size else 0
@@ -140,6 +144,8 @@ class DecisionMakerPropensity:
 
     def as_series(self) -> pd.Series:
         """The instrument as a Series named after the recipe, indexed like the input rows."""
+        import pandas as pd
+
         return pd.Series(self.values, index=self.index, name=self.recipe.name)
 
     def to_dict(self) -> dict[str, Any]:
@@ -199,6 +205,8 @@ def _as_tuple(value: str | Sequence[str] | None, option: str) -> tuple[str, ...]
 
 
 def _check_frame(data: pd.DataFrame, columns: Sequence[str], numeric: Sequence[str]) -> None:
+    import pandas as pd
+
     missing_cols = [c for c in columns if c not in data.columns]
     if missing_cols:
         raise InvalidInputError(
@@ -246,6 +254,8 @@ def decision_maker_propensity(
     Decision-makers with fewer than ``min_cases`` cases are flagged in ``small``; one with a single case (or,
     leaving clusters out, with all cases in one cluster) has no defined propensity and raises InvalidInputError.
     """
+    import pandas as pd
+
     if leave_out not in LEAVE_OUT_KINDS:
         raise InvalidInputError(f"Unknown leave_out {leave_out!r}; choose 'case' or 'cluster'.")
     if leave_out == "cluster" and cluster is None:

@@ -35,17 +35,18 @@ from __future__ import annotations
 
 import itertools
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import is_nested
 from ivdossier.estimation.jackknife_iv import orthonormal_basis
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 Array = NDArray[np.float64]
 # Mikusheva and Sun (2022): F~ above 4.14 keeps the JIVE-based Wald test's size at most 10% at nominal 5%
@@ -285,6 +286,8 @@ def _partial(w: np.ndarray | None, n: int, *cols: Array) -> list[Array]:
 
 
 def _result(pieces: _Pieces, n: int, beta0: float, alpha: float, path: str) -> JackknifeAR:
+    from scipy import stats
+
     z = float(stats.norm.ppf(1 - alpha))
     num, s = _statistic(pieces, beta0)
     if s <= 0:
@@ -378,6 +381,8 @@ def decision_maker_anderson_rubin(
     Decision-makers must each work within one cell (the grouped path, cost about the sum over cells of the
     squared number of decision-makers); otherwise build the dummies and call :func:`jackknife_anderson_rubin`.
     """
+    import pandas as pd
+
     cols = [outcome, treatment, decision_maker, *([absorb] if absorb else [])]
     missing = [c for c in cols if c not in data.columns]
     if missing:

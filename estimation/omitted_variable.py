@@ -30,16 +30,17 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.data import as_names, prepare
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 __all__ = [
     "CAUTION",
@@ -95,6 +96,8 @@ def partial_f(t: float, dof: float) -> float:
 
 def critical_f(alpha: float, dof: float) -> float:
     """f* = t_{1-alpha/2, dof-1} / sqrt(dof - 1): the f a coefficient needs to stay significant after adjustment."""
+    from scipy import stats
+
     _check_dof(dof)
     if not 0.0 < alpha < 1.0:
         raise InvalidInputError(f"alpha must lie strictly between 0 and 1, got {alpha!r}.")
@@ -464,6 +467,8 @@ def _bound_for(
     target: float,
     alpha: float,
 ) -> BenchmarkBound:
+    from scipy import stats
+
     r2_reg, r2_out = benchmark_strengths(r2_reg_cov, r2_out_cov, k_regressor=k, k_outcome=k)
     bias = bias_bound(fit.se, fit.dof, r2_out, r2_reg)
     se_adj = adjusted_se(fit.se, fit.dof, r2_out, r2_reg)
@@ -523,6 +528,8 @@ def _contour(
     r2_max: float | None,
     n_grid: int,
 ) -> ContourGrid:
+    from scipy import stats
+
     top = r2_max
     if top is None:
         rv = robustness_value((fit.coef - target) / fit.se, fit.dof)
@@ -604,6 +611,8 @@ def iv_robustness(
     ``grid`` (low, high) is the tau0 range searched for the benchmarked IV sets (default: the IV estimate
     -/+ 20 times the larger of its magnitude and 2SLS standard error).
     """
+    from scipy import stats
+
     if not isinstance(treatment, str):
         raise InvalidInputError(
             "The omitted-variable analysis takes one treatment; pass treatment= as one name."

@@ -34,7 +34,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import optimize, stats
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.jsonsafe import Record, json_safe
@@ -280,6 +279,8 @@ def se_2sls(design: IVDesign, *, n: int | None = None) -> float:
 
 
 def _power_at(ratio: float, alpha: float) -> float:
+    from scipy import stats
+
     z = stats.norm.ppf(1.0 - alpha / 2.0)
     r = abs(ratio)
     return float(stats.norm.cdf(r - z) + stats.norm.cdf(-r - z))
@@ -287,6 +288,8 @@ def _power_at(ratio: float, alpha: float) -> float:
 
 def _ratio_for_power(power: float, alpha: float) -> float:
     """Effect in SE units at which the two-sided test reaches ``power`` (both tails counted)."""
+    from scipy import optimize, stats
+
     if not alpha < power < 1.0:
         raise InvalidInputError(f"target power must lie in (alpha, 1) = ({alpha}, 1), got {power}.")
     z = stats.norm.ppf(1.0 - alpha / 2.0)
@@ -380,6 +383,8 @@ def _pct(value: float | None) -> str:
 
 def expected_first_stage(design: IVDesign) -> FirstStageOutlook:
     """Plug-in and expected first-stage F, compared with the Stock–Yogo and MOP critical values."""
+    from scipy import stats
+
     from ivdossier.estimation import critical_values as cv  # the weak-IV tables live there
 
     k, df2, r2 = design.n_instruments, design.df2, design.partial_r2
@@ -471,6 +476,8 @@ def simulate_power(
     matters (the 2SLS t-test loses power when OLS would be biased in the direction of the effect). The simulated
     design has no clusters; a design with clusters is refused (its analytic figure uses DEFF).
     """
+    from scipy import stats
+
     if design.cluster_size > 1.0 and design.icc > 0.0:
         raise InvalidInputError(
             "the simulation mode covers designs without clustering; set cluster_size=1 (or icc=0) to simulate, "

@@ -7,7 +7,6 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.estimation.controls import ControlsTable
 from ivdossier.estimation.covariance import OLD_COV_NAMES
@@ -82,6 +81,8 @@ class EstimationResult(Record):
     @property
     def pvalue(self) -> Array:
         """Two-sided p-values of a zero effect, from the same reference distribution as the intervals."""
+        from scipy import stats  # imported here: a stored result is read back without scipy.stats
+
         t = np.abs(self.tstat)
         dist = stats.norm if self.ref_df is None else stats.t(self.ref_df)
         return np.asarray(2 * dist.sf(t), dtype=np.float64)

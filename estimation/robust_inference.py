@@ -37,7 +37,6 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import integrate, optimize, special, stats
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.covariance import CovSpec
@@ -49,6 +48,9 @@ from ivdossier.estimation.crossproducts import (
     build,
     quad_form_inv,
 )
+from ivdossier.estimation.sets import Interval as Interval
+from ivdossier.estimation.sets import classify_set as classify_set
+from ivdossier.estimation.sets import quadratic_set as quadratic_set
 from ivdossier.estimation.strength import (
     as_matrix,
     denominator_df_cp,
@@ -61,50 +63,7 @@ from ivdossier.estimation.strength import (
 from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
-Interval = tuple[float, float]
 HALF_PI = math.pi / 2
-
-
-def classify_set(intervals: list[Interval]) -> str:
-    """Name the shape of a union of intervals: empty, whole_line, bounded, ray, two_rays or union."""
-    if not intervals:
-        return "empty"
-    if len(intervals) == 1:
-        lo, hi = intervals[0]
-        if math.isinf(lo) and math.isinf(hi):
-            return "whole_line"
-        if math.isinf(lo) or math.isinf(hi):
-            return "ray"
-        return "bounded"
-    if len(intervals) == 2 and math.isinf(intervals[0][0]) and math.isinf(intervals[1][1]):
-        return "two_rays"
-    return "union"
-
-
-def quadratic_set(a2: float, a1: float, a0: float, *, scale: float = 1.0) -> list[Interval]:
-    """Solve a2 b^2 + a1 b + a0 <= 0 over the real line; returns sorted closed intervals with +/-inf ends.
-
-    ``scale`` is the size of the coefficients' terms, used to decide when a2 is numerically zero.
-    """
-    inf = math.inf
-    tiny = 1e-12 * max(scale, abs(a2), abs(a1), abs(a0), 1e-300)
-    if abs(a2) <= tiny:
-        if abs(a1) <= tiny:
-            return [(-inf, inf)] if a0 <= 0 else []
-        root = -a0 / a1
-        return [(-inf, root)] if a1 > 0 else [(root, inf)]
-    disc = a1 * a1 - 4 * a2 * a0
-    if disc < 0:
-        return [] if a2 > 0 else [(-inf, inf)]
-    sq = math.sqrt(disc)
-    # numerically stable roots
-    q = -0.5 * (a1 + math.copysign(sq, a1)) if a1 != 0 else -0.5 * sq
-    r1 = q / a2
-    r2 = a0 / q if q != 0 else -r1
-    lo, hi = min(r1, r2), max(r1, r2)
-    if a2 > 0:
-        return [(lo, hi)]
-    return [(-inf, lo), (hi, inf)]
 
 
 def invert_on_circle(
@@ -114,6 +73,8 @@ def invert_on_circle(
 
     Each change of sign between grid points is refined with brentq; the grid ends represent b = -inf and +inf.
     """
+    from scipy import optimize  # imported where it computes, so reading stored results stays light
+
     accepted = margins <= 0
     if accepted.all():
         return [(-math.inf, math.inf)]
@@ -161,6 +122,8 @@ def angle_grid(center: float, scale: float, *, n_uniform: int = 1201, n_local: i
 
 def _refine_dip(margin: Callable[[float], float], thetas: Array, margins: Array) -> tuple[Array, Array]:
     """With no accepted grid point, minimise near the smallest margin so a narrow dip is not missed."""
+    from scipy import optimize
+
     if (margins <= 0).any():
         return thetas, margins
     i = int(np.argmin(margins))
@@ -412,6 +375,8 @@ def anderson_rubin_from(
         )
     m = moments_from(cp)
     stat = _ar_wald(m, float(b0[0]) / m.unit) / k
+    from scipy import stats
+
     crit = k * float(stats.f.ppf(1 - alpha, k, d))
     reason = None
     intervals: list[Interval] | None
@@ -576,6 +541,8 @@ def tf_from(cp: CrossProducts) -> TFResult:
 
 def clr_p_value(lr: float, qt: float, k: int) -> float:
     """P(LR > lr | Q_T = qt) under the null for k instruments (Moreira 2003), by numerical integration."""
+    from scipy import integrate, special
+
     if lr <= 0:
         return 1.0
     if k == 1:
@@ -738,6 +705,8 @@ def clr_p_values(lr: Array, qt: Array, k: int) -> Array:
     """Vectorised P(LR > lr | Q_T = qt): the integral of :func:`clr_p_value` after v = u^2 (which makes the
     integrand smooth for every k) by 96-point Gauss–Legendre; used to scan the set's grid, while reported
     p-values and set ends use the adaptive scalar version."""
+    from scipy import special
+
     lr = np.maximum(np.asarray(lr, dtype=np.float64), 0.0)
     qt = np.asarray(qt, dtype=np.float64)
     if k == 1:

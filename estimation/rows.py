@@ -10,12 +10,14 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # only named in signatures: reading a stored row account needs no pandas
+    import pandas as pd
 
 __all__ = ["RowAccount", "count_rows"]
 

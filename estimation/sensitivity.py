@@ -32,10 +32,9 @@ import io
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
-import pandas as pd
 import scipy.linalg
 from numpy.typing import NDArray
 
@@ -47,6 +46,9 @@ from ivdossier.estimation.data import PreparedData, as_names, prepare
 from ivdossier.estimation.rows import RowAccount, count_rows
 from ivdossier.estimation.spec import ModelSpec
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 __all__ = [
     "BreakdownResult",

@@ -26,7 +26,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
 from ivdossier.errors import EstimationError
 from ivdossier.estimation.covariance import CovSpec
@@ -154,6 +153,8 @@ def _just_identified(k: int, p: int, kind: str) -> OverId:
 
 def overid_from(cp: CrossProducts, *, beta: np.ndarray) -> OverId:
     """Over-identification test from the sufficient statistics."""
+    from scipy import stats
+
     k, p = cp.k, cp.p
     if k <= p:
         return _just_identified(k, p, cp.kind)
@@ -218,6 +219,8 @@ def durbin_wu_hausman(
 
 def endogeneity_from(cp: CrossProducts) -> Endogeneity:
     """Control-function Wald test and Durbin's statistic from the sufficient statistics (coordinates)."""
+    from scipy import stats
+
     k, p = cp.k, cp.p
     rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
     v = rx.copy()

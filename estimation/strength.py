@@ -36,7 +36,6 @@ from typing import Any
 import numpy as np
 import scipy.linalg
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.covariance import CovSpec
@@ -97,6 +96,8 @@ def wald(coef: Array, cov: Array) -> float:
 
 def f_p_value(f: float, q: int, d: int) -> float:
     """Upper-tail p-value of an F(q, d) statistic."""
+    from scipy import stats
+
     return float(stats.f.sf(f, q, d)) if math.isfinite(f) else 0.0
 
 
@@ -465,6 +466,8 @@ def _rk_statistic(theta: Array, f: Array, v_pi: Array) -> float:
 
 def kleibergen_paap_from(cp: CrossProducts) -> RankTest:
     """rk Wald on the orthonormal basis (G = (Z'Z)^{1/2} = I), Theta = Pi Sigma^{-1/2}."""
+    from scipy import stats
+
     pi = first_stage_pi(cp)
     f = _sym_sqrt(_resid_sigma(cp), inverse=True)
     stat = _rk_statistic(pi @ f.T, f, first_stage_cov(cp))
@@ -485,6 +488,8 @@ def kleibergen_paap_lm_from(cp: CrossProducts) -> RankLM:
     """rk LM: Theta = Pi (X'X)^{-1/2}; the covariance of vec(Pi) uses the treatments themselves as the
     residuals (under the null the combination X b_perp has no first stage, so its residual is itself) and
     no small-sample factor. Unadjusted: Omega = I / n, so LM = n * (smallest canonical correlation)^2."""
+    from scipy import stats
+
     pi = first_stage_pi(cp)
     rx = cp.coords(cp.ix)
     xx = rx.T @ rx

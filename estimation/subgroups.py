@@ -8,16 +8,18 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.data import as_names
 from ivdossier.estimation.falsification import TargetRegression, placebo_outcomes
 from ivdossier.estimation.rows import RowAccount
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where data is read, so reading stored results stays light
+    import pandas as pd
 
 MAX_LEVELS = 20
 CAUTION = (
@@ -127,6 +129,8 @@ class SubgroupSigns(Record):
 
 def _groups(column: pd.Series, bins: int) -> tuple[pd.Series, list[str], str]:
     """Subgroup labels in their natural order: the values themselves when there are few, else quantile bins."""
+    import pandas as pd
+
     values = column.dropna()
     if values.nunique() <= MAX_LEVELS:
         order = [str(v) for v in sorted(values.unique())]

@@ -29,7 +29,6 @@ from typing import Any
 import numpy as np
 import scipy.linalg
 from numpy.typing import NDArray
-from scipy import integrate, optimize, stats
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.estimation.covariance import CovSpec, cov_name, sandwich
@@ -53,6 +52,8 @@ def gkm_conditional_p_value(statistic: float, kappa_max: float, k_minus_mw: int)
     Density on [0, kappa_max] proportional to exp(-x/2) x^((k' - 3)/2) sqrt(kappa_max - x) with
     k' = k - m_W + 1; integrated after the substitution x = u^2, which removes the singularity at 0.
     """
+    from scipy import integrate
+
     if k_minus_mw < 1:
         raise InvalidInputError(f"k - m_W must be at least 1, got {k_minus_mw}.")
     if statistic <= 0:
@@ -207,6 +208,8 @@ class _Projection:
         return c
 
     def minimum(self, theta: float, starts: list[Array]) -> float:
+        from scipy import optimize
+
         if not self.others:
             return self.wald(self.coefs(theta, np.zeros(0)))
         best = math.inf
@@ -236,6 +239,8 @@ def subvector_anderson_rubin(
     column of ``x``. Unadjusted covariance: subvector AR (plus the GKM conditional version when one other
     treatment is unrestricted); robust or cluster covariance: the projection test and set.
     """
+    from scipy import stats
+
     ym, xm, zm = as_matrix(y, "y"), as_matrix(x, "X"), as_matrix(z, "Z")
     n, n_inst = zm.shape
     m = xm.shape[1]

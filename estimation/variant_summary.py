@@ -33,15 +33,17 @@ import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Literal, cast
+from typing import TYPE_CHECKING, Any, Literal, cast
 
 import numpy as np
-import pandas as pd
 from numpy.typing import NDArray
-from scipy import stats
 
 from ivdossier.errors import InvalidInputError
+from ivdossier.estimation.distributions import chi2_sf, norm_ppf, norm_sf, t_ppf, t_sf
 from ivdossier.jsonsafe import Record, json_safe
+
+if TYPE_CHECKING:  # pandas is imported where a frame is read, so reading stored results stays light
+    import pandas as pd
 
 __all__ = [
     "CAUTION",
@@ -252,6 +254,8 @@ def read_variant_frame(path: str | Path) -> pd.DataFrame:
                 f"{_SEPARATORS[others[0]]}-separated; rename it to "
                 f"{'.tsv' if others[0] == chr(9) else '.txt'} or save it with {_SEPARATORS[sep]}s."
             )
+    import pandas as pd
+
     packed: Literal["gzip", "infer"] = "gzip" if compression else "infer"
     try:
         return pd.read_csv(p, sep=sep, dtype={"variant": str}, keep_default_na=True, compression=packed)
@@ -267,6 +271,8 @@ def read_variant_table(path: str | Path, *, columns: Mapping[str, str] | None = 
 
 
 def _numeric_column(frame: pd.DataFrame, name: str, variants: Sequence[str]) -> Array:
+    import pandas as pd
+
     col = pd.to_numeric(frame[name], errors="coerce")
     bad = col.isna() | ~np.isfinite(col.to_numpy(dtype=np.float64, na_value=np.nan))
     if bad.any():
@@ -288,6 +294,8 @@ def variant_table(
     Allele columns are optional: all four (``exposure_effect_allele``, ``exposure_other_allele``,
     ``outcome_effect_allele``, ``outcome_other_allele``) or none.
     """
+    import pandas as pd
+
     if not isinstance(frame, pd.DataFrame):
         raise InvalidInputError(f"frame must be a pandas DataFrame, got {type(frame).__name__}.")
     rename = {src: ours for ours, src in (columns or {}).items()}
@@ -498,8 +506,8 @@ def wald_ratios(table: VariantTable) -> WaldRatios:
 
 
 def _normal_interval(est: float, se: float, alpha: float) -> tuple[float, float, float]:
-    q = float(stats.norm.ppf(1 - alpha / 2))
-    p = float(2 * stats.norm.sf(abs(est / se))) if se > 0 else math.nan
+    q = float(norm_ppf(1 - alpha / 2))
+    p = float(2 * norm_sf(abs(est / se))) if se > 0 else math.nan
     return est - q * se, est + q * se, p
 
 
@@ -587,10 +595,10 @@ def cochran_q(table: VariantTable) -> Heterogeneity | NotApplicable:
         bx, by = _oriented(table)
         qp = float(np.sum(w * (by - b0 - b1 * bx) ** 2))
         qp_df = j - 2
-        qp_p = float(stats.chi2.sf(qp, qp_df))
+        qp_p = float(chi2_sf(qp, qp_df))
         diff = q - qp
-        diff_p = float(stats.chi2.sf(max(diff, 0.0), 1))
-    return Heterogeneity(q, j - 1, float(stats.chi2.sf(q, j - 1)), qp, qp_df, qp_p, diff, diff_p, i2)
+        diff_p = float(chi2_sf(max(diff, 0.0), 1))
+    return Heterogeneity(q, j - 1, float(chi2_sf(q, j - 1)), qp, qp_df, qp_p, diff, diff_p, i2)
 
 
 def _oriented(table: VariantTable) -> tuple[Array, Array]:
@@ -652,16 +660,16 @@ def egger(table: VariantTable, *, alpha: float = 0.05) -> EggerFit | NotApplicab
     xtwx = np.array([[w.sum(), (w * bx).sum()], [(w * bx).sum(), (w * bx * bx).sum()]])
     cov = np.linalg.inv(xtwx) * max(1.0, rse) ** 2
     se0, se1 = float(math.sqrt(cov[0, 0])), float(math.sqrt(cov[1, 1]))
-    tq = float(stats.t.ppf(1 - alpha / 2, j - 2))
+    tq = float(t_ppf(1 - alpha / 2, j - 2))
     return EggerFit(
         estimate=b1,
         se=se1,
         ci=(b1 - tq * se1, b1 + tq * se1),
-        p=float(2 * stats.t.sf(abs(b1 / se1), j - 2)),
+        p=float(2 * t_sf(abs(b1 / se1), j - 2)),
         intercept=b0,
         intercept_se=se0,
         intercept_ci=(b0 - tq * se0, b0 + tq * se0),
-        intercept_p=float(2 * stats.t.sf(abs(b0 / se0), j - 2)),
+        intercept_p=float(2 * t_sf(abs(b0 / se0), j - 2)),
         residual_se=rse,
         i2_gx=_i2_gx(bx, table.sx, table.sy),
         n_variants=j,
@@ -842,7 +850,7 @@ def directionality(table: VariantTable) -> Directionality | NotApplicable:
     z = (math.atanh(math.sqrt(sum_x)) - math.atanh(math.sqrt(sum_y))) / math.sqrt(
         1 / (n_x - 3) + 1 / (n_y - 3)
     )
-    p = float(2 * stats.norm.sf(abs(z)))
+    p = float(2 * norm_sf(abs(z)))
     direction = "exposure to outcome" if sum_x > sum_y else "outcome to exposure (reverse)"
     reversed_ = tuple(v for v, a, b in zip(table.variants, rx, ry, strict=True) if b >= a)
     source = "R² columns" if given else "R² from t-values and sample sizes"

@@ -397,7 +397,13 @@ def instrument_check(session: Session, instrument: Instrument) -> InstrumentChec
     """The graph, the graph check and the four verdicts of one instrument, as `graph check` and `graph draw` show
     them and as its dossier shows them."""
     G, inp = _assemble(
-        session, instrument, generated_at="", relative_to=None, reproducible=False, prior=False
+        session,
+        instrument,
+        generated_at="",
+        relative_to=None,
+        reproducible=False,
+        prior=False,
+        figures=False,
     )
     assert inp.graph is not None and inp.graph.verdict is not None
     return InstrumentCheck(G, inp.graph.verdict, inp.verdicts)
@@ -465,8 +471,10 @@ def _assemble(
     reproducible: bool,
     prior: bool,
     reader: RegistryReader | None = None,
+    figures: bool = True,
 ) -> tuple[Any, ri.DossierInput]:
-    """The graph and the dossier input (without the drawing) with its verdicts derived once."""
+    """The graph and the dossier input (without the drawing) with its verdicts derived once; without `figures`
+    no plot is drawn (the verdicts never read one)."""
     from ivdossier.reports.design_sections import KINDS as DESIGN_KINDS
     from ivdossier.workflows.evidence_runs import evidence_fields
     from ivdossier.workflows.verdicts import with_verdicts
@@ -507,7 +515,7 @@ def _assemble(
             for r in all_runs
             if r.run_kind in DESIGN_KINDS
         ),
-        **evidence_fields(all_runs),
+        **evidence_fields(all_runs, figures=figures),
     )
     return G, with_verdicts(inp)
 

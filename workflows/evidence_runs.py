@@ -68,8 +68,9 @@ def _fmt(value: Any) -> str:
 # ---------------------------------------------------------------------------------------------- sensitivity
 
 
-def sensitivity_info(run: Run) -> ri.SensitivityInfo:
-    """A sensitivity run (union of intervals, local to zero or breakdown value) with the union's plot."""
+def sensitivity_info(run: Run, *, figures: bool = True) -> ri.SensitivityInfo:
+    """A sensitivity run (union of intervals, local to zero or breakdown value) with the union's plot (drawn only
+    with `figures`: callers that show no figure, such as `graph check`, do not load matplotlib)."""
     from ivdossier.estimation.sensitivity import (
         BreakdownResult,
         LocalToZeroResult,
@@ -91,7 +92,7 @@ def sensitivity_info(run: Run) -> ri.SensitivityInfo:
             upper=_num(res.upper),
             direct_effect_min=_nums(res.gamma_min),
             direct_effect_max=_nums(res.gamma_max),
-            svg=plot_sensitivity_svg(res) if len(res.grid) >= 2 else "",
+            svg=plot_sensitivity_svg(res) if figures and len(res.grid) >= 2 else "",
             **common,
         )
     if isinstance(res, LocalToZeroResult):
@@ -279,10 +280,13 @@ def power_info(run: Run) -> ri.PowerInfo:
 # ------------------------------------------------------------------------------------------------- together
 
 
-def evidence_fields(runs: Sequence[Run]) -> dict[str, tuple[Any, ...]]:
-    """Every evidence run of an instrument, by kind, as the dossier input's fields."""
+def evidence_fields(runs: Sequence[Run], *, figures: bool = True) -> dict[str, tuple[Any, ...]]:
+    """Every evidence run of an instrument, by kind, as the dossier input's fields (without plots unless
+    `figures`)."""
     return {
-        "sensitivity": tuple(sensitivity_info(r) for r in runs if r.run_kind == "sensitivity"),
+        "sensitivity": tuple(
+            sensitivity_info(r, figures=figures) for r in runs if r.run_kind == "sensitivity"
+        ),
         "falsification": tuple(falsification_info(r) for r in runs if r.run_kind in FALSIFICATION_KINDS),
         "compliers": tuple(compliers_info(r) for r in runs if r.run_kind == "compliers"),
         "power": tuple(power_info(r) for r in runs if r.run_kind == "power"),

@@ -1,0 +1,75 @@
+"""A dossier reads stored results without the libraries that computed them.
+
+Rendering a document decodes every stored run's typed record; the modules that define the result classes import
+pandas, scipy.stats, scipy.optimize and statsmodels only inside the functions that compute, so a dossier pays
+for none of them (whole-process timings: benchmarks/bench_dossier.py). Each check runs in a fresh interpreter,
+since the test process itself has imported everything.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+COMPUTE_ONLY = ("pandas", "scipy.stats", "scipy.optimize", "scipy.integrate", "statsmodels")
+
+
+@pytest.fixture(scope="module")
+def demo_db(tmp_path_factory: pytest.TempPathFactory) -> str:
+    from ivdossier.workflows.demo import build_demo
+
+    demo = tmp_path_factory.mktemp("imports") / "demo"
+    build_demo(demo)
+    return str(demo / "ivdossier.sqlite")
+
+
+def _command(db: str, *argv: str) -> str:
+    """Python code that runs one `ivdossier` command in the probe's process and fails on a non-zero exit."""
+    return (
+        "import sys\nfrom ivdossier.cli.app import main\n"
+        f"sys.argv = ['ivdossier', '--db', {db!r}, *{list(argv)!r}]\n"
+        "try:\n    main()\nexcept SystemExit as exc:\n    assert not exc.code, exc.code\n"
+    )
+
+
+def _loaded_after(code: str, modules: tuple[str, ...] = COMPUTE_ONLY) -> list[str]:
+    """Which of `modules` a fresh interpreter has imported after running `code`."""
+    listed = f"[m for m in {modules!r} if m in sys.modules]"
+    probe = code + f"\nimport json, sys\nprint('LOADED=' + json.dumps({listed}))"
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr[-2000:]
+    line = next(x for x in done.stdout.splitlines() if x.startswith("LOADED="))
+    return list(json.loads(line[len("LOADED=") :]))
+
+
+def test_every_result_class_in_the_table_of_analyses_loads_without_compute_libraries() -> None:
+    code = (
+        "from ivdossier.workflows.analyses import ANALYSES\n"
+        "classes = [a.result_class for a in ANALYSES.values()]\n"
+        "assert len(classes) == len(ANALYSES)\n"
+    )
+    assert _loaded_after(code) == []
+
+
+def test_rendering_each_demo_dossier_loads_no_compute_library(demo_db: str, tmp_path: Path) -> None:
+    """Markdown and HTML, with figures, for every demo instrument: estimates, falsification, sensitivity,
+    compliers, power, fragility and design runs and a literature audit are all read back from storage."""
+    from ivdossier.workflows.demo import INSTRUMENTS
+
+    for spec in INSTRUMENTS:
+        for suffix in (".md", ".html"):
+            out = tmp_path / f"{spec['slug']}{suffix}"
+            code = _command(demo_db, "dossier", spec["slug"], "--out", str(out))
+            assert _loaded_after(code) == [], f"{spec['slug']}{suffix}"
+            assert out.stat().st_size > 0
+
+
+def test_graph_check_draws_no_plot(demo_db: str) -> None:
+    """`graph check` shows verdicts, not figures: the sensitivity run's plot is not drawn, so matplotlib stays
+    unloaded (fibre-wave has two sensitivity runs in the demo)."""
+    code = _command(demo_db, "graph", "check", "fibre-wave")
+    assert _loaded_after(code, (*COMPUTE_ONLY, "matplotlib")) == []
