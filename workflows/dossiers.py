@@ -281,7 +281,7 @@ def check_finding(check: str, runs: Sequence[Run]) -> str:
         ]
     if not candidates:
         return f"not run yet (command: {spec.command})"
-    return f"{finding(check, candidates[0].results or {})} (run {candidates[0].slug})"
+    return f"{finding(check, candidates[0].results or {}, candidates[0].run_kind)} (run {candidates[0].slug})"
 
 
 def _ratings(reader: RegistryReader, link: Link) -> tuple[ri.Rating, ...]:
