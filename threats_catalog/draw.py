@@ -402,11 +402,19 @@ def _place_tags(
         w, h = text_width(text, TAG_SIZE, mono=True) + 8, TAG_H
         mine = PointIndex(curves[own] if 0 <= own < len(curves) else [])
         best: tuple[float, Rect] | None = None
+        # Every candidate lies inside this box, so a rectangle that misses it (with the same padding) overlaps
+        # none of them: testing only the others decides every candidate exactly as testing all would.
+        xs = [points[i][0] for i in order]
+        ys = [points[i][1] for i in order]
+        reach = (min(xs) - w / 2, min(ys) - 20.0 - h / 2, max(xs) + w / 2, max(ys) + 20.0 + h / 2)
+        near = [o for o in (*placed, *obstacles) if _overlaps(reach, o, 2)]
         for rank, i in enumerate(order):
             px, py = points[i]
             for k, dy in enumerate((0.0, -10.0, 10.0, -20.0, 20.0)):
+                if best is not None and rank + 3 * k >= best[0]:
+                    continue  # cannot beat the best score found, whatever it crosses
                 r = (px - w / 2, py + dy - h / 2, px + w / 2, py + dy + h / 2)
-                if any(_overlaps(r, o, 2) for o in placed) or any(_overlaps(r, o, 2) for o in obstacles):
+                if any(_overlaps(r, o, 2) for o in near):
                     continue
                 box = (r[0] - 2, r[1] - 2, r[2] + 2, r[3] + 2)
                 crossed = every.count(box) - mine.count(box)  # points of other edges' curves in the box
