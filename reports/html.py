@@ -75,27 +75,50 @@ def _split(tag: str) -> tuple[str, str]:
     return "", tag
 
 
+@lru_cache(maxsize=1024)
+def _split_cached(tag: str) -> tuple[str, str]:
+    return _split(tag)
+
+
+_ALLOWED_NS = ("", XLINK_NS, *METADATA_NS, "http://www.w3.org/XML/1998/namespace")
+
+
+@lru_cache(maxsize=1024)
+def _attribute_rule(name: str) -> tuple[str, str | None, bool, str | None, bool]:
+    """How attribute `name` is judged: its local name, the problem its name alone is if it is an event handler,
+    whether its value must be a #fragment (href), the problem its namespace is (None if allowed) and whether its
+    value may carry a URL or CSS."""
+    a_ns, a_local = _split(name)
+    lowered = a_local.lower()
+    event = f"event-handler attribute {a_local!r}" if lowered.startswith("on") else None
+    foreign = None if a_ns in _ALLOWED_NS else f"attribute {a_local!r} in namespace {a_ns!r}"
+    return a_local, event, lowered == "href", foreign, lowered in _URL_ATTRIBUTES
+
+
+@lru_cache(maxsize=4096)
+def _unsafe_value(value: str) -> bool:
+    """Whether a URL-or-CSS attribute value could fetch something or run code."""
+    return bool(_CSS_FORBIDDEN.search(value)) or "javascript:" in re.sub(r"[\x00-\x20]", "", value).lower()
+
+
 def _svg_problem(root: ET.Element) -> str | None:
     """The first element or attribute that could run code or fetch something, described; None when clean."""
 
     def walk(el: ET.Element, in_metadata: bool) -> str | None:
-        ns, local = _split(el.tag)
+        ns, local = _split_cached(el.tag)
         if ns in METADATA_NS and in_metadata:
             pass
         elif ns not in ("", SVG_NS) or local not in SVG_ELEMENTS:
             return f"element <{local}>"
         for name, value in el.attrib.items():
-            a_ns, a_local = _split(name)
-            lowered = a_local.lower()
-            if lowered.startswith("on"):
-                return f"event-handler attribute {a_local!r}"
-            if lowered == "href" and not value.strip().startswith("#"):
+            a_local, event, href, foreign, url = _attribute_rule(name)
+            if event is not None:
+                return event
+            if href and not value.strip().startswith("#"):
                 return f"external reference {value[:60]!r}"
-            if a_ns not in ("", XLINK_NS, *METADATA_NS, "http://www.w3.org/XML/1998/namespace"):
-                return f"attribute {a_local!r} in namespace {a_ns!r}"
-            if lowered in _URL_ATTRIBUTES and (
-                _CSS_FORBIDDEN.search(value) or "javascript:" in re.sub(r"[\x00-\x20]", "", value).lower()
-            ):
+            if foreign is not None:
+                return foreign
+            if url and _unsafe_value(value):
                 return f"attribute {a_local}={value[:60]!r}"
         if local == "style" and _CSS_FORBIDDEN.search(el.text or ""):
             return "a style sheet with external references"
