@@ -724,7 +724,7 @@ def _bypass_paths(
     threat edge and are open without the user's conditioning (i.e. conditioning is what closes them)."""
     # The undirected skeleton, structure only (paths never read attributes): nodes and edges added in M's order,
     # as to_undirected adds them, without deep-copying every attribute dictionary.
-    skeleton = nx.Graph()
+    skeleton: nx.Graph[str] = nx.Graph()
     skeleton.add_nodes_from(M.nodes)
     skeleton.add_edges_from(M.edges)
     skeleton.remove_node(x)
