@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from markdown_it import MarkdownIt
-from markdown_it.common.utils import mdTrim
+from markdown_it.common.utils import escapeHtml, mdTrim
 from markdown_it.rules_block.table import escapedSplit
 from markdown_it.token import Token
 
@@ -423,9 +423,16 @@ def _render_table(text: str) -> str | None:
     return "".join(out)
 
 
+# Characters at which one of the active inline rules (newline, escape, backticks, emphasis, link, image, autolink,
+# entity) can start; text without any of them is one text run, which the parser writes HTML-escaped.
+_INLINE_SYNTAX = re.compile(r"[\n\\`*_\[\]!<>&\x00\r]")
+
+
 @lru_cache(maxsize=65536)
 def _render_cell(content: str) -> str:
     """One table cell's inline HTML (with badge placeholders), as the parser renders a cell's content."""
+    if not _INLINE_SYNTAX.search(content):
+        return escapeHtml(content)
     md = _section_parser()
     env: dict[str, Any] = {}
     return md.renderer.render(md.parseInline(content, env), md.options, env)

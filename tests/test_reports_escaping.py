@@ -313,7 +313,17 @@ def test_svg_check_names_the_first_problem_in_document_order() -> None:
 
 _CELL_TEXT = st.lists(
     st.sampled_from(
-        [*"ab |\\`*_[]()<>&!#:-.\t\"'", "é", "\u00a0", "\x85", "`verdict:holds`", "`state:open`", "**"]
+        [
+            *"ab |\\`*_[]()<>&!#:-.\t\"'",
+            "é",
+            "\u00a0",
+            "\x85",
+            "&amp;",
+            "&#33;",
+            "`verdict:holds`",
+            "`state:open`",
+            "**",
+        ]
     ),
     max_size=10,
 ).map("".join)
