@@ -28,6 +28,7 @@ import re
 import textwrap
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Any
 
 import networkx as nx
@@ -102,6 +103,7 @@ _BOLD = (
 MONO_ADVANCE = 0.602
 
 
+@lru_cache(maxsize=8192)
 def text_width(
     text: str, size: float, *, bold: bool = False, mono: bool = False, spacing: float = 0.0
 ) -> float:
@@ -382,7 +384,8 @@ class PointIndex:
     def count(self, box: Rect) -> int:
         """How many points lie in the closed box (left, top, right, bottom)."""
         lo, hi = bisect.bisect_left(self.xs, box[0]), bisect.bisect_right(self.xs, box[2])
-        return sum(1 for y in self.ys[lo:hi] if box[1] <= y <= box[3])
+        top, bottom = box[1], box[3]
+        return len([y for y in self.ys[lo:hi] if top <= y <= bottom])
 
 
 def _place_tags(
@@ -413,7 +416,11 @@ def _place_tags(
                 if best is not None and rank + 3 * k >= best[0]:
                     continue  # cannot beat the best score found, whatever it crosses
                 r = (px - w / 2, py + dy - h / 2, px + w / 2, py + dy + h / 2)
-                if any(_overlaps(r, o, 2) for o in near):
+                left, top, right, bottom = r
+                if any(
+                    left < o[2] + 2 and o[0] < right + 2 and top < o[3] + 2 and o[1] < bottom + 2
+                    for o in near
+                ):  # _overlaps(r, o, 2), written out
                     continue
                 box = (r[0] - 2, r[1] - 2, r[2] + 2, r[3] + 2)
                 crossed = every.count(box) - mine.count(box)  # points of other edges' curves in the box
