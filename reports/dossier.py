@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Sequence
+from functools import lru_cache
 from typing import TYPE_CHECKING, Any
 
 from ivdossier.reports import mdtext as mt
@@ -317,6 +318,13 @@ def _reading_block(inp: DossierInput) -> str:
 
 
 def _link_block(link: LinkInfo) -> str:
+    return _link_block_for(link, mt.html_target())
+
+
+@lru_cache(maxsize=4096)
+def _link_block_for(link: LinkInfo, html: bool) -> str:
+    """A threat card; remembered by the link's value (a frozen record) and the target, since links with the same
+    threat, state, argument, ratings and checks recur across the dossiers of a site."""
     head = f"#### {mt.inline(link.threat_code)} · {mt.inline(link.title)}"
     facts = [f"State {mt.chip(link.state)}"]
     if link.ratings:

@@ -19,6 +19,7 @@ import contextlib
 import re
 from collections.abc import Iterator, Sequence
 from contextvars import ContextVar
+from functools import lru_cache
 from urllib.parse import quote
 
 _CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069]")
@@ -101,6 +102,14 @@ def _escape_line(line: str) -> str:
 
 def inline(text: object) -> str:
     """Escape user text for one line (headings, list items, table cells): newlines become spaces."""
+    if type(text) is str:
+        return _inline_str(text)
+    return _escape_line(" ".join(clean(text).split()))
+
+
+@lru_cache(maxsize=65536)
+def _inline_str(text: str) -> str:
+    """`inline` of a string, remembered: documents repeat the same names, codes and dates many times."""
     return _escape_line(" ".join(clean(text).split()))
 
 

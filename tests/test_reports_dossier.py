@@ -281,3 +281,33 @@ def test_non_numeric_values_in_a_result_are_never_echoed() -> None:
     md = dossier_markdown(dataclasses.replace(sample_input(), runs=(make_run(1, results=res, plots=False),)))
     assert "<script>" not in md and "javascript:" not in md
     assert rv.fmt("12.5") == "12.5" and rv.fmt("abc") == "–" and rv.fmt(None) == "–"
+
+
+def test_remembered_threat_cards_never_mix_up_links_or_targets() -> None:
+    # Threat cards are remembered by the link's value: links that differ in any field (one rating's comment, the
+    # state, a check's finding) get their own card, and the Markdown-file card is never served for HTML.
+    from ivdossier.reports.dossier import _link_block
+    from ivdossier.reports.inputs import CheckInfo, LinkInfo, Rating
+
+    base = LinkInfo(
+        threat_code="EX-01",
+        title="Another channel",
+        condition="exclusion",
+        state="open",
+        argument="Rebuttal in progress.",
+        ratings=(Rating("ana", 2, 4, "first"), Rating("ben", 3, 5)),
+        checks=(CheckInfo("placebo-outcome", "not run yet"),),
+    )
+    variants = [
+        base,
+        dataclasses.replace(base, ratings=(Rating("ana", 2, 4, "second"), Rating("ben", 3, 5))),
+        dataclasses.replace(base, state="mitigated"),
+        dataclasses.replace(base, checks=(CheckInfo("placebo-outcome", "passed"),)),
+    ]
+    with mt.for_html():
+        html_cards = [_link_block(v) for v in variants]
+    md_cards = [_link_block(v) for v in variants]
+    assert len(set(html_cards)) == len(variants) and len(set(md_cards)) == len(variants)
+    assert "`state:open`" in html_cards[0] and "**open**" in md_cards[0]
+    assert "| second |" in html_cards[1] and "second" not in html_cards[0]
+    assert _link_block(dataclasses.replace(base)) == md_cards[0]  # an equal link: the same card

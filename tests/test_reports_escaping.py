@@ -13,7 +13,7 @@ from hypothesis import strategies as st
 from ivdossier.errors import InvalidInputError
 from ivdossier.reports import mdtext as mt
 from ivdossier.reports.dossier import dossier_html, dossier_markdown
-from ivdossier.reports.html import markdown_parser, render_html, validate_link
+from ivdossier.reports.html import clean_svg, markdown_parser, render_html, validate_link
 from ivdossier.reports.inputs import AuditEvent, CheckInfo, InstrumentInfo, LinkInfo, ProgramInfo, Rating
 from ivdossier.reports.plots import verdict_badge_svg
 from ivdossier.reports.sample import make_run, sample_input
@@ -286,3 +286,69 @@ def test_rendering_piece_by_piece_equals_rendering_the_whole_document(markdown: 
     whole = _section_parser().render(markdown)
     pieces = "".join(_render_section(piece)[0] for piece in _split_sections(markdown))
     assert pieces == whole
+
+
+def test_svg_check_names_the_first_problem_in_document_order() -> None:
+    # The check remembers its per-name and per-value decisions; the same names and values must still be judged
+    # on every element, and the first problem (elements in document order, attributes in written order: event
+    # handler, then href, then namespace, then URL or CSS value) is the one named.
+    xl = 'xmlns:x="http://example.org/x"'
+    cases = {
+        '<svg><rect fill="#fff"/><rect onclick="a()" href="http://e"/></svg>': "event-handler attribute 'onclick'",
+        '<svg><use href="http://e/x" onclick="a()"/></svg>': "external reference 'http://e/x'",
+        '<svg><use xlink:href="#ok"/><use xlink:href="ftp://e"/></svg>': "external reference 'ftp://e'",
+        f'<svg {xl}><rect x:a="1"/></svg>': "attribute 'a' in namespace 'http://example.org/x'",
+        '<svg><rect fill="#fff"/><rect fill="url(http://e)"/></svg>': "attribute fill='url(http://e)'",
+        '<svg><rect fill="java\tscript:x"/></svg>': "attribute fill='java script:x'",
+        "<svg><style>@import 'x.css';</style></svg>": "a style sheet with external references",
+        "<svg><g><rect/></g><iframe/></svg>": "element <iframe>",
+    }
+    for svg, problem in cases.items():
+        for _ in range(2):  # the second time the cached decisions answer
+            with pytest.raises(InvalidInputError) as err:
+                clean_svg(svg, key="f")
+            assert f"contains {problem};" in str(err.value), (svg, str(err.value))
+    assert clean_svg('<svg><rect fill="#fff" stroke="url(#g)"/></svg>', key="f").startswith("<svg")
+
+
+_CELL_TEXT = st.lists(
+    st.sampled_from(
+        [
+            *"ab |\\`*_[]()<>&!#:-.\t\"'",
+            "é",
+            "\u00a0",
+            "\x85",
+            "&amp;",
+            "&#33;",
+            "`verdict:holds`",
+            "`state:open`",
+            "**",
+        ]
+    ),
+    max_size=10,
+).map("".join)
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    headers=st.lists(_CELL_TEXT, min_size=1, max_size=4),
+    rows=st.lists(st.lists(_CELL_TEXT, min_size=1, max_size=4), max_size=4),
+    align=st.text(alphabet="lrcx", max_size=4),
+    escape=st.booleans(),
+)
+def test_tables_rendered_cell_by_cell_match_the_markdown_parser(
+    headers: list[str], rows: list[list[str]], align: str, escape: bool
+) -> None:
+    # Exact identity: the renderer's table fast path against markdown-it's own table rule on the same section.
+    # Cells are escaped as documents escape them, or raw (pipes, backslashes and code spans included), and rows
+    # may have the wrong number of cells (those sections must go to the parser).
+    from ivdossier.reports.html import _render_section, _render_table, _section_parser
+
+    if escape:  # as documents write them: escaped cells, as many in each row as headers
+        headers = [mt.cell(h) for h in headers]
+        rows = [[mt.cell(c) for c in (row + ["x"] * len(headers))[: len(headers)]] for row in rows]
+    text = mt.table(headers, rows, align)
+    expected = _section_parser().render(text)
+    assert _render_section(text)[0] == expected
+    if escape:
+        assert _render_table(text) is not None  # every generated table takes the fast path

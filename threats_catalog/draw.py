@@ -28,6 +28,7 @@ import re
 import textwrap
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Any
 
 import networkx as nx
@@ -102,6 +103,7 @@ _BOLD = (
 MONO_ADVANCE = 0.602
 
 
+@lru_cache(maxsize=8192)
 def text_width(
     text: str, size: float, *, bold: bool = False, mono: bool = False, spacing: float = 0.0
 ) -> float:
@@ -353,14 +355,13 @@ def _edge_svg(
     )
     if not bow:
         cx, cy = (x1 + x2) / 2, (y1 + y2) / 2
-    points = [
-        (
-            (1 - t) ** 2 * x1 + 2 * (1 - t) * t * cx + t**2 * x2,
-            (1 - t) ** 2 * y1 + 2 * (1 - t) * t * cy + t**2 * y2,
-        )
-        for t in (i / 40 for i in range(41))
-    ]
+    points = [(a * x1 + b * cx + c * x2, a * y1 + b * cy + c * y2) for a, b, c in _BEZIER_41]
     return out, label, points
+
+
+# Weights (1 - t)², 2(1 - t)t and t² of a quadratic curve at t = 0, 1/40, ..., 1, each computed in the order the
+# expanded formula evaluates it, so the points are the same to the last bit.
+_BEZIER_41 = tuple(((1 - t) ** 2, 2 * (1 - t) * t, t**2) for t in (i / 40 for i in range(41)))
 
 
 Rect = tuple[float, float, float, float]  # left, top, right, bottom
@@ -383,7 +384,8 @@ class PointIndex:
     def count(self, box: Rect) -> int:
         """How many points lie in the closed box (left, top, right, bottom)."""
         lo, hi = bisect.bisect_left(self.xs, box[0]), bisect.bisect_right(self.xs, box[2])
-        return sum(1 for y in self.ys[lo:hi] if box[1] <= y <= box[3])
+        top, bottom = box[1], box[3]
+        return len([y for y in self.ys[lo:hi] if top <= y <= bottom])
 
 
 def _place_tags(
@@ -402,11 +404,23 @@ def _place_tags(
         w, h = text_width(text, TAG_SIZE, mono=True) + 8, TAG_H
         mine = PointIndex(curves[own] if 0 <= own < len(curves) else [])
         best: tuple[float, Rect] | None = None
+        # Every candidate lies inside this box, so a rectangle that misses it (with the same padding) overlaps
+        # none of them: testing only the others decides every candidate exactly as testing all would.
+        xs = [points[i][0] for i in order]
+        ys = [points[i][1] for i in order]
+        reach = (min(xs) - w / 2, min(ys) - 20.0 - h / 2, max(xs) + w / 2, max(ys) + 20.0 + h / 2)
+        near = [o for o in (*placed, *obstacles) if _overlaps(reach, o, 2)]
         for rank, i in enumerate(order):
             px, py = points[i]
             for k, dy in enumerate((0.0, -10.0, 10.0, -20.0, 20.0)):
+                if best is not None and rank + 3 * k >= best[0]:
+                    continue  # cannot beat the best score found, whatever it crosses
                 r = (px - w / 2, py + dy - h / 2, px + w / 2, py + dy + h / 2)
-                if any(_overlaps(r, o, 2) for o in placed) or any(_overlaps(r, o, 2) for o in obstacles):
+                left, top, right, bottom = r
+                if any(
+                    left < o[2] + 2 and o[0] < right + 2 and top < o[3] + 2 and o[1] < bottom + 2
+                    for o in near
+                ):  # _overlaps(r, o, 2), written out
                     continue
                 box = (r[0] - 2, r[1] - 2, r[2] + 2, r[3] + 2)
                 crossed = every.count(box) - mine.count(box)  # points of other edges' curves in the box

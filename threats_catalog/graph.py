@@ -722,7 +722,11 @@ def _bypass_paths(
 ) -> tuple[list[BypassPath], list[BypassPath], bool]:
     """Open and blocked Z-Y paths avoiding x in the mutilated graph M; blocked ones only if they use a
     threat edge and are open without the user's conditioning (i.e. conditioning is what closes them)."""
-    skeleton = M.to_undirected(as_view=False)
+    # The undirected skeleton, structure only (paths never read attributes): nodes and edges added in M's order,
+    # as to_undirected adds them, without deep-copying every attribute dictionary.
+    skeleton: nx.Graph[str] = nx.Graph()
+    skeleton.add_nodes_from(M.nodes)
+    skeleton.add_edges_from(M.edges)
     skeleton.remove_node(x)
     anc_c: dict[str, set[str]] = {}
     for node in M.nodes:

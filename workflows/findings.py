@@ -7,6 +7,7 @@ a stored run and applies it.
 from __future__ import annotations
 
 from collections.abc import Mapping
+from functools import lru_cache
 from typing import Any
 
 from ivdossier.workflows.analyses import ANALYSES, analysis_of_result
@@ -14,9 +15,12 @@ from ivdossier.workflows.analyses import ANALYSES, analysis_of_result
 Results = Mapping[str, Any]
 
 
+@lru_cache(maxsize=256)
 def run_kind_for_command(command: str) -> str:
     """The run kind stored by the analyses a catalogue command names ("ivdossier falsify balance" ->
-    "falsify-balance"; "ivdossier sensitivity" -> "sensitivity", shared by its three subcommands)."""
+    "falsify-balance"; "ivdossier sensitivity" -> "sensitivity", shared by its three subcommands).
+    Remembered: the table of analyses is fixed when the module loads, and a site asks for every check of every
+    link."""
     name = command.removeprefix("ivdossier ")
     kinds = {a.run_kind for a in ANALYSES.values() if a.name == name or a.name.startswith(name + " ")}
     if len(kinds) != 1:
