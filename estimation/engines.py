@@ -151,58 +151,32 @@ def _check_columns(kinds: dict[str, str], model: ModelSpec) -> None:
             )
 
 
-def _normalise(
-    outcome: str,
-    treatment: str | Sequence[str],
-    instruments: str | Sequence[str],
-    controls: str | Sequence[str],
-    absorb: str | Sequence[str],
-    cluster: str | Sequence[str] | None,
-    weights: str | None,
-    method: str,
-    vcov: str,
-    small_sample: bool,
-    alpha: float,
-    fuller_alpha: float,
-) -> ModelSpec:
-    if not isinstance(outcome, str) or not outcome:
+def _check_model(model: ModelSpec) -> None:
+    """What a scanning estimate needs of its model beyond the spec's own checks: one outcome, a treatment, at most
+    two cluster variables, distinct roles and enough instruments."""
+    if not model.outcome:
         raise InvalidInputError("Option outcome= must name one column.")
-    if not as_names(treatment, "treatment"):
+    if not model.treatment:
         raise InvalidInputError("Option treatment= must name at least one column.")
-    model = ModelSpec.build(
-        outcome=outcome,
-        treatment=treatment,
-        instruments=instruments,
-        controls=controls,
-        absorb=absorb,
-        cluster=cluster,
-        weights=weights,
-        method=method,
-        vcov=vcov,
-        small_sample=small_sample,
-        alpha=alpha,
-        fuller_alpha=fuller_alpha,
-    )
     treat, inst, clus = model.treatment, model.instruments, model.cluster
     if len(clus) > 2:
         raise InvalidInputError(
             f"At most two cluster variables are supported, got {len(clus)}; pass one or two."
         )
     roles = {
-        "outcome": (outcome,),
+        "outcome": (model.outcome,),
         "treatment": treat,
         "instruments": inst,
         "controls": model.controls,
         "absorb": model.absorb,
-        "weights": (weights,) if weights else (),
+        "weights": (model.weights,) if model.weights else (),
     }
     check_roles(roles)
-    if method != "ols" and len(inst) < len(treat):
+    if model.method != "ols" and len(inst) < len(treat):
         raise EstimationError(
             f"{len(inst)} excluded instrument(s) for {len(treat)} endogenous regressor(s): the model is not "
             "identified; add instruments or remove treatments."
         )
-    return model
 
 
 def refuse_unsupported(model: ModelSpec, engine: str) -> None:
@@ -682,21 +656,23 @@ def estimate_source(
     "1GB", spilling to ``temp_directory``), "spark" (``spark_master`` URL or ``spark_session``; a path Spark can
     read, e.g. hdfs://...) or "auto". ``progress`` receives a :class:`ScanProgress` for scans over two seconds.
     """
-    if engine not in ENGINES:
-        raise InvalidInputError(f"Unknown engine {engine!r}; choose one of {', '.join(ENGINES)}.")
-    model = _normalise(
-        outcome,
-        treatment,
-        instruments,
-        controls,
-        absorb,
-        cluster,
-        weights,
-        method,
-        vcov,
-        small_sample,
-        alpha,
-        fuller_alpha,
+    if not isinstance(outcome, str) or not outcome:
+        raise InvalidInputError("Option outcome= must name one column.")
+    if not as_names(treatment, "treatment"):
+        raise InvalidInputError("Option treatment= must name at least one column.")
+    model = ModelSpec.build(
+        outcome=outcome,
+        treatment=treatment,
+        instruments=instruments,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        method=method,
+        vcov=vcov,
+        small_sample=small_sample,
+        alpha=alpha,
+        fuller_alpha=fuller_alpha,
     )
     settings = EngineSettings(
         engine=engine,
@@ -708,9 +684,17 @@ def estimate_source(
         progress=progress,
         with_fingerprint=with_fingerprint,
     )
-    scan = None if engine == "pandas" else scan_source(str(path), model, settings)
+    return estimate_model_source(str(path), model, settings)
+
+
+def estimate_model_source(path: str, model: ModelSpec, settings: EngineSettings) -> SourceEstimate:
+    """:func:`estimate_source` for a model spec and engine settings already built."""
+    if settings.engine not in ENGINES:
+        raise InvalidInputError(f"Unknown engine {settings.engine!r}; choose one of {', '.join(ENGINES)}.")
+    _check_model(model)
+    scan = None if settings.engine == "pandas" else scan_source(path, model, settings)
     if scan is None:
-        frame, prov = read_source_frame(str(path), model, settings, choice=auto_choice(path, model, settings))
+        frame, prov = read_source_frame(path, model, settings, choice=auto_choice(path, model, settings))
         t0 = time.monotonic()
         result = estimate_spec(frame, model)
         prov = dataclasses.replace(prov, scans=(*prov.scans, ScanTiming("estimate", time.monotonic() - t0)))

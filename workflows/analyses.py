@@ -382,39 +382,12 @@ def _compliers(frame: pd.DataFrame, spec: ModelSpec | None, o: Options) -> Compu
 
 
 def _estimate_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
-    from ivdossier.estimation.engines import estimate_source
+    from ivdossier.estimation.engines import estimate_model_source
 
     s = _need(spec, "estimate")
     if s.outcome is None:
         raise InvalidInputError("an estimate needs --outcome; name the outcome column.")
-    return estimate_source(
-        path,
-        outcome=s.outcome,
-        treatment=s.treatment,
-        instruments=s.instruments,
-        controls=s.controls,
-        absorb=s.absorb,
-        cluster=s.cluster or None,
-        weights=s.weights,
-        method=s.method,
-        vcov=s.vcov,
-        small_sample=s.small_sample,
-        alpha=s.alpha,
-        fuller_alpha=s.fuller_alpha,
-        **{k: getattr(settings, k) for k in _SETTINGS},
-    )
-
-
-_SETTINGS = (
-    "engine",
-    "spark_master",
-    "spark_session",
-    "memory_limit",
-    "temp_directory",
-    "threads",
-    "progress",
-    "with_fingerprint",
-)
+    return estimate_model_source(path, s, settings)
 
 
 def _balance_scan(path: str, spec: ModelSpec | None, o: Options, settings: EngineSettings) -> Any:
