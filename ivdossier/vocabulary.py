@@ -141,3 +141,20 @@ class NotApplicable(Record):
             reason = view.get("reason")
             return cls(str(reason) if reason else "no reason stated")
         return None
+
+
+SPEC_KEYS: tuple[str, ...] = (
+    "outcome",
+    "treatment",
+    "instruments",
+    "controls",
+    "absorb",
+    "cluster",
+    "weights",
+    "method",
+    "vcov",
+    "small_sample",
+    "alpha",
+    "fuller_alpha",
+)
+"""The keys of a model spec as stored with a run (``estimation.spec.ModelSpec.echo``), in order."""

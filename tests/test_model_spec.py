@@ -206,3 +206,10 @@ def test_the_covariance_words_and_their_old_spellings_for_one_release(cli, tmp_p
         code == 2
         and "Unknown vcov 'sandwich'; choose one of homoskedastic, heteroskedastic, clustered." in err
     )
+
+
+def test_the_vocabulary_names_the_stored_spec_keys_in_the_echo_order() -> None:
+    from ivdossier.vocabulary import SPEC_KEYS
+
+    spec = ModelSpec.build(outcome="y", treatment="x", instruments="z")
+    assert tuple(spec.echo()) == SPEC_KEYS  # documents and plan comparison list the keys from the vocabulary

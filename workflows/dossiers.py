@@ -38,7 +38,7 @@ from ivdossier.registry.runs import runs_of
 from ivdossier.registry.threats import links_of
 from ivdossier.reports import inputs as ri
 from ivdossier.threats_catalog.graph import GraphVerdict
-from ivdossier.vocabulary import Verdict
+from ivdossier.vocabulary import SPEC_KEYS, Verdict
 from ivdossier.workflows.catalog_sync import catalog_entry, registry_catalog
 from ivdossier.workflows.fragility import fragility_runs
 
@@ -291,21 +291,7 @@ def _ratings(reader: RegistryReader, link: Link) -> tuple[ri.Rating, ...]:
     )
 
 
-SPEC_ORDER: tuple[str, ...] = (
-    "data",
-    "outcome",
-    "treatment",
-    "instruments",
-    "controls",
-    "absorb",
-    "cluster",
-    "weights",
-    "method",
-    "vcov",
-    "small_sample",
-    "alpha",
-    "fuller_alpha",
-)
+SPEC_ORDER: tuple[str, ...] = ("data", *SPEC_KEYS)
 """The order a run's spec is shown in: the model spec's own order (its echo), then an analysis's options by name."""
 
 

@@ -20,22 +20,12 @@ from ivdossier.registry import plans as store
 from ivdossier.registry import records
 from ivdossier.registry.models import Dataset, Instrument, Plan, Run
 from ivdossier.reports.inputs import Difference
+from ivdossier.vocabulary import SPEC_KEYS
 from ivdossier.workflows.plan_quantities import ESTIMATE, rule_kind
 from ivdossier.workflows.plan_rules import RuleOutcome, evaluate_rule
 
-SPEC_FIELDS: tuple[str, ...] = (
-    "outcome",
-    "treatment",
-    "instruments",
-    "controls",
-    "absorb",
-    "cluster",
-    "weights",
-    "method",
-    "vcov",
-    "small_sample",
-    "alpha",
-)
+SPEC_FIELDS: tuple[str, ...] = tuple(k for k in SPEC_KEYS if k != "fuller_alpha")
+"""The spec fields a plan records and a run is compared on (a plan records no Fuller constant)."""
 SET_FIELDS = {"treatment", "instruments", "controls", "absorb", "cluster"}
 DEVIATION_KIND = {
     "outcome": "spec",
