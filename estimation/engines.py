@@ -151,6 +151,20 @@ def _check_columns(kinds: dict[str, str], model: ModelSpec) -> None:
             )
 
 
+def _check_model_roles(model: ModelSpec) -> None:
+    """No column may play two roles in the model (outcome, treatment, instrument, control, absorbed, weights)."""
+    check_roles(
+        {
+            "outcome": (model.outcome,) if model.outcome else (),
+            "treatment": model.treatment,
+            "instruments": model.instruments,
+            "controls": model.controls,
+            "absorb": model.absorb,
+            "weights": (model.weights,) if model.weights else (),
+        }
+    )
+
+
 def _check_model(model: ModelSpec) -> None:
     """What a scanning estimate needs of its model beyond the spec's own checks: one outcome, a treatment, at most
     two cluster variables, distinct roles and enough instruments."""
@@ -163,15 +177,7 @@ def _check_model(model: ModelSpec) -> None:
         raise InvalidInputError(
             f"At most two cluster variables are supported, got {len(clus)}; pass one or two."
         )
-    roles = {
-        "outcome": (model.outcome,),
-        "treatment": treat,
-        "instruments": inst,
-        "controls": model.controls,
-        "absorb": model.absorb,
-        "weights": (model.weights,) if model.weights else (),
-    }
-    check_roles(roles)
+    _check_model_roles(model)
     if model.method != "ols" and len(inst) < len(treat):
         raise EstimationError(
             f"{len(inst)} excluded instrument(s) for {len(treat)} endogenous regressor(s): the model is not "
@@ -586,16 +592,7 @@ def scan_source(
     """Sum the sufficient statistics of ``model`` over a file or Parquet folder with DuckDB or Spark; None when
     ``settings.engine`` is ``auto`` and chose pandas (read the data with :func:`read_source_frame` instead).
     ``extra(runner, plan)`` runs one more query on the same rows before the runner closes."""
-    check_roles(
-        {
-            "outcome": (model.outcome,) if model.outcome else (),
-            "treatment": model.treatment,
-            "instruments": model.instruments,
-            "controls": model.controls,
-            "absorb": model.absorb,
-            "weights": (model.weights,) if model.weights else (),
-        }
-    )
+    _check_model_roles(model)
     plan = _plan_source(str(path), model, settings)
     if plan.chosen == "pandas":
         if settings.engine == "pandas":
