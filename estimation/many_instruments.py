@@ -34,6 +34,7 @@ implemented here.
 from __future__ import annotations
 
 import itertools
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -373,17 +374,25 @@ def decision_maker_anderson_rubin(
     treatment: str,
     decision_maker: str,
     absorb: str | None = None,
+    controls: str | Sequence[str] = (),
     beta0: float = 0.0,
     alpha: float = 0.05,
+    max_n: int = MAX_DENSE_N,
 ) -> JackknifeAR:
-    """Jackknife AR with one dummy per decision-maker as instruments, partialling an intercept or ``absorb`` cells.
+    """Jackknife AR with one dummy per decision-maker as instruments; an intercept, the ``absorb`` cells' dummies
+    and the ``controls`` columns are partialled out of the outcome, the treatment and the dummies first (as the
+    paper handles a fixed number of covariates).
 
-    Decision-makers must each work within one cell (the grouped path, cost about the sum over cells of the
-    squared number of decision-makers); otherwise build the dummies and call :func:`jackknife_anderson_rubin`.
+    Without ``controls`` and with every decision-maker working within one cell (or no cells) the projection is a
+    difference of group means and the grouped path is exact at any size (cost about the sum over cells of the
+    squared number of decision-makers). Otherwise (numeric controls, or decision-makers working in several cells)
+    the partialled projection is dense and the dense path is used up to ``max_n`` rows; above that the result is
+    not applicable and its reason names the fix.
     """
     import pandas as pd
 
-    cols = [outcome, treatment, decision_maker, *([absorb] if absorb else [])]
+    ctrl = (controls,) if isinstance(controls, str) else tuple(controls)
+    cols = [outcome, treatment, decision_maker, *([absorb] if absorb else []), *ctrl]
     missing = [c for c in cols if c not in data.columns]
     if missing:
         raise InvalidInputError(f"Column(s) {missing} not found in the data; check the names.")
@@ -393,6 +402,12 @@ def decision_maker_anderson_rubin(
             f"{int(na.sum())} row(s) have missing values in {cols} (index {data.index[na][:8].tolist()}); "
             "drop or fill them first."
         )
+    for c in (outcome, treatment, *ctrl):
+        if not (pd.api.types.is_numeric_dtype(data[c]) or pd.api.types.is_bool_dtype(data[c])):
+            raise InvalidInputError(
+                f"Column {c!r} must be numeric, got dtype {data[c].dtype}; recode it as numbers (a categorical "
+                "control goes to absorb)."
+            )
     n = len(data)
     yv, xv = _check(alpha, data[outcome].to_numpy(float), data[treatment].to_numpy(float), n)
     dm, dm_ids = pd.factorize(data[decision_maker], sort=False)
@@ -403,13 +418,35 @@ def decision_maker_anderson_rubin(
             f"Decision-maker(s) {ids} in {decision_maker!r} have a single case; drop those cases or merge them."
         )
     cells = pd.factorize(data[absorb], sort=False)[0] if absorb else np.zeros(n, dtype=np.int64)
-    if not is_nested(dm, cells):
-        raise InvalidInputError(
-            f"Some decision-makers in {decision_maker!r} work in more than one {absorb!r} cell; build the dummies "
-            "and call jackknife_anderson_rubin (dense path) instead."
+    if not ctrl and is_nested(dm, cells):
+        n_cell = np.bincount(cells).astype(np.float64)
+        ey = yv - (np.bincount(cells, weights=yv) / n_cell)[cells]
+        ex = xv - (np.bincount(cells, weights=xv) / n_cell)[cells]
+        pieces = _grouped_pieces(ey, ex, dm, cells)
+        return _result(pieces, n, beta0, alpha, "grouped")
+    why = (
+        f"controls {list(ctrl)}"
+        if ctrl
+        else f"decision-makers in {decision_maker!r} working in more than one {absorb!r} cell"
+    )
+    if n > max_n:
+        return not_applicable(
+            f"with {why} the partialled projection is dense and its cost grows with n^2: {n:,} rows exceed the "
+            f"dense limit of {max_n:,}; absorb the controls as cells (a categorical column) in which every "
+            "decision-maker is nested, for the exact grouped path, or raise max_n",
+            n=n,
+            k=int(counts.size - 1),
+            alpha=alpha,
+            beta0=beta0,
         )
-    n_cell = np.bincount(cells).astype(np.float64)
-    ey = yv - (np.bincount(cells, weights=yv) / n_cell)[cells]
-    ex = xv - (np.bincount(cells, weights=xv) / n_cell)[cells]
-    pieces = _grouped_pieces(ey, ex, dm, cells)
-    return _result(pieces, n, beta0, alpha, "grouped")
+    dummies = np.zeros((n, counts.size))
+    dummies[np.arange(n), dm] = 1.0
+    parts = []
+    if absorb:
+        cd = np.zeros((n, int(cells.max()) + 1))
+        cd[np.arange(n), cells] = 1.0
+        parts.append(cd[:, 1:])
+    if ctrl:
+        parts.append(data[list(ctrl)].to_numpy(dtype=np.float64))
+    wmat = np.column_stack(parts) if parts else None
+    return jackknife_anderson_rubin(yv, xv, dummies, wmat, beta0=beta0, alpha=alpha, max_n=max_n)
