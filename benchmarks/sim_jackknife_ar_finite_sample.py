@@ -1,4 +1,4 @@
-"""Why the jackknife Anderson-Rubin test rejects a little more than 5% with K = 50 clerk dummies: skewness.
+"""Why the jackknife Anderson-Rubin test rejects more than 5% with 50-200 clerk dummies: skewness and noise.
 
 Prints figures; it is not a test. Same invented design as ``sim_jackknife_ar_size.py`` (K + 1 clerks with 10 cases
 each, heteroskedastic errors, H0 true), so the first stage plays no part: under H0 the statistic involves only
