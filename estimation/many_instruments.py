@@ -21,7 +21,7 @@ Finite samples (our simulations; the paper's own size figures could not be read)
 than its level with 50-200 instruments. Nominal 5%, MC s.e. 0.3 points, K + 1 clerks, heteroskedastic normal
 errors: with 10 cases per clerk 6.3-6.8% at K = 50, 6.3-6.4% at K = 100 and 6.1% at K = 200
 (benchmarks/sim_jackknife_ar_size.py and sim_jackknife_ar_finite_sample.py); with 40 cases per clerk 5.7% at
-K = 50 and 5.7-5.9% at K = 100. With the exact variance in place of Phi the rate is still 5.5-5.8%: the numerator
+K = 50, 5.7-5.9% at K = 100 and 5.5% at K = 200. With the exact variance in place of Phi the rate is still 5.5-5.8%: the numerator
 is a quadratic form in the errors, right-skewed (skewness exactly 8 tr(B^3) / (2 tr(B^2))^{3/2}, about
 2 sqrt(2) / sqrt(K) for small leverages; 0.34 at K = 50), which a one-sided normal test turns into over-rejection.
 The noise of Phi adds the rest, most with few cases per decision-maker (Phi uses within-decision-maker variation
