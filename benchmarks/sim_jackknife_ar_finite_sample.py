@@ -1,4 +1,4 @@
-"""Why the jackknife Anderson-Rubin test rejects a little more than 5% with K = 50 clerk dummies: skewness.
+"""Why the jackknife Anderson-Rubin test rejects more than 5% with 50-200 clerk dummies: skewness and noise.
 
 Prints figures; it is not a test. Same invented design as ``sim_jackknife_ar_size.py`` (K + 1 clerks with 10 cases
 each, heteroskedastic errors, H0 true), so the first stage plays no part: under H0 the statistic involves only
@@ -21,6 +21,7 @@ amount that shrinks like 1 / sqrt(K). Rates are printed with their Monte Carlo s
 
     .venv/bin/python benchmarks/sim_jackknife_ar_finite_sample.py              # R = 2000 per K (a few minutes)
     .venv/bin/python benchmarks/sim_jackknife_ar_finite_sample.py --reps 500   # quicker
+    .venv/bin/python benchmarks/sim_jackknife_ar_finite_sample.py --cases 40 --ks 50 100   # bigger clerks
 """
 
 from __future__ import annotations
@@ -38,11 +39,11 @@ BETA = 0.5
 CASES_PER_CLERK = 10
 
 
-def projection(n_dm: int) -> np.ndarray:
-    """P for K = n_dm - 1 clerk dummies after partialling the intercept (equal groups): [same clerk]/m - 1/n."""
-    n = n_dm * CASES_PER_CLERK
-    dm = np.repeat(np.arange(n_dm), CASES_PER_CLERK)
-    return (dm[:, None] == dm[None, :]) / CASES_PER_CLERK - 1.0 / n
+def projection(n_dm: int, m: int) -> np.ndarray:
+    """P for K = n_dm - 1 clerk dummies of m cases each after partialling the intercept: [same clerk]/m - 1/n."""
+    n = n_dm * m
+    dm = np.repeat(np.arange(n_dm), m)
+    return (dm[:, None] == dm[None, :]) / m - 1.0 / n
 
 
 def oracle(e: np.ndarray, s: np.ndarray, dm: np.ndarray, n_dm: int) -> tuple[float, float, float]:
@@ -50,7 +51,7 @@ def oracle(e: np.ndarray, s: np.ndarray, dm: np.ndarray, n_dm: int) -> tuple[flo
     with variances s: the numerator with the true errors over its exact standard deviation (grouped sums); the
     implementation partials the intercept out of e first, which leaves e'Pe unchanged (P annihilates it) but
     changes the removed diagonal."""
-    n, m = e.size, CASES_PER_CLERK
+    n, m = e.size, e.size // n_dm
     sg, s2g = np.bincount(dm, weights=e, minlength=n_dm), np.bincount(dm, weights=e * e, minlength=n_dm)
     num = np.sum(sg * sg - s2g) / m - (e.sum() ** 2 - np.sum(e * e)) / n
     vg, v2g = np.bincount(dm, weights=s, minlength=n_dm), np.bincount(dm, weights=s * s, minlength=n_dm)
@@ -76,12 +77,13 @@ def main() -> None:
     ap.add_argument("--reps", type=int, default=2000)
     ap.add_argument("--seed", type=int, default=20261)
     ap.add_argument("--ks", type=int, nargs="+", default=[50, 100, 200])
+    ap.add_argument("--cases", type=int, default=CASES_PER_CLERK, help="cases per clerk")
     args = ap.parse_args()
     rng = np.random.default_rng(args.seed)
     z = stats.norm.ppf(0.95)
     r = args.reps
     print(
-        f"{CASES_PER_CLERK} cases per clerk, heteroskedastic errors, H0 true, {r} replicates per K; nominal 0.05"
+        f"{args.cases} cases per clerk, heteroskedastic errors, H0 true, {r} replicates per K; nominal 0.05"
     )
     print(
         f"{'K':>5}{'as implemented':>16}{'MC s.e.':>9}{'oracle var.':>13}{'MC s.e.':>9}"
@@ -90,10 +92,10 @@ def main() -> None:
     t0 = time.perf_counter()
     for k in args.ks:
         n_dm = k + 1
-        n = n_dm * CASES_PER_CLERK
-        dm = np.repeat(np.arange(n_dm), CASES_PER_CLERK)
+        n = n_dm * args.cases
+        dm = np.repeat(np.arange(n_dm), args.cases)
         s_design = 0.25 + 1.5 * rng.uniform(size=n)  # one draw of the variances for the exact skewness
-        g = exact_skewness(projection(n_dm), s_design) if n <= 2500 else float("nan")
+        g = exact_skewness(projection(n_dm, args.cases), s_design) if n <= 2500 else float("nan")
         feasible, orc, ratio = np.empty(r), np.empty(r), np.empty(r)
         for rep in range(r):
             s = 0.25 + 1.5 * rng.uniform(size=n)  # heteroskedasticity as in sim_jackknife_ar_size.py

@@ -7,6 +7,14 @@ per-decision-maker points (propensity, mean outcome, cases) that such a check an
 The formal two-part test of Frandsen, Lefgren and Leslie is not implemented (see :data:`FLL_REASON`): its
 exact statistic, smoothing choice and critical values could not be verified from the paper for this build, and
 an approximation would be presented under their name. :func:`fll_test` returns a not-applicable result.
+What the stored public material holds (searched again for this build): the abstract of the working paper (NBER
+w25528): standard assumptions imply that the conditional expectation of the outcome given judge assignment is a
+continuous function with bounded slope of the judge propensity; the test has two parts, one generalising the
+Sargan-Hansen overidentification test, one asking whether the implied treatment effects across the range of
+propensities are possible given the outcome's domain; asymptotic validity is shown. Missing: the function class
+(and its smoothing or order choice), the statistic and its weighting, its limiting distribution or critical values,
+how the slope bound is formed from the outcome's domain and tested, how the two parts are combined, and how
+estimated propensities and controls enter. Third-party package pages that describe a reduced version were not used.
 """
 
 from __future__ import annotations

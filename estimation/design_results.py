@@ -154,8 +154,8 @@ def decision_maker_design(
         alpha=alpha,
     )
     ar = decision_maker_anderson_rubin(
-        data, outcome=outcome, treatment=treatment, decision_maker=decision_maker, absorb=absorb, beta0=beta0,
-        alpha=alpha,
+        data, outcome=outcome, treatment=treatment, decision_maker=decision_maker, absorb=absorb,
+        controls=tuple(controls), beta0=beta0, alpha=alpha,
     )  # fmt: skip
     loo = leave_out_2sls(
         data[outcome].to_numpy(dtype=np.float64),

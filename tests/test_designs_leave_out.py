@@ -155,7 +155,7 @@ def test_two_sls_with_the_leave_out_measure_matches_linearmodels(controls: tuple
 
     from ivdossier.estimation.design_results import decision_maker_design
 
-    df = _design_data(nested=True)  # the design's many-instrument test needs clerks nested in cells
+    df = _design_data(nested=True)  # nested: the many-instrument test takes its grouped path
     res, column = decision_maker_design(
         df, outcome="y", treatment="x", decision_maker="clerk", absorb="cell", controls=controls
     )
