@@ -34,7 +34,6 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
@@ -144,6 +143,8 @@ def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float
 
 def sensitivity_core(cp: CrossProducts, counts: SampleCounts, model: ModelSpec) -> _Core:
     """The 2SLS fit, A and H of the module docstring from the sufficient statistics (one treatment)."""
+    import scipy.linalg
+
     if cp.p != 1:
         raise InvalidInputError(
             "The plausibly-exogenous analysis takes one treatment column; pass treatment= as a single name."
