@@ -149,10 +149,6 @@ def main() -> None:
 
 def big(repeat: int) -> None:
     inp = big_input()
-    start = time.perf_counter()
-    import matplotlib  # noqa: F401  (first import is a one-off cost, reported separately)
-
-    print(f"import matplotlib (one-off)      {time.perf_counter() - start:8.3f} s")
     t_md, md = best_of(lambda: dossier_markdown(_fresh(inp)), repeat)
     t_fig, _ = best_of(lambda: dossier_figures(inp), repeat)
     t_html, page = best_of(lambda: dossier_html(_fresh(inp)), repeat)

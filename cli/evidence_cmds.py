@@ -141,7 +141,7 @@ def sensitivity_range(
     """Union of 2SLS intervals over a range of direct effects (Conley, Hansen and Rossi 2012)."""
     from ivdossier.cli.deprecated import either
     from ivdossier.errors import InvalidInputError
-    from ivdossier.estimation.sensitivity import plot_sensitivity_svg
+    from ivdossier.reports.sensitivity_plot import sensitivity_svg
 
     low = either(direct_effect_min or None, gamma_min or None, new="--direct-effect-min", old="--gamma-min")
     high = either(direct_effect_max or None, gamma_max or None, new="--direct-effect-max", old="--gamma-max")
@@ -163,7 +163,7 @@ def sensitivity_range(
         direct_effect_max=high,
     )
     if plot is not None:
-        plot.write_text(plot_sensitivity_svg(run.result), encoding="utf-8")
+        plot.write_text(sensitivity_svg(run.result), encoding="utf-8")
     _finish(run, "sensitivity range", attach=attach, json_out=json_out)
 
 

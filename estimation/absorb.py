@@ -27,10 +27,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.linalg
-import scipy.sparse
 from numpy.typing import NDArray
-from scipy.sparse.csgraph import connected_components
 
 from ivdossier.errors import EstimationError
 from ivdossier.estimation.linalg import GRAM_MIN_DIAG, Projector, tall_matmul
@@ -73,6 +70,9 @@ def bipartite_components(a: np.ndarray, b: np.ndarray) -> int:
 
     Codes are non-negative integers; codes that never occur are not nodes (they are not counted).
     """
+    import scipy.sparse
+    from scipy.sparse.csgraph import connected_components
+
     na, nb = int(a.max()) + 1, int(b.max()) + 1
     graph = scipy.sparse.csr_matrix(
         (np.ones(a.size, dtype=np.int8), (a.astype(np.int64), b.astype(np.int64) + na)),
@@ -290,6 +290,8 @@ def _project_out(t: Array, cc: Array, norms: Array) -> tuple[Array, list[int]]:
 def _gram_coefficients(gcc: Array, gct: Array, norms: Array) -> Array | None:
     """Least-squares coefficients from the normal equations when the unit-scaled Gram matrix of the controls is
     well conditioned (Cholesky diagonal above GRAM_MIN_DIAG); None sends the caller to the exact QR path."""
+    import scipy.linalg
+
     inv = 1.0 / norms
     try:
         chol = np.linalg.cholesky(gcc * np.outer(inv, inv))

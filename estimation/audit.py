@@ -36,7 +36,7 @@ from ivdossier.estimation.critical_values import (
     stock_yogo_applicable,
     tf_critical_value,
 )
-from ivdossier.estimation.distributions import chi2_ppf, f_ppf, norm_ppf
+from ivdossier.estimation.light_quantiles import chi2_1_ppf, f_1_ppf, ncx2_1_ppf, norm_ppf
 from ivdossier.estimation.sets import Interval, classify_set, quadratic_set
 from ivdossier.estimation.variant_summary import (
     EggerFit,
@@ -324,10 +324,10 @@ def ar_reference(rep: ReportedStats) -> tuple[str, float, float]:
     else:
         return (
             "chi-square(1) (large sample; n not reported)",
-            chi2_ppf(0.95, 1),
-            chi2_ppf(0.99, 1),
+            chi2_1_ppf(0.95),
+            chi2_1_ppf(0.99),
         )
-    return name, f_ppf(0.95, 1, d), f_ppf(0.99, 1, d)
+    return name, f_1_ppf(0.95, d), f_1_ppf(0.99, d)
 
 
 def implied_covariance(rep: ReportedStats) -> float | None:
@@ -474,7 +474,8 @@ def strength_check(rep: ReportedStats) -> StrengthCheck:
         # K_eff = 1 with one instrument; K_eff = k under homoskedasticity (S proportional to the identity).
         k_eff = 1.0 if k == 1 else float(k)
         for tau in MOP_TAUS:
-            c = mop_critical_value(k_eff, tau)
+            # K_eff = 1: the quantile of ncx2(1, 1 / tau) in pure Python, so an audit needs no scipy
+            c = ncx2_1_ppf(0.95, 1.0 / tau) if k_eff == 1 else mop_critical_value(k_eff, tau)
             eff_rows.append(Threshold(f"effective F, tau = {_pct(tau)}", c, f > c))
         if rep.f_kind == "unknown":
             eff_note = "the study did not say which F it reported; read as the effective F"

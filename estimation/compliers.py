@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from ivdossier.errors import EstimationError, InvalidInputError
-from ivdossier.estimation.distributions import norm_ppf
+from ivdossier.estimation.light_quantiles import norm_ppf  # read from stored results: no scipy
 from ivdossier.estimation.rows import RowAccount
 from ivdossier.jsonsafe import Record, json_safe
 

@@ -19,7 +19,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError
@@ -66,6 +65,8 @@ class ControlsTable(Record):
 
 
 def _lstsq(a: Array, b: Array) -> tuple[Array, Array]:
+    import scipy.linalg
+
     q, r = np.linalg.qr(a)
     diag = np.abs(np.diag(r))
     if np.any(diag <= 1e-12 * np.linalg.norm(a, axis=0)):

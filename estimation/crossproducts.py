@@ -29,7 +29,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
@@ -201,6 +200,8 @@ def orthonormal_rows(a: Array) -> tuple[Array | None, Array, bool]:
     CholeskyQR2 (two Cholesky passes over the Gram matrix) when the columns are well conditioned, then Q is
     not formed (None: rows are a R^{-1}, computed block by block); else Householder QR (exact, Q returned).
     """
+    import scipy.linalg
+
     gram = a.T @ a
     try:
         r1 = np.linalg.cholesky(gram).T
@@ -434,6 +435,8 @@ def _build(
     n_partialled: int,
     n_partialled_nested: int,
 ) -> CrossProducts:
+    import scipy.linalg
+
     parts = [np.asarray(z, dtype=np.float64), np.asarray(x, dtype=np.float64)]
     parts = [a[:, None] if a.ndim == 1 else a for a in parts]
     if y is not None:
@@ -502,6 +505,8 @@ def _build(
 
 def collinear_instruments(cp: CrossProducts, *, rtol: float = RANK_RTOL) -> list[int]:
     """Instruments (indices) that a pivoted QR of the unit-length instrument block finds redundant."""
+    import scipy.linalg
+
     if cp.k == 0:
         return []
     zero = [j for j in range(cp.k) if cp.scale[j] == 0]
@@ -530,6 +535,8 @@ def quad_form_inv(mat: Array, vec: Array, what: str) -> float:
 
 def lstsq_coords(a: Array, b: Array) -> tuple[Array, Array]:
     """Least squares in coordinates: coefficients of b (m x e) on a (m x r) and residual coordinates."""
+    import scipy.linalg
+
     qa, ra = np.linalg.qr(a)
     if np.any(np.abs(np.diag(ra)) <= RANK_RTOL * np.maximum(np.linalg.norm(a, axis=0), 1e-300)):
         raise NotComputable("the regressors of an auxiliary regression are collinear")

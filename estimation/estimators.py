@@ -22,7 +22,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
@@ -93,6 +92,8 @@ def require_full_rank(
 
 
 def _chol_solve_inv(a: Array, b: Array) -> tuple[Array, Array]:
+    import scipy.linalg
+
     try:
         c = scipy.linalg.cho_factor(a, lower=True, check_finite=False)
     except np.linalg.LinAlgError as exc:
@@ -116,6 +117,8 @@ def liml_kappa(y: np.ndarray, X: np.ndarray, Z: np.ndarray) -> float:
 
 def _liml_kappa_from(y: Array, x: Array, qy: Array, qx: Array) -> float:
     """LIML kappa from the data and their coordinates Q'y, Q'X in an orthonormal basis of the instruments."""
+    import scipy.linalg
+
     qw = np.column_stack([qy, qx])
     xy = x.T @ y
     ww = np.block([[np.atleast_2d(y @ y), xy[None, :]], [xy[:, None], x.T @ x]])
@@ -141,6 +144,8 @@ def fit_kclass(
     kappa: float | None = None,
 ) -> KClassFit:
     """Fit OLS, 2SLS, LIML or Fuller (or a given ``kappa``) to partialled arrays; see the module docstring."""
+    import scipy.linalg
+
     if method not in METHODS:
         raise InvalidInputError(f"Unknown method {method!r}; choose one of {', '.join(METHODS)}.")
     yv = np.asarray(y, dtype=np.float64).ravel()
@@ -214,6 +219,8 @@ class MomentFit:
 def fit_from_cross_products(cp: Any, *, method: str, fuller_alpha: float = 1.0) -> MomentFit:
     """2SLS, LIML or Fuller from :class:`~ivdossier.estimation.crossproducts.CrossProducts` (no pass over
     the rows): the same conventions as :func:`fit_kclass`, computed in the orthonormal coordinates."""
+    import scipy.linalg
+
     if method not in ("2sls", "liml", "fuller"):
         raise InvalidInputError(f"Method {method!r} is not an instrumental-variable method.")
     k, p = cp.k, cp.p
@@ -252,6 +259,8 @@ def fit_from_cross_products(cp: Any, *, method: str, fuller_alpha: float = 1.0) 
 def ols_from_cross_products(cp: Any) -> MomentFit:
     """OLS of the outcome on the treatments from :class:`~ivdossier.estimation.crossproducts.CrossProducts`
     (no pass over the rows; the instrument block, if any, is ignored): the conventions of :func:`fit_kclass`."""
+    import scipy.linalg
+
     rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
     qq, rr = np.linalg.qr(rx)
     if np.any(np.abs(np.diag(rr)) <= RANK_TOL * np.maximum(np.linalg.norm(rx, axis=0), 1e-300)):
@@ -273,6 +282,8 @@ def ols_from_cross_products(cp: Any) -> MomentFit:
 
 def _liml_kappa_coords(w: Array, k: int) -> float:
     """Smallest eigenvalue of (W'M_Z W)^{-1} W'W from coordinates (the first k span the instruments)."""
+    import scipy.linalg
+
     ww = w.T @ w
     wmw = w[k:].T @ w[k:]
     try:

@@ -29,7 +29,6 @@ from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Any, ClassVar, cast
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
@@ -394,6 +393,7 @@ def stacked_from(
     """Several targets regressed on the same instruments, from the sufficient statistics of [Z, targets] (the
     instruments first, then the targets in order, the last one in the outcome slot): coefficients and the
     seemingly-unrelated covariance, in data units, with the reference distribution of the intervals."""
+    import scipy.linalg
     from scipy import stats
 
     k = cp.k

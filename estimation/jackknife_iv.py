@@ -26,7 +26,6 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
@@ -126,6 +125,8 @@ class JackknifeIVResult(Record):
 
 def orthonormal_basis(a: np.ndarray, tol: float = RANK_TOL) -> Array:
     """Orthonormal basis of the column space of ``a`` (pivoted QR; columns with |R_jj| <= tol |R_00| dropped)."""
+    import scipy.linalg
+
     q, r, _ = scipy.linalg.qr(a, mode="economic", pivoting=True)
     diag = np.abs(np.diag(r))
     rank = int(np.count_nonzero(diag > tol * diag[0])) if diag.size and diag[0] > 0 else 0

@@ -12,7 +12,6 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 from threadpoolctl import ThreadpoolController
 
@@ -82,6 +81,8 @@ class Projector:
 
     def coords(self, w: np.ndarray) -> Array:
         """Q'w (L x p, or L for a vector w)."""
+        import scipy.linalg
+
         if self.q is not None:
             return np.asarray(self.q.T @ w, dtype=np.float64)
         assert self.chol is not None
@@ -91,6 +92,8 @@ class Projector:
 
     def fitted(self, c: np.ndarray) -> Array:
         """Q c (n x p, or n for a vector c)."""
+        import scipy.linalg
+
         if self.q is not None:
             return tall_matmul(self.q, c)
         assert self.chol is not None
@@ -100,6 +103,8 @@ class Projector:
 
     def residual(self, w: np.ndarray) -> Array:
         """w - P_z w."""
+        import scipy.linalg
+
         c = self.coords(w)
         if self.q is not None:
             return tall_matmul(self.q, c, subtract_from=w)

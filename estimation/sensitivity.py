@@ -28,14 +28,12 @@ the direct effect lay in the stated range; no statistic establishes exclusion.
 from __future__ import annotations
 
 import dataclasses
-import io
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
@@ -59,7 +57,6 @@ __all__ = [
     "breakdown_value_from",
     "local_to_zero",
     "local_to_zero_from",
-    "plot_sensitivity_svg",
     "sensitivity_core",
     "union_of_intervals",
     "union_of_intervals_from",
@@ -146,6 +143,8 @@ def _core(prepared: PreparedData, *, vcov: str, small_sample: bool, alpha: float
 
 def sensitivity_core(cp: CrossProducts, counts: SampleCounts, model: ModelSpec) -> _Core:
     """The 2SLS fit, A and H of the module docstring from the sufficient statistics (one treatment)."""
+    import scipy.linalg
+
     if cp.p != 1:
         raise InvalidInputError(
             "The plausibly-exogenous analysis takes one treatment column; pass treatment= as a single name."
@@ -783,67 +782,3 @@ def _reduced_form_along(core: _Core, direction: Array) -> float:
     """OLS coefficient of the partialled outcome on the instrument combination Z'direction (coordinates)."""
     zc = core.z_coords @ direction
     return float(zc @ core.y_coords) / float(zc @ zc)
-
-
-# ----------------------------------------------------------------------------------------------------------
-# plot
-# ----------------------------------------------------------------------------------------------------------
-
-
-def plot_sensitivity_svg(result: UnionIntervalResult, *, ltz: LocalToZeroResult | None = None) -> str:
-    """SVG (string, no external resources) of the interval against the assumed direct effect."""
-    import matplotlib  # the Figure API keeps pyplot's global state and backend untouched
-
-    pos = np.array([g.position for g in result.grid])
-    est = np.array([g.estimate for g in result.grid])
-    low = np.array([g.lower for g in result.grid])
-    upp = np.array([g.upper for g in result.grid])
-    level = f"{100 * (1 - result.alpha):g}%"
-    with matplotlib.rc_context({"svg.hashsalt": "ivdossier-sensitivity", "svg.fonttype": "path"}):
-        return _draw(result, ltz, pos, est, low, upp, level)
-
-
-def _draw(
-    result: UnionIntervalResult,
-    ltz: LocalToZeroResult | None,
-    pos: Array,
-    est: Array,
-    low: Array,
-    upp: Array,
-    level: str,
-) -> str:
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(6.4, 3.8))
-    ax = fig.add_subplot()
-    ax.fill_between(pos, low, upp, color="#c9d6e3", label=f"{level} interval at each direct effect")
-    ax.plot(pos, est, color="#1f3b57", linewidth=1.6, label="2SLS estimate given the direct effect")
-    ax.plot(pos, low, color="#1f3b57", linewidth=0.8, linestyle=":")
-    ax.plot(pos, upp, color="#1f3b57", linewidth=0.8, linestyle=":")
-    ax.axhline(0.0, color="#555555", linewidth=0.8)
-    ax.axhline(result.lower, color="#8a4b08", linewidth=1.0, linestyle="--", label="union of intervals")
-    ax.axhline(result.upper, color="#8a4b08", linewidth=1.0, linestyle="--")
-    if ltz is not None:
-        x0 = float(ltz.mu[0]) if len(result.instruments) == 1 else 0.5
-        ax.errorbar(
-            [x0],
-            [ltz.estimate],
-            yerr=[[ltz.estimate - ltz.lower], [ltz.upper - ltz.estimate]],
-            fmt="s",
-            color="#3d6b1f",
-            capsize=4,
-            label="local-to-zero interval (at prior mean)",
-        )
-    xlabel = (
-        f"assumed direct effect of {result.instruments[0]} on the outcome (gamma)"
-        if len(result.instruments) == 1
-        else "position along the direct-effect box (0 = gamma_min, 1 = gamma_max)"
-    )
-    ax.set_xlabel(xlabel)
-    ax.set_ylabel(f"effect of {result.treatment}")
-    ax.set_title("Plausibly exogenous: interval against the assumed direct effect", fontsize=10)
-    ax.legend(fontsize=7, loc="best", frameon=False)
-    fig.tight_layout()
-    buf = io.StringIO()
-    fig.savefig(buf, format="svg", metadata={"Date": None})  # no timestamp: reproducible documents
-    return buf.getvalue()

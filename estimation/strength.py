@@ -34,7 +34,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
@@ -220,6 +219,8 @@ def first_stage_cov(cp: CrossProducts, *, small_sample: bool | None = None) -> A
 def to_instrument_units(cp: CrossProducts, coef: Array, cov: Array, target: int) -> tuple[Array, Array]:
     """Coefficients (k) and covariance (k x k) on the orthonormal basis -> on the original instruments,
     in the units of column ``target`` per unit of each instrument."""
+    import scipy.linalg
+
     rinv = scipy.linalg.solve_triangular(cp.r[: cp.k, : cp.k], np.eye(cp.k), check_finite=False)
     unit = np.where(cp.scale[: cp.k] > 0, cp.scale[: cp.k], 1.0)
     t = (cp.scale[target] / unit)[:, None] * rinv

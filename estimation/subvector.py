@@ -27,7 +27,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 from ivdossier.errors import InvalidInputError
@@ -161,6 +160,8 @@ class _Homoskedastic:
         self.others = [k for k in range(m) if k != j]
 
     def roots(self, theta: float) -> Array:
+        import scipy.linalg
+
         c, s = math.cos(theta), math.sin(theta)
         m1 = 1 + len(self.others) + 1
         t = np.zeros((m1, 1 + len(self.others)))

@@ -8,5 +8,5 @@ including the verdicts derived by :mod:`ivdossier.workflows.verdicts`):
 - :func:`ivdossier.reports.html.render_html`
 - :func:`ivdossier.reports.site.build_site`
 - :func:`ivdossier.reports.tables.runs_table`
-- :mod:`ivdossier.reports.plots` (matplotlib is imported only when a plot is drawn)
+- :mod:`ivdossier.reports.plots` (figures drawn by :mod:`ivdossier.reports.svgplot`, pure Python)
 """

@@ -32,25 +32,16 @@ _SAFE_SCHEMES = ("http:", "https:", "mailto:")
 _SCHEME = re.compile(r"^([a-z][a-z0-9+.\-]*):")
 SVG_NS = "http://www.w3.org/2000/svg"
 XLINK_NS = "http://www.w3.org/1999/xlink"
-# Elements an inlined figure may use (what matplotlib and the diagram drawer write): shapes, text, grouping,
-# reusable definitions and styling. No script, foreignObject, image, animation, link or embedding elements.
+# Elements an inlined figure may use: what the plot drawer (reports/svgplot.py), the verdict badges and the graph
+# diagram (threats_catalog/draw.py) write: shapes, text, grouping, arrowhead markers and hatch patterns. No script,
+# style sheet, foreignObject, image, use/symbol, animation, link or embedding elements.
 SVG_ELEMENTS = frozenset(
     {
-        "svg", "g", "defs", "symbol", "use", "title", "desc", "metadata", "style",
+        "svg", "g", "defs", "title", "desc",
         "path", "rect", "circle", "ellipse", "line", "polyline", "polygon",
-        "text", "tspan", "textPath", "marker", "clipPath", "mask", "pattern",
-        "linearGradient", "radialGradient", "stop", "filter", "feGaussianBlur", "feOffset", "feBlend",
-        "feFlood", "feComposite", "feMerge", "feMergeNode",
+        "text", "marker", "pattern",
     }
 )  # fmt: skip
-# Namespaces whose elements may appear inside <metadata> only (RDF description matplotlib writes).
-METADATA_NS = frozenset(
-    {
-        "http://www.w3.org/1999/02/22-rdf-syntax-ns#",
-        "http://creativecommons.org/ns#",
-        "http://purl.org/dc/elements/1.1/",
-    }
-)
 # Attributes that can carry a URL or CSS (others, such as aria-label, hold plain text and are not judged).
 _URL_ATTRIBUTES = frozenset(
     {"style", "src", "fill", "stroke", "clip-path", "mask", "filter", "cursor", "marker-start", "marker-mid",
@@ -82,7 +73,7 @@ def _split_cached(tag: str) -> tuple[str, str]:
     return _split(tag)
 
 
-_ALLOWED_NS = ("", XLINK_NS, *METADATA_NS, "http://www.w3.org/XML/1998/namespace")
+_ALLOWED_NS = ("", XLINK_NS, "http://www.w3.org/XML/1998/namespace")
 
 
 @lru_cache(maxsize=1024)
@@ -106,11 +97,9 @@ def _unsafe_value(value: str) -> bool:
 def _svg_problem(root: ET.Element) -> str | None:
     """The first element or attribute that could run code or fetch something, described; None when clean."""
 
-    def walk(el: ET.Element, in_metadata: bool) -> str | None:
+    def walk(el: ET.Element) -> str | None:
         ns, local = _split_cached(el.tag)
-        if ns in METADATA_NS and in_metadata:
-            pass
-        elif ns not in ("", SVG_NS) or local not in SVG_ELEMENTS:
+        if ns not in ("", SVG_NS) or local not in SVG_ELEMENTS:
             return f"element <{local}>"
         for name, value in el.attrib.items():
             a_local, event, href, foreign, url = _attribute_rule(name)
@@ -122,16 +111,13 @@ def _svg_problem(root: ET.Element) -> str | None:
                 return foreign
             if url and _unsafe_value(value):
                 return f"attribute {a_local}={value[:60]!r}"
-        if local == "style" and _CSS_FORBIDDEN.search(el.text or ""):
-            return "a style sheet with external references"
-        inside = in_metadata or local == "metadata"
         for child in el:
-            found = walk(child, inside)
+            found = walk(child)
             if found:
                 return found
         return None
 
-    return walk(root, False)
+    return walk(root)
 
 
 def clean_svg(svg: str, *, key: str) -> str:

@@ -9,9 +9,10 @@ carrier of meaning. With many clusters only the most influential ``limit`` rows 
 from __future__ import annotations
 
 import math
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
-from ivdossier.reports.plots import ACCENT, ALERT, GRID, INK, MUTED, SHADE, _label, _render
+from ivdossier.reports.plots import ACCENT, ALERT, INK, MUTED, SHADE
+from ivdossier.reports.svgplot import Plot
 
 if TYPE_CHECKING:
     from ivdossier.estimation.influence import Deletion, InfluenceResult
@@ -40,36 +41,28 @@ def jackknife_svg(result: InfluenceResult, *, key: str = "leave-one-out", limit:
     rows = rows_shown(result, limit)
     base_sig = _significant(full.t_p_value, alpha)
 
-    def draw(ax: Any) -> None:
-        ax.grid(True, axis="x", color=GRID, linewidth=0.6)
-        ax.set_axisbelow(True)
-        lo, hi = full.interval
-        ax.axvspan(lo, hi, color=SHADE, linewidth=0, label="full-sample interval")
-        ax.axvline(full.estimate, color=ACCENT, linewidth=1.4, label="full-sample estimate")
-        ax.axvline(null, color=MUTED, linewidth=0.9, linestyle=(0, (4, 3)), label=f"null {null:g}")
-        flipped_label = True
-        for i, d in enumerate(rows):
-            flips = _significant(d.t_p_value, alpha) != base_sig
-            colour = ALERT if flips else INK
-            a, b = d.interval
-            ax.plot([a, b], [i, i], color=colour, linewidth=1.0)
-            ax.plot(
-                [d.estimate], [i], marker="D", markersize=4.5, markerfacecolor="white",
-                markeredgecolor=colour, linestyle="none",
-            )  # fmt: skip
-            if flips:
-                ax.plot(
-                    [b], [i], marker="x", markersize=5, color=ALERT, linestyle="none",
-                    label="significance flips" if flipped_label else None,
-                )  # fmt: skip
-                flipped_label = False
-        ax.set_yticks(range(len(rows)))
-        ax.set_yticklabels([_label(d.label)[:24] for d in rows], fontsize=7)
-        ax.set_ylim(-0.8, len(rows) - 0.2)
-        ax.set_xlabel(
-            f"2SLS estimate for {_label(result.treatment or 'the treatment')} with one {result.unit} left out"
-        )
-        ax.legend(loc="lower right", fontsize=7)
-
-    height = max(2.4, min(7.5, 0.9 + 0.2 * len(rows)))
-    return _render(key, draw, size=(6.4, height))
+    height = max(240.0, min(720.0, 110 + 19 * len(rows)))
+    plot = Plot(height=height)
+    plot.grid_x, plot.grid_y = True, False
+    lo, hi = full.interval
+    plot.xspan(lo, hi, color=SHADE, label="full-sample interval")
+    plot.vline(full.estimate, color=ACCENT, width=1.5, label="full-sample estimate")
+    plot.vline(null, color=MUTED, width=1.0, dash="dashed", label=f"null {null:g}")
+    for flips in (False, True):
+        chosen = [
+            (i, d) for i, d in enumerate(rows) if (_significant(d.t_p_value, alpha) != base_sig) == flips
+        ]
+        if not chosen:
+            continue
+        colour = ALERT if flips else INK
+        plot.segments([((d.interval[0], i), (d.interval[1], i)) for i, d in chosen], color=colour, width=1.1)
+        plot.points([d.estimate for _, d in chosen], [i for i, _ in chosen], shape="diamond", size=3.6,
+                    fill="#ffffff", stroke=colour)  # fmt: skip
+        if flips:
+            plot.points([d.interval[1] for _, d in chosen], [i for i, _ in chosen], shape="cross", size=3.5,
+                        stroke=ALERT, label="significance flips")  # fmt: skip
+    plot.ycategories(range(len(rows)), [d.label for d in rows])
+    plot.ylim(-0.8, len(rows) - 0.2, exact=True)
+    plot.xlabel = f"2SLS estimate for {result.treatment or 'the treatment'} with one {result.unit} left out"
+    del key
+    return plot.svg()

@@ -5,24 +5,22 @@ the first-stage slope estimated on every row and the number of rows; the Anderso
 every finite end of the confidence set. The words on each figure come from small pure functions
 (:func:`first_stage_texts`, :func:`ar_plot_range`) so that tests can read them.
 
-matplotlib is imported lazily and used through its object API (no pyplot, no global backend switch). Output is
-deterministic: a fixed `svg.hashsalt` per figure key, no date in the metadata, and text drawn as paths, so the
-SVG carries no user text as markup.
+Figures are drawn by :mod:`ivdossier.reports.svgplot` (pure Python, no plotting library): deterministic SVG with
+no date and no ids, user text as escaped ``<text>`` elements.
 """
 
 from __future__ import annotations
 
-import io
 import math
 from collections.abc import Sequence
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.reports.inputs import ArCurve, FirstStageBins
+from ivdossier.reports.svgplot import Plot
 
 if TYPE_CHECKING:  # the estimation type is only named here, so importing this module stays light
     from ivdossier.estimation.plot_data import FirstStagePlot
-from ivdossier.reports.mdtext import clean
 
 INK = "#22262b"
 MUTED = "#6b737c"
@@ -30,45 +28,6 @@ ACCENT = "#2c5e6e"
 ALERT = "#9b3b2c"
 SHADE = "#d6e6e8"
 GRID = "#e6e2d8"
-
-_RC: dict[str, Any] = {
-    "svg.fonttype": "path",
-    "font.family": "DejaVu Sans",
-    "font.size": 9,
-    "axes.edgecolor": MUTED,
-    "axes.labelcolor": INK,
-    "axes.linewidth": 0.8,
-    "xtick.color": MUTED,
-    "ytick.color": MUTED,
-    "axes.spines.top": False,
-    "axes.spines.right": False,
-    "figure.facecolor": "white",
-    "axes.facecolor": "white",
-    "legend.frameon": False,
-    "path.simplify": False,
-}
-
-
-def _label(text: str) -> str:
-    """User text as a plain matplotlib label: no mathtext, no control characters."""
-    return clean(text).replace("$", r"\$")[:80]
-
-
-def _render(key: str, draw: Any, size: tuple[float, float] = (6.4, 3.3)) -> str:
-    import matplotlib
-    from matplotlib.backends.backend_svg import FigureCanvasSVG
-    from matplotlib.figure import Figure
-
-    settings: Any = {**_RC, "svg.hashsalt": f"ivdossier-{key}"}
-    with matplotlib.rc_context(settings):
-        fig = Figure(figsize=size)
-        FigureCanvasSVG(fig)
-        ax = fig.add_subplot(1, 1, 1)
-        draw(ax)
-        fig.tight_layout(pad=0.6)
-        buf = io.StringIO()
-        fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
-    return buf.getvalue()
 
 
 def _is_full(bins: FirstStageBins | FirstStagePlot) -> bool:
@@ -103,37 +62,39 @@ def first_stage_svg(bins: FirstStageBins | FirstStagePlot, *, key: str = "first-
     A :class:`FirstStagePlot` (from ``estimation.plot_data``) carries n and the slope from every row; an older
     :class:`FirstStageBins` only bins, so its line is fitted through the bin means and labelled so.
     """
-    import numpy as np
-
-    x = np.asarray(bins.x_bins, dtype=float)
-    y = np.asarray(bins.y_bins, dtype=float)
-    if x.size != y.size or x.size < 2:
+    x = [float(v) for v in bins.x_bins]
+    y = [float(v) for v in bins.y_bins]
+    if len(x) != len(y) or len(x) < 2:
         raise InvalidInputError(
             "first-stage bins need equally long x_bins and y_bins with at least 2 points."
         )
-    if np.ptp(x) == 0:
+    if max(x) == min(x):
         raise InvalidInputError("first-stage x_bins are all equal; bin the instrument over its range.")
     texts = first_stage_texts(bins)
     line: tuple[float, float] | None
     if not isinstance(bins, FirstStageBins) and _is_full(bins):
         line = None if bins.slope is None else (bins.intercept or 0.0, bins.slope)
     else:
-        slope, intercept = np.polyfit(x, y, 1)
-        line = (float(intercept), float(slope))
+        line = _least_squares(x, y)
+    plot = Plot(title=texts["title"])
+    plot.grid_x = True
+    lo, hi = min(x), max(x)
+    if line is not None and texts["line"]:
+        plot.line([lo, hi], [line[0] + line[1] * lo, line[0] + line[1] * hi], color=ACCENT, width=1.8,
+                  label=texts["line"])  # fmt: skip
+    plot.points(x, y, shape="circle", size=4, fill="#ffffff", stroke=INK, label="bin means")
+    plot.xlabel, plot.ylabel = texts["x"], texts["y"]
+    del key  # one drawing per figure; the key names the figure's file, and the SVG needs no ids
+    return plot.svg()
 
-    def draw(ax: Any) -> None:
-        grid = np.linspace(x.min(), x.max(), 50)
-        ax.grid(True, color=GRID, linewidth=0.6)
-        ax.set_axisbelow(True)
-        if line is not None and texts["line"]:
-            ax.plot(grid, line[0] + line[1] * grid, color=ACCENT, linewidth=1.6, label=_label(texts["line"]))
-        ax.scatter(x, y, s=30, color="white", edgecolor=INK, linewidth=1.2, zorder=3, label="bin means")
-        ax.set_xlabel(_label(texts["x"]))
-        ax.set_ylabel(_label(texts["y"]))
-        ax.set_title(clean(texts["title"]).replace("$", r"\$")[:110], fontsize=8, color=MUTED, loc="left")
-        ax.legend(loc="best", fontsize=8)
 
-    return _render(key, draw)
+def _least_squares(x: Sequence[float], y: Sequence[float]) -> tuple[float, float]:
+    """(intercept, slope) of the least-squares line of y on x (x not all equal)."""
+    mx, my = sum(x) / len(x), sum(y) / len(y)
+    sxy = sum((a - mx) * (b - my) for a, b in zip(x, y, strict=True))
+    sxx = sum((a - mx) ** 2 for a in x)
+    slope = sxy / sxx
+    return my - slope * mx, slope
 
 
 def ar_intervals_from_curve(curve: ArCurve) -> list[tuple[float, float]]:
@@ -175,47 +136,32 @@ def ar_curve_svg(
     `ar_set` is the set the estimation reported; without it the set is read off the grid. The x range always
     holds every finite end of the set (:func:`ar_plot_range`).
     """
-    import numpy as np
-
-    betas = np.asarray(curve.betas)
-    stats = np.asarray(curve.stats)
+    betas = [float(b) for b in curve.betas]
+    stats = [float(v) for v in curve.stats]
     pieces = list(ar_set) if ar_set is not None else ar_intervals_from_curve(curve)
     lo_grid, hi_grid = ar_plot_range(curve, pieces)
-    finite = stats[np.isfinite(stats)]
-    top = max(
-        curve.critical_value * 3.0, min(float(finite.max()) if finite.size else 1.0, curve.critical_value * 6)
-    )
-
-    def draw(ax: Any) -> None:
-        ax.grid(True, axis="y", color=GRID, linewidth=0.6)
-        ax.set_axisbelow(True)
-        first = True
-        for low, high in pieces:
-            a = max(low, lo_grid) if math.isfinite(low) else lo_grid
-            b = min(high, hi_grid) if math.isfinite(high) else hi_grid
-            if a <= b:
-                ax.axvspan(a, b, color=SHADE, linewidth=0, label="confidence set" if first else None)
-                for edge, raw in ((a, low), (b, high)):
-                    if math.isfinite(raw) and lo_grid <= raw <= hi_grid:
-                        ax.axvline(edge, color=ACCENT, linewidth=0.8, linestyle=":")
-                first = False
-        ax.plot(
-            betas, np.minimum(stats, top * 1.05), color=INK, linewidth=1.5, label="Anderson–Rubin statistic"
-        )
-        ax.axhline(
-            curve.critical_value,
-            color=ALERT,
-            linewidth=1.2,
-            linestyle=(0, (5, 3)),
-            label=f"critical value {curve.critical_value:.3g}",
-        )
-        ax.set_ylim(0, top)
-        ax.set_xlim(lo_grid, hi_grid)
-        ax.set_xlabel("hypothesised effect")
-        ax.set_ylabel("AR statistic")
-        ax.legend(loc="upper center", fontsize=8, ncols=3, bbox_to_anchor=(0.5, 1.13))
-
-    return _render(key, draw)
+    finite = [v for v in stats if math.isfinite(v)]
+    cv = curve.critical_value
+    top = max(cv * 3.0, min(max(finite) if finite else 1.0, cv * 6))
+    plot = Plot()
+    first = True
+    for low, high in pieces:
+        a = max(low, lo_grid) if math.isfinite(low) else lo_grid
+        b = min(high, hi_grid) if math.isfinite(high) else hi_grid
+        if a <= b:
+            plot.xspan(a, b, color=SHADE, label="confidence set" if first else None)
+            for edge, raw in ((a, low), (b, high)):
+                if math.isfinite(raw) and lo_grid <= raw <= hi_grid:
+                    plot.vline(edge, color=ACCENT, width=0.9, dash="dotted")
+            first = False
+    # the statistic is cut at the top of the panel (a steep curve would otherwise flatten the region of interest)
+    plot.line(betas, [min(v, top) for v in stats], color=INK, width=1.6, label="Anderson–Rubin statistic")
+    plot.hline(cv, color=ALERT, width=1.3, dash="dashed", label=f"critical value {cv:.3g}")
+    plot.xlim(lo_grid, hi_grid)
+    plot.ylim(0.0, top)
+    plot.xlabel, plot.ylabel = "hypothesised effect", "AR statistic"
+    del key
+    return plot.svg()
 
 
 _BADGE_SHAPES = {

@@ -7,10 +7,10 @@ a horizontal line at the overall 2SLS estimate, and the sectors of largest weigh
 from __future__ import annotations
 
 import math
-from typing import Any
 
 from ivdossier.estimation.exposure_share import RotembergWeights
-from ivdossier.reports.plots import ACCENT, ALERT, INK, MUTED, _label, _render
+from ivdossier.reports.plots import ACCENT, ALERT, INK, MUTED
+from ivdossier.reports.svgplot import Plot
 
 __all__ = ["rotemberg_svg"]
 
@@ -24,23 +24,22 @@ def rotemberg_svg(weights: RotembergWeights, *, key: str = "rotemberg-weights") 
     ]
     top = set(weights.top)
 
-    def draw(ax: Any) -> None:
-        pos = [(w, b) for _, w, b in points if w >= 0]
-        neg = [(w, b) for _, w, b in points if w < 0]
-        if pos:
-            ax.scatter(
-                *zip(*pos, strict=True), s=26, facecolors="none", edgecolors=ACCENT, label="positive weight"
-            )
-        if neg:
-            ax.scatter(*zip(*neg, strict=True), s=26, color=ALERT, label="negative weight")
-        if math.isfinite(weights.estimate):
-            ax.axhline(weights.estimate, color=INK, linewidth=1.0, linestyle="--", label="2SLS estimate")
-        ax.axvline(0.0, color=MUTED, linewidth=0.6)
-        for s, w, b in points:
-            if s in top:
-                ax.annotate(_label(s), (w, b), xytext=(4, 3), textcoords="offset points", fontsize=7)
-        ax.set_xlabel("Rotemberg weight")
-        ax.set_ylabel("per-sector estimate")
-        ax.legend(loc="best", fontsize=7)
-
-    return _render(key, draw, size=(5.6, 3.6))
+    plot = Plot(width=560, height=360)
+    plot.grid_x = True
+    pos = [(w, b) for _, w, b in points if w >= 0]
+    neg = [(w, b) for _, w, b in points if w < 0]
+    if pos:
+        plot.points([w for w, _ in pos], [b for _, b in pos], size=3.8, fill="#ffffff", stroke=ACCENT,
+                    label="positive weight")  # fmt: skip
+    if neg:
+        plot.points([w for w, _ in neg], [b for _, b in neg], size=3.8, fill=ALERT, stroke=ALERT,
+                    label="negative weight")  # fmt: skip
+    if math.isfinite(weights.estimate):
+        plot.hline(weights.estimate, color=INK, width=1.0, dash="dashed", label="2SLS estimate")
+    plot.vline(0.0, color=MUTED, width=0.7)
+    for s, w, b in points:
+        if s in top:
+            plot.text(w, b, s, dx=5, dy=-4, size=9)
+    plot.xlabel, plot.ylabel = "Rotemberg weight", "per-sector estimate"
+    del key
+    return plot.svg()

@@ -1,6 +1,7 @@
 """SVG figures for summary-data evidence and the omitted-variable robustness value.
 
-Same visual language as :mod:`ivdossier.reports.plots` (palette, deterministic SVG, text drawn as paths):
+Same visual language as :mod:`ivdossier.reports.plots` (palette, deterministic SVG from
+:mod:`ivdossier.reports.svgplot`, labels as escaped text):
 fitted lines differ by dash pattern as well as colour, points are open circles, and every figure has a legend.
 Each function takes a typed result and returns SVG text.
 """
@@ -8,7 +9,6 @@ Each function takes a typed result and returns SVG text.
 from __future__ import annotations
 
 import math
-from typing import Any
 
 import numpy as np
 
@@ -22,12 +22,13 @@ from ivdossier.estimation.variant_summary import (
     SummaryEvidence,
     WeightedMedian,
 )
-from ivdossier.reports.plots import ACCENT, ALERT, GRID, INK, MUTED, SHADE, _label, _render
+from ivdossier.reports.plots import ACCENT, ALERT, INK, MUTED, SHADE
+from ivdossier.reports.svgplot import Plot
 
 __all__ = ["funnel_svg", "leave_one_out_svg", "robustness_contour_svg", "variant_scatter_svg"]
 
-_DASH_EGGER = (0, (6, 3))
-_DASH_MEDIAN = (0, (1.5, 2.5))
+_DASH_EGGER = "dashed"
+_DASH_MEDIAN = "dotted"
 
 
 def _oriented(evidence: SummaryEvidence) -> tuple[np.ndarray, ...]:
@@ -42,42 +43,35 @@ def variant_scatter_svg(evidence: SummaryEvidence, *, key: str = "variant-scatte
     bx, by, sx, sy = _oriented(evidence)
     top = float(max(bx + sx)) * 1.08
 
-    def draw(ax: Any) -> None:
-        ax.grid(True, color=GRID, linewidth=0.6)
-        ax.set_axisbelow(True)
-        ax.axhline(0.0, color=MUTED, linewidth=0.7)
-        ax.errorbar(bx, by, xerr=sx, yerr=sy, fmt="none", ecolor=MUTED, elinewidth=0.7, capsize=0)
-        ax.scatter(bx, by, s=26, color="white", edgecolor=INK, linewidth=1.1, zorder=3, label="variants")
-        grid = np.linspace(0.0, top, 50)
-        fit = evidence.ivw
-        if isinstance(fit, IvwFit):
-            ax.plot(grid, fit.estimate * grid, color=ACCENT, linewidth=1.6, label=f"IVW ({fit.estimate:.3g})")
-        eg = evidence.egger
-        if isinstance(eg, EggerFit):
-            ax.plot(
-                grid,
-                eg.intercept + eg.estimate * grid,
-                color=ALERT,
-                linewidth=1.4,
-                linestyle=_DASH_EGGER,
-                label=f"MR-Egger ({eg.estimate:.3g}, intercept {eg.intercept:.2g})",
-            )
-        wm = evidence.weighted_median
-        if isinstance(wm, WeightedMedian):
-            ax.plot(
-                grid,
-                wm.estimate * grid,
-                color=INK,
-                linewidth=1.4,
-                linestyle=_DASH_MEDIAN,
-                label=f"weighted median ({wm.estimate:.3g})",
-            )
-        ax.set_xlim(0.0, top)
-        ax.set_xlabel("variant effect on the exposure (oriented positive)")
-        ax.set_ylabel("variant effect on the outcome")
-        ax.legend(loc="best", fontsize=8)
-
-    return _render(key, draw, size=(6.4, 4.0))
+    plot = Plot(height=400)
+    plot.grid_x = True
+    plot.hline(0.0, color=MUTED, width=0.7)
+    plot.segments(
+        [((x - ex, y), (x + ex, y)) for x, y, ex in zip(bx, by, sx, strict=True)], color=MUTED, width=0.7
+    )
+    plot.segments(
+        [((x, y - ey), (x, y + ey)) for x, y, ey in zip(bx, by, sy, strict=True)], color=MUTED, width=0.7
+    )
+    plot.points(bx, by, size=3.6, fill="#ffffff", stroke=INK, label="variants")
+    ends = [0.0, top]
+    fit = evidence.ivw
+    if isinstance(fit, IvwFit):
+        plot.line(
+            ends, [fit.estimate * e for e in ends], color=ACCENT, width=1.7, label=f"IVW ({fit.estimate:.3g})"
+        )
+    eg = evidence.egger
+    if isinstance(eg, EggerFit):
+        plot.line(ends, [eg.intercept + eg.estimate * e for e in ends], color=ALERT, width=1.5, dash=_DASH_EGGER,
+                  label=f"MR-Egger ({eg.estimate:.3g}, intercept {eg.intercept:.2g})")  # fmt: skip
+    wm = evidence.weighted_median
+    if isinstance(wm, WeightedMedian):
+        plot.line(ends, [wm.estimate * e for e in ends], color=INK, width=1.5, dash=_DASH_MEDIAN,
+                  label=f"weighted median ({wm.estimate:.3g})")  # fmt: skip
+    plot.xlim(0.0, top)
+    plot.xlabel = "variant effect on the exposure (oriented positive)"
+    plot.ylabel = "variant effect on the outcome"
+    del key
+    return plot.svg()
 
 
 def funnel_svg(evidence: SummaryEvidence, *, key: str = "variant-funnel") -> str:
@@ -85,30 +79,21 @@ def funnel_svg(evidence: SummaryEvidence, *, key: str = "variant-funnel") -> str
     ratio = np.asarray(evidence.ratios.ratio)
     precision = 1.0 / np.asarray(evidence.ratios.se_first_order)
 
-    def draw(ax: Any) -> None:
-        ax.grid(True, color=GRID, linewidth=0.6)
-        ax.set_axisbelow(True)
-        ax.scatter(
-            ratio, precision, s=26, color="white", edgecolor=INK, linewidth=1.1, zorder=3, label="variants"
+    plot = Plot(height=360)
+    plot.grid_x = True
+    plot.points(ratio, precision, size=3.6, fill="#ffffff", stroke=INK, label="variants")
+    fit = evidence.ivw
+    if isinstance(fit, IvwFit):
+        plot.vline(fit.estimate, color=ACCENT, width=1.7, label=f"IVW ({fit.estimate:.3g})")
+    eg = evidence.egger
+    if isinstance(eg, EggerFit):
+        plot.vline(
+            eg.estimate, color=ALERT, width=1.5, dash=_DASH_EGGER, label=f"MR-Egger ({eg.estimate:.3g})"
         )
-        fit = evidence.ivw
-        if isinstance(fit, IvwFit):
-            ax.axvline(fit.estimate, color=ACCENT, linewidth=1.6, label=f"IVW ({fit.estimate:.3g})")
-        eg = evidence.egger
-        if isinstance(eg, EggerFit):
-            ax.axvline(
-                eg.estimate,
-                color=ALERT,
-                linewidth=1.4,
-                linestyle=_DASH_EGGER,
-                label=f"MR-Egger ({eg.estimate:.3g})",
-            )
-        ax.set_ylim(0.0, float(precision.max()) * 1.08)
-        ax.set_xlabel("Wald ratio of the variant")
-        ax.set_ylabel("precision (1 / se)")
-        ax.legend(loc="best", fontsize=8)
-
-    return _render(key, draw, size=(6.4, 3.6))
+    plot.ylim(0.0, float(precision.max()))
+    plot.xlabel, plot.ylabel = "Wald ratio of the variant", "precision (1 / se)"
+    del key
+    return plot.svg()
 
 
 def leave_one_out_svg(evidence: SummaryEvidence | LeaveOneOut, *, key: str = "variant-loo") -> str:
@@ -121,22 +106,20 @@ def leave_one_out_svg(evidence: SummaryEvidence | LeaveOneOut, *, key: str = "va
     est = np.asarray(loo.estimate)
     lo, hi = np.asarray(loo.lower), np.asarray(loo.upper)
 
-    def draw(ax: Any) -> None:
-        ax.grid(True, axis="x", color=GRID, linewidth=0.6)
-        ax.set_axisbelow(True)
-        ax.axvline(0.0, color=MUTED, linewidth=0.8)
-        ax.axvline(
-            loo.full_estimate, color=ALERT, linewidth=1.2, linestyle=_DASH_EGGER, label="IVW, all variants"
-        )
-        ax.hlines(y, lo, hi, color=ACCENT, linewidth=1.4, label="interval without the variant")
-        ax.scatter(est, y, s=22, marker="s", color=ACCENT, zorder=3, label="estimate without the variant")
-        ax.set_yticks(y)
-        ax.set_yticklabels([_label(v) for v in loo.variants], fontsize=7)
-        ax.set_ylim(-1, rows)
-        ax.set_xlabel("IVW estimate with the variant left out")
-        ax.legend(loc="upper center", fontsize=8, ncols=3, bbox_to_anchor=(0.5, 1.0 + 2.2 / (rows + 8)))
-
-    return _render(key, draw, size=(6.4, 1.4 + 0.22 * rows))
+    plot = Plot(height=max(200.0, 120 + 22 * rows))
+    plot.grid_x, plot.grid_y = True, False
+    plot.vline(0.0, color=MUTED, width=0.8)
+    plot.vline(loo.full_estimate, color=ALERT, width=1.3, dash=_DASH_EGGER, label="IVW, all variants")
+    plot.segments([((a, r), (b, r)) for a, b, r in zip(lo, hi, y, strict=True)], color=ACCENT, width=1.5,
+                  label="interval without the variant")  # fmt: skip
+    plot.points(
+        est, y, shape="square", size=3.2, fill=ACCENT, stroke=ACCENT, label="estimate without the variant"
+    )
+    plot.ycategories(y, list(loo.variants))
+    plot.ylim(-1.0, float(rows), exact=True)
+    plot.xlabel = "IVW estimate with the variant left out"
+    del key
+    return plot.svg()
 
 
 def robustness_contour_svg(grid: ContourGrid, *, key: str = "robustness-contour") -> str:
@@ -151,38 +134,38 @@ def robustness_contour_svg(grid: ContourGrid, *, key: str = "robustness-contour"
             "The contour grid is malformed: estimate rows must follow r2_outcome; rebuild it."
         )
 
-    def draw(ax: Any) -> None:
-        finite = est[np.isfinite(est)]
-        levels = np.unique(np.round(np.linspace(finite.min(), finite.max(), 9), 12))
-        levels = levels[np.abs(levels - grid.target) > 1e-12 * max(1.0, abs(grid.target))]
-        if levels.size >= 2:
-            cs = ax.contour(x, y, est, levels=levels, colors=MUTED, linewidths=0.7, linestyles="solid")
-            ax.clabel(cs, fontsize=7, fmt="%.3g")
-        side = 1.0 if grid.unadjusted_estimate >= grid.target else -1.0
-        if finite.min() <= grid.target <= finite.max():
-            ax.contour(x, y, est, levels=[grid.target], colors=INK, linewidths=1.8)
-            ax.plot([], [], color=INK, linewidth=1.8, label=f"estimate reaches {grid.target:g}")
-        crit = side * grid.critical_t
-        tf = tval[np.isfinite(tval)]
-        if tf.size and tf.min() <= crit <= tf.max():
-            ax.contour(x, y, tval, levels=[crit], colors=ALERT, linewidths=1.4, linestyles="dashed")
-            ax.plot([], [], color=ALERT, linewidth=1.4, linestyle="--", label="interval reaches the target")
-        ax.scatter([0.0], [0.0], marker="^", s=40, color=INK, zorder=4, clip_on=False, label="no confounding")
-        for name, px, py in grid.points:
-            if px <= x.max() and py <= y.max():
-                ax.scatter([px], [py], marker="D", s=30, color=SHADE, edgecolor=ACCENT, zorder=4)
-                ax.annotate(_label(name), (px, py), xytext=(4, 4), textcoords="offset points", fontsize=7)
-        if grid.points:
-            ax.scatter([], [], marker="D", s=30, color=SHADE, edgecolor=ACCENT, label="benchmark confounders")
-        ax.set_xlim(0.0, float(x.max()))
-        ax.set_ylim(0.0, float(y.max()))
-        ax.set_xlabel("partial R² of the confounder with the instrument")
-        ax.set_ylabel("partial R² of the confounder with the outcome")
-        ax.set_title(_label(grid.label), fontsize=9, color=INK)
-        ax.legend(loc="upper right", fontsize=7)
-
     if not math.isfinite(grid.critical_t):
         raise InvalidInputError(
             "The contour grid has no finite critical value; rebuild it with a valid alpha."
         )
-    return _render(key, draw, size=(5.6, 4.6))
+    xs, ys = x.tolist(), y.tolist()
+    plot = Plot(width=560, height=460, title=grid.label)
+    plot.grid_x = True
+    finite = est[np.isfinite(est)]
+    levels = np.unique(np.round(np.linspace(finite.min(), finite.max(), 9), 12))
+    levels = levels[np.abs(levels - grid.target) > 1e-12 * max(1.0, abs(grid.target))]
+    if levels.size >= 2:
+        for level in levels.tolist():
+            plot.contour(xs, ys, est.tolist(), level, color=MUTED, width=0.7, tag=f"{level:.3g}")
+    side = 1.0 if grid.unadjusted_estimate >= grid.target else -1.0
+    if finite.min() <= grid.target <= finite.max():
+        plot.contour(xs, ys, est.tolist(), grid.target, color=INK, width=1.9,
+                     label=f"estimate reaches {grid.target:g}")  # fmt: skip
+    crit = side * grid.critical_t
+    tf = tval[np.isfinite(tval)]
+    if tf.size and tf.min() <= crit <= tf.max():
+        plot.contour(xs, ys, tval.tolist(), crit, color=ALERT, width=1.5, dash="dashed",
+                     label="interval reaches the target")  # fmt: skip
+    plot.points([0.0], [0.0], shape="triangle", size=4.5, fill=INK, stroke=INK, label="no confounding")
+    shown = [(name, px, py) for name, px, py in grid.points if px <= x.max() and py <= y.max()]
+    if shown:
+        plot.points([p[1] for p in shown], [p[2] for p in shown], shape="diamond", size=4.2, fill=SHADE,
+                    stroke=ACCENT, label="benchmark confounders")  # fmt: skip
+        for name, px, py in shown:
+            plot.text(px, py, name, dx=6, dy=-5, size=9)
+    plot.xlim(0.0, float(x.max()))
+    plot.ylim(0.0, float(y.max()))
+    plot.xlabel = "partial R² of the confounder with the instrument"
+    plot.ylabel = "partial R² of the confounder with the outcome"
+    del key
+    return plot.svg()

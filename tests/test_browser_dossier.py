@@ -79,6 +79,10 @@ def driver(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Any]:
     options.set_capability("goog:loggingPrefs", {"performance": "ALL", "browser": "ALL"})
     drv = webdriver.Chrome(service=Service(str(chromedriver)), options=options)
     drv.set_page_load_timeout(30)
+    # leave the browser's start page before any test reads the request log: its own chrome:// loads would
+    # otherwise race into the log of the first page a test opens
+    drv.get("about:blank")
+    drv.get_log("performance")
     try:
         yield drv
     finally:
@@ -134,9 +138,16 @@ def test_dossier_renders_figures_offline_and_keeps_hostile_text_inert(driver: An
     )
     assert sorted(b[0] for b in boxes) == ["figure-ar-curve", "figure-causal-diagram", "figure-first-stage"]
     assert all(w > 100 and h > 50 for _, w, h in boxes), boxes
-    # the AR curve actually drew its line paths inside the box
-    paths = driver.execute_script("return document.querySelectorAll('#figure-ar-curve path').length")
-    assert paths > 10
+    # the AR curve actually drew its line inside the box, and its axis labels are real text
+    n_vertices, width, height = driver.execute_script(
+        "const l = document.querySelector('#figure-ar-curve polyline.line');"
+        "const r = l.getBoundingClientRect(); return [l.points.numberOfItems, r.width, r.height];"
+    )
+    assert n_vertices > 10 and width > 100 and height > 20, (n_vertices, width, height)
+    ticks = driver.execute_script(
+        "return Array.from(document.querySelectorAll('#figure-ar-curve text.tick-x')).map(t => t.textContent)"
+    )
+    assert len(ticks) >= 3 and all(t.strip() for t in ticks), ticks
     # every verdict badge shows a shape and its word
     badges = driver.execute_script(
         "return Array.from(document.querySelectorAll('.badge')).map(b => {"

@@ -233,3 +233,24 @@ def test_undecodable_command_line_bytes_are_refused_not_crashing(cli) -> None:  
     code, _, err = cli("program", "add", "tele", "--title", "caf\udcff")
     assert code == 2 and "program title contains bytes that are not UTF-8 text" in err
     assert cli("program", "list", "--json")[1].strip() == "[]"
+
+
+@HOSTILE_SETTINGS
+@given(label=hostile_text)
+def test_figure_labels_stay_inert_text(label: str) -> None:
+    """Any label reaches a figure as one escaped <text> element's content: well-formed XML, accepted by the HTML
+    layer's structural check, with control/bidi/non-XML characters removed and at most 120 characters kept."""
+    import re
+    import xml.etree.ElementTree as ET
+
+    from ivdossier.reports.html import clean_svg
+    from ivdossier.reports.inputs import FirstStageBins
+    from ivdossier.reports.plots import first_stage_svg
+
+    svg = first_stage_svg(FirstStageBins(x_bins=(1, 2), y_bins=(3, 4), x_label=label, y_label="y"))
+    clean_svg(svg, key="first-stage")
+    found = [t.text or "" for t in ET.fromstring(svg).iter() if t.get("class") == "xlabel"]
+    flat = label.replace("\n", " ").replace("\t", " ")  # line breaks and tabs become spaces, then
+    flat = re.sub(r"[\x00-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069\ufffe\uffff]", "", flat)  # these go
+    expected = flat if len(flat) <= 120 else flat[:119].rstrip() + "…"
+    assert found == ([expected] if expected else [])  # nothing left to show: no element

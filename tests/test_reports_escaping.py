@@ -221,8 +221,13 @@ def test_renderer_refuses_unsafe_or_missing_svg() -> None:
             render_html(md, title="t", svgs={"plot": bad})
     with pytest.raises(InvalidInputError, match="no SVG was given"):
         render_html(md, title="t", svgs={})
-    ok = render_html(md, title="t", svgs={"plot": '<?xml version="1.0"?><svg><use xlink:href="#m1"/></svg>'})
-    assert '<figure class="figure" id="figure-plot"><svg><use xlink:href="#m1"/></svg></figure>' in ok
+    inner = '<svg><defs><marker id="m1"><path d="M0 0L4 2L0 4z"/></marker></defs><path marker-end="url(#m1)"/></svg>'
+    ok = render_html(md, title="t", svgs={"plot": f'<?xml version="1.0"?>{inner}'})
+    assert (
+        f'<figure class="figure" id="figure-plot">{inner}</figure>' in ok
+    )  # references inside the figure are fine
+    with pytest.raises(InvalidInputError, match="contains element <use>"):  # none of our figures writes <use>
+        render_html(md, title="t", svgs={"plot": '<svg><use xlink:href="#m1"/></svg>'})
 
 
 def test_page_is_self_contained_with_a_strict_content_security_policy() -> None:
@@ -295,12 +300,12 @@ def test_svg_check_names_the_first_problem_in_document_order() -> None:
     xl = 'xmlns:x="http://example.org/x"'
     cases = {
         '<svg><rect fill="#fff"/><rect onclick="a()" href="http://e"/></svg>': "event-handler attribute 'onclick'",
-        '<svg><use href="http://e/x" onclick="a()"/></svg>': "external reference 'http://e/x'",
-        '<svg><use xlink:href="#ok"/><use xlink:href="ftp://e"/></svg>': "external reference 'ftp://e'",
+        '<svg><rect href="http://e/x" onclick="a()"/></svg>': "external reference 'http://e/x'",
+        '<svg><rect xlink:href="#ok"/><rect xlink:href="ftp://e"/></svg>': "external reference 'ftp://e'",
         f'<svg {xl}><rect x:a="1"/></svg>': "attribute 'a' in namespace 'http://example.org/x'",
         '<svg><rect fill="#fff"/><rect fill="url(http://e)"/></svg>': "attribute fill='url(http://e)'",
         '<svg><rect fill="java\tscript:x"/></svg>': "attribute fill='java script:x'",
-        "<svg><style>@import 'x.css';</style></svg>": "a style sheet with external references",
+        "<svg><style>@import 'x.css';</style></svg>": "element <style>",
         "<svg><g><rect/></g><iframe/></svg>": "element <iframe>",
     }
     for svg, problem in cases.items():

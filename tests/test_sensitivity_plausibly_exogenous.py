@@ -16,9 +16,9 @@ from ivdossier.estimation import estimate
 from ivdossier.estimation.sensitivity import (
     breakdown_value,
     local_to_zero,
-    plot_sensitivity_svg,
     union_of_intervals,
 )
+from ivdossier.reports.sensitivity_plot import sensitivity_svg
 
 
 def simulate(n: int = 1500, seed: int = 3) -> pd.DataFrame:
@@ -224,10 +224,10 @@ def test_breakdown_is_zero_when_the_interval_already_covers_the_target(sim: pd.D
 def test_plot_is_self_contained_reproducible_svg(sim: pd.DataFrame) -> None:
     kw = {"outcome": "visits", "treatment": "telehealth", "instruments": "fibre"}
     res = union_of_intervals(sim, gamma_min=-0.1, gamma_max=0.3, **kw)  # type: ignore[arg-type]
-    svg = plot_sensitivity_svg(res, ltz=local_to_zero(sim, mu=0.1, omega=0.002, **kw))  # type: ignore[arg-type]
-    assert svg.lstrip().startswith("<?xml") and "<svg" in svg
+    svg = sensitivity_svg(res, ltz=local_to_zero(sim, mu=0.1, omega=0.002, **kw))  # type: ignore[arg-type]
+    assert svg.startswith("<svg") and svg.count("<svg") == 1
     assert "<image" not in svg and 'href="http' not in svg  # no external resources
-    assert svg == plot_sensitivity_svg(res, ltz=local_to_zero(sim, mu=0.1, omega=0.002, **kw))  # type: ignore[arg-type]
+    assert svg == sensitivity_svg(res, ltz=local_to_zero(sim, mu=0.1, omega=0.002, **kw))  # type: ignore[arg-type]
 
 
 def test_to_dict_is_json_safe(sim: pd.DataFrame) -> None:
@@ -288,3 +288,25 @@ def test_card_example_uci_at_zero_and_breakdown() -> None:
         **{**kw, "outcome": "lw_adj"},
     )  # type: ignore[arg-type]
     assert refit.ci[0, 0] == pytest.approx(0.0, abs=1e-10)
+
+
+def test_plot_marks_map_back_to_the_grid(sim: pd.DataFrame) -> None:
+    import xml.etree.ElementTree as ET
+
+    from test_svgplot import _assert_maps_back, _maps, _points, _polylines
+
+    kw = {"outcome": "visits", "treatment": "telehealth", "instruments": "fibre"}
+    res = union_of_intervals(sim, gamma_min=-0.1, gamma_max=0.3, **kw)  # type: ignore[arg-type]
+    ltz = local_to_zero(sim, mu=0.1, omega=0.002, **kw)  # type: ignore[arg-type]
+    root = ET.fromstring(sensitivity_svg(res, ltz=ltz))
+    xm, ym = _maps(root)
+    grid = [(g.position, g.estimate) for g in res.grid]
+    estimate, lower, upper = _polylines(root)  # drawn in this order: estimate, lower end, upper end
+    _assert_maps_back(estimate, grid, xm, ym)
+    _assert_maps_back(lower, [(g.position, g.lower) for g in res.grid], xm, ym)
+    _assert_maps_back(upper, [(g.position, g.upper) for g in res.grid], xm, ym)
+    (band,) = _polylines(root, "band")
+    outline = [(g.position, g.upper) for g in res.grid] + [(g.position, g.lower) for g in res.grid[::-1]]
+    _assert_maps_back(band, outline, xm, ym)
+    _assert_maps_back(_points(root), [(0.1, ltz.estimate)], xm, ym)  # the prior mean, one instrument
+    assert xm.ticks_cover([-0.1, 0.3]) and ym.ticks_cover([res.lower, res.upper, 0.0, ltz.lower, ltz.upper])

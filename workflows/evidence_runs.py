@@ -70,13 +70,13 @@ def _fmt(value: Any) -> str:
 
 def sensitivity_info(run: Run, *, figures: bool = True) -> ri.SensitivityInfo:
     """A sensitivity run (union of intervals, local to zero or breakdown value) with the union's plot (drawn only
-    with `figures`: callers that show no figure, such as `graph check`, do not load matplotlib)."""
+    with `figures`: callers that show no figure, such as `graph check`, skip drawing it)."""
     from ivdossier.estimation.sensitivity import (
         BreakdownResult,
         LocalToZeroResult,
         UnionIntervalResult,
-        plot_sensitivity_svg,
     )
+    from ivdossier.reports.sensitivity_plot import sensitivity_svg
 
     res = typed_result(run)
     common: dict[str, Any] = {"slug": run.slug, "created_at": run.created_at}
@@ -92,7 +92,7 @@ def sensitivity_info(run: Run, *, figures: bool = True) -> ri.SensitivityInfo:
             upper=_num(res.upper),
             direct_effect_min=_nums(res.gamma_min),
             direct_effect_max=_nums(res.gamma_max),
-            svg=plot_sensitivity_svg(res) if figures and len(res.grid) >= 2 else "",
+            svg=sensitivity_svg(res) if figures and len(res.grid) >= 2 else "",
             **common,
         )
     if isinstance(res, LocalToZeroResult):
