@@ -85,7 +85,7 @@ def test_each_kind_gets_its_section_without_any_linked_threat(cli, data_file: Pa
     assert "cannot tell whether it has one" in sens  # the caution travels with the numbers
     assert "passing every check cannot establish" in _section(text, "Falsification checks")
     html = _dossier(cli, tmp_path, ".html")
-    # the plot (estimation.sensitivity.plot_sensitivity_svg) is inlined as SVG in its figure
+    # the plot (reports.sensitivity_plot.sensitivity_svg) is inlined as SVG in its figure
     figure = re.search(
         r'<figure class="figure" id="figure-sensitivity-zz-sensitivity-1">(.*?)</figure>', html, re.S
     )
