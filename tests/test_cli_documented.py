@@ -46,7 +46,7 @@ def test_help_imports_no_database_or_numerics_libraries() -> None:
 
     probe = (
         "import sys, ivdossier.cli.app\n"
-        "heavy = [m for m in ('sqlmodel', 'sqlalchemy', 'pandas', 'numpy', 'scipy', 'statsmodels', 'matplotlib',"
+        "heavy = [m for m in ('sqlalchemy', 'pandas', 'numpy', 'scipy', 'statsmodels', 'matplotlib',"
         " 'networkx') if m in sys.modules]\n"
         "print(','.join(heavy))"
     )

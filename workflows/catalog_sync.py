@@ -9,7 +9,8 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlmodel import Session, case, func, select
+from sqlalchemy import case, func, select
+from sqlalchemy.orm import Session
 
 from ivdossier.registry.db import Registry
 from ivdossier.registry.models import Threat
@@ -26,7 +27,8 @@ def catalog_is_current(session: Session) -> bool:
 
     stale = case((Threat.catalog_version != CATALOGUE_VERSION, 1), else_=0)
     query = select(func.count(), func.coalesce(func.sum(stale), 0)).where(Threat.origin == "builtin")
-    total, outdated = session.exec(query).one()  # one query: this runs whenever a command opens the registry
+    # one query: this runs whenever a command opens the registry
+    total, outdated = session.execute(query).one()
     return bool(total) and not outdated
 
 
@@ -72,6 +74,6 @@ def registry_catalog(session: Session) -> Any:
 
     team = [
         catalog_entry(t)
-        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
+        for t in session.scalars(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
     ]
     return merge(load_builtin(), team)
