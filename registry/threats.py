@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import statistics
 import uuid
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
@@ -413,6 +412,8 @@ class RatingSummary:
 
 def rating_summaries(session: Session, instrument: Instrument) -> list[RatingSummary]:
     """Per link of the instrument, the ratings and disagreement; most disputed links first."""
+    import statistics  # only the review needs it (kept out of every command's start-up)
+
     out = []
     by_link: dict[int, list[tuple[str, int, int, str]]] = {}
     every_rating = (

@@ -14,7 +14,6 @@ from sqlalchemy.orm import Session
 
 from ivdossier.registry.db import Registry
 from ivdossier.registry.models import Threat
-from ivdossier.registry.threats import THREAT_FIELDS, sync_catalog
 
 #: Who the audit trail names for catalogue refreshes and carry-overs made when a registry is opened: the tool,
 #: not the person whose command happened to open the registry first.
@@ -23,7 +22,7 @@ CATALOG_ACTOR = "ivdossier-catalogue"
 
 def catalog_is_current(session: Session) -> bool:
     """True when every built-in row carries the shipped catalogue version (and there is at least one)."""
-    from ivdossier.threats_catalog.catalog import CATALOGUE_VERSION
+    from ivdossier.threats_catalog.version import CATALOGUE_VERSION
 
     stale = case((Threat.catalog_version != CATALOGUE_VERSION, 1), else_=0)
     query = select(func.count(), func.coalesce(func.sum(stale), 0)).where(Threat.origin == "builtin")
@@ -35,6 +34,7 @@ def catalog_is_current(session: Session) -> bool:
 def ensure_builtin(session: Session, *, actor: str) -> int:
     """Add, refresh or retire built-in entries when the registry's copy is older than the shipped catalogue."""
     from ivdossier.registry.db import serialize_writes
+    from ivdossier.registry.threats import sync_catalog
     from ivdossier.threats_catalog import load_builtin
     from ivdossier.threats_catalog.catalog import RETIRED
 
@@ -58,6 +58,7 @@ def sync_on_open(registry: Registry, *, actor: str = CATALOG_ACTOR) -> int:
 
 def catalog_entry(row: Threat) -> Any:
     """The registry's copy of a threat as a validated catalogue entry (with its graph fragment)."""
+    from ivdossier.registry.threats import THREAT_FIELDS
     from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
 
     data = {f: getattr(row, f) for f in THREAT_FIELDS}
