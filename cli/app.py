@@ -73,19 +73,18 @@ def _flags_take_no_value(command: Any) -> None:
 def _defer_value_check(param: Any) -> None:
     """Build typer's value checker of an option only when a value arrives that needs one.
 
-    typer (from 0.16) checks option values with a pydantic TypeAdapter, built (and pydantic imported, about a
-    fifth of a listing's start-up) the first time an option is processed, even an option left out. Here a left-out
-    option stays None (or empty), text stays the same text, and any other value (numbers, paths, dates, choices)
-    goes to the checker typer builds then, so every value is read exactly as typer reads it.
+    Recent typer (0.29 here) checks option values with a pydantic TypeAdapter, built (and pydantic imported, about
+    a fifth of a listing's start-up) the first time an option is processed, even an option left out. Here a
+    left-out option stays None (or empty), text stays the same text, and any other value (numbers, paths, dates,
+    choices) goes to the checker typer builds then, so every value is read exactly as typer reads it.
     """
-    descriptor = getattr(param, "type_descriptor", None)
+    descriptor: Any = getattr(param, "type_descriptor", None)
     info = getattr(descriptor, "parameter_info", None)
     if info is None or descriptor.file_annotation is not None or info.parser is not None:
         return
     deferred = _deferred_check_class()
-    if (
-        deferred is not None and getattr(param, "_runtime_param", "absent") is None
-    ):  # typer's own, not built yet
+    built = getattr(param, "_runtime_param", "absent")  # None: typer's own checker, not built yet
+    if deferred is not None and built is None:
         param._runtime_param = deferred(
             parameter_info=info, annotation=descriptor.annotation, descriptor=descriptor
         )
