@@ -216,7 +216,7 @@ def siblings(target: Path) -> list[str]:
 
 
 def counts(db: str) -> tuple[int, ...]:
-    from sqlmodel import func, select
+    from sqlalchemy import func, select
 
     from ivdossier.registry.db import open_registry
     from ivdossier.registry.models import ENTITY_CLASSES, AuditEvent
@@ -225,7 +225,7 @@ def counts(db: str) -> tuple[int, ...]:
     try:
         with registry.reading() as s:
             return tuple(
-                int(s.exec(select(func.count()).select_from(cls)).one())
+                int(s.scalars(select(func.count()).select_from(cls)).one())
                 for cls in (*ENTITY_CLASSES, AuditEvent)
             )
     finally:

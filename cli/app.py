@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import contextlib
+import dataclasses
+import functools
 from typing import Annotated, Any
 
 import typer
@@ -63,8 +65,57 @@ def _flags_take_no_value(command: Any) -> None:
     for param in params:
         if getattr(param, "is_flag", False):
             param.metavar = ""
+        _defer_value_check(param)
     for sub in getattr(command, "commands", {}).values():
         _flags_take_no_value(sub)
+
+
+def _defer_value_check(param: Any) -> None:
+    """Build typer's value checker of an option only when a value arrives that needs one.
+
+    Recent typer (0.29 here) checks option values with a pydantic TypeAdapter, built (and pydantic imported, about
+    a fifth of a listing's start-up) the first time an option is processed, even an option left out. Here a
+    left-out option stays None (or empty), text stays the same text, and any other value (numbers, paths, dates,
+    choices) goes to the checker typer builds then, so every value is read exactly as typer reads it.
+    """
+    descriptor: Any = getattr(param, "type_descriptor", None)
+    info = getattr(descriptor, "parameter_info", None)
+    if info is None or descriptor.file_annotation is not None or info.parser is not None:
+        return
+    deferred = _deferred_check_class()
+    built = getattr(param, "_runtime_param", "absent")  # None: typer's own checker, not built yet
+    if deferred is not None and built is None:
+        param._runtime_param = deferred(
+            parameter_info=info, annotation=descriptor.annotation, descriptor=descriptor
+        )
+
+
+@functools.cache
+def _deferred_check_class() -> Any:
+    """A typer runtime checker that stands in for typer's own until a value needs it (None for older typer)."""
+    try:
+        from typer._coercion import RuntimeParam, build_runtime_param
+    except ImportError:  # pragma: no cover - typer without pydantic-based checks
+        return None
+
+    @dataclasses.dataclass(frozen=True)
+    class DeferredCheck(RuntimeParam):
+        descriptor: Any
+
+        def _coerce_value(self, value: Any, param: Any, ctx: Any) -> Any:
+            if self.annotation is str and isinstance(value, str):
+                return value
+            if (
+                self.annotation == list[str]
+                and isinstance(value, list | tuple)
+                and all(isinstance(v, str) for v in value)
+            ):
+                return list(value)
+            real = build_runtime_param(self.descriptor)
+            param._runtime_param = real
+            return real._coerce_value(value, param=param, ctx=ctx)
+
+    return DeferredCheck
 
 
 def _fail(message: str, code: int) -> None:

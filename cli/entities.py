@@ -73,17 +73,17 @@ def program_add(
 @program_app.command("list")
 def program_list(json_out: JsonFlag = False) -> None:
     """List programs with their number of candidate instruments."""
-    from sqlmodel import func, select
+    from sqlalchemy import func, select
 
     from ivdossier.registry.models import Instrument, Program
 
     with reading() as s:
         counts = dict(
-            s.exec(select(Instrument.program_id, func.count()).group_by(Instrument.program_id)).all()
+            s.execute(select(Instrument.program_id, func.count()).group_by(Instrument.program_id)).all()
         )
         rows = [
             {**_entity_dict(p), "instruments": counts.get(p.id, 0)}
-            for p in s.exec(select(Program).order_by(Program.slug))
+            for p in s.scalars(select(Program).order_by(Program.slug))
         ]
     if json_out:
         print_json(rows)
@@ -203,7 +203,7 @@ def instrument_list(
     json_out: JsonFlag = False,
 ) -> None:
     """List candidate instruments."""
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry import records
     from ivdossier.registry.models import Instrument, Program
@@ -362,12 +362,12 @@ def member_add(
 @member_app.command("list")
 def member_list(json_out: JsonFlag = False) -> None:
     """List team members."""
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry.models import Member
 
     with reading() as s:
-        rows = [_entity_dict(m) for m in s.exec(select(Member).order_by(Member.handle))]
+        rows = [_entity_dict(m) for m in s.scalars(select(Member).order_by(Member.handle))]
     print_json(rows) if json_out else print_table(rows, ["handle", "name", "email"])
 
 
@@ -474,7 +474,7 @@ def link_list(
 @link_app.command("show")
 def link_show(slug: str, json_out: JsonFlag = False) -> None:
     """Show one link with its threat, argument, evidence and ratings."""
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry import records
     from ivdossier.registry.models import Link, Member, Rating, Threat
@@ -486,7 +486,7 @@ def link_show(slug: str, json_out: JsonFlag = False) -> None:
         data["threat"] = {"code": threat.code, "title": threat.title, "condition": threat.condition}
         data["ratings"] = [
             {"member": m.handle, "likelihood": r.likelihood, "severity": r.severity, "comment": r.comment}
-            for r, m in s.exec(
+            for r, m in s.execute(
                 select(Rating, Member).where(Rating.link_id == link.id, Rating.member_id == Member.id)
             )
         ]

@@ -154,13 +154,13 @@ def _render(suffix: str, sealed: dict[str, Any], state: str, sha: str) -> str:
 @plan_app.command("list")
 def list_(json_out: JsonFlag = False) -> None:
     """List plans with their state and hash."""
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry import plans
     from ivdossier.registry.models import Plan
 
     with reading() as s:
-        rows = plans.plan_dicts(s, list(s.exec(select(Plan).order_by(Plan.slug))))
+        rows = plans.plan_dicts(s, list(s.scalars(select(Plan).order_by(Plan.slug))))
     if json_out:
         print_json(rows)
         return

@@ -10,8 +10,6 @@ next run, after moving back any version-control entries it was carrying.
 from __future__ import annotations
 
 import contextlib
-import ctypes
-import ctypes.util
 import os
 import shutil
 import stat
@@ -196,6 +194,9 @@ def _exchange(a: Path, b: Path) -> bool:
     """Atomically swap two paths (Linux renameat2 RENAME_EXCHANGE); False where the system cannot."""
     if not hasattr(os, "uname") or os.uname().sysname != "Linux":
         return False
+    import ctypes  # only folder swaps need it (kept out of every command's start-up)
+    import ctypes.util
+
     try:
         libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
         renameat2 = libc.renameat2

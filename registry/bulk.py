@@ -12,7 +12,8 @@ from collections import defaultdict
 from collections.abc import Collection, Iterator, Sequence
 from typing import Any
 
-from sqlmodel import Session, col, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from ivdossier.registry.models import (
     AuditEvent,
@@ -42,12 +43,12 @@ def _chunks(ids: Collection[Any] | None) -> Iterator[list[Any] | None]:
 
 def programs(session: Session) -> dict[int, Program]:
     """Every program by id."""
-    return {p.id: p for p in session.exec(select(Program)) if p.id is not None}
+    return {p.id: p for p in session.scalars(select(Program)) if p.id is not None}
 
 
 def instruments(session: Session) -> list[Instrument]:
     """Every instrument, by slug."""
-    return list(session.exec(select(Instrument).order_by(Instrument.slug)))
+    return list(session.scalars(select(Instrument).order_by(Instrument.slug)))
 
 
 def links_by_instrument(
@@ -58,8 +59,8 @@ def links_by_instrument(
     for chunk in _chunks(instrument_ids):
         query = select(Link, Threat).where(Link.threat_id == Threat.id)
         if chunk is not None:
-            query = query.where(col(Link.instrument_id).in_(chunk))
-        for link, threat in session.exec(query.order_by(Threat.code, Link.id)):
+            query = query.where(Link.instrument_id.in_(chunk))
+        for link, threat in session.execute(query.order_by(Threat.code, Link.id)):
             out[link.instrument_id].append((link, threat))
     return out
 
@@ -72,8 +73,8 @@ def ratings_by_link(
     for chunk in _chunks(link_ids):
         query = select(Rating, Member).where(Rating.member_id == Member.id)
         if chunk is not None:
-            query = query.where(col(Rating.link_id).in_(chunk))
-        for rating, member in session.exec(query.order_by(Member.handle, Rating.id)):
+            query = query.where(Rating.link_id.in_(chunk))
+        for rating, member in session.execute(query.order_by(Member.handle, Rating.id)):
             out[rating.link_id].append((rating, member))
     return out
 
@@ -84,10 +85,10 @@ def runs_by_instrument(
     """Instrument id -> its runs, oldest first, as `registry.runs.runs_of`."""
     out: dict[int, list[Run]] = defaultdict(list)
     for chunk in _chunks(instrument_ids):
-        query = select(Run).where(col(Run.instrument_id).is_not(None))
+        query = select(Run).where(Run.instrument_id.is_not(None))
         if chunk is not None:
-            query = query.where(col(Run.instrument_id).in_(chunk))
-        for run in session.exec(query.order_by(col(Run.created_at), col(Run.id))):
+            query = query.where(Run.instrument_id.in_(chunk))
+        for run in session.scalars(query.order_by(Run.created_at, Run.id)):
             if run.instrument_id is not None:
                 out[run.instrument_id].append(run)
     return out
@@ -99,15 +100,15 @@ def datasets(session: Session, dataset_ids: Collection[int]) -> dict[int, Datase
     for chunk in _chunks(dataset_ids):
         query = select(Dataset)
         if chunk is not None:
-            query = query.where(col(Dataset.id).in_(chunk))
-        out.update({d.id: d for d in session.exec(query) if d.id is not None})
+            query = query.where(Dataset.id.in_(chunk))
+        out.update({d.id: d for d in session.scalars(query) if d.id is not None})
     return out
 
 
 def covariates_by_program(session: Session) -> dict[int, list[Covariate]]:
     """Program id -> its declared covariates by name, as `registry.instruments.covariates_of`."""
     out: dict[int, list[Covariate]] = defaultdict(list)
-    for c in session.exec(select(Covariate).order_by(Covariate.program_id, Covariate.name)):
+    for c in session.scalars(select(Covariate).order_by(Covariate.program_id, Covariate.name)):
         out[c.program_id].append(c)
     return out
 
@@ -115,7 +116,7 @@ def covariates_by_program(session: Session) -> dict[int, list[Covariate]]:
 def edges_by_program(session: Session) -> dict[int, list[GraphEdge]]:
     """Program id -> its team edges by slug (program-wide and instrument-scoped), as `edges_of`."""
     out: dict[int, list[GraphEdge]] = defaultdict(list)
-    for e in session.exec(select(GraphEdge).order_by(GraphEdge.program_id, GraphEdge.slug)):
+    for e in session.scalars(select(GraphEdge).order_by(GraphEdge.program_id, GraphEdge.slug)):
         out[e.program_id].append(e)
     return out
 
@@ -128,8 +129,8 @@ def events_by_entity(
     for chunk in _chunks(entity_uuids):
         query = select(AuditEvent)
         if chunk is not None:
-            query = query.where(col(AuditEvent.entity_uuid).in_(chunk))
-        for event in session.exec(query.order_by(col(AuditEvent.at), col(AuditEvent.id))):
+            query = query.where(AuditEvent.entity_uuid.in_(chunk))
+        for event in session.scalars(query.order_by(AuditEvent.at, AuditEvent.id)):
             out[event.entity_uuid].append(event)
     return out
 

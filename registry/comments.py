@@ -6,7 +6,8 @@ import uuid as uuid_mod
 from dataclasses import dataclass
 from typing import Any
 
-from sqlmodel import Session, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.registry import records
@@ -65,7 +66,7 @@ def comments_on(session: Session, entity: Entity) -> list[Comment]:
     query = (
         select(Comment).where(Comment.entity_uuid == entity.uuid).order_by(Comment.created_at, Comment.id)  # type: ignore[arg-type]
     )
-    return list(session.exec(query))
+    return list(session.scalars(query))
 
 
 def comment_views(session: Session, target: str) -> list[CommentView]:

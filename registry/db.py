@@ -11,11 +11,11 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, TypeVar
 
-from sqlalchemy import event, text
+from sqlalchemy import create_engine, event, text
 from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, IntegrityError, OperationalError
+from sqlalchemy.orm import Session
 from sqlalchemy.orm.exc import StaleDataError
-from sqlmodel import Session, create_engine
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 

@@ -5,7 +5,8 @@ from __future__ import annotations
 from collections.abc import Collection
 from datetime import datetime
 
-from sqlmodel import Session, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from ivdossier.registry.models import AuditEvent
 
@@ -35,7 +36,7 @@ def history(
     query = query.order_by(AuditEvent.at, AuditEvent.id)  # type: ignore[arg-type]
     if limit is not None:
         query = query.limit(limit)
-    return list(session.exec(query))
+    return list(session.scalars(query))
 
 
 def event_to_dict(event: AuditEvent) -> dict[str, object]:

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-from sqlmodel import Session, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import records
@@ -154,7 +155,9 @@ def move_instrument(
 
 def instruments_of(session: Session, program: Program) -> list[Instrument]:
     return list(
-        session.exec(select(Instrument).where(Instrument.program_id == program.id).order_by(Instrument.slug))
+        session.scalars(
+            select(Instrument).where(Instrument.program_id == program.id).order_by(Instrument.slug)
+        )
     )
 
 
@@ -166,7 +169,7 @@ def check_writer(session: Session, actor: str) -> None:
     operating-system user) must be a member, so a mistyped --as cannot put an unknown author into the audit trail.
     Rating a link always needs a member (the rating is stored against the member).
     """
-    handles = [str(h) for h in session.exec(select(Member.handle).order_by(Member.handle)).all()]
+    handles = [str(h) for h in session.scalars(select(Member.handle).order_by(Member.handle)).all()]
     if not handles or actor in handles:
         return
     shown = ", ".join(handles[:8]) + (f" and {len(handles) - 8} more" if len(handles) > 8 else "")
@@ -209,7 +212,7 @@ def add_covariate(
 
 def covariates_of(session: Session, program: Program) -> list[Covariate]:
     return list(
-        session.exec(select(Covariate).where(Covariate.program_id == program.id).order_by(Covariate.name))
+        session.scalars(select(Covariate).where(Covariate.program_id == program.id).order_by(Covariate.name))
     )
 
 
@@ -261,7 +264,7 @@ def find_edge(
     """The team edge source -> target of this scope (program-wide when ``instrument`` is None), if stored."""
     column = GraphEdge.instrument_id
     scope = column.is_(None) if instrument is None else column == instrument.id  # type: ignore[union-attr]
-    return session.exec(
+    return session.scalars(
         select(GraphEdge).where(
             GraphEdge.program_id == program.id,
             GraphEdge.source == source,
@@ -296,7 +299,7 @@ def reverse_edge(session: Session, *, actor: str, edge: GraphEdge, reason: str =
 def edges_of(session: Session, program: Program) -> list[GraphEdge]:
     """Every team edge of the program, program-wide and instrument-scoped."""
     return list(
-        session.exec(select(GraphEdge).where(GraphEdge.program_id == program.id).order_by(GraphEdge.slug))
+        session.scalars(select(GraphEdge).where(GraphEdge.program_id == program.id).order_by(GraphEdge.slug))
     )
 
 

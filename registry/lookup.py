@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from sqlalchemy import literal, select, union_all
-from sqlmodel import Session
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import InvalidInputError, NotFoundError
 from ivdossier.registry import records

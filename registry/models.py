@@ -1,6 +1,8 @@
-"""SQLModel tables of the registry: one class per entity, every row with a UUID, a slug and a version."""
+"""Tables of the registry (SQLAlchemy declarative): one class per entity, every row with a UUID, a slug and a version.
 
-from __future__ import annotations
+No ``from __future__ import annotations`` here: SQLAlchemy reads the ``Mapped[...]`` annotations as objects
+instead of evaluating each one from a string, which keeps this module's import (every command pays it) shorter.
+"""
 
 import uuid as uuid_mod
 from collections.abc import Callable, Iterator
@@ -9,10 +11,10 @@ from contextvars import ContextVar
 from datetime import UTC, datetime
 from typing import Any, ClassVar
 
-from sqlalchemy import JSON, Column, Index, UniqueConstraint, false, text
-from sqlalchemy.orm import declared_attr
-from sqlmodel import Field, SQLModel
+from sqlalchemy import JSON, Boolean, Float, ForeignKey, Index, Integer, String, UniqueConstraint, false, text
+from sqlalchemy.orm import DeclarativeBase, Mapped, declared_attr, mapped_column
 
+from ivdossier.registry.sqltypes import UTCDateTime
 from ivdossier.vocabulary import CONDITIONS, LIFECYCLE_STATES, LINK_STATES, READING_ASPECTS, THREAT_KINDS
 
 __all__ = ["CONDITIONS", "LIFECYCLE_STATES", "LINK_STATES", "READING_ASPECTS", "THREAT_KINDS"]
@@ -51,84 +53,141 @@ def new_uuid() -> str:
 
 
 def _json() -> Any:
-    return Field(default=None, sa_column=Column(JSON))
+    return mapped_column(JSON, nullable=True)
 
 
-class Entity(SQLModel):
+def _text(length: int | None = None, *, default: str | None = None, **kw: Any) -> Any:
+    """A text column: VARCHAR(length) (VARCHAR without one), NOT NULL, with a Python-side default if given."""
+    if default is not None:
+        kw["default"] = default
+    return mapped_column(String(length), nullable=False, **kw)
+
+
+def _fk(target: str, *, nullable: bool = False, index: bool = False) -> Any:
+    return mapped_column(Integer, ForeignKey(target), nullable=nullable, index=index)
+
+
+class Base(DeclarativeBase):
+    """Declarative base of every table. Constructing a row fills each column the caller leaves out from its
+    default at once (a new UUID, the clock's time, version 1, "" for text, None for nullable columns), in column
+    order, so a new object reads like a stored one before it is flushed (snapshots, labels, validations)."""
+
+    _defaults: ClassVar[tuple[tuple[str, Any, bool], ...] | None] = None
+
+    @declared_attr.directive
+    def __tablename__(cls) -> str:
+        return cls.__name__.lower()
+
+    def __init__(self, **values: Any) -> None:
+        cls = type(self)
+        defaults = cls.__dict__.get("_defaults")
+        if defaults is None:
+            defaults = _column_defaults(cls)
+            cls._defaults = defaults
+        for key, value, call in defaults:
+            if key not in values:
+                setattr(self, key, value(None) if call else value)
+        for key, value in values.items():
+            if not hasattr(cls, key):
+                raise TypeError(f"{key!r} is an invalid keyword argument for {cls.__name__}")
+            setattr(self, key, value)
+
+
+def _column_defaults(cls: type[Base]) -> tuple[tuple[str, Any, bool], ...]:
+    """(attribute, default, whether to call it) for each column with a default, or nullable, in column order."""
+    out: list[tuple[str, Any, bool]] = []
+    for prop in cls.__mapper__.column_attrs:
+        column = prop.columns[0]
+        default = column.default
+        if default is not None and default.is_callable:
+            out.append((prop.key, default.arg, True))  # type: ignore[attr-defined]  # called as arg(context)
+        elif default is not None and default.is_scalar:
+            out.append((prop.key, default.arg, False))  # type: ignore[attr-defined]
+        elif column.nullable or column.primary_key:
+            out.append((prop.key, None, False))
+    return tuple(out)
+
+
+class Entity(Base):
     """Columns every entity carries: surrogate key, UUID, timestamps and an optimistic-locking version."""
 
-    id: int | None = Field(default=None, primary_key=True)
-    uuid: str = Field(default_factory=new_uuid, max_length=36, unique=True, index=True)
-    created_at: datetime = Field(default_factory=utcnow)
-    updated_at: datetime = Field(default_factory=utcnow)
-    version: int = Field(default=1)
+    __abstract__ = True
+
+    # sort_order puts these columns first, before the subclass's own, as in every table since schema 0001.
+    id: Mapped[int | None] = mapped_column(Integer, primary_key=True, nullable=False, sort_order=-5)
+    uuid: Mapped[str] = mapped_column(
+        String(36), nullable=False, default=new_uuid, unique=True, index=True, sort_order=-4
+    )
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime(), nullable=False, default=utcnow, sort_order=-3)
+    updated_at: Mapped[datetime] = mapped_column(UTCDateTime(), nullable=False, default=utcnow, sort_order=-2)
+    version: Mapped[int] = mapped_column(Integer, nullable=False, default=1, sort_order=-1)
 
     # Human label used in messages and the audit trail; subclasses point it at their slug column.
     label_field: ClassVar[str] = "slug"
     kind: ClassVar[str] = "entity"
 
-    @declared_attr  # type: ignore[misc, arg-type]
+    @declared_attr.directive
     def __mapper_args__(cls) -> dict[str, Any]:
         # SQLAlchemy's version counter: an UPDATE based on a stale version matches no row and fails.
-        return {"version_id_col": cls.__table__.c.version}  # type: ignore[attr-defined]
+        return {"version_id_col": cls.__table__.c.version}
 
     @property
     def label(self) -> str:
         return str(getattr(self, self.label_field))
 
 
-class Member(Entity, table=True):
+class Member(Entity):
     kind: ClassVar[str] = "member"
     label_field: ClassVar[str] = "handle"
 
-    handle: str = Field(max_length=64, unique=True, index=True)
-    name: str = Field(default="", max_length=200)
-    email: str = Field(default="", max_length=320)
+    handle: Mapped[str] = _text(64, unique=True, index=True)
+    name: Mapped[str] = _text(200, default="")
+    email: Mapped[str] = _text(320, default="")
 
 
-class Program(Entity, table=True):
+class Program(Entity):
     kind: ClassVar[str] = "program"
 
-    slug: str = Field(max_length=64, unique=True, index=True)
-    title: str = Field(max_length=300)
-    question: str = Field(default="")
-    treatment: str = Field(default="", max_length=200)
-    outcome: str = Field(default="", max_length=200)
-    unit: str = Field(default="", max_length=200)
-    population: str = Field(default="")
-    notes: str = Field(default="")
+    slug: Mapped[str] = _text(64, unique=True, index=True)
+    title: Mapped[str] = _text(300)
+    question: Mapped[str] = _text(default="")
+    treatment: Mapped[str] = _text(200, default="")
+    outcome: Mapped[str] = _text(200, default="")
+    unit: Mapped[str] = _text(200, default="")
+    population: Mapped[str] = _text(default="")
+    notes: Mapped[str] = _text(default="")
 
 
-class Instrument(Entity, table=True):
+class Instrument(Entity):
     kind: ClassVar[str] = "instrument"
 
-    slug: str = Field(max_length=64, unique=True, index=True)
-    program_id: int = Field(foreign_key="program.id", index=True)
-    name: str = Field(max_length=300)
-    family: str = Field(default="", max_length=64, index=True)
-    columns: list[str] | None = _json()
-    state: str = Field(default="proposed", max_length=16)
-    description: str = Field(default="")
-    claim_relevance: str = Field(default="")
-    claim_exclusion: str = Field(default="")
-    claim_exogeneity: str = Field(default="")
-    claim_monotonicity: str = Field(default="")
+    slug: Mapped[str] = _text(64, unique=True, index=True)
+    program_id: Mapped[int] = _fk("program.id", index=True)
+    name: Mapped[str] = _text(300)
+    family: Mapped[str] = _text(64, default="", index=True)
+    columns: Mapped[list[str] | None] = _json()
+    state: Mapped[str] = _text(16, default="proposed")
+    description: Mapped[str] = _text(default="")
+    claim_relevance: Mapped[str] = _text(default="")
+    claim_exclusion: Mapped[str] = _text(default="")
+    claim_exogeneity: Mapped[str] = _text(default="")
+    claim_monotonicity: Mapped[str] = _text(default="")
 
 
-class Covariate(Entity, table=True):
+class Covariate(Entity):
     """A variable the team declares in a program's causal graph, measured in the data or not."""
 
     kind: ClassVar[str] = "covariate"
     __table_args__ = (UniqueConstraint("program_id", "name"),)
 
-    slug: str = Field(max_length=140, unique=True, index=True)
-    program_id: int = Field(foreign_key="program.id", index=True)
-    name: str = Field(max_length=100)
-    measured: bool = Field(default=True)
-    description: str = Field(default="")
+    slug: Mapped[str] = _text(140, unique=True, index=True)
+    program_id: Mapped[int] = _fk("program.id", index=True)
+    name: Mapped[str] = _text(100)
+    measured: Mapped[bool] = mapped_column(Boolean, nullable=False, default=True)
+    description: Mapped[str] = _text(default="")
 
 
-class GraphEdge(Entity, table=True):
+class GraphEdge(Entity):
     """An edge a user adds to a program's causal graph by hand (beyond roles and threat fragments).
 
     ``instrument_id`` scopes it: None draws it in every instrument's graph of the program, an instrument's id
@@ -140,130 +199,130 @@ class GraphEdge(Entity, table=True):
         UniqueConstraint("program_id", "instrument_id", "source", "target", name="uq_graphedge_scope_ends"),
     )
 
-    slug: str = Field(max_length=240, unique=True, index=True)
-    program_id: int = Field(foreign_key="program.id", index=True)
-    instrument_id: int | None = Field(default=None, foreign_key="instrument.id", index=True)
-    source: str = Field(max_length=100)
-    target: str = Field(max_length=100)
-    note: str = Field(default="")
+    slug: Mapped[str] = _text(240, unique=True, index=True)
+    program_id: Mapped[int] = _fk("program.id", index=True)
+    instrument_id: Mapped[int | None] = _fk("instrument.id", nullable=True, index=True)
+    source: Mapped[str] = _text(100)
+    target: Mapped[str] = _text(100)
+    note: Mapped[str] = _text(default="")
 
 
-class Threat(Entity, table=True):
+class Threat(Entity):
     """A catalogue entry: built in (shipped data files) or written by the team."""
 
     kind: ClassVar[str] = "threat"
     label_field: ClassVar[str] = "code"
 
-    code: str = Field(max_length=32, unique=True, index=True)
-    title: str = Field(max_length=300)
-    condition: str = Field(max_length=16, index=True)
-    mechanism: str = Field(default="", max_length=64)
-    families: list[str] | None = _json()
-    description: str = Field(default="")
-    fragment: dict[str, Any] | None = _json()
-    testability: str = Field(default="argument-only", max_length=20)
-    checks: list[str] | None = _json()
-    mitigations: list[str] | None = _json()
-    references: list[str] | None = _json()
-    origin: str = Field(default="team", max_length=10)  # "builtin" or "team"
-    catalog_version: str = Field(default="", max_length=20)
+    code: Mapped[str] = _text(32, unique=True, index=True)
+    title: Mapped[str] = _text(300)
+    condition: Mapped[str] = _text(16, index=True)
+    mechanism: Mapped[str] = _text(64, default="")
+    families: Mapped[list[str] | None] = _json()
+    description: Mapped[str] = _text(default="")
+    fragment: Mapped[dict[str, Any] | None] = _json()
+    testability: Mapped[str] = _text(20, default="argument-only")
+    checks: Mapped[list[str] | None] = _json()
+    mitigations: Mapped[list[str] | None] = _json()
+    references: Mapped[list[str] | None] = _json()
+    origin: Mapped[str] = _text(10, default="team")  # "builtin" or "team"
+    catalog_version: Mapped[str] = _text(20, default="")
     # The catalogue's "kind" ("kind" names the entity class here): "condition" (attacks relevance, exclusion,
     # exogeneity or monotonicity) or "reading" (what the estimate means, its uncertainty, how the specification
     # was chosen). Added in schema 0002.
-    threat_kind: str = Field(
-        default="condition", max_length=12, sa_column_kwargs={"server_default": "condition"}
-    )
+    threat_kind: Mapped[str] = _text(12, default="condition", server_default="condition")
     # For a built-in code that was merged or replaced: the successor's code (links were carried over to it).
-    retired_into: str = Field(default="", max_length=32, sa_column_kwargs={"server_default": ""})
+    retired_into: Mapped[str] = _text(32, default="", server_default="")
 
 
-class Link(Entity, table=True):
+class Link(Entity):
     """A threat attached to one instrument, with the team's current state and argument."""
 
     kind: ClassVar[str] = "link"
     __table_args__ = (UniqueConstraint("instrument_id", "threat_id"),)
 
-    slug: str = Field(max_length=100, unique=True, index=True)
-    instrument_id: int = Field(foreign_key="instrument.id", index=True)
-    threat_id: int = Field(foreign_key="threat.id", index=True)
-    state: str = Field(default="open", max_length=12)
-    argument: str = Field(default="")
-    evidence: str = Field(default="")
+    slug: Mapped[str] = _text(100, unique=True, index=True)
+    instrument_id: Mapped[int] = _fk("instrument.id", index=True)
+    threat_id: Mapped[int] = _fk("threat.id", index=True)
+    state: Mapped[str] = _text(12, default="open")
+    argument: Mapped[str] = _text(default="")
+    evidence: Mapped[str] = _text(default="")
 
 
-class Dismissal(Entity, table=True):
+class Dismissal(Entity):
     """A family-level threat the team has looked at for one instrument and judged not to apply."""
 
     kind: ClassVar[str] = "dismissal"
     __table_args__ = (UniqueConstraint("instrument_id", "threat_id"),)
 
-    slug: str = Field(max_length=100, unique=True, index=True)
-    instrument_id: int = Field(foreign_key="instrument.id", index=True)
-    threat_id: int = Field(foreign_key="threat.id", index=True)
-    reason: str = Field(default="")
+    slug: Mapped[str] = _text(100, unique=True, index=True)
+    instrument_id: Mapped[int] = _fk("instrument.id", index=True)
+    threat_id: Mapped[int] = _fk("threat.id", index=True)
+    reason: Mapped[str] = _text(default="")
 
 
-class Rating(Entity, table=True):
+class Rating(Entity):
     """One reviewer's likelihood and severity (1-5) for one link."""
 
     kind: ClassVar[str] = "rating"
     __table_args__ = (UniqueConstraint("link_id", "member_id"),)
 
-    slug: str = Field(max_length=170, unique=True, index=True)
-    link_id: int = Field(foreign_key="link.id", index=True)
-    member_id: int = Field(foreign_key="member.id", index=True)
-    likelihood: int
-    severity: int
-    comment: str = Field(default="")
+    slug: Mapped[str] = _text(170, unique=True, index=True)
+    link_id: Mapped[int] = _fk("link.id", index=True)
+    member_id: Mapped[int] = _fk("member.id", index=True)
+    likelihood: Mapped[int] = mapped_column(Integer, nullable=False)
+    severity: Mapped[int] = mapped_column(Integer, nullable=False)
+    comment: Mapped[str] = _text(default="")
 
 
-class Study(Entity, table=True):
+class Study(Entity):
     """A past or published study that used an instrument, with what it reported."""
 
     kind: ClassVar[str] = "study"
     label_field: ClassVar[str] = "key"
 
-    key: str = Field(max_length=120, unique=True, index=True)
-    entry_type: str = Field(default="article", max_length=32)
-    authors: str = Field(default="")
-    title: str = Field(default="")
-    year: int | None = Field(default=None)
-    venue: str = Field(default="")
-    doi: str = Field(default="", max_length=200)
-    families: list[str] | None = _json()
-    instruments: list[str] | None = _json()  # instrument slugs this study used or speaks to
-    reported: dict[str, Any] | None = _json()  # point estimate, se, first-stage F and kind, n, clusters ...
-    extra: dict[str, Any] | None = _json()  # other BibTeX fields, kept for a faithful round trip
+    key: Mapped[str] = _text(120, unique=True, index=True)
+    entry_type: Mapped[str] = _text(32, default="article")
+    authors: Mapped[str] = _text(default="")
+    title: Mapped[str] = _text(default="")
+    year: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    venue: Mapped[str] = _text(default="")
+    doi: Mapped[str] = _text(200, default="")
+    families: Mapped[list[str] | None] = _json()
+    instruments: Mapped[list[str] | None] = _json()  # instrument slugs this study used or speaks to
+    reported: Mapped[dict[str, Any] | None] = (
+        _json()
+    )  # point estimate, se, first-stage F and kind, n, clusters ...
+    extra: Mapped[dict[str, Any] | None] = _json()  # other BibTeX fields, kept for a faithful round trip
     # a published per-variant summary table attached for re-analysis: source, sha256, columns and rows as read
-    variant_table: dict[str, Any] | None = _json()
+    variant_table: Mapped[dict[str, Any] | None] = _json()
 
 
-class Critique(Entity, table=True):
+class Critique(Entity):
     """A catalogue threat raised against a study, optionally by another study."""
 
     kind: ClassVar[str] = "critique"
     __table_args__ = (UniqueConstraint("study_id", "threat_id", "raised_by_id"),)
 
-    slug: str = Field(max_length=280, unique=True, index=True)
-    study_id: int = Field(foreign_key="study.id", index=True)
-    threat_id: int = Field(foreign_key="threat.id", index=True)
-    raised_by_id: int | None = Field(default=None, foreign_key="study.id")
-    note: str = Field(default="")
+    slug: Mapped[str] = _text(280, unique=True, index=True)
+    study_id: Mapped[int] = _fk("study.id", index=True)
+    threat_id: Mapped[int] = _fk("threat.id", index=True)
+    raised_by_id: Mapped[int | None] = _fk("study.id", nullable=True)
+    note: Mapped[str] = _text(default="")
 
 
-class Dataset(Entity, table=True):
+class Dataset(Entity):
     """A data file a run used, identified by its SHA-256."""
 
     kind: ClassVar[str] = "dataset"
 
-    slug: str = Field(max_length=80, unique=True, index=True)
-    path: str = Field(default="")
-    sha256: str = Field(max_length=64, index=True)
-    rows: int = Field(default=0)
-    columns: list[str] | None = _json()
+    slug: Mapped[str] = _text(80, unique=True, index=True)
+    path: Mapped[str] = _text(default="")
+    sha256: Mapped[str] = _text(64, index=True)
+    rows: Mapped[int] = mapped_column(Integer, nullable=False, default=0)
+    columns: Mapped[list[str] | None] = _json()
 
 
-class Run(Entity, table=True):
+class Run(Entity):
     """One estimation or evidence run: exact spec, data fingerprint, results, versions and timing."""
 
     kind: ClassVar[str] = "run"
@@ -276,63 +335,63 @@ class Run(Entity, table=True):
         ),
     )
 
-    slug: str = Field(max_length=80, unique=True, index=True)
-    instrument_id: int | None = Field(default=None, foreign_key="instrument.id", index=True)
-    dataset_id: int | None = Field(default=None, foreign_key="dataset.id")
-    run_kind: str = Field(default="estimate", max_length=32)
-    spec: dict[str, Any] | None = _json()
-    results: dict[str, Any] | None = _json()
-    versions: dict[str, Any] | None = _json()
-    seconds: float = Field(default=0.0)
+    slug: Mapped[str] = _text(80, unique=True, index=True)
+    instrument_id: Mapped[int | None] = _fk("instrument.id", nullable=True, index=True)
+    dataset_id: Mapped[int | None] = _fk("dataset.id", nullable=True)
+    run_kind: Mapped[str] = _text(32, default="estimate")
+    spec: Mapped[dict[str, Any] | None] = _json()
+    results: Mapped[dict[str, Any] | None] = _json()
+    versions: Mapped[dict[str, Any] | None] = _json()
+    seconds: Mapped[float] = mapped_column(Float, nullable=False, default=0.0)
     # The run the team marked as the one its dossier headline and relevance verdict rest on (at most one per
     # instrument; registry.runs.mark_primary keeps it so).
-    is_primary: bool = Field(default=False, sa_column_kwargs={"server_default": false()})
+    is_primary: Mapped[bool] = mapped_column(Boolean, nullable=False, default=False, server_default=false())
 
 
-class Plan(Entity, table=True):
+class Plan(Entity):
     """A pre-analysis plan; once frozen, its content hash is fixed and the row is read-only."""
 
     kind: ClassVar[str] = "plan"
 
-    slug: str = Field(max_length=80, unique=True, index=True)
-    program_id: int = Field(foreign_key="program.id", index=True)
-    instrument_id: int | None = Field(default=None, foreign_key="instrument.id")
-    title: str = Field(default="")
-    content: dict[str, Any] | None = _json()
-    state: str = Field(default="draft", max_length=10)
-    frozen_at: datetime | None = Field(default=None)
-    frozen_by: str = Field(default="", max_length=64)
-    sha256: str = Field(default="", max_length=64)
+    slug: Mapped[str] = _text(80, unique=True, index=True)
+    program_id: Mapped[int] = _fk("program.id", index=True)
+    instrument_id: Mapped[int | None] = _fk("instrument.id", nullable=True)
+    title: Mapped[str] = _text(default="")
+    content: Mapped[dict[str, Any] | None] = _json()
+    state: Mapped[str] = _text(10, default="draft")
+    frozen_at: Mapped[datetime | None] = mapped_column(UTCDateTime(), nullable=True)
+    frozen_by: Mapped[str] = _text(64, default="")
+    sha256: Mapped[str] = _text(64, default="")
 
 
-class Comment(Entity, table=True):
+class Comment(Entity):
     """A remark on any entity, addressed by the entity's UUID."""
 
     kind: ClassVar[str] = "comment"
 
-    slug: str = Field(max_length=80, unique=True, index=True)
-    entity_kind: str = Field(max_length=20)
-    entity_uuid: str = Field(max_length=36, index=True)
-    author: str = Field(max_length=64)
-    body: str = Field(default="")
+    slug: Mapped[str] = _text(80, unique=True, index=True)
+    entity_kind: Mapped[str] = _text(20)
+    entity_uuid: Mapped[str] = _text(36, index=True)
+    author: Mapped[str] = _text(64)
+    body: Mapped[str] = _text(default="")
 
 
-class AuditEvent(SQLModel, table=True):
+class AuditEvent(Base):
     """Append-only record of every change: who, when, what, and the values before and after."""
 
     __tablename__ = "audit_event"
     __table_args__ = (Index("ix_audit_event_at", "at"),)
 
-    id: int | None = Field(default=None, primary_key=True)
-    at: datetime = Field(default_factory=utcnow)
-    actor: str = Field(max_length=64)
-    action: str = Field(max_length=32)
-    entity_kind: str = Field(max_length=20)
-    entity_uuid: str = Field(max_length=36, index=True)
-    entity_label: str = Field(default="", max_length=300)
-    before: dict[str, Any] | None = _json()
-    after: dict[str, Any] | None = _json()
-    reason: str = Field(default="")
+    id: Mapped[int | None] = mapped_column(Integer, primary_key=True, nullable=False)
+    at: Mapped[datetime] = mapped_column(UTCDateTime(), nullable=False, default=utcnow)
+    actor: Mapped[str] = _text(64)
+    action: Mapped[str] = _text(32)
+    entity_kind: Mapped[str] = _text(20)
+    entity_uuid: Mapped[str] = _text(36, index=True)
+    entity_label: Mapped[str] = _text(300, default="")
+    before: Mapped[dict[str, Any] | None] = _json()
+    after: Mapped[dict[str, Any] | None] = _json()
+    reason: Mapped[str] = _text(default="")
 
 
 def postgresql_options() -> None:

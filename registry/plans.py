@@ -20,8 +20,8 @@ from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime, timedelta
 from typing import Any
 
-from sqlalchemy import event, inspect
-from sqlmodel import Session, select
+from sqlalchemy import event, inspect, select
+from sqlalchemy.orm import Session
 
 from ivdossier import __version__
 from ivdossier.errors import ConflictError, InvalidInputError
@@ -91,7 +91,7 @@ def iso(moment: datetime) -> str:
 
 def next_slug(session: Session, base: str) -> str:
     base = base[:60].rstrip("-")
-    taken = set(session.exec(select(Plan.slug).where(Plan.slug.startswith(base))))  # type: ignore[attr-defined]
+    taken = set(session.scalars(select(Plan.slug).where(Plan.slug.startswith(base))))  # type: ignore[attr-defined]
     if base not in taken:
         return base
     n = 2
@@ -298,7 +298,7 @@ def is_own_seal(event_row: AuditEvent, plan: Plan | None = None) -> bool:
 
 def seal_events(session: Session, plan: Plan) -> list[AuditEvent]:
     """Every audit event of the plan that records a seal, this registry's or imported, oldest first."""
-    rows = session.exec(
+    rows = session.scalars(
         select(AuditEvent).where(AuditEvent.entity_uuid == plan.uuid).order_by(AuditEvent.id)  # type: ignore[arg-type]
     )
     return [e for e in rows if e.action == SEAL_ACTION or e.action.endswith(":" + SEAL_ACTION)]
@@ -363,8 +363,8 @@ def plan_dicts(session: Session, plans: Sequence[Plan]) -> list[dict[str, Any]]:
     instrument_ids = {p.instrument_id for p in plans if p.instrument_id}
     # Held here so the session's identity map keeps them: plan_dict's session.get then finds them without a query.
     loaded = [
-        *session.exec(select(Program).where(Program.id.in_(program_ids))),  # type: ignore[union-attr]
-        *session.exec(select(Instrument).where(Instrument.id.in_(instrument_ids))),  # type: ignore[union-attr]
+        *session.scalars(select(Program).where(Program.id.in_(program_ids))),  # type: ignore[union-attr]
+        *session.scalars(select(Instrument).where(Instrument.id.in_(instrument_ids))),  # type: ignore[union-attr]
     ]
     out = [plan_dict(session, p) for p in plans]
     del loaded

@@ -25,10 +25,10 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Boolean, Column, DateTime, Float, Integer, Table, insert, update
+from sqlalchemy import Boolean, Column, DateTime, Float, Integer, Table, insert, select, update
 from sqlalchemy import select as sa_select
+from sqlalchemy.orm import Session
 from sqlalchemy.types import JSON
-from sqlmodel import Session, select
 
 from ivdossier import safefiles
 from ivdossier.errors import ConflictError, InvalidInputError
@@ -221,7 +221,7 @@ def render_export(session: Session) -> dict[str, str]:
     loaded: dict[str, list[Entity]] = {}
     uuid_of: dict[tuple[str, int], str] = {}
     for cls in ENTITY_CLASSES:
-        rows = list(session.exec(select(cls).order_by(cls.uuid)))  # type: ignore[arg-type]
+        rows = list(session.scalars(select(cls).order_by(cls.uuid)))  # type: ignore[arg-type]
         loaded[cls.kind] = rows
         uuid_of.update(((cls.kind, r.id), r.uuid) for r in rows)
     files: dict[str, str] = {}
@@ -230,7 +230,7 @@ def render_export(session: Session) -> dict[str, str]:
             files[f"{kind}/{name}.json"] = dumps_document(
                 entity_document(obj, uuid_of), where=f"{kind} {obj.label!r}"
             )
-    events = session.exec(select(AuditEvent).order_by(AuditEvent.at, AuditEvent.id))  # type: ignore[arg-type]
+    events = session.scalars(select(AuditEvent).order_by(AuditEvent.at, AuditEvent.id))  # type: ignore[arg-type]
     lines = [dumps_event(event_document(e)) + "\n" for e in events]
     files[AUDIT_FILE] = "".join(lines)
     manifest = {
@@ -870,7 +870,7 @@ def import_registry(
     local: dict[str, Entity] = {}
     local_labels: dict[tuple[str, str], str] = {}
     for cls in ENTITY_CLASSES:
-        for obj in session.exec(select(cls)):
+        for obj in session.scalars(select(cls)):
             uuid_of[(cls.kind, obj.id)] = obj.uuid
             id_of[(cls.kind, obj.uuid)] = obj.id
             local[obj.uuid] = obj
@@ -978,7 +978,7 @@ def import_registry(
             f"import refused, nothing was written: {len(conflicts)} conflicting "
             f"{'entity' if len(conflicts) == 1 else 'entities'}: {shown}{more}; {hint}."
         )
-    known_events = {_event_identity(event_document(ev)) for ev in session.exec(select(AuditEvent))}
+    known_events = {_event_identity(event_document(ev)) for ev in session.scalars(select(AuditEvent))}
     new_events: list[dict[str, Any]] = []
     for _, values in content.events:
         identity = _event_identity({**values, "at": format_datetime(values["at"])})

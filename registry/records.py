@@ -12,8 +12,9 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any, TypeVar
 
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 from sqlalchemy.orm.exc import StaleDataError
-from sqlmodel import Session, select
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry.models import AuditEvent, Entity, utcnow
@@ -86,7 +87,7 @@ def _label_column(cls: type[Entity]) -> Any:
 
 
 def find(session: Session, cls: type[E], label: str) -> E | None:
-    return session.exec(select(cls).where(_label_column(cls) == label)).first()
+    return session.scalars(select(cls).where(_label_column(cls) == label)).first()
 
 
 def get(session: Session, cls: type[E], label: str) -> E:
@@ -94,7 +95,7 @@ def get(session: Session, cls: type[E], label: str) -> E:
     found = find(session, cls, label)
     if found is not None:
         return found
-    names = [str(x) for x in session.exec(select(_label_column(cls))).all()]
+    names = [str(x) for x in session.scalars(select(_label_column(cls))).all()]
     close = difflib.get_close_matches(label, names, n=3)
     hint = f" Did you mean {', '.join(repr(c) for c in close)}?" if close else ""
     list_cmd = f"ivdossier {cls.kind} list" if cls.kind in LISTABLE else "the listing commands"
@@ -201,7 +202,7 @@ def stale_message(session: Session, obj: Entity, expected_version: int) -> str:
         return f"{head}: version {expected_version} does not exist yet; show it again and reapply your edit."
     # Every version step is one audited write, so the newest (version - expected) events are the changes since.
     events = list(
-        session.exec(
+        session.scalars(
             select(AuditEvent)
             .where(AuditEvent.entity_uuid == obj.uuid)
             .order_by(AuditEvent.id.desc())  # type: ignore[union-attr]

@@ -5,7 +5,8 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from sqlmodel import Session, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from ivdossier.registry import records
 from ivdossier.registry.models import Dataset, Instrument, Run
@@ -15,7 +16,7 @@ def register_dataset(
     session: Session, *, actor: str, path: str, sha256: str, rows: int, columns: Sequence[str]
 ) -> Dataset:
     """The dataset row for this file content, created on first use (same content, same row)."""
-    existing = session.exec(select(Dataset).where(Dataset.sha256 == sha256)).first()
+    existing = session.scalars(select(Dataset).where(Dataset.sha256 == sha256)).first()
     if existing is not None:
         return existing
     dataset = Dataset(slug=f"data-{sha256[:12]}", path=path, sha256=sha256, rows=rows, columns=list(columns))
@@ -24,7 +25,7 @@ def register_dataset(
 
 def next_run_slug(session: Session, instrument: Instrument | None, run_kind: str) -> str:
     base = f"{instrument.slug if instrument else 'free'}-{run_kind}"[:70]
-    taken = set(session.exec(select(Run.slug).where(Run.slug.startswith(base))))  # type: ignore[attr-defined]
+    taken = set(session.scalars(select(Run.slug).where(Run.slug.startswith(base))))  # type: ignore[attr-defined]
     n = 1
     while f"{base}-{n}" in taken:
         n += 1
@@ -62,7 +63,7 @@ def runs_of(session: Session, instrument: Instrument, run_kind: str | None = Non
     query = select(Run).where(Run.instrument_id == instrument.id)
     if run_kind:
         query = query.where(Run.run_kind == run_kind)
-    return list(session.exec(query.order_by(Run.created_at, Run.id)))  # type: ignore[arg-type]
+    return list(session.scalars(query.order_by(Run.created_at, Run.id)))  # type: ignore[arg-type]
 
 
 def all_runs(session: Session, instrument: Instrument | None = None) -> list[Run]:
@@ -70,13 +71,13 @@ def all_runs(session: Session, instrument: Instrument | None = None) -> list[Run
     query = select(Run)
     if instrument is not None:
         query = query.where(Run.instrument_id == instrument.id)
-    return list(session.exec(query.order_by(Run.created_at, Run.id)))  # type: ignore[arg-type]
+    return list(session.scalars(query.order_by(Run.created_at, Run.id)))  # type: ignore[arg-type]
 
 
 def primary_run_of(session: Session, instrument: Instrument) -> Run | None:
     """The run the team marked primary for `instrument`, or None when none is marked."""
     query = select(Run).where(Run.instrument_id == instrument.id, Run.is_primary == True)  # noqa: E712
-    return session.exec(query).first()
+    return session.scalars(query).first()
 
 
 def mark_primary(session: Session, *, actor: str, run: str, reason: str = "") -> Run:
@@ -138,5 +139,5 @@ def runs_in_context(
     if instrument is not None:
         query = query.where(Run.instrument_id == instrument.id)
     return [
-        (run, slug, dataset) for run, slug, dataset in session.exec(query.order_by(Run.created_at, Run.id))
+        (run, slug, dataset) for run, slug, dataset in session.execute(query.order_by(Run.created_at, Run.id))
     ]  # type: ignore[arg-type]

@@ -15,8 +15,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy.orm import aliased
-from sqlmodel import Session, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session, aliased
 
 from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import records
@@ -254,7 +254,7 @@ def import_bibtex(session: Session, *, actor: str, text: str, source: str = "") 
     """Parse all of ``text`` first, then add every entry in the caller's transaction (all or nothing)."""
     entries = parse_bibtex(text)
     wanted = {e.key for e in entries}
-    existing = {k for k in session.exec(select(Study.key)) if k in wanted}
+    existing = {k for k in session.scalars(select(Study.key)) if k in wanted}
     if existing:
         first = next(e for e in entries if e.key in existing)
         raise ConflictError(
@@ -446,7 +446,7 @@ def critique(
         raise InvalidInputError(f"study {key!r} cannot critique itself; pass another study with --by.")
     records.check_text(note, field="note")
     slug = f"{key}--{th.code}--{by or 'team'}"[:280]
-    dup = session.exec(
+    dup = session.scalars(
         select(Critique).where(
             Critique.study_id == study.id,
             Critique.threat_id == th.id,
@@ -484,7 +484,7 @@ def critiques_by_study(session: Session, studies: Sequence[Study]) -> dict[int, 
     if len(wanted) <= 500:  # a short list by key; a long one reads every critique (no huge IN list)
         query = query.where(Critique.study_id.in_(wanted))  # type: ignore[attr-defined]
     out: dict[int, list[dict[str, Any]]] = {}
-    for crit, threat, raised_by in session.exec(query):
+    for crit, threat, raised_by in session.execute(query):
         if crit.study_id not in wanted:
             continue
         out.setdefault(crit.study_id, []).append(
@@ -503,7 +503,7 @@ def list_studies(
     session: Session, *, instrument: str | None = None, family: str | None = None
 ) -> list[Study]:
     """Studies, optionally those attached to an instrument (directly or through its family) or to a family."""
-    studies = list(session.exec(select(Study).order_by(Study.key)))
+    studies = list(session.scalars(select(Study).order_by(Study.key)))
     if instrument is not None:
         inst = records.get(session, Instrument, instrument)
         return [
@@ -512,7 +512,7 @@ def list_studies(
             if inst.slug in (s.instruments or []) or (inst.family and inst.family in (s.families or []))
         ]
     if family is not None:
-        slugs = {i.slug for i in session.exec(select(Instrument).where(Instrument.family == family))}
+        slugs = {i.slug for i in session.scalars(select(Instrument).where(Instrument.family == family))}
         return [s for s in studies if family in (s.families or []) or slugs & set(s.instruments or [])]
     return studies
 

@@ -2,14 +2,14 @@
 
 from __future__ import annotations
 
-import statistics
 import uuid
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlmodel import Session, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.registry import records
@@ -82,7 +82,7 @@ def sync_catalog(
     marked with ``retired_into``, so history and old exports still resolve. Team entries are never touched.
     Returns the number of entries added, refreshed or retired.
     """
-    existing = {t.code: t for t in session.exec(select(Threat))}
+    existing = {t.code: t for t in session.scalars(select(Threat))}
     changed = 0
     for entry in entries:
         code = str(entry["code"])
@@ -147,9 +147,9 @@ def carry_to_successor(session: Session, old: Threat, new: Threat, *, actor: str
     """
     reason = f"catalogue {version}: {old.code} was merged into or replaced by {new.code}"
     moved = 0
-    for link in list(session.exec(select(Link).where(Link.threat_id == old.id))):
+    for link in list(session.scalars(select(Link).where(Link.threat_id == old.id))):
         inst = records.get_by_id(session, Instrument, link.instrument_id)
-        target = session.exec(
+        target = session.scalars(
             select(Link).where(Link.instrument_id == link.instrument_id, Link.threat_id == new.id)
         ).first()
         if target is None:
@@ -171,8 +171,8 @@ def carry_to_successor(session: Session, old: Threat, new: Threat, *, actor: str
             }
             if changes:
                 records.edit(session, target, changes, actor=actor, action=CARRY_ACTION, reason=reason)
-            rated = {r.member_id for r in session.exec(select(Rating).where(Rating.link_id == target.id))}
-            for rating in list(session.exec(select(Rating).where(Rating.link_id == link.id))):
+            rated = {r.member_id for r in session.scalars(select(Rating).where(Rating.link_id == target.id))}
+            for rating in list(session.scalars(select(Rating).where(Rating.link_id == link.id))):
                 if rating.member_id in rated:
                     records.delete(session, rating, actor=actor, reason=f"{reason}; reviewer rated both")
                 else:
@@ -189,13 +189,13 @@ def carry_to_successor(session: Session, old: Threat, new: Threat, *, actor: str
                     )
             records.delete(session, link, actor=actor, reason=f"{reason}; merged into {target.slug}")
         moved += 1
-    for dismissal in list(session.exec(select(Dismissal).where(Dismissal.threat_id == old.id))):
-        clash = session.exec(
+    for dismissal in list(session.scalars(select(Dismissal).where(Dismissal.threat_id == old.id))):
+        clash = session.scalars(
             select(Dismissal).where(
                 Dismissal.instrument_id == dismissal.instrument_id, Dismissal.threat_id == new.id
             )
         ).first()
-        linked = session.exec(
+        linked = session.scalars(
             select(Link).where(Link.instrument_id == dismissal.instrument_id, Link.threat_id == new.id)
         ).first()
         if clash is not None or linked is not None:
@@ -211,8 +211,8 @@ def carry_to_successor(session: Session, old: Threat, new: Threat, *, actor: str
                 reason=reason,
             )
         moved += 1
-    for critique in list(session.exec(select(Critique).where(Critique.threat_id == old.id))):
-        clash = session.exec(
+    for critique in list(session.scalars(select(Critique).where(Critique.threat_id == old.id))):
+        clash = session.scalars(
             select(Critique).where(
                 Critique.study_id == critique.study_id,
                 Critique.threat_id == new.id,
@@ -258,7 +258,7 @@ def threat_by_code(session: Session, code: str) -> Threat:
     exact = records.find(session, Threat, code)
     if exact is not None:
         return exact
-    same = [t for t in session.exec(select(Threat)) if t.code.casefold() == code.casefold()]
+    same = [t for t in session.scalars(select(Threat)) if t.code.casefold() == code.casefold()]
     if len(same) == 1:
         return same[0]
     if len(same) > 1:
@@ -339,7 +339,7 @@ def set_link(
 
 
 def links_of(session: Session, instrument: Instrument) -> list[tuple[Link, Threat]]:
-    rows = session.exec(
+    rows = session.execute(
         select(Link, Threat)
         .where(Link.instrument_id == instrument.id, Link.threat_id == Threat.id)
         .order_by(Threat.code)
@@ -362,7 +362,7 @@ def rate_link(
         if not 1 <= value <= 5:
             raise InvalidInputError(f"{name} must be a whole number from 1 to 5, got {value}.")
     records.check_text(comment, field="comment")
-    existing = session.exec(
+    existing = session.scalars(
         select(Rating).where(Rating.link_id == obj.id, Rating.member_id == member.id)
     ).first()
     if existing is not None:
@@ -412,6 +412,8 @@ class RatingSummary:
 
 def rating_summaries(session: Session, instrument: Instrument) -> list[RatingSummary]:
     """Per link of the instrument, the ratings and disagreement; most disputed links first."""
+    import statistics  # only the review needs it (kept out of every command's start-up)
+
     out = []
     by_link: dict[int, list[tuple[str, int, int, str]]] = {}
     every_rating = (
@@ -419,7 +421,7 @@ def rating_summaries(session: Session, instrument: Instrument) -> list[RatingSum
         .where(Rating.member_id == Member.id, Rating.link_id == Link.id, Link.instrument_id == instrument.id)
         .order_by(Member.handle)
     )  # one query for all the instrument's links, not one per link
-    for r, handle in session.exec(every_rating):
+    for r, handle in session.execute(every_rating):
         by_link.setdefault(r.link_id, []).append((handle, r.likelihood, r.severity, r.comment))
     for link, threat in links_of(session, instrument):
         ratings = tuple(by_link.get(link.id, ()))
@@ -448,7 +450,7 @@ def unrated_links(session: Session, *, member: str, instrument: Instrument | Non
     query = select(Link.slug).where(Link.id.not_in(rated)).order_by(Link.slug)  # type: ignore[union-attr]
     if instrument is not None:
         query = query.where(Link.instrument_id == instrument.id)
-    return list(session.exec(query))
+    return list(session.scalars(query))
 
 
 def dismiss(session: Session, *, actor: str, instrument: str, code: str, reason: str) -> Dismissal:
@@ -492,7 +494,7 @@ def raised_elsewhere(session: Session, instrument: Instrument) -> list[RaisedEls
         return []
     linked_here = select(Link.threat_id).where(Link.instrument_id == instrument.id)
     dismissed_here = select(Dismissal.threat_id).where(Dismissal.instrument_id == instrument.id)
-    rows = session.exec(
+    rows = session.execute(
         select(Threat.code, Threat.title, Threat.condition, Instrument.slug)
         .where(
             Link.threat_id == Threat.id,

@@ -9,7 +9,7 @@ import json
 from pathlib import Path
 
 import pytest
-from sqlmodel import select
+from sqlalchemy import select
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.registry import instruments as reg
@@ -82,7 +82,7 @@ def test_opening_an_older_registry_carries_links_to_successors_with_audit_events
     assert sync_on_open(old_registry, actor="tool") > 0
     with old_registry.reading() as s:
         assert catalog_is_current(s)
-        codes = {t.code: t for t in s.exec(select(Threat))}
+        codes = {t.code: t for t in s.scalars(select(Threat))}
         builtin = [t for t in codes.values() if t.origin == "builtin" and not t.retired_into]
         assert {t.code for t in builtin} == set(load_builtin().codes())  # every shipped entry is present
         assert codes["LE-I01"].retired_into == RETIRED["LE-I01"] == "AN-I02"
@@ -97,7 +97,7 @@ def test_opening_an_older_registry_carries_links_to_successors_with_audit_events
             "mitigated",
             "tracked",
         )
-        assert [r.likelihood for r in s.exec(select(Rating).where(Rating.link_id == link.id))] == [2]
+        assert [r.likelihood for r in s.scalars(select(Rating).where(Rating.link_id == link.id))] == [2]
 
         fibre = records.get(s, Instrument, "fibre")
         [(merged, threat)] = thr.links_of(s, fibre)
@@ -105,23 +105,23 @@ def test_opening_an_older_registry_carries_links_to_successors_with_audit_events
         assert merged.argument == "response 80%\n\n[carried from LE-I01, state fatal] losers left"
         ratings = {
             r.member_id: (r.likelihood, r.severity)
-            for r in s.exec(select(Rating).where(Rating.link_id == merged.id))
+            for r in s.scalars(select(Rating).where(Rating.link_id == merged.id))
         }
         assert sorted(ratings.values()) == [
             (1, 2),
             (4, 4),
         ]  # ana's own rating of the successor wins; ben's moves
-        assert s.exec(select(Link).where(Link.threat_id == codes["LE-I01"].id)).all() == []
+        assert s.scalars(select(Link).where(Link.threat_id == codes["LE-I01"].id)).all() == []
 
-        [dismissal] = s.exec(select(Dismissal)).all()
+        [dismissal] = s.scalars(select(Dismissal)).all()
         assert (dismissal.threat_id, dismissal.slug) == (codes["PP-E02"].id, "clerk--pp-e02")
-        [crit] = s.exec(select(Critique)).all()
+        [crit] = s.scalars(select(Critique)).all()
         assert crit.threat_id == codes["PP-E02"].id and "--PP-E02--" in crit.slug
 
-        carried = s.exec(select(AuditEvent).where(AuditEvent.action == thr.CARRY_ACTION)).all()
+        carried = s.scalars(select(AuditEvent).where(AuditEvent.action == thr.CARRY_ACTION)).all()
         assert {e.entity_kind for e in carried} >= {"link", "rating", "dismissal", "critique"}
         assert all("was merged into or replaced by" in e.reason for e in carried)
-        retire = s.exec(select(AuditEvent).where(AuditEvent.action == "catalog-retire")).all()
+        retire = s.scalars(select(AuditEvent).where(AuditEvent.action == "catalog-retire")).all()
         assert sorted(e.entity_label for e in retire) == ["DM-E02", "LE-I01"]
     # a second open finds nothing to do
     assert sync_on_open(old_registry, actor="tool") == 0

@@ -7,7 +7,7 @@ import threading
 from typing import Any
 
 import pytest
-from sqlmodel import func, select
+from sqlalchemy import func, select
 
 from ivdossier.errors import ConflictError
 from ivdossier.registry import instruments as reg
@@ -22,7 +22,7 @@ def _add_if_missing(registry: Registry, serialize: bool, barrier: threading.Barr
         with registry.writing() as s:
             if serialize:
                 serialize_writes(s, "first-programs")
-            empty = s.exec(select(func.count()).select_from(Program)).one() == 0
+            empty = s.scalars(select(func.count()).select_from(Program)).one() == 0
             barrier.wait(timeout=30)  # (unserialized) everyone has read before anyone inserts
             if empty:
                 for i in range(3):
@@ -60,11 +60,11 @@ def test_serialized_check_then_insert_succeeds_for_every_writer_on_postgresql(pg
             r.startswith("conflict: an entity with the same name already exists") for r in unserialized
         )
         with registry.writing() as s:
-            for p in s.exec(select(Program)):
+            for p in s.scalars(select(Program)):
                 s.delete(p)
         assert _race(registry, serialize=True) == ["ok"] * WRITERS
         with registry.reading() as s:
-            assert s.exec(select(func.count()).select_from(Program)).one() == 3
+            assert s.scalars(select(func.count()).select_from(Program)).one() == 3
     finally:
         registry.dispose()
 
@@ -74,6 +74,6 @@ def test_serialize_writes_is_a_no_op_on_sqlite(sqlite_path: str) -> None:
     try:
         assert _race(registry, serialize=True) == ["ok"] * WRITERS  # BEGIN IMMEDIATE already serializes
         with registry.reading() as s:
-            assert s.exec(select(func.count()).select_from(Program)).one() == 3
+            assert s.scalars(select(func.count()).select_from(Program)).one() == 3
     finally:
         registry.dispose()

@@ -38,7 +38,7 @@ class WorkerTally:
 def prepare(db_url: str, workers: int) -> int:
     """Create the shared registry: members, threats, a shared instrument and link, and the counter; returns
     the number of audit events written."""
-    from sqlmodel import func, select
+    from sqlalchemy import func, select
 
     from ivdossier.registry import instruments as reg
     from ivdossier.registry import threats as thr
@@ -59,7 +59,7 @@ def prepare(db_url: str, workers: int) -> int:
             reg.add_instrument(s, actor="setup", program="stress", slug="shared", name="Shared instrument")
             thr.link_threat(s, actor="setup", instrument="shared", code=THREAT_CODES[0])
         with registry.reading() as s:
-            return int(s.exec(select(func.count()).select_from(AuditEvent)).one())
+            return int(s.scalars(select(func.count()).select_from(AuditEvent)).one())
     finally:
         registry.dispose()
 
@@ -187,7 +187,7 @@ class StressOutcome:
 
 def run_stress(db_url: str, *, workers: int = WORKERS, rounds: int = ROUNDS) -> StressOutcome:
     """Prepare the registry, run `workers` spawned writer processes to completion and read back the totals."""
-    from sqlmodel import func, select
+    from sqlalchemy import func, select
 
     from ivdossier.registry import records
     from ivdossier.registry.db import open_registry
@@ -203,8 +203,8 @@ def run_stress(db_url: str, *, workers: int = WORKERS, rounds: int = ROUNDS) -> 
     try:
         with registry.reading() as s:
             counter = int(records.get(s, Program, "counter").notes)
-            events = int(s.exec(select(func.count()).select_from(AuditEvent)).one())
-            instruments = int(s.exec(select(func.count()).select_from(Instrument)).one())
+            events = int(s.scalars(select(func.count()).select_from(AuditEvent)).one())
+            instruments = int(s.scalars(select(func.count()).select_from(Instrument)).one())
     finally:
         registry.dispose()
     return StressOutcome(tallies, seconds, counter, events, setup_events, instruments)

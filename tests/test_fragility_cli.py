@@ -92,7 +92,7 @@ def test_influence_matches_brute_force_refits_and_attaches_a_typed_run(
     deletions = {d["left_out"]: d["estimate"] for d in json.loads(out)["deletions"]}
     for label, estimate in deletions.items():
         assert estimate == pytest.approx(_tsls(frame[frame.district != label]), rel=1e-8)  # brute-force refit
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.estimation.influence import InfluenceResult
     from ivdossier.registry.db import open_registry
@@ -102,7 +102,7 @@ def test_influence_matches_brute_force_refits_and_attaches_a_typed_run(
     registry = open_registry(sqlite_path)
     try:
         with registry.reading() as s:
-            row = s.exec(select(Run)).one()
+            row = s.scalars(select(Run)).one()
             assert row.run_kind == "fragility-influence"
             result = load_result(row.run_kind, row.results)
     finally:

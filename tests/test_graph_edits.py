@@ -9,7 +9,7 @@ import shutil
 from pathlib import Path
 
 import pytest
-from sqlmodel import select
+from sqlalchemy import select
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry import instruments as reg
@@ -84,7 +84,7 @@ def test_edges_are_removed_and_reversed_and_each_change_is_audited(cli, sqlite_p
     registry = open_registry(sqlite_path)
     try:
         with registry.reading() as s:
-            events = s.exec(
+            events = s.scalars(
                 select(AuditEvent).where(AuditEvent.entity_kind == "edge").order_by(AuditEvent.id)
             )
             trail = [(e.action, e.before, e.after, e.reason) for e in events]
@@ -192,14 +192,14 @@ def test_a_schema_0002_registry_keeps_its_edges_program_wide_and_takes_scoped_on
     registry = open_registry(str(copy))
     try:
         with registry.reading() as s:
-            assert [(e.source, e.target, e.instrument_id) for e in s.exec(select(GraphEdge))] == [
+            assert [(e.source, e.target, e.instrument_id) for e in s.scalars(select(GraphEdge))] == [
                 ("age", "Y", None)
             ]
         with registry.writing() as s:  # the same edge, scoped to each sibling, no longer collides
             for slug in ("fibre", "clerk"):
                 reg.add_edge(s, actor="ana", program="tele", source="age", target="Y", instrument=slug)
         with registry.reading() as s:
-            assert len(list(s.exec(select(GraphEdge)))) == 3
+            assert len(list(s.scalars(select(GraphEdge)))) == 3
     finally:
         registry.dispose()
 

@@ -11,7 +11,7 @@ from typing import Any
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from sqlmodel import select
+from sqlalchemy import select
 
 from ivdossier.errors import ConflictError, InvalidInputError, IvdossierError
 from ivdossier.registry import comments, records
@@ -199,7 +199,7 @@ def test_no_label_can_steer_an_export_outside_its_folder(label_registry: Registr
         for label in dict.fromkeys(labels):
             if records.find(s, Study, label) is None:
                 records.create(s, Study(key=label, title="hostile"), actor="ana")
-        total = len(list(s.exec(select(Study))))
+        total = len(list(s.scalars(select(Study))))
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp)
         with label_registry.reading() as s:

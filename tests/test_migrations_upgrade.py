@@ -98,7 +98,7 @@ def test_restoring_an_old_backup_over_a_live_registry_replaces_it(tmp_path: Path
 def test_a_schema_0001_registry_gets_the_threat_kind_column_and_the_current_catalogue_on_open(
     tmp_path: Path,
 ) -> None:
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry.models import AuditEvent, Threat
     from ivdossier.threats_catalog import load_builtin
@@ -109,16 +109,18 @@ def test_a_schema_0001_registry_gets_the_threat_kind_column_and_the_current_cata
     registry = open_registry(str(copy))
     try:
         with registry.reading() as s:  # migration 0002 gives the old team entries the default kind
-            assert {t.code: t.threat_kind for t in s.exec(select(Threat))} == {
+            assert {t.code: t.threat_kind for t in s.scalars(select(Threat))} == {
                 "T-ROUTE": "condition",
                 "T-Case": "condition",
             }
         assert sync_on_open(registry) == len(load_builtin())
         with registry.reading() as s:
-            kinds = {t.code: t.threat_kind for t in s.exec(select(Threat)) if t.origin == "builtin"}
+            kinds = {t.code: t.threat_kind for t in s.scalars(select(Threat)) if t.origin == "builtin"}
             assert set(kinds) == set(load_builtin().codes())
             assert {k for c, k in kinds.items() if load_builtin().get(c).kind == "reading"} == {"reading"}
-            actors = {e.actor for e in s.exec(select(AuditEvent).where(AuditEvent.entity_kind == "threat"))}
+            actors = {
+                e.actor for e in s.scalars(select(AuditEvent).where(AuditEvent.entity_kind == "threat"))
+            }
             assert CATALOG_ACTOR in actors
             inst = records.get(s, Instrument, "fibre")
             assert [t.code for _, t in thr.links_of(s, inst)] == ["T-ROUTE"]  # team links are untouched
@@ -127,7 +129,7 @@ def test_a_schema_0001_registry_gets_the_threat_kind_column_and_the_current_cata
 
 
 def test_a_schema_0004_registry_gets_an_empty_variant_table_per_study_and_takes_one(tmp_path: Path) -> None:
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry.models import Study
     from ivdossier.registry.studies import set_variant_table
@@ -137,7 +139,7 @@ def test_a_schema_0004_registry_gets_an_empty_variant_table_per_study_and_takes_
     registry = open_registry(str(copy))
     try:
         with registry.reading() as s:  # migration 0005 adds the column, empty for every existing study
-            before = {st.key: (st.variant_table, st.reported, st.version) for st in s.exec(select(Study))}
+            before = {st.key: (st.variant_table, st.reported, st.version) for st in s.scalars(select(Study))}
         assert before == {"smith2020": (None, {"beta": 1.5}, 1), "lee2021": (None, None, 1)}
         table = {"source": "v.csv", "sha256": "0" * 64, "columns": ["variant"], "rows": [["rs1"]]}
         with registry.writing() as s:
@@ -151,7 +153,7 @@ def test_a_schema_0004_registry_gets_an_empty_variant_table_per_study_and_takes_
 def test_a_schema_0005_registry_gives_built_in_threats_the_identity_derived_from_their_code(
     tmp_path: Path,
 ) -> None:
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry.models import AuditEvent, Link, Threat
     from ivdossier.registry.threats import builtin_uuid
@@ -171,14 +173,14 @@ def test_a_schema_0005_registry_gives_built_in_threats_the_identity_derived_from
     registry = open_registry(str(copy))
     try:
         with registry.reading() as s:
-            threats = {t.code: t for t in s.exec(select(Threat))}
+            threats = {t.code: t for t in s.scalars(select(Threat))}
             for code, (_, events) in old.items():
                 new = threats[code].uuid
                 assert new == builtin_uuid(code)  # uuid5 of the code in the project's namespace
-                trail = s.exec(select(AuditEvent).where(AuditEvent.entity_uuid == new)).all()
+                trail = s.scalars(select(AuditEvent).where(AuditEvent.entity_uuid == new)).all()
                 assert len(trail) >= events  # the old trail follows (a catalogue refresh may add events)
             assert {code: threats[code].uuid for code in team} == team  # team entries keep theirs
-            links = s.exec(select(Link)).all()
+            links = s.scalars(select(Link)).all()
             assert links and all(s.get(Threat, link.threat_id) is not None for link in links)
     finally:
         registry.dispose()

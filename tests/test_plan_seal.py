@@ -11,8 +11,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from sqlalchemy import text
-from sqlmodel import select
+from sqlalchemy import select, text
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.registry import plans, records
@@ -107,7 +106,7 @@ def test_a_seal_event_whose_actor_or_time_disagrees_with_the_row_fails(
 
 def test_a_seal_event_whose_hash_disagrees_with_the_row_fails(reg: Registry) -> None:
     with reg.reading() as s:
-        event = s.exec(select(AuditEvent).where(AuditEvent.action == "sealed")).one()
+        event = s.scalars(select(AuditEvent).where(AuditEvent.action == "sealed")).one()
         after, sha = dict(event.after or {}), records.get(s, Plan, "fibre-plan").sha256
     _sql(reg, f"UPDATE audit_event SET after = :a WHERE {SEAL}", a=json.dumps({**after, "sha256": "f" * 64}))
     report = _verify(reg)
@@ -132,7 +131,7 @@ def test_an_imported_seal_event_never_counts_as_this_registrys_seal(reg: Registr
     _sql(reg, "UPDATE audit_event SET action = 'sealed' WHERE action = 'imported:sealed'")
     assert _verify(reg).intact
     with reg.reading() as s:
-        event = s.exec(select(AuditEvent).where(AuditEvent.action == "sealed")).one()
+        event = s.scalars(select(AuditEvent).where(AuditEvent.action == "sealed")).one()
         after = dict(event.after or {})
     _sql(reg, f"UPDATE audit_event SET after = :a WHERE {SEAL}", a=json.dumps({**after, "origin": "lab-b"}))
     assert not _verify(reg).intact

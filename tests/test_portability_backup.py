@@ -9,7 +9,7 @@ import threading
 from pathlib import Path
 
 import pytest
-from sqlmodel import func, select
+from sqlalchemy import func, select
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.registry import instruments as reg
@@ -33,7 +33,7 @@ def _programs(path: str) -> list[str]:
     registry = open_registry(path)
     try:
         with registry.reading() as s:
-            return list(s.exec(select(Program.slug).order_by(Program.slug)))
+            return list(s.scalars(select(Program.slug).order_by(Program.slug)))
     finally:
         registry.dispose()
 
@@ -123,5 +123,5 @@ def test_cli_backup_and_restore(cli, sqlite_path: str, tmp_path: Path) -> None: 
     assert _programs(str(fresh)) == ["p0", "p1", "p2"]
     registry = open_registry(str(fresh))
     with registry.reading() as s:
-        assert s.exec(select(func.count()).select_from(AuditEvent)).one() == 3
+        assert s.scalars(select(func.count()).select_from(AuditEvent)).one() == 3
     registry.dispose()

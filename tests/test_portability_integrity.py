@@ -258,7 +258,7 @@ def test_the_manifest_lists_every_file_with_its_sha256(registry: Registry, tmp_p
 
 def test_two_registries_that_each_loaded_the_catalogue_exchange_exports(tmp_path: Path) -> None:
     """Each registry loads the built-in catalogue under its own UUIDs; import matches built-ins by code."""
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry import threats as thr
     from ivdossier.registry.models import Link, Threat
@@ -273,14 +273,14 @@ def test_two_registries_that_each_loaded_the_catalogue_exchange_exports(tmp_path
         with a.writing() as s:
             reg.add_program(s, actor="ana", slug="tele", title="Telehealth")
             reg.add_instrument(s, actor="ana", program="tele", slug="fibre", name="Fibre wave")
-            code = s.exec(select(Threat.code).order_by(Threat.code)).first()
+            code = s.scalars(select(Threat.code).order_by(Threat.code)).first()
             thr.link_threat(s, actor="ana", instrument="fibre", code=code)
         _export(a, tmp_path / "from-a")
         with b.writing() as s:
             report = import_registry(s, read_export(tmp_path / "from-a"), actor="ben")
         assert report.conflicts == () and report.added == {"instrument": 1, "link": 1, "program": 1}
         with b.reading() as s:
-            link = s.exec(select(Link)).one()
+            link = s.scalars(select(Link)).one()
             threat = s.get(Threat, link.threat_id)
             assert threat is not None and threat.code == code and threat.origin == "builtin"
         _export(b, tmp_path / "from-b")

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 from export_tools import reseal
-from sqlmodel import func, select
+from sqlalchemy import func, select
 
 from ivdossier.errors import ConflictError, InvalidInputError
 from ivdossier.registry import comments, records, runs
@@ -118,7 +118,7 @@ def _tree(root: Path) -> dict[str, bytes]:
 
 def _count(registry: Registry, cls: type) -> int:
     with registry.reading() as s:
-        return int(s.exec(select(func.count()).select_from(cls)).one())
+        return int(s.scalars(select(func.count()).select_from(cls)).one())
 
 
 def _import(registry: Registry, folder: Path, **kw: object) -> object:
@@ -302,7 +302,7 @@ def test_changed_entities_are_conflicts_resolved_only_by_a_chosen_flag(tmp_path:
         with target.reading() as s:
             prog = records.get(s, Program, "tele")
             assert (prog.unit, prog.notes, prog.version) == ("patient", "line1\nline2", 3)
-            last = s.exec(select(AuditEvent).where(AuditEvent.action == "import")).one()
+            last = s.scalars(select(AuditEvent).where(AuditEvent.action == "import")).one()
             assert last.actor == "importer" and set(last.after or {}) == {"notes", "unit"}
     finally:
         source.dispose()

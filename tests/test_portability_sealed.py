@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 from export_tools import reseal
-from sqlmodel import func, select
+from sqlalchemy import func, select
 
 from ivdossier.errors import ConflictError
 from ivdossier.registry import instruments as reg
@@ -152,9 +152,9 @@ def test_an_injected_seal_event_is_kept_as_imported_history_never_as_a_seal(
         report = import_registry(s, read_export(folder), actor="ben", on_conflict="stop")
     assert report.audit_events_added == 1  # only the forged line is new; the rest is this registry's own
     with source.reading() as s:
-        seals = s.exec(select(AuditEvent).where(AuditEvent.action == "sealed")).all()
+        seals = s.scalars(select(AuditEvent).where(AuditEvent.action == "sealed")).all()
         assert [(e.actor, e.after) for e in seals] == [("ana", {"sha256": "a" * 64})]
-        kept = s.exec(select(AuditEvent).where(AuditEvent.action == "imported:sealed")).one()
+        kept = s.scalars(select(AuditEvent).where(AuditEvent.action == "imported:sealed")).one()
         assert kept.actor == "mallory"
 
 
@@ -164,7 +164,7 @@ def test_imported_history_is_not_duplicated_when_it_comes_back(source: Registry,
         with other.writing() as s:
             import_registry(s, read_export(_export(source, tmp_path / "a")), actor="ben")
         with other.reading() as s:
-            assert s.exec(select(func.count()).where(AuditEvent.action == "sealed")).one() == 0
+            assert s.scalars(select(func.count()).where(AuditEvent.action == "sealed")).one() == 0
         with source.writing() as s:  # the source's own events come back marked, and are recognised
             report = import_registry(s, read_export(_export(other, tmp_path / "b")), actor="ana")
         assert report.audit_events_added == 0

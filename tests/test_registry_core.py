@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
-from sqlmodel import select
+from sqlalchemy import select
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry import instruments as reg
@@ -41,8 +41,8 @@ def test_failed_write_leaves_no_partial_rows(db_url: str) -> None:
             _program(s, "first")
             reg.add_instrument(s, actor="ana", program="missing", slug="z1", name="Z one")
         with registry.reading() as s:
-            assert s.exec(select(Program)).all() == []
-            assert s.exec(select(AuditEvent)).all() == []
+            assert s.scalars(select(Program)).all() == []
+            assert s.scalars(select(AuditEvent)).all() == []
     finally:
         registry.dispose()
 
@@ -56,7 +56,7 @@ def test_every_write_is_audited_with_before_and_after(db_url: str) -> None:
         with registry.writing() as s:
             reg.move_instrument(s, actor="ben", instrument="fibre", to="vetting", reason="schedule obtained")
         with registry.reading() as s:
-            events = s.exec(select(AuditEvent).order_by(AuditEvent.id)).all()
+            events = s.scalars(select(AuditEvent).order_by(AuditEvent.id)).all()
             assert [(e.actor, e.action, e.entity_label) for e in events] == [
                 ("ana", "create", "tele"),
                 ("ana", "create", "fibre"),

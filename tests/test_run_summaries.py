@@ -75,7 +75,7 @@ def typed_warnings(run: Any) -> tuple[str, ...]:
 
 def _compare_every_run(db: str) -> set[str]:
     """Assert JSON-view and typed readings agree for every run of the registry; return the kinds seen."""
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry.db import open_registry
     from ivdossier.registry.models import Run
@@ -84,7 +84,7 @@ def _compare_every_run(db: str) -> set[str]:
     registry = open_registry(db)
     try:
         with registry.reading() as s:
-            runs = list(s.exec(select(Run)))
+            runs = list(s.scalars(select(Run)))
             listed = {r.slug: r for r in list_runs(s)}
             for run in runs:
                 assert result_summary(run) == typed_summary(run), run.slug
@@ -125,7 +125,7 @@ def test_every_demo_run_reads_the_same_from_its_json_view_as_from_its_typed_reco
 
 
 def test_local_to_zero_and_non_finite_estimates_read_the_same(demo: Path, tmp_path: Path) -> None:
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.estimation import load_table
     from ivdossier.estimation.sensitivity import local_to_zero
@@ -145,7 +145,7 @@ def test_local_to_zero_and_non_finite_estimates_read_the_same(demo: Path, tmp_pa
     registry = open_registry(str(db))
     try:
         with registry.writing() as s:
-            estimate = s.exec(select(Run).where(Run.slug == "fibre-wave-estimate-3")).one()
+            estimate = s.scalars(select(Run).where(Run.slug == "fibre-wave-estimate-3")).one()
             typed = typed_result(estimate)
             odd = dataclasses.replace(
                 typed, coef=typed.coef * math.nan, se=typed.se * math.inf, n_clusters=(12,), ref_df=11,

@@ -224,7 +224,7 @@ def test_a_schema_0002_registry_gets_the_primary_flag_unset_and_can_mark_a_run(t
 
 def test_the_registry_itself_refuses_a_second_primary_run_for_one_instrument(tmp_path: Path) -> None:
     """Two writers that each mark a different run leave at most one primary: the partial unique index."""
-    from sqlmodel import select, update
+    from sqlalchemy import select, update
 
     from ivdossier.errors import ConflictError
     from ivdossier.registry import instruments as reg
@@ -247,11 +247,11 @@ def test_the_registry_itself_refuses_a_second_primary_run_for_one_instrument(tmp
             pytest.raises(ConflictError, match=r"UNIQUE constraint failed: run\.instrument_id"),
             registry.writing() as s,
         ):
-            s.exec(bypass)  # type: ignore[call-overload]
+            s.execute(bypass)  # type: ignore[call-overload]
         with registry.writing() as s:  # through mark_primary the switch works (unmark first, then mark)
             mark_primary(s, actor="ana", run="zz-estimate-2")
         with registry.reading() as s:
-            assert [r.slug for r in s.exec(select(Run).where(Run.is_primary == True))] == ["zz-estimate-2"]  # noqa: E712
+            assert [r.slug for r in s.scalars(select(Run).where(Run.is_primary == True))] == ["zz-estimate-2"]  # noqa: E712
     finally:
         registry.dispose()
 

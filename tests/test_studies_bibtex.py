@@ -6,7 +6,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from sqlmodel import select
+from sqlalchemy import select
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry import studies
@@ -36,7 +36,7 @@ def _fields(reg: Registry) -> dict[str, tuple[object, ...]]:
                 st.doi,
                 (st.extra or {}).get("bibtex"),
             )
-            for st in s.exec(select(Study))
+            for st in s.scalars(select(Study))
         }
 
 
@@ -55,7 +55,7 @@ def test_import_decodes_accents_and_braces_and_keeps_missing_fields_empty(reg: R
     assert got["Garcia2024"][3] is None  # year "forthcoming" is not a number; the raw text is kept
     assert got["Garcia2024"][6]["year"] == "forthcoming"  # type: ignore[index]
     with reg.reading() as s:
-        cites = {st.key: studies.citation(st) for st in s.exec(select(Study))}
+        cites = {st.key: studies.citation(st) for st in s.scalars(select(Study))}
     assert cites == {
         "Nakamura2019": "Nakamura et al. (2019)",
         "Okafor2021": "Okafor and Lindqvist (2021)",
@@ -68,7 +68,7 @@ def test_bibtex_round_trip_is_faithful(reg: Registry, tmp_path: Path) -> None:
     with reg.writing() as s:
         studies.import_bibtex(s, actor="ana", text=(FIXTURES / "varied.bib").read_text("utf-8"))
     with reg.reading() as s:
-        exported = studies.export_bibtex(s.exec(select(Study)))
+        exported = studies.export_bibtex(s.scalars(select(Study)))
     assert "{Fibre Schedules and {ED} Visits: Evidence from {Northern} Districts}" in exported
     assert 'M{\\"u}ller' in exported  # raw LaTeX written back as it was read
     assert "note = {Braces {inside {nested}} survive}" in exported
@@ -78,7 +78,7 @@ def test_bibtex_round_trip_is_faithful(reg: Registry, tmp_path: Path) -> None:
             studies.import_bibtex(s, actor="ana", text=exported)
         assert _fields(second) == _fields(reg)
         with second.reading() as s:
-            assert studies.export_bibtex(s.exec(select(Study))) == exported
+            assert studies.export_bibtex(s.scalars(select(Study))) == exported
     finally:
         second.dispose()
 
@@ -94,7 +94,7 @@ def test_export_writes_edited_values_instead_of_the_stale_raw_text(reg: Registry
             s, actor="ana", key="Byhand2020", authors="Šimek, Petra", title="Hand {made}", year=2020
         )
     with reg.reading() as s:
-        text = studies.export_bibtex(s.exec(select(Study)))
+        text = studies.export_bibtex(s.scalars(select(Study)))
     assert "title = {A corrected title}" in text
     assert 'author = {Okafor, Chidi and Lindqvist, Bj{\\"o}rn}' in text
     assert (
@@ -174,7 +174,7 @@ def test_reported_statistics_attachments_and_critiques(reg: Registry) -> None:
             s, actor="ana", key="Nakamura2019", threat="DG-E01", by="Garcia2024", note="Roads too."
         )
     with reg.reading() as s:
-        nak = studies.study_dict(s, s.exec(select(Study).where(Study.key == "Nakamura2019")).one())
+        nak = studies.study_dict(s, s.scalars(select(Study).where(Study.key == "Nakamura2019")).one())
         in_scope = [st.key for st in studies.list_studies(s, instrument="fibre")]
         inputs = study_work.audit_inputs(s, family="distance-geography")
     assert nak["reported"] == {
@@ -240,7 +240,7 @@ def test_csv_of_many_studies_is_all_or_nothing_with_the_line(reg: Registry) -> N
     ):
         study_work.import_stats_csv(s, actor="ana", text=bad)
     with reg.reading() as s:
-        a = s.exec(select(Study).where(Study.key == "A2020")).one()
+        a = s.scalars(select(Study).where(Study.key == "A2020")).one()
     assert a.reported == {
         "estimate": 0.3,
         "std_error": 0.1,
@@ -274,7 +274,7 @@ def test_round_trip_on_each_backend(db_url: str) -> None:
         with registry.writing() as s:
             studies.import_bibtex(s, actor="ana", text=text)
         with registry.reading() as s:
-            exported = studies.export_bibtex(s.exec(select(Study)))
+            exported = studies.export_bibtex(s.scalars(select(Study)))
         assert [e.fields for e in studies.parse_bibtex(exported)] == [
             e.fields for e in sorted(studies.parse_bibtex(text), key=lambda e: e.key)
         ]

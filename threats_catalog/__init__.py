@@ -1,19 +1,25 @@
 """Threat catalogue and causal-graph checker: plain data and pure functions, no SQL and no CLI.
 
 The graph functions live in ``ivdossier.threats_catalog.graph`` and the drawing in ``.draw`` (imported on demand
-so that reading the catalogue does not load networkx).
+so that reading the catalogue does not load networkx). The names below load ``.catalog`` on first use, so a
+command that only compares catalogue versions (``.version``) does not parse or validate the catalogue.
 """
 
-from ivdossier.threats_catalog.catalog import (
-    CATALOGUE_VERSION,
-    Catalog,
-    FragmentNode,
-    GraphFragment,
-    Threat,
-    load_builtin,
-    merge,
-    suggest_for_family,
-)
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from ivdossier.threats_catalog.catalog import (
+        Catalog,
+        FragmentNode,
+        GraphFragment,
+        Threat,
+        load_builtin,
+        merge,
+        suggest_for_family,
+    )
+from ivdossier.threats_catalog.version import CATALOGUE_VERSION
 
 __all__ = [
     "CATALOGUE_VERSION",
@@ -25,3 +31,11 @@ __all__ = [
     "merge",
     "suggest_for_family",
 ]
+
+
+def __getattr__(name: str) -> Any:
+    if name in __all__:
+        from ivdossier.threats_catalog import catalog
+
+        return getattr(catalog, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

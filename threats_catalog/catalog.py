@@ -46,11 +46,8 @@ from typing import Any
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.threats_catalog.checks import CHECKS
+from ivdossier.threats_catalog.version import CATALOGUE_VERSION
 from ivdossier.vocabulary import CONDITIONS, READING_ASPECTS, THREAT_KINDS
-
-#: Version of the built-in catalogue; bump the minor part when entries are added, the major part when a code's
-#: meaning changes (which the scheme forbids for released codes).
-CATALOGUE_VERSION = "1.2.0"
 
 #: Every value the ``condition`` field may take: one of the four conditions, or a reading aspect.
 ATTACKS: tuple[str, ...] = CONDITIONS + READING_ASPECTS

@@ -9,11 +9,11 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlmodel import Session, case, func, select
+from sqlalchemy import case, func, select
+from sqlalchemy.orm import Session
 
 from ivdossier.registry.db import Registry
 from ivdossier.registry.models import Threat
-from ivdossier.registry.threats import THREAT_FIELDS, sync_catalog
 
 #: Who the audit trail names for catalogue refreshes and carry-overs made when a registry is opened: the tool,
 #: not the person whose command happened to open the registry first.
@@ -22,17 +22,19 @@ CATALOG_ACTOR = "ivdossier-catalogue"
 
 def catalog_is_current(session: Session) -> bool:
     """True when every built-in row carries the shipped catalogue version (and there is at least one)."""
-    from ivdossier.threats_catalog.catalog import CATALOGUE_VERSION
+    from ivdossier.threats_catalog.version import CATALOGUE_VERSION
 
     stale = case((Threat.catalog_version != CATALOGUE_VERSION, 1), else_=0)
     query = select(func.count(), func.coalesce(func.sum(stale), 0)).where(Threat.origin == "builtin")
-    total, outdated = session.exec(query).one()  # one query: this runs whenever a command opens the registry
+    # one query: this runs whenever a command opens the registry
+    total, outdated = session.execute(query).one()
     return bool(total) and not outdated
 
 
 def ensure_builtin(session: Session, *, actor: str) -> int:
     """Add, refresh or retire built-in entries when the registry's copy is older than the shipped catalogue."""
     from ivdossier.registry.db import serialize_writes
+    from ivdossier.registry.threats import sync_catalog
     from ivdossier.threats_catalog import load_builtin
     from ivdossier.threats_catalog.catalog import RETIRED
 
@@ -56,6 +58,7 @@ def sync_on_open(registry: Registry, *, actor: str = CATALOG_ACTOR) -> int:
 
 def catalog_entry(row: Threat) -> Any:
     """The registry's copy of a threat as a validated catalogue entry (with its graph fragment)."""
+    from ivdossier.registry.threats import THREAT_FIELDS
     from ivdossier.threats_catalog.catalog import Threat as CatalogThreat
 
     data = {f: getattr(row, f) for f in THREAT_FIELDS}
@@ -72,6 +75,6 @@ def registry_catalog(session: Session) -> Any:
 
     team = [
         catalog_entry(t)
-        for t in session.exec(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
+        for t in session.scalars(select(Threat).where(Threat.origin == "team").order_by(Threat.code))
     ]
     return merge(load_builtin(), team)

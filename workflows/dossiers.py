@@ -13,7 +13,8 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
-from sqlmodel import Session, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from ivdossier import __version__
 from ivdossier.registry import records
@@ -88,7 +89,7 @@ class RegistryReader:
         self._edges = dict(bulk.edges_by_program(self.session))
         uuids = [i.uuid for i in instruments] + [lk.uuid for pairs in self._links.values() for lk, _ in pairs]
         self._events = dict(bulk.events_by_entity(self.session, uuids))
-        self._studies = list(self.session.exec(select(Study).order_by(Study.key)))
+        self._studies = list(self.session.scalars(select(Study).order_by(Study.key)))
         self.preloaded = True
 
     def program(self, instrument: Instrument) -> Program:
@@ -107,7 +108,7 @@ class RegistryReader:
         key = link.id or 0
         if key not in self._ratings:
             self._ratings[key] = list(
-                self.session.exec(
+                self.session.execute(
                     select(Rating, Member)
                     .where(Rating.link_id == link.id, Rating.member_id == Member.id)
                     .order_by(Member.handle, Rating.id)  # type: ignore[arg-type]
@@ -151,7 +152,7 @@ class RegistryReader:
     def any_studies(self) -> bool:
         """Whether the registry records any study at all."""
         if self._studies is None:
-            self._studies = list(self.session.exec(select(Study).order_by(Study.key)))
+            self._studies = list(self.session.scalars(select(Study).order_by(Study.key)))
         return bool(self._studies)
 
     def has_studies(self, instrument: Instrument) -> bool:
@@ -577,7 +578,7 @@ def write_site(
     from ivdossier.reports.site import build_site
     from ivdossier.threats_catalog.draw import render_svg
 
-    programs = list(session.exec(select(Program).order_by(Program.slug)))
+    programs = list(session.scalars(select(Program).order_by(Program.slug)))
     infos = [program_info(p) for p in programs]
     instruments = bulk.instruments(session)
     reader = RegistryReader(session)
@@ -624,7 +625,7 @@ def _plan_pages(session: Session, reader: RegistryReader) -> list[Any]:
     from ivdossier.reports.site import PlanPage
 
     out = []
-    for plan in session.exec(select(Plan).order_by(Plan.slug)):
+    for plan in session.scalars(select(Plan).order_by(Plan.slug)):
         program = session.get(Program, plan.program_id)
         inst = session.get(Instrument, plan.instrument_id) if plan.instrument_id else None
         out.append(

@@ -5,7 +5,7 @@ from __future__ import annotations
 import difflib
 from typing import Any
 
-from sqlmodel import Session
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.threats_catalog.catalog import FAMILIES
@@ -31,7 +31,7 @@ def check_family(value: str, *, option: str = "--family", allow_generic: bool = 
 
 def family_rows(session: Session) -> list[dict[str, Any]]:
     """One row per family: its code prefix, how many catalogue entries name it, and how many instruments use it."""
-    from sqlmodel import select
+    from sqlalchemy import select
 
     from ivdossier.registry.models import Instrument
     from ivdossier.threats_catalog.catalog import FAMILY_PREFIXES
@@ -43,7 +43,7 @@ def family_rows(session: Session) -> list[dict[str, Any]]:
         for fam in threat.families:
             entries[fam] = entries.get(fam, 0) + 1
     used: dict[str, int] = {}
-    for fam in session.exec(select(Instrument.family)):
+    for fam in session.scalars(select(Instrument.family)):
         used[fam] = used.get(fam, 0) + 1
     generic = entries.get(GENERIC, 0)
     return [

@@ -13,7 +13,7 @@ import difflib
 from dataclasses import dataclass
 from typing import Any
 
-from sqlmodel import Session
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import ConflictError, InvalidInputError, NotFoundError
 from ivdossier.registry import records

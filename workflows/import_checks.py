@@ -10,7 +10,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
-from sqlmodel import Session
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import IvdossierError
 from ivdossier.registry import records

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlmodel import Session
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.registry import plans as store

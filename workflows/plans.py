@@ -11,7 +11,8 @@ from collections.abc import Mapping, Sequence
 from datetime import datetime
 from typing import Any
 
-from sqlmodel import Session, select
+from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from ivdossier.errors import InvalidInputError, NotFoundError
 from ivdossier.registry import plans as store
@@ -119,8 +120,12 @@ def draft_content(
                 "alpha": alpha,
             }
         )
-    covs = session.exec(select(Covariate).where(Covariate.program_id == program.id).order_by(Covariate.name))
-    edges = session.exec(select(GraphEdge).where(GraphEdge.program_id == program.id).order_by(GraphEdge.slug))
+    covs = session.scalars(
+        select(Covariate).where(Covariate.program_id == program.id).order_by(Covariate.name)
+    )
+    edges = session.scalars(
+        select(GraphEdge).where(GraphEdge.program_id == program.id).order_by(GraphEdge.slug)
+    )
     n_cols = max((len(_names(i.columns)) for i in instruments), default=1)
     return {
         "schema": PLAN_SCHEMA,
@@ -202,7 +207,7 @@ def draft_plan(
             )
         program = found
         chosen = list(
-            session.exec(
+            session.scalars(
                 select(Instrument)
                 .where(Instrument.program_id == program.id, Instrument.state.not_in(INACTIVE_STATES))  # type: ignore[attr-defined]
                 .order_by(Instrument.slug)

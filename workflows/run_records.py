@@ -8,7 +8,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
-from sqlmodel import Session
+from sqlalchemy.orm import Session
 
 from ivdossier.jsonsafe import RECORD_KEY, json_safe
 from ivdossier.registry import records

@@ -3,15 +3,14 @@
 from __future__ import annotations
 
 from alembic import context
-from sqlmodel import SQLModel
 
-from ivdossier.registry.models import postgresql_options  # registers the tables on SQLModel.metadata
+from ivdossier.registry.models import Base, postgresql_options
 
 postgresql_options()  # the metadata alembic compares carries every database's options
 
 config = context.config
 engine = config.attributes["engine"]
-target_metadata = SQLModel.metadata
+target_metadata = Base.metadata
 
 with engine.begin() as connection:
     context.configure(

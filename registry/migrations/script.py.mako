@@ -8,7 +8,7 @@ Create Date: ${create_date}
 from __future__ import annotations
 
 import sqlalchemy as sa
-from sqlmodel.sql.sqltypes import AutoString, UTCDateTime
+from ivdossier.registry.sqltypes import UTCDateTime
 from alembic import op
 ${imports if imports else ""}
 

@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import sqlalchemy as sa
 from alembic import op
-from sqlmodel.sql.sqltypes import AutoString
 
 revision = "0002"
 down_revision = "0001"
@@ -25,10 +24,10 @@ depends_on = None
 def upgrade() -> None:
     with op.batch_alter_table("threat", schema=None) as batch_op:
         batch_op.add_column(
-            sa.Column("threat_kind", AutoString(length=12), server_default="condition", nullable=False)
+            sa.Column("threat_kind", sa.String(length=12), server_default="condition", nullable=False)
         )
         batch_op.add_column(
-            sa.Column("retired_into", AutoString(length=32), server_default="", nullable=False)
+            sa.Column("retired_into", sa.String(length=32), server_default="", nullable=False)
         )
 
 
