@@ -1,7 +1,7 @@
 """Batch reads for documents that show many instruments at once (the static site): one query per table, grouped
 by the key the caller looks rows up by, instead of one query per instrument, link or run.
 
-The same SQLModel tables and ordering as the one-row readers (`runs_of`, `links_of`, `covariates_of`,
+The same tables and ordering as the one-row readers (`runs_of`, `links_of`, `covariates_of`,
 `edges_of`, `history`), so a document built from these groups is identical to one built row by row. ``ids=None``
 reads every row; a given id list is read in chunks that stay within every backend's limit on bound parameters.
 """
