@@ -24,6 +24,7 @@ instruments accurate to the precision the data carry.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -54,9 +55,13 @@ class NotComputable(EstimationError):
     """A statistic cannot be computed for this model; the message says why (caught section by section)."""
 
 
+@functools.lru_cache(maxsize=64)
 def pack_index(m: int) -> tuple[np.ndarray, np.ndarray]:
-    """Row and column indices of the upper triangle (a <= b) of an m x m matrix, in packing order."""
+    """Row and column indices of the upper triangle (a <= b) of an m x m matrix, in packing order (cached;
+    the arrays are read-only)."""
     ia, ib = np.triu_indices(m)
+    ia.flags.writeable = False
+    ib.flags.writeable = False
     return ia, ib
 
 
