@@ -54,7 +54,7 @@ from ivdossier.estimation.crossproducts import CHOLQR_MIN_DIAG, CrossProducts, M
 from ivdossier.estimation.data import ModelColumns
 
 Array = NDArray[np.float64]
-BLOCK_ROWS = 16384
+BLOCK_ROWS = 32768
 CENTRED_MIN = 1e-6
 SHIFT_MAX = 1e4
 FIRST_STEP_TOL = 1e-2
@@ -79,6 +79,29 @@ def _fill(buf: Array, cols: Sequence[Array], shift: Array, sw: Array | None, sta
             np.subtract(col[start:stop], shift[j], out=out[:, j + 1])
             out[:, j + 1] *= swb
     return out
+
+
+def _partialled_tests(r: Array | None, lengths: Array, pre: Array, k: int, p: int) -> str:
+    """The exact path's tests on the partialled columns [Z, X, y] (prepare(), then build()'s choice of basis):
+    ``r`` the triangular factor of the unit-length columns, ``lengths`` their lengths and ``pre`` the lengths
+    before partialling (after centring); with ``r`` None only the lengths are tested. Returns the reason to
+    take the exact path, or ""."""
+    if not lengths[-1] > OUTCOME_KEPT_MIN * pre[-1]:
+        return "the outcome has (nearly) no variation left after partialling"
+    if np.any(lengths[:-1] <= KEPT_MIN * pre[:-1]):
+        return "a treatment or instrument keeps (nearly) nothing after partialling"
+    if r is None:
+        return ""
+    xz = np.r_[np.arange(k, k + p), np.arange(0, k)].astype(np.int64)
+    unit_xz = (r.T @ r)[np.ix_(xz, xz)]
+    try:
+        if float(np.diag(np.linalg.cholesky(unit_xz)).min()) <= FULL_RANK_MIN_DIAG:
+            return "the treatments and instruments are nearly collinear after partialling"
+    except np.linalg.LinAlgError:
+        return "the treatments and instruments are collinear after partialling"
+    if float(np.abs(np.diag(r)).min()) <= CHOLQR_MIN_DIAG:
+        return "the partialled columns are nearly collinear (the exact path uses Householder QR)"
+    return ""
 
 
 def one_pass_cross_products(
@@ -134,13 +157,18 @@ def one_pass_cross_products(
     order = np.r_[np.arange(1 + p, 1 + p + k), np.arange(1, 1 + p), 0].astype(np.int64)
     s_o = schur[np.ix_(order, order)]
     len0 = np.sqrt(np.clip(np.diag(s_o), 0.0, None))
-    if not np.all(len0 > 0):
-        return None, "a column has no length left after partialling"
+    reason = _partialled_tests(None, len0, pre[order], k, p)
+    if reason:
+        return None, reason
     unit = s_o / np.outer(len0, len0)
     try:
         r1 = np.linalg.cholesky((unit + unit.T) / 2).T
     except np.linalg.LinAlgError:
         return None, "the partialled columns are collinear"
+    # the same tests on the estimates from pass 1 first (their failure is never worth a second pass)
+    reason = _partialled_tests(r1, len0, pre[order], k, p)
+    if reason:
+        return None, reason
     first_factor = r1 * len0[None, :]
     m = n_t
     # M maps the rows of B to the partialled columns: C = B M
@@ -176,21 +204,9 @@ def one_pass_cross_products(
     full = r2 @ first_factor
     scale = np.sqrt(np.einsum("ij,ij->j", full, full))
     r = full / scale[None, :]
-    # the exact path's tests on the partialled columns (prepare(), then build()'s choice of basis)
-    pre_o = pre[order]
-    if not scale[-1] > OUTCOME_KEPT_MIN * pre_o[-1]:
-        return None, "the outcome has (nearly) no variation left after partialling"
-    if np.any(scale[:-1] <= KEPT_MIN * pre_o[:-1]):
-        return None, "a treatment or instrument keeps (nearly) nothing after partialling"
-    xz = np.r_[np.arange(k, k + p), np.arange(0, k)]
-    unit_xz = (r.T @ r)[np.ix_(xz, xz)]
-    try:
-        if float(np.diag(np.linalg.cholesky(unit_xz)).min()) <= FULL_RANK_MIN_DIAG:
-            return None, "the treatments and instruments are nearly collinear after partialling"
-    except np.linalg.LinAlgError:
-        return None, "the treatments and instruments are collinear after partialling"
-    if float(np.abs(np.diag(r)).min()) <= CHOLQR_MIN_DIAG:
-        return None, "the partialled columns are nearly collinear (the exact path uses Householder QR)"
+    reason = _partialled_tests(r, scale, pre[order], k, p)
+    if reason:
+        return None, reason
     moments: tuple[Array, ...] = ()
     if need_moments:
         r2inv = scipy.linalg.solve_triangular(r2, np.eye(m), check_finite=False)
