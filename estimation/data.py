@@ -162,10 +162,20 @@ def _numeric(data: pd.DataFrame, name: str, role: str) -> Array:
     return col.to_numpy(dtype=np.float64, na_value=np.nan)
 
 
-def _codes(values: pd.Series) -> tuple[np.ndarray, int]:
-    """Codes 0..G-1 of a grouping column (first appearance order) and G, from one factorisation."""
+def _codes(values: pd.Series, *, any_order: bool = False) -> tuple[np.ndarray, int]:
+    """Codes 0..G-1 of a grouping column (first appearance order) and G, from one factorisation.
+
+    ``any_order=True`` allows codes in another order: an int64 column whose values are already 0..G-1, every
+    one present, is then used as it is (no copy; the common layout of cluster identifiers)."""
     import pandas as pd
 
+    if any_order and values.dtype == np.int64 and len(values):
+        v = values.to_numpy()
+        lo, hi = int(v.min()), int(v.max())
+        if lo == 0 and hi < v.shape[0] and bool(np.all(np.bincount(v) > 0)):
+            view = v.view()
+            view.flags.writeable = False  # the caller's data: never written through this view
+            return view, hi + 1
     codes, uniques = pd.factorize(values, sort=False)
     return codes.astype(np.int64, copy=False), len(uniques)
 
@@ -215,8 +225,9 @@ def read_columns(
 
     ``check_finite=False`` skips the per-column scan for missing and infinite values (and so drops no row
     for them) and the checks whose outcome depends on the rows dropped (positive weights, constant
-    instruments, clusters with a single level): the caller must detect those cases itself and then call :func:`prepare`; see
-    :class:`ModelColumns`.
+    instruments, clusters with a single level): the caller must detect those cases itself and then call
+    :func:`prepare`; see :class:`ModelColumns`. The cluster codes may then be in another order than the
+    first-appearance order :func:`prepare` gives (an int64 column already coded 0..G-1 is used as it is).
     """
     import pandas as pd
 
@@ -289,7 +300,9 @@ def read_columns(
                 f"{row!r}; weights must be positive, drop those rows first."
             )
     fe_codes = [_codes(data[name] if all_rows else data[name][keep])[0] for name in fe]
-    cl_read = [_codes(data[name] if all_rows else data[name][keep]) for name in clus]
+    cl_read = [
+        _codes(data[name] if all_rows else data[name][keep], any_order=not check_finite) for name in clus
+    ]
     for name, (_, levels) in zip(clus, cl_read, strict=True):
         if check_finite and levels < 2:
             raise InvalidInputError(

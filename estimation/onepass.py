@@ -54,7 +54,7 @@ from ivdossier.estimation.crossproducts import CHOLQR_MIN_DIAG, CrossProducts, M
 from ivdossier.estimation.data import ModelColumns
 
 Array = NDArray[np.float64]
-BLOCK_ROWS = 32768
+BLOCK_ROWS = 8192
 CENTRED_MIN = 1e-6
 SHIFT_MAX = 1e4
 FIRST_STEP_TOL = 1e-2
