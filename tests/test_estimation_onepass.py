@@ -248,3 +248,26 @@ def test_a_zero_first_stage_on_the_fast_path_is_not_identified() -> None:
     res = estimate(df, **kw)
     assert res.identification is not None and "'z'" in res.identification
     assert math.isnan(res.coef_of("x"))
+
+
+def test_cluster_ids_already_coded_are_used_as_they_are_and_define_the_same_clusters() -> None:
+    """Exact identity: the codes define the same partition of the rows as pandas.factorize's."""
+    from ivdossier.estimation.data import _codes
+
+    rng = np.random.default_rng(5)
+    ids = pd.Series(np.r_[np.arange(50), rng.integers(0, 50, 950)].astype(np.int64))
+    codes, g = _codes(ids, any_order=True)
+    ref, uniques = pd.factorize(ids)
+    assert g == len(uniques) == 50 and np.shares_memory(codes, ids.to_numpy())
+    assert len(set(zip(codes.tolist(), ref.tolist(), strict=True))) == 50  # one-to-one
+    gappy = ids.where(ids != 7, 49)  # level 7 absent: factorised as before
+    codes2, g2 = _codes(gappy, any_order=True)
+    assert g2 == 49 and np.array_equal(codes2, pd.factorize(gappy)[0])
+
+
+def test_string_cluster_ids_give_the_same_result_as_integer_ids() -> None:
+    df = _design(14)
+    kw = _kwargs("clustered")
+    as_text = df.assign(g="site-" + df.g.astype(str))
+    _assert_agree(estimate(as_text, **kw), estimate(df, **kw), AGREE)
+    _assert_agree(estimate(as_text, **kw), _exact(as_text, kw), AGREE)
