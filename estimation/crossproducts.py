@@ -101,11 +101,6 @@ def packed_map(basis: np.ndarray) -> Array:
     return lin
 
 
-def _group_add(target: Array, codes: np.ndarray, values: Array) -> None:
-    for j in range(values.shape[1]):
-        target[:, j] += np.bincount(codes, weights=values[:, j], minlength=target.shape[0])
-
-
 @dataclass(eq=False)
 class MomentAccumulator:
     """Running sums for :class:`CrossProducts`, fed chunk by chunk; ``n_dims`` = 0 for the robust covariance.
@@ -141,17 +136,25 @@ class MomentAccumulator:
             raise InvalidInputError(f"Expected {self.n_dims} cluster code array(s), got {len(codes)}.")
         self.n += b.shape[0]
         self.gram += b.T @ b
-        prods = packed_products(b)
         if self.n_dims == 0:
+            prods = packed_products(b)
             self.row_moments += prods.T @ prods
             return
+        u = self.m * (self.m + 1) // 2
         for d, c in enumerate(codes):
             top = int(c.max()) + 1 if c.size else 0
             if top > self.group_sums[d].shape[0]:
-                grown = np.zeros((top, prods.shape[1]))
+                grown = np.zeros((top, u))
                 grown[: self.group_sums[d].shape[0]] = self.group_sums[d]
                 self.group_sums[d] = grown
-            _group_add(self.group_sums[d], c, prods)
+        # one product column at a time into one scratch vector, summed by group in every dimension (the
+        # products matrix is never formed)
+        scratch = np.empty(b.shape[0])
+        for j, (ia, ib) in enumerate(zip(*pack_index(self.m), strict=True)):
+            np.multiply(b[:, ia], b[:, ib], out=scratch)
+            for d, c in enumerate(codes):
+                target = self.group_sums[d]
+                target[:, j] += np.bincount(c, weights=scratch, minlength=target.shape[0])
 
     def merge(self, other: MomentAccumulator) -> MomentAccumulator:
         """A new accumulator holding the sums of both (clusters aligned by their global codes)."""
