@@ -18,7 +18,7 @@ from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.absorb import partial_out
 from ivdossier.estimation.covariance import CovKind, CovSpec, cov_name, sandwich
 from ivdossier.estimation.crossproducts import CrossProducts, build
-from ivdossier.estimation.data import PreparedData, prepare
+from ivdossier.estimation.data import PreparedData, prepare, read_columns
 from ivdossier.estimation.diagnostics import DiagnosticSuite, unidentified_reason
 from ivdossier.estimation.estimators import (
     KClassFit,
@@ -141,21 +141,23 @@ def estimate_spec(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool 
 def _estimate(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool) -> EstimationResult:
     import pandas as pd
 
-    prepared = prepare_spec(data, spec)
-    method, vcov, small_sample, alpha, fuller_alpha = (
-        spec.method,
-        spec.vcov,
-        spec.small_sample,
-        spec.alpha,
-        spec.fuller_alpha,
-    )
-    outcome, inst, clus, weights = prepared.outcome, prepared.instruments, prepared.cluster, prepared.weights
-    result = estimate_prepared(
-        prepared, method=method, vcov=vcov, small_sample=small_sample, alpha=alpha, fuller_alpha=fuller_alpha
-    )
+    result = _estimate_one_pass(data, spec)
+    if result is None:
+        prepared = prepare_spec(data, spec)
+        result = estimate_prepared(
+            prepared,
+            method=spec.method,
+            vcov=spec.vcov,
+            small_sample=spec.small_sample,
+            alpha=spec.alpha,
+            fuller_alpha=spec.fuller_alpha,
+        )
     if not report_controls or result.identification is not None:
         return result
-    used = [outcome, *prepared.treatment, *inst, *prepared.controls, *prepared.absorb, *clus]
+    assert spec.outcome is not None  # checked by both paths above
+    method, vcov, small_sample = spec.method, cov_name(spec.vcov), spec.small_sample
+    outcome, inst, clus, weights = spec.outcome, list(spec.instruments), list(spec.cluster), spec.weights
+    used = [outcome, *spec.treatment, *inst, *spec.controls, *spec.absorb, *clus]
     used += [weights] if weights else []
     rows = data[list(dict.fromkeys(used))].notna().all(axis=1).to_numpy()
     frame = data[rows]
@@ -167,22 +169,73 @@ def _estimate(data: pd.DataFrame, spec: ModelSpec, *, report_controls: bool) -> 
 
     from ivdossier.estimation.controls import controls_fit
 
+    clusters = tuple(pd.factorize(frame[c])[0].astype(np.int64) for c in clus)
     table = controls_fit(
         frame[outcome].to_numpy(dtype=np.float64),
-        cols(prepared.treatment),
+        cols(spec.treatment),
         cols(inst) if inst else None,
-        cols(prepared.controls),
-        treatment_names=prepared.treatment,
-        control_names=prepared.controls,
+        cols(spec.controls),
+        treatment_names=spec.treatment,
+        control_names=spec.controls,
         method=method,
         beta=result.coef,
-        spec=CovSpec(cast(CovKind, vcov), prepared.clusters if vcov == "clustered" else (), small_sample),
-        fe_codes=[pd.factorize(frame[c])[0].astype(np.int64) for c in prepared.absorb],
+        spec=CovSpec(cast(CovKind, vcov), clusters if vcov == "clustered" else (), small_sample),
+        fe_codes=[pd.factorize(frame[c])[0].astype(np.int64) for c in spec.absorb],
         weights=frame[weights].to_numpy(dtype=np.float64) if weights else None,
-        n_absorbed=prepared.n_absorbed,
-        n_absorbed_nested=prepared.n_partialled_nested,
+        n_absorbed=result.n_absorbed,
+        n_absorbed_nested=result.n_absorbed_nested,
     )
     return dataclasses.replace(result, controls_table=table)
+
+
+def _estimate_one_pass(data: pd.DataFrame, spec: ModelSpec) -> EstimationResult | None:
+    """The result by the two-pass route of :mod:`ivdossier.estimation.onepass`, or None when its rule sends the
+    model to the exact path (prepare, then build)."""
+    from ivdossier.estimation.onepass import one_pass_cross_products
+
+    if spec.absorb or spec.outcome is None:
+        return None
+    vcov = cov_name(spec.vcov)
+    check_options(spec.method, vcov, spec.cluster, spec.alpha, spec.fuller_alpha)
+    cols = read_columns(
+        data,
+        outcome=spec.outcome,
+        treatment=spec.treatment,
+        instruments=spec.instruments,
+        controls=spec.controls,
+        cluster=spec.cluster,
+        weights=spec.weights,
+        require_instruments=spec.method != "ols",
+        check_finite=False,
+    )
+    cp, _ = one_pass_cross_products(
+        cols, kind=vcov, small_sample=spec.small_sample, instruments=spec.method != "ols"
+    )
+    if cp is None:
+        return None
+    counts = SampleCounts(
+        n=cols.n,
+        n_dropped=cols.n_dropped,
+        n_partialled=cp.n_partialled,
+        n_partialled_nested=0,
+        n_absorbed=0,
+        fe_levels=(),
+        n_clusters=cols.cl_levels if vcov == "clustered" else (),
+    )
+    model = ModelSpec.build(
+        outcome=spec.outcome,
+        treatment=spec.treatment,
+        instruments=spec.instruments if spec.method != "ols" else (),
+        controls=spec.controls,
+        cluster=spec.cluster or None,
+        weights=spec.weights,
+        method=spec.method,
+        vcov=vcov,
+        small_sample=spec.small_sample,
+        alpha=spec.alpha,
+        fuller_alpha=spec.fuller_alpha,
+    )
+    return result_from_cross_products(cp, counts, model)
 
 
 def interval_quantile(

@@ -24,6 +24,7 @@ instruments accurate to the precision the data carry.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -53,9 +54,13 @@ class NotComputable(EstimationError):
     """A statistic cannot be computed for this model; the message says why (caught section by section)."""
 
 
+@functools.lru_cache(maxsize=64)
 def pack_index(m: int) -> tuple[np.ndarray, np.ndarray]:
-    """Row and column indices of the upper triangle (a <= b) of an m x m matrix, in packing order."""
+    """Row and column indices of the upper triangle (a <= b) of an m x m matrix, in packing order (cached;
+    the arrays are read-only)."""
     ia, ib = np.triu_indices(m)
+    ia.flags.writeable = False
+    ib.flags.writeable = False
     return ia, ib
 
 
@@ -95,11 +100,6 @@ def packed_map(basis: np.ndarray) -> Array:
     return lin
 
 
-def _group_add(target: Array, codes: np.ndarray, values: Array) -> None:
-    for j in range(values.shape[1]):
-        target[:, j] += np.bincount(codes, weights=values[:, j], minlength=target.shape[0])
-
-
 @dataclass(eq=False)
 class MomentAccumulator:
     """Running sums for :class:`CrossProducts`, fed chunk by chunk; ``n_dims`` = 0 for the robust covariance.
@@ -135,17 +135,25 @@ class MomentAccumulator:
             raise InvalidInputError(f"Expected {self.n_dims} cluster code array(s), got {len(codes)}.")
         self.n += b.shape[0]
         self.gram += b.T @ b
-        prods = packed_products(b)
         if self.n_dims == 0:
+            prods = packed_products(b)
             self.row_moments += prods.T @ prods
             return
+        u = self.m * (self.m + 1) // 2
         for d, c in enumerate(codes):
             top = int(c.max()) + 1 if c.size else 0
             if top > self.group_sums[d].shape[0]:
-                grown = np.zeros((top, prods.shape[1]))
+                grown = np.zeros((top, u))
                 grown[: self.group_sums[d].shape[0]] = self.group_sums[d]
                 self.group_sums[d] = grown
-            _group_add(self.group_sums[d], c, prods)
+        # one product column at a time into one scratch vector, summed by group in every dimension (the
+        # products matrix is never formed)
+        scratch = np.empty(b.shape[0])
+        for j, (ia, ib) in enumerate(zip(*pack_index(self.m), strict=True)):
+            np.multiply(b[:, ia], b[:, ib], out=scratch)
+            for d, c in enumerate(codes):
+                target = self.group_sums[d]
+                target[:, j] += np.bincount(c, weights=scratch, minlength=target.shape[0])
 
     def merge(self, other: MomentAccumulator) -> MomentAccumulator:
         """A new accumulator holding the sums of both (clusters aligned by their global codes)."""

@@ -162,14 +162,53 @@ def _numeric(data: pd.DataFrame, name: str, role: str) -> Array:
     return col.to_numpy(dtype=np.float64, na_value=np.nan)
 
 
-def _codes(values: pd.Series) -> np.ndarray:
+def _codes(values: pd.Series, *, any_order: bool = False) -> tuple[np.ndarray, int]:
+    """Codes 0..G-1 of a grouping column (first appearance order) and G, from one factorisation.
+
+    ``any_order=True`` allows codes in another order: an int64 column whose values are already 0..G-1, every
+    one present, is then used as it is (no copy; the common layout of cluster identifiers)."""
     import pandas as pd
 
-    codes, _ = pd.factorize(values, sort=False)
-    return codes.astype(np.int64)
+    if any_order and values.dtype == np.int64 and len(values):
+        v = values.to_numpy()
+        lo, hi = int(v.min()), int(v.max())
+        if lo == 0 and hi < v.shape[0] and bool(np.all(np.bincount(v) > 0)):
+            view = v.view()
+            view.flags.writeable = False  # the caller's data: never written through this view
+            return view, hi + 1
+    codes, uniques = pd.factorize(values, sort=False)
+    return codes.astype(np.int64, copy=False), len(uniques)
 
 
-def prepare(
+@dataclass(frozen=True, eq=False)
+class ModelColumns:
+    """The validated columns of one model before partialling: ``targets`` = [y, X..., Z...] and ``controls``
+    (float64 1-D arrays over the rows kept; views of the data where pandas allows), ``weights``, the codes of
+    the absorbed factors and cluster variables (0..G-1) with the number of levels of each cluster variable.
+
+    ``finite_checked`` is False when :func:`read_columns` was asked to skip the scan for missing and infinite
+    values: then the caller must find them itself (a non-finite cross-product) and fall back to :func:`prepare`.
+    """
+
+    outcome: str
+    treatment: tuple[str, ...]
+    instruments: tuple[str, ...]
+    controls: tuple[str, ...]
+    absorb: tuple[str, ...]
+    cluster: tuple[str, ...]
+    weights_name: str | None
+    targets: list[Array]
+    control_cols: list[Array]
+    weights: Array | None
+    fe_codes: list[np.ndarray]
+    cl_codes: list[np.ndarray]
+    cl_levels: tuple[int, ...]
+    n: int
+    n_dropped: int
+    finite_checked: bool
+
+
+def read_columns(
     data: pd.DataFrame,
     *,
     outcome: str,
@@ -180,13 +219,15 @@ def prepare(
     cluster: str | Sequence[str] | None = None,
     weights: str | None = None,
     require_instruments: bool = True,
-    tol: float = DEFAULT_TOL,
-    max_iter: int = DEFAULT_MAX_ITER,
-) -> PreparedData:
-    """Validate the specification against ``data``, drop incomplete rows and partial out controls and effects.
+    check_finite: bool = True,
+) -> ModelColumns:
+    """Validate the specification against ``data`` and read its columns, deleting incomplete rows listwise.
 
-    ``require_instruments`` is False for OLS (no excluded instruments). Rows with a missing value in any used
-    column are dropped and counted; an infinite value is an error naming the column and row label.
+    ``check_finite=False`` skips the per-column scan for missing and infinite values (and so drops no row
+    for them) and the checks whose outcome depends on the rows dropped (positive weights, constant
+    instruments, clusters with a single level): the caller must detect those cases itself and then call
+    :func:`prepare`; see :class:`ModelColumns`. The cluster codes may then be in another order than the
+    first-appearance order :func:`prepare` gives (an int64 column already coded 0..G-1 is used as it is).
     """
     import pandas as pd
 
@@ -231,7 +272,7 @@ def prepare(
     n_all = len(data)
     keep = np.ones(n_all, dtype=bool)
     for (name, _), col in zip(numeric_names, cols, strict=True):
-        if np.isfinite(col).all():  # the common case: one pass, nothing to drop
+        if not check_finite or np.isfinite(col).all():  # the common case: one pass, nothing to drop
             continue
         inf = np.isinf(col)
         if inf.any():
@@ -252,37 +293,99 @@ def prepare(
     if wname:
         w = cols.pop()
         bad = w <= 0
-        if bad.any():
+        if check_finite and bad.any():
             row = data.index[np.flatnonzero(keep)[int(np.argmax(bad))]]
             raise InvalidInputError(
                 f"Weights column {wname!r} holds {int(bad.sum())} zero or negative value(s), e.g. at row "
                 f"{row!r}; weights must be positive, drop those rows first."
             )
-    fe_codes = [_codes(data[name] if all_rows else data[name][keep]) for name in fe]
-    cl_codes = [_codes(data[name] if all_rows else data[name][keep]) for name in clus]
-    for name, codes in zip(clus, cl_codes, strict=True):
-        if int(codes.max()) < 1:
+    fe_codes = [_codes(data[name] if all_rows else data[name][keep])[0] for name in fe]
+    cl_read = [
+        _codes(data[name] if all_rows else data[name][keep], any_order=not check_finite) for name in clus
+    ]
+    for name, (_, levels) in zip(clus, cl_read, strict=True):
+        if check_finite and levels < 2:
             raise InvalidInputError(
                 f"Cluster variable {name!r} has a single level in the used rows; cluster on a variable with "
                 "at least two levels or use vcov='heteroskedastic'."
             )
     k, n_inst = len(treat), len(inst)
     for name, col in zip(inst, cols[1 + k : 1 + k + n_inst], strict=True):
-        if np.ptp(col) == 0:
+        if check_finite and np.ptp(col) == 0:
             raise EstimationError(f"Instrument {name!r} is constant in the used rows; drop it.")
-    targets = cols[: 1 + k + n_inst]
-    controls_cols = cols[1 + k + n_inst :]
-    del cols
-    absorbed = partial_out(
-        targets,
-        controls=controls_cols or None,
-        fe_codes=fe_codes,
+    return ModelColumns(
+        outcome=outcome,
+        treatment=treat,
+        instruments=inst,
+        controls=ctrl,
+        absorb=fe,
+        cluster=clus,
+        weights_name=wname,
+        targets=cols[: 1 + k + n_inst],
+        control_cols=cols[1 + k + n_inst :],
         weights=w,
-        cluster_codes=cl_codes,
+        fe_codes=fe_codes,
+        cl_codes=[c for c, _ in cl_read],
+        cl_levels=tuple(g for _, g in cl_read),
+        n=n,
+        n_dropped=n_dropped,
+        finite_checked=check_finite,
+    )
+
+
+def prepare(
+    data: pd.DataFrame,
+    *,
+    outcome: str,
+    treatment: str | Sequence[str],
+    instruments: str | Sequence[str] = (),
+    controls: str | Sequence[str] = (),
+    absorb: str | Sequence[str] = (),
+    cluster: str | Sequence[str] | None = None,
+    weights: str | None = None,
+    require_instruments: bool = True,
+    tol: float = DEFAULT_TOL,
+    max_iter: int = DEFAULT_MAX_ITER,
+) -> PreparedData:
+    """Validate the specification against ``data``, drop incomplete rows and partial out controls and effects.
+
+    ``require_instruments`` is False for OLS (no excluded instruments). Rows with a missing value in any used
+    column are dropped and counted; an infinite value is an error naming the column and row label.
+    """
+    cols = read_columns(
+        data,
+        outcome=outcome,
+        treatment=treatment,
+        instruments=instruments,
+        controls=controls,
+        absorb=absorb,
+        cluster=cluster,
+        weights=weights,
+        require_instruments=require_instruments,
+    )
+    return partial_columns(cols, tol=tol, max_iter=max_iter)
+
+
+def partial_columns(
+    cols: ModelColumns, *, tol: float = DEFAULT_TOL, max_iter: int = DEFAULT_MAX_ITER
+) -> PreparedData:
+    """Partial the controls and fixed effects out of checked columns and check what is left for constant or
+    collinear columns (the second half of :func:`prepare`)."""
+    if not cols.finite_checked:
+        raise InvalidInputError(
+            "These columns were read without the scan for missing values; read them again."
+        )
+    treat, inst, ctrl = cols.treatment, cols.instruments, cols.controls
+    k = len(treat)
+    absorbed = partial_out(
+        cols.targets,
+        controls=cols.control_cols or None,
+        fe_codes=cols.fe_codes,
+        weights=cols.weights,
+        cluster_codes=cols.cl_codes,
         tol=tol,
         max_iter=max_iter,
     )
-    del targets, controls_cols
     if absorbed.dropped_controls:
         listed = ", ".join(repr(ctrl[j]) for j in absorbed.dropped_controls)
         raise EstimationError(
@@ -297,7 +400,7 @@ def prepare(
     z = cols_out[:, 1 + k :]
     if np.sqrt(y @ y) <= 1e-9 * max(scale[0], 1e-300):
         raise EstimationError(
-            f"The outcome {outcome!r} has no variation left after partialling out the controls and fixed "
+            f"The outcome {cols.outcome!r} has no variation left after partialling out the controls and fixed "
             "effects; check the specification."
         )
     if not _clearly_full_rank(cols_out[:, 1:], scale[1:]):
@@ -306,16 +409,16 @@ def prepare(
         y=y,
         X=x,
         Z=z,
-        outcome=outcome,
+        outcome=cols.outcome,
         treatment=treat,
         instruments=inst,
         controls=ctrl,
-        absorb=fe,
-        cluster=clus,
-        weights=wname,
-        n=n,
-        n_dropped=n_dropped,
-        clusters=tuple(cl_codes),
+        absorb=cols.absorb,
+        cluster=cols.cluster,
+        weights=cols.weights_name,
+        n=cols.n,
+        n_dropped=cols.n_dropped,
+        clusters=tuple(cols.cl_codes),
         n_partialled=absorbed.n_partialled,
         n_partialled_nested=absorbed.n_absorbed_nested,
         n_absorbed=absorbed.n_absorbed,
