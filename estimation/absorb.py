@@ -287,7 +287,7 @@ def _project_out(t: Array, cc: Array, norms: Array) -> tuple[Array, list[int]]:
     return proj.residual(t), [i for i in range(cc.shape[1]) if not keep[i]]
 
 
-def _gram_coefficients(gcc: Array, gct: Array, norms: Array) -> Array | None:
+def gram_coefficients(gcc: Array, gct: Array, norms: Array) -> Array | None:
     """Least-squares coefficients from the normal equations when the unit-scaled Gram matrix of the controls is
     well conditioned (Cholesky diagonal above GRAM_MIN_DIAG); None sends the caller to the exact QR path."""
     import scipy.linalg
@@ -360,7 +360,7 @@ def partial_out(
         if alive:
             idx = np.asarray(alive)
             sub = cc if len(alive) == k_c else cc[:, alive]
-            coef = _gram_coefficients(gram[p:, p:][np.ix_(idx, idx)], gram[p:, :p][idx], after_fe[idx])
+            coef = gram_coefficients(gram[p:, p:][np.ix_(idx, idx)], gram[p:, :p][idx], after_fe[idx])
             if coef is not None:
                 t = tall_matmul(sub, coef, subtract_from=t)
             else:

@@ -55,7 +55,7 @@ import numpy as np
 import scipy.linalg
 from numpy.typing import NDArray
 
-from ivdossier.estimation.absorb import _gram_coefficients
+from ivdossier.estimation.absorb import gram_coefficients
 from ivdossier.estimation.covariance import intersection_codes
 from ivdossier.estimation.crossproducts import CHOLQR_MIN_DIAG, CrossProducts, MomentAccumulator
 from ivdossier.estimation.data import ModelColumns
@@ -154,7 +154,7 @@ def one_pass_cross_products(
             return None, f"column {name!r} drifts far from its first rows' mean"
     it, ic = slice(0, n_t), slice(n_t, n_t + n_c)
     if n_c:
-        coef = _gram_coefficients(centred[ic, ic], centred[ic, it], pre[ic])
+        coef = gram_coefficients(centred[ic, ic], centred[ic, it], pre[ic])
         if coef is None:
             return None, "the controls are nearly collinear (the exact path uses Householder QR)"
     else:
