@@ -59,7 +59,15 @@ _TAGS = {
 
 def esc(text: object) -> str:
     """Escape text for SVG element content or a double-quoted attribute (drops XML-illegal control codes)."""
-    s = _CTRL.sub("\N{REPLACEMENT CHARACTER}", str(text))
+    if type(text) is str:
+        return _esc_str(text)
+    return _esc_str.__wrapped__(str(text))
+
+
+@lru_cache(maxsize=16384)
+def _esc_str(text: str) -> str:
+    """`esc` of a string, remembered (a diagram repeats its names, codes and numbers many times)."""
+    s = _CTRL.sub("\N{REPLACEMENT CHARACTER}", text)
     return (
         s.replace("&", "&amp;")
         .replace("<", "&lt;")
@@ -120,10 +128,15 @@ def _text_width(text: str, size: float) -> float:
 
 
 def _wrap(label: str, width: int = 20) -> list[str]:
+    return list(_wrap_cached(label, width))
+
+
+@lru_cache(maxsize=4096)
+def _wrap_cached(label: str, width: int) -> tuple[str, ...]:
     lines = textwrap.wrap(label, width=width, break_long_words=True) or [""]
     if len(lines) > 3:
         lines = [*lines[:2], lines[2][: width - 1] + "…"]
-    return lines
+    return tuple(lines)
 
 
 def _layers(G: nx.DiGraph) -> dict[str, int]:
@@ -388,7 +401,36 @@ class PointIndex:
         return len([y for y in self.ys[lo:hi] if top <= y <= bottom])
 
 
+_PLACED: dict[tuple[Any, ...], list[tuple[str, Rect, tuple[float, float] | None]]] = {}
+_PLACED_MAX = 4096
+
+
 def _place_tags(
+    tags: Sequence[tuple[str, list[tuple[float, float]], int]],
+    obstacles: Sequence[Rect],
+    curves: Sequence[list[tuple[float, float]]],
+) -> list[tuple[str, Rect, tuple[float, float] | None]]:
+    """`_place_tags_computed`, remembered by the value of its arguments (a pure function of numbers and texts):
+    diagrams of the same shape (the same threats on instruments whose names are as wide) place their tags once.
+    A tag whose points are its own curve's (as `render_svg` passes them) is keyed by the curve's index alone."""
+    key = (
+        tuple(
+            (text, None if 0 <= own < len(curves) and points is curves[own] else tuple(points), own)
+            for text, points, own in tags
+        ),
+        tuple(obstacles),
+        tuple(map(tuple, curves)),
+    )
+    found = _PLACED.get(key)
+    if found is None:
+        found = _place_tags_computed(tags, obstacles, curves)
+        if len(_PLACED) >= _PLACED_MAX:
+            _PLACED.clear()
+        _PLACED[key] = found
+    return list(found)
+
+
+def _place_tags_computed(
     tags: Sequence[tuple[str, list[tuple[float, float]], int]],
     obstacles: Sequence[Rect],
     curves: Sequence[list[tuple[float, float]]],
@@ -538,6 +580,22 @@ class _Flow:
     def newline(self, gap: float = 0.0) -> None:
         if self.x > self.x0:
             self.x, self.y = self.x0, self.y + self.row_h + gap
+
+
+_IDS_MARK = "\ue001"  # a private-use character no legend text contains; stands for the drawing's id prefix
+
+
+@lru_cache(maxsize=256)
+def _legend_marked(x: float, y: float, right: float) -> tuple[tuple[str, ...], float]:
+    out, bottom = _legend(x, y, _IDS_MARK, right)
+    return tuple(out), bottom
+
+
+def _legend_cached(x: float, y: float, ids: str, right: float) -> tuple[list[str], float]:
+    """`_legend`, remembered: the legend depends on the id prefix only where the prefix is written, so it is drawn
+    once per position and width with a mark in place of the prefix, and the prefix is put in."""
+    out, bottom = _legend_marked(x, y, right)
+    return [line.replace(_IDS_MARK, ids) for line in out], bottom
 
 
 def _legend(x: float, y: float, ids: str, right: float) -> tuple[list[str], float]:
@@ -827,7 +885,7 @@ def render_svg(
         y += 12
     caution = "A graph records assumptions; it cannot establish exclusion or exogeneity. Review with domain experts."
     width = max([width, MARGIN * 2 + text_width(caution, 10)] + [r[2] + MARGIN for r in texts])
-    legend, y = _legend(MARGIN, y + 6, ids, width - MARGIN)
+    legend, y = _legend_cached(MARGIN, y + 6, ids, width - MARGIN)
     body.extend(legend)
     height = y + 14
     body.append(text_line(MARGIN, height - 4, caution, 10, f' fill="{MUTED}"'))
