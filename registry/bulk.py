@@ -10,8 +10,10 @@ from __future__ import annotations
 
 from collections import defaultdict
 from collections.abc import Collection, Iterator, Sequence
-from typing import Any
+from datetime import datetime
+from typing import Any, NamedTuple
 
+from sqlalchemy import select as columns
 from sqlmodel import Session, col, select
 
 from ivdossier.registry.models import (
@@ -138,3 +140,94 @@ def merged_events(groups: dict[str, list[AuditEvent]], uuids: Sequence[str]) -> 
     """The events of several entities in one list, oldest first (ties by id), as one `history` query returns."""
     events = [e for u in dict.fromkeys(uuids) for e in groups.get(u, ())]
     return sorted(events, key=lambda e: (e.at, e.id or 0))
+
+
+# Column reads: the same rows and order as the readers above, as plain tuples (no model objects are built, which is
+# most of the cost of reading a large registry). Written with `session.execute(select(Model.column, ...))`
+# (SQLAlchemy's `select`, imported as `columns`), which works with any model layer.
+
+
+class LinkRow(NamedTuple):
+    """The columns of a link that documents show."""
+
+    id: int
+    uuid: str
+    slug: str
+    instrument_id: int
+    threat_id: int
+    state: str
+    argument: str
+    evidence: str
+
+
+class RatingRow(NamedTuple):
+    """One rating with its reviewer's handle."""
+
+    link_id: int
+    handle: str
+    likelihood: int
+    severity: int
+    comment: str
+
+
+class EventRow(NamedTuple):
+    """The columns of an audit event that documents show."""
+
+    id: int
+    entity_uuid: str
+    at: datetime
+    actor: str
+    action: str
+    entity_label: str
+    reason: str
+    after: dict[str, Any] | None
+
+
+def link_rows_by_instrument(
+    session: Session, instrument_ids: Collection[int] | None = None
+) -> tuple[dict[int, list[tuple[LinkRow, Threat]]], dict[int, Threat]]:
+    """Instrument id -> its (link, threat) pairs ordered by threat code (then link id), as `links_by_instrument`,
+    with each link as a `LinkRow`; and the threats by id (one object per threat, however many links it has)."""
+    pairs: list[LinkRow] = []
+    for chunk in _chunks(instrument_ids):
+        query = columns(*(getattr(Link, f) for f in LinkRow._fields)).join(
+            Threat, Link.threat_id == Threat.id
+        )
+        if chunk is not None:
+            query = query.where(col(Link.instrument_id).in_(chunk))
+        pairs.extend(LinkRow(*row) for row in session.execute(query.order_by(Threat.code, Link.id)))
+    threats = {t.id: t for t in session.scalars(columns(Threat)) if t.id is not None}
+    out: dict[int, list[tuple[LinkRow, Threat]]] = defaultdict(list)
+    for lk in pairs:  # an instrument's links all come from one chunk, in the query's order
+        out[lk.instrument_id].append((lk, threats[lk.threat_id]))
+    return out, threats
+
+
+def rating_rows_by_link(
+    session: Session, link_ids: Collection[int] | None = None
+) -> dict[int, list[RatingRow]]:
+    """Link id -> its ratings ordered by the reviewer's handle (then rating id), as `ratings_by_link`."""
+    out: dict[int, list[RatingRow]] = defaultdict(list)
+    for chunk in _chunks(link_ids):
+        query = columns(
+            Rating.link_id, Member.handle, Rating.likelihood, Rating.severity, Rating.comment
+        ).where(Rating.member_id == Member.id)
+        if chunk is not None:
+            query = query.where(col(Rating.link_id).in_(chunk))
+        for row in session.execute(query.order_by(Member.handle, Rating.id)):
+            out[row[0]].append(RatingRow(*row))
+    return out
+
+
+def event_rows_by_entity(
+    session: Session, entity_uuids: Collection[str] | None = None
+) -> dict[str, list[EventRow]]:
+    """Entity uuid -> its audit events, oldest first (ties by id), as `events_by_entity`."""
+    out: dict[str, list[EventRow]] = defaultdict(list)
+    for chunk in _chunks(entity_uuids):
+        query = columns(*(getattr(AuditEvent, f) for f in EventRow._fields))
+        if chunk is not None:
+            query = query.where(col(AuditEvent.entity_uuid).in_(chunk))
+        for row in session.execute(query.order_by(col(AuditEvent.at), col(AuditEvent.id))):
+            out[row[1]].append(EventRow(*row))
+    return out
