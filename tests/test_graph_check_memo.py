@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import random
 
+import pytest
+
 from ivdossier.errors import IvdossierError
 from ivdossier.threats_catalog import graph as g
 from ivdossier.threats_catalog import load_builtin
@@ -107,3 +109,14 @@ def test_a_graph_whose_names_hold_the_mark_is_checked_without_the_memo() -> None
         G, instrument=name, treatment="X", outcome="Y"
     )
     assert not g._CHECKED
+
+
+def test_the_path_limits_in_force_are_part_of_what_is_remembered(monkeypatch: pytest.MonkeyPatch) -> None:
+    g._CHECKED.clear()
+    G = g.build_graph(fragments=[load_builtin().get("DG-E01").fragment])
+    assert not g.check_instrument(G, instrument="Z", treatment="X", outcome="Y").paths_truncated
+    monkeypatch.setattr(g, "_MAX_PATHS_VISITED", 0)
+    assert g.check_instrument(G, instrument="Z", treatment="X", outcome="Y") == g._check(
+        G, instrument="Z", treatment="X", outcome="Y"
+    )
+    assert g.check_instrument(G, instrument="Z", treatment="X", outcome="Y").paths_truncated

@@ -402,7 +402,7 @@ class PointIndex:
 
 
 _PLACED: dict[tuple[Any, ...], list[tuple[str, Rect, tuple[float, float] | None]]] = {}
-_PLACED_MAX = 4096
+_PLACED_MAX = 256  # a key holds every curve point of a drawing (about 100 kB): keep the memo small
 
 
 def _place_tags(
@@ -751,7 +751,7 @@ _NAME_MARK = "\ue002"
 _TITLE_MARK = "\ue003"
 _MARKS = (_IDS_MARK, _NAME_MARK, _TITLE_MARK)
 _DRAWN: dict[tuple[Any, ...], str] = {}
-_DRAWN_MAX = 2048
+_DRAWN_MAX = 512  # about 30 kB a drawing
 
 
 def _ids(G: nx.DiGraph) -> str:

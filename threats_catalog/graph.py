@@ -498,7 +498,7 @@ def check_instrument(
 #: name does (such graphs are never remembered).
 _NAME_MARK = "\ue000"
 _CHECKED: dict[tuple[Any, ...], GraphVerdict] = {}
-_CHECKED_MAX = 4096
+_CHECKED_MAX = 1024
 
 
 def _shape_key(G: nx.DiGraph, z: str, x: str, y: str, conditioning: frozenset[str]) -> tuple[Any, ...] | None:
@@ -548,7 +548,17 @@ def _shape_key(G: nx.DiGraph, z: str, x: str, y: str, conditioning: frozenset[st
             (code, info["condition"], info["state"], info["empty"])
             for code, info in G.graph.get("threats", {}).items()
         )
-        key = (nodes, edges, threats, bool(G.graph.get("assert_fragments", False)), x, y, conditioning)
+        limits = (_MAX_OPEN_PATHS, _MAX_PATHS_VISITED)  # read when checking (a caller may change them)
+        key = (
+            nodes,
+            edges,
+            threats,
+            bool(G.graph.get("assert_fragments", False)),
+            x,
+            y,
+            conditioning,
+            limits,
+        )
         hash(key)
     except (TypeError, KeyError, AttributeError):
         return None
