@@ -9,8 +9,9 @@ reads every row; a given id list is read in chunks that stay within every backen
 from __future__ import annotations
 
 from collections import defaultdict
-from collections.abc import Collection, Iterator, Sequence
-from typing import Any
+from collections.abc import Collection, Iterator
+from datetime import datetime
+from typing import Any, NamedTuple
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
@@ -49,34 +50,6 @@ def programs(session: Session) -> dict[int, Program]:
 def instruments(session: Session) -> list[Instrument]:
     """Every instrument, by slug."""
     return list(session.scalars(select(Instrument).order_by(Instrument.slug)))
-
-
-def links_by_instrument(
-    session: Session, instrument_ids: Collection[int] | None = None
-) -> dict[int, list[tuple[Link, Threat]]]:
-    """Instrument id -> its (link, threat) pairs ordered by threat code, as `registry.threats.links_of`."""
-    out: dict[int, list[tuple[Link, Threat]]] = defaultdict(list)
-    for chunk in _chunks(instrument_ids):
-        query = select(Link, Threat).where(Link.threat_id == Threat.id)
-        if chunk is not None:
-            query = query.where(Link.instrument_id.in_(chunk))
-        for link, threat in session.execute(query.order_by(Threat.code, Link.id)):
-            out[link.instrument_id].append((link, threat))
-    return out
-
-
-def ratings_by_link(
-    session: Session, link_ids: Collection[int] | None = None
-) -> dict[int, list[tuple[Rating, Member]]]:
-    """Link id -> its (rating, reviewer) pairs ordered by the reviewer's handle."""
-    out: dict[int, list[tuple[Rating, Member]]] = defaultdict(list)
-    for chunk in _chunks(link_ids):
-        query = select(Rating, Member).where(Rating.member_id == Member.id)
-        if chunk is not None:
-            query = query.where(Rating.link_id.in_(chunk))
-        for rating, member in session.execute(query.order_by(Member.handle, Rating.id)):
-            out[rating.link_id].append((rating, member))
-    return out
 
 
 def runs_by_instrument(
@@ -121,21 +94,89 @@ def edges_by_program(session: Session) -> dict[int, list[GraphEdge]]:
     return out
 
 
-def events_by_entity(
-    session: Session, entity_uuids: Collection[str] | None = None
-) -> dict[str, list[AuditEvent]]:
-    """Entity uuid -> its audit events, oldest first, as `registry.history.history`."""
-    out: dict[str, list[AuditEvent]] = defaultdict(list)
-    for chunk in _chunks(entity_uuids):
-        query = select(AuditEvent)
+# Column reads: the same rows and order as the one-row readers, as plain tuples (no model objects are built, which
+# is most of the cost of reading a large registry).
+
+
+class LinkRow(NamedTuple):
+    """The columns of a link that documents show."""
+
+    id: int
+    uuid: str
+    slug: str
+    instrument_id: int
+    threat_id: int
+    state: str
+    argument: str
+    evidence: str
+
+
+class RatingRow(NamedTuple):
+    """One rating with its reviewer's handle."""
+
+    link_id: int
+    handle: str
+    likelihood: int
+    severity: int
+    comment: str
+
+
+class EventRow(NamedTuple):
+    """The columns of an audit event that documents show."""
+
+    id: int
+    entity_uuid: str
+    at: datetime
+    actor: str
+    action: str
+    entity_label: str
+    reason: str
+    after: dict[str, Any] | None
+
+
+def link_rows_by_instrument(
+    session: Session, instrument_ids: Collection[int] | None = None
+) -> tuple[dict[int, list[tuple[LinkRow, Threat]]], dict[int, Threat]]:
+    """Instrument id -> its (link, threat) pairs ordered by threat code (then link id), as `registry.threats.links_of`,
+    with each link as a `LinkRow`; and the threats by id (one object per threat, however many links it has)."""
+    pairs: list[LinkRow] = []
+    for chunk in _chunks(instrument_ids):
+        query = select(*(getattr(Link, f) for f in LinkRow._fields)).join(Threat, Link.threat_id == Threat.id)
         if chunk is not None:
-            query = query.where(AuditEvent.entity_uuid.in_(chunk))
-        for event in session.scalars(query.order_by(AuditEvent.at, AuditEvent.id)):
-            out[event.entity_uuid].append(event)
+            query = query.where(Link.instrument_id.in_(chunk))
+        pairs.extend(LinkRow(*row) for row in session.execute(query.order_by(Threat.code, Link.id)))
+    threats = {t.id: t for t in session.scalars(select(Threat)) if t.id is not None}
+    out: dict[int, list[tuple[LinkRow, Threat]]] = defaultdict(list)
+    for lk in pairs:  # an instrument's links all come from one chunk, in the query's order
+        out[lk.instrument_id].append((lk, threats[lk.threat_id]))
+    return out, threats
+
+
+def rating_rows_by_link(
+    session: Session, link_ids: Collection[int] | None = None
+) -> dict[int, list[RatingRow]]:
+    """Link id -> its ratings ordered by the reviewer's handle (then rating id)."""
+    out: dict[int, list[RatingRow]] = defaultdict(list)
+    for chunk in _chunks(link_ids):
+        query = select(
+            Rating.link_id, Member.handle, Rating.likelihood, Rating.severity, Rating.comment
+        ).where(Rating.member_id == Member.id)
+        if chunk is not None:
+            query = query.where(Rating.link_id.in_(chunk))
+        for row in session.execute(query.order_by(Member.handle, Rating.id)):
+            out[row[0]].append(RatingRow(*row))
     return out
 
 
-def merged_events(groups: dict[str, list[AuditEvent]], uuids: Sequence[str]) -> list[AuditEvent]:
-    """The events of several entities in one list, oldest first (ties by id), as one `history` query returns."""
-    events = [e for u in dict.fromkeys(uuids) for e in groups.get(u, ())]
-    return sorted(events, key=lambda e: (e.at, e.id or 0))
+def event_rows_by_entity(
+    session: Session, entity_uuids: Collection[str] | None = None
+) -> dict[str, list[EventRow]]:
+    """Entity uuid -> its audit events, oldest first (ties by id), as `registry.history.history`."""
+    out: dict[str, list[EventRow]] = defaultdict(list)
+    for chunk in _chunks(entity_uuids):
+        query = select(*(getattr(AuditEvent, f) for f in EventRow._fields))
+        if chunk is not None:
+            query = query.where(AuditEvent.entity_uuid.in_(chunk))
+        for row in session.execute(query.order_by(AuditEvent.at, AuditEvent.id)):
+            out[row[1]].append(EventRow(*row))
+    return out

@@ -384,40 +384,62 @@ def _render_table(text: str) -> str | None:
         return None
     if not _DELIMITER_ROW.fullmatch(lines[1]):
         return None
-    aligns = [_align(mark.strip()) for mark in lines[1][1:-1].split("|")]
-    rows = []
-    for line in (lines[0], *lines[2:]):
-        cells = escapedSplit(mdTrim(line))
-        if cells and cells[0] == "":
-            cells.pop(0)
-        if cells and cells[-1] == "":
-            cells.pop()
-        if len(cells) != len(aligns):
-            return None
-        rows.append([mdTrim(c) for c in cells])
-    out = ['<div class="table-wrap"><table>\n<thead>\n<tr>\n']
-    out += [f"<th{a}>{_render_cell(c)}</th>\n" for a, c in zip(aligns, rows[0], strict=True)]
-    out.append("</tr>\n</thead>\n")
-    if len(rows) > 1:
+    aligns = tuple(_align(mark.strip()) for mark in lines[1][1:-1].split("|"))
+    head = _render_row(lines[0], aligns, "th")
+    if head is None:
+        return None
+    out = ['<div class="table-wrap"><table>\n<thead>\n', head, "</thead>\n"]
+    if len(lines) > 2:
         out.append("<tbody>\n")
-        for row in rows[1:]:
-            out.append("<tr>\n")
-            out += [f"<td{a}>{_render_cell(c)}</td>\n" for a, c in zip(aligns, row, strict=True)]
-            out.append("</tr>\n")
+        for line in lines[2:]:
+            row = _render_row(line, aligns, "td")
+            if row is None:
+                return None
+            out.append(row)
         out.append("</tbody>\n")
     out.append("</table></div>\n")
     return "".join(out)
 
 
+@lru_cache(maxsize=65536)
+def _render_row(line: str, aligns: tuple[str, ...], tag: str) -> str | None:
+    """One table row's HTML (`tag` is th or td), remembered (generated tables repeat whole rows); None when the
+    row does not have one cell per column. Without a backslash every pipe separates cells, so the line is split
+    as the parser's `escapedSplit` would split it."""
+    trimmed = mdTrim(line)
+    cells = trimmed.split("|") if "\\" not in trimmed else escapedSplit(trimmed)
+    if cells and cells[0] == "":
+        cells.pop(0)
+    if cells and cells[-1] == "":
+        cells.pop()
+    if len(cells) != len(aligns):
+        return None
+    body = "".join(
+        f"<{tag}{a}>{_render_cell(mdTrim(c))}</{tag}>\n" for a, c in zip(aligns, cells, strict=True)
+    )
+    return f"<tr>\n{body}</tr>\n"
+
+
 # Characters at which one of the active inline rules (newline, escape, backticks, emphasis, link, image, autolink,
-# entity) can start; text without any of them is one text run, which the parser writes HTML-escaped.
-_INLINE_SYNTAX = re.compile(r"[\n\\`*_\[\]!<>&\x00\r]")
+# entity) can start; text without any of them is one text run, which the parser writes HTML-escaped. An image
+# starts at "![" and a link at "[", so "!" and "]" without "[" are text, and no inline rule starts at ">".
+_INLINE_SYNTAX = re.compile(r"[\n\\`*\[<&\x00\r]")
+# An underscore without a letter or digit ([^\W_]: what str.isalnum accepts) right before it or right after it.
+_LOOSE_UNDERSCORE = re.compile(r"(?<![^\W_])_|_(?![^\W_])")
+
+
+def _plain_text(content: str) -> bool:
+    """True when the parser renders `content` as one text run: no inline syntax can start in it, and every
+    underscore stands between two letters or digits."""
+    if _INLINE_SYNTAX.search(content):
+        return False
+    return "_" not in content or not _LOOSE_UNDERSCORE.search(content)
 
 
 @lru_cache(maxsize=65536)
 def _render_cell(content: str) -> str:
     """One table cell's inline HTML (with badge placeholders), as the parser renders a cell's content."""
-    if not _INLINE_SYNTAX.search(content):
+    if _plain_text(content):
         return escapeHtml(content)
     md = _section_parser()
     env: dict[str, Any] = {}

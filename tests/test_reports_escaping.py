@@ -357,3 +357,27 @@ def test_tables_rendered_cell_by_cell_match_the_markdown_parser(
     assert _render_section(text)[0] == expected
     if escape:
         assert _render_table(text) is not None  # every generated table takes the fast path
+
+
+_INLINE_TEXT = st.lists(
+    st.sampled_from(
+        [*"ab9_ _->!]~[*`<&\\.:,()'\"", "é", "ß", "٣", "\u00a0", "\u2003", "—", "→", "½", "__", "a_b", "x_1"]
+    ),
+    max_size=14,
+).map("".join)
+
+
+@settings(max_examples=1500, deadline=None)
+@given(content=_INLINE_TEXT)
+def test_a_table_cell_rendered_directly_matches_the_markdown_parser(content: str) -> None:
+    # Exact identity: the cell renderer (which writes text without inline syntax escaped, directly) against
+    # markdown-it's inline parser on the same (trimmed) cell content; underscores inside and beside words,
+    # non-ASCII letters and digits, Unicode spaces and punctuation included.
+    from markdown_it.common.utils import mdTrim
+
+    from ivdossier.reports.html import _render_cell, _section_parser
+
+    content = mdTrim(content)
+    md = _section_parser()
+    env: dict[str, object] = {}
+    assert _render_cell(content) == md.renderer.render(md.parseInline(content, env), md.options, env)

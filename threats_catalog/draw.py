@@ -59,7 +59,15 @@ _TAGS = {
 
 def esc(text: object) -> str:
     """Escape text for SVG element content or a double-quoted attribute (drops XML-illegal control codes)."""
-    s = _CTRL.sub("\N{REPLACEMENT CHARACTER}", str(text))
+    if type(text) is str:
+        return _esc_str(text)
+    return _esc_str.__wrapped__(str(text))
+
+
+@lru_cache(maxsize=16384)
+def _esc_str(text: str) -> str:
+    """`esc` of a string, remembered (a diagram repeats its names, codes and numbers many times)."""
+    s = _CTRL.sub("\N{REPLACEMENT CHARACTER}", text)
     return (
         s.replace("&", "&amp;")
         .replace("<", "&lt;")
@@ -120,10 +128,15 @@ def _text_width(text: str, size: float) -> float:
 
 
 def _wrap(label: str, width: int = 20) -> list[str]:
+    return list(_wrap_cached(label, width))
+
+
+@lru_cache(maxsize=4096)
+def _wrap_cached(label: str, width: int) -> tuple[str, ...]:
     lines = textwrap.wrap(label, width=width, break_long_words=True) or [""]
     if len(lines) > 3:
         lines = [*lines[:2], lines[2][: width - 1] + "…"]
-    return lines
+    return tuple(lines)
 
 
 def _layers(G: nx.DiGraph) -> dict[str, int]:
@@ -346,7 +359,7 @@ def _edge_svg(
     )
     out = [
         f'<path class="edge{" " + severity if severity else ""}" d="{path}" fill="none" stroke="{stroke}" '
-        f'stroke-width="{width}"{dash} marker-end="url(#{ids}-{marker})" data-from="{esc(u)}" data-to="{esc(v)}"/>'
+        f'stroke-width="{width}"{dash} marker-end="url(#{ids}-{marker})" data-from="{esc(boxes[u].name)}" data-to="{esc(boxes[v].name)}"/>'
     ]
     label = (
         ", ".join(codes) + (", team" if data.get("team") else "")
@@ -388,7 +401,36 @@ class PointIndex:
         return len([y for y in self.ys[lo:hi] if top <= y <= bottom])
 
 
+_PLACED: dict[tuple[Any, ...], list[tuple[str, Rect, tuple[float, float] | None]]] = {}
+_PLACED_MAX = 256  # a key holds every curve point of a drawing (about 100 kB): keep the memo small
+
+
 def _place_tags(
+    tags: Sequence[tuple[str, list[tuple[float, float]], int]],
+    obstacles: Sequence[Rect],
+    curves: Sequence[list[tuple[float, float]]],
+) -> list[tuple[str, Rect, tuple[float, float] | None]]:
+    """`_place_tags_computed`, remembered by the value of its arguments (a pure function of numbers and texts):
+    diagrams of the same shape (the same threats on instruments whose names are as wide) place their tags once.
+    A tag whose points are its own curve's (as `render_svg` passes them) is keyed by the curve's index alone."""
+    key = (
+        tuple(
+            (text, None if 0 <= own < len(curves) and points is curves[own] else tuple(points), own)
+            for text, points, own in tags
+        ),
+        tuple(obstacles),
+        tuple(map(tuple, curves)),
+    )
+    found = _PLACED.get(key)
+    if found is None:
+        found = _place_tags_computed(tags, obstacles, curves)
+        if len(_PLACED) >= _PLACED_MAX:
+            _PLACED.clear()
+        _PLACED[key] = found
+    return list(found)
+
+
+def _place_tags_computed(
     tags: Sequence[tuple[str, list[tuple[float, float]], int]],
     obstacles: Sequence[Rect],
     curves: Sequence[list[tuple[float, float]]],
@@ -540,6 +582,22 @@ class _Flow:
             self.x, self.y = self.x0, self.y + self.row_h + gap
 
 
+_IDS_MARK = "\ue001"  # a private-use character no legend text contains; stands for the drawing's id prefix
+
+
+@lru_cache(maxsize=256)
+def _legend_marked(x: float, y: float, right: float) -> tuple[tuple[str, ...], float]:
+    out, bottom = _legend(x, y, _IDS_MARK, right)
+    return tuple(out), bottom
+
+
+def _legend_cached(x: float, y: float, ids: str, right: float) -> tuple[list[str], float]:
+    """`_legend`, remembered: the legend depends on the id prefix only where the prefix is written, so it is drawn
+    once per position and width with a mark in place of the prefix, and the prefix is put in."""
+    out, bottom = _legend_marked(x, y, right)
+    return [line.replace(_IDS_MARK, ids) for line in out], bottom
+
+
 def _legend(x: float, y: float, ids: str, right: float) -> tuple[list[str], float]:
     out = [f'<text x="{x:.1f}" y="{y:.1f}" font-size="11" font-weight="bold" fill="{INK}">Legend</text>']
     shapes = [
@@ -670,6 +728,118 @@ def render_svg(
         raise InvalidInputError(
             "render_svg needs an acyclic graph; build it with build_graph, which names cycles"
         )
+    key = _drawing_key(G, verdict, title, verdicts)
+    if key is None:
+        return _draw(G, verdict, title, verdicts, marked=False)
+    assert verdict is not None and title
+    template = _DRAWN.get(key)
+    if template is None:
+        drawn = _draw(G, verdict, title, verdicts, marked=False)
+        template = _draw(G, verdict, title, verdicts, marked=True)
+        if _fill(template, G, verdict.instrument, title) != drawn:  # a text held a mark: never shared
+            return drawn
+        if len(_DRAWN) >= _DRAWN_MAX:
+            _DRAWN.clear()
+        _DRAWN[key] = template
+        return drawn
+    return _fill(template, G, verdict.instrument, title)
+
+
+#: Marks written in place of the instrument's name and the title in a remembered drawing (private-use
+#: characters; the id prefix uses `_IDS_MARK`).
+_NAME_MARK = "\ue002"
+_TITLE_MARK = "\ue003"
+_MARKS = (_IDS_MARK, _NAME_MARK, _TITLE_MARK)
+_DRAWN: dict[tuple[Any, ...], str] = {}
+_DRAWN_MAX = 512  # about 30 kB a drawing
+
+
+def _ids(G: nx.DiGraph) -> str:
+    return "ivd-" + hashlib.sha256(repr(sorted(map(str, G.edges))).encode()).hexdigest()[:8]
+
+
+def _fill(template: str, G: nx.DiGraph, name: str, title: str) -> str:
+    return (
+        template.replace(_IDS_MARK, _ids(G)).replace(_NAME_MARK, esc(name)).replace(_TITLE_MARK, esc(title))
+    )
+
+
+def _drawing_key(
+    G: nx.DiGraph, verdict: GraphVerdict | None, title: str | None, verdicts: Sequence[Verdict] | None
+) -> tuple[Any, ...] | None:
+    """Everything `_draw` reads, with the instrument's name and the title left out (None when a drawing cannot be
+    shared: no verdict or title, a name that is not a string or holds a mark, an instrument name that wraps).
+
+    The name enters the drawing only through its width and length (its box, the path lines), its order among the
+    other nodes' names (layout, drawing order) and where it is written; the title through its width and where it
+    is written; the id prefix only where it is written. The key holds the widths, the length and the order, and
+    the drawing is remembered with marks where the three are written (`_fill` puts them in). A remembered
+    drawing is kept only if it gives back, filled, exactly the drawing made directly."""
+    if verdict is None or not title or type(title) is not str:
+        return None
+    z = verdict.instrument
+    if type(z) is not str or z not in G or _wrap(z) != [z]:
+        return None
+    if any(m in z or m in title for m in _MARKS):
+        return None
+    try:
+        names = [n for n in G if n != z]
+        if any(type(n) is not str for n in names):
+            return None
+        paths = []
+        for p in verdict.open_paths:
+            if not p.nodes or p.nodes[0] != z or z in p.nodes[1:]:
+                return None
+            paths.append((p.nodes[1:], p.arrows, p.severity, p.threats, p.condition))
+        strip = (
+            tuple((v.condition, verdict_key(v.status)) for v in verdicts)
+            if verdicts is not None
+            else tuple((c.condition, c.value) for c in verdict.conditions)
+        )
+        key = (
+            tuple(
+                (_NAME_MARK, d.get("role"), d.get("observed", True))
+                if n == z
+                else (n, d.get("role"), d.get("observed", True), d.get("label"))
+                for n, d in G.nodes(data=True)
+            ),
+            tuple(
+                (
+                    _NAME_MARK if u == z else u,
+                    _NAME_MARK if v == z else v,
+                    tuple(d.get("threats", [])),
+                    d.get("team"),
+                )
+                for u, v, d in G.edges(data=True)
+            ),
+            tuple(z < n for n in names),
+            text_width(z, 12, bold=True),
+            len(z),
+            text_width(title, 17, bold=True),
+            verdict.treatment,
+            verdict.outcome,
+            verdict.conditioning,
+            verdict.selection,
+            tuple(paths),
+            criterion_sentence(verdict),
+            strip,
+        )
+        hash(key)
+    except TypeError:
+        return None
+    return key
+
+
+def _draw(
+    G: nx.DiGraph,
+    verdict: GraphVerdict | None,
+    title: str | None,
+    verdicts: Sequence[Verdict] | None,
+    *,
+    marked: bool,
+) -> str:
+    """The drawing; `marked` writes `_NAME_MARK`, `_TITLE_MARK` and `_IDS_MARK` where the instrument's name, the
+    title and the id prefix are written (everything else, sizes and places included, is drawn as it is)."""
     conditioned = set(verdict.conditioning) if verdict else set()
     selection = (
         set(verdict.selection) if verdict else {n for n, d in G.nodes(data=True) if d.get("selection")}
@@ -724,18 +894,27 @@ def render_svg(
             covariate_unmeasured=unmeasured,
         )
 
-    ids = "ivd-" + hashlib.sha256(repr(sorted(map(str, G.edges))).encode()).hexdigest()[:8]
+    ids = _IDS_MARK if marked else _ids(G)
+    if marked and verdict is not None:
+        instrument = boxes[verdict.instrument]
+        instrument.name, instrument.lines = _NAME_MARK, [_NAME_MARK]
     texts: list[Rect] = []  # every text line outside the nodes, for sizing and for keeping tags off them
 
-    def text_line(x: float, y: float, content: str, size: float, extra: str = "", **kw: Any) -> str:
+    def text_line(
+        x: float, y: float, content: str, size: float, extra: str = "", shown: str | None = None, **kw: Any
+    ) -> str:
+        """A text line sized by `content` and showing `shown` (escaped text with marks) when given."""
         width = text_width(content, size, **kw)
         texts.append((x, y - size, x + width, y + size * 0.3))
-        return f'<text x="{x:.1f}" y="{y:.1f}" font-size="{size}"{extra}>{esc(content)}</text>'
+        return f'<text x="{x:.1f}" y="{y:.1f}" font-size="{size}"{extra}>{esc(content) if shown is None else shown}</text>'
 
     body: list[str] = []
     y_text = 28.0
     if title:
-        body.append(text_line(MARGIN, y_text, title, 17, f' font-weight="bold" fill="{INK}"', bold=True))
+        shown = _TITLE_MARK if marked else None
+        body.append(
+            text_line(MARGIN, y_text, title, 17, f' font-weight="bold" fill="{INK}"', shown=shown, bold=True)
+        )
         y_text += 30
     if verdict is not None:
         x = MARGIN
@@ -809,10 +988,14 @@ def render_svg(
         body.append(text_line(MARGIN, y, heading, 12, f' font-weight="bold" fill="{INK}"', bold=True))
         y += 18
         rows = [
-            f"{i}. {p.text}  [{', '.join(p.threats) or 'team-drawn'}]  {p.severity}, {p.condition}"
+            (f"{i}. ", p.text, f"  [{', '.join(p.threats) or 'team-drawn'}]  {p.severity}, {p.condition}")
             for i, p in enumerate(verdict.open_paths, 1)
-        ] or ["none, given the conditioning set"]
-        for row in rows:
+        ] or [("", "none, given the conditioning set", "")]
+        for lead, text, tail in rows:
+            row = lead + text + tail
+            shown = None
+            if marked and lead:  # every path starts at the instrument (`_drawing_key` makes sure)
+                shown = esc(lead) + _NAME_MARK + esc(text[len(verdict.instrument) :] + tail)
             body.append(
                 text_line(
                     MARGIN + 8,
@@ -820,6 +1003,7 @@ def render_svg(
                     row,
                     11,
                     f' font-family="DejaVu Sans Mono, monospace" fill="{INK}"',
+                    shown=shown,
                     mono=True,
                 )
             )
@@ -827,20 +1011,21 @@ def render_svg(
         y += 12
     caution = "A graph records assumptions; it cannot establish exclusion or exogeneity. Review with domain experts."
     width = max([width, MARGIN * 2 + text_width(caution, 10)] + [r[2] + MARGIN for r in texts])
-    legend, y = _legend(MARGIN, y + 6, ids, width - MARGIN)
+    legend, y = _legend_cached(MARGIN, y + 6, ids, width - MARGIN)
     body.extend(legend)
     height = y + 14
     body.append(text_line(MARGIN, height - 4, caution, 10, f' fill="{MUTED}"'))
     height += 12
+    label = _TITLE_MARK if marked else esc(title or "instrument graph")
     head = (
         f'<svg xmlns="http://www.w3.org/2000/svg" width="{width:.0f}" height="{height:.0f}" '
-        f'viewBox="0 0 {width:.0f} {height:.0f}" font-family="{FONT}" role="img" aria-label="{esc(title or "instrument graph")}">'
+        f'viewBox="0 0 {width:.0f} {height:.0f}" font-family="{FONT}" role="img" aria-label="{label}">'
     )
     return (
         "\n".join(
             [
                 head,
-                f"<title>{esc(title or 'instrument graph')}</title>",
+                f"<title>{label}</title>",
                 _defs(ids),
                 f'<rect width="100%" height="100%" fill="{PAPER}"/>',
                 *body,

@@ -46,6 +46,7 @@ team-drawn, or a hand-made ``nx.DiGraph`` without our attributes) count as asser
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import itertools
 import math
@@ -459,7 +460,140 @@ def check_instrument(
     Nodes flagged ``selection`` are always conditioned on (the sample is restricted on them). Conditioning on
     an unobserved node, or on Z, X or Y, raises InvalidInputError. Conditioning on a descendant of X or Y is
     reported as a conditioning issue (exogeneity broken) rather than raised.
+
+    Checks are remembered by the graph's shape with the instrument's name left out (`_shape_key`): instruments
+    whose graphs differ only in the instrument's name (the same threats, covariates and team edges) are checked
+    once, and the verdict is given each instrument's name.
     """
+    if not isinstance(conditioning, str):
+        conditioning = frozenset(conditioning)
+        key = _shape_key(G, instrument, treatment, outcome, conditioning)
+        if key is not None:
+            found = _CHECKED.get(key)
+            if found is None:
+                try:  # checked once, on a copy in which the instrument is named by a reserved mark
+                    found = _check(
+                        nx.relabel_nodes(G, {instrument: _NAME_MARK}, copy=True),
+                        instrument=_NAME_MARK,
+                        treatment=treatment,
+                        outcome=outcome,
+                        conditioning=conditioning,
+                    )
+                except (
+                    InvalidInputError,
+                    NotFoundError,
+                    nx.NetworkXException,
+                ):  # raised below, naming the instrument
+                    found = None
+                if found is not None:
+                    if len(_CHECKED) >= _CHECKED_MAX:
+                        _CHECKED.clear()
+                    _CHECKED[key] = found
+            if found is not None:
+                return _named(found, instrument)
+    return _check(G, instrument=instrument, treatment=treatment, outcome=outcome, conditioning=conditioning)
+
+
+#: Stands for the instrument's name in remembered checks: a private-use character, so no text holds it unless a
+#: name does (such graphs are never remembered).
+_NAME_MARK = "\ue000"
+_CHECKED: dict[tuple[Any, ...], GraphVerdict] = {}
+_CHECKED_MAX = 1024
+
+
+def _shape_key(G: nx.DiGraph, z: str, x: str, y: str, conditioning: frozenset[str]) -> tuple[Any, ...] | None:
+    """Everything `_check` reads from ``G`` and its arguments, in order, with the instrument's name replaced by
+    `_NAME_MARK`; None when a check cannot be shared (a name holds the mark or is not a string, the instrument
+    is not a plain node (selected on, adjusted for) or absent, team edges were left out, or a value cannot be
+    compared).
+
+    Why the name can be left out: `_check` compares the instrument's name only for equality, every listed path
+    starts at the instrument (so sorting paths by their text never compares the name with another), it never
+    conditions on the instrument (refused, or absent from this key's graphs), and it writes the name only as the
+    first node of a path, in the path texts of its reasons and as ``instrument``, which `_named` puts back.
+    """
+    if (
+        type(z) is not str
+        or _NAME_MARK in z
+        or z not in G
+        or G.graph.get("skipped_edges")
+        or any(type(n) is not str or _NAME_MARK in n for n in G)
+    ):
+        return None
+    mine = G.nodes[z]
+    if mine.get("selection") or mine.get("adjusted") or mine.get("fixes_instrument"):
+        return None
+    try:
+        nodes = tuple(
+            (
+                _NAME_MARK if n == z else n,
+                d.get("observed", False),
+                d.get("selection"),
+                d.get("adjusted"),
+                d.get("fixes_instrument"),
+            )
+            for n, d in G.nodes(data=True)
+        )
+        edges = tuple(
+            (
+                _NAME_MARK if u == z else u,
+                _NAME_MARK if v == z else v,
+                tuple(d.get("threats", ())),
+                d.get("team", False),
+                "base" in d,
+            )
+            for u, v, d in G.edges(data=True)
+        )
+        threats = tuple(
+            (code, info["condition"], info["state"], info["empty"])
+            for code, info in G.graph.get("threats", {}).items()
+        )
+        limits = (_MAX_OPEN_PATHS, _MAX_PATHS_VISITED)  # read when checking (a caller may change them)
+        key = (
+            nodes,
+            edges,
+            threats,
+            bool(G.graph.get("assert_fragments", False)),
+            x,
+            y,
+            conditioning,
+            limits,
+        )
+        hash(key)
+    except (TypeError, KeyError, AttributeError):
+        return None
+    codes = {c for e in edges for c in e[2]} | {t[0] for t in threats}
+    if any(type(c) is not str or _NAME_MARK in c for c in codes):
+        return None
+    return key
+
+
+def _named(verdict: GraphVerdict, z: str) -> GraphVerdict:
+    """A remembered verdict with the instrument's name put in place of `_NAME_MARK`."""
+
+    def path(p: BypassPath) -> BypassPath:
+        return dataclasses.replace(p, nodes=tuple(z if n == _NAME_MARK else n for n in p.nodes))
+
+    return dataclasses.replace(
+        verdict,
+        instrument=z,
+        open_paths=tuple(path(p) for p in verdict.open_paths),
+        blocked_paths=tuple(path(p) for p in verdict.blocked_paths),
+        conditions=tuple(
+            dataclasses.replace(c, reasons=tuple(r.replace(_NAME_MARK, z) for r in c.reasons))
+            for c in verdict.conditions
+        ),
+    )
+
+
+def _check(
+    G: nx.DiGraph,
+    *,
+    instrument: str,
+    treatment: str,
+    outcome: str,
+    conditioning: Iterable[str] = frozenset(),
+) -> GraphVerdict:
     z, x, y = instrument, treatment, outcome
     for role, name in (("instrument", z), ("treatment", x), ("outcome", y)):
         if name not in G:

@@ -10,6 +10,7 @@ import dataclasses
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime
+from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
@@ -18,6 +19,7 @@ from sqlalchemy.orm import Session
 
 from ivdossier import __version__
 from ivdossier.registry import records
+from ivdossier.registry.bulk import EventRow, LinkRow, RatingRow
 from ivdossier.registry.history import history
 from ivdossier.registry.instruments import covariates_of, edges_of
 from ivdossier.registry.models import (
@@ -58,13 +60,14 @@ class RegistryReader:
     def __init__(self, session: Session) -> None:
         self.session = session
         self._programs: dict[int, Program] = {}
-        self._links: dict[int, list[tuple[Link, Threat]]] = {}
+        self._links: dict[int, list[tuple[Link | LinkRow, Threat]]] = {}
         self._ratings: dict[int, list[tuple[Rating, Member]]] = {}
+        self._rating_rows: dict[int, list[RatingRow]] | None = None
         self._runs: dict[int, list[Run]] = {}
         self._datasets: dict[int, Dataset | None] = {}
         self._covariates: dict[int, list[Covariate]] = {}
         self._edges: dict[int, list[GraphEdge]] = {}
-        self._events: dict[str, list[AuditEvent]] | None = None
+        self._events: dict[str, list[EventRow]] | None = None
         self._studies: list[Study] | None = None
         self._entries: dict[tuple[int | None, int], Any] = {}
         self.preloaded = False
@@ -75,11 +78,10 @@ class RegistryReader:
 
         ids = [i.id for i in instruments if i.id is not None]
         self._programs = bulk.programs(self.session)
-        links = bulk.links_by_instrument(self.session, ids)
-        self._links = {i: links.get(i, []) for i in ids}
+        links, _threats = bulk.link_rows_by_instrument(self.session, ids)
+        self._links = {i: list(links.get(i, [])) for i in ids}
         link_ids = [lk.id for pairs in self._links.values() for lk, _ in pairs if lk.id is not None]
-        ratings = bulk.ratings_by_link(self.session, link_ids)
-        self._ratings = {i: ratings.get(i, []) for i in link_ids}
+        self._rating_rows = bulk.rating_rows_by_link(self.session, link_ids)
         runs = bulk.runs_by_instrument(self.session, ids)
         self._runs = {i: runs.get(i, []) for i in ids}
         dataset_ids = {r.dataset_id for rs in self._runs.values() for r in rs if r.dataset_id}
@@ -88,7 +90,7 @@ class RegistryReader:
         self._covariates = dict(bulk.covariates_by_program(self.session))
         self._edges = dict(bulk.edges_by_program(self.session))
         uuids = [i.uuid for i in instruments] + [lk.uuid for pairs in self._links.values() for lk, _ in pairs]
-        self._events = dict(bulk.events_by_entity(self.session, uuids))
+        self._events = dict(bulk.event_rows_by_entity(self.session, uuids))
         self._studies = list(self.session.scalars(select(Study).order_by(Study.key)))
         self.preloaded = True
 
@@ -98,13 +100,24 @@ class RegistryReader:
             self._programs[pid] = records.get_by_id(self.session, Program, pid)
         return self._programs[pid]
 
-    def links(self, instrument: Instrument) -> list[tuple[Link, Threat]]:
+    def links(self, instrument: Instrument) -> list[tuple[Link | LinkRow, Threat]]:
+        """The instrument's (link, threat) pairs by threat code; after `preload` each link is a `LinkRow` (its
+        columns only, read without building model objects)."""
         key = instrument.id or 0
         if key not in self._links:
-            self._links[key] = links_of(self.session, instrument)
+            self._links[key] = list(links_of(self.session, instrument))
         return self._links[key]
 
-    def ratings(self, link: Link) -> list[tuple[Rating, Member]]:
+    def rating_infos(self, link: Link | LinkRow) -> tuple[ri.Rating, ...]:
+        """The link's ratings as the reports layer reads them, by reviewer handle."""
+        if self._rating_rows is not None:
+            return tuple(
+                _rating(r.handle, r.likelihood, r.severity, r.comment)
+                for r in self._rating_rows.get(link.id, ())
+            )
+        return tuple(_rating(m.handle, r.likelihood, r.severity, r.comment) for r, m in self.ratings(link))
+
+    def ratings(self, link: Link | LinkRow) -> list[tuple[Rating, Member]]:
         key = link.id or 0
         if key not in self._ratings:
             self._ratings[key] = list(
@@ -142,12 +155,13 @@ class RegistryReader:
             self._edges[key] = [] if self.preloaded else edges_of(self.session, self.program(instrument))
         return [e for e in self._edges[key] if e.instrument_id is None or e.instrument_id == instrument.id]
 
-    def events(self, uuids: Sequence[str]) -> list[AuditEvent]:
+    def events(self, uuids: Sequence[str]) -> list[AuditEvent] | list[EventRow]:
+        """The audit events of these entities, oldest first (ties by id); after `preload` as `EventRow`s."""
         if self._events is None:
             return history(self.session, entity_uuids=set(uuids))
-        from ivdossier.registry.bulk import merged_events
-
-        return merged_events(self._events, uuids)
+        groups = self._events
+        events = [e for u in dict.fromkeys(uuids) for e in groups.get(u, ())]
+        return sorted(events, key=lambda e: (e.at, e.id))
 
     def any_studies(self) -> bool:
         """Whether the registry records any study at all."""
@@ -285,11 +299,10 @@ def check_finding(check: str, runs: Sequence[Run]) -> str:
     return f"{finding(check, candidates[0].results or {}, candidates[0].run_kind)} (run {candidates[0].slug})"
 
 
-def _ratings(reader: RegistryReader, link: Link) -> tuple[ri.Rating, ...]:
-    return tuple(
-        ri.Rating(reviewer=m.handle, likelihood=r.likelihood, severity=r.severity, comment=r.comment)
-        for r, m in reader.ratings(link)
-    )
+@lru_cache(maxsize=4096)
+def _rating(reviewer: str, likelihood: int, severity: int, comment: str) -> ri.Rating:
+    """A rating as the reports layer reads it (a frozen record, so equal ratings share one object)."""
+    return ri.Rating(reviewer=reviewer, likelihood=likelihood, severity=severity, comment=comment)
 
 
 SPEC_ORDER: tuple[str, ...] = ("data", *SPEC_KEYS)
@@ -351,7 +364,7 @@ def _links(reader: RegistryReader, inst: Instrument, all_runs: Sequence[Run]) ->
             state=link.state,
             argument=link.argument,
             evidence=link.evidence,
-            ratings=_ratings(reader, link),
+            ratings=reader.rating_infos(link),
             checks=tuple(
                 ri.CheckInfo(name=c, finding=check_finding(c, all_runs)) for c in (threat.checks or [])
             ),
