@@ -2,7 +2,8 @@
 
 ``pandas`` reads the used columns into memory (the path of :func:`~ivdossier.estimation.estimate`); ``duckdb``
 and ``spark`` run the grouped scans of :mod:`ivdossier.estimation.sql_moments` (counts and means, the Gram
-matrix, then row or cluster moments of the partialled columns) and hand the sums to the same
+matrix, then row or cluster moments of the partialled columns; a single scan grouped by cluster for well-conditioned
+one-way clustered and homoskedastic models without an absorbed factor) and hand the sums to the same
 :class:`~ivdossier.estimation.crossproducts.CrossProducts` code, so coefficients, covariance and the whole
 weak-instrument suite come from the same functions as in memory. ``auto`` picks pandas when the used columns
 fit comfortably in memory and DuckDB above :data:`~ivdossier.estimation.sources.AUTO_PANDAS_MAX_BYTES`; the

@@ -18,6 +18,13 @@ The robust covariance needs no further scan after the coefficients: every robust
 function of the row moments sum_i t_i t_i' (t_i the packed products of row i's partialled columns), which scan 3
 collects before any coefficient is known; the cluster meats likewise need only the per-cluster sums.
 
+Without an absorbed factor, scan 1 also sums the Gram matrix (around a shift from the first rows), and for the
+homoskedastic and one-way clustered covariances it usually replaces scan 3 as well: grouped by cluster, its
+per-cluster Gram matrices multiplied by the coefficients give the cluster sums (:func:`cluster_sums_moments`),
+one read of the data in all. That product magnifies rounding by the square of :func:`amplification` (the
+row-by-row scan 3 by its first power), so above ONE_SCAN_MAX_AMPLIFICATION, or beyond ONE_SCAN_MAX_CLUSTERS
+clusters, scan 3 runs as before.
+
 Precision: the control coefficients come from the normal equations of demeaned columns (relative error about
 cond(controls)^2 x 1e-16) and the basis is CholeskyQR2 spread over scans 2 and 3, accurate while the partialled
 columns' condition number stays below about 1e7; a column that keeps less than SQL_MIN_LENGTH of its length
