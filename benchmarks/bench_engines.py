@@ -19,7 +19,8 @@ row groups of ``--row-group`` rows (float64 columns, int32 cluster codes). The m
 cluster covariance and every diagnostic (first stage, effective F, KP, AR and CLR sets, tF, J, endogeneity).
 
 * read: DuckDB summing every column of the file (one sequential read, decoded) — the reference time;
-* duckdb: ``estimate_source(engine="duckdb", memory_limit=--memory-limit)``, three scans;
+* duckdb: ``estimate_source(engine="duckdb", memory_limit=--memory-limit)``: a centring sample, then (one-way
+  clustered, well conditioned) a single scan grouped by cluster whose sums also give the cluster moments;
 * spark: the same with ``engine="spark"`` on a ``local[2]`` session (started inside the timed subprocess, its
   start-up time is reported apart);
 * pandas: whether the pandas engine would accept the file on this machine (its memory estimate), and the
@@ -213,6 +214,7 @@ def main() -> None:
 
     reads: list[float] = []
     duck: list[dict[str, object]] = []
+    loads: list[float] = [os.getloadavg()[0]]
     for _ in range(args.rounds):
         reads.append(
             float(
@@ -226,6 +228,7 @@ def main() -> None:
                 {"kind": "duckdb", "path": str(path), "model": MODEL, "memory_limit": args.memory_limit}
             )
         )
+        loads.append(os.getloadavg()[0])
     read_s = statistics.median(reads)
     duck_s = statistics.median(float(d["seconds"]) for d in duck)  # type: ignore[arg-type]
     duck_peak = max(int(d["python_peak_bytes"]) for d in duck)  # type: ignore[call-overload]
@@ -236,6 +239,10 @@ def main() -> None:
         f"duckdb {duck[0]['version']} full suite, memory_limit={args.memory_limit}: median {duck_s:.2f} s "
         f"= {duck_s / read_s:.2f} x the read; peak resident memory {duck_peak / 2**30:.2f} GiB "
         f"(whole process incl. Python and numpy)"
+    )
+    print(
+        "  1-minute load average (other processes share the machine) at start and after each round: "
+        + ", ".join(f"{x:.1f}" for x in loads)
     )
     if args.target:
         ratio = duck_s / read_s

@@ -2,7 +2,8 @@
 
 ``pandas`` reads the used columns into memory (the path of :func:`~ivdossier.estimation.estimate`); ``duckdb``
 and ``spark`` run the grouped scans of :mod:`ivdossier.estimation.sql_moments` (counts and means, the Gram
-matrix, then row or cluster moments of the partialled columns) and hand the sums to the same
+matrix, then row or cluster moments of the partialled columns; a single scan grouped by cluster for well-conditioned
+one-way clustered and homoskedastic models without an absorbed factor) and hand the sums to the same
 :class:`~ivdossier.estimation.crossproducts.CrossProducts` code, so coefficients, covariance and the whole
 weak-instrument suite come from the same functions as in memory. ``auto`` picks pandas when the used columns
 fit comfortably in memory and DuckDB above :data:`~ivdossier.estimation.sources.AUTO_PANDAS_MAX_BYTES`; the
@@ -28,7 +29,7 @@ from numpy.typing import NDArray
 
 from ivdossier.errors import EstimationError, InvalidInputError
 from ivdossier.estimation.api import SampleCounts, estimate_spec, result_from_cross_products
-from ivdossier.estimation.crossproducts import CrossProducts
+from ivdossier.estimation.crossproducts import CrossProducts, pack_index
 from ivdossier.estimation.data import as_names, check_collinear, check_roles
 from ivdossier.estimation.linalg import one_blas_thread
 from ivdossier.estimation.result import EstimationResult
@@ -46,8 +47,14 @@ from ivdossier.estimation.sources import (
 )
 from ivdossier.estimation.spec import ModelSpec
 from ivdossier.estimation.sql_moments import (
+    ONE_SCAN_MAX_AMPLIFICATION,
+    ONE_SCAN_MAX_CLUSTERS,
+    ONE_SCAN_SAMPLE_MAX_DISTINCT,
     SQL_MIN_LENGTH,
+    ClusterSums,
     MomentPlan,
+    amplification,
+    cluster_sums_moments,
     counts_query,
     cross_products_from_sums,
     first_factor,
@@ -195,12 +202,85 @@ def refuse_unsupported(model: ModelSpec, engine: str) -> None:
         )
 
 
+def _merge_groups(rows: list[dict[str, Any]]) -> dict[str, Any]:
+    """One row of scan 1 from several (per cluster) with the same completeness flag: minima of ``ivd_lo``,
+    maxima of ``ivd_hi``, sums of the rest (NULL, the sum of no values, counts as nothing)."""
+    out: dict[str, Any] = {}
+    for row in rows:
+        for key, value in row.items():
+            if key == "ivd_ok" or value is None:
+                out.setdefault(key, value)
+                continue
+            old = out.get(key)
+            if old is None:
+                out[key] = value
+            elif key.startswith("ivd_lo"):
+                out[key] = min(old, value)
+            elif key.startswith("ivd_hi"):
+                out[key] = max(old, value)
+            else:
+                out[key] = old + value
+    return out
+
+
+class _ClusterCollector:
+    """Collects scan 1's rows grouped by (completeness, cluster): merged rows per flag and, for the complete
+    rows, the per-cluster sums as arrays (dropped, leaving the moments to their own scan, beyond
+    ONE_SCAN_MAX_CLUSTERS clusters)."""
+
+    def __init__(self, n_cols: int) -> None:
+        self.n_cols = n_cols
+        self.merged: dict[bool, dict[str, Any]] = {}
+        self.parts: list[tuple[Array, Array, Array]] | None = []
+        self.clusters = 0
+
+    def __call__(self, batch: list[dict[str, Any]]) -> None:
+        for flag in (True, False):
+            rows = [r for r in batch if bool(r["ivd_ok"]) is flag]
+            if not rows:
+                continue
+            prev = [self.merged[flag]] if flag in self.merged else []
+            self.merged[flag] = _merge_groups([*prev, _merge_groups(rows)])
+            if not flag:
+                continue
+            self.clusters += len(rows)
+            if self.parts is None or self.clusters > ONE_SCAN_MAX_CLUSTERS:
+                self.parts = None
+                continue
+            n_g = self.n_cols * (self.n_cols + 1) // 2
+            self.parts.append(
+                (
+                    np.array([float(r["ivd_wsum"]) for r in rows]),
+                    np.array([packed(r, "h", self.n_cols) for r in rows]).reshape(len(rows), self.n_cols),
+                    np.array([packed(r, "g", n_g) for r in rows]).reshape(len(rows), n_g),
+                )
+            )
+
+    def sums(self) -> ClusterSums | None:
+        if not self.parts:
+            return None
+        return ClusterSums(*(np.concatenate([p[i] for p in self.parts]) for i in range(3)))
+
+
 def _scan_counts(
-    runner: Runner, plan: MomentPlan, timings: list[ScanTiming], shift: list[float] | None
-) -> dict[str, Any]:
+    runner: Runner,
+    plan: MomentPlan,
+    timings: list[ScanTiming],
+    shift: list[float] | None,
+    *,
+    by_cluster: bool = False,
+) -> tuple[dict[str, Any], ClusterSums | None]:
     t0 = time.monotonic()
     label = "counts and means" if shift is None else "counts, means and Gram matrix"
-    groups = runner.rows(counts_query(plan, shift), label, 1)
+    per_cluster = None
+    if by_cluster:
+        label += " by cluster"
+        collect = _ClusterCollector(len(plan.demeaned))
+        runner.each_batch(counts_query(plan, shift, by_cluster=True), label, 1, collect)
+        groups = list(collect.merged.values())
+        per_cluster = collect.sums()
+    else:
+        groups = runner.rows(counts_query(plan, shift), label, 1)
     timings.append(ScanTiming(label, time.monotonic() - t0))
     infinite = groups
     if (
@@ -231,7 +311,7 @@ def _scan_counts(
     for j, name in enumerate(plan.instruments):
         if row[f"ivd_lo{j}"] == row[f"ivd_hi{j}"]:
             raise EstimationError(f"Instrument {name!r} is constant in the used rows; drop it.")
-    return row
+    return row, per_cluster
 
 
 def _finite_sums(group: dict[str, Any], n_cols: int) -> bool:
@@ -239,6 +319,11 @@ def _finite_sums(group: dict[str, Any], n_cols: int) -> bool:
     values = [group.get(f"ivd_h{j}") for j in range(n_cols)]
     values += [group.get(f"ivd_g{i}") for i in range(n_cols * (n_cols + 1) // 2)]
     return all(v is None or np.isfinite(float(v)) for v in values)
+
+
+def _named(prefix: str, values: Array) -> dict[str, float]:
+    """Packed sums as the named columns ``ivd_{prefix}{i}`` of a scan's result row."""
+    return {f"ivd_{prefix}{i}": float(v) for i, v in enumerate(values)}
 
 
 def _check_cluster_counts(plan: MomentPlan, counts: tuple[int, ...]) -> None:
@@ -313,15 +398,20 @@ def sql_cross_products(
     _check_columns(runner.columns(), model)
     absorb = model.absorb[0] if model.absorb else None
     plan = moment_plan(runner, model)
-    runner.scans_total = 3 if absorb else 2
+    # without an absorbed factor, homoskedastic and one-way clustered covariances usually need scan 1 only
+    one_pass = model.vcov == "homoskedastic" or (model.vcov == "clustered" and len(plan.clusters) == 1)
+    runner.scans_total = 3 if absorb else 1 if one_pass else 2
     timings: list[ScanTiming] = []
     n_cols = len(plan.demeaned)
     shift: list[float] | None = None
+    # clustered by one variable, scan 1 can group by cluster and give the cluster moments too (no moments scan)
+    by_cluster = absorb is None and model.vcov == "clustered" and len(plan.clusters) == 1
     if absorb is None:
-        sample = runner.one(sample_means_query(plan), "centring sample", 1)
+        sample = runner.one(sample_means_query(plan, distinct_clusters=by_cluster), "centring sample", 1)
         # an infinite value in the sample is reported by the counts scan; any finite shift will do until then
         shift = [v if np.isfinite(v) else 0.0 for v in packed(sample, "a", n_cols)]
-    row = _scan_counts(runner, plan, timings, shift)
+        by_cluster = by_cluster and int(sample["ivd_distinct"] or 0) <= ONE_SCAN_SAMPLE_MAX_DISTINCT
+    row, per_cluster = _scan_counts(runner, plan, timings, shift, by_cluster=by_cluster)
     n = int(row["ivd_complete"])
     wsum = float(row["ivd_wsum"])
     means = [float(row[f"ivd_s{j}"]) / wsum for j in range(n_cols)] if shift is None else []
@@ -365,15 +455,31 @@ def sql_cross_products(
             "engine='pandas' to have it named."
         ) from exc
     coef = part.coef @ scipy.linalg.solve_triangular(r1d1, np.eye(n_targets), check_finite=False)
-    t0 = time.monotonic()
-    mrows = runner.rows(
-        moments_query(plan, coef, means=means, means_table=means_table), "row and cluster moments", index
-    )
-    timings.append(ScanTiming("row and cluster moments", time.monotonic() - t0))
     m = n_targets
     u = m * (m + 1) // 2
     n_k = u * (u + 1) // 2
-    first = mrows[0]
+    one_scan = shift is not None and model.vcov != "heteroskedastic"
+    one_scan = one_scan and (model.vcov == "homoskedastic" or per_cluster is not None)
+    if one_scan and amplification(coef, gram) <= ONE_SCAN_MAX_AMPLIFICATION:
+        # the moments follow from scan 1's sums (error about amplification^2 x machine epsilon, see
+        # ONE_SCAN_MAX_AMPLIFICATION); the layout is that of the moments scan's single result row
+        first: dict[str, Any] = {"ivd_n": n}
+        mrows = [first]
+        if per_cluster is None:
+            t_sums = (coef.T @ gram @ coef)[pack_index(m)]
+        else:
+            delta = np.asarray(means) - np.asarray(shift)
+            t_sums, k_sums = cluster_sums_moments(per_cluster, delta, coef)
+            first.update({"ivd_groups": len(per_cluster.wsum), **_named("k", k_sums)})
+        first.update(_named("t", t_sums))
+    else:
+        runner.scans_total = index
+        t0 = time.monotonic()
+        mrows = runner.rows(
+            moments_query(plan, coef, means=means, means_table=means_table), "row and cluster moments", index
+        )
+        timings.append(ScanTiming("row and cluster moments", time.monotonic() - t0))
+        first = mrows[0]
     moment_sums: list[list[float]] = []
     groups: list[int] = []
     if model.vcov == "heteroskedastic":

@@ -18,6 +18,13 @@ The robust covariance needs no further scan after the coefficients: every robust
 function of the row moments sum_i t_i t_i' (t_i the packed products of row i's partialled columns), which scan 3
 collects before any coefficient is known; the cluster meats likewise need only the per-cluster sums.
 
+Without an absorbed factor, scan 1 also sums the Gram matrix (around a shift from the first rows), and for the
+homoskedastic and one-way clustered covariances it usually replaces scan 3 as well: grouped by cluster, its
+per-cluster Gram matrices multiplied by the coefficients give the cluster sums (:func:`cluster_sums_moments`),
+one read of the data in all. That product magnifies rounding by the square of :func:`amplification` (the
+row-by-row scan 3 by its first power), so above ONE_SCAN_MAX_AMPLIFICATION, or beyond ONE_SCAN_MAX_CLUSTERS
+clusters, scan 3 runs as before.
+
 Precision: the control coefficients come from the normal equations of demeaned columns (relative error about
 cond(controls)^2 x 1e-16) and the basis is CholeskyQR2 spread over scans 2 and 3, accurate while the partialled
 columns' condition number stays below about 1e7; a column that keeps less than SQL_MIN_LENGTH of its length
@@ -47,6 +54,15 @@ MAX_SUM_COLUMNS = 5000
 # the partialled Gram from the normal equations resolves lengths down to about sqrt(machine epsilon); a column
 # that keeps less than this share of its length is refused here (the pandas engine resolves 1e-9)
 SQL_MIN_LENGTH = 1e-7
+# One-scan cluster moments (:func:`cluster_sums_moments`) multiply each cluster's Gram matrix by the coefficients,
+# so their relative rounding error grows with the square of the amplification max_j sum_a |coef_aj| |d_a| (about
+# 1 for well-conditioned designs; the row-by-row moments scan grows with its first power): up to this bound the
+# error stays near 1e4 x machine epsilon, above it the moments scan runs instead
+ONE_SCAN_MAX_AMPLIFICATION = 100.0
+# per-cluster sums kept in memory for the one-scan moments (each about 1 KB for 14 columns); more clusters fall
+# back to the moments scan, and a centring sample with more distinct clusters than this skips the attempt
+ONE_SCAN_MAX_CLUSTERS = 50_000
+ONE_SCAN_SAMPLE_MAX_DISTINCT = 5_000
 
 
 @dataclass(frozen=True)
@@ -142,19 +158,30 @@ def rows_query(plan: MomentPlan) -> str:
     return f"SELECT ivd_cast.*, ({plan.complete()}) AS ivd_ok FROM ({cast}) ivd_cast"
 
 
-def sample_means_query(plan: MomentPlan, rows: int = 10000) -> str:
+def sample_means_query(plan: MomentPlan, rows: int = 10000, *, distinct_clusters: bool = False) -> str:
     """Means of the first complete rows (a few row groups, not a scan): the shift that keeps the one-scan Gram
-    matrix free of cancellation when no factor is absorbed."""
+    matrix free of cancellation when no factor is absorbed; with ``distinct_clusters`` also the number of
+    distinct values of the first cluster variable among them (``ivd_distinct``)."""
     sel = [f"avg({_alias('v', j)}) AS {_alias('a', j)}" for j in range(len(plan.demeaned))]
+    if distinct_clusters:
+        sel.append(f"count(DISTINCT {_alias('c', 0)}) AS ivd_distinct")
     return f"SELECT {', '.join(sel)} FROM (SELECT * FROM ({rows_query(plan)}) ivd_r WHERE ivd_ok LIMIT {int(rows)}) ivd_s"
 
 
-def counts_query(plan: MomentPlan, shift: Sequence[float] | None = None) -> str:
+def counts_query(plan: MomentPlan, shift: Sequence[float] | None = None, *, by_cluster: bool = False) -> str:
     """Scan 1, one row per value of the completeness flag (grouping is cheaper than filtered aggregates): rows,
     infinite values, bad weights, instrument ranges and weighted sums. With ``shift`` (no
     absorbed factor) also the weighted sums ``ivd_h{j}`` and cross-products ``ivd_g{i}`` of v - shift, from
-    which the centred Gram matrix follows exactly (G - h h' / W), so no separate Gram scan is needed."""
+    which the centred Gram matrix follows exactly (G - h h' / W), so no separate Gram scan is needed.
+
+    ``by_cluster`` (with ``shift`` and one cluster variable) groups by the cluster key as well: one row per
+    cluster (and completeness flag), whose sums give both the Gram matrix and, once the coefficients are known,
+    the cluster moments (:func:`cluster_sums_moments`), so the moments scan is not needed."""
     n_d = len(plan.demeaned)
+    if by_cluster and (shift is None or len(plan.clusters) != 1):
+        raise InvalidInputError(
+            "counts_query(by_cluster=True) needs a shift and exactly one cluster variable."
+        )
     sel = ["ivd_ok", "count(*) AS ivd_rows"]
     if shift is None or plan.weights:
         # without a shift (or with weights, whose missing values hide a row's other values from the sums)
@@ -183,7 +210,8 @@ def counts_query(plan: MomentPlan, shift: Sequence[float] | None = None) -> str:
             f"sum({x[a]} * {x[b]}) AS {_alias('g', i)}"
             for i, (a, b) in enumerate(zip(*pack_index(n_d), strict=True))
         ]
-    return f"SELECT {', '.join(sel)} FROM {src} GROUP BY ivd_ok"
+    group = f"ivd_ok, {_alias('c', 0)}" if by_cluster else "ivd_ok"
+    return f"SELECT {', '.join(sel)} FROM {src} GROUP BY {group}"
 
 
 def _infinite_counts(plan: MomentPlan) -> list[str]:
@@ -342,6 +370,54 @@ def raw_summary_query(plan: MomentPlan, columns: Sequence[int], split: int | Non
     v = _alias("v", split)
     arm = f"CASE WHEN {v} = 0.0e+00 THEN 0 WHEN {v} = 1.0e+00 THEN 1 ELSE 2 END"
     return f"SELECT {arm} AS ivd_arm, {', '.join(sel)} {src} GROUP BY {arm}"
+
+
+def amplification(coef: Array, gram: Array) -> float:
+    """max_j sum_a |coef_aj| |d_a| (|d_a| from the Gram diagonal): how much rounding in sums of the columns d is
+    magnified in those of d @ coef (whose columns have length about 1)."""
+    lengths = np.sqrt(np.clip(np.diag(gram), 0.0, None))
+    return float(np.max(np.abs(coef).T @ lengths))
+
+
+@dataclass(frozen=True)
+class ClusterSums:
+    """Per-cluster sums of scan 1 grouped by cluster (complete rows, v - shift scaled by sqrt(w)): weight sums,
+    the sums ``h`` and the packed cross-products ``g`` (one row per cluster)."""
+
+    wsum: Array
+    h: Array
+    g: Array
+
+
+def cluster_sums_moments(sums: ClusterSums, delta: Array, coef: Array) -> tuple[Array, Array]:
+    """The moments scan's clustered sums from scan 1's per-cluster sums: the packed Gram of b = d @ coef and the
+    packed sums of t_g t_g' (t_g the packed Gram of cluster g's rows of b).
+
+    Cluster g's Gram of the columns centred at the global means (d = x - sqrt(w) delta, x = sqrt(w)(v - shift),
+    delta = means - shift) is G_g - h_g delta' - delta h_g' + W_g delta delta'; then t_g = coef' D_g coef.
+    """
+    n_d, m = coef.shape
+    ia, ib = pack_index(n_d)
+    ta, tb = pack_index(m)
+    ka, kb = pack_index(m * (m + 1) // 2)
+    u = m * (m + 1) // 2
+    total = np.zeros(u)
+    outer = np.zeros(len(ka))
+    step = 4096
+    for start in range(0, sums.g.shape[0], step):
+        g = sums.g[start : start + step]
+        h = sums.h[start : start + step]
+        w = sums.wsum[start : start + step]
+        d = np.zeros((g.shape[0], n_d, n_d))
+        d[:, ia, ib] = g
+        d[:, ib, ia] = g
+        hd = h[:, :, None] * delta[None, None, :]
+        d -= hd + hd.transpose(0, 2, 1)
+        d += w[:, None, None] * np.outer(delta, delta)[None, :, :]
+        t = np.einsum("aj,gab,bk->gjk", coef, d, coef, optimize=True)[:, ta, tb]
+        total += t.sum(axis=0)
+        outer += np.einsum("gi,gi->i", t[:, ka], t[:, kb])
+    return total, outer
 
 
 def unpack(values: Sequence[float], size: int) -> Array:

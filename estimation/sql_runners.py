@@ -7,6 +7,7 @@ knows about models: the queries come from :mod:`ivdossier.estimation.sql_moments
 
 from __future__ import annotations
 
+import itertools
 import tempfile
 import threading
 import time
@@ -150,6 +151,23 @@ class Runner:
         with _Monitor(self._fraction, self.progress, scan, index, self.scans_total, self.rows_total):
             return self._fetch(sql)
 
+    def _batches(self, sql: str, size: int) -> Iterator[list[dict[str, Any]]]:
+        yield self._fetch(sql)
+
+    def each_batch(
+        self,
+        sql: str,
+        scan: str,
+        index: int,
+        consume: Callable[[list[dict[str, Any]]], None],
+        size: int = 2000,
+    ) -> None:
+        """Run one scan whose result may have many rows (one per cluster) and hand them to ``consume`` a batch
+        of at most ``size`` rows at a time, so they are never all held as Python objects."""
+        with _Monitor(self._fraction, self.progress, scan, index, self.scans_total, self.rows_total):
+            for batch in self._batches(sql, size):
+                consume(batch)
+
     def one(self, sql: str, scan: str, index: int) -> dict[str, Any]:
         """Run one scan that returns a single row."""
         out = self.rows(sql, scan, index)
@@ -259,6 +277,12 @@ class DuckDBRunner(Runner):
         names = [d[0] for d in cur.description]
         return [dict(zip(names, row, strict=True)) for row in cur.fetchall()]
 
+    def _batches(self, sql: str, size: int) -> Iterator[list[dict[str, Any]]]:
+        cur = self.con.execute(sql)
+        names = [d[0] for d in cur.description]
+        while rows := cur.fetchmany(size):
+            yield [dict(zip(names, row, strict=True)) for row in rows]
+
     def _fraction(self) -> float | None:
         v = float(self.con.query_progress())
         return v / 100.0 if v >= 0 else None
@@ -343,6 +367,11 @@ class SparkRunner(Runner):
 
     def _fetch(self, sql: str) -> list[dict[str, Any]]:
         return [r.asDict() for r in self.spark.sql(sql).collect()]
+
+    def _batches(self, sql: str, size: int) -> Iterator[list[dict[str, Any]]]:
+        rows = self.spark.sql(sql).toLocalIterator(prefetchPartitions=True)
+        while batch := [r.asDict() for r in itertools.islice(rows, size)]:
+            yield batch
 
     def _fraction(self) -> float | None:
         tracker = self.spark.sparkContext.statusTracker()

@@ -58,7 +58,9 @@ def data(tmp_path_factory: pytest.TempPathFactory) -> tuple[pd.DataFrame, Path]:
     return frame, path
 
 
-@pytest.mark.parametrize("design", ["liml-robust-absorb-weights", "2sls-twoway", "fuller-cluster-absorb"])
+@pytest.mark.parametrize(
+    "design", ["liml-robust-absorb-weights", "2sls-twoway", "fuller-cluster-absorb", "2sls-cluster-weights"]
+)
 def test_spark_equals_pandas_path_in_every_number(
     spark: Any, data: tuple[pd.DataFrame, Path], design: str
 ) -> None:
@@ -72,6 +74,9 @@ def test_spark_equals_pandas_path_in_every_number(
     # the runner dropped its views and kept the caller's session running
     assert not [t for t in spark.catalog.listTables() if t.name.startswith("ivd_")]
     assert spark.conf.get("spark.sql.codegen.maxFields") == "100"  # the session's setting is restored
+    # one-way clustered without an absorbed factor: the cluster moments come from scan 1 grouped by cluster
+    one_scan = design == "2sls-cluster-weights"
+    assert ("row and cluster moments" not in [s.scan for s in got.provenance.scans]) is one_scan
 
 
 @pytest.mark.parametrize(
