@@ -39,6 +39,7 @@ from ivdossier.reports.inputs import (
     LinkInfo,
     ProgramInfo,
 )
+from ivdossier.reports.parallel import render_parallel
 from ivdossier.vocabulary import BROKEN, READING_ASPECTS
 
 if TYPE_CHECKING:
@@ -199,6 +200,7 @@ def _pages(
 ) -> dict[str, bytes]:
     stamp = _stamp(dossiers)
     written: dict[str, bytes] = {}
+    instrument_pages: list[tuple[str, DossierInput, str]] = []
     has_studies = extras.studies is not None and bool(extras.studies.inputs.studies)
     _write(
         root, "index.html", _index_page(ordered, by_program, program_dirs, title, stamp, has_studies), written
@@ -227,13 +229,19 @@ def _pages(
                 f"[All programs](../../../index.html) · [{mt.inline(program.title or program.slug)}](../index.html)"
                 " · [Threat catalogue](../../../catalogue.html)"
             )
-            _write(
-                root,
-                f"programs/{folder}/instruments/{files[id(d)]}.html",
-                dossier_html(d, preamble=nav),
-                written,
-            )
+            relative = f"programs/{folder}/instruments/{files[id(d)]}.html"
+            _write(root, relative, "", written)  # its place in the site's order; rendered below
+            instrument_pages.append((relative, d, nav))
+    # The instrument pages are most of the work and independent of each other: render them on all cores.
+    rendered = render_parallel(instrument_pages, _instrument_page)
+    for (relative, _, _), html in zip(instrument_pages, rendered, strict=True):
+        written[relative] = html
     return written
+
+
+def _instrument_page(page: tuple[str, DossierInput, str]) -> bytes:
+    _, d, nav = page
+    return dossier_html(d, preamble=nav).encode("utf-8")
 
 
 @dataclass(frozen=True)

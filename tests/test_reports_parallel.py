@@ -1,0 +1,157 @@
+"""Instrument pages rendered on several cores: the serial render is the reference (exact identity, byte for byte)."""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+import sys
+from pathlib import Path
+
+import pytest
+
+from ivdossier.errors import InvalidInputError
+from ivdossier.reports import mdtext as mt
+from ivdossier.reports import parallel
+from ivdossier.reports import site as site_module
+from ivdossier.reports.inputs import DossierInput, InstrumentInfo, ProgramInfo
+from ivdossier.reports.sample import PROGRAM, make_run, sample_input
+from ivdossier.reports.site import build_site
+from ivdossier.workflows.verdicts import with_verdicts
+
+linux_only = pytest.mark.skipif(
+    not sys.platform.startswith("linux"), reason="forked workers are used on Linux only"
+)
+
+
+@pytest.fixture
+def forced(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The parallel path even for a handful of items and on a one-core machine (two workers)."""
+    monkeypatch.setattr(parallel, "MIN_PARALLEL", 2)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+
+
+def _tagged(i: int) -> tuple[int, int, bool]:
+    return i, os.getpid(), mt.html_target()
+
+
+def test_worker_count_rules(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(os, "cpu_count", lambda: 8)
+    assert parallel.worker_count(parallel.MIN_PARALLEL - 1) == 0
+    assert parallel.worker_count(parallel.MIN_PARALLEL) == (4 if sys.platform.startswith("linux") else 0)
+    monkeypatch.setattr(os, "cpu_count", lambda: 1)
+    assert parallel.worker_count(10_000) == 0
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    monkeypatch.setattr(sys, "platform", "darwin")
+    assert parallel.worker_count(10_000) == 0
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_order_kept_workers_used_and_context_inherited() -> None:
+    items = list(range(37))  # not a multiple of the chunk count
+    with mt.for_html():
+        out = parallel.render_parallel(items, _tagged)
+    assert [i for i, _, _ in out] == items
+    assert os.getpid() not in {pid for _, pid, _ in out}  # rendered by workers, not by this process
+    assert len({pid for _, pid, _ in out}) == 2
+    assert all(html for _, _, html in out)  # the for_html() context variable is seen by the workers
+    assert not any(html for _, _, html in parallel.render_parallel(items, _tagged))
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_an_error_in_a_worker_is_the_serial_error() -> None:
+    def fail_on_7(i: int) -> str:
+        if i in (7, 30):
+            raise InvalidInputError(f"item {i} is bad; fix it.")
+        return str(i)
+
+    with pytest.raises(InvalidInputError, match=r"^item 7 is bad; fix it\.$"):
+        parallel.render_parallel(list(range(40)), fail_on_7)
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_a_worker_that_dies_falls_back_to_the_serial_render() -> None:
+    parent = os.getpid()
+
+    def die_in_worker(i: int) -> str:
+        if os.getpid() != parent and i == 3:
+            os._exit(3)
+        return f"page {i}"
+
+    assert parallel.render_parallel(list(range(20)), die_in_worker) == [f"page {i}" for i in range(20)]
+
+
+def _dossiers() -> list[DossierInput]:
+    second = ProgramInfo(slug="telehealth-ed-2", title="A second question")
+    out = [sample_input()]
+    for k, (program, slug) in enumerate(
+        [(PROGRAM, "mast"), (second, "z"), (PROGRAM, "rollout"), (second, "fees"), (second, "z")]
+    ):
+        base = sample_input(n_links=3, n_runs=2)
+        out.append(
+            dataclasses.replace(
+                base,
+                program=program,
+                instrument=InstrumentInfo(slug=slug, name=f"Instrument {k}"),
+                runs=(make_run(k + 1, plots=k % 2 == 0),),
+            )
+        )
+    return [with_verdicts(d) for d in out]
+
+
+def _site(out: Path) -> tuple[list[str], dict[str, bytes]]:
+    written = build_site(out, [PROGRAM], _dossiers(), [])
+    root = out.resolve()
+    return [p.relative_to(root).as_posix() for p in written], {
+        p.relative_to(root).as_posix(): p.read_bytes() for p in root.rglob("*") if p.is_file()
+    }
+
+
+@linux_only
+def test_parallel_site_is_byte_identical_to_the_serial_site(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(parallel, "MIN_PARALLEL", 10**9)
+    serial_order, serial_files = _site(tmp_path / "serial")
+
+    log = tmp_path / "pids.txt"
+    real = site_module.dossier_html
+
+    def logged(d: DossierInput, *, preamble: str = "") -> str:
+        with log.open("a", encoding="utf-8") as f:
+            f.write(f"{os.getpid()}\n")
+        return real(d, preamble=preamble)
+
+    monkeypatch.setattr(site_module, "dossier_html", logged)
+    monkeypatch.setattr(parallel, "MIN_PARALLEL", 2)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    parallel_order, parallel_files = _site(tmp_path / "parallel")
+
+    pids = log.read_text(encoding="utf-8").split()
+    assert len(pids) == 6 and str(os.getpid()) not in pids  # every dossier page was rendered in a worker
+    assert parallel_order == serial_order  # same pages in the same order
+    assert sum(1 for rel in serial_order if "/instruments/" in rel) == 6
+    assert parallel_files.keys() == serial_files.keys()
+    for rel, data in serial_files.items():
+        assert parallel_files[rel] == data, rel
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_a_failing_page_fails_the_parallel_build_as_the_serial_one_and_writes_nothing(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    real = site_module.dossier_html
+
+    def broken_for_z(d: DossierInput, *, preamble: str = "") -> str:
+        if d.instrument.slug == "z":
+            raise InvalidInputError("instrument z cannot be rendered; fix its record.")
+        return real(d, preamble=preamble)
+
+    monkeypatch.setattr(site_module, "dossier_html", broken_for_z)
+    with pytest.raises(InvalidInputError, match=r"^instrument z cannot be rendered; fix its record\.$"):
+        build_site(tmp_path / "site", [PROGRAM], _dossiers(), [])
+    assert not (tmp_path / "site").exists()
+    assert [p.name for p in tmp_path.iterdir()] == []
