@@ -18,7 +18,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from ivdossier import __version__
-from ivdossier.registry import records
+from ivdossier.registry import bulk, records
 from ivdossier.registry.bulk import EventRow, LinkRow, RatingRow
 from ivdossier.registry.history import history
 from ivdossier.registry.instruments import covariates_of, edges_of
@@ -30,9 +30,7 @@ from ivdossier.registry.models import (
     GraphEdge,
     Instrument,
     Link,
-    Member,
     Program,
-    Rating,
     Run,
     Study,
     Threat,
@@ -61,7 +59,6 @@ class RegistryReader:
         self.session = session
         self._programs: dict[int, Program] = {}
         self._links: dict[int, list[tuple[Link | LinkRow, Threat]]] = {}
-        self._ratings: dict[int, list[tuple[Rating, Member]]] = {}
         self._rating_rows: dict[int, list[RatingRow]] | None = None
         self._runs: dict[int, list[Run]] = {}
         self._datasets: dict[int, Dataset | None] = {}
@@ -74,8 +71,6 @@ class RegistryReader:
 
     def preload(self, instruments: Sequence[Instrument]) -> None:
         """Read everything the dossiers of `instruments` show in one batch query per table."""
-        from ivdossier.registry import bulk
-
         ids = [i.id for i in instruments if i.id is not None]
         self._programs = bulk.programs(self.session)
         links, _threats = bulk.link_rows_by_instrument(self.session, ids)
@@ -109,25 +104,12 @@ class RegistryReader:
         return self._links[key]
 
     def rating_infos(self, link: Link | LinkRow) -> tuple[ri.Rating, ...]:
-        """The link's ratings as the reports layer reads them, by reviewer handle."""
-        if self._rating_rows is not None:
-            return tuple(
-                _rating(r.handle, r.likelihood, r.severity, r.comment)
-                for r in self._rating_rows.get(link.id, ())
-            )
-        return tuple(_rating(m.handle, r.likelihood, r.severity, r.comment) for r, m in self.ratings(link))
-
-    def ratings(self, link: Link | LinkRow) -> list[tuple[Rating, Member]]:
-        key = link.id or 0
-        if key not in self._ratings:
-            self._ratings[key] = list(
-                self.session.execute(
-                    select(Rating, Member)
-                    .where(Rating.link_id == link.id, Rating.member_id == Member.id)
-                    .order_by(Member.handle, Rating.id)  # type: ignore[arg-type]
-                ).all()
-            )
-        return self._ratings[key]
+        """The link's ratings as the reports layer reads them, by reviewer handle (then rating id)."""
+        if self._rating_rows is None:
+            rows = bulk.rating_rows_by_link(self.session, [link.id]).get(link.id or 0, [])
+        else:
+            rows = self._rating_rows.get(link.id or 0, [])
+        return tuple(_rating(r.handle, r.likelihood, r.severity, r.comment) for r in rows)
 
     def runs(self, instrument: Instrument) -> list[Run]:
         key = instrument.id or 0
@@ -587,7 +569,6 @@ def write_site(
     session: Session, out: Path, *, generated_at: datetime | str, relative_to: Path | None = None
 ) -> list[Path]:
     """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
-    from ivdossier.registry import bulk
     from ivdossier.reports.site import build_site
     from ivdossier.threats_catalog.draw import render_svg
 
