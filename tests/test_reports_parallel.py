@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import multiprocessing
 import os
 import sys
 from pathlib import Path
@@ -34,6 +35,17 @@ def _tagged(i: int) -> tuple[int, int, bool]:
     return i, os.getpid(), mt.html_target()
 
 
+# The first items of the first two chunks (37 items, 2 workers x 4 chunks: chunks of 5) meet at a barrier made
+# before the fork, so the worker holding chunk 0 waits until another process has taken chunk 1: both workers render.
+_MEET = multiprocessing.get_context("fork").Barrier(2) if sys.platform.startswith("linux") else None
+
+
+def _tagged_after_meeting(i: int) -> tuple[int, int, bool]:
+    if i in (0, 5) and _MEET is not None:
+        _MEET.wait(timeout=60)
+    return _tagged(i)
+
+
 def test_worker_count_rules(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(os, "cpu_count", lambda: 8)
     assert parallel.worker_count(parallel.MIN_PARALLEL - 1) == 0
@@ -50,7 +62,7 @@ def test_worker_count_rules(monkeypatch: pytest.MonkeyPatch) -> None:
 def test_order_kept_workers_used_and_context_inherited() -> None:
     items = list(range(37))  # not a multiple of the chunk count
     with mt.for_html():
-        out = parallel.render_parallel(items, _tagged)
+        out = parallel.render_parallel(items, _tagged_after_meeting)
     assert [i for i, _, _ in out] == items
     assert os.getpid() not in {pid for _, pid, _ in out}  # rendered by workers, not by this process
     assert len({pid for _, pid, _ in out}) == 2
