@@ -75,8 +75,9 @@ def _defer_value_check(param: Any) -> None:
 
     Recent typer (0.29 here) checks option values with a pydantic TypeAdapter, built (and pydantic imported, about
     a fifth of a listing's start-up) the first time an option is processed, even an option left out. Here a
-    left-out option stays None (or empty), text stays the same text, and any other value (numbers, paths, dates,
-    choices) goes to the checker typer builds then, so every value is read exactly as typer reads it.
+    left-out option stays None (or empty), text stays the same text, a path goes through typer's own path checks,
+    and any other value (numbers, dates, choices) goes to the checker typer builds then, so every value is read
+    exactly as typer reads it.
     """
     descriptor: Any = getattr(param, "type_descriptor", None)
     info = getattr(descriptor, "parameter_info", None)
@@ -94,7 +95,10 @@ def _defer_value_check(param: Any) -> None:
 def _deferred_check_class() -> Any:
     """A typer runtime checker that stands in for typer's own until a value needs it (None for older typer)."""
     try:
+        from pathlib import Path
+
         from typer._coercion import RuntimeParam, build_runtime_param
+        from typer._param_types import coerce_cli_path
     except ImportError:  # pragma: no cover - typer without pydantic-based checks
         return None
 
@@ -111,6 +115,15 @@ def _deferred_check_class() -> Any:
                 and all(isinstance(v, str) for v in value)
             ):
                 return list(value)
+            if (
+                self.annotation is Path
+                and isinstance(value, str)
+                and value
+                and self.parameter_info.path_type is None
+            ):
+                # typer's own path checks (exists, file or folder, readable...), given the Path that its pydantic
+                # step would make of the text; a Path value skips that step.
+                return coerce_cli_path(Path(value), self.parameter_info, path_type=Path, param=param, ctx=ctx)
             real = build_runtime_param(self.descriptor)
             param._runtime_param = real
             return real._coerce_value(value, param=param, ctx=ctx)

@@ -6,6 +6,7 @@ reference here is typer's own checker (`typer._coercion.build_runtime_param`), b
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -35,6 +36,16 @@ SAMPLES: dict[Any, tuple[Any, ...]] = {
     list[str]: ([], ("age",), ["age", "chronic_conditions"]),
     int: ("3", "-1"),
     float: ("0.05", "1e-3"),
+    # an existing file, an existing folder, a missing file, a relative name, "-", and text pydantic reads as is
+    Path: (
+        __file__,
+        str(Path(__file__).parent),
+        "/no/such/folder/x.html",
+        "out/dossier.md",
+        "-",
+        " a b ",
+        "ü.md",
+    ),
 }
 
 
@@ -60,6 +71,14 @@ def test_values_read_as_typer_reads_them(annotation: Any) -> None:
             assert (got, type(got)) == (expected, type(expected)), (name, value)
             checked += 1
     assert checked > 0
+
+
+def test_path_options_never_build_typers_pydantic_checker() -> None:
+    """A path value is checked by typer's own path checks without the pydantic-based checker being built."""
+    name, param = next((n, p) for n, p in PARAMS if p.type_descriptor.annotation is Path)
+    assert type(param._runtime_param).__name__ == "DeferredCheck", name
+    assert param._runtime_param._coerce_value("x.html", param=param, ctx=None) == Path("x.html")
+    assert type(param._runtime_param).__name__ == "DeferredCheck", name  # not replaced by typer's own checker
 
 
 def test_a_bad_number_gets_typers_message() -> None:
