@@ -233,6 +233,7 @@ def _pages(
         for d in by_program[program.slug]:
             relative = f"programs/{folder}/instruments/{files[id(d)]}.html"
             instrument_pages.append((relative, d, nav, files[id(d)]))
+    _warm_up()
     rendered = render_parallel(instrument_pages, _instrument_page)
     html_of: dict[str, bytes] = {}
     summary: dict[int, _Summary] = {}
@@ -270,6 +271,15 @@ def _pages(
             )  # checks the path and keeps the page's place in the site's order
             written[relative] = html_of[relative]
     return written
+
+
+def _warm_up() -> None:
+    """Import and build once here what a dossier page loads on first use, so that forked workers inherit it
+    instead of each loading it again."""
+    from ivdossier.reports import html, jackknife_plot, plots, svgplot, variant_checklist  # noqa: F401
+
+    html.stylesheet()
+    html._section_parser()  # remembered per process, as the stylesheet
 
 
 @dataclass(frozen=True)

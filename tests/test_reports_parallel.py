@@ -36,13 +36,14 @@ def _tagged(i: int) -> tuple[int, int, bool]:
     return i, os.getpid(), mt.html_target()
 
 
-# The first items of the first two chunks (37 items, 2 workers x 4 chunks: chunks of 5) meet at a barrier made
-# before the fork, so the worker holding chunk 0 waits until another process has taken chunk 1: both workers render.
+# The first items of the first two chunks (37 items, 2 workers) meet at a barrier made before the fork, so the
+# worker holding chunk 0 waits until another process has taken chunk 1: both workers render.
 _MEET = multiprocessing.get_context("fork").Barrier(2) if sys.platform.startswith("linux") else None
+_CHUNK = -(-37 // (2 * parallel._CHUNKS_PER_WORKER))
 
 
 def _tagged_after_meeting(i: int) -> tuple[int, int, bool]:
-    if i in (0, 5) and _MEET is not None:
+    if i in (0, _CHUNK) and _MEET is not None:
         _MEET.wait(timeout=60)
     return _tagged(i)
 

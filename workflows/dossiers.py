@@ -633,6 +633,7 @@ def write_site(
 
 def _import_assembly_modules() -> None:
     """Import what assembling a dossier imports on first use, so that forked workers inherit it."""
+    import ivdossier.registry.portability
     import ivdossier.reports.design_sections
     import ivdossier.threats_catalog.checks
     import ivdossier.threats_catalog.graph
