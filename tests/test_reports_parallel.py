@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import dataclasses
+import gc
 import multiprocessing
 import os
 import sys
+import weakref
 from functools import partial
 from pathlib import Path
 
@@ -248,3 +250,32 @@ def test_a_pending_dossier_must_assemble_as_the_instrument_it_names(tmp_path: Pa
     with pytest.raises(RuntimeError, match="was assembled as"):
         build_site(tmp_path / "site", [PROGRAM], [wrong], [])
     assert list(tmp_path.iterdir()) == []
+
+
+class _Node:
+    def __init__(self) -> None:
+        self.me = self  # a reference cycle: only the garbage collector frees it
+
+
+_REFS: list[weakref.ref[_Node]] = []
+
+
+def _cycle_then_count(i: int) -> tuple[int, int, bool]:
+    """Make one reference cycle; return this process's id, how many of its earlier cycles are still alive, and
+    whether automatic garbage collection is on."""
+    alive = sum(1 for r in _REFS if r() is not None)
+    _REFS.append(weakref.ref(_Node()))
+    return os.getpid(), alive, gc.isenabled()
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_workers_collect_garbage_after_each_chunk_not_while_rendering_it() -> None:
+    n = 64  # 2 workers x 8 chunks: chunks of 4
+    size = -(-n // (2 * parallel._CHUNKS_PER_WORKER))
+    out = parallel.render_parallel(list(range(n)), _cycle_then_count)
+    assert gc.isenabled() and os.getpid() not in {pid for pid, _, _ in out}
+    assert not any(enabled for _, _, enabled in out)  # automatic collection is off while a chunk renders
+    for start in range(0, n, size):
+        # within a chunk every earlier cycle of the chunk is still alive; those of earlier chunks were collected
+        assert [alive for _, alive, _ in out[start : start + size]] == list(range(size))
