@@ -223,3 +223,40 @@ def test_a_forked_worker_may_not_read_the_registry(
             assert s.execute(select(func.count()).select_from(Instrument)).scalar_one() == len(INSTRUMENTS)
     finally:
         registry.dispose()
+
+
+def test_preloading_pauses_the_garbage_collector_and_restores_it(
+    demo_dir: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import gc
+
+    from ivdossier.registry import bulk
+    from ivdossier.workflows import dossiers as wd
+
+    seen: list[bool] = []
+    real = bulk.runs_by_instrument
+
+    def watched(*args: Any, **kwargs: Any) -> Any:
+        seen.append(gc.isenabled())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(bulk, "runs_by_instrument", watched)
+    registry = open_registry(str(demo_dir / "ivdossier.sqlite"))
+    try:
+        with registry.reading() as s:
+            assert gc.isenabled()
+            wd.RegistryReader(s).preload(bulk.instruments(s))
+            assert seen == [False] and gc.isenabled()
+            monkeypatch.setattr(bulk, "runs_by_instrument", lambda *a, **k: 1 / 0)
+            with pytest.raises(ZeroDivisionError):
+                wd.RegistryReader(s).preload(bulk.instruments(s))
+            assert gc.isenabled()  # restored after a failed read too
+            monkeypatch.setattr(bulk, "runs_by_instrument", real)
+            gc.disable()
+            try:
+                wd.RegistryReader(s).preload([])
+                assert not gc.isenabled()  # left off when it was off
+            finally:
+                gc.enable()
+    finally:
+        registry.dispose()

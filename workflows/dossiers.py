@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import gc
 import os
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -73,7 +74,12 @@ class RegistryReader:
         self.preloaded = False
 
     def preload(self, instruments: Sequence[Instrument]) -> None:
-        """Read everything the dossiers of `instruments` show in one batch query per table."""
+        """Read everything the dossiers of `instruments` show in one batch query per table (with the garbage
+        collector paused: every object read is kept, so its collections would find nothing)."""
+        with collector_paused():
+            self._preload(instruments)
+
+    def _preload(self, instruments: Sequence[Instrument]) -> None:
         ids = [i.id for i in instruments if i.id is not None]
         self._programs = bulk.programs(self.session)
         links, _threats = bulk.link_rows_by_instrument(self.session, ids)
@@ -171,6 +177,18 @@ class RegistryReader:
         if key not in self._entries:
             self._entries[key] = catalog_entry(threat)
         return self._entries[key]
+
+
+@contextmanager
+def collector_paused() -> Iterator[None]:
+    """Automatic garbage collection off while the block runs (as it was before, afterwards)."""
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
 
 
 def graph_roles(program: Program, instrument: Instrument) -> dict[str, str]:
