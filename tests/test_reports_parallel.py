@@ -270,12 +270,15 @@ def _cycle_then_count(i: int) -> tuple[int, int, bool]:
 
 @linux_only
 @pytest.mark.usefixtures("forced")
-def test_workers_collect_garbage_after_each_chunk_not_while_rendering_it() -> None:
-    n = 64  # 2 workers x 8 chunks: chunks of 4
+def test_workers_collect_garbage_every_few_items_not_while_rendering_each(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    monkeypatch.setattr(parallel, "_COLLECT_EVERY", 3)
+    n = 112  # 2 workers x 8 chunks: chunks of 7, collected after items 3 and 6 of each and at its end
     size = -(-n // (2 * parallel._CHUNKS_PER_WORKER))
     out = parallel.render_parallel(list(range(n)), _cycle_then_count)
     assert gc.isenabled() and os.getpid() not in {pid for pid, _, _ in out}
-    assert not any(enabled for _, _, enabled in out)  # automatic collection is off while a chunk renders
+    assert not any(enabled for _, _, enabled in out)  # automatic collection is off while items render
     for start in range(0, n, size):
-        # within a chunk every earlier cycle of the chunk is still alive; those of earlier chunks were collected
-        assert [alive for _, alive, _ in out[start : start + size]] == list(range(size))
+        # the cycles made since the last collection are alive; all earlier ones (other chunks too) were collected
+        assert [alive for _, alive, _ in out[start : start + size]] == [0, 1, 2, 0, 1, 2, 0]
