@@ -266,9 +266,8 @@ def _pages(
             )
         for sm in mine:
             relative = f"programs/{folder}/instruments/{sm.file}.html"
-            _write(
-                root, relative, "", written
-            )  # checks the path and keeps the page's place in the site's order
+            # _write checks the path; the page keeps its place in the site's order
+            _write(root, relative, "", written)
             written[relative] = html_of[relative]
     return written
 
