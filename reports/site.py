@@ -19,7 +19,7 @@ from __future__ import annotations
 import os
 import re
 import unicodedata
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -72,6 +72,20 @@ class RunRow:
     primary: bool = False
     summary: tuple[tuple[str, str], ...] = ()
     warnings: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class PendingDossier:
+    """A dossier assembled only where its page is rendered (in a forked worker when the site uses several cores).
+
+    `assemble` must not read the registry: whatever it needs is read before the site is built, since a worker
+    must never use the parent's database connection. `program` and `slug` place the page in the site before the
+    dossier exists; they must equal the assembled dossier's program and instrument slug.
+    """
+
+    program: ProgramInfo
+    slug: str
+    assemble: Callable[[], DossierInput]
 
 
 @dataclass(frozen=True)
@@ -153,7 +167,7 @@ def _check_old_site(root: Path) -> list[str]:
 def build_site(
     out_dir: str | Path,
     programs: Sequence[ProgramInfo],
-    dossiers: Sequence[DossierInput],
+    dossiers: Sequence[DossierInput | PendingDossier],
     catalog_entries: Sequence[CatalogEntry] = (),
     *,
     title: str = "Instrument dossiers",
@@ -164,7 +178,9 @@ def build_site(
     """Write the site under `out_dir` and return the written files (index first).
 
     Dossiers are grouped by their program's slug; a dossier whose program is not in `programs` brings its own.
-    `plans` and `runs` are shown under their program; `studies` (when given) gets its own page.
+    A `PendingDossier` is assembled together with its page (on all cores when there are many), so the site is
+    the same as one built from the assembled dossiers. `plans` and `runs` are shown under their program;
+    `studies` (when given) gets its own page.
     """
     root = Path(out_dir).expanduser().resolve()
     safefiles.clean_stale(root)
@@ -177,7 +193,7 @@ def build_site(
             known.add(d.program.slug)
     used_programs: set[str] = set()
     program_dirs = {p.slug: _unique(safe_slug(p.slug), used_programs) for p in ordered}
-    by_program: dict[str, list[DossierInput]] = {p.slug: [] for p in ordered}
+    by_program: dict[str, list[DossierInput | PendingDossier]] = {p.slug: [] for p in ordered}
     for d in dossiers:
         by_program[d.program.slug].append(d)
     extras = _Extras(plans=plans, runs=runs, studies=studies)
@@ -188,60 +204,120 @@ def build_site(
     return [root.joinpath(*rel.split("/")) for rel in written]
 
 
+def _slug_of(d: DossierInput | PendingDossier) -> str:
+    return d.slug if isinstance(d, PendingDossier) else d.instrument.slug
+
+
 def _pages(
     root: Path,
     ordered: Sequence[ProgramInfo],
-    by_program: dict[str, list[DossierInput]],
+    by_program: dict[str, list[DossierInput | PendingDossier]],
     program_dirs: dict[str, str],
-    dossiers: Sequence[DossierInput],
+    dossiers: Sequence[DossierInput | PendingDossier],
     catalog_entries: Sequence[CatalogEntry],
     title: str,
     extras: _Extras,
 ) -> dict[str, bytes]:
-    stamp = _stamp(dossiers)
+    # The instrument pages are most of the work and independent of each other: they are assembled (when pending)
+    # and rendered first, on all cores, each with what the pages listing it show of it (a `_Summary`).
+    files: dict[int, str] = {}
+    instrument_pages: list[tuple[str, DossierInput | PendingDossier, str, str]] = []
+    for program in ordered:
+        folder = program_dirs[program.slug]
+        used: set[str] = set()
+        files.update({id(d): _unique(safe_slug(_slug_of(d)), used) for d in by_program[program.slug]})
+        nav = (
+            f"[All programs](../../../index.html) · [{mt.inline(program.title or program.slug)}](../index.html)"
+            " · [Threat catalogue](../../../catalogue.html)"
+        )
+        for d in by_program[program.slug]:
+            relative = f"programs/{folder}/instruments/{files[id(d)]}.html"
+            instrument_pages.append((relative, d, nav, files[id(d)]))
+    _warm_up()
+    rendered = render_parallel(instrument_pages, _instrument_page)
+    html_of: dict[str, bytes] = {}
+    summary: dict[int, _Summary] = {}
+    for (relative, d, _, _), (html, made) in zip(instrument_pages, rendered, strict=True):
+        html_of[relative] = html
+        summary[id(d)] = made
+    groups = {slug: [summary[id(d)] for d in ds] for slug, ds in by_program.items()}
+
+    stamp = _stamp([summary[id(d)] for d in dossiers])
     written: dict[str, bytes] = {}
-    instrument_pages: list[tuple[str, DossierInput, str]] = []
     has_studies = extras.studies is not None and bool(extras.studies.inputs.studies)
-    _write(
-        root, "index.html", _index_page(ordered, by_program, program_dirs, title, stamp, has_studies), written
-    )
+    _write(root, "index.html", _index_page(ordered, groups, program_dirs, title, stamp, has_studies), written)
     _write(root, "catalogue.html", _catalogue_page(catalog_entries, stamp), written)
     if has_studies and extras.studies is not None:
         _write(root, "studies.html", _studies_page(extras.studies, stamp), written)
     for program in ordered:
         folder = program_dirs[program.slug]
-        used: set[str] = set()
-        files = {id(d): _unique(safe_slug(d.instrument.slug), used) for d in by_program[program.slug]}
         used_plans: set[str] = set()
         plans = [pl for pl in extras.plans if pl.program == program.slug]
         plan_files = {pl.slug: _unique(safe_slug(pl.slug), used_plans) for pl in plans}
         runs = [r for r in extras.runs if r.program == program.slug]
-        by_slug = {d.instrument.slug: files[id(d)] for d in by_program[program.slug]}
-        page = _program_page(program, by_program[program.slug], files, stamp, plans, plan_files, len(runs))
+        mine = groups[program.slug]
+        by_slug = {sm.slug: sm.file for sm in mine}
+        page = _program_page(program, mine, stamp, plans, plan_files, len(runs))
         _write(root, f"programs/{folder}/index.html", page, written)
         _write(root, f"programs/{folder}/runs.html", _runs_page(program, runs, by_slug, stamp), written)
         for pl in plans:
             _write(
                 root, f"programs/{folder}/plans/{plan_files[pl.slug]}.html", _plan_page(program, pl), written
             )
-        for d in by_program[program.slug]:
-            nav = (
-                f"[All programs](../../../index.html) · [{mt.inline(program.title or program.slug)}](../index.html)"
-                " · [Threat catalogue](../../../catalogue.html)"
-            )
-            relative = f"programs/{folder}/instruments/{files[id(d)]}.html"
-            _write(root, relative, "", written)  # its place in the site's order; rendered below
-            instrument_pages.append((relative, d, nav))
-    # The instrument pages are most of the work and independent of each other: render them on all cores.
-    rendered = render_parallel(instrument_pages, _instrument_page)
-    for (relative, _, _), html in zip(instrument_pages, rendered, strict=True):
-        written[relative] = html
+        for sm in mine:
+            relative = f"programs/{folder}/instruments/{sm.file}.html"
+            # _write checks the path; the page keeps its place in the site's order
+            _write(root, relative, "", written)
+            written[relative] = html_of[relative]
     return written
 
 
-def _instrument_page(page: tuple[str, DossierInput, str]) -> bytes:
-    _, d, nav = page
-    return dossier_html(d, preamble=nav).encode("utf-8")
+def _warm_up() -> None:
+    """Import and build once here what a dossier page loads on first use, so that forked workers inherit it
+    instead of each loading it again."""
+    from ivdossier.reports import html, jackknife_plot, plots, svgplot, variant_checklist  # noqa: F401
+
+    html.stylesheet()
+    html._section_parser()  # remembered per process, as the stylesheet
+
+
+@dataclass(frozen=True)
+class _Summary:
+    """What the pages listing an instrument show of it (taken from its dossier where its page is rendered, so
+    that only this, not the dossier, comes back from a worker)."""
+
+    slug: str
+    file: str
+    sort_key: str
+    row: tuple[str, ...]
+    broken: bool
+    generated_text: str
+    tool_version: str
+
+
+def _summary(d: DossierInput, file: str) -> _Summary:
+    return _Summary(
+        slug=d.instrument.slug,
+        file=file,
+        sort_key=(d.instrument.name or d.instrument.slug).lower(),
+        row=_candidate_row(d, file),
+        broken=any(v.status == BROKEN for v in d.verdicts),
+        generated_text=d.generated_text,
+        tool_version=d.tool_version,
+    )
+
+
+def _instrument_page(page: tuple[str, DossierInput | PendingDossier, str, str]) -> tuple[bytes, _Summary]:
+    """The instrument's page (its dossier assembled first when pending) and its summary."""
+    _, d, nav, file = page
+    if isinstance(d, PendingDossier):
+        pending, d = d, d.assemble()
+        if d.program.slug != pending.program.slug or d.instrument.slug != pending.slug:
+            raise RuntimeError(
+                f"the pending dossier {pending.program.slug}/{pending.slug} was assembled as "
+                f"{d.program.slug}/{d.instrument.slug}"
+            )
+    return dossier_html(d, preamble=nav).encode("utf-8"), _summary(d, file)
 
 
 @dataclass(frozen=True)
@@ -315,7 +391,7 @@ def _runs_page(program: ProgramInfo, runs: Sequence[RunRow], files: Mapping[str,
     return render_html("\n\n".join(parts) + "\n", title=f"Runs: {program.title or program.slug}", svgs={})
 
 
-def _stamp(dossiers: Sequence[DossierInput]) -> str:
+def _stamp(dossiers: Sequence[_Summary]) -> str:
     if not dossiers:
         return ""
     latest = max(dossiers, key=lambda d: d.generated_text)
@@ -324,7 +400,7 @@ def _stamp(dossiers: Sequence[DossierInput]) -> str:
 
 def _index_page(
     programs: Sequence[ProgramInfo],
-    by_program: dict[str, list[DossierInput]],
+    by_program: dict[str, list[_Summary]],
     dirs: dict[str, str],
     title: str,
     stamp: str,
@@ -337,7 +413,7 @@ def _index_page(
         rows = []
         for p in programs:
             ds = by_program[p.slug]
-            broken = sum(1 for d in ds if any(v.status == BROKEN for v in d.verdicts))
+            broken = sum(1 for d in ds if d.broken)
             rows.append(
                 [
                     f"[{mt.inline(p.title or p.slug)}](programs/{dirs[p.slug]}/index.html)",
@@ -384,10 +460,25 @@ def _strongest_threat(links: Sequence[LinkInfo]) -> str:
     return f"{mt.inline(top.threat_code)} {mt.inline(top.title)} ({top.state}{sev})"
 
 
+def _candidate_row(d: DossierInput, file: str) -> tuple[str, ...]:
+    """The instrument's row in its program's side-by-side table."""
+    run = headline_run(d.runs)
+    feff = effective_f_of(run.result)[0] if run is not None else None
+    ar = ar_set_of(run.result) if run is not None else None
+    described = ", ".join(mt.inline(x) for x in (d.instrument.family, d.instrument.state) if x)
+    return (
+        f"[{mt.inline(d.instrument.name or d.instrument.slug)}](instruments/{file}.html)"
+        + (f" ({described})" if described else ""),
+        *[_badge(d, c) for c in CONDITIONS],
+        _strongest_threat(d.links),
+        rv.fmt(feff) if feff is not None else "–",
+        rv.fmt_set(ar) if ar is not None else "–",
+    )
+
+
 def _program_page(
     program: ProgramInfo,
-    dossiers: Sequence[DossierInput],
-    files: dict[int, str],
+    dossiers: Sequence[_Summary],
     stamp: str,
     plans: Sequence[PlanPage] = (),
     plan_files: Mapping[str, str] | None = None,
@@ -413,22 +504,7 @@ def _program_page(
     if stamp:
         parts.append(stamp)
     if dossiers:
-        rows = []
-        for d in sorted(dossiers, key=lambda x: (x.instrument.name or x.instrument.slug).lower()):
-            run = headline_run(d.runs)
-            feff = effective_f_of(run.result)[0] if run is not None else None
-            ar = ar_set_of(run.result) if run is not None else None
-            described = ", ".join(mt.inline(x) for x in (d.instrument.family, d.instrument.state) if x)
-            rows.append(
-                [
-                    f"[{mt.inline(d.instrument.name or d.instrument.slug)}](instruments/{files[id(d)]}.html)"
-                    + (f" ({described})" if described else ""),
-                    *[_badge(d, c) for c in CONDITIONS],
-                    _strongest_threat(d.links),
-                    rv.fmt(feff) if feff is not None else "–",
-                    rv.fmt_set(ar) if ar is not None else "–",
-                ]
-            )
+        rows = [list(d.row) for d in sorted(dossiers, key=lambda x: x.sort_key)]
         headers = ["Instrument (family, state)", *[c.capitalize() for c in CONDITIONS]]
         headers += ["Strongest unresolved threat", "Effective F", "AR set"]
         parts.append(

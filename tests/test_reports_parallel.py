@@ -3,9 +3,12 @@
 from __future__ import annotations
 
 import dataclasses
+import gc
 import multiprocessing
 import os
 import sys
+import weakref
+from functools import partial
 from pathlib import Path
 
 import pytest
@@ -16,7 +19,7 @@ from ivdossier.reports import parallel
 from ivdossier.reports import site as site_module
 from ivdossier.reports.inputs import DossierInput, InstrumentInfo, ProgramInfo
 from ivdossier.reports.sample import PROGRAM, make_run, sample_input
-from ivdossier.reports.site import build_site
+from ivdossier.reports.site import PendingDossier, build_site
 from ivdossier.workflows.verdicts import with_verdicts
 
 linux_only = pytest.mark.skipif(
@@ -35,13 +38,14 @@ def _tagged(i: int) -> tuple[int, int, bool]:
     return i, os.getpid(), mt.html_target()
 
 
-# The first items of the first two chunks (37 items, 2 workers x 4 chunks: chunks of 5) meet at a barrier made
-# before the fork, so the worker holding chunk 0 waits until another process has taken chunk 1: both workers render.
+# The first items of the first two chunks (37 items, 2 workers) meet at a barrier made before the fork, so the
+# worker holding chunk 0 waits until another process has taken chunk 1: both workers render.
 _MEET = multiprocessing.get_context("fork").Barrier(2) if sys.platform.startswith("linux") else None
+_CHUNK = -(-37 // (2 * parallel._CHUNKS_PER_WORKER))
 
 
 def _tagged_after_meeting(i: int) -> tuple[int, int, bool]:
-    if i in (0, 5) and _MEET is not None:
+    if i in (0, _CHUNK) and _MEET is not None:
         _MEET.wait(timeout=60)
     return _tagged(i)
 
@@ -167,3 +171,114 @@ def test_a_failing_page_fails_the_parallel_build_as_the_serial_one_and_writes_no
         build_site(tmp_path / "site", [PROGRAM], _dossiers(), [])
     assert not (tmp_path / "site").exists()
     assert [p.name for p in tmp_path.iterdir()] == []
+
+
+def _pending(dossiers: list[DossierInput], fail: str = "", die_in_worker: str = "") -> list[PendingDossier]:
+    """The dossiers as pending ones, assembled where their pages are rendered; `fail` names an instrument whose
+    assembly raises, `die_in_worker` one whose assembly kills the worker (in a worker only)."""
+    parent = os.getpid()
+
+    def assemble(d: DossierInput) -> DossierInput:
+        if d.instrument.slug == fail:
+            raise InvalidInputError(f"instrument {fail} cannot be assembled; fix its record.")
+        if d.instrument.slug == die_in_worker and os.getpid() != parent:
+            os._exit(3)
+        return d
+
+    return [
+        PendingDossier(program=d.program, slug=d.instrument.slug, assemble=partial(assemble, d))
+        for d in dossiers
+    ]
+
+
+def _files(root: Path) -> dict[str, bytes]:
+    return {p.relative_to(root).as_posix(): p.read_bytes() for p in root.rglob("*") if p.is_file()}
+
+
+@linux_only
+def test_pending_dossiers_assembled_in_workers_give_the_site_of_the_assembled_dossiers(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(parallel, "MIN_PARALLEL", 10**9)
+    reference = build_site(tmp_path / "serial", [PROGRAM], _dossiers(), [])
+    log = tmp_path / "pids.txt"
+
+    def logged(d: DossierInput) -> DossierInput:
+        with log.open("a", encoding="utf-8") as f:
+            f.write(f"{os.getpid()}\n")
+        return d
+
+    pending = [
+        PendingDossier(program=d.program, slug=d.instrument.slug, assemble=partial(logged, d))
+        for d in _dossiers()
+    ]
+    monkeypatch.setattr(parallel, "MIN_PARALLEL", 2)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    written = build_site(tmp_path / "parallel", [PROGRAM], pending, [])
+
+    pids = log.read_text(encoding="utf-8").split()
+    assert len(pids) == 6 and str(os.getpid()) not in pids  # every dossier was assembled in a worker
+    root_s, root_p = (tmp_path / "serial").resolve(), (tmp_path / "parallel").resolve()
+    assert [p.relative_to(root_p) for p in written] == [p.relative_to(root_s) for p in reference]
+    assert _files(root_p) == _files(root_s)
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_a_worker_dying_while_assembling_falls_back_to_the_serial_build(tmp_path: Path) -> None:
+    build_site(tmp_path / "reference", [PROGRAM], _dossiers(), [])
+    build_site(tmp_path / "site", [PROGRAM], _pending(_dossiers(), die_in_worker="rollout"), [])
+    assert _files((tmp_path / "site").resolve()) == _files((tmp_path / "reference").resolve())
+
+
+@pytest.mark.parametrize("workers", [False, True])
+def test_a_failing_assembly_is_the_serial_error_and_writes_nothing(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, workers: bool
+) -> None:
+    if workers and not sys.platform.startswith("linux"):
+        pytest.skip("forked workers are used on Linux only")
+    monkeypatch.setattr(parallel, "MIN_PARALLEL", 2 if workers else 10**9)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    with pytest.raises(InvalidInputError, match=r"^instrument fees cannot be assembled; fix its record\.$"):
+        build_site(tmp_path / "site", [PROGRAM], _pending(_dossiers(), fail="fees"), [])
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_pending_dossier_must_assemble_as_the_instrument_it_names(tmp_path: Path) -> None:
+    d = _dossiers()[1]
+    wrong = PendingDossier(program=d.program, slug="not-" + d.instrument.slug, assemble=lambda: d)
+    with pytest.raises(RuntimeError, match="was assembled as"):
+        build_site(tmp_path / "site", [PROGRAM], [wrong], [])
+    assert list(tmp_path.iterdir()) == []
+
+
+class _Node:
+    def __init__(self) -> None:
+        self.me = self  # a reference cycle: only the garbage collector frees it
+
+
+_REFS: list[weakref.ref[_Node]] = []
+
+
+def _cycle_then_count(i: int) -> tuple[int, int, bool]:
+    """Make one reference cycle; return this process's id, how many of its earlier cycles are still alive, and
+    whether automatic garbage collection is on."""
+    alive = sum(1 for r in _REFS if r() is not None)
+    _REFS.append(weakref.ref(_Node()))
+    return os.getpid(), alive, gc.isenabled()
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_workers_collect_garbage_every_few_items_not_while_rendering_each(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    monkeypatch.setattr(parallel, "_COLLECT_EVERY", 3)
+    n = 112  # 2 workers x 8 chunks: chunks of 7, collected after items 3 and 6 of each and at its end
+    size = -(-n // (2 * parallel._CHUNKS_PER_WORKER))
+    out = parallel.render_parallel(list(range(n)), _cycle_then_count)
+    assert gc.isenabled() and os.getpid() not in {pid for pid, _, _ in out}
+    assert not any(enabled for _, _, enabled in out)  # automatic collection is off while items render
+    for start in range(0, n, size):
+        # the cycles made since the last collection are alive; all earlier ones (other chunks too) were collected
+        assert [alive for _, alive, _ in out[start : start + size]] == [0, 1, 2, 0, 1, 2, 0]

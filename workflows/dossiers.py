@@ -7,15 +7,19 @@ notebook all build the same documents.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping, Sequence
+import functools
+import gc
+import os
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime
 from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import select
-from sqlalchemy.orm import Session
+from sqlalchemy import event, select
+from sqlalchemy.orm import ORMExecuteState, Session
 
 from ivdossier import __version__
 from ivdossier.registry import bulk, records
@@ -70,7 +74,12 @@ class RegistryReader:
         self.preloaded = False
 
     def preload(self, instruments: Sequence[Instrument]) -> None:
-        """Read everything the dossiers of `instruments` show in one batch query per table."""
+        """Read everything the dossiers of `instruments` show in one batch query per table (with the garbage
+        collector paused: every object read is kept, so its collections would find nothing)."""
+        with collector_paused():
+            self._preload(instruments)
+
+    def _preload(self, instruments: Sequence[Instrument]) -> None:
         ids = [i.id for i in instruments if i.id is not None]
         self._programs = bulk.programs(self.session)
         links, _threats = bulk.link_rows_by_instrument(self.session, ids)
@@ -168,6 +177,18 @@ class RegistryReader:
         if key not in self._entries:
             self._entries[key] = catalog_entry(threat)
         return self._entries[key]
+
+
+@contextmanager
+def collector_paused() -> Iterator[None]:
+    """Automatic garbage collection off while the block runs (as it was before, afterwards)."""
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
 
 
 def graph_roles(program: Program, instrument: Instrument) -> dict[str, str]:
@@ -338,6 +359,14 @@ def run_info(session: Session, run: Run, *, reader: RegistryReader | None = None
 
 
 def _links(reader: RegistryReader, inst: Instrument, all_runs: Sequence[Run]) -> tuple[ri.LinkInfo, ...]:
+    # A check's finding depends on the instrument's runs only: found once per check, not once per link.
+    findings: dict[str, str] = {}
+
+    def found(check: str) -> str:
+        if check not in findings:
+            findings[check] = check_finding(check, all_runs)
+        return findings[check]
+
     return tuple(
         ri.LinkInfo(
             threat_code=threat.code,
@@ -347,9 +376,7 @@ def _links(reader: RegistryReader, inst: Instrument, all_runs: Sequence[Run]) ->
             argument=link.argument,
             evidence=link.evidence,
             ratings=reader.rating_infos(link),
-            checks=tuple(
-                ri.CheckInfo(name=c, finding=check_finding(c, all_runs)) for c in (threat.checks or [])
-            ),
+            checks=tuple(ri.CheckInfo(name=c, finding=found(c)) for c in (threat.checks or [])),
         )
         for link, threat in reader.links(inst)
     )
@@ -429,7 +456,10 @@ def _dossier_input(
     reproducible: bool,
     reader: RegistryReader,
     render_svg: Any,
+    prior_uses: tuple[str, ...] | None = None,
 ) -> ri.DossierInput:
+    """The dossier input with its diagram drawn; `prior_uses` (the literature audit sections, read beforehand)
+    spares the reads `_prior_uses` makes, so that a forked worker can assemble it without the database."""
     G, inp = _assemble(
         session,
         inst,
@@ -438,6 +468,7 @@ def _dossier_input(
         relative_to=relative_to,
         reproducible=reproducible,
         prior=True,
+        prior_uses=prior_uses,
     )
     assert inp.graph is not None
     svg = render_svg(G, inp.graph.verdict, title=f"Causal diagram for {inst.name}", verdicts=inp.verdicts)
@@ -454,6 +485,7 @@ def _assemble(
     prior: bool,
     reader: RegistryReader | None = None,
     figures: bool = True,
+    prior_uses: tuple[str, ...] | None = None,
 ) -> tuple[Any, ri.DossierInput]:
     """The graph and the dossier input (without the drawing) with its verdicts derived once; without `figures`
     no plot is drawn (the verdicts never read one)."""
@@ -482,7 +514,9 @@ def _assemble(
         for e in events
     )
     inp = ri.DossierInput(
-        extra_sections=_prior_uses(session, inst, reader) if prior else (),
+        extra_sections=(
+            (prior_uses if prior_uses is not None else _prior_uses(session, inst, reader)) if prior else ()
+        ),
         program=program_info(program),
         instrument=_instrument_info(inst),
         generated_at=generated_at,
@@ -569,7 +603,7 @@ def write_site(
     session: Session, out: Path, *, generated_at: datetime | str, relative_to: Path | None = None
 ) -> list[Path]:
     """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
-    from ivdossier.reports.site import build_site
+    from ivdossier.reports.site import PendingDossier, build_site
     from ivdossier.threats_catalog.draw import render_svg
 
     programs = list(session.scalars(select(Program).order_by(Program.slug)))
@@ -577,15 +611,22 @@ def write_site(
     instruments = bulk.instruments(session)
     reader = RegistryReader(session)
     reader.preload(instruments)
+    _import_assembly_modules()  # imported once here, not once per forked worker
     dossiers = [
-        _dossier_input(
-            session,
-            inst,
-            generated_at=generated_at,
-            relative_to=relative_to,
-            reproducible=False,
-            reader=reader,
-            render_svg=render_svg,
+        PendingDossier(
+            program=program_info(reader.program(inst)),
+            slug=inst.slug,
+            assemble=functools.partial(
+                _dossier_input,
+                session,
+                inst,
+                generated_at=generated_at,
+                relative_to=relative_to,
+                reproducible=False,
+                reader=reader,
+                render_svg=render_svg,
+                prior_uses=_prior_uses(session, inst, reader),  # the only per-instrument reads left
+            ),
         )
         for inst in instruments
     ]
@@ -601,15 +642,42 @@ def write_site(
         )
         for t in registry_catalog(session)
     ]
-    return build_site(
-        out,
-        infos,
-        dossiers,
-        entries,
-        plans=_plan_pages(session, reader),
-        runs=_run_rows(reader, instruments),
-        studies=_studies_audit(session, reader),
-    )
+    plans = _plan_pages(session, reader)
+    runs = _run_rows(reader, instruments)
+    studies = _studies_audit(session, reader)
+    with _no_reads_in_forked_workers(session):
+        return build_site(out, infos, dossiers, entries, plans=plans, runs=runs, studies=studies)
+
+
+def _import_assembly_modules() -> None:
+    """Import what assembling a dossier imports on first use, so that forked workers inherit it."""
+    import ivdossier.registry.portability
+    import ivdossier.reports.design_sections
+    import ivdossier.threats_catalog.checks
+    import ivdossier.threats_catalog.graph
+    import ivdossier.workflows.evidence_runs
+    import ivdossier.workflows.findings
+    import ivdossier.workflows.run_records
+    import ivdossier.workflows.verdicts  # noqa: F401
+
+
+@contextmanager
+def _no_reads_in_forked_workers(session: Session) -> Iterator[None]:
+    """Refuse, in any process forked from this one, a query through `session`: a worker sharing the parent's
+    database connection would corrupt it. The refusal fails the worker, and the site is then built serially."""
+    parent = os.getpid()
+
+    def refuse(state: ORMExecuteState) -> None:
+        if os.getpid() != parent:
+            raise RuntimeError(
+                "a forked site worker tried to read the registry; every read must happen before the fork"
+            )
+
+    event.listen(session, "do_orm_execute", refuse)
+    try:
+        yield
+    finally:
+        event.remove(session, "do_orm_execute", refuse)
 
 
 def _plan_pages(session: Session, reader: RegistryReader) -> list[Any]:
