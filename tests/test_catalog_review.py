@@ -11,6 +11,7 @@ import json
 
 import networkx as nx
 import pytest
+from nx_reference import to_networkx
 
 from ivdossier.threats_catalog import load_builtin
 from ivdossier.threats_catalog.catalog import (
@@ -21,6 +22,7 @@ from ivdossier.threats_catalog.catalog import (
     Threat,
 )
 from ivdossier.threats_catalog.checks import BINARY_INSTRUMENT_FAMILIES, CHECKS, NOT_COMPUTABLE
+from ivdossier.threats_catalog.dag import DiGraph
 from ivdossier.threats_catalog.graph import (
     adjustment_advice,
     adjustment_sets,
@@ -33,11 +35,12 @@ ROLES = {"instrument": "Z", "treatment": "X", "outcome": "Y"}
 TF = "Lee, McCrary, Moreira and Porter 2022"
 
 
-def _advice_is_safe(G: nx.DiGraph) -> list[str]:
+def _advice_is_safe(G: DiGraph) -> list[str]:
     """Problems with the advice for G: a set holding a descendant of Z or X without the plain warning, a set
     holding a node that pins the instrument down, or warned sets listed before unwarned ones."""
     problems = []
-    below = nx.descendants(G, "Z") | nx.descendants(G, "X")
+    ref = to_networkx(G)  # the reference library's descendants, on its own graph class
+    below = nx.descendants(ref, "Z") | nx.descendants(ref, "X")
     advice = adjustment_advice(G, **ROLES)
     for a in advice:
         caused = set(a.members) & below

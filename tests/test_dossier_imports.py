@@ -17,6 +17,8 @@ from pathlib import Path
 import pytest
 
 COMPUTE_ONLY = ("pandas", "scipy", "statsmodels", "matplotlib")
+#: A dossier, the site and every `graph` command build graphs with threats_catalog/dag.py; networkx is test-only.
+GRAPH_LIBRARY = ("networkx",)
 
 
 @pytest.fixture(scope="module")
@@ -66,7 +68,8 @@ def test_rendering_each_demo_dossier_loads_no_compute_library(demo_db: str, tmp_
             out = tmp_path / f"{spec['slug']}{suffix}"
             code = _command(demo_db, "dossier", spec["slug"], "--out", str(out))
             # pydantic too: typer's value checker, which cli/app.py builds only for values it cannot read itself
-            assert _loaded_after(code, (*COMPUTE_ONLY, "pydantic")) == [], f"{spec['slug']}{suffix}"
+            loaded = _loaded_after(code, (*COMPUTE_ONLY, *GRAPH_LIBRARY, "pydantic"))
+            assert loaded == [], f"{spec['slug']}{suffix}"
             assert out.stat().st_size > 0
 
 
@@ -74,4 +77,21 @@ def test_graph_check_draws_no_plot(demo_db: str) -> None:
     """`graph check` shows verdicts, not figures: it loads no compute library (fibre-wave has two sensitivity
     runs in the demo)."""
     code = _command(demo_db, "graph", "check", "fibre-wave")
-    assert _loaded_after(code) == []
+    assert _loaded_after(code, (*COMPUTE_ONLY, *GRAPH_LIBRARY)) == []
+
+
+def test_site_and_graph_commands_load_no_graph_library(demo_db: str, tmp_path: Path) -> None:
+    """The site (every instrument's diagram), `graph draw`, `graph check --json` and `graph show` run one after
+    another in one process without importing networkx (each command inherits the imports of those before)."""
+    code = "".join(
+        _command(demo_db, *argv)
+        for argv in (
+            ("site", str(tmp_path / "site")),
+            ("graph", "draw", "mast-distance", "--out", str(tmp_path / "g.svg")),
+            ("graph", "check", "clerk-video-rate", "--json"),
+            ("graph", "show", "telehealth-ed"),
+        )
+    )
+    assert _loaded_after(code, GRAPH_LIBRARY) == []
+    assert (tmp_path / "g.svg").read_text(encoding="utf-8").startswith("<svg")
+    assert list((tmp_path / "site").rglob("*.html"))

@@ -12,11 +12,13 @@ from __future__ import annotations
 import itertools
 import json
 from collections.abc import Callable
+from typing import Any
 
 import networkx as nx
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from nx_reference import to_networkx
 
 from ivdossier.errors import InvalidInputError, NotFoundError
 from ivdossier.threats_catalog import load_builtin
@@ -32,8 +34,9 @@ nx_dsep: Callable[..., bool] = getattr(nx, "is_d_separator", None) or nx.d_separ
 ROLES = {"instrument": "Z", "treatment": "X", "outcome": "Y"}
 
 
-def reference_criterion(G: nx.DiGraph, W: set[str], z: str = "Z", x: str = "X", y: str = "Y") -> bool:
-    """The criterion computed only with networkx primitives (independent of our d-separation)."""
+def reference_criterion(G: Any, W: set[str], z: str = "Z", x: str = "X", y: str = "Y") -> bool:
+    """The criterion computed only with networkx primitives (independent of our d-separation and graph class)."""
+    G = to_networkx(G)
     banned = nx.descendants(G, x) | nx.descendants(G, y) | {x, y, z}
     if W & banned:
         return False

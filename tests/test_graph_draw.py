@@ -9,10 +9,12 @@ import xml.etree.ElementTree as ET
 
 import networkx as nx
 import pytest
+from nx_reference import to_networkx
 
 from ivdossier.errors import InvalidInputError
 from ivdossier.threats_catalog import load_builtin
 from ivdossier.threats_catalog.catalog import FragmentNode, GraphFragment
+from ivdossier.threats_catalog.dag import DiGraph
 from ivdossier.threats_catalog.draw import esc, open_path_edges, render_svg
 from ivdossier.threats_catalog.graph import GraphVerdict, build_graph, check_instrument
 
@@ -20,7 +22,7 @@ SVG = "{http://www.w3.org/2000/svg}"
 NASTY = "a<b & \"c\" 'd' </text><script>alert(1)</script>"
 
 
-def demo() -> tuple[nx.DiGraph, GraphVerdict]:
+def demo() -> tuple[DiGraph, GraphVerdict]:
     cat = load_builtin()
     roads = GraphFragment(
         "T-ROADS",
@@ -140,5 +142,14 @@ def test_graph_without_verdict_and_bad_input() -> None:
     svg = render_svg(build_graph(), None)
     root = ET.fromstring(svg)
     assert not [g for g in root.iter(f"{SVG}g") if g.get("data-condition")]
-    with pytest.raises(InvalidInputError, match="non-empty networkx DiGraph"):
-        render_svg(nx.DiGraph(), None)
+    for empty in (nx.DiGraph(), DiGraph(), {"Z": "X"}, nx.Graph([("Z", "X")])):
+        with pytest.raises(InvalidInputError, match="non-empty directed graph"):
+            render_svg(empty, None)  # type: ignore[arg-type]
+
+
+def test_a_networkx_copy_of_the_graph_draws_the_same_svg() -> None:
+    """render_svg reads a networkx DiGraph through the same methods (duck typing): the same drawing, byte for
+    byte, for the graph and for its networkx copy."""
+    G, v = demo()
+    assert render_svg(to_networkx(G), v, title="t") == render_svg(G, v, title="t")
+    assert render_svg(to_networkx(G), None) == render_svg(G, None)

@@ -12,13 +12,13 @@ import itertools
 import xml.etree.ElementTree as ET
 from functools import cache
 
-import networkx as nx
 import pytest
 from matplotlib import ft2font
 from matplotlib.font_manager import FontProperties, findfont
 
 from ivdossier.threats_catalog import load_builtin
 from ivdossier.threats_catalog.catalog import FragmentNode, GraphFragment
+from ivdossier.threats_catalog.dag import DiGraph
 from ivdossier.threats_catalog.draw import VERDICT_SHAPES, render_svg, text_width
 from ivdossier.threats_catalog.graph import build_graph, check_instrument
 
@@ -121,7 +121,7 @@ def assert_clean_layout(svg: str) -> ET.Element:
     return root
 
 
-def demo_graph() -> tuple[nx.DiGraph, object]:
+def demo_graph() -> tuple[DiGraph, object]:
     """The demo's fibre-wave graph: two measured controls drawn by the team, two threats with their nodes."""
     cat = load_builtin()
     G = build_graph(
@@ -148,7 +148,7 @@ def demo_graph() -> tuple[nx.DiGraph, object]:
     return G, v
 
 
-def twelve_node_graph() -> tuple[nx.DiGraph, object]:
+def twelve_node_graph() -> tuple[DiGraph, object]:
     """Twelve nodes: the four roles, five declared covariates (one unmeasured), three threat nodes, many tags."""
     frag = GraphFragment(
         "T-DEPOT",

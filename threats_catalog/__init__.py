@@ -1,8 +1,9 @@
 """Threat catalogue and causal-graph checker: plain data and pure functions, no SQL and no CLI.
 
-The graph functions live in ``ivdossier.threats_catalog.graph`` and the drawing in ``.draw`` (imported on demand
-so that reading the catalogue does not load networkx). The names below load ``.catalog`` on first use, so a
-command that only compares catalogue versions (``.version``) does not parse or validate the catalogue.
+The graph functions live in ``ivdossier.threats_catalog.graph`` (on the small directed graph of ``.dag``) and the
+drawing in ``.draw``, imported on demand so that reading the catalogue loads neither. The names below load
+``.catalog`` on first use, so a command that only compares catalogue versions (``.version``) does not parse or
+validate the catalogue.
 """
 
 from __future__ import annotations

@@ -31,9 +31,8 @@ from dataclasses import dataclass
 from functools import lru_cache
 from typing import Any
 
-import networkx as nx
-
 from ivdossier.errors import InvalidInputError
+from ivdossier.threats_catalog.dag import DiGraph, all_neighbors, is_directed_acyclic_graph, topological_sort
 from ivdossier.threats_catalog.graph import GraphVerdict
 from ivdossier.vocabulary import Verdict, verdict_key
 
@@ -139,13 +138,13 @@ def _wrap_cached(label: str, width: int) -> tuple[str, ...]:
     return tuple(lines)
 
 
-def _layers(G: nx.DiGraph) -> dict[str, int]:
+def _layers(G: DiGraph) -> dict[str, int]:
     """Longest-path layers; parentless helper nodes (confounders) move right to sit one layer before their
     first child, so they do not pile up in the first column."""
     layer: dict[str, int] = {}
-    for node in nx.topological_sort(G):
+    for node in topological_sort(G):
         layer[node] = max((layer[p] + 1 for p in G.predecessors(node)), default=0)
-    for node in reversed(list(nx.topological_sort(G))):
+    for node in reversed(list(topological_sort(G))):
         role = G.nodes[node].get("role")
         children = list(G.successors(node))
         if not list(G.predecessors(node)) and children and role not in ("instrument", "treatment", "outcome"):
@@ -154,7 +153,7 @@ def _layers(G: nx.DiGraph) -> dict[str, int]:
     return {n: v - low for n, v in layer.items()}
 
 
-def _layout(G: nx.DiGraph, boxes: dict[str, _Box], top: float, col_w: float) -> tuple[float, float]:
+def _layout(G: DiGraph, boxes: dict[str, _Box], top: float, col_w: float) -> tuple[float, float]:
     """Place boxes in columns ``col_w`` apart; return the drawing's width and the y of its bottom edge."""
     layer = _layers(G)
     spine_roles = ("instrument", "treatment", "outcome")
@@ -170,8 +169,7 @@ def _layout(G: nx.DiGraph, boxes: dict[str, _Box], top: float, col_w: float) -> 
             for side in ("above", "below"):
                 col[side].sort(
                     key=lambda n: (
-                        sum(rank[m] for m in nx.all_neighbors(G, n))
-                        / max(1, len(list(nx.all_neighbors(G, n)))),
+                        sum(rank[m] for m in all_neighbors(G, n)) / max(1, len(list(all_neighbors(G, n)))),
                         n,
                     )
                 )
@@ -280,7 +278,7 @@ def _node_svg(box: _Box, ids: str) -> list[str]:
 
 
 def _edge_geometry(
-    G: nx.DiGraph, boxes: Mapping[str, _Box], u: str, v: str, spine_y: float, col_w: float = COL_W
+    G: DiGraph, boxes: Mapping[str, _Box], u: str, v: str, spine_y: float, col_w: float = COL_W
 ) -> tuple[float, float, float, float, float, float, bool]:
     """Start, control and end points of the edge u -> v (a quadratic curve when ``bow``)."""
     a, b = boxes[u], boxes[v]
@@ -312,7 +310,7 @@ def _edge_geometry(
 
 
 def _edge_extent(
-    G: nx.DiGraph, boxes: Mapping[str, _Box], spine_y: float, col_w: float
+    G: DiGraph, boxes: Mapping[str, _Box], spine_y: float, col_w: float
 ) -> tuple[float, float, float]:
     """Lowest and highest y reached by any edge curve, and the right-most x (for sizing the drawing)."""
     ys: list[float] = []
@@ -326,7 +324,7 @@ def _edge_extent(
 
 
 def _edge_svg(
-    G: nx.DiGraph,
+    G: DiGraph,
     boxes: Mapping[str, _Box],
     u: str,
     v: str,
@@ -709,7 +707,7 @@ def _legend(x: float, y: float, ids: str, right: float) -> tuple[list[str], floa
 
 
 def render_svg(
-    G: nx.DiGraph,
+    G: DiGraph,
     verdict: GraphVerdict | None,
     *,
     title: str | None = None,
@@ -722,9 +720,11 @@ def render_svg(
     The result has no scripts, external fonts or links; every user-supplied string is escaped. Passing
     ``verdict=None`` draws the graph alone, without the verdict strip and path emphasis.
     """
-    if not isinstance(G, nx.DiGraph) or G.number_of_nodes() == 0:
-        raise InvalidInputError("render_svg needs a non-empty networkx DiGraph; build one with build_graph")
-    if not nx.is_directed_acyclic_graph(G):
+    if not _directed(G) or G.number_of_nodes() == 0:
+        raise InvalidInputError(
+            "render_svg needs a non-empty directed graph (a DiGraph); build one with build_graph"
+        )
+    if not is_directed_acyclic_graph(G):
         raise InvalidInputError(
             "render_svg needs an acyclic graph; build it with build_graph, which names cycles"
         )
@@ -745,6 +745,14 @@ def render_svg(
     return _fill(template, G, verdict.instrument, title)
 
 
+def _directed(G: object) -> bool:
+    """True for our DiGraph, and for a networkx ``DiGraph`` (read through the same methods)."""
+    if isinstance(G, DiGraph):
+        return True
+    is_directed, is_multigraph = getattr(G, "is_directed", None), getattr(G, "is_multigraph", None)
+    return callable(is_directed) and callable(is_multigraph) and bool(is_directed()) and not is_multigraph()
+
+
 #: Marks written in place of the instrument's name and the title in a remembered drawing (private-use
 #: characters; the id prefix uses `_IDS_MARK`).
 _NAME_MARK = "\ue002"
@@ -754,18 +762,18 @@ _DRAWN: dict[tuple[Any, ...], str] = {}
 _DRAWN_MAX = 512  # about 30 kB a drawing
 
 
-def _ids(G: nx.DiGraph) -> str:
+def _ids(G: DiGraph) -> str:
     return "ivd-" + hashlib.sha256(repr(sorted(map(str, G.edges))).encode()).hexdigest()[:8]
 
 
-def _fill(template: str, G: nx.DiGraph, name: str, title: str) -> str:
+def _fill(template: str, G: DiGraph, name: str, title: str) -> str:
     return (
         template.replace(_IDS_MARK, _ids(G)).replace(_NAME_MARK, esc(name)).replace(_TITLE_MARK, esc(title))
     )
 
 
 def _drawing_key(
-    G: nx.DiGraph, verdict: GraphVerdict | None, title: str | None, verdicts: Sequence[Verdict] | None
+    G: DiGraph, verdict: GraphVerdict | None, title: str | None, verdicts: Sequence[Verdict] | None
 ) -> tuple[Any, ...] | None:
     """Everything `_draw` reads, with the instrument's name and the title left out (None when a drawing cannot be
     shared: no verdict or title, a name that is not a string or holds a mark, an instrument name that wraps).
@@ -831,7 +839,7 @@ def _drawing_key(
 
 
 def _draw(
-    G: nx.DiGraph,
+    G: DiGraph,
     verdict: GraphVerdict | None,
     title: str | None,
     verdicts: Sequence[Verdict] | None,

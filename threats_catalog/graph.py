@@ -41,7 +41,10 @@ offered by :func:`adjustment_sets`; a set that holds a descendant of the instrum
 conditioning on an unobserved node (or on
 Z, X, Y) raises InvalidInputError; the criterion itself is decided by d-separation, while the path listing (for
 explanation) stops after 200 open or 20,000 visited paths and then says so. Edges that no threat drew (base,
-team-drawn, or a hand-made ``nx.DiGraph`` without our attributes) count as asserted.
+team-drawn, or a hand-made graph without our attributes) count as asserted.
+
+Graphs are :class:`ivdossier.threats_catalog.dag.DiGraph` (networkx is not needed at run time); the functions read
+a graph only through the methods that class shares with networkx's ``DiGraph``, so a networkx graph works too.
 """
 
 from __future__ import annotations
@@ -54,10 +57,21 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import networkx as nx
-
 from ivdossier.errors import InvalidInputError, NotFoundError
 from ivdossier.threats_catalog.catalog import CONDITIONS, GraphFragment
+from ivdossier.threats_catalog.dag import (
+    DiGraph,
+    GraphError,
+    all_simple_paths,
+    ancestors,
+    descendants,
+    find_cycle,
+    has_path,
+    is_directed_acyclic_graph,
+    relabel_nodes,
+    shortest_path,
+    skeleton,
+)
 from ivdossier.vocabulary import LINK_STATES, VERDICTS, verdict_key
 
 #: Pseudo-state for a fragment passed without a link state when ``link_states`` is given.
@@ -88,7 +102,7 @@ def build_graph(
     extra_edges: Iterable[tuple[str, str]] = (),
     link_states: Mapping[str, str] | None = None,
     confounder: str = "U",
-) -> nx.DiGraph:
+) -> DiGraph:
     """Base graph Z -> X -> Y with U -> X, U -> Y, plus covariates, threat fragments and team-drawn edges.
 
     Fragment role tokens Z, X, Y, U become the given instrument, treatment, outcome and confounder names.
@@ -125,7 +139,7 @@ def build_graph(
                 )
     token = {"Z": instrument, "X": treatment, "Y": outcome, "U": confounder}
 
-    G: nx.DiGraph = nx.DiGraph()
+    G: DiGraph = DiGraph()
     G.graph.update(
         roles={"instrument": instrument, "treatment": treatment, "outcome": outcome},
         threats={},
@@ -203,8 +217,8 @@ def build_graph(
             raise InvalidInputError(f"extra edge ({u!r}, {v!r}) is a self-loop; remove it")
         _add_team_edge(G, u, v)
 
-    if not nx.is_directed_acyclic_graph(G):
-        cycle = nx.find_cycle(G)
+    if not is_directed_acyclic_graph(G):
+        cycle = find_cycle(G)
         chain = " -> ".join([cycle[0][0], *(v for _, v in cycle)])
         codes = sorted({c for u, v in cycle for c in G.edges[u, v]["threats"]})
         team = any(G.edges[u, v]["team"] for u, v in cycle)
@@ -215,14 +229,14 @@ def build_graph(
     return G
 
 
-def _add_team_edge(G: nx.DiGraph, u: str, v: str) -> None:
+def _add_team_edge(G: DiGraph, u: str, v: str) -> None:
     if G.has_edge(u, v):
         G.edges[u, v]["team"] = True
     else:
         G.add_edge(u, v, threats=[], base=False, team=True)
 
 
-def edge_problem(G: nx.DiGraph, source: str, target: str, *, where: str = "") -> str | None:
+def edge_problem(G: DiGraph, source: str, target: str, *, where: str = "") -> str | None:
     """Why the team edge ``source -> target`` cannot join ``G`` (unknown node, self-loop, cycle), with the fix;
     None when it can. ``where`` names the graph in the message ("in instrument x's graph"). A cycle message
     starts with ``"cycle:"`` so callers can tell it apart."""
@@ -238,9 +252,9 @@ def edge_problem(G: nx.DiGraph, source: str, target: str, *, where: str = "") ->
             )
     if source == target:
         return f"edge {source} -> {target} is a self-loop; an edge must join two different nodes"
-    if G.has_edge(source, target) or not nx.has_path(G, target, source):
+    if G.has_edge(source, target) or not has_path(G, target, source):
         return None
-    back = nx.shortest_path(G, target, source)
+    back = shortest_path(G, target, source)
     chain = " -> ".join([source, *back])
     return (
         f"cycle: edge {source} -> {target} would close the cycle {chain}{at}; a causal graph has no cycles. "
@@ -249,7 +263,7 @@ def edge_problem(G: nx.DiGraph, source: str, target: str, *, where: str = "") ->
     )
 
 
-def add_team_edges(G: nx.DiGraph, edges: Iterable[tuple[str, str]]) -> tuple[tuple[str, str, str], ...]:
+def add_team_edges(G: DiGraph, edges: Iterable[tuple[str, str]]) -> tuple[tuple[str, str, str], ...]:
     """Add team-drawn edges to ``G`` in order; an edge that names a node not in ``G`` or would close a cycle is
     left out and returned as ``(source, target, reason)`` (so one stale edge never stops a whole graph)."""
     skipped: list[tuple[str, str, str]] = []
@@ -265,7 +279,7 @@ def add_team_edges(G: nx.DiGraph, edges: Iterable[tuple[str, str]]) -> tuple[tup
 # ----------------------------------------------------------------------------------------------- d-separation
 
 
-def d_separated(G: nx.DiGraph, xs: Iterable[str], ys: Iterable[str], given: Iterable[str] = ()) -> bool:
+def d_separated(G: DiGraph, xs: Iterable[str], ys: Iterable[str], given: Iterable[str] = ()) -> bool:
     """True when ``given`` d-separates every node of ``xs`` from every node of ``ys`` in the DAG ``G``.
 
     Reachability ("Bayes-ball") traversal over (node, direction) pairs: a trail passes a non-collider that
@@ -273,7 +287,7 @@ def d_separated(G: nx.DiGraph, xs: Iterable[str], ys: Iterable[str], given: Iter
 
     Examples
     --------
-    >>> G = nx.DiGraph([("a", "m"), ("m", "b")])
+    >>> G = DiGraph([("a", "m"), ("m", "b")])
     >>> d_separated(G, {"a"}, {"b"}), d_separated(G, {"a"}, {"b"}, {"m"})
     (False, True)
     """
@@ -448,7 +462,7 @@ class GraphVerdict:
 
 
 def check_instrument(
-    G: nx.DiGraph,
+    G: DiGraph,
     *,
     instrument: str,
     treatment: str,
@@ -473,7 +487,7 @@ def check_instrument(
             if found is None:
                 try:  # checked once, on a copy in which the instrument is named by a reserved mark
                     found = _check(
-                        nx.relabel_nodes(G, {instrument: _NAME_MARK}, copy=True),
+                        relabel_nodes(G, {instrument: _NAME_MARK}),
                         instrument=_NAME_MARK,
                         treatment=treatment,
                         outcome=outcome,
@@ -482,7 +496,7 @@ def check_instrument(
                 except (
                     InvalidInputError,
                     NotFoundError,
-                    nx.NetworkXException,
+                    GraphError,
                 ):  # raised below, naming the instrument
                     found = None
                 if found is not None:
@@ -501,7 +515,7 @@ _CHECKED: dict[tuple[Any, ...], GraphVerdict] = {}
 _CHECKED_MAX = 1024
 
 
-def _shape_key(G: nx.DiGraph, z: str, x: str, y: str, conditioning: frozenset[str]) -> tuple[Any, ...] | None:
+def _shape_key(G: DiGraph, z: str, x: str, y: str, conditioning: frozenset[str]) -> tuple[Any, ...] | None:
     """Everything `_check` reads from ``G`` and its arguments, in order, with the instrument's name replaced by
     `_NAME_MARK`; None when a check cannot be shared (a name holds the mark or is not a string, the instrument
     is not a plain node (selected on, adjusted for) or absent, team edges were left out, or a value cannot be
@@ -587,7 +601,7 @@ def _named(verdict: GraphVerdict, z: str) -> GraphVerdict:
 
 
 def _check(
-    G: nx.DiGraph,
+    G: DiGraph,
     *,
     instrument: str,
     treatment: str,
@@ -600,7 +614,7 @@ def _check(
             raise NotFoundError(f"{role} {name!r} is not a node of the graph; check the name")
     if len({z, x, y}) != 3:
         raise InvalidInputError("instrument, treatment and outcome must be three different nodes")
-    if not nx.is_directed_acyclic_graph(G):
+    if not is_directed_acyclic_graph(G):
         raise InvalidInputError("the graph has a cycle; build it with build_graph, which names the cycle")
     W = _validate_conditioning(G, conditioning, z, x, y) | _adjusted(G)
     S = {n for n, d in G.nodes(data=True) if d.get("selection")}
@@ -666,7 +680,7 @@ def _check(
 
 
 def criterion_holds(
-    G: nx.DiGraph, *, instrument: str, treatment: str, outcome: str, conditioning: Iterable[str] = frozenset()
+    G: DiGraph, *, instrument: str, treatment: str, outcome: str, conditioning: Iterable[str] = frozenset()
 ) -> bool:
     """Fast yes/no form of the conditional instrument criterion (no path listing)."""
     W = _validate_conditioning(G, conditioning, instrument, treatment, outcome) | _adjusted(G)
@@ -677,7 +691,7 @@ def criterion_holds(
 
 
 def adjustment_sets(
-    G: nx.DiGraph, *, instrument: str, treatment: str, outcome: str, max_size: int | None = None
+    G: DiGraph, *, instrument: str, treatment: str, outcome: str, max_size: int | None = None
 ) -> list[frozenset[str]]:
     """Every minimal set of measured covariates W under which the instrument criterion holds.
 
@@ -699,7 +713,7 @@ def adjustment_sets(
     banned = _descendants(G, treatment, outcome)
     relevant = set(S) | {instrument, treatment, outcome}
     for node in list(relevant):
-        relevant |= nx.ancestors(G, node)
+        relevant |= ancestors(G, node)
     candidates = sorted(
         n
         for n in relevant
@@ -725,7 +739,7 @@ def adjustment_sets(
                 continue
             if _criterion(G, instrument, treatment, outcome, W | S, banned):
                 found.append(W)
-    below_z = set(nx.descendants(G, instrument))
+    below_z = set(descendants(G, instrument))
     return sorted(found, key=lambda s: (bool(s & below_z), len(s), sorted(s)))
 
 
@@ -760,13 +774,13 @@ class AdjustmentAdvice:
 
 
 def adjustment_advice(
-    G: nx.DiGraph, *, instrument: str, treatment: str, outcome: str, max_size: int | None = None
+    G: DiGraph, *, instrument: str, treatment: str, outcome: str, max_size: int | None = None
 ) -> tuple[AdjustmentAdvice, ...]:
     """The sets of :func:`adjustment_sets`, each with the warning it needs: a member that descends from the
     instrument or the treatment is never presented without saying that it is valid only if nothing
     unmeasured causes it. Sets without such members come first."""
     sets = adjustment_sets(G, instrument=instrument, treatment=treatment, outcome=outcome, max_size=max_size)
-    below = set(nx.descendants(G, instrument)) | set(nx.descendants(G, treatment))
+    below = set(descendants(G, instrument)) | set(descendants(G, treatment))
     out = []
     for members in sets:
         flagged = tuple(sorted(members & below))
@@ -785,7 +799,7 @@ def adjustment_advice(
 # ------------------------------------------------------------------------------------------------ internals
 
 
-def _validate_conditioning(G: nx.DiGraph, conditioning: Iterable[str], z: str, x: str, y: str) -> set[str]:
+def _validate_conditioning(G: DiGraph, conditioning: Iterable[str], z: str, x: str, y: str) -> set[str]:
     if isinstance(conditioning, str):
         raise InvalidInputError(f"conditioning must be a set of node names, got the string {conditioning!r}")
     W = set(conditioning)
@@ -805,17 +819,17 @@ def _validate_conditioning(G: nx.DiGraph, conditioning: Iterable[str], z: str, x
     return W
 
 
-def _adjusted(G: nx.DiGraph) -> set[str]:
+def _adjusted(G: DiGraph) -> set[str]:
     """Nodes a fragment marks as controls already in the model (always conditioned on)."""
     return {n for n, d in G.nodes(data=True) if d.get("adjusted")}
 
 
-def _descendants(G: nx.DiGraph, x: str, y: str) -> set[str]:
-    return set(nx.descendants(G, x)) | set(nx.descendants(G, y)) | {x, y}
+def _descendants(G: DiGraph, x: str, y: str) -> set[str]:
+    return set(descendants(G, x)) | set(descendants(G, y)) | {x, y}
 
 
-def _conditioning_issues(G: nx.DiGraph, W: set[str], S: set[str], x: str, y: str) -> list[str]:
-    dx, dy = set(nx.descendants(G, x)), set(nx.descendants(G, y))
+def _conditioning_issues(G: DiGraph, W: set[str], S: set[str], x: str, y: str) -> list[str]:
+    dx, dy = set(descendants(G, x)), set(descendants(G, y))
     issues = []
     for name in sorted(W | S):
         kind = "selection on" if name in S else "conditioning on"
@@ -828,7 +842,7 @@ def _conditioning_issues(G: nx.DiGraph, W: set[str], S: set[str], x: str, y: str
     return issues
 
 
-def _unblockable(G: nx.DiGraph, z: str, x: str, y: str, candidates: set[str], S: set[str]) -> bool:
+def _unblockable(G: DiGraph, z: str, x: str, y: str, candidates: set[str], S: set[str]) -> bool:
     """True when a collider-free Z-Y path avoiding X runs only through nodes nobody may condition on.
 
     Such a path (a trek Z <- ... <- T -> ... -> Y, T possibly Z itself) stays open under every allowed W,
@@ -836,12 +850,12 @@ def _unblockable(G: nx.DiGraph, z: str, x: str, y: str, candidates: set[str], S:
     """
     keep = {n for n in G if n not in candidates and n not in S and n != x} | {z, y}
     H = G.subgraph(keep)
-    up_z = set(nx.ancestors(H, z)) | {z}
-    up_y = set(nx.ancestors(H, y)) | {y}
+    up_z = set(ancestors(H, z)) | {z}
+    up_y = set(ancestors(H, y)) | {y}
     return bool(up_z & up_y)
 
 
-def _criterion(G: nx.DiGraph, z: str, x: str, y: str, C: set[str] | frozenset[str], banned: set[str]) -> bool:
+def _criterion(G: DiGraph, z: str, x: str, y: str, C: set[str] | frozenset[str], banned: set[str]) -> bool:
     if C & banned or z in C:
         return False
     if d_separated(G, {z}, {x}, C):
@@ -852,23 +866,19 @@ def _criterion(G: nx.DiGraph, z: str, x: str, y: str, C: set[str] | frozenset[st
 
 
 def _bypass_paths(
-    M: nx.DiGraph, z: str, y: str, x: str, C: set[str], S: set[str], states: Mapping[str, str]
+    M: DiGraph, z: str, y: str, x: str, C: set[str], S: set[str], states: Mapping[str, str]
 ) -> tuple[list[BypassPath], list[BypassPath], bool]:
     """Open and blocked Z-Y paths avoiding x in the mutilated graph M; blocked ones only if they use a
     threat edge and are open without the user's conditioning (i.e. conditioning is what closes them)."""
-    # The undirected skeleton, structure only (paths never read attributes): nodes and edges added in M's order,
-    # as to_undirected adds them, without deep-copying every attribute dictionary.
-    skeleton: nx.Graph[str] = nx.Graph()
-    skeleton.add_nodes_from(M.nodes)
-    skeleton.add_edges_from(M.edges)
-    skeleton.remove_node(x)
+    # The undirected skeleton, structure only (paths never read attributes): nodes and edges added in M's order.
+    walk = skeleton(M, without=(x,))
     anc_c: dict[str, set[str]] = {}
     for node in M.nodes:
-        anc_c[node] = ({node} | set(nx.descendants(M, node))) & C
+        anc_c[node] = ({node} | set(descendants(M, node))) & C
     opened_list: list[BypassPath] = []
     blocked_list: list[BypassPath] = []
     truncated = False
-    for visited, nodes in enumerate(nx.all_simple_paths(skeleton, z, y), start=1):
+    for visited, nodes in enumerate(all_simple_paths(walk, z, y), start=1):
         if visited > _MAX_PATHS_VISITED:
             truncated = True
             break
@@ -884,11 +894,11 @@ def _bypass_paths(
     return sorted(opened_list, key=key), sorted(blocked_list, key=key), truncated
 
 
-def _open_given(M: nx.DiGraph, nodes: Sequence[str], C: set[str]) -> bool:
+def _open_given(M: DiGraph, nodes: Sequence[str], C: set[str]) -> bool:
     for i in range(1, len(nodes) - 1):
         a, k, b = nodes[i - 1], nodes[i], nodes[i + 1]
         if M.has_edge(a, k) and M.has_edge(b, k):
-            if not (({k} | set(nx.descendants(M, k))) & C):
+            if not (({k} | set(descendants(M, k))) & C):
                 return False
         elif k in C:
             return False
@@ -896,7 +906,7 @@ def _open_given(M: nx.DiGraph, nodes: Sequence[str], C: set[str]) -> bool:
 
 
 def _describe(
-    M: nx.DiGraph,
+    M: DiGraph,
     nodes: Sequence[str],
     C: set[str],
     S: set[str],
@@ -1000,7 +1010,7 @@ def _path_verdict(
     open_paths: Sequence[BypassPath],
     blocked_paths: Sequence[BypassPath],
     info: Mapping[str, Mapping[str, Any]],
-    G: nx.DiGraph,
+    G: DiGraph,
     issues: Sequence[str],
     W: set[str],
 ) -> ConditionVerdict:
