@@ -16,7 +16,7 @@ from ivdossier.errors import InvalidInputError
 if TYPE_CHECKING:
     from ivdossier.estimation.spec import ModelSpec
 
-VERSIONED_PACKAGES = ("numpy", "scipy", "pandas", "statsmodels", "sqlalchemy", "networkx")
+VERSIONED_PACKAGES = ("numpy", "scipy", "pandas", "statsmodels", "sqlalchemy")
 
 
 def package_versions() -> dict[str, str]:
