@@ -278,9 +278,14 @@ def build_demo(folder: Path) -> Path:
 
 
 def copy_registry(source: str, target: str, tmp: Path) -> None:
-    """Move a registry to another database through export and import (the tool's own path)."""
+    """Move a registry to another database through export, init and import (the tool's own path)."""
     folder = tmp / f"export-{time.monotonic_ns()}"
-    for argv in (["--db", source, "export", str(folder)], ["--db", target, "import", str(folder)]):
+    steps = (
+        ["--db", source, "export", str(folder)],
+        ["--db", target, "init"],
+        ["--db", target, "import", str(folder)],
+    )
+    for argv in steps:
         done = subprocess.run(
             [*IVDOSSIER, *argv], capture_output=True, text=True, env={**BASE_ENV, "IVDOSSIER_USER": "amara"}
         )
