@@ -199,8 +199,8 @@ def ar_curve_data(
         def gap(b: float) -> float:
             return float(ar(np.array([b]))[0][0] - crit)
 
-        lower = float(brentq(gap, probes[first - 1], probes[first], xtol=1e-12 * max(1.0, half)))
-        upper = float(brentq(gap, probes[last], probes[last + 1], xtol=1e-12 * max(1.0, half)))
+        lower = brentq(gap, probes[first - 1], probes[first], xtol=1e-12 * max(1.0, half))
+        upper = brentq(gap, probes[last], probes[last + 1], xtol=1e-12 * max(1.0, half))
         lo, hi = min(lower, grid[0]), max(upper, grid[-1])
         if lo < grid[0] or hi > grid[-1]:
             margin = 0.08 * (hi - lo)

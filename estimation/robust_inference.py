@@ -73,7 +73,8 @@ def invert_on_circle(
 ) -> list[Interval]:
     """Accepted set {b = tan(theta) : margin(theta) <= 0} from margins on a sorted grid over [-pi/2, pi/2].
 
-    Each change of sign between grid points is refined with brentq (estimation/roots.py); the grid ends represent b = -inf and +inf.
+    Each change of sign between grid points is refined with brentq (estimation/roots.py); the grid ends represent
+    b = -inf and +inf.
     """
     accepted = margins <= 0
     if accepted.all():
