@@ -76,8 +76,9 @@ def _defer_value_check(param: Any) -> None:
     Recent typer (0.29 here) checks option values with a pydantic TypeAdapter, built (and pydantic imported, about
     a fifth of a listing's start-up) the first time an option is processed, even an option left out. Here a
     left-out option stays None (or empty), text stays the same text, a path goes through typer's own path checks,
-    and any other value (numbers, dates, choices) goes to the checker typer builds then, so every value is read
-    exactly as typer reads it.
+    a number or bool that already is of the option's type (a default) stays as it is, and any other value
+    (numbers given as text, dates, choices) goes to the checker typer builds then, so every value is read exactly
+    as typer reads it.
     """
     descriptor: Any = getattr(param, "type_descriptor", None)
     info = getattr(descriptor, "parameter_info", None)
@@ -124,6 +125,15 @@ def _deferred_check_class() -> Any:
                 # typer's own path checks (exists, file or folder, readable...), given the Path that its pydantic
                 # step would make of the text; a Path value skips that step.
                 return coerce_cli_path(Path(value), self.parameter_info, path_type=Path, param=param, ctx=ctx)
+            if (
+                self.annotation in (int, float, bool)
+                and type(value) is self.annotation
+                and self.parameter_info.min is None
+                and self.parameter_info.max is None
+            ):
+                # a default such as --alpha's 0.05, already of the option's exact type: pydantic's int, float
+                # and bool checks return such a value unchanged (min/max would compare or clamp it)
+                return value
             real = build_runtime_param(self.descriptor)
             param._runtime_param = real
             return real._coerce_value(value, param=param, ctx=ctx)

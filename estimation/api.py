@@ -245,13 +245,13 @@ def interval_quantile(
 
     t with n - k - p degrees of freedom (G - 1, smallest G, with clusters) when ``small_sample``, else normal.
     """
-    from scipy import stats
+    from ivdossier.estimation.distributions import norm_ppf, t_ppf
 
     clustered = cov_name(vcov) == "clustered"
     df = None if not small_sample else (min(n_clusters) - 1 if clustered else df_resid)
     if df is None:
-        return float(stats.norm.ppf(1 - alpha / 2)), "normal quantiles", None
-    return float(stats.t.ppf(1 - alpha / 2, df)), f"t quantiles with {df} degrees of freedom", df
+        return norm_ppf(1 - alpha / 2), "normal quantiles", None
+    return t_ppf(1 - alpha / 2, df), f"t quantiles with {df} degrees of freedom", df
 
 
 @dataclass(frozen=True)

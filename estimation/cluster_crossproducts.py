@@ -177,13 +177,13 @@ def partialled_stats(
 
 def t_p_values(t: Array, df: Array) -> Array:
     """Two-sided p-values of t statistics with t(df) reference distributions."""
-    from scipy import stats
+    from ivdossier.estimation.distributions import t_sf_array
 
-    return np.asarray(2 * stats.t.sf(np.abs(t), df), dtype=np.float64)
+    return np.asarray(2 * t_sf_array(np.abs(t), df), dtype=np.float64)
 
 
 def f_p_values(f: Array, q: int, df: Array) -> Array:
     """Upper-tail p-values of F(q, df) statistics."""
-    from scipy import stats
+    from ivdossier.estimation.distributions import f_sf_array
 
-    return np.asarray(stats.f.sf(f, q, df), dtype=np.float64)
+    return np.asarray(f_sf_array(f, q, df), dtype=np.float64)

@@ -15,12 +15,13 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize, stats
 
 from ivdossier.estimation.covariance import CovSpec, cov_name
 from ivdossier.estimation.data import PreparedData
+from ivdossier.estimation.distributions import f_ppf
 from ivdossier.estimation.result import EstimationResult
 from ivdossier.estimation.robust_inference import ar_statistics
+from ivdossier.estimation.roots import brentq
 from ivdossier.estimation.strength import ols
 from ivdossier.jsonsafe import json_safe
 
@@ -185,7 +186,7 @@ def ar_curve_data(
     half = width * se if np.isfinite(se) and se > 0 else max(1.0, abs(centre))
     grid = np.linspace(centre - half, centre + half, points)
     values, d = ar(grid)
-    crit = float(stats.f.ppf(1 - result.alpha, prepared.Z.shape[1], d))
+    crit = f_ppf(1 - result.alpha, prepared.Z.shape[1], d)
     steps = half * 2.0 ** np.arange(1, 41)
     probes = np.concatenate([centre - steps[::-1], grid, centre + steps])
     probe_values = np.concatenate([ar(probes[:40])[0], values, ar(probes[-40:])[0]])
@@ -198,8 +199,8 @@ def ar_curve_data(
         def gap(b: float) -> float:
             return float(ar(np.array([b]))[0][0] - crit)
 
-        lower = float(optimize.brentq(gap, probes[first - 1], probes[first], xtol=1e-12 * max(1.0, half)))
-        upper = float(optimize.brentq(gap, probes[last], probes[last + 1], xtol=1e-12 * max(1.0, half)))
+        lower = brentq(gap, probes[first - 1], probes[first], xtol=1e-12 * max(1.0, half))
+        upper = brentq(gap, probes[last], probes[last + 1], xtol=1e-12 * max(1.0, half))
         lo, hi = min(lower, grid[0]), max(upper, grid[-1])
         if lo < grid[0] or hi > grid[-1]:
             margin = 0.08 * (hi - lo)

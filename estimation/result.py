@@ -81,11 +81,11 @@ class EstimationResult(Record):
     @property
     def pvalue(self) -> Array:
         """Two-sided p-values of a zero effect, from the same reference distribution as the intervals."""
-        from scipy import stats  # imported here: a stored result is read back without scipy.stats
+        from ivdossier.estimation.distributions import norm_sf_array, t_sf_array
 
         t = np.abs(self.tstat)
-        dist = stats.norm if self.ref_df is None else stats.t(self.ref_df)
-        return np.asarray(2 * dist.sf(t), dtype=np.float64)
+        tail = norm_sf_array(t) if self.ref_df is None else t_sf_array(t, self.ref_df)
+        return np.asarray(2 * tail, dtype=np.float64)
 
     def coef_of(self, name: str) -> float:
         """Coefficient of one named regressor."""

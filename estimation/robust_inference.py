@@ -48,6 +48,8 @@ from ivdossier.estimation.crossproducts import (
     build,
     quad_form_inv,
 )
+from ivdossier.estimation.distributions import f_ppf
+from ivdossier.estimation.roots import brentq
 from ivdossier.estimation.sets import Interval as Interval
 from ivdossier.estimation.sets import classify_set as classify_set
 from ivdossier.estimation.sets import quadratic_set as quadratic_set
@@ -71,10 +73,9 @@ def invert_on_circle(
 ) -> list[Interval]:
     """Accepted set {b = tan(theta) : margin(theta) <= 0} from margins on a sorted grid over [-pi/2, pi/2].
 
-    Each change of sign between grid points is refined with brentq; the grid ends represent b = -inf and +inf.
+    Each change of sign between grid points is refined with brentq (estimation/roots.py); the grid ends represent
+    b = -inf and +inf.
     """
-    from scipy import optimize  # imported where it computes, so reading stored results stays light
-
     accepted = margins <= 0
     if accepted.all():
         return [(-math.inf, math.inf)]
@@ -87,7 +88,7 @@ def invert_on_circle(
             # point whose margin is closer to zero instead of refining
             bounds.append(a if abs(fa) <= abs(fb) else b)
             continue
-        bounds.append(float(optimize.brentq(margin, a, b, xtol=xtol)))
+        bounds.append(brentq(margin, a, b, xtol=xtol))
     segments: list[tuple[float, float]] = []
     start = -HALF_PI if accepted[0] else None
     for root in bounds:
@@ -122,10 +123,10 @@ def angle_grid(center: float, scale: float, *, n_uniform: int = 1201, n_local: i
 
 def _refine_dip(margin: Callable[[float], float], thetas: Array, margins: Array) -> tuple[Array, Array]:
     """With no accepted grid point, minimise near the smallest margin so a narrow dip is not missed."""
-    from scipy import optimize
-
     if (margins <= 0).any():
         return thetas, margins
+    from scipy import optimize  # only here, where it minimises: importing scipy.optimize is slow
+
     i = int(np.argmin(margins))
     lo, hi = float(thetas[max(i - 1, 0)]), float(thetas[min(i + 1, len(thetas) - 1)])
     res = optimize.minimize_scalar(margin, bounds=(lo, hi), method="bounded", options={"xatol": 1e-13})
@@ -375,9 +376,7 @@ def anderson_rubin_from(
         )
     m = moments_from(cp)
     stat = _ar_wald(m, float(b0[0]) / m.unit) / k
-    from scipy import stats
-
-    crit = k * float(stats.f.ppf(1 - alpha, k, d))
+    crit = k * f_ppf(1 - alpha, k, d)
     reason = None
     intervals: list[Interval] | None
     how: str | None
@@ -541,12 +540,14 @@ def tf_from(cp: CrossProducts) -> TFResult:
 
 def clr_p_value(lr: float, qt: float, k: int) -> float:
     """P(LR > lr | Q_T = qt) under the null for k instruments (Moreira 2003), by numerical integration."""
-    from scipy import integrate, special
+    from scipy import special
 
     if lr <= 0:
         return 1.0
     if k == 1:
         return float(special.chdtrc(1, lr))
+    from scipy import integrate  # only here: importing scipy.integrate also imports scipy.optimize
+
     upper = lr + qt
     tail = float(special.chdtrc(k - 1, upper))
     # the chi2(k - 1) mass beyond v_max is below 1e-15, so the integral can stop there

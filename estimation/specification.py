@@ -36,6 +36,7 @@ from ivdossier.estimation.crossproducts import (
     quad_form_inv,
     solve_psd,
 )
+from ivdossier.estimation.distributions import chi2_sf, f_sf
 from ivdossier.estimation.strength import (
     Array,
     as_matrix,
@@ -153,8 +154,6 @@ def _just_identified(k: int, p: int, kind: str) -> OverId:
 
 def overid_from(cp: CrossProducts, *, beta: np.ndarray) -> OverId:
     """Over-identification test from the sufficient statistics."""
-    from scipy import stats
-
     k, p = cp.k, cp.p
     if k <= p:
         return _just_identified(k, p, cp.kind)
@@ -163,7 +162,7 @@ def overid_from(cp: CrossProducts, *, beta: np.ndarray) -> OverId:
         stat, name = sargan_from(cp, beta), "sargan"
     else:
         stat, name = hansen_j_from(cp)[0], "hansen_j"
-    return OverId(name, stat, df, float(stats.chi2.sf(stat, df)), None, cp.kind)
+    return OverId(name, stat, df, chi2_sf(stat, df), None, cp.kind)
 
 
 @dataclass(frozen=True)
@@ -219,8 +218,6 @@ def durbin_wu_hausman(
 
 def endogeneity_from(cp: CrossProducts) -> Endogeneity:
     """Control-function Wald test and Durbin's statistic from the sufficient statistics (coordinates)."""
-    from scipy import stats
-
     k, p = cp.k, cp.p
     rx, ry = cp.coords(cp.ix), cp.coords(cp.iy)
     v = rx.copy()
@@ -240,11 +237,11 @@ def endogeneity_from(cp: CrossProducts) -> Endogeneity:
     return Endogeneity(
         statistic=stat,
         df=p,
-        p_value=float(stats.chi2.sf(stat, p)),
+        p_value=chi2_sf(stat, p),
         f_statistic=f,
         f_df=(p, d),
-        f_p_value=float(stats.f.sf(f, p, d)) if math.isfinite(f) else 0.0,
+        f_p_value=f_sf(f, p, d) if math.isfinite(f) else 0.0,
         cov_kind=cp.kind,
         durbin=durbin,
-        durbin_p_value=float(stats.chi2.sf(durbin, p)),
+        durbin_p_value=chi2_sf(durbin, p),
     )

@@ -54,6 +54,7 @@ from ivdossier.estimation.crossproducts import (
     collinear_instruments,
     quad_form_inv,
 )
+from ivdossier.estimation.distributions import chi2_sf, f_sf
 from ivdossier.jsonsafe import Record, json_safe
 
 Array = NDArray[np.float64]
@@ -95,9 +96,7 @@ def wald(coef: Array, cov: Array) -> float:
 
 def f_p_value(f: float, q: int, d: int) -> float:
     """Upper-tail p-value of an F(q, d) statistic."""
-    from scipy import stats
-
-    return float(stats.f.sf(f, q, d)) if math.isfinite(f) else 0.0
+    return f_sf(f, q, d) if math.isfinite(f) else 0.0
 
 
 def _sym_sqrt(m: Array, *, inverse: bool = False) -> Array:
@@ -467,14 +466,12 @@ def _rk_statistic(theta: Array, f: Array, v_pi: Array) -> float:
 
 def kleibergen_paap_from(cp: CrossProducts) -> RankTest:
     """rk Wald on the orthonormal basis (G = (Z'Z)^{1/2} = I), Theta = Pi Sigma^{-1/2}."""
-    from scipy import stats
-
     pi = first_stage_pi(cp)
     f = _sym_sqrt(_resid_sigma(cp), inverse=True)
     stat = _rk_statistic(pi @ f.T, f, first_stage_cov(cp))
     k, p = cp.k, cp.p
     df = k - p + 1
-    return RankTest(stat, df, float(stats.chi2.sf(stat, df)), stat / k)
+    return RankTest(stat, df, chi2_sf(stat, df), stat / k)
 
 
 def kleibergen_paap_lm(
@@ -489,8 +486,6 @@ def kleibergen_paap_lm_from(cp: CrossProducts) -> RankLM:
     """rk LM: Theta = Pi (X'X)^{-1/2}; the covariance of vec(Pi) uses the treatments themselves as the
     residuals (under the null the combination X b_perp has no first stage, so its residual is itself) and
     no small-sample factor. Unadjusted: Omega = I / n, so LM = n * (smallest canonical correlation)^2."""
-    from scipy import stats
-
     pi = first_stage_pi(cp)
     rx = cp.coords(cp.ix)
     xx = rx.T @ rx
@@ -501,7 +496,7 @@ def kleibergen_paap_lm_from(cp: CrossProducts) -> RankLM:
         v_pi = cp.covariance(instrument_basis(cp), rx, np.eye(cp.k), cp.k, small_sample=False)
     stat = _rk_statistic(pi @ f.T, f, v_pi)
     df = cp.k - cp.p + 1
-    return RankLM(stat, df, float(stats.chi2.sf(stat, df)), cp.kind)
+    return RankLM(stat, df, chi2_sf(stat, df), cp.kind)
 
 
 def _psd_sqrt(m: Array) -> Array:
