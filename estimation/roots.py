@@ -4,6 +4,7 @@ A line-by-line port of scipy's `brentq` (scipy/optimize/Zeros/brentq.c, scipy 1.
 Python wrapper), so the root is the same float: Python floats are IEEE doubles and every operation is done in
 the C code's order. Importing `scipy.optimize` costs a large part of `estimate`'s start-up for this one routine.
 tests/test_roots.py compares the result with scipy.optimize.brentq on many functions and brackets.
+SciPy's BSD 3-Clause licence applies to this port (THIRD_PARTY_NOTICES.md).
 """
 
 from __future__ import annotations

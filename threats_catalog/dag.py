@@ -5,6 +5,7 @@ every algorithm visits them in the order networkx 3.x does (topological order by
 paths, bidirectional breadth-first shortest path, depth-first cycle search), so drawings and messages are the same
 as with networkx; tests/test_dag_reference.py compares each with networkx. The algorithms read a graph only
 through ``successors``, ``predecessors``, ``in`` and iteration, so a networkx ``DiGraph`` works with them too.
+The traversal orders are ported from NetworkX, whose BSD 3-Clause licence applies (THIRD_PARTY_NOTICES.md).
 """
 
 from __future__ import annotations
