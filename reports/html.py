@@ -21,7 +21,6 @@ from typing import Any
 
 from markdown_it import MarkdownIt
 from markdown_it.common.utils import escapeHtml, mdTrim
-from markdown_it.rules_block.table import escapedSplit
 from markdown_it.token import Token
 
 from ivdossier.errors import InvalidInputError
@@ -511,10 +510,9 @@ def _render_table(text: str) -> str | None:
 @lru_cache(maxsize=65536)
 def _render_row(line: str, aligns: tuple[str, ...], tag: str) -> str | None:
     """One table row's HTML (`tag` is th or td), remembered (generated tables repeat whole rows); None when the
-    row does not have one cell per column. Without a backslash every pipe separates cells, so the line is split
-    as the parser's `escapedSplit` would split it."""
+    row does not have one cell per column. The line is split as the parser's `escapedSplit` splits it."""
     trimmed = mdTrim(line)
-    cells = trimmed.split("|") if "\\" not in trimmed else escapedSplit(trimmed)
+    cells = trimmed.split("|") if "\\" not in trimmed else _split_escaped(trimmed)
     if cells and cells[0] == "":
         cells.pop(0)
     if cells and cells[-1] == "":
@@ -527,12 +525,26 @@ def _render_row(line: str, aligns: tuple[str, ...], tag: str) -> str | None:
     return f"<tr>\n{body}</tr>\n"
 
 
+_UNESCAPED_PIPE = re.compile(r"(?<!\\)\|")
+
+
+def _split_escaped(line: str) -> list[str]:
+    """The parser's `escapedSplit`, with regular expressions: a pipe right after a backslash stays in its cell
+    (without that backslash); every other pipe separates two cells."""
+    return [cell.replace("\\|", "|") for cell in _UNESCAPED_PIPE.split(line)]
+
+
 # Characters at which one of the active inline rules (newline, escape, backticks, emphasis, link, image, autolink,
 # entity) can start; text without any of them is one text run, which the parser writes HTML-escaped. An image
 # starts at "![" and a link at "[", so "!" and "]" without "[" are text, and no inline rule starts at ">".
 _INLINE_SYNTAX = re.compile(r"[\n\\`*\[<&\x00\r]")
 # An underscore without a letter or digit ([^\W_]: what str.isalnum accepts) right before it or right after it.
 _LOOSE_UNDERSCORE = re.compile(r"(?<![^\W_])_|_(?![^\W_])")
+
+
+# A backslash escape: a backslash before an ASCII punctuation character (CommonMark), which the parser writes as
+# that character alone, as text.
+_ESCAPE_PAIR = re.compile(r"\\([!-/:-@\[-`{-~])")
 
 
 def _plain_text(content: str) -> bool:
@@ -548,6 +560,11 @@ def _render_cell(content: str) -> str:
     """One table cell's inline HTML (with badge placeholders), as the parser renders a cell's content."""
     if _plain_text(content):
         return escapeHtml(content)
+    if "\\" in content and _plain_text(_ESCAPE_PAIR.sub("!", content)):
+        # Text whose only syntax is backslash escapes: each escape is one character of text, and with each one
+        # standing in for a punctuation mark ("!", which starts nothing here) the rest is plain, underscores
+        # beside an escape counted as loose.
+        return escapeHtml(_ESCAPE_PAIR.sub(r"\1", content))
     md = _section_parser()
     env: dict[str, Any] = {}
     return md.renderer.render(md.parseInline(content, env), md.options, env)
