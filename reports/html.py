@@ -193,8 +193,8 @@ _VERBATIM = re.compile(
 
 @dataclass(frozen=True)
 class _Shape:
-    """A cleaned template, and each judged attribute (href, or one that may carry a URL or CSS) whose value holds
-    a mark: (local name, is href, may carry a URL, value as parsed)."""
+    """A cleaned template, and the judged attributes (href, or one that may carry a URL or CSS) whose values hold
+    marks, each distinct one once: (local name, is href, may carry a URL, value as parsed)."""
 
     body: str
     judged: tuple[tuple[str, bool, bool, str], ...]
@@ -230,7 +230,7 @@ def _template_shape(template: str, marks: tuple[str, ...]) -> _Shape | None:
             placed += in_value
     if placed != len(found.findall(body)):  # a mark elsewhere, or one written as a character reference
         return None
-    return _Shape(body=body, judged=tuple(judged))
+    return _Shape(body=body, judged=tuple(dict.fromkeys(judged)))  # each value checked once
 
 
 def clean_filled_svg(svg: FilledSvg, *, key: str) -> str:
