@@ -2,6 +2,7 @@
 
 `replace_tree` builds the new folder next to the old one (a sibling whose name starts with a dot), then swaps the
 two with one rename, so a reader or an interrupted run sees the old folder or the new one, never a mixture.
+`staged_tree` does the same for a caller that writes the new version file by file (while it computes the rest).
 Files are created exclusively and never through symbolic links; nothing is written outside the folder and its
 staging sibling. A staging sibling left by a killed run is recognised (nobody holds its lock) and removed on the
 next run, after moving back any version-control entries it was carrying.
@@ -168,24 +169,6 @@ def _create_file(folder_fd: int, name: str, data: bytes) -> None:
         os.close(fd)
 
 
-def _write_tree(staging: Path, files: Mapping[str, bytes]) -> None:
-    """Write every file under a folder this process just created (exclusive creation, no links followed)."""
-    made: set[str] = set()
-    for rel in sorted(files):
-        parts = _check_rel(rel)
-        for depth in range(1, len(parts)):
-            sub = "/".join(parts[:depth])
-            if sub not in made:
-                os.mkdir(staging / sub, 0o777)
-                made.add(sub)
-        parent = staging.joinpath(*parts[:-1])
-        dir_fd = os.open(parent, os.O_RDONLY | _O_NOFOLLOW | _O_CLOEXEC | getattr(os, "O_DIRECTORY", 0))
-        try:
-            _create_file(dir_fd, parts[-1], files[rel])
-        finally:
-            os.close(dir_fd)
-
-
 _RENAME_EXCHANGE = 2
 _AT_FDCWD = -100
 
@@ -277,56 +260,142 @@ def replace_tree(
     files: Mapping[str, bytes],
     *,
     allowed_old: Sequence[str] | None = None,
+    compare: bool = True,
 ) -> TreeChange:
     """Make `target` hold exactly `files` (relative path -> bytes) plus its version-control entries, in one swap.
 
     The caller has checked the old folder's entries; `allowed_old` (relative paths) are those it accepted as
-    replaceable. Returns how many files changed compared with the old folder.
+    replaceable. Returns how many files changed compared with the old folder (`compare=False` reads no old file
+    and counts every file as written).
     """
-    root = Path(target)
-    parent = root.parent
-    parent.mkdir(parents=True, exist_ok=True)
-    clean_stale(root)
-    existed = root.is_dir()
-    old_files = {e.rel for e in scan_tree(root) if e.kind == "file"} if existed else set()
-    old_files = {r for r in old_files if r.split("/")[0] not in PRESERVED and r.split("/")[-1] not in CLUTTER}
-    if allowed_old is not None:
-        old_files &= set(allowed_old)
-    same = sum(1 for rel, data in files.items() if rel in old_files and read_regular(root / rel) == data)
-    change = TreeChange(written=len(files) - same, unchanged=same, removed=len(old_files - set(files)))
-    staging = Path(tempfile.mkdtemp(prefix=_prefix(root) + STAGING_TAG, dir=parent))
-    lock_fd = os.open(staging, os.O_RDONLY | _O_CLOEXEC)
+    with staged_tree(target, allowed_old=allowed_old, compare=compare) as stage:
+        for rel in sorted(files):
+            stage.write(rel, files[rel])
+        return stage.commit()
+
+
+@contextlib.contextmanager
+def staged_tree(
+    target: str | Path, *, allowed_old: Sequence[str] | None = None, compare: bool = True
+) -> Iterator[StagedTree]:
+    """A new version of `target` written file by file beside it (`StagedTree.write`) and swapped in by
+    `StagedTree.commit`; leaving the block any other way (an error, or no commit) removes it, and `target` stays
+    as it was. `allowed_old` and `compare` as for `replace_tree`."""
+    stage = StagedTree(Path(target), allowed_old, compare)
     try:
-        if fcntl is not None:
-            fcntl.flock(lock_fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        _write_tree(staging, files)
-        mode = stat.S_IMODE(root.stat().st_mode) if existed else 0o777 & ~_umask()
-        os.chmod(staging, mode)
-        if not existed:
-            os.rename(staging, root)  # also replaces an empty folder created meanwhile
-            return change
-        for name in sorted(PRESERVED):
-            if os.path.lexists(root / name):
-                os.rename(root / name, staging / name)
-        if _exchange(staging, root):
-            shutil.rmtree(staging, ignore_errors=True)  # now holds the old folder
-            return change
-        old = Path(tempfile.mkdtemp(prefix=_prefix(root) + OLD_TAG, dir=parent))
-        os.rmdir(old)
-        os.rename(root, old)
-        os.rename(staging, root)
-        shutil.rmtree(old, ignore_errors=True)
-        return change
-    except BaseException:
-        if os.path.isdir(staging) and os.path.isdir(root):
-            for name in sorted(PRESERVED):
-                if os.path.lexists(staging / name) and not os.path.lexists(root / name):
-                    os.rename(staging / name, root / name)
-        if staging.name.startswith(_prefix(root) + STAGING_TAG) and os.path.isdir(staging):
-            shutil.rmtree(staging, ignore_errors=True)
-        raise
+        yield stage
     finally:
-        os.close(lock_fd)
+        stage.close()
+
+
+class StagedTree:
+    """The staging sibling of a folder being replaced, locked while this process writes it (see `staged_tree`)."""
+
+    def __init__(self, root: Path, allowed_old: Sequence[str] | None, compare: bool) -> None:
+        self.root = root
+        parent = root.parent
+        parent.mkdir(parents=True, exist_ok=True)
+        clean_stale(root)
+        self.existed = root.is_dir()
+        old_files = {e.rel for e in scan_tree(root) if e.kind == "file"} if self.existed else set()
+        old_files = {
+            r for r in old_files if r.split("/")[0] not in PRESERVED and r.split("/")[-1] not in CLUTTER
+        }
+        if allowed_old is not None:
+            old_files &= set(allowed_old)
+        self.old_files = old_files
+        self.compare = compare
+        self.unchanged: set[str] = set()
+        self.files: set[str] = set()
+        self.folders: set[str] = set()
+        self.done = False
+        self.staging = Path(tempfile.mkdtemp(prefix=_prefix(root) + STAGING_TAG, dir=parent))
+        self.lock_fd = os.open(self.staging, os.O_RDONLY | _O_CLOEXEC)
+        try:
+            if fcntl is not None:
+                fcntl.flock(self.lock_fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BaseException:
+            self.close()
+            raise
+
+    def write(self, rel: str, data: bytes) -> None:
+        """Write one file of the new version (created exclusively, no link followed); writing the same path again
+        replaces what this stage wrote there."""
+        if self.done:
+            raise RuntimeError("the staged folder has been committed or removed; nothing more can be written")
+        parts = _check_rel(rel)
+        for depth in range(1, len(parts)):
+            sub = "/".join(parts[:depth])
+            if sub not in self.folders:
+                os.mkdir(self.staging / sub, 0o777)
+                self.folders.add(sub)
+        dir_fd = os.open(
+            self.staging.joinpath(*parts[:-1]),
+            os.O_RDONLY | _O_NOFOLLOW | _O_CLOEXEC | getattr(os, "O_DIRECTORY", 0),
+        )
+        try:
+            if rel in self.files:
+                os.unlink(parts[-1], dir_fd=dir_fd)
+                self.unchanged.discard(rel)
+            _create_file(dir_fd, parts[-1], data)
+        finally:
+            os.close(dir_fd)
+        self.files.add(rel)
+        if self.compare and rel in self.old_files and read_regular(self.root / rel) == data:
+            self.unchanged.add(rel)
+
+    def commit(self) -> TreeChange:
+        """Swap the new version in (one rename where the system can exchange two paths) and return how it
+        differs from the old one."""
+        if self.done:
+            raise RuntimeError("the staged folder has been committed or removed already")
+        root, staging = self.root, self.staging
+        change = TreeChange(
+            written=len(self.files) - len(self.unchanged),
+            unchanged=len(self.unchanged),
+            removed=len(self.old_files - self.files),
+        )
+        try:
+            mode = stat.S_IMODE(root.stat().st_mode) if self.existed else 0o777 & ~_umask()
+            os.chmod(staging, mode)
+            if not self.existed:
+                os.rename(staging, root)  # also replaces an empty folder created meanwhile
+                self.done = True
+                return change
+            for name in sorted(PRESERVED):
+                if os.path.lexists(root / name):
+                    os.rename(root / name, staging / name)
+            if _exchange(staging, root):
+                self.done = True
+                shutil.rmtree(staging, ignore_errors=True)  # now holds the old folder
+                return change
+            old = Path(tempfile.mkdtemp(prefix=_prefix(root) + OLD_TAG, dir=root.parent))
+            os.rmdir(old)
+            os.rename(root, old)
+            os.rename(staging, root)
+            self.done = True
+            shutil.rmtree(old, ignore_errors=True)
+            return change
+        except BaseException:
+            if os.path.isdir(staging) and os.path.isdir(root):
+                for name in sorted(PRESERVED):
+                    if os.path.lexists(staging / name) and not os.path.lexists(root / name):
+                        os.rename(staging / name, root / name)
+            raise
+
+    def close(self) -> None:
+        """Remove the staging folder unless it was committed, and release its lock."""
+        if self.lock_fd < 0:
+            return
+        try:
+            if not self.done:
+                self.done = True
+                staging = self.staging
+                if staging.name.startswith(_prefix(self.root) + STAGING_TAG) and os.path.isdir(staging):
+                    shutil.rmtree(staging, ignore_errors=True)
+        finally:
+            os.close(self.lock_fd)
+            self.lock_fd = -1
 
 
 def _read_umask() -> int:

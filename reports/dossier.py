@@ -23,6 +23,7 @@ from ivdossier.reports.provenance import provenance_markdown
 from ivdossier.vocabulary import Verdict
 
 if TYPE_CHECKING:
+    from ivdossier.reports.html import FilledSvg
     from ivdossier.threats_catalog.graph import BypassPath, GraphVerdict
 
 STATE_ORDER = {"fatal": 0, "open": 1, "accepted": 2, "mitigated": 3, "rebutted": 4}
@@ -109,7 +110,21 @@ def dossier_html(inp: DossierInput, *, preamble: str = "") -> str:
     if preamble:
         markdown = preamble.rstrip() + "\n\n" + markdown
     title = f"Dossier: {inp.instrument.name or inp.instrument.slug}"
-    return render_html(markdown, title=title, svgs=dossier_figures(inp))
+    return render_html(markdown, title=title, svgs=_html_figures(inp))
+
+
+def _html_figures(inp: DossierInput) -> dict[str, str | FilledSvg]:
+    """`dossier_figures`, with the diagram given as its template and texts when they make exactly the same SVG."""
+    from ivdossier.reports.html import FilledSvg
+
+    figures: dict[str, str | FilledSvg] = dict(dossier_figures(inp))
+    graph = inp.graph
+    if graph is not None and graph.svg_fills:
+        filled = FilledSvg(graph.svg_template, graph.svg_fills)
+        for key, kind in figure_keys(inp).items():
+            if kind == "diagram" and figures.get(key) == filled.text:
+                figures[key] = filled
+    return figures
 
 
 def figure_keys(inp: DossierInput) -> dict[str, str]:

@@ -14,13 +14,13 @@ import html
 import re
 import xml.etree.ElementTree as ET  # DOCTYPE and entity declarations are refused before parsing
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
 from markdown_it import MarkdownIt
 from markdown_it.common.utils import escapeHtml, mdTrim
-from markdown_it.rules_block.table import escapedSplit
 from markdown_it.token import Token
 
 from ivdossier.errors import InvalidInputError
@@ -160,6 +160,109 @@ def _clean_svg_cached(svg: str, key: str) -> str:
     return clean_svg(svg, key=key)
 
 
+@dataclass(frozen=True)
+class FilledSvg:
+    """An SVG given as a template holding one-character marks and the escaped text written for each mark, in
+    order (a drawing shared by many pages that differ only in a name); `text` is the SVG itself."""
+
+    template: str
+    fills: tuple[tuple[str, str], ...] = ()
+
+    @property
+    def text(self) -> str:
+        out = self.template
+        for mark, value in self.fills:
+            out = out.replace(mark, value)
+        return out
+
+
+# A mark is one private-use character.
+_MARK = re.compile("[\ue000-\uf8ff]")
+# Escaped text that leaves an XML document's structure as it is wherever character data or a quoted attribute
+# value stands: XML characters except < > & " ' (and CR and C0/C1 controls, left to the full check), and the five
+# entity references the SVG escapers write.
+_INERT = re.compile(
+    "(?:[\t\n\x20\x21\x23-\x25\x28-\x3b\x3d\x3f-\x7e\xa0-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]"
+    "|&(?:amp|lt|gt|quot|#39);)*"
+)
+# Inert text the parser reads as written inside an attribute value (no reference, no tab or newline to normalise).
+_VERBATIM = re.compile(
+    "[\x20\x21\x23-\x25\x28-\x3b\x3d\x3f-\x7e\xa0-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]*"
+)
+
+
+@dataclass(frozen=True)
+class _Shape:
+    """A cleaned template, and the judged attributes (href, or one that may carry a URL or CSS) whose values hold
+    marks, each distinct one once: (local name, is href, may carry a URL, value as parsed)."""
+
+    body: str
+    judged: tuple[tuple[str, bool, bool, str], ...]
+
+
+@lru_cache(maxsize=512)
+def _template_shape(template: str, marks: tuple[str, ...]) -> _Shape | None:
+    """The template cleaned once, when filling its marks with inert text cannot change what `clean_svg` decides:
+    the template is accepted, holds no declaration, comment or processing instruction, and its marks (distinct
+    private-use characters) stand only in character data and attribute values. None otherwise."""
+    if len(set(marks)) != len(marks) or not all(len(m) == 1 and _MARK.fullmatch(m) for m in marks):
+        return None
+    if "<!" in template or "<?" in template:
+        return None
+    try:
+        body = clean_svg(template, key="template")
+    except (InvalidInputError, ValueError):
+        return None
+    found = re.compile("[" + "".join(marks) + "]")
+    placed = 0
+    judged: list[tuple[str, bool, bool, str]] = []
+    for el in ET.fromstring(f'<wrapper xmlns:xlink="{XLINK_NS}">{body}</wrapper>')[0].iter():
+        if found.search(el.tag):
+            return None
+        placed += len(found.findall(el.text or "")) + len(found.findall(el.tail or ""))
+        for name, value in el.attrib.items():
+            if found.search(name):
+                return None
+            in_value = len(found.findall(value))
+            a_local, _, href, _, url = _attribute_rule(name)
+            if in_value and (href or url):
+                judged.append((a_local, href, url, value))
+            placed += in_value
+    if placed != len(found.findall(body)):  # a mark elsewhere, or one written as a character reference
+        return None
+    return _Shape(body=body, judged=tuple(dict.fromkeys(judged)))  # each value checked once
+
+
+def clean_filled_svg(svg: FilledSvg, *, key: str) -> str:
+    """`clean_svg(svg.text, key=key)`, with the template cleaned once for every page showing it: when the texts are
+    inert (see `_INERT`), the filled template is accepted exactly when the judged attribute values holding marks
+    pass their checks once filled, and its cleaned form is the cleaned template filled. Anything else (text that
+    is not inert, a refused value, a template that cannot be shared) is cleaned in full."""
+    marks = tuple(mark for mark, _ in svg.fills)
+    shape = _template_shape(svg.template, marks) if marks else None
+    if shape is None or not _fills_inert(svg.fills, shape):
+        return _clean_svg_cached(svg.text, key)
+    return FilledSvg(shape.body, svg.fills).text
+
+
+def _fills_inert(fills: tuple[tuple[str, str], ...], shape: _Shape) -> bool:
+    """Whether every text is inert and holds no mark, and every judged value holding a mark, filled, passes."""
+    for _, text in fills:
+        if not _INERT.fullmatch(text) or any(mark in text for mark, _ in fills):
+            return False
+    for _, href, url, value in shape.judged:
+        for mark, text in fills:
+            if mark in value:
+                if not _VERBATIM.fullmatch(text):
+                    return False
+                value = value.replace(mark, text)
+        if href and not value.strip().startswith("#"):
+            return False
+        if url and _unsafe_value(value):
+            return False
+    return True
+
+
 @lru_cache(maxsize=1)
 def stylesheet() -> str:
     """The document stylesheet (reports/dossier.css)."""
@@ -184,7 +287,7 @@ def render_html(
     markdown: str,
     *,
     title: str,
-    svgs: Mapping[str, str] | None = None,
+    svgs: Mapping[str, str | FilledSvg] | None = None,
     badges: Mapping[str, str] | None = None,
     lang: str = "en",
     toc: bool = True,
@@ -192,7 +295,7 @@ def render_html(
 ) -> str:
     """Render Markdown to one self-contained HTML page.
 
-    `svgs` maps figure keys (from ``mdtext.figure``) to trusted generated SVG; `badges` maps verdict statuses
+    `svgs` maps figure keys (from ``mdtext.figure``) to trusted generated SVG (or a `FilledSvg`); `badges` maps verdict statuses
     to badge SVG (default: ``plots.verdict_badge_svg``); `wide` widens the sheet for broad comparison tables.
     A figure marker without an SVG raises InvalidInputError, so a missing plot is noticed, not dropped.
 
@@ -200,7 +303,10 @@ def render_html(
     renders independently) and each section's HTML is remembered, so text repeated across documents (a
     catalogue threat, a shared claim) is parsed once per process however many pages show it.
     """
-    figures = {key: _clean_svg_cached(svg, key) for key, svg in (svgs or {}).items()}
+    figures = {
+        key: clean_filled_svg(svg, key=key) if isinstance(svg, FilledSvg) else _clean_svg_cached(svg, key)
+        for key, svg in (svgs or {}).items()
+    }
     if badges is None:
         from ivdossier.reports.plots import verdict_badge_svg
 
@@ -404,10 +510,9 @@ def _render_table(text: str) -> str | None:
 @lru_cache(maxsize=65536)
 def _render_row(line: str, aligns: tuple[str, ...], tag: str) -> str | None:
     """One table row's HTML (`tag` is th or td), remembered (generated tables repeat whole rows); None when the
-    row does not have one cell per column. Without a backslash every pipe separates cells, so the line is split
-    as the parser's `escapedSplit` would split it."""
+    row does not have one cell per column. The line is split as the parser's `escapedSplit` splits it."""
     trimmed = mdTrim(line)
-    cells = trimmed.split("|") if "\\" not in trimmed else escapedSplit(trimmed)
+    cells = trimmed.split("|") if "\\" not in trimmed else _split_escaped(trimmed)
     if cells and cells[0] == "":
         cells.pop(0)
     if cells and cells[-1] == "":
@@ -420,12 +525,26 @@ def _render_row(line: str, aligns: tuple[str, ...], tag: str) -> str | None:
     return f"<tr>\n{body}</tr>\n"
 
 
+_UNESCAPED_PIPE = re.compile(r"(?<!\\)\|")
+
+
+def _split_escaped(line: str) -> list[str]:
+    """The parser's `escapedSplit`, with regular expressions: a pipe right after a backslash stays in its cell
+    (without that backslash); every other pipe separates two cells."""
+    return [cell.replace("\\|", "|") for cell in _UNESCAPED_PIPE.split(line)]
+
+
 # Characters at which one of the active inline rules (newline, escape, backticks, emphasis, link, image, autolink,
 # entity) can start; text without any of them is one text run, which the parser writes HTML-escaped. An image
 # starts at "![" and a link at "[", so "!" and "]" without "[" are text, and no inline rule starts at ">".
 _INLINE_SYNTAX = re.compile(r"[\n\\`*\[<&\x00\r]")
 # An underscore without a letter or digit ([^\W_]: what str.isalnum accepts) right before it or right after it.
 _LOOSE_UNDERSCORE = re.compile(r"(?<![^\W_])_|_(?![^\W_])")
+
+
+# A backslash escape: a backslash before an ASCII punctuation character (CommonMark), which the parser writes as
+# that character alone, as text.
+_ESCAPE_PAIR = re.compile(r"\\([!-/:-@\[-`{-~])")
 
 
 def _plain_text(content: str) -> bool:
@@ -441,6 +560,11 @@ def _render_cell(content: str) -> str:
     """One table cell's inline HTML (with badge placeholders), as the parser renders a cell's content."""
     if _plain_text(content):
         return escapeHtml(content)
+    if "\\" in content and _plain_text(_ESCAPE_PAIR.sub("!", content)):
+        # Text whose only syntax is backslash escapes: each escape is one character of text, and with each one
+        # standing in for a punctuation mark ("!", which starts nothing here) the rest is plain, underscores
+        # beside an escape counted as loose.
+        return escapeHtml(_ESCAPE_PAIR.sub(r"\1", content))
     md = _section_parser()
     env: dict[str, Any] = {}
     return md.renderer.render(md.parseInline(content, env), md.options, env)

@@ -377,10 +377,16 @@ class PowerInfo:
 
 @dataclass(frozen=True)
 class GraphInfo:
-    """The causal-graph checker's result (a typed ``GraphVerdict``) and the generated SVG of the diagram."""
+    """The causal-graph checker's result (a typed ``GraphVerdict``) and the generated SVG of the diagram.
+
+    `svg_template` and `svg_fills` may give the same SVG as a drawing with one-character marks and the escaped
+    text for each mark (`svg` is the template filled in); an HTML page then checks the drawing's shape once.
+    """
 
     verdict: GraphVerdict | None = None
     svg: str = ""
+    svg_template: str = ""
+    svg_fills: tuple[tuple[str, str], ...] = ()
 
 
 @dataclass(frozen=True)

@@ -45,20 +45,36 @@ def worker_count(n_items: int) -> int:
     return min(cpus, MAX_WORKERS)
 
 
-def render_parallel(items: Sequence[T], fn: Callable[[T], R]) -> list[R]:
-    """``[fn(item) for item in items]``, computed on several cores when that pays (see the module docstring)."""
+def render_parallel(
+    items: Sequence[T], fn: Callable[[T], R], each: Callable[[int, R], None] | None = None
+) -> list[R]:
+    """``[fn(item) for item in items]``, computed on several cores when that pays (see the module docstring).
+
+    `each(i, result)` is called in this process for every result as soon as it is back, in order (while later
+    items are still being rendered); after a failure of the workers it is called again for every item, with the
+    results of the serial render.
+    """
     workers = worker_count(len(items))
     if workers and _LOCK.acquire(blocking=False):
         try:
-            return _render_forked(items, fn, workers)
+            return _render_forked(items, fn, workers, each)
+        except _EachFailed as exc:
+            raise exc.error from None  # the caller's own step failed, not the workers: no serial retry
         except Exception:
             pass  # whatever went wrong in or with the workers, the serial render below repeats it or succeeds
         finally:
             _LOCK.release()
-    return [fn(item) for item in items]
+    out = []
+    for i, item in enumerate(items):
+        out.append(fn(item))
+        if each is not None:
+            each(i, out[-1])
+    return out
 
 
-def _render_forked(items: Sequence[T], fn: Callable[[T], R], workers: int) -> list[R]:
+def _render_forked(
+    items: Sequence[T], fn: Callable[[T], R], workers: int, each: Callable[[int, R], None] | None
+) -> list[R]:
     global _JOB
     n = len(items)
     size = -(-n // (workers * _CHUNKS_PER_WORKER))
@@ -75,11 +91,25 @@ def _render_forked(items: Sequence[T], fn: Callable[[T], R], workers: int) -> li
             gc.unfreeze()
         out: list[R] = []
         for chunk in chunks:
-            out.extend(chunk)
+            for result in chunk:
+                if each is not None:
+                    try:
+                        each(len(out), result)
+                    except Exception as exc:
+                        raise _EachFailed(exc) from exc
+                out.append(result)
         return out
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
         _JOB = None
+
+
+class _EachFailed(Exception):
+    """An error raised by the caller's `each` while the workers rendered (re-raised as it is)."""
+
+    def __init__(self, error: Exception) -> None:
+        super().__init__(str(error))
+        self.error = error
 
 
 def _render_chunk(bounds: tuple[int, int]) -> list[Any]:

@@ -197,10 +197,18 @@ def build_site(
     for d in dossiers:
         by_program[d.program.slug].append(d)
     extras = _Extras(plans=plans, runs=runs, studies=studies)
-    with mt.for_html():
-        written = _pages(root, ordered, by_program, program_dirs, dossiers, catalog_entries, title, extras)
-    # Every page is rendered before anything is written; then the whole site replaces the old one in one swap.
-    safefiles.replace_tree(root, written, allowed_old=old)
+    # The pages are written into a staging folder beside the site as they are rendered (the instrument pages while
+    # the rest are still being rendered); once every page is there, the whole site replaces the old one in one
+    # swap. An error on the way removes the staging folder and leaves the old site as it was.
+    with safefiles.staged_tree(root, allowed_old=old, compare=False) as stage:
+        with mt.for_html():
+            written = _pages(
+                root, ordered, by_program, program_dirs, dossiers, catalog_entries, title, extras, stage.write
+            )
+        for rel, data in written.items():
+            if rel not in stage.files:
+                stage.write(rel, data)
+        stage.commit()
     return [root.joinpath(*rel.split("/")) for rel in written]
 
 
@@ -217,6 +225,7 @@ def _pages(
     catalog_entries: Sequence[CatalogEntry],
     title: str,
     extras: _Extras,
+    stage: Callable[[str, bytes], None],
 ) -> dict[str, bytes]:
     # The instrument pages are most of the work and independent of each other: they are assembled (when pending)
     # and rendered first, on all cores, each with what the pages listing it show of it (a `_Summary`).
@@ -232,9 +241,14 @@ def _pages(
         )
         for d in by_program[program.slug]:
             relative = f"programs/{folder}/instruments/{files[id(d)]}.html"
+            _write(root, relative, "", {})  # checks the path before the page is staged
             instrument_pages.append((relative, d, nav, files[id(d)]))
     _warm_up()
-    rendered = render_parallel(instrument_pages, _instrument_page)
+
+    def staged(i: int, made: tuple[bytes, _Summary]) -> None:
+        stage(instrument_pages[i][0], made[0])
+
+    rendered = render_parallel(instrument_pages, _instrument_page, staged)
     html_of: dict[str, bytes] = {}
     summary: dict[int, _Summary] = {}
     for (relative, d, _, _), (html, made) in zip(instrument_pages, rendered, strict=True):

@@ -381,3 +381,71 @@ def test_a_table_cell_rendered_directly_matches_the_markdown_parser(content: str
     md = _section_parser()
     env: dict[str, object] = {}
     assert _render_cell(content) == md.renderer.render(md.parseInline(content, env), md.options, env)
+
+
+_ESCAPED_TEXT = st.lists(
+    st.sampled_from(
+        [
+            *"ab9_ -!]|<&*`[\\",
+            "\\<",
+            "\\-",
+            "\\_",
+            "\\*",
+            "\\\\",
+            "\\|",
+            "\\[",
+            "\\`",
+            "\\&",
+            "\\a",
+            "\\é",
+            "é",
+            "a_b",
+        ]
+    ),
+    max_size=12,
+).map("".join)
+
+
+@settings(max_examples=1500, deadline=None)
+@given(content=_ESCAPED_TEXT)
+def test_a_cell_with_backslash_escapes_rendered_directly_matches_the_markdown_parser(content: str) -> None:
+    # Exact identity: cells whose only syntax is backslash escapes (as mdtext writes "\<" in path texts) are
+    # written without the parser; markdown-it's inline parser on the same trimmed content is the reference.
+    from markdown_it.common.utils import mdTrim
+
+    from ivdossier.reports.html import _render_cell, _section_parser
+
+    content = mdTrim(content)
+    md = _section_parser()
+    env: dict[str, object] = {}
+    assert _render_cell.__wrapped__(content) == md.renderer.render(
+        md.parseInline(content, env), md.options, env
+    )
+
+
+def test_escaped_cells_take_the_direct_path() -> None:
+    from ivdossier.reports import html as h
+
+    md = h._section_parser()
+    # underscores beside an escape can open or close emphasis (the escaped character is punctuation)
+    for content in ("\\<_a_\\<", "a\\__b_", "\\__a__\\_", "\\*a\\*", "x\\<_y", "\\-_a_-"):
+        env: dict[str, object] = {}
+        assert h._render_cell.__wrapped__(content) == md.renderer.render(
+            md.parseInline(content, env), md.options, env
+        ), content
+
+    for content in ("open path z5 \\<- u -> Y (T-0230): at-risk", "a\\_b \\* c", "\\\\"):
+        assert "\\" in content and h._plain_text(h._ESCAPE_PAIR.sub("!", content)), content
+    for content in ("a\\b", "x_\\<", "\\", "\\< *b*"):
+        assert not h._plain_text(h._ESCAPE_PAIR.sub("!", content)), content
+
+
+@settings(max_examples=1500, deadline=None)
+@given(line=st.lists(st.sampled_from([*"ab|\\ |", "\\|", "\\\\|", "||", "`|`"]), max_size=16).map("".join))
+def test_rows_are_split_as_the_parsers_escaped_split_splits_them(line: str) -> None:
+    # Exact identity against markdown-it's own splitting function.
+    from markdown_it.rules_block.table import escapedSplit
+
+    from ivdossier.reports.html import _split_escaped
+
+    assert _split_escaped(line) == escapedSplit(line)

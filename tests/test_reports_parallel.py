@@ -282,3 +282,60 @@ def test_workers_collect_garbage_every_few_items_not_while_rendering_each(
     for start in range(0, n, size):
         # the cycles made since the last collection are alive; all earlier ones (other chunks too) were collected
         assert [alive for _, alive, _ in out[start : start + size]] == [0, 1, 2, 0, 1, 2, 0]
+
+
+@linux_only
+@pytest.mark.parametrize("workers", [False, True])
+def test_each_result_is_handed_over_in_order_in_this_process(
+    monkeypatch: pytest.MonkeyPatch, workers: bool
+) -> None:
+    monkeypatch.setattr(parallel, "MIN_PARALLEL", 2 if workers else 10**9)
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    seen: list[tuple[int, tuple[int, int, bool], int]] = []
+    items = list(range(37))
+    out = parallel.render_parallel(items, _tagged, lambda i, r: seen.append((i, r, os.getpid())))
+    assert [(i, r) for i, r, _ in seen] == list(enumerate(out))
+    assert [i for i, _, _ in out] == items
+    assert {pid for _, _, pid in seen} == {os.getpid()}
+    assert (os.getpid() in {pid for _, pid, _ in out}) is not workers
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_an_error_in_the_hand_over_is_raised_as_it_is_without_a_serial_retry() -> None:
+    parent = os.getpid()
+    in_parent: list[int] = []
+
+    def render(i: int) -> int:
+        if os.getpid() == parent:
+            in_parent.append(i)
+        return i
+
+    def refuse_5(i: int, r: int) -> None:
+        if i == 5:
+            raise OSError(28, "No space left on device")
+
+    with pytest.raises(OSError, match="No space left"):
+        parallel.render_parallel(list(range(40)), render, refuse_5)
+    assert in_parent == []  # the items were not rendered again here
+
+
+@linux_only
+@pytest.mark.usefixtures("forced")
+def test_a_failing_page_leaves_the_previous_site_as_it_was(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    build_site(tmp_path / "site", [PROGRAM], _dossiers(), [])
+    before = _files((tmp_path / "site").resolve())
+    real = site_module.dossier_html
+
+    def broken_for_fees(d: DossierInput, *, preamble: str = "") -> str:
+        if d.instrument.slug == "fees":  # rendered after pages already staged
+            raise InvalidInputError("instrument fees cannot be rendered; fix its record.")
+        return real(d, preamble=preamble)
+
+    monkeypatch.setattr(site_module, "dossier_html", broken_for_fees)
+    with pytest.raises(InvalidInputError, match="instrument fees cannot be rendered"):
+        build_site(tmp_path / "site", [PROGRAM], _dossiers(), [])
+    assert _files((tmp_path / "site").resolve()) == before
+    assert [p.name for p in tmp_path.iterdir()] == ["site"]

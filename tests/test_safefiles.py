@@ -50,3 +50,41 @@ def test_unsafe_relative_paths_are_refused(tmp_path: Path) -> None:
         with pytest.raises(safefiles.InvalidInputError, match="not a plain relative path"):
             safefiles.replace_tree(tmp_path / "out", {rel: b"x"})
     assert sorted(p.name for p in tmp_path.iterdir()) == []
+
+
+def test_without_comparing_no_old_file_is_read_and_every_file_counts_as_written(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    target = tmp_path / "out"
+    safefiles.replace_tree(target, {"a.txt": b"1", "b.txt": b"2"})
+
+    def no_reading(path: Path, limit: int | None = None) -> bytes | None:
+        raise AssertionError(f"read {path}")
+
+    monkeypatch.setattr(safefiles, "read_regular", no_reading)
+    change = safefiles.replace_tree(target, {"a.txt": b"1", "c.txt": b"3"}, compare=False)
+    assert (change.written, change.unchanged, change.removed) == (2, 0, 1)
+    assert _tree(target) == {"a.txt": b"1", "c.txt": b"3"}
+
+
+def test_a_staged_tree_is_swapped_in_only_by_its_commit(tmp_path: Path) -> None:
+    target = tmp_path / "out"
+    safefiles.replace_tree(target, {"a.txt": b"old"})
+    with pytest.raises(ValueError, match="stop"), safefiles.staged_tree(target) as stage:
+        stage.write("a.txt", b"new")
+        stage.write("sub/b.txt", b"2")
+        raise ValueError("stop")
+    with safefiles.staged_tree(target) as stage:  # left without a commit
+        stage.write("a.txt", b"new")
+    assert _tree(target) == {"a.txt": b"old"}
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]  # no staging folder left beside it
+    with safefiles.staged_tree(target) as stage:
+        stage.write("a.txt", b"first")
+        stage.write("sub/b.txt", b"2")
+        stage.write("a.txt", b"old")  # written again: the last version counts, compared with the old file
+        change = stage.commit()
+        with pytest.raises(RuntimeError, match="committed"):
+            stage.write("c.txt", b"3")
+    assert (change.written, change.unchanged, change.removed) == (1, 1, 0)
+    assert _tree(target) == {"a.txt": b"old", "sub/b.txt": b"2"}
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]

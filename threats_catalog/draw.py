@@ -720,6 +720,20 @@ def render_svg(
     The result has no scripts, external fonts or links; every user-supplied string is escaped. Passing
     ``verdict=None`` draws the graph alone, without the verdict strip and path emphasis.
     """
+    template, fills = render_svg_parts(G, verdict, title=title, verdicts=verdicts)
+    return fill_marks(template, fills)
+
+
+def render_svg_parts(
+    G: DiGraph,
+    verdict: GraphVerdict | None,
+    *,
+    title: str | None = None,
+    verdicts: Sequence[Verdict] | None = None,
+) -> tuple[str, tuple[tuple[str, str], ...]]:
+    """`render_svg` as a drawing with one-character marks and the escaped text written for each mark (none when
+    the drawing is not shared): ``fill_marks(*render_svg_parts(...)) == render_svg(...)``. Pages showing many
+    drawings of one shape can check the shape once and the filled-in texts on their own."""
     if not _directed(G) or G.number_of_nodes() == 0:
         raise InvalidInputError(
             "render_svg needs a non-empty directed graph (a DiGraph); build one with build_graph"
@@ -730,19 +744,18 @@ def render_svg(
         )
     key = _drawing_key(G, verdict, title, verdicts)
     if key is None:
-        return _draw(G, verdict, title, verdicts, marked=False)
+        return _draw(G, verdict, title, verdicts, marked=False), ()
     assert verdict is not None and title
     template = _DRAWN.get(key)
     if template is None:
         drawn = _draw(G, verdict, title, verdicts, marked=False)
         template = _draw(G, verdict, title, verdicts, marked=True)
         if _fill(template, G, verdict.instrument, title) != drawn:  # a text held a mark: never shared
-            return drawn
+            return drawn, ()
         if len(_DRAWN) >= _DRAWN_MAX:
             _DRAWN.clear()
         _DRAWN[key] = template
-        return drawn
-    return _fill(template, G, verdict.instrument, title)
+    return template, _fills(G, verdict.instrument, title)
 
 
 def _directed(G: object) -> bool:
@@ -766,10 +779,20 @@ def _ids(G: DiGraph) -> str:
     return "ivd-" + hashlib.sha256(repr(sorted(map(str, G.edges))).encode()).hexdigest()[:8]
 
 
+def _fills(G: DiGraph, name: str, title: str) -> tuple[tuple[str, str], ...]:
+    """What a remembered drawing's marks stand for: the id prefix, the escaped name and the escaped title."""
+    return ((_IDS_MARK, _ids(G)), (_NAME_MARK, esc(name)), (_TITLE_MARK, esc(title)))
+
+
 def _fill(template: str, G: DiGraph, name: str, title: str) -> str:
-    return (
-        template.replace(_IDS_MARK, _ids(G)).replace(_NAME_MARK, esc(name)).replace(_TITLE_MARK, esc(title))
-    )
+    return fill_marks(template, _fills(G, name, title))
+
+
+def fill_marks(template: str, fills: Sequence[tuple[str, str]]) -> str:
+    """The template with each mark replaced by its text, in order."""
+    for mark, text in fills:
+        template = template.replace(mark, text)
+    return template
 
 
 def _drawing_key(

@@ -433,8 +433,6 @@ def dossier_input(
     what differs from machine to machine (run timings and installed package versions), for golden files.
     `reader` shares reads between many dossiers (the site preloads one).
     """
-    from ivdossier.threats_catalog.draw import render_svg
-
     inst = records.get(session, Instrument, slug)
     return _dossier_input(
         session,
@@ -443,7 +441,6 @@ def dossier_input(
         relative_to=relative_to,
         reproducible=reproducible,
         reader=reader or RegistryReader(session),
-        render_svg=render_svg,
     )
 
 
@@ -455,11 +452,12 @@ def _dossier_input(
     relative_to: Path | None,
     reproducible: bool,
     reader: RegistryReader,
-    render_svg: Any,
     prior_uses: tuple[str, ...] | None = None,
 ) -> ri.DossierInput:
     """The dossier input with its diagram drawn; `prior_uses` (the literature audit sections, read beforehand)
     spares the reads `_prior_uses` makes, so that a forked worker can assemble it without the database."""
+    from ivdossier.threats_catalog.draw import fill_marks, render_svg_parts
+
     G, inp = _assemble(
         session,
         inst,
@@ -471,8 +469,16 @@ def _dossier_input(
         prior_uses=prior_uses,
     )
     assert inp.graph is not None
-    svg = render_svg(G, inp.graph.verdict, title=f"Causal diagram for {inst.name}", verdicts=inp.verdicts)
-    return dataclasses.replace(inp, graph=ri.GraphInfo(verdict=inp.graph.verdict, svg=svg))
+    template, fills = render_svg_parts(
+        G, inp.graph.verdict, title=f"Causal diagram for {inst.name}", verdicts=inp.verdicts
+    )
+    graph = ri.GraphInfo(
+        verdict=inp.graph.verdict,
+        svg=fill_marks(template, fills),
+        svg_template=template if fills else "",
+        svg_fills=fills,
+    )
+    return dataclasses.replace(inp, graph=graph)
 
 
 def _assemble(
@@ -604,7 +610,6 @@ def write_site(
 ) -> list[Path]:
     """Write the static site of the whole registry: programs, candidate comparisons, dossiers, catalogue."""
     from ivdossier.reports.site import PendingDossier, build_site
-    from ivdossier.threats_catalog.draw import render_svg
 
     programs = list(session.scalars(select(Program).order_by(Program.slug)))
     infos = [program_info(p) for p in programs]
@@ -624,7 +629,6 @@ def write_site(
                 relative_to=relative_to,
                 reproducible=False,
                 reader=reader,
-                render_svg=render_svg,
                 prior_uses=_prior_uses(session, inst, reader),  # the only per-instrument reads left
             ),
         )
@@ -654,6 +658,7 @@ def _import_assembly_modules() -> None:
     import ivdossier.registry.portability
     import ivdossier.reports.design_sections
     import ivdossier.threats_catalog.checks
+    import ivdossier.threats_catalog.draw
     import ivdossier.threats_catalog.graph
     import ivdossier.workflows.evidence_runs
     import ivdossier.workflows.findings
