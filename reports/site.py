@@ -123,11 +123,16 @@ def _unique(slug: str, used: set[str]) -> str:
 
 def _write(root: Path, relative: str, text: str, pages: dict[str, bytes]) -> None:
     """Add one page to the site being staged; its path must stay inside the site folder."""
+    _check_inside(root, relative)
+    pages[relative] = text.encode("utf-8")
+
+
+def _check_inside(root: Path, relative: str) -> None:
+    """Refuse a page path that would lie outside the site folder."""
     if (root / relative).resolve(strict=False) != root.joinpath(
         *relative.split("/")
     ) or ".." in relative.split("/"):
         raise InvalidInputError(f"refusing to write {relative}: it lies outside the site folder {root}.")
-    pages[relative] = text.encode("utf-8")
 
 
 def _is_site_file(rel: str, kind: str) -> bool:
@@ -241,7 +246,7 @@ def _pages(
         )
         for d in by_program[program.slug]:
             relative = f"programs/{folder}/instruments/{files[id(d)]}.html"
-            _write(root, relative, "", {})  # checks the path before the page is staged
+            _check_inside(root, relative)  # before the page is staged
             instrument_pages.append((relative, d, nav, files[id(d)]))
     _warm_up()
 
@@ -279,10 +284,8 @@ def _pages(
                 root, f"programs/{folder}/plans/{plan_files[pl.slug]}.html", _plan_page(program, pl), written
             )
         for sm in mine:
-            relative = f"programs/{folder}/instruments/{sm.file}.html"
-            # _write checks the path; the page keeps its place in the site's order
-            _write(root, relative, "", written)
-            written[relative] = html_of[relative]
+            relative = f"programs/{folder}/instruments/{sm.file}.html"  # checked before it was staged
+            written[relative] = html_of[relative]  # the page keeps its place in the site's order
     return written
 
 
