@@ -21,7 +21,6 @@ with one another, and the endogeneity test presumes valid instruments.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -36,11 +35,12 @@ from ivdossier.estimation.crossproducts import (
     quad_form_inv,
     solve_psd,
 )
-from ivdossier.estimation.distributions import chi2_sf, f_sf
+from ivdossier.estimation.distributions import chi2_sf
 from ivdossier.estimation.strength import (
     Array,
     as_matrix,
     denominator_df_cp,
+    f_p_value,
     instrument_basis,
     require_distinct_instruments,
 )
@@ -240,7 +240,7 @@ def endogeneity_from(cp: CrossProducts) -> Endogeneity:
         p_value=chi2_sf(stat, p),
         f_statistic=f,
         f_df=(p, d),
-        f_p_value=f_sf(f, p, d) if math.isfinite(f) else 0.0,
+        f_p_value=f_p_value(f, p, d),
         cov_kind=cp.kind,
         durbin=durbin,
         durbin_p_value=chi2_sf(durbin, p),

@@ -121,8 +121,9 @@ def _html_figures(inp: DossierInput) -> dict[str, str | FilledSvg]:
     graph = inp.graph
     if graph is not None and graph.svg_fills:
         filled = FilledSvg(graph.svg_template, graph.svg_fills)
+        text = filled.text
         for key, kind in figure_keys(inp).items():
-            if kind == "diagram" and figures.get(key) == filled.text:
+            if kind == "diagram" and figures.get(key) == text:
                 figures[key] = filled
     return figures
 
